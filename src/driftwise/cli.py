@@ -93,7 +93,274 @@ def _run_inspect(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-COMMANDS: list[Callable[[argparse._SubParsersAction], None]] = [_add_inspect]
+
+# ---------------------------------------------------------------- spread
+_SPREAD_METHODS = ("cubature", "unscented", "gauss-hermite", "linearize", "ensemble")   # = spread.METHODS
+_MAX_OUTPUT_TIMES = 100_000
+
+
+def _add_spread(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser(
+        "spread", help="forecast where releases go: mean paths, covariance ellipses, probability of reaching an area",
+        description="Forecast releases through the fitted flow (Itô SDE: drift = posterior mean, diffusion = "
+        "2(K I + tau Sigma)) by Gaussian moment matching or an Euler-Maruyama ensemble. Outputs the mean path and "
+        "covariance (metres, local frame; also lon/lat for a lon/lat model) at times since each release, the 50/90/95 %% "
+        "ellipses, and with --polygon the probability of being inside it and the first time it reaches --threshold.",
+        epilog=CAUTION)
+    p.add_argument("model", help="model file written by `driftwise fit`")
+    p.add_argument("--release", action="append", default=[], metavar="X,Y[,Z]",
+                   help="a release point: metres in the model's local frame (units allowed, e.g. 1.2km,-300m), or "
+                   "LON,LAT degrees for a model fitted on lon/lat tracks; repeat for more releases")
+    p.add_argument("--releases", metavar="FILE", help="CSV of releases: columns x,y[,z] (metres) or lon,lat "
+                   "(degrees), optional start_time (seconds or ISO-8601), name, sd_m (release uncertainty, metres)")
+    p.add_argument("--horizon", default="2d", help="forecast length (default 2d)")
+    p.add_argument("--every", default="1h", help="output interval (default 1h)")
+    p.add_argument("--method", choices=_SPREAD_METHODS, default="cubature",
+                   help="moment method (default cubature: third-degree spherical-radial rule) or ensemble")
+    p.add_argument("--particles", type=int, default=10_000, help="ensemble particles (default 10000)")
+    p.add_argument("--step", default=None, help="integration step (default 10min for moments, 1min for the ensemble)")
+    p.add_argument("--diffusivity", default=None, help="eddy diffusivity K, e.g. 5m2/s (default: the model's)")
+    p.add_argument("--decorrelation-time", default=None,
+                   help="velocity decorrelation time tau, e.g. 6h (default: the model's)")
+    p.add_argument("--seed", type=int, default=0, help="random seed of the ensemble (default 0)")
+    p.add_argument("--polygon", metavar="FILE", help="area of interest: GeoJSON Polygon (lon/lat) or CSV of "
+                   "vertices (x,y metres or lon,lat degrees)")
+    p.add_argument("--threshold", type=float, default=0.5,
+                   help="probability whose first reaching is reported as the arrival time (default 0.5)")
+    p.add_argument("--out", action="append", default=[], metavar="FILE",
+                   help="write the forecast: .json, .csv, .nc (CF NetCDF) or .geojson (lon/lat models); repeatable")
+    _add_json_flag(p)
+    _add_quiet_flag(p)
+    p.set_defaults(run=_run_spread)
+
+
+def _output_times_s(args: argparse.Namespace):
+    import numpy as np
+
+    from .units import parse_duration_s
+
+    horizon = parse_duration_s(args.horizon, what="--horizon")
+    every = parse_duration_s(args.every, what="--every")
+    if not (horizon > 0 and every > 0):
+        raise InputError(f"--horizon and --every must be positive, got {args.horizon!r} and {args.every!r}")
+    if horizon / every > _MAX_OUTPUT_TIMES:
+        raise InputError(f"--horizon {args.horizon} every {args.every} asks for more than {_MAX_OUTPUT_TIMES} outputs")
+    times = every * np.arange(int(np.floor(horizon / every * (1 + 1e-12))) + 1)
+    return times if np.isclose(times[-1], horizon, rtol=1e-12) else np.append(times, horizon)
+
+
+def _parse_release(text: str, frame, dim: int):
+    from .units import parse_length_m
+
+    parts = [part.strip() for part in str(text).split(",")]
+    lonlat = frame.kind == "lonlat"
+    shape = ("LON,LAT" if lonlat else "X,Y") + (",Z" if dim == 3 else "")
+    if len(parts) not in (2, 3) or not all(parts):
+        raise InputError(f"--release {text!r}: give {shape} separated by commas")
+    if len(parts) != dim:
+        raise InputError(f"--release {text!r}: the model is {dim}-D, so give {shape}")
+    z = [parse_length_m(parts[2], what=f"--release {text!r}")] if dim == 3 else []
+    if not lonlat:
+        return [parse_length_m(part, what=f"--release {text!r}") for part in parts[:2]] + z
+    try:
+        lon, lat = float(parts[0]), float(parts[1])
+    except ValueError:
+        raise InputError(f"--release {text!r}: this model was fitted on lon/lat tracks; give LON,LAT in degrees") from None
+    if not (abs(lon) <= 360 and abs(lat) <= 90):
+        raise InputError(f"--release {text!r}: ({lon}, {lat}) is not a longitude, latitude in degrees")
+    return list(frame.from_lonlat([lon], [lat])[0]) + z
+
+
+def _spread_releases(args: argparse.Namespace, frame, dim: int):
+    from .spread import Release, as_releases, read_releases
+
+    releases = [Release(_parse_release(text, frame, dim)) for text in args.release]
+    if args.releases:
+        releases += list(read_releases(args.releases, frame=frame, dim=dim))
+    if not releases:
+        raise InputError("spread: give at least one --release X,Y or a --releases FILE")
+    return as_releases(releases)
+
+
+def _spread_options(args: argparse.Namespace, frame) -> dict[str, Any]:
+    from .spread import read_polygon
+    from .units import parse_diffusivity_m2_s, parse_duration_s
+
+    if args.particles < 2:
+        raise InputError(f"--particles must be at least 2, got {args.particles}")
+    if not 0.0 < args.threshold <= 1.0:
+        raise InputError(f"--threshold must be a probability in (0, 1], got {args.threshold}")
+    step = parse_duration_s(args.step, what="--step") if args.step else None
+    if step is not None and not step > 0:
+        raise InputError(f"--step must be positive, got {args.step!r}")
+    polygon = read_polygon(args.polygon, frame=frame) if args.polygon else None
+    return dict(method=args.method, particles=args.particles, step_s=step, seed=args.seed, polygon_m=polygon,
+                threshold=args.threshold if polygon is not None else None,
+                diffusivity_m2_s=parse_diffusivity_m2_s(args.diffusivity, what="--diffusivity")
+                if args.diffusivity else None,
+                decorrelation_time_s=parse_duration_s(args.decorrelation_time, what="--decorrelation-time")
+                if args.decorrelation_time else None)
+
+
+def _run_spread(args: argparse.Namespace) -> int:
+    from pathlib import Path
+
+    import driftwise
+
+    from .io import SPREAD_SUFFIXES, spread_to_dict, write_spread
+
+    bad = [out for out in args.out if Path(out).suffix.lower() not in SPREAD_SUFFIXES]
+    if bad:
+        raise InputError(f"--out {bad[0]}: unknown format; use a name ending in {', '.join(SPREAD_SUFFIXES)}")
+    model = driftwise.load(args.model)
+    if any(Path(out).suffix.lower() == ".geojson" for out in args.out) and model.frame.kind != "lonlat":
+        raise InputError("--out .geojson: GeoJSON (RFC 7946) holds lon/lat only, but this model was fitted in a local "
+                         "metric frame; write .json, .csv or .nc instead")
+    times = _output_times_s(args)
+    releases = _spread_releases(args, model.frame, model.dim)
+    forecast = model.spread(releases, times, **_spread_options(args, model.frame))
+    written = [str(write_spread(forecast, out)) for out in args.out]
+    if args.json:
+        print_json({**spread_to_dict(forecast), "outputs": written, "caution": CAUTION})
+    else:
+        print(_format_spread(forecast, written))
+    return EXIT_OK
+
+
+def _format_spread(forecast, written: list[str]) -> str:
+    """A short human summary: per release the final mean, 95 % ellipse and polygon probability."""
+    hours = forecast.times_s[-1] / 3600.0
+    lines = [f"spread: {len(forecast.releases)} release(s), method {forecast.method}, "
+             f"{len(forecast.times_s)} output times to {hours:.3g} h"]
+    for r, rel in enumerate(forecast.releases):
+        end = forecast.means[r, -1]
+        major, minor = forecast.semi_axes_m[r, -1, forecast.levels.index(0.95)]
+        text = f"  {rel.name}: end mean ({', '.join(f'{v:.0f}' for v in end)}) m"
+        if forecast.mean_lonlat is not None:
+            text += " = lon/lat ({:.5f}, {:.5f})".format(*forecast.mean_lonlat[r, -1])
+        text += f"; 95 % ellipse {major:.0f} m x {minor:.0f} m"
+        if forecast.probability is not None:
+            arrival = forecast.first_arrival_s[r]
+            text += f"; P(inside) max {forecast.probability[r].max():.3f}, reaches {forecast.threshold:g} " + (
+                "never" if arrival is None else f"at {arrival / 3600.0:.3g} h")
+        lines.append(text)
+    lines += [f"wrote {path}" for path in written] + [CAUTION]
+    return "\n".join(lines)
+
+# ---------------------------------------------------------------- fit
+def _add_fit(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser("fit", help="fit a flow field with uncertainty to a tracks file",
+                       description="Fit a vector-field Gaussian process (sparse variational, matrix-valued kernel) "
+                       "to the velocities between consecutive fixes and write the model file. A checkpoint "
+                       "MODEL.ckpt.npz is kept while fitting; --resume continues an interrupted fit from it.",
+                       epilog=CAUTION)
+    p.add_argument("tracks", help="CSV, CSV.GZ, Parquet or CF-trajectory NetCDF file of fixes")
+    p.add_argument("--out", required=True, metavar="MODEL", help="model file to write (.npz)")
+    p.add_argument("--kernel", default="helmholtz", choices=["helmholtz", "divergence-free", "curl-free", "independent"],
+                   help="kernel family (default helmholtz: divergence-free + curl-free parts)")
+    p.add_argument("--inducing", type=int, default=256, metavar="M", help="number of inducing points (default 256)")
+    p.add_argument("--seed", type=int, default=0, metavar="S", help="random seed (default 0)")
+    p.add_argument("--position-error", default="10m", help="standard deviation of one fix per axis (default 10m)")
+    p.add_argument("--max-speed", default="5m/s", help="drop fixes implying a faster speed (default 5m/s)")
+    p.add_argument("--max-gap", default=None, help="split a track at gaps longer than this (e.g. 6h; default: never)")
+    p.add_argument("--resume", action="store_true", help="continue from the checkpoint MODEL.ckpt.npz if present")
+    _add_quiet_flag(p)
+    _add_json_flag(p)
+    p.set_defaults(run=_run_fit)
+
+
+def _checkpoint_path(out: str):
+    from pathlib import Path
+
+    path = Path(out)
+    stem = path.name[: -len(path.suffix)] if path.suffix else path.name
+    return path.with_name(stem + ".ckpt.npz")
+
+
+def _run_fit(args: argparse.Namespace) -> int:
+    from .fit import fit, fit_report
+    from .tracks import read_tracks_from_cli
+    from .units import parse_length_m
+
+    position_error = parse_length_m(args.position_error, what="--position-error")
+    if args.inducing < 1:
+        raise InputError(f"--inducing must be a positive integer, got {args.inducing}")
+    if args.seed < 0:
+        raise InputError(f"--seed must be a non-negative integer, got {args.seed}")
+    tracks = read_tracks_from_cli(args)
+    checkpoint = _checkpoint_path(args.out)
+    try:
+        field = fit(tracks, args.kernel, inducing=args.inducing, seed=args.seed, position_error_m=position_error,
+                    checkpoint=checkpoint, resume=args.resume, progress=not (args.quiet or args.json))
+    except KeyboardInterrupt:
+        print(f"driftwise: fit interrupted; continue with --resume (checkpoint {checkpoint})", file=sys.stderr)
+        raise
+    written = field.save(args.out)
+    checkpoint.unlink(missing_ok=True)
+    report = {**fit_report(field), "model": str(written)}
+    if args.json:
+        print_json(report)
+    else:
+        print(_format_fit(report))
+    return EXIT_OK
+
+
+def _format_fit(report: dict[str, Any]) -> str:
+    hyper = report["hyperparameters"]
+    lines = [f"fit: {report['kernel']} kernel, {report['n_observations']} velocity observations from "
+             f"{report['n_tracks']} tracks, {report['n_inducing']} inducing points",
+             f"  ELBO {report['elbo']:.6g} nats ({report['elbo_per_observation']:.4g} per observation) after "
+             f"{report['steps']} steps" + ("" if report["converged"] else " (step limit reached before the plateau)")]
+    lines += [f"  {name} = {value:.4g}" for name, value in hyper.items()]
+    lines += [f"  decorrelation time τ = {report['decorrelation_time_s']:.4g} s (length scale / RMS speed)",
+              f"wrote {report['model']}"]
+    return "\n".join(lines)
+
+
+COMMANDS: list[Callable[[argparse._SubParsersAction], None]] = [_add_inspect, _add_spread, _add_fit]
+
+
+# ---------------------------------------------------------------- demo
+def _add_demo(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser("demo", help="the whole job on the bundled invented bay: fit, check, spread, score, report",
+                       description="Run the whole job on the bundled demo data (Mirren Bay, invented): inspect the "
+                       "tracks, fit a Helmholtz flow field, check divergence and vorticity, forecast a fuel spill "
+                       "and an outfall plume reaching a shellfish bed, score forecasts on held-out tracks, and "
+                       "export the gridded field. Writes every product, the figures, summary.json and a "
+                       "self-contained report.html into the output folder and prints a short digest.",
+                       epilog=CAUTION)
+    p.add_argument("--out", default="driftwise-demo", metavar="DIR",
+                   help="output folder (default ./driftwise-demo; created if needed, files in it are replaced)")
+    p.add_argument("--figures", default=None, metavar="DIR", help="folder for the PNG figures (default DIR/figures)")
+    p.add_argument("--fast", action="store_true",
+                   help="smaller sizes for a quick smoke run (fewer inducing points and steps; rougher numbers)")
+    _add_json_flag(p)
+    _add_quiet_flag(p)
+    p.set_defaults(run=_run_demo)
+
+
+def _run_demo(args: argparse.Namespace) -> int:
+    import shlex
+
+    from .demo import DemoSettings, complete, run_demo
+
+    words = ["driftwise", "demo", "--out", args.out] + (["--figures", args.figures] if args.figures else [])
+    words += [flag for flag, on in (("--fast", args.fast), ("--json", args.json), ("--quiet", args.quiet)) if on]
+    command = " ".join(shlex.quote(w) for w in words)
+    settings = DemoSettings.fast() if args.fast else DemoSettings()
+    summary = run_demo(args.out, quiet=args.quiet, settings=settings, command=command, figures_dir=args.figures,
+                       stream=sys.stderr if args.json else sys.stdout)
+    if args.json:
+        print_json(summary)
+    if not complete(summary):
+        failed = [s["name"] for s in summary["job"]["steps"] if s["status"] != "done"]
+        print(f"driftwise: demo incomplete: {', '.join(failed)} did not run to the end (see {args.out}/report.html)",
+              file=sys.stderr)
+        return EXIT_INTERNAL
+    return EXIT_OK
+
+
+COMMANDS.append(_add_demo)
 
 
 def build_parser() -> argparse.ArgumentParser:

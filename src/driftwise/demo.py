@@ -1,0 +1,707 @@
+"""The whole driftwise job on the bundled, invented Mirren Bay: ``driftwise demo``.
+
+Steps, each timed and recorded in ``summary.json`` and the report:
+
+1. **data** — read the fit and held-out tracks (``demo_data/``; regenerated with
+   :mod:`driftwise.synthetic` when the folder is not beside the package), inspect them;
+2. **fit** — a Helmholtz (divergence-free + curl-free) field; the model file and ELBO trace;
+3. **map** — the field on a grid (mean, s.d., divergence, vorticity, data support) as NetCDF;
+4. **check** — kernel-family evidence and the divergence-free / curl-free verdict;
+5. **spread** — two invented scenarios: a fuel spill at the harbour mouth of Port Aldous
+   and a continuous outfall modelled as hourly releases, each with the probability of
+   reaching the (invented) Aldous Flats shellfish bed;
+6. **score** — skill and calibration on the held-out tracks, against baselines;
+
+then the figures, ``report.html`` and ``summary.json``, and a short digest on stdout.
+A step whose library piece is missing or fails is recorded as such and the rest runs on:
+the demo never invents a number it did not compute.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import platform
+import sys
+import time
+import traceback
+import warnings
+from dataclasses import dataclass, field
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Any, Callable
+
+import numpy as np
+
+from .errors import InputError
+
+HOUR_S = 3600.0
+
+# Sites of the invented scenarios, in metres of the frame the demo data were generated in
+# (driftwise.synthetic.DemoScenario: AEQD centred at 9° W, 44° N); converted to lon/lat and
+# then into the fitted model's own frame, so they stay put whatever frame the fit chooses.
+HARBOUR_MOUTH_M = (5200.0, -4800.0)          # just off the river mouth of Port Aldous
+OUTFALL_M = (4500.0, 5500.0)                  # the (invented) Kestle Point outfall, north-east shore
+SHELLFISH_BED_M = ((-5200.0, -7600.0), (-1800.0, -7600.0), (-1400.0, -5400.0), (-4600.0, -4900.0))
+SHELLFISH_BED = "Aldous Flats shellfish bed"
+
+
+@dataclass(frozen=True)
+class DemoSettings:
+    """Sizes of the demo job.  ``fast()`` shrinks them for tests and the tutorial's quick mode."""
+
+    inducing: int = 144
+    fit_steps: int = 400
+    family_inducing: int = 64
+    family_steps: int = 150
+    horizon_s: float = 48 * HOUR_S
+    every_s: float = HOUR_S
+    outfall_hours: int = 24
+    spill_sd_m: float = 150.0
+    threshold: float = 0.1
+    grid_cells_across: int = 40
+    skill_horizons_s: tuple[float, ...] = (6 * HOUR_S, 12 * HOUR_S, 24 * HOUR_S)
+    max_skill_starts: int | None = 400
+    seed: int = 0
+
+    @classmethod
+    def fast(cls) -> "DemoSettings":
+        return cls(inducing=48, fit_steps=60, family_inducing=32, family_steps=30, horizon_s=24 * HOUR_S, every_s=2 * HOUR_S,
+                   outfall_hours=6, grid_cells_across=20, skill_horizons_s=(6 * HOUR_S, 12 * HOUR_S),
+                   max_skill_starts=60)
+
+
+# ----------------------------------------------------------------- bookkeeping
+class Unavailable(Exception):
+    """A library piece the step needs is not in this installation (reported, never faked)."""
+
+
+@dataclass
+class Job:
+    """What the demo has done so far: steps, products, figures, warnings."""
+
+    out: Path
+    settings: DemoSettings
+    progress: bool
+    figures_dir: Path
+    steps: list[dict] = field(default_factory=list)
+    files: list[dict] = field(default_factory=list)
+    figures: list[dict] = field(default_factory=list)
+    missing: list[dict] = field(default_factory=list)
+    summary: dict = field(default_factory=dict)
+    state: dict = field(default_factory=dict)
+
+    def relative(self, path: Path) -> str:
+        """``path`` relative to the output folder when inside it, else absolute."""
+        path = Path(path).resolve()
+        try:
+            return path.relative_to(self.out.resolve()).as_posix()
+        except ValueError:
+            return str(path)
+
+    def add_file(self, path: Path, description: str) -> None:
+        self.files.append({"path": self.relative(path), "description": description})
+
+    def add_figure(self, fig: Any, name: str, caption: str, section: str) -> None:
+        from .plots import save_figure
+
+        path = save_figure(fig, self.figures_dir / name)
+        self.figures.append({"path": self.relative(path), "caption": caption, "section": section})
+        self.add_file(path, caption)
+
+    def run(self, name: str, section: str, fn: Callable[["Job"], str]) -> bool:
+        """Run one step; record its status and wall time.  Returns True when it completed."""
+        start = time.perf_counter()
+        status, detail = "done", ""
+        try:
+            detail = fn(self) or ""
+        except Unavailable as err:
+            status, detail = "not available", one_line(str(err))
+        except InputError as err:
+            status, detail = "failed", one_line(str(err))
+        except Exception as err:  # an internal error: report it in one line, keep the rest of the job going
+            status, detail = "failed", one_line(f"{type(err).__name__}: {err}")
+            self.state.setdefault("tracebacks", []).append(traceback.format_exc())
+        seconds = time.perf_counter() - start
+        self.steps.append({"name": name, "status": status, "seconds": round(seconds, 2), "detail": detail})
+        if status != "done":
+            self.missing.append({"section": section, "reason": f"the {name} step {status}: {detail}"})
+        return status == "done"
+
+
+def one_line(text: str, limit: int = 300) -> str:
+    """``text`` with its whitespace collapsed onto one line, cut at ``limit`` characters."""
+    text = " ".join(str(text).split())
+    return text if len(text) <= limit else text[: limit - 1] + "…"
+
+
+def need(module: str, *names: str) -> Any:
+    """Import ``driftwise.<module>`` and check it offers ``names``; else :class:`Unavailable`."""
+    import importlib
+
+    try:
+        mod = importlib.import_module(f"driftwise.{module}")
+    except ImportError as err:
+        raise Unavailable(f"driftwise.{module} is not available ({err})") from None
+    absent = [n for n in names if not hasattr(mod, n)]
+    if absent:
+        raise Unavailable(f"driftwise.{module} has no {', '.join(absent)} yet")
+    return mod
+
+
+def demo_data_dir(out: Path) -> Path:
+    """The bundled ``demo_data`` folder, or a fresh copy regenerated (deterministically) under ``out``."""
+    here = Path(__file__).resolve()
+    for candidate in (here.parents[2] / "demo_data", Path.cwd() / "demo_data"):
+        if (candidate / "bay_fit.csv").is_file() and (candidate / "bay_holdout.csv").is_file():
+            return candidate
+    synthetic = need("synthetic", "write_demo_data")
+    synthetic.write_demo_data(out / "demo_data")
+    return out / "demo_data"
+
+
+def _bay_to_model(frame: Any, xy_bay_m: Any) -> np.ndarray:
+    """Sites given in the generator's frame (synthetic.DemoScenario) → the model's frame, metres (n, 2)."""
+    from .frame import Frame
+    from .synthetic import DemoScenario
+
+    scenario = DemoScenario()
+    lon, lat = Frame("lonlat", scenario.lon0_deg, scenario.lat0_deg).to_lonlat(np.atleast_2d(xy_bay_m))
+    return frame.from_lonlat(lon, lat) if getattr(frame, "kind", "metric") == "lonlat" else np.atleast_2d(xy_bay_m)
+
+
+# ----------------------------------------------------------------- 1. data
+def step_data(job: Job) -> str:
+    tracks_mod = need("tracks", "read_tracks", "inspect_summary")
+    folder = demo_data_dir(job.out)
+    fit_tracks = tracks_mod.read_tracks(folder / "bay_fit.csv")
+    heldout = tracks_mod.read_tracks(folder / "bay_holdout.csv")
+    job.state.update(fit_tracks=fit_tracks, heldout=heldout, data_dir=folder)
+    summaries = {name: tracks_mod.inspect_summary(t) for name, t in (("fit", fit_tracks), ("heldout", heldout))}
+    job.summary["data"] = {name: _data_table(s) for name, s in summaries.items()}
+    job.summary["data"]["qc"] = [{"action": f"{name} set: {a['name']}", "count": a["count"], "detail": a["message"]}
+                                 for name, s in summaries.items() for a in s.get("qc", [])]
+    job.state["inspect"] = summaries
+    return (f"{fit_tracks.n_tracks} fit tracks ({fit_tracks.n_fixes} fixes), "
+            f"{heldout.n_tracks} held-out tracks ({heldout.n_fixes} fixes) from {folder}")
+
+
+def _data_table(s: dict) -> dict:
+    """The inspect summary reduced to what a reader of the report needs, units in the names."""
+    out = {"file": s.get("source"), "n_tracks": s.get("n_tracks"), "n_fixes": s.get("n_fixes")}
+    t = s.get("time", {})
+    if t.get("start_iso"):
+        out["first fix (UTC)"], out["last fix (UTC)"] = t["start_iso"], t["end_iso"]
+    out["time_span_s"] = t.get("span_s")
+    out["median_sampling_interval_s"] = s.get("sampling_interval_s", {}).get("median")
+    speed = s.get("speed_m_s", {})
+    out["median_speed_m_s"], out["95th_percentile_speed_m_s"] = speed.get("p50"), speed.get("p95")
+    frame = s.get("frame", {})
+    out["frame"] = ("lon/lat degrees, projected to a local azimuthal-equidistant frame centred at "
+                    f"{frame['lat0_deg']:.4f}° N, {frame['lon0_deg']:.4f}° E") if frame.get("kind") == "lonlat" \
+        else "metres in a local frame"
+    return out
+
+
+def figure_tracks(job: Job) -> None:
+    from .plots import plot_tracks
+
+    fit_tracks, heldout = job.state["fit_tracks"], job.state["heldout"]
+    frame = fit_tracks.frame
+    held_m = _to_frame(heldout, frame)
+    places = _places(frame)
+    job.add_figure(plot_tracks(fit_tracks.position_m, fit_tracks.track_id, frame=frame, heldout_position_m=held_m,
+                               heldout_track=heldout.track_id, places=places,
+                               title="Mirren Bay drifters (invented data)"),
+                   "tracks.png", "The drifter tracks: fit set and held-out set, with the scenario sites.", "data")
+
+
+def _to_frame(tracks: Any, frame: Any) -> np.ndarray:
+    """Positions of ``tracks`` expressed in ``frame`` (each file is projected about its own centre)."""
+    if getattr(frame, "kind", "metric") != "lonlat" or tracks.frame == frame:
+        return np.asarray(tracks.position_m)
+    lon, lat = tracks.frame.to_lonlat(tracks.position_m[:, :2])
+    return frame.from_lonlat(lon, lat)
+
+
+def in_frame(tracks: Any, frame: Any) -> Any:
+    """``tracks`` re-projected into ``frame`` (the model's), so positions compare metre for metre."""
+    import dataclasses
+
+    if getattr(frame, "kind", "metric") != "lonlat" or tracks.frame == frame:
+        return tracks
+    return dataclasses.replace(tracks, position_m=_to_frame(tracks, frame), frame=frame)
+
+
+def _places(frame: Any) -> list[dict]:
+    harbour, outfall = _bay_to_model(frame, [HARBOUR_MOUTH_M, OUTFALL_M])
+    bed = _bay_to_model(frame, SHELLFISH_BED_M).mean(axis=0)
+    return [{"label": "Port Aldous harbour mouth", "xy_m": harbour}, {"label": "Kestle Point outfall", "xy_m": outfall},
+            {"label": SHELLFISH_BED, "xy_m": bed}]
+
+
+# ----------------------------------------------------------------- 2. fit
+def step_fit(job: Job) -> str:
+    fit_mod = need("fit", "fit")
+    s = job.settings
+    field = fit_mod.fit(job.state["fit_tracks"], kernel="helmholtz", inducing=s.inducing, seed=s.seed,
+                        steps=s.fit_steps, progress=job.progress)
+    path = job.out / "model.npz"
+    field.save(path)
+    job.add_file(path, "the fitted Helmholtz model (npz without pickles + JSON metadata; driftwise.load)")
+    job.state["field"] = field
+    info = field.fit_info if isinstance(field.fit_info, dict) else field.fit_info()
+    data = field.data_summary
+    job.summary["fit"] = {
+        "kernel": field.kernel_family, "base_kernel": field.kernel_base,
+        "n_tracks": data.get("n_tracks"), "n_observations": data.get("n_observations"),
+        "n_inducing": int(np.asarray(field.params.inducing_m).shape[0]),
+        "elbo": info.get("elbo"), "elbo_per_observation": info.get("elbo_per_observation"),
+        "optimiser_steps": info.get("steps"), "converged": info.get("converged"),
+        "diffusivity_m2_s": field.diffusivity_m2_s, "decorrelation_time_s": field.decorrelation_time_s,
+        "hyperparameters": _group_hyperparameters(field.hyperparameters),
+        "notes": [f"The decorrelation time τ comes from {info.get('decorrelation_time_source', 'the fit')} "
+                  "(Taylor 1921: diffusivity = velocity variance × Lagrangian time scale)."],
+    }
+    history = info.get("elbo_history") or []
+    if history:
+        from .plots import plot_elbo
+
+        n_obs = data.get("n_observations")
+        job.add_figure(plot_elbo(np.arange(1, len(history) + 1), np.asarray(history, float), n_observations=n_obs),
+                       "elbo.png", f"The evidence lower bound while fitting ({info.get('elbo_history_kind', '')}).",
+                       "fit")
+    return (f"helmholtz, M = {job.summary['fit']['n_inducing']}, K = {field.diffusivity_m2_s:.3g} m²/s, "
+            f"τ = {field.decorrelation_time_s / HOUR_S:.3g} h, {info.get('steps')} steps")
+
+
+def _group_hyperparameters(h: dict[str, float]) -> dict[str, Any]:
+    """``divergence_free_length_scale_m`` → {"divergence_free": {"length_scale_m": …}}; others stay flat."""
+    out: dict[str, Any] = {}
+    for name, value in h.items():
+        part = next((p for p in ("divergence_free", "curl_free") if name.startswith(p + "_")), None)
+        if part:
+            out.setdefault(part.replace("_", "-") + " part", {})[name[len(part) + 1:]] = float(value)
+        else:
+            out[name] = float(value)
+    return out
+
+
+# ----------------------------------------------------------------- 3. map
+def step_map(job: Job) -> str:
+    physics = need("physics", "field_grid")
+    field = _field(job)
+    grid = physics.field_grid(field, cells_across=job.settings.grid_cells_across)
+    job.state["grid"] = grid
+    written = _write_map(job, grid)
+    from .plots import plot_mean_field
+
+    sd = np.sqrt(np.sum(np.asarray(grid.std_m_s) ** 2, axis=-1) / 2.0)
+    obs = job.state["fit_tracks"].position_m
+    job.add_figure(plot_mean_field(grid.x_m, grid.y_m, grid.mean_m_s, sd, frame=field.frame, support=grid.supported,
+                                   data_position_m=obs),
+                   "field.png", "Posterior mean velocity and its standard deviation; hatched where the data "
+                   "hardly constrain the field (posterior variance above half the prior).", "fit")
+    return f"{grid.x_m.size} × {grid.y_m.size} grid at {grid.x_m[1] - grid.x_m[0]:g} m" + (
+        f"; wrote {written}" if written else "")
+
+
+def _write_map(job: Job, grid: Any) -> str:
+    """The gridded field as CF NetCDF and CSV (the writers of ``driftwise map``)."""
+    io = need("io", "write_field_grid")
+    names = []
+    for suffix, what in ((".nc", "CF NetCDF"), (".csv", "CSV")):
+        path = io.write_field_grid(grid, job.out / f"field{suffix}")
+        job.add_file(path, f"gridded mean velocity, s.d., divergence, vorticity and data support ({what})")
+        names.append(path.name)
+    return ", ".join(names)
+
+
+def _field(job: Job) -> Any:
+    if "field" not in job.state:
+        raise Unavailable("needs the fitted field, which the fit step did not produce")
+    return job.state["field"]
+
+
+# ----------------------------------------------------------------- 4. check
+def step_check(job: Job) -> str:
+    verdict = need("verdict", "check")
+    field, s = _field(job), job.settings
+    result = verdict.check(job.state["fit_tracks"], model=field, inducing=s.family_inducing, steps=s.family_steps,
+                           seed=s.seed, progress=job.progress)
+    job.state["check"] = result
+    job.summary["check"] = _check_summary(result)
+    from .io import atomic_write_text
+
+    path = job.out / "check.json"
+    atomic_write_text(path, json.dumps(plain(result), indent=1, allow_nan=False) + "\n")
+    job.add_file(path, "kernel-family evidence, divergence/vorticity tests, Helmholtz split and the verdict")
+    v = result["verdict"]
+    split = result.get("helmholtz_split", {})
+    return (f"divergence-free: {'yes' if v['divergence_free'] else 'no'}, curl-free: "
+            f"{'yes' if v['curl_free'] else 'no'}; divergent share {result['divergent_variance_fraction']:.2f}"
+            + (f" ± {split['std']:.2f}" if split.get("std") is not None else ""))
+
+
+def _check_summary(result: dict) -> dict:
+    """The check result arranged for the report: verdict with reasons, family table, test statistics."""
+    families = {name: {k: v for k, v in row.items() if not isinstance(v, dict)}
+                for name, row in result.get("families", {}).items()}
+    reasons = result["verdict"].get("reasons", {})
+    if isinstance(reasons, dict):
+        reasons = [f"{key.replace('_', '-')}: {text}" for key, texts in reasons.items() for text in texts]
+    stats = {"divergent_variance_fraction": result.get("divergent_variance_fraction")}
+    for q in ("divergence", "vorticity"):
+        stats[q] = {k: result.get(q, {}).get(k) for k in ("significant_area_fraction", "max_abs_z", "z_critical",
+                                                          "n_cells")}
+    split = result.get("helmholtz_split", {})
+    stats["divergent share s.d."] = split.get("std")
+    stats["divergent share 90 % interval"] = split.get("interval_90")
+    return {"verdict": {"divergence_free": result["verdict"]["divergence_free"],
+                        "curl_free": result["verdict"]["curl_free"], "reasons": reasons,
+                        "rule": result["verdict"].get("rule")},
+            "families": families, "reading": result.get("evidence", {}).get("reading", ""),
+            "statistics": stats, "tested_model": result.get("tested_model")}
+
+
+def figure_physics(job: Job) -> str:
+    """Divergence and vorticity on the map grid; outlined where |z| passes the check's corrected threshold."""
+    from .plots import plot_divergence_vorticity
+
+    grid = job.state.get("grid")
+    if grid is None:
+        raise Unavailable("needs the gridded field from the map step")
+    check = job.state.get("check", {})
+    z_div = check.get("divergence", {}).get("z_critical")
+    z_vort = check.get("vorticity", {}).get("z_critical")
+    corrected = [z is not None and math.isfinite(z) for z in (z_div, z_vort)]
+    thresholds = tuple(z if ok else 1.96 for z, ok in zip((z_div, z_vort), corrected))
+    how = ("the smallest |z| the Benjamini–Hochberg test of the check rejected, per quantity" if all(corrected)
+           else "the Benjamini–Hochberg critical |z| where the check rejected; elsewhere pointwise |z| ≥ 1.96, "
+                "which is not corrected for multiple testing")
+    reasons = getattr(grid, "reasons", {}) or {}
+    div = None if "divergence" in reasons else grid.divergence_s
+    fig = plot_divergence_vorticity(grid.x_m, grid.y_m, div, None if div is None else div / grid.divergence_std_s,
+                                    grid.vorticity_s, grid.vorticity_s / grid.vorticity_std_s,
+                                    frame=job.state["field"].frame, z_threshold=thresholds,
+                                    support=grid.supported, divergence_note=reasons.get("divergence", ""))
+    job.add_figure(fig, "physics.png", "Posterior mean divergence and vorticity; thick outline: significant "
+                   f"regions ({how}); dashed contours are negative values.", "check")
+    return "outline at |z| ≥ " + ", ".join(f"{z:.2f}" for z in thresholds)
+
+
+# ----------------------------------------------------------------- 5. spread
+def step_spread(job: Job) -> str:
+    spread_mod = need("spread", "Release", "spread_from_field")
+    from .io import write_spread
+
+    field, s = _field(job), job.settings
+    frame = field.frame
+    harbour, outfall = _bay_to_model(frame, [HARBOUR_MOUTH_M, OUTFALL_M])
+    bed = _bay_to_model(frame, SHELLFISH_BED_M)
+    times = s.every_s * np.arange(int(round(s.horizon_s / s.every_s)) + 1)
+    spill = spread_mod.spread_from_field(
+        field, [spread_mod.Release(harbour, cov0_m2=s.spill_sd_m**2 * np.eye(2), name="fuel spill")], times,
+        polygon_m=bed, threshold=s.threshold)
+    starts = HOUR_S * np.arange(s.outfall_hours)
+    parcels = [spread_mod.Release(outfall, start_time_s=t0, cov0_m2=30.0**2 * np.eye(2), name=f"outfall +{t0 / HOUR_S:g} h")
+               for t0 in starts]
+    plume = spread_mod.spread_from_field(field, parcels, times, polygon_m=bed, threshold=s.threshold)
+    for name, forecast in (("spill", spill), ("outfall", plume)):
+        for suffix in (".json", ".csv", ".geojson") if frame.kind == "lonlat" else (".json", ".csv"):
+            path = write_spread(forecast, job.out / f"spread_{name}{suffix}")
+            job.add_file(path, f"{name} forecast: means, covariances, ellipses, P(inside the shellfish bed)")
+    share = outfall_share(plume.probability, times, starts)
+    job.state.update(spill=spill, plume=plume, bed=bed, share=share, times=times, starts=starts)
+    job.summary["spread"] = [_spill_table(spill, s), _outfall_table(plume, share, times, starts, s)]
+    _spread_figures(job)
+    arrival = spill.first_arrival_s[0]
+    return (f"spill P(bed) max {spill.probability[0].max():.2f}, first ≥ {s.threshold:g} "
+            + ("never" if arrival is None else f"at {arrival / HOUR_S:g} h")
+            + f"; outfall share max {np.nanmax(share):.2f}")
+
+
+def outfall_share(probability: np.ndarray, times_s: np.ndarray, starts_s: np.ndarray) -> np.ndarray:
+    """Expected share of the discharged water inside the area at clock times ``times_s`` since the outfall started.
+
+    Parcel i (released at ``starts_s[i]``) is inside with probability p_i(T − t_i) (its own clock);
+    the discharge so far is the equal-weight mixture of the released parcels, so the share is the mean
+    of p_i over the parcels with t_i ≤ T.  ``probability`` (R, T) on the release-relative ``times_s``.
+    Returns (T,); the outputs must be on a grid that contains every start time.
+    """
+    share = np.full(times_s.shape, np.nan)
+    for k, clock in enumerate(times_s):
+        ages = clock - starts_s[starts_s <= clock + 1e-9]
+        idx = np.searchsorted(times_s, ages - 1e-9)
+        share[k] = np.mean(probability[np.arange(ages.size), np.minimum(idx, times_s.size - 1)])
+    return share
+
+
+def _lonlat_or_xy(forecast: Any, r: int, k: int) -> list[Any]:
+    if forecast.mean_lonlat is not None:
+        return [round(float(v), 5) for v in forecast.mean_lonlat[r, k]]
+    return [float(v) for v in forecast.means[r, k, :2]]
+
+
+def _table_hours(times_s: np.ndarray) -> list[int]:
+    wanted = [0, 3, 6, 12, 18, 24, 36, 48]
+    return [k for k, t in enumerate(times_s) if round(t / HOUR_S, 6) in wanted]
+
+
+def _spill_table(spill: Any, s: DemoSettings) -> dict:
+    level = spill.levels.index(0.95)
+    geo = spill.mean_lonlat is not None
+    rows = [[spill.times_s[k] / HOUR_S, *_lonlat_or_xy(spill, 0, k), *spill.semi_axes_m[0, k, level],
+             spill.probability[0, k]] for k in _table_hours(spill.times_s)]
+    arrival = spill.first_arrival_s[0]
+    return {"name": "Fuel spill at the Port Aldous harbour mouth",
+            "description": f"An instantaneous release at the harbour mouth with an initial spread of "
+                           f"{s.spill_sd_m:g} m (s.d.), followed for {s.horizon_s / HOUR_S:g} h.",
+            "method": f"{spill.method} (Gaussian moment matching on the fitted SDE)",
+            "columns": ["time since release (h)", "mean lon (°)" if geo else "mean x (m)",
+                        "mean lat (°)" if geo else "mean y (m)", "95 % ellipse semi-major (m)",
+                        "95 % ellipse semi-minor (m)", f"P(inside {SHELLFISH_BED}) (–)"],
+            "rows": rows,
+            "notes": [f"The probability first reaches {s.threshold:g} "
+                      + ("never within the horizon." if arrival is None else f"{arrival / HOUR_S:g} h after the release.")]}
+
+
+def _outfall_table(plume: Any, share: np.ndarray, times: np.ndarray, starts: np.ndarray, s: DemoSettings) -> dict:
+    rows = [[times[k] / HOUR_S, int(np.sum(starts <= times[k] + 1e-9)), share[k],
+             float(np.max(plume.probability[:, k]))] for k in _table_hours(times)]
+    return {"name": "Continuous outfall at Kestle Point",
+            "description": f"Discharge for {s.outfall_hours} h modelled as one release per hour (each with a "
+                           "30 m initial spread), each followed for "
+                           f"{s.horizon_s / HOUR_S:g} h.",
+            "method": f"{plume.method}, {len(plume.releases)} releases in one batched call",
+            "columns": ["time since the outfall started (h)", "parcels released (–)",
+                        f"expected share inside {SHELLFISH_BED} (–)",
+                        f"highest single-parcel P(inside) at that parcel age (h) (–)"],
+            "rows": rows,
+            "notes": ["The share is the mean, over the parcels released so far, of each parcel's probability of "
+                      "being inside the bed: the mixture of the parcels' Gaussians."]}
+
+
+def _spread_figures(job: Job) -> None:
+    from .plots import plot_area_probability, plot_release_spread
+
+    spill, plume, bed, grid = job.state["spill"], job.state["plume"], job.state["bed"], job.state.get("grid")
+    frame = job.state["field"].frame
+    background = None if grid is None else {"x_m": grid.x_m, "y_m": grid.y_m, "mean_m_s": grid.mean_m_s}
+    places = _places(frame)
+    rel = lambda f, r, label: {"label": label, "times_s": f.times_s, "mean_m": f.means[r],  # noqa: E731
+                               "covariance_m2": f.covs[r]}
+    horizon_h = spill.times_s[-1] / HOUR_S
+    spill_times = [t * HOUR_S for t in (6, 12, 24, 48) if t <= horizon_h]
+    job.add_figure(plot_release_spread([rel(spill, 0, "fuel spill, mean path")], ellipse_times_s=spill_times,
+                                       frame=frame, field=background, area_m=bed, area_label=SHELLFISH_BED,
+                                       places=places[:2], title="Fuel spill"),
+                   "spread_spill.png", "Fuel spill: mean path with 50 % (shaded) and 95 % (dashed) ellipses; "
+                   "grey arrows are the fitted mean flow.", "spread")
+    pick = sorted({0, len(plume.releases) // 2, len(plume.releases) - 1})
+    job.add_figure(plot_release_spread([rel(plume, r, f"parcel released at +{plume.releases[r].start_time_s / HOUR_S:g} h")
+                                        for r in pick], ellipse_times_s=[t * HOUR_S for t in (12, 24) if t <= horizon_h],
+                                       frame=frame, field=background, area_m=bed, area_label=SHELLFISH_BED,
+                                       places=places[:2], title="Outfall parcels"),
+                   "spread_outfall.png", "Outfall: three of the hourly parcels, ellipses at parcel ages 12 h and 24 h.",
+                   "spread")
+    curves = [{"label": "fuel spill: P(inside)", "times_s": spill.times_s, "probability": spill.probability[0]},
+              {"label": "outfall: expected share inside", "times_s": job.state["times"], "probability": job.state["share"]}]
+    job.add_figure(plot_area_probability(curves, area_label="the shellfish bed", threshold=job.settings.threshold,
+                                         time_label="time since the release / since the outfall started (h)"),
+                   "area_probability.png", f"Probability of reaching the {SHELLFISH_BED} against time; "
+                   "the star marks the first time the threshold is reached.", "spread")
+
+
+# ----------------------------------------------------------------- 6. score
+def step_score(job: Job) -> str:
+    skill = need("skill", "score")
+    field, s = _field(job), job.settings
+    heldout = in_frame(job.state["heldout"], field.frame)
+    result = skill.score(field, heldout, horizons_s=s.skill_horizons_s, max_starts=s.max_skill_starts,
+                         fit_tracks=in_frame(job.state["fit_tracks"], field.frame))
+    job.summary["skill"] = result
+    path = job.out / "skill.json"
+    from .io import atomic_write_text
+
+    atomic_write_text(path, json.dumps(plain(result), indent=1, allow_nan=False) + "\n")
+    job.add_file(path, "forecast skill per horizon: separation, Liu–Weisberg skill, coverage, log score, baselines")
+    if hasattr(skill, "write_score_csv"):
+        skill.write_score_csv(result, job.out / "skill.csv")
+        job.add_file(job.out / "skill.csv", "the same scores as a table (CSV)")
+    from .plots import plot_skill_coverage
+
+    base = {name: {k: b[k] for k in ("skill", "separation_m") if k in b} for name, b in result["baselines"].items()}
+    job.add_figure(plot_skill_coverage(result["horizons_s"], skill=result["skill"], separation_m=result["separation_m"],
+                                       coverage_50=result["coverage_50"], coverage_95=result["coverage_95"],
+                                       baselines=base, n_forecasts=result.get("n_pairs")),
+                   "skill.png", "Skill, median separation and ellipse coverage on the held-out tracks, against "
+                   "persistence and no-motion baselines; shaded: 95 % Wilson intervals of the coverage.", "skill")
+    k = len(result["horizons_s"]) - 1
+    return (f"{result['horizons_s'][k] / HOUR_S:g} h: skill {result['skill'][k]:.2f} "
+            f"(persistence {result['baselines']['persistence']['skill'][k]:.2f}), "
+            f"95 % coverage {result['coverage_95'][k]:.2f}")
+
+
+# ----------------------------------------------------------------- JSON
+def plain(value: Any) -> Any:
+    """JSON-able copy: numpy → Python, NaN/inf → None, tuples → lists, unknown objects → str."""
+    if isinstance(value, dict):
+        return {str(k): plain(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [plain(v) for v in value]
+    if isinstance(value, np.ndarray):
+        return plain(value.tolist())
+    if isinstance(value, (bool, np.bool_)):
+        return bool(value)
+    if isinstance(value, (int, np.integer)):
+        return int(value)
+    if isinstance(value, (float, np.floating)):
+        return float(value) if math.isfinite(float(value)) else None
+    if value is None or isinstance(value, str):
+        return value
+    return str(value)
+
+
+# ----------------------------------------------------------------- the job
+STEPS: tuple[tuple[str, str, Callable[[Job], str]], ...] = (
+    ("data", "data", step_data),
+    ("fit", "fit", step_fit),
+    ("map", "fit", step_map),
+    ("check", "check", step_check),
+    ("physics figure", "check", figure_physics),
+    ("spread", "spread", step_spread),
+    ("score", "skill", step_score),
+)
+
+DESCRIPTION = ("The whole driftwise job on invented data: drifters in Mirren Bay, a fictional coastal bay with a "
+               "wind-driven gyre and the outflow of the (equally fictional) Aldous river at Port Aldous. "
+               "Fit a flow field with uncertainty, check its physics, forecast a fuel spill and an outfall plume "
+               "reaching a shellfish bed, and score forecasts on tracks the fit never saw.")
+
+
+def run_demo(out_dir: str | Path = "driftwise-demo", *, quiet: bool = False, settings: DemoSettings | None = None,
+             command: str | None = None, figures_dir: str | Path | None = None, stream: Any = None) -> dict:
+    """Run the demo into ``out_dir``; write figures, products, ``summary.json`` and ``report.html``.
+
+    Figures go to ``figures_dir`` (default ``out_dir/figures``).  Prints the digest on ``stream``
+    (default stdout); progress bars appear only on a terminal and never with ``quiet``; warnings
+    are collected (one line each) into the digest and the report.  Returns the summary dict.
+    """
+    out = Path(out_dir)
+    figures = out / "figures" if figures_dir is None else Path(figures_dir)
+    _prepare_out(out, figures)
+    job = Job(out, settings or DemoSettings(), progress=not quiet, figures_dir=figures)
+    start = time.perf_counter()
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        bar = _bar(len(STEPS), quiet)
+        for name, section, fn in STEPS:
+            bar.set_description(f"driftwise demo: {name}")
+            ok = job.run(name, section, fn)
+            if name == "data" and ok:
+                job.run("tracks figure", "data", figure_tracks)
+            bar.update(1)
+        bar.close()
+    summary = _assemble(job, time.perf_counter() - start, one_line_warnings(caught), command)
+    _write_outputs(job, summary)
+    print(digest(summary, out), file=stream or sys.stdout)
+    return summary
+
+
+def _prepare_out(out: Path, figures: Path) -> None:
+    for folder in (out, figures):
+        if folder.exists() and not folder.is_dir():
+            raise InputError(f"{folder}: exists and is not a folder; give a folder for the demo's outputs")
+        try:
+            folder.mkdir(parents=True, exist_ok=True)
+        except OSError as err:
+            raise InputError(f"{folder}: cannot create the output folder ({err.strerror})") from None
+
+
+def _bar(total: int, quiet: bool) -> Any:
+    from tqdm.auto import tqdm
+
+    disable = quiet or not (hasattr(sys.stderr, "isatty") and sys.stderr.isatty())
+    return tqdm(total=total, disable=disable, unit="step", file=sys.stderr, leave=False, dynamic_ncols=True)
+
+
+def one_line_warnings(caught: list[warnings.WarningMessage]) -> list[str]:
+    """Each distinct warning once, on one line: ``Category: first line of the message (×n)``."""
+    counts: dict[str, int] = {}
+    for w in caught:
+        text = f"{w.category.__name__}: {str(w.message).strip().splitlines()[0] if str(w.message).strip() else ''}"
+        counts[text] = counts.get(text, 0) + 1
+    return [text if n == 1 else f"{text} (×{n})" for text, n in counts.items()]
+
+
+def _assemble(job: Job, wall_s: float, warning_lines: list[str], command: str | None) -> dict:
+    from . import __version__
+    from .cli import CAUTION
+
+    summary = {
+        "title": "driftwise demo: Mirren Bay (invented data)",
+        "created_utc": datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
+        "driftwise_version": __version__,
+        "command": command or "driftwise demo --out " + str(job.out),
+        "caution": CAUTION,
+        "job": {"description": DESCRIPTION, "wall_time_s": round(wall_s, 2), "steps": job.steps},
+        **job.summary,
+        "figures": job.figures, "files": job.files, "warnings": warning_lines, "missing": job.missing,
+        "settings": plain(job.settings.__dict__),
+        "environment": _environment(),
+    }
+    return plain(summary)
+
+
+def _environment() -> dict:
+    import os
+
+    import jax
+
+    return {"python": platform.python_version(), "platform": platform.platform(), "jax": jax.__version__,
+            "numpy": np.__version__, "cpu_count": os.cpu_count()}
+
+
+def _write_outputs(job: Job, summary: dict) -> None:
+    from .io import atomic_write_text
+    from .report import write_report
+
+    files = summary["files"]
+    files += [{"path": "summary.json", "description": "every number of this run (the report is made from it)"},
+              {"path": "report.html", "description": "the report: one self-contained HTML file, open in a browser"}]
+    atomic_write_text(job.out / "summary.json", json.dumps(summary, indent=1, allow_nan=False) + "\n")
+    write_report(summary, job.out / "report.html")
+
+
+def complete(summary: dict) -> bool:
+    """True when every step of the demo ran to the end."""
+    return all(step["status"] == "done" for step in summary["job"]["steps"])
+
+
+# ----------------------------------------------------------------- digest
+def digest(summary: dict, out: Path) -> str:
+    """A short plain-text account of the run: key numbers, then where each file is."""
+    from .cli import CAUTION
+
+    steps = {s["name"]: s for s in summary["job"]["steps"]}
+    lines = [f"driftwise demo: Mirren Bay (invented data), {summary['job']['wall_time_s']:.0f} s"]
+    for name in ("data", "fit", "map", "check", "spread", "score"):
+        step = steps.get(name, {"status": "not run", "detail": ""})
+        text = step["detail"] if step["status"] == "done" else f"{step['status'].upper()}: {step['detail']}"
+        lines.append(f"  {name:<7} {text}")
+    lines.append(f"  files in {out}/")
+    figures = [f for f in summary["files"] if f["path"].endswith(".png")]
+    for f in summary["files"]:
+        if f not in figures:
+            lines.append(f"    {f['path']:<22} {f['description']}")
+    if figures:
+        folder = Path(figures[0]["path"]).parent.as_posix() + "/"
+        lines.append(f"    {folder:<22} {len(figures)} PNG figures: " + ", ".join(Path(f['path']).name for f in figures))
+    warn = summary.get("warnings", [])
+    lines.append(f"  warnings: {len(warn)}" + ("" if not warn else " (also in the report)"))
+    lines += [f"    {w}" for w in warn]
+    if not complete(summary):
+        lines.append("  The demo is INCOMPLETE: the steps marked above did not run; the report says why.")
+    lines.append(CAUTION)
+    return "\n".join(lines)

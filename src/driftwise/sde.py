@@ -1,0 +1,418 @@
+"""The Itô SDE a release follows: dx = μ(x) dt + L(x) dβ with D(x) = L(x) L(x)ᵀ.
+
+A fitted `FlowField` gives the drift μ(x) = posterior mean velocity (m/s) and the
+diffusion D(x) = 2 (K I + τ Σ(x)) (m²/s), where K is the eddy diffusivity (m²/s),
+Σ(x) the posterior velocity covariance at x (m²/s²) and τ a velocity
+decorrelation time (s): unresolved velocity with variance Σ and Lagrangian time
+scale τ disperses like a diffusivity τ Σ (Taylor 1921, "Diffusion by continuous
+movements").  The covariance ODE of the moment propagators gains E[D(x)], so D
+is the full rate matrix (twice the diffusivity), not its square root.
+
+`SDE` also takes plain user callables, so the propagators (`moments`,
+`ensemble`) can be used and tested on analytic SDEs.  Calibrating K and τ from
+held-out tracks belongs in this module too (a later issue); `sde_from_field`
+takes them from the field or from the caller.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any, Callable, Hashable
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from .errors import InputError
+
+__all__ = ["SDE", "PointPosterior", "sde_from_field", "split_for_jit", "join_from_jit"]
+
+
+@jax.tree_util.register_dataclass
+@dataclass(frozen=True)
+class SDE:
+    """An Itô SDE dx = drift(x) dt + L(x) dβ with diffusion(x) = L(x) L(x)ᵀ.
+
+    drift:     x (d,) m -> (d,) m/s, a pure jax function of one state.
+    diffusion: x (d,) m -> (d, d) m²/s, symmetric positive semi-definite; the
+               rate at which the covariance grows, D = L Lᵀ (a pure diffusion
+               with diffusivity K has D = 2 K I, so Var grows as 2 K t).
+
+    Both are pytree fields: pass `jax.tree_util.Partial(fn, params...)` to keep
+    parameters as traced data (changing them does not recompile the
+    propagators); plain functions are treated as static (hashed by identity).
+    """
+
+    drift: Callable[[jax.Array], jax.Array]
+    diffusion: Callable[[jax.Array], jax.Array]
+
+
+@jax.tree_util.register_dataclass
+@dataclass(frozen=True)
+class PointPosterior:
+    """A field's posterior at single points, with everything independent of x precomputed.
+
+    For the whitened sparse GP (Titsias 2009; Hensman et al. 2013) with
+    A(x) = K(x, Z) L_Z^{−T} and q(w) = N(m, S Sᵀ), the predictive covariance
+    K(x, x) − A (I − S Sᵀ) Aᵀ is rewritten with the eigendecomposition
+    I − S Sᵀ = U diag(λ) Uᵀ (jnp.linalg.eigh, once per field):
+
+        mean(x) = K(x, Z) α,                  α = L_Z^{−T} m             (M·d,)
+        cov(x)  = K(x, x) − G diag(λ) Gᵀ,     G = K(x, Z) B,  B = L_Z^{−T} U
+
+    so one point costs a single (d × M·d)·(M·d × M·d) product (2 d (M·d)²
+    flop), and under `vmap` over sigma points and releases XLA folds the batch
+    into one matrix product — the dominant work of a spread forecast.  B keeps
+    the conditioning of L_Z^{−T} (U is orthogonal); values equal
+    `FlowField.mean_at` / `cov_between(x, x)` to ~1e-12 relative
+    (tests/test_sde.py).
+
+    kernel: the field's matrix kernel; inducing_m: Z (M, d) m; alpha: (M·d,)
+    s/m; projection: B (M·d, M·d) s/m; weights: λ (M·d,).
+    Outputs: mean m/s, cov m²/s².
+    """
+
+    kernel: Any
+    inducing_m: jax.Array
+    alpha: jax.Array
+    projection: jax.Array
+    weights: jax.Array
+
+    @classmethod
+    def from_field(cls, field: Any) -> "PointPosterior":
+        """Precompute α, B and λ from a `FlowField` (one triangular inverse, one eigh)."""
+        params = field.params
+        chol = field.inducing_chol
+        eye = jnp.eye(chol.shape[0], dtype=chol.dtype)
+        inv_t = jax.scipy.linalg.solve_triangular(chol, eye, lower=True).T
+        alpha = jax.scipy.linalg.solve_triangular(chol.T, params.q_mean, lower=False)
+        s = params.q_sqrt
+        weights, vectors = jnp.linalg.eigh(eye - s @ s.T)
+        return cls(params.kernel, params.inducing_m, alpha, inv_t @ vectors, weights)
+
+    def mean_at(self, x: jax.Array) -> jax.Array:
+        """Posterior mean velocity at x (d,) m → (d,) m/s."""
+        return self.kernel.gram_matrix(x[None, :], self.inducing_m) @ self.alpha
+
+    def cov_at(self, x: jax.Array) -> jax.Array:
+        """Posterior velocity covariance at x (d,) m → (d, d) m²/s², symmetrised."""
+        g = self.kernel.gram_matrix(x[None, :], self.inducing_m) @ self.projection
+        cov = self.kernel.block(x, x) - (g * self.weights) @ g.T
+        return 0.5 * (cov + cov.T)
+
+
+def _field_drift(posterior: PointPosterior, x: jax.Array) -> jax.Array:
+    """μ(x) = posterior mean velocity at x (d,) -> (d,) m/s."""
+    return posterior.mean_at(x)
+
+
+def _field_diffusion(
+    posterior: PointPosterior, diffusivity_m2_s: jax.Array, decorrelation_time_s: jax.Array, x: jax.Array
+) -> jax.Array:
+    """D(x) = 2 (K I + τ Σ(x)), Σ(x) the posterior velocity covariance; x (d,) -> (d, d) m²/s."""
+    sigma = posterior.cov_at(x)
+    eye = jnp.eye(x.shape[-1], dtype=sigma.dtype)
+    return 2.0 * (diffusivity_m2_s * eye + decorrelation_time_s * sigma)
+
+
+def _check_nonnegative(value: Any, name: str) -> jax.Array:
+    """Return `value` as a float64 scalar, or raise InputError naming `name`."""
+    arr = np.asarray(value, dtype=float)
+    if arr.shape != () or not np.isfinite(arr) or arr < 0:
+        raise InputError(f"{name} must be one finite number >= 0, got {value!r}.")
+    return jnp.asarray(arr, dtype=jnp.float64)
+
+
+def sde_from_field(
+    field: Any,
+    *,
+    diffusivity_m2_s: float | None = None,
+    decorrelation_time_s: float | None = None,
+) -> SDE:
+    """The SDE of a particle in a fitted flow field.
+
+    μ(x) = field.mean_at(x) (m/s);  D(x) = 2 (K I + τ Σ(x)) (m²/s) with
+    Σ(x) = field.cov_between(x, x) the posterior velocity covariance (m²/s²).
+    K (`diffusivity_m2_s`, m²/s) and τ (`decorrelation_time_s`, s) default to
+    the field's own `diffusivity_m2_s` and `decorrelation_time_s`.
+
+    A field without a decorrelation time (None: not yet calibrated) gets τ = 0,
+    i.e. dispersion by K alone; pass `decorrelation_time_s` to add the spread
+    from velocity uncertainty.
+
+    The posterior is evaluated through `PointPosterior` (precomputed
+    projection, same values as field.mean_at / field.cov_between) and held as
+    pytree data inside `jax.tree_util.Partial`, so two fields of the same
+    shapes share one compiled propagator.
+    Raises InputError if K or τ is negative or not finite.
+    """
+    k = field.diffusivity_m2_s if diffusivity_m2_s is None else diffusivity_m2_s
+    tau = field.decorrelation_time_s if decorrelation_time_s is None else decorrelation_time_s
+    k = _check_nonnegative(k, "diffusivity_m2_s")
+    tau = _check_nonnegative(0.0 if tau is None else tau, "decorrelation_time_s")
+    posterior = PointPosterior.from_field(field)
+    return SDE(
+        drift=jax.tree_util.Partial(_field_drift, posterior),
+        diffusion=jax.tree_util.Partial(_field_diffusion, posterior, k, tau),
+    )
+
+
+@dataclass(frozen=True)
+class _Static:
+    """The non-array part of an SDE pytree: its structure and static leaves."""
+
+    treedef: Any
+    leaves: tuple[Hashable, ...]
+
+
+def _is_data(leaf: Any) -> bool:
+    return isinstance(leaf, (jax.Array, np.ndarray, np.generic, float, complex))
+
+
+def split_for_jit(sde: SDE) -> tuple[list[Any], _Static]:
+    """Split an SDE into (array leaves, hashable static part) for `jax.jit`.
+
+    Array and float leaves (e.g. the field's parameters inside a Partial) are
+    traced; everything else (plain functions, ints, flags) becomes part of the
+    static argument, so a second call with equal shapes does not recompile.
+    """
+    leaves, treedef = jax.tree_util.tree_flatten(sde)
+    dynamic = [leaf if _is_data(leaf) else None for leaf in leaves]
+    static = tuple(None if _is_data(leaf) else leaf for leaf in leaves)
+    return dynamic, _Static(treedef, static)
+
+
+def join_from_jit(dynamic: list[Any], static: _Static) -> SDE:
+    """Inverse of `split_for_jit`."""
+    leaves = [d if s is None else s for d, s in zip(dynamic, static.leaves)]
+    return jax.tree_util.tree_unflatten(static.treedef, leaves)
+
+
+# =====================================================================================
+# Calibration of K and τ from observed transitions (skill/calibration section; appended,
+# the code above belongs to the SDE/propagation work)
+# =====================================================================================
+#
+# For a fix x_i at t_i and a later fix of the same track at t_i + λ (lag λ), the moment
+# propagator started from N(x_i, σ² I) gives N(m_λ, P_λ) for the true position; the later
+# fix is that position plus N(0, σ² I) error, so
+#
+#     log p(x_j | x_i; K, τ) = log N(x_j | m_λ(K, τ), P_λ(K, τ) + σ² I).
+#
+# The calibration maximises the mean of these over every start fix and every lag in
+# ``lags_s`` (a composite likelihood: overlapping windows are treated as independent, which
+# leaves the maximiser consistent but makes the curvature-based spread too small; it is
+# reported as a rough guide only).  The search runs over θ = (log K, log τ) with L-BFGS-B
+# (scipy.optimize.minimize) inside bounds, with the exact gradient of the jitted objective
+# from jax.  The gradient is forward-mode (jax.jacfwd): the RK4/Dopri5 loops have data-
+# dependent trip counts (while loops), which reverse mode cannot differentiate, and with
+# two parameters forward mode costs about as much as one reverse pass anyway.
+#
+# K and τΣ(x) enter D(x) = 2(K I + τ Σ(x)) additively, so they are told apart only by the
+# spatial variation of the posterior covariance Σ(x): where Σ is nearly uniform the data fix
+# K + τ Σ and not each alone, and ``info["log_std"]`` shows it as a large spread of log τ.
+
+from functools import partial as _partial  # noqa: E402  (this section's own import)
+
+CALIBRATION_LAGS_S = (3600.0, 3 * 3600.0, 6 * 3600.0, 12 * 3600.0)
+CALIBRATION_BOUNDS = {"diffusivity_m2_s": (1e-3, 1e4), "decorrelation_time_s": (1.0, 30 * 86400.0)}
+
+
+def _posterior_of(field: Any) -> Any:
+    """The single-point posterior (pytree with mean_at, cov_at) of a FlowField, or the object itself."""
+    if hasattr(field, "cov_at") and hasattr(field, "mean_at"):
+        return field
+    return PointPosterior.from_field(field)
+
+
+def transport_sde(posterior: Any, diffusivity_m2_s: jax.Array, decorrelation_time_s: jax.Array) -> SDE:
+    """The field SDE with K and τ as (possibly traced) jax scalars, no input checks (for jit/grad)."""
+    return SDE(
+        drift=jax.tree_util.Partial(_field_drift, posterior),
+        diffusion=jax.tree_util.Partial(_field_diffusion, posterior, diffusivity_m2_s, decorrelation_time_s),
+    )
+
+
+def _mean_transition_log_likelihood(theta, posterior, method, integrator, chunk, means0, covs0, times_s,
+                                    observed, obs_var, weight):
+    """Mean of log N(x_obs | m(λ), P(λ) + obs_var I) over weighted (start, lag) pairs; θ = (log K, log τ)."""
+    from .moments import _propagate_one
+
+    sde = transport_sde(posterior, jnp.exp(theta[0]), jnp.exp(theta[1]))
+
+    def one(release):
+        return _propagate_one(sde, method, integrator, release[0], release[1], times_s)
+
+    means, covs = jax.vmap(one)((means0, covs0)) if chunk >= means0.shape[0] else \
+        jax.lax.map(one, (means0, covs0), batch_size=chunk)
+    d = means0.shape[-1]
+    total = covs[:, 1:] + obs_var[..., None, None] * jnp.eye(d)
+    resid = observed - means[:, 1:]
+    chol = jnp.linalg.cholesky(total)
+    z = jax.scipy.linalg.solve_triangular(chol, resid[..., None], lower=True)[..., 0]
+    logdet = 2.0 * jnp.sum(jnp.log(jnp.diagonal(chol, axis1=-2, axis2=-1)), axis=-1)
+    logp = -0.5 * (jnp.sum(z * z, axis=-1) + logdet + d * jnp.log(2.0 * jnp.pi))
+    return jnp.sum(jnp.where(weight > 0, logp, 0.0) * weight) / jnp.sum(weight)
+
+
+@_partial(jax.jit, static_argnames=("method", "chunk"))
+def _value_and_grad(theta, posterior, method, integrator, chunk, means0, covs0, times_s, observed, obs_var, weight):
+    """(−mean log likelihood, its gradient in θ), forward mode."""
+    def f(th):
+        value = -_mean_transition_log_likelihood(th, posterior, method, integrator, chunk, means0, covs0,
+                                                 times_s, observed, obs_var, weight)
+        return value, value
+
+    grad, value = jax.jacfwd(f, has_aux=True)(theta)
+    return value, grad
+
+
+@dataclass(frozen=True)
+class Transitions:
+    """Start fixes and later fixes at the calibration lags.
+
+    ``start_m`` (R, d) start fixes, ``times_s`` (1 + L,) = (0, lags), ``observed_m`` (R, L, d)
+    the track at t_start + lag (linear interpolation between fixes, NaN where the track ends),
+    ``obs_var_m2`` (R, L) its error variance per component, ``weight`` (R, L) 1 where observed.
+    """
+
+    start_m: np.ndarray
+    times_s: np.ndarray
+    observed_m: np.ndarray
+    obs_var_m2: np.ndarray
+    weight: np.ndarray
+
+
+def _tracks_from_observations(obs) -> Any:
+    """Rebuild the fixes behind finite-difference observations: x_a = mid − v Δt/2, x_b = mid + v Δt/2."""
+    from .tracks import Tracks
+
+    idx = np.asarray(obs.track_index)
+    half = 0.5 * np.asarray(obs.velocity_m_s) * np.asarray(obs.dt_s)[:, None]
+    first = np.asarray(obs.position_m) - half
+    last_of_track = np.r_[idx[1:] != idx[:-1], True]
+    pos = np.concatenate([first, (np.asarray(obs.position_m) + half)[last_of_track]])
+    time = np.concatenate([np.asarray(obs.time_s) - 0.5 * np.asarray(obs.dt_s),
+                           (np.asarray(obs.time_s) + 0.5 * np.asarray(obs.dt_s))[last_of_track]])
+    ids = np.concatenate([idx, idx[last_of_track]])
+    order = np.lexsort((time, ids))
+    return Tracks(track_id=np.array([str(i) for i in ids[order]], dtype=object), time_s=time[order],
+                  position_m=pos[order], source="observations")
+
+
+def transitions_from_tracks(tracks_or_observations, *, lags_s=CALIBRATION_LAGS_S, position_error_m: float,
+                            max_starts: int | None = 600) -> Transitions:
+    """Every fix (after a track's first) as a start, with the same track at each lag later.
+
+    At most ``max_starts`` starts, evenly spaced over all of them (deterministic).  Accepts
+    Tracks or the Observations made from them.
+    """
+    from .skill import forecast_windows
+
+    data = tracks_or_observations
+    if hasattr(data, "velocity_m_s") and hasattr(data, "dt_s"):
+        data = _tracks_from_observations(data)
+    lags = np.sort(np.asarray(lags_s, dtype=float))
+    win = forecast_windows(data, lags, step_s=float(lags.max()), max_starts=max_starts)
+    keep = np.searchsorted(win.times_s, lags)
+    valid = win.valid[:, keep]
+    observed = np.where(valid[..., None], win.observed_m[:, keep], 0.0)
+    obs_var = position_error_m**2 * win.obs_var_factor[:, keep] + 1e-6
+    return Transitions(win.start_m, np.concatenate([[0.0], lags]), observed, obs_var, valid.astype(float))
+
+
+def calibrate_transport(field: Any, tracks_or_observations, *, lags_s=CALIBRATION_LAGS_S,
+                        position_error_m: float | None = None, method: Any = None, integrator: Any = None,
+                        max_starts: int | None = 600, initial: tuple[float, float] | None = None,
+                        chunk: int = 4096) -> tuple[float, float, dict[str, Any]]:
+    """Estimate the eddy diffusivity K (m²/s) and decorrelation time τ (s) from fit-set transitions.
+
+    Maximises the mean transition log likelihood of the section comment above over
+    θ = (log K, log τ) with L-BFGS-B inside ``CALIBRATION_BOUNDS``, starting from ``initial``
+    (default: the field's K and τ, or ℓ-free guesses 1 m²/s, 1 h).  ``field`` is a FlowField
+    (or any pytree with ``mean_at(x)``/``cov_at(x)``, e.g. a known analytic field in tests);
+    ``position_error_m`` defaults to the field's.  Use the fit set only: calibrating on
+    held-out tracks would leak them into the score.  Returns (K, τ, info) with the optimiser's
+    record, the number of transitions and rough log-space standard errors.
+    """
+    from scipy.optimize import minimize
+
+    from .moments import RK4, SphericalCubature
+
+    method = SphericalCubature() if method is None else method
+    integrator = RK4(step_s=1800.0) if integrator is None else integrator
+    sigma = _calibration_sigma(field, position_error_m)
+    trans = transitions_from_tracks(tracks_or_observations, lags_s=lags_s, position_error_m=sigma,
+                                    max_starts=max_starts)
+    posterior = _posterior_of(field)
+    d = trans.start_m.shape[1]
+    args = (posterior, method, integrator, int(min(chunk, trans.start_m.shape[0])),
+            jnp.asarray(trans.start_m), jnp.asarray(np.broadcast_to(sigma**2 * np.eye(d), (trans.start_m.shape[0], d, d))),
+            jnp.asarray(trans.times_s), jnp.asarray(trans.observed_m), jnp.asarray(trans.obs_var_m2),
+            jnp.asarray(trans.weight))
+
+    def fun(theta):
+        value, grad = _value_and_grad(jnp.asarray(theta), *args)
+        return float(value), np.asarray(grad, dtype=float)
+
+    theta0 = np.log(_initial_transport(field, initial))
+    bounds = [tuple(np.log(CALIBRATION_BOUNDS[k])) for k in ("diffusivity_m2_s", "decorrelation_time_s")]
+    theta0 = np.clip(theta0, [b[0] for b in bounds], [b[1] for b in bounds])
+    result = minimize(fun, theta0, jac=True, method="L-BFGS-B", bounds=bounds,
+                      options={"maxiter": 60, "ftol": 1e-10, "gtol": 1e-7})
+    k, tau = (float(v) for v in np.exp(result.x))
+    n = int(trans.weight.sum())
+    info = {"diffusivity_m2_s": k, "decorrelation_time_s": tau,
+            "mean_log_likelihood": -float(result.fun), "n_transitions": n, "n_starts": int(trans.start_m.shape[0]),
+            "lags_s": [float(v) for v in trans.times_s[1:]], "position_error_m": sigma,
+            "converged": bool(result.success), "iterations": int(result.nit), "message": str(result.message),
+            "initial": {"diffusivity_m2_s": float(np.exp(theta0[0])), "decorrelation_time_s": float(np.exp(theta0[1]))},
+            "at_bound": _at_bounds(result.x, bounds),
+            "log_std": _log_std(fun, result.x, n),
+            "method": type(method).__name__, "objective": "mean Gaussian transition log likelihood (composite)"}
+    return k, tau, info
+
+
+def _calibration_sigma(field: Any, position_error_m: float | None) -> float:
+    sigma = getattr(field, "position_error_m", None) if position_error_m is None else position_error_m
+    if sigma is None:
+        raise InputError("calibration needs the position error of a fix: give position_error_m (m)")
+    sigma = float(sigma)
+    if not (np.isfinite(sigma) and sigma >= 0):
+        raise InputError(f"position_error_m must be a finite number of metres >= 0, got {sigma!r}")
+    return sigma
+
+
+def _initial_transport(field: Any, initial: tuple[float, float] | None) -> np.ndarray:
+    if initial is not None:
+        return np.maximum(np.asarray(initial, dtype=float), 1e-3)
+    k = getattr(field, "diffusivity_m2_s", None)
+    tau = getattr(field, "decorrelation_time_s", None)
+    return np.array([1.0 if k is None else max(float(k), 1e-3), 3600.0 if tau is None else max(float(tau), 1.0)])
+
+
+def _at_bounds(theta: np.ndarray, bounds) -> dict[str, bool]:
+    names = ("diffusivity_m2_s", "decorrelation_time_s")
+    return {n: bool(min(abs(t - lo), abs(t - hi)) < 1e-6) for n, t, (lo, hi) in zip(names, theta, bounds)}
+
+
+def _log_std(fun: Callable, theta: np.ndarray, n: int) -> dict[str, float]:
+    """Rough standard errors of log K and log τ from the curvature of the total negative log likelihood.
+
+    Hessian by central differences of the exact gradient; √diag of its inverse, or, when the
+    Hessian is (nearly) singular, 1/√H_ii for the identified parameter and inf for the other.
+    """
+    step = 1e-3
+    hess = np.empty((2, 2))
+    for j in range(2):
+        e = np.zeros(2)
+        e[j] = step
+        hess[:, j] = (fun(theta + e)[1] - fun(theta - e)[1]) / (2 * step)
+    hess = n * 0.5 * (hess + hess.T)
+    diag = np.diag(hess)
+    det = np.linalg.det(hess)
+    if np.all(diag > 0) and det > 1e-8 * diag[0] * diag[1]:
+        std = np.sqrt(np.diag(np.linalg.inv(hess)))
+    else:
+        std = np.where(diag > 1e-8 * max(diag.max(), 1e-300), 1.0 / np.sqrt(np.abs(diag) + 1e-300), np.inf)
+    return {"log_diffusivity": float(std[0]), "log_decorrelation_time": float(std[1])}

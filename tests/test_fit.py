@@ -1,0 +1,240 @@
+"""The training loop: closed-form q updates, determinism, checkpoint/resume, NaN handling, the CLI.
+
+Outside references: the optimal q accumulated over chunks must equal the
+one-batch closed form (Titsias 2009, eq. 10: Λ = I + Φᵀ R⁻¹ Φ is a sum over
+observations), natural parameters must invert like numpy's dense inverse, and
+plateau detection is checked on hand-made histories.
+"""
+
+from __future__ import annotations
+
+import json
+import sys
+
+import numpy as np
+import pytest
+
+import driftwise
+from driftwise import field as fld
+from driftwise.errors import InputError
+from driftwise.synthetic import TaylorGreen, simulate_drifters
+from driftwise.tracks import tracks_from_frame
+
+fitmod = sys.modules["driftwise.fit"]  # driftwise.fit is the function; the module lives here
+
+
+def _tracks(n_tracks=12, hours=4.0, seed=3):
+    rng = np.random.default_rng(seed)
+    starts = rng.uniform(0.0, 2000.0, (n_tracks, 2))
+    frame = simulate_drifters(TaylorGreen(0.2, 1000.0), starts, duration_s=hours * 3600.0, fix_interval_s=600.0,
+                              diffusivity_m2_s=1.0, position_error_m=5.0, seed=seed)
+    return tracks_from_frame(frame)
+
+
+@pytest.fixture(scope="module")
+def tracks():
+    return _tracks()
+
+
+SMALL = dict(inducing=12, position_error_m=5.0, progress=False)
+
+
+# ------------------------------------------------------------------- closed-form q pieces
+def test_natural_parameters_invert_like_numpy():
+    rng = np.random.default_rng(0)
+    size = 10
+    sqrt = np.tril(0.3 * rng.standard_normal((size, size)), -1) + np.diag(rng.uniform(0.3, 1.5, size))
+    mean = rng.standard_normal(size)
+    lam, eta = fitmod.natural_from_q(mean, sqrt)
+    cov = sqrt @ sqrt.T
+    np.testing.assert_allclose(lam, np.linalg.inv(cov), rtol=1e-10, atol=1e-10)  # numpy dense inverse
+    np.testing.assert_allclose(eta, np.linalg.solve(cov, mean), rtol=1e-10, atol=1e-10)
+    mean2, sqrt2 = fitmod.q_from_natural(lam, eta)
+    np.testing.assert_allclose(mean2, mean, rtol=1e-9, atol=1e-10)
+    np.testing.assert_allclose(np.asarray(sqrt2) @ np.asarray(sqrt2).T, cov, rtol=1e-9, atol=1e-10)
+    assert np.allclose(np.triu(np.asarray(sqrt2), 1), 0.0, rtol=0.0, atol=0.0)
+
+
+def test_chunked_optimal_q_equals_one_batch_closed_form(tracks, monkeypatch):
+    obs = driftwise.velocity_observations(tracks, position_error_m=5.0)
+    batch = fld.batch_from_observations(obs)
+    z = fitmod.initial_inducing(np.asarray(batch.position_m), 10, seed=0)
+    params = fld.init_params("helmholtz", 2, z, velocity_scale_m_s=0.15, length_scale_m=600.0,
+                             diffusivity_m2_s=1.0, noise_floor_m_s=0.01)
+    whole = fld.optimal_q(params, batch)
+    monkeypatch.setattr(fitmod, "CHUNK", 50)  # several chunks of unequal size
+    assert len(fitmod._chunks(obs.n)) > 2
+    chunked = fitmod.exact_q(params, batch, jitter_multiple=fld.JITTER_MULTIPLE)
+    # Titsias (2009): Λ = I + Σ_n Φ_nᵀ R_n⁻¹ Φ_n, η = Σ_n Φ_nᵀ R_n⁻¹ y_n, so chunk sums must agree.
+    np.testing.assert_allclose(chunked.q_mean, whole.q_mean, rtol=1e-8, atol=1e-10)
+    np.testing.assert_allclose(chunked.q_sqrt @ chunked.q_sqrt.T, whole.q_sqrt @ whole.q_sqrt.T, rtol=1e-8, atol=1e-12)
+    e_whole = float(fld.elbo(whole, batch, obs.n))
+    e_chunk = fitmod.full_elbo(chunked, batch, jitter_multiple=fld.JITTER_MULTIPLE)
+    assert e_chunk == pytest.approx(e_whole, rel=1e-10, abs=1e-8)
+
+
+def test_plateau_rule():
+    rising = tuple(float(v) for v in np.linspace(-1000.0, 0.0, 40))
+    flat = tuple(-10.0 + 1e-6 * i for i in range(40))
+    assert not fitmod._plateau(rising, 10, 100)
+    assert fitmod._plateau(flat, 10, 100)
+    assert not fitmod._plateau(flat[:19], 10, 100)       # needs two full windows
+    assert not fitmod._plateau(flat[:35], 10, 100)       # checked at window ends only
+
+
+def test_initial_inducing_is_seeded_kmeans():
+    points = np.random.default_rng(1).uniform(0.0, 1000.0, (500, 2))
+    a = fitmod.initial_inducing(points, 20, seed=4)
+    b = fitmod.initial_inducing(points, 20, seed=4)
+    c = fitmod.initial_inducing(points, 20, seed=5)
+    np.testing.assert_array_equal(a, b)
+    assert a.shape == (20, 2) and not np.array_equal(a, c)
+    assert np.all((a > 0.0) & (a < 1000.0))
+    few = fitmod.initial_inducing(points[:5], 20, seed=0)   # fewer distinct places than M
+    assert few.shape == (5, 2)
+
+
+# ------------------------------------------------------------------------ the loop
+@pytest.mark.parametrize("q_update", ["natural", "adam"])
+def test_resume_after_interrupt_ends_at_the_same_elbo(tracks, tmp_path, monkeypatch, q_update):
+    options = dict(SMALL, steps=30, patience=1000, batch_size=64, q_update=q_update, seed=7)
+    straight = driftwise.fit(tracks, **options)
+    checkpoint = tmp_path / "run.ckpt.npz"
+    real_advance = fitmod._advance
+
+    def interrupt_at_23(state, *args, **kwargs):
+        if state.step == 23:
+            raise KeyboardInterrupt
+        return real_advance(state, *args, **kwargs)
+
+    monkeypatch.setattr(fitmod, "_advance", interrupt_at_23)
+    with pytest.raises(KeyboardInterrupt):
+        driftwise.fit(tracks, checkpoint=checkpoint, **options)
+    monkeypatch.setattr(fitmod, "_advance", real_advance)
+    with np.load(checkpoint, allow_pickle=False) as saved:
+        assert json.loads(str(saved["meta"]))["step"] == 23
+    resumed = driftwise.fit(tracks, checkpoint=checkpoint, resume=True, **options)
+    a, b = fitmod.fit_summary(straight), fitmod.fit_summary(resumed)
+    assert a["steps"] == b["steps"] == 30
+    assert b["elbo"] == pytest.approx(a["elbo"], rel=1e-6, abs=1e-6)
+    np.testing.assert_allclose(b["elbo_history"], a["elbo_history"], rtol=1e-9, atol=1e-9)
+    np.testing.assert_allclose(resumed.params.q_mean, straight.params.q_mean, rtol=1e-8, atol=1e-10)
+
+
+def test_same_seed_same_fit_and_checkpoint_mismatch_is_refused(tracks, tmp_path):
+    options = dict(SMALL, steps=6, patience=1000, batch_size=64)
+    a = driftwise.fit(tracks, seed=1, **options)
+    b = driftwise.fit(tracks, seed=1, checkpoint=tmp_path / "c.npz", **options)
+    assert fitmod.fit_summary(a)["elbo"] == pytest.approx(fitmod.fit_summary(b)["elbo"], rel=1e-12, abs=0.0)
+    with pytest.raises(InputError, match="different fit"):
+        driftwise.fit(tracks, seed=2, checkpoint=tmp_path / "c.npz", resume=True, **options)
+
+
+def test_converges_early_on_a_plateau_and_records_history(tracks):
+    field = driftwise.fit(tracks, steps=400, patience=10, **SMALL)
+    info = fitmod.fit_summary(field)
+    assert info["converged"] and info["steps"] < 400 and info["steps"] % 10 == 0
+    assert len(info["elbo_history"]) == info["steps"]
+    history = np.asarray(info["elbo_history"])
+    assert np.all(np.isfinite(history)) and history[-1] > history[0]
+    assert info["decorrelation_time_source"] == "length_scale/rms_speed"
+    assert field.decorrelation_time_s == pytest.approx(info["length_scale_m"] / info["rms_speed_m_s"], rel=1e-12)
+    assert field.data_summary["n_tracks"] == 12 and field.data_summary["n_observations"] == info["n_observations"] \
+        if "n_observations" in info else field.data_summary["n_tracks"] == 12
+
+
+def test_non_finite_step_is_retried_with_more_jitter_and_smaller_step(tracks, monkeypatch):
+    real_step = fitmod._step
+    calls = {"n": 0}
+
+    def flaky(*args, **kwargs):
+        calls["n"] += 1
+        params, state, value, ok = real_step(*args, **kwargs)
+        return params, state, value, ok & (calls["n"] not in (3, 4))  # step 2 fails twice
+
+    monkeypatch.setattr(fitmod, "_step", flaky)
+    field = driftwise.fit(tracks, steps=5, patience=1000, learning_rate=0.04, **SMALL)
+    info = fitmod.fit_summary(field)
+    assert info["steps"] == 5
+    assert field.jitter_multiple == pytest.approx(1e10, rel=1e-12)       # two retries: 1e6 → 1e8 → 1e10
+    assert info["learning_rate_final"] == pytest.approx(0.02, rel=1e-12)  # halved on the second retry
+
+
+def test_persistent_non_finite_step_raises_a_clear_error(tracks, monkeypatch):
+    real_step = fitmod._step
+
+    def always_bad(*args, **kwargs):
+        params, state, value, ok = real_step(*args, **kwargs)
+        return params, state, value, ok & False
+
+    monkeypatch.setattr(fitmod, "_step", always_bad)
+    with pytest.raises(RuntimeError, match="non-finite at step 0 after 6 retries"):
+        driftwise.fit(tracks, steps=3, **SMALL)
+
+
+def test_bad_options_and_data_are_input_errors(tracks):
+    with pytest.raises(InputError, match="unknown kernel"):
+        driftwise.fit(tracks, "swirly", **SMALL)
+    with pytest.raises(InputError, match="inducing must be an integer"):
+        driftwise.fit(tracks, inducing=0, progress=False)
+    with pytest.raises(InputError, match="at least 3 velocity observations"):
+        driftwise.fit(tracks.select([tracks.unique_ids[0]]).__class__(
+            track_id=tracks.track_id[:3], time_s=tracks.time_s[:3], position_m=tracks.position_m[:3]), **SMALL)
+    with pytest.raises(InputError, match="Tracks or Observations"):
+        driftwise.fit(np.zeros((5, 2)), **SMALL)
+
+
+def test_progress_bar_stays_off_when_not_a_terminal(tracks, capsys):
+    driftwise.fit(tracks, steps=2, progress=True, inducing=12, position_error_m=5.0)
+    captured = capsys.readouterr()
+    assert captured.out == "" and "driftwise fit" not in captured.err
+
+
+# ------------------------------------------------------------------------ the command line
+@pytest.fixture(scope="module")
+def tracks_csv(tmp_path_factory):
+    rng = np.random.default_rng(11)
+    frame = simulate_drifters(TaylorGreen(0.2, 1000.0), rng.uniform(0.0, 2000.0, (10, 2)), duration_s=3 * 3600.0,
+                              fix_interval_s=600.0, diffusivity_m2_s=1.0, position_error_m=5.0, seed=11)
+    path = tmp_path_factory.mktemp("cli") / "tracks.csv"
+    frame.to_csv(path, index=False)
+    return path
+
+
+def test_cli_fit_json_contract(tracks_csv, tmp_path, run_cli):
+    out = tmp_path / "model.npz"
+    code, stdout, err = run_cli("fit", tracks_csv, "--out", out, "--inducing", "10", "--position-error", "5m",
+                                "--kernel", "divergence-free", "--json")
+    assert code == 0, err
+    report = json.loads(stdout)
+    for key in ("kernel", "n_tracks", "n_observations", "elbo", "hyperparameters", "diffusivity_m2_s",
+                "decorrelation_time_s"):
+        assert key in report
+    assert report["kernel"] == "divergence-free" and report["n_tracks"] == 10 and report["n_observations"] == 10 * 18
+    assert report["decorrelation_time_source"] == "length_scale/rms_speed"
+    model = driftwise.load(out)
+    assert model.diffusivity_m2_s == pytest.approx(report["diffusivity_m2_s"], rel=1e-12)
+    assert fitmod.fit_summary(model)["elbo"] == pytest.approx(report["elbo"], rel=1e-12)
+    assert not (tmp_path / "model.ckpt.npz").exists()  # the checkpoint goes once the model is written
+
+
+def test_cli_fit_human_summary(tracks_csv, tmp_path, run_cli):
+    code, stdout, _ = run_cli("fit", tracks_csv, "--out", tmp_path / "m.npz", "--inducing", "10", "--quiet")
+    assert code == 0
+    assert "helmholtz kernel" in stdout and "wrote" in stdout and "decorrelation time" in stdout
+
+
+@pytest.mark.parametrize("argv, message", [
+    (["--inducing", "0"], "--inducing must be a positive integer"),
+    (["--position-error", "ten"], "--position-error"),
+    (["--kernel", "swirly"], "invalid choice"),
+    (["--seed", "-1"], "--seed must be a non-negative integer"),
+])
+def test_cli_fit_bad_options_exit_2(tracks_csv, tmp_path, run_cli, argv, message):
+    code, stdout, err = run_cli("fit", tracks_csv, "--out", tmp_path / "m.npz", *argv)
+    assert code == 2 and stdout == "" and message in err and "Traceback" not in err
+
+
+def test_cli_fit_missing_tracks_file_exits_2(tmp_path, run_cli):
+    code, _, err = run_cli("fit", tmp_path / "none.csv", "--out", tmp_path / "m.npz")
+    assert code == 2 and "none.csv" in err and "Traceback" not in err
