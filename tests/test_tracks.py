@@ -71,7 +71,8 @@ def test_far_edge_stretch_is_measured_and_warned(radius_m):
     measured = np.linalg.norm(xy[0] - xy[1]) / across - 1
     np.testing.assert_allclose(projection_stretch(radius_m), measured, rtol=0.01)  # sphere vs WGS 84: ~0.2 %
     table = pd.DataFrame({"id": ["A", "A", "B", "B"], "time": [0.0, 1e6, 0.0, 1e6],
-                          "lon": [lon[0], lon[0] + 0.01, lon[2], lon[2] + 0.01], "lat": [lat[0], lat[0], lat[2], lat[2]]})
+                          "lon": [lon[0], lon[0] + 0.01, lon[2], lon[2] + 0.01],
+                          "lat": [lat[0], lat[0], lat[2], lat[2]]})
     with pytest.warns(ProjectionWarning, match=r"reach \d+ km .* by up to (\d+\.\d+) %") as record:
         tracks_from_frame(table)
     stated = float(str(record[0].message).split("up to ")[1].split(" %")[0])
@@ -133,7 +134,8 @@ def test_random_walk_velocity_variance_is_2K_over_dt(dim):
 
 
 def test_position_error_adds_2sigma2_over_dt2_and_anticorrelates_neighbours():
-    # white position noise σ on each fix: Var(Δx/Δt) = 2K/Δt + 2σ²/Δt², Cov(neighbours) = −σ²/Δt² (common practice)
+    # white position noise σ on each fix: Var(Δx/Δt) = 2K/Δt + 2σ²/Δt², Cov(neighbours) = −σ²/Δt²
+    # (variance of a difference of independent errors; common practice)
     k, dt, sigma = 1.0, 60.0, 10.0
     table = random_walk(500, 41, fix_interval_s=dt, diffusivity_m2_s=k, seed=5, position_error_m=sigma)
     obs = velocity_observations(tracks_from_frame(table), position_error_m=sigma)
@@ -194,7 +196,7 @@ def test_dataframe_with_typed_columns():
     tracks = tracks_from_frame(table)
     assert tracks.unique_ids.tolist() == ["12", "7"] and tracks.time_is_absolute
     np.testing.assert_array_equal(tracks.time_s, [1717394400, 1717396200, 1717394400, 1717398000])
-    with pytest.warns(TrackNotice, match="no time zone"):
+    with pytest.warns(TrackNotice, match="without a time zone"):
         naive = tracks_from_frame(table.assign(timestamp=stamps.tz_localize(None)))
     np.testing.assert_array_equal(naive.time_s, tracks.time_s)
     with pytest.raises(TrackError, match=r"row 4, column 'x_m': the value is missing \(NaN\)"):
@@ -220,6 +222,26 @@ def test_chunked_csv_matches_whole_and_keeps_row_numbers(write_file, monkeypatch
     with pytest.raises(TrackError, match="mixes time formats: row 2 has numeric seconds") as info:
         read_tracks(path)
     assert info.value.row == 121
+
+
+def test_mixed_extra_column_across_chunks_is_text(write_file, monkeypatch):
+    monkeypatch.setattr(trackfile, "CSV_CHUNK_ROWS", 3)
+    rows = "".join(f"A,{60 * i},{i},0,{'late' if i == 7 else i}\n" for i in range(9))
+    tracks = read_tracks(write_file("t.csv", "track_id,time,x,y,note\n" + rows))
+    assert tracks.extra["note"].dtype == object
+    assert tracks.extra["note"].tolist() == ["0", "1", "2", "3", "4", "5", "6", "late", "8"]
+
+
+def test_package_exports_and_error_types():
+    import driftwise
+    from driftwise.errors import InputError
+
+    for name in ("read_tracks", "Tracks", "Frame", "TrackError", "velocity_observations", "Observations"):
+        assert name in driftwise.__all__ and hasattr(driftwise, name)
+    assert issubclass(driftwise.TrackError, InputError) and issubclass(driftwise.TrackError, ValueError)
+    err = driftwise.TrackError("a.csv", "the value is empty", row=4, column="x")
+    assert str(err) == "a.csv, row 4, column 'x': the value is empty"
+    assert (err.file, err.row, err.column, err.problem) == ("a.csv", 4, "x", "the value is empty")
 
 
 # ---------------------------------------------------------------- round trips

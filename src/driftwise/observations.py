@@ -63,7 +63,10 @@ class Observations:
         return 2.0 * self.position_error_m**2 / self.dt_s**2
 
     def noise_variance_m2_s2(self, diffusivity_m2_s: float, floor_m2_s2: float = 0.0) -> np.ndarray:
-        """(n,) R_n per component: 2K/Δt + 2σ_pos²/Δt² + σ₀², with K = ``diffusivity_m2_s``, σ₀² = ``floor_m2_s2``."""
+        """(n,) R_n per component: 2K/Δt + 2σ_pos²/Δt² + σ₀².
+
+        K = ``diffusivity_m2_s`` (m²/s), σ₀² = ``floor_m2_s2`` (m²/s²).
+        """
         return self.random_walk_coefficient_s_inv * diffusivity_m2_s + self.position_noise_var_m2_s2 + floor_m2_s2
 
 

@@ -60,7 +60,7 @@ class UniformFlow:
 
 @dataclass(frozen=True)
 class LambOseenVortex:
-    """Lamb–Oseen vortex: u_θ(r) = Γ/(2πr)(1 − e^{−r²/r_c²}), ω(r) = Γ/(π r_c²) e^{−r²/r_c²}, ∇·u = 0.
+    """Lamb–Oseen vortex: u_θ(r) = Γ/(2πr)(1 − e^{−r²/r_c²}), ω = Γ/(π r_c²) e^{−r²/r_c²}, ∇·u = 0.
 
     ``circulation_m2_s`` Γ (positive: counter-clockwise), ``core_radius_m`` r_c,
     ``center_m`` the axis.  The far field is the point vortex Γ/(2πr).
@@ -250,7 +250,8 @@ def simulate_drifters(field, starts_m, *, duration_s: float, fix_interval_s: flo
     for j in range(1, m):
         h = (times[:, j] - times[:, j - 1]) / substeps
         for _ in range(substeps):
-            x = x + field.velocity(x) * h[:, None] + np.sqrt(2 * diffusivity_m2_s * h)[:, None] * rng.standard_normal((k, 2))
+            noise = np.sqrt(2 * diffusivity_m2_s * h)[:, None] * rng.standard_normal((k, 2))
+            x = x + field.velocity(x) * h[:, None] + noise
         path[:, j] = x
     fixes = path + position_error_m * rng.standard_normal(path.shape)
     width = max(3, len(str(k)))
@@ -358,7 +359,8 @@ and no instrument recorded these fixes. They are simulated drifters for trying d
 
 Columns: `track_id`, `time` (ISO-8601, UTC), `lon`, `lat` (degrees, WGS 84). The bay is placed at sea
 around {abs(s.lat0_deg):g}°{"N" if s.lat0_deg >= 0 else "S"} {abs(s.lon0_deg):g}°{"W" if s.lon0_deg < 0 else "E"}; the true flow below is written in metres of the
-azimuthal-equidistant frame centred there (x east, y north).
+azimuthal-equidistant frame centred there (x east, y north), `driftwise.Frame("lonlat", {s.lon0_deg:g}, {s.lat0_deg:g})`.
+`read_tracks` centres its own frame on the data, so compare positions through lon/lat.
 
 ## True parameters
 - Flow (steady): `driftwise.synthetic.DemoBay()` =

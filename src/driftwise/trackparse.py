@@ -18,7 +18,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from .trackfile import TrackError
-from .trackqc import QCAction
+from .trackqc import QCAction, plural
 
 ROLE_NAMES = {
     "track_id": ("track_id", "trackid", "track", "trajectory_id", "trajectory", "traj", "drifter_id", "drifter",
@@ -123,7 +123,8 @@ class TableParser:
         if len(chunk) == 0:
             return
         lay = self.layout
-        part = {"rows": rows, "codes": self._codes(chunk[lay.track_id], rows), "time": self._time(chunk[lay.time], rows)}
+        part = {"rows": rows, "codes": self._codes(chunk[lay.track_id], rows),
+                "time": self._time(chunk[lay.time], rows)}
         part["coords"] = np.column_stack([self._number(chunk[c], rows, c) for c in lay.coords])
         if lay.lonlat:
             _check_range(part["coords"][:, 0], rows, -180.0, 360.0, self.file, lay.coords[0], "longitude")
@@ -157,8 +158,10 @@ class TableParser:
         lookup = np.array([self._labels.setdefault(str(u), len(self._labels)) for u in uniques], dtype=np.int64)
         return lookup[local]
 
-    def _number(self, series: pd.Series, rows: np.ndarray, column: str, *, allow_empty: bool = False):
-        values, empty = _to_float(series, decimal_comma=self.decimal_comma)
+    def _number(self, series: pd.Series, rows: np.ndarray, column: str, *, allow_empty: bool = False,
+                parsed: tuple[np.ndarray, np.ndarray] | None = None) -> np.ndarray:
+        """Finite float64 values of ``series`` (NaN for empty fields when ``allow_empty``), else a TrackError."""
+        values, empty = parsed or _to_float(series, decimal_comma=self.decimal_comma)
         bad = ~np.isfinite(values)
         if allow_empty:
             bad &= ~empty
@@ -191,7 +194,7 @@ class TableParser:
         if isinstance(series.dtype, pd.DatetimeTZDtype) or series.dtype.kind == "M":
             return self._datetimes(series, rows, from_text=None)
         if series.dtype.kind in "iuf":
-            self._set_kind("seconds", int(rows[0]), rows, column)
+            self._set_kind("seconds", int(rows[0]), column)
             seconds = self._number(series, rows, column)
             self._negative += int(np.count_nonzero(seconds < 0))
             return seconds
@@ -199,23 +202,24 @@ class TableParser:
         empty = (text == "").to_numpy()
         if empty.any():
             raise TrackError(self.file, "the time is empty", row=int(rows[np.argmax(empty)]), column=column)
-        kind = self._time_kind[0] if self._time_kind else ("seconds" if _is_number(text.iloc[0]) else "absolute")
-        self._set_kind(kind, int(rows[0]), rows, column)
+        first = text.iloc[0].replace(",", ".") if self.decimal_comma else text.iloc[0]
+        kind = self._time_kind[0] if self._time_kind else ("seconds" if _is_number(first) else "absolute")
+        self._set_kind(kind, int(rows[0]), column)
         if kind == "absolute":
             return self._datetimes(text, rows, from_text=text)
-        values, _ = _to_float(text, decimal_comma=False)
-        unread = np.isnan(values)
+        parsed = _to_float(text, decimal_comma=self.decimal_comma)
+        unread = np.isnan(parsed[0])
         if unread.any():
             unread &= ~text.str.lower().isin(_NON_FINITE).to_numpy()
         if unread.any():
             self._mixed_or_unreadable(text, rows, int(np.argmax(unread)), kind)
-        seconds = self._number(text, rows, column)
+        seconds = self._number(text, rows, column, parsed=parsed)
         self._negative += int(np.count_nonzero(seconds < 0))
         return seconds
 
     def _datetimes(self, series: pd.Series, rows: np.ndarray, *, from_text: pd.Series | None) -> np.ndarray:
         column = self.layout.time
-        self._set_kind("absolute", int(rows[0]), rows, column)
+        self._set_kind("absolute", int(rows[0]), column)
         if from_text is not None:
             numeric = pc.match_substring_regex(pa.array(from_text), _PLAIN_NUMBER).to_numpy(zero_copy_only=False)
             if numeric.any():
@@ -251,7 +255,7 @@ class TableParser:
                              "has none; give every time with a zone (e.g. Z for UTC) or none",
                              row=max(naive_row, aware_row), column=self.layout.time)
 
-    def _set_kind(self, kind: str, row: int, rows: np.ndarray, column: str) -> None:
+    def _set_kind(self, kind: str, row: int, column: str) -> None:
         if self._time_kind is None:
             self._time_kind = (kind, row)
         elif self._time_kind[0] != kind:
@@ -269,11 +273,11 @@ class TableParser:
     def _notices(self) -> tuple[QCAction, ...]:
         out = list(self.layout.notices)
         if self._negative:
-            out.append(QCAction("negative_times", self._negative, f"{self.file}: {self._negative} fixes have negative "
-                                "times; they are read as seconds before the time origin"))
+            out.append(QCAction("negative_times", self._negative, f"{self.file}: {plural(self._negative, 'fix')} "
+                                "with negative times; they are read as seconds before the time origin"))
         if self._naive:
-            out.append(QCAction("naive_times", self._naive[0], f"{self.file}: {self._naive[0]} times have no time "
-                                f"zone (first at row {self._naive[1]}); they are taken as UTC"))
+            out.append(QCAction("naive_times", self._naive[0], f"{self.file}: {plural(self._naive[0], 'time')} "
+                                f"without a time zone (first at row {self._naive[1]}); taken as UTC"))
         return tuple(out)
 
 
@@ -377,9 +381,14 @@ def _join_extra(pieces: list) -> np.ndarray:
     """The chunks of an extra column joined: numbers if every chunk was numeric, else text (object array)."""
     if all(isinstance(p, np.ndarray) for p in pieces):
         return np.concatenate(pieces)
-    texts = [p if isinstance(p, pd.Series) else pd.Series(np.where(np.isnan(p), "", p.astype(str)), dtype="str")
+    texts = [p if isinstance(p, pd.Series) else pd.Series([_number_text(v) for v in p.tolist()], dtype="str")
              for p in pieces]
     return pd.concat(texts, ignore_index=True).to_numpy(dtype=object)
+
+
+def _number_text(value: float) -> str:
+    """A number from a numeric chunk of a text column, written back as plain text ("" when it was empty)."""
+    return "" if value != value else np.format_float_positional(value, trim="-")
 
 
 def _as_text(series: pd.Series) -> pd.Series:

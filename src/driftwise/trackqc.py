@@ -79,8 +79,8 @@ def _unsorted(track: np.ndarray, time_s: np.ndarray, file: str) -> QCAction | No
     if not count:
         return None
     n_tracks = np.unique(track[by_track][1:][backwards]).size
-    return QCAction("unsorted_times", count, f"{file}: sorted the fixes of {_n(n_tracks, 'track')} by time "
-                    f"({_n(count, 'fix')} out of order)", "warning")
+    return QCAction("unsorted_times", count, f"{file}: sorted the fixes of {plural(n_tracks, 'track')} by time "
+                    f"({plural(count, 'fix')} out of order)", "warning")
 
 
 def _refuse_duplicates(track, time_s, rows, index, labels, *, file, column, show_time) -> None:
@@ -114,9 +114,10 @@ def _speed_filter(track, time_s, position_m, index, max_speed_m_s, file) -> tupl
         lo, hi = starts[t], starts[t + 1]
         keep[lo:hi] = _filter_one(time_s[lo:hi], position_m[index[lo:hi]], max_speed_m_s)
     dropped = int(np.count_nonzero(~keep))
-    return keep, QCAction("impossible_speed", dropped, f"{file}: dropped {_n(dropped, 'fix')} implying speeds above "
-                          f"{max_speed_m_s:g} m/s (fastest {float(speed[violation].max()):.3g} m/s) in "
-                          f"{_n(bad_tracks.size, 'track')}", "warning")
+    fastest = float(speed[violation].max())
+    return keep, QCAction("impossible_speed", dropped, f"{file}: dropped {plural(dropped, 'fix')} implying speeds "
+                          f"above {max_speed_m_s:g} m/s (fastest {fastest:.3g} m/s) in "
+                          f"{plural(bad_tracks.size, 'track')}", "warning")
 
 
 def _filter_one(time_s: np.ndarray, position_m: np.ndarray, max_speed_m_s: float) -> np.ndarray:
@@ -151,8 +152,8 @@ def _split_gaps(track, time_s, labels, max_gap_s, file):
         taken.add(label)
         new_labels.append(label)
     n_gaps, n_tracks = int(gap.sum()), np.unique(track[1:][gap]).size
-    return segment, new_labels, QCAction("gap_split", n_gaps, f"{file}: split {_n(n_tracks, 'track')} at "
-                                         f"{_n(n_gaps, 'gap')} longer than {max_gap_s:g} s", "warning")
+    return segment, new_labels, QCAction("gap_split", n_gaps, f"{file}: split {plural(n_tracks, 'track')} at "
+                                         f"{plural(n_gaps, 'gap')} longer than {max_gap_s:g} s", "warning")
 
 
 def _drop_lone_fixes(track, labels, file):
@@ -166,10 +167,10 @@ def _drop_lone_fixes(track, labels, file):
     renumber[survivors] = np.arange(survivors.size)
     n = int(lone.sum())
     return keep, renumber[track[keep]], [labels[i] for i in survivors], QCAction(
-        "single_fix_tracks", n, f"{file}: dropped {_n(n, 'track')} with a single fix", "warning")
+        "single_fix_tracks", n, f"{file}: dropped {plural(n, 'track')} with a single fix", "warning")
 
 
-def _n(count: int, noun: str) -> str:
+def plural(count: int, noun: str) -> str:
     """``3 fixes``, ``1 track``: a count with its noun in the right number."""
     if count == 1:
         return f"1 {noun}"

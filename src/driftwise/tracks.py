@@ -26,7 +26,6 @@ from __future__ import annotations
 import functools
 import warnings
 from dataclasses import dataclass, field, replace
-from pathlib import Path
 from typing import Any, Iterable, Iterator
 
 import numpy as np
@@ -258,7 +257,8 @@ def format_summary(summary: dict[str, Any]) -> str:
     when = f"{t['start_iso']} to {t['end_iso']}" if t["absolute"] else f"{t['start_s']:g} s to {t['end_s']:g} s"
     fpt = summary["fixes_per_track"]
     lines = [
-        f"{summary['source']}: {summary['n_tracks']} tracks, {summary['n_fixes']} fixes, {summary['dim']}-D positions",
+        f"{summary['source']}: {summary['n_tracks']} track{'s' * (summary['n_tracks'] != 1)}, "
+        f"{summary['n_fixes']} fixes, {summary['dim']}-D positions",
         f"  fixes/track  median {fpt['median']:g} (min {fpt['min']}, max {fpt['max']})",
         f"  time         {when} ({_duration(t['span_s'])})",
         f"  sampling     median {dt['median']:.4g} s (min {dt['min']:.4g} s, max {dt['max']:.4g} s)",
