@@ -46,7 +46,16 @@ def _params(family, dim, inducing, base="squared-exponential"):
                            curl_free_velocity_scale_m_s=0.6 * SIGMA, curl_free_length_scale_m=1.4 * ELL)
 
 
-def _fitted(family, dim, *, n=60, m=20, seed=0, base="squared-exponential"):
+N_OBS, N_INDUCING = 40, 12   # shared shapes so that compiled functions are reused across tests
+
+
+@jax.jit
+def _dense(kernel, x, y):
+    """K(X, Y) flattened (n·d, m·d), compiled once per kernel structure and shape."""
+    return kernel.gram_matrix(x, y)
+
+
+def _fitted(family, dim, *, n=N_OBS, m=N_INDUCING, seed=0, base="squared-exponential"):
     obs, _ = _observations(n, dim, seed)
     z = np.random.default_rng(seed + 100).uniform(0, 4 * ELL, (m, dim))
     batch = fld.batch_from_observations(obs)
@@ -84,7 +93,7 @@ def test_helmholtz_part_posteriors_match_dense_conditioning():
     # Z = X, so the part posteriors are exact Gaussian conditioning (Rasmussen & Williams 2006, eqs. 2.23-2.24,
     # with y = v_df + v_cf + noise and independent parts): E[v_a(x)|y] = K_a(x,X)(K_XX + R)^{-1} y,
     # Cov[v_a(x), v_b(x')|y] = K_a(x,x')δ_ab − K_a(x,X)(K_XX + R)^{-1} K_b(X,x'), computed densely with scipy.
-    obs, r = _observations(30, 2, seed=3)
+    obs, r = _observations(N_OBS, 2, seed=3)
     # A small jitter (multiple 100, δ ≈ 2e-14 σ²): with Z = X the part posteriors deviate from exact
     # conditioning by O(δ/λ_min(K_XX)), measured as 6e-7 m/s at the default multiple 1e6 and 6e-11 at 100.
     batch = fld.batch_from_observations(obs)
@@ -92,31 +101,46 @@ def test_helmholtz_part_posteriors_match_dense_conditioning():
     field = fld.FlowField.from_params(params, jitter_multiple=100.0)
     parts = field.params.kernel.parts
     x = jnp.asarray(obs.position_m)
-    c = np.asarray(field.params.kernel.gram_matrix(x, x)) + np.diag(np.repeat(r, 2))
+    c = np.asarray(_dense(field.params.kernel, x, x)) + np.diag(np.repeat(r, 2))
     factor = scipy.linalg.cho_factor(c)
     alpha = scipy.linalg.cho_solve(factor, obs.velocity_m_s.reshape(-1))
     p, q = jnp.array([1000.0, 1500.0]), jnp.array([2200.0, 800.0])
+    ours = jax.jit(_part_moments)(field, p, q)
     for a in parts:
-        ka_p = np.asarray(parts[a].gram_matrix(p[None], x))
-        np.testing.assert_allclose(field.mean_at(p, a), ka_p @ alpha, rtol=1e-6, atol=1e-9 * SIGMA)
+        ka_p = np.asarray(_dense(parts[a], p[None], x))
+        np.testing.assert_allclose(ours[_key("mean", a)], ka_p @ alpha, rtol=1e-6, atol=1e-9 * SIGMA)
         for b in parts:
-            kb_q = np.asarray(parts[b].gram_matrix(q[None], x))
+            kb_q = np.asarray(_dense(parts[b], q[None], x))
             prior = np.asarray(parts[a].block(p, q)) if a == b else np.zeros((2, 2))
             expected = prior - ka_p @ scipy.linalg.cho_solve(factor, kb_q.T)
-            np.testing.assert_allclose(field.cov_between(p, q, a, b), expected, rtol=1e-6, atol=1e-9 * SIGMA**2)
+            np.testing.assert_allclose(ours[_key("cov", a, b)], expected, rtol=1e-6, atol=1e-9 * SIGMA**2)
     # The posterior cross-covariance between the parts is not zero although the prior one is.
-    assert np.abs(np.asarray(field.cov_between(p, p, "divergence_free", "curl_free"))).max() > 1e-4 * SIGMA**2
+    assert np.abs(np.asarray(ours[_key("cov", "divergence_free", "curl_free")])).max() > 1e-4 * SIGMA**2
+
+
+def _key(*parts):
+    return "/".join(part or "full" for part in parts)
+
+
+def _part_moments(field, p, q):
+    """All part means at p and part cross-covariances between p and q, in one compiled function."""
+    names = (None, "divergence_free", "curl_free")
+    out = {_key("mean", a): field.mean_at(p, a) for a in names}
+    out.update({_key("cov", a, b): field.cov_between(p, q, a, b) for a in names for b in names})
+    out[_key("cov_swapped", "curl_free", None)] = field.cov_between(q, p, None, "curl_free").T
+    return out  # string keys: jit sorts pytree dict keys
 
 
 def test_parts_add_up_to_the_whole():
     field, _ = _fitted("helmholtz", 2, seed=4)
     p, q = jnp.array([300.0, 2000.0]), jnp.array([900.0, 1700.0])
+    out = jax.jit(_part_moments)(field, p, q)
     names = ("divergence_free", "curl_free")
-    np.testing.assert_allclose(sum(field.mean_at(p, a) for a in names), field.mean_at(p), rtol=1e-10, atol=1e-14)
-    total = sum(field.cov_between(p, q, a, b) for a in names for b in names)
-    np.testing.assert_allclose(total, field.cov_between(p, q), rtol=1e-9, atol=1e-14)
-    np.testing.assert_allclose(field.cov_between(p, q, "curl_free", None),
-                               field.cov_between(q, p, None, "curl_free").T, rtol=1e-10, atol=1e-14)
+    np.testing.assert_allclose(sum(out[_key("mean", a)] for a in names), out[_key("mean", None)], rtol=1e-10, atol=1e-14)
+    total = sum(out[_key("cov", a, b)] for a in names for b in names)
+    np.testing.assert_allclose(total, out[_key("cov", None, None)], rtol=1e-9, atol=1e-14)
+    np.testing.assert_allclose(out[_key("cov", "curl_free", None)], out[_key("cov_swapped", "curl_free", None)],
+                               rtol=1e-10, atol=1e-14)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -125,30 +149,35 @@ def test_parts_add_up_to_the_whole():
 def test_elbo_at_optimal_q_equals_titsias_collapsed_bound():
     # Titsias 2009, eq. 9 (diagonal noise R): F = log N(y | 0, Q + R) − ½ Σ_n tr(K_nn − Q_nn)/r_n with
     # Q = K_XZ K_ZZ^{-1} K_ZX; evaluated densely with scipy.stats.multivariate_normal.
-    obs, r = _observations(50, 2, seed=5)
-    z = np.random.default_rng(6).uniform(0, 4 * ELL, (15, 2))
+    obs, r = _observations(N_OBS, 2, seed=5)
+    z = np.random.default_rng(6).uniform(0, 4 * ELL, (N_INDUCING, 2))
     batch = fld.batch_from_observations(obs)
     params = fld.optimal_q(_params("helmholtz", 2, z, "matern52"), batch)
     kern, x = params.kernel, jnp.asarray(obs.position_m)
-    kzz = np.asarray(kern.gram_matrix(z, z))
-    kzz += fld._jitter_m2_s2(kern, jnp.asarray(z[0]), fld.JITTER_MULTIPLE) * np.eye(30)
-    kxz = np.asarray(kern.gram_matrix(x, z))
+    zz = jnp.asarray(z)
+    kzz = np.asarray(_dense(kern, zz, zz))
+    kzz += fld._jitter_m2_s2(kern, zz[0], fld.JITTER_MULTIPLE) * np.eye(2 * N_INDUCING)
+    kxz = np.asarray(_dense(kern, x, zz))
     q_ff = kxz @ np.linalg.solve(kzz, kxz.T)
     noise = np.repeat(r, 2)
-    k_diag = np.diag(np.asarray(kern.gram_matrix(x, x)))
-    bound = (scipy.stats.multivariate_normal(np.zeros(100), q_ff + np.diag(noise)).logpdf(obs.velocity_m_s.ravel())
-             - 0.5 * np.sum((k_diag - np.diag(q_ff)) / noise))
-    np.testing.assert_allclose(float(fld.elbo(params, batch, 50)), bound, rtol=1e-9)
-    # ... and it is a stationary point of the ELBO in (m, S).
-    grad = jax.grad(fld.elbo)(params, batch, 50)
-    assert np.abs(grad.q_mean).max() < 1e-6 and np.abs(grad.q_sqrt_raw).max() < 1e-6
+    k_diag = np.diag(np.asarray(_dense(kern, x, x)))
+    bound = (scipy.stats.multivariate_normal(np.zeros(2 * N_OBS), q_ff + np.diag(noise)).logpdf(
+        obs.velocity_m_s.ravel()) - 0.5 * np.sum((k_diag - np.diag(q_ff)) / noise))
+    best = float(fld.elbo(params, batch, N_OBS))
+    np.testing.assert_allclose(best, bound, rtol=1e-9)
+    # ... and it is the maximum over q: moving m or S away lowers the ELBO.
+    rng = np.random.default_rng(7)
+    for scale in (1e-3, 1e-1):
+        moved = dataclasses.replace(params, q_mean=params.q_mean + scale * rng.normal(size=2 * N_INDUCING),
+                                    q_sqrt_raw=params.q_sqrt_raw + scale * np.tril(rng.normal(size=(24, 24))))
+        assert float(fld.elbo(moved, batch, N_OBS)) < best
 
 
 def test_minibatch_elbo_matches_dense_reference():
     # Dense reference of Hensman et al. 2013 (eq. 7 with the Gaussian expectation in closed form):
     # (N/b) Σ [log N(y_n | μ_n, r_n I) − tr Σ_n / (2 r_n)] − KL(N(m, SSᵀ) ‖ N(0, I)), KL by the textbook
     # formula ½(tr Σ + mᵀm − k − log det Σ) with numpy's slogdet.
-    obs, r = _observations(40, 2, seed=7)
+    obs, r = _observations(N_OBS, 2, seed=7)
     rng = np.random.default_rng(8)
     z = rng.uniform(0, 4 * ELL, (10, 2))
     params = _params("divergence-free", 2, z, "matern52")
@@ -158,13 +187,13 @@ def test_minibatch_elbo_matches_dense_reference():
     batch = fld.batch_from_observations(obs, idx)
 
     kern = params.kernel
-    kzz = np.asarray(kern.gram_matrix(z, z))
+    kzz = np.asarray(_dense(kern, jnp.asarray(z), jnp.asarray(z)))
     chol = np.linalg.cholesky(kzz + fld._jitter_m2_s2(kern, jnp.asarray(z[0]), fld.JITTER_MULTIPLE) * np.eye(20))
     m = np.asarray(params.q_mean)
     total = 0.0
     for n in idx:
         xn = jnp.asarray(obs.position_m[n])
-        a = scipy.linalg.solve_triangular(chol, np.asarray(kern.gram_matrix(xn[None], z)).T, lower=True).T
+        a = scipy.linalg.solve_triangular(chol, np.asarray(_dense(kern, xn[None], jnp.asarray(z))).T, lower=True).T
         cov = np.asarray(kern.block(xn, xn)) - a @ a.T + a @ s @ s.T @ a.T
         total += (scipy.stats.multivariate_normal(a @ m, r[n] * np.eye(2)).logpdf(obs.velocity_m_s[n])
                   - np.trace(cov) / (2 * r[n]))
@@ -193,11 +222,16 @@ def test_prior_q_gives_the_prior():
 def test_posterior_obeys_the_kernel_constraint(dim, base):
     rate = SIGMA / ELL   # velocity-gradient scale, 1/s
     pts = jnp.asarray(np.random.default_rng(11).uniform(0, 4 * ELL, (25, dim)))
-    fields = {f: _fitted(f, dim, n=40, m=12, seed=12, base=base)[0] for f in ("divergence-free", "curl-free", "helmholtz")}
-    for family, part in (("divergence-free", None), ("curl-free", None), ("helmholtz", "divergence_free"),
-                         ("helmholtz", "curl_free")):
-        field = fields[family]
-        jac = jax.jit(jax.vmap(jax.jacfwd(lambda x: field.mean_at(x, part))))(pts)        # [n, i, a] = ∂v_i/∂x_a
+    fields = {f: _fitted(f, dim, seed=12, base=base)[0] for f in ("divergence-free", "curl-free", "helmholtz")}
+    cases = (("divergence-free", None), ("curl-free", None), ("helmholtz", "divergence_free"),
+             ("helmholtz", "curl_free"))
+
+    @jax.jit
+    def jacobians(fields, pts):                                   # [n, i, a] = ∂v_i/∂x_a per case
+        return [jax.vmap(jax.jacfwd(lambda x: fields[f].mean_at(x, part)))(pts) for f, part in cases]
+
+    for (family, part), jac in zip(cases, jacobians(fields, pts)):
+        jac = np.asarray(jac)
         div = np.trace(jac, axis1=1, axis2=2)
         curl = np.sqrt(np.sum((jac - jac.transpose(0, 2, 1)) ** 2, axis=(1, 2)) / 2)
         constrained, free = (div, curl) if "divergence" in (part or family) else (curl, div)
@@ -205,29 +239,33 @@ def test_posterior_obeys_the_kernel_constraint(dim, base):
         assert np.abs(free).max() >= 1e-3 * rate          # the posterior is not trivially zero
     # Posterior variance of the divergence of a divergence-free field (mixed second derivative of cov_between).
     mixed = jax.jit(jax.jacfwd(jax.jacrev(fields["divergence-free"].cov_between, argnums=0), argnums=1))(pts[0], pts[0])
-    assert abs(float(jnp.einsum("ijij->", mixed))) <= 1e-8 * rate**2            # Σ_ij ∂x_i ∂y_j C_ij
+    assert abs(float(jnp.einsum("ijij->", mixed))) <= 1e-8 * rate**2       # Var[div v] = Σ_ij ∂x_i ∂y_j C_ij
 
 
 # ---------------------------------------------------------------------------------------------
 # jit, vmap, recompilation, chunking
 # ---------------------------------------------------------------------------------------------
 def test_jit_equals_eager_and_no_recompilation():
-    obs, _ = _observations(30, 2, seed=13)
-    z = np.random.default_rng(14).uniform(0, 4 * ELL, (8, 2))
+    obs, _ = _observations(N_OBS, 2, seed=13)
+    z = np.random.default_rng(14).uniform(0, 4 * ELL, (N_INDUCING, 2))
     elbo_jit = jax.jit(fld.elbo, static_argnames=("jitter_multiple",))
     params = _params("helmholtz", 2, z)
     for start in (0, 10):
         batch = fld.batch_from_observations(obs, np.arange(start, start + 16))
         params = jax.tree_util.tree_map(lambda a: a * 1.01, params)
-        np.testing.assert_allclose(elbo_jit(params, batch, 30), fld.elbo(params, batch, 30), rtol=1e-12)
+        with jax.disable_jit():
+            eager = fld.elbo(params, batch, N_OBS)
+        np.testing.assert_allclose(elbo_jit(params, batch, N_OBS), eager, rtol=1e-12)
     assert elbo_jit._cache_size() == 1
 
     field = fld.FlowField.from_params(fld.optimal_q(params, fld.batch_from_observations(obs)))
     x, y = jnp.array([100.0, 2000.0]), jnp.array([1500.0, 300.0])
-    np.testing.assert_allclose(jax.jit(field.mean_at)(x), field.mean_at(x), rtol=1e-12, atol=1e-16)
-    on_field = jax.jit(lambda f, p, q: f.cov_between(p, q, "curl_free", "divergence_free"))
-    np.testing.assert_allclose(on_field(field, x, y), field.cov_between(x, y, "curl_free", "divergence_free"),
-                               rtol=1e-10, atol=1e-16)
+    on_field = jax.jit(lambda f, p, q: (f.mean_at(p), f.cov_between(p, q, "curl_free", "divergence_free")))
+    jit_mean, jit_cov = on_field(field, x, y)
+    with jax.disable_jit():
+        np.testing.assert_allclose(jit_mean, field.mean_at(x), rtol=1e-12, atol=1e-16)
+        np.testing.assert_allclose(jit_cov, field.cov_between(x, y, "curl_free", "divergence_free"),
+                                   rtol=1e-10, atol=1e-16)
     pts = np.random.default_rng(15).uniform(0, 4 * ELL, (50, 2))
     field.predict(pts)
     compiled = fld._predict_chunk._cache_size()
@@ -237,7 +275,7 @@ def test_jit_equals_eager_and_no_recompilation():
 
 
 def test_vmap_shapes_and_chunked_predict(monkeypatch):
-    field, _ = _fitted("helmholtz", 3, n=30, m=10, seed=16)
+    field, _ = _fitted("helmholtz", 3, seed=16)
     pts = jnp.asarray(np.random.default_rng(17).uniform(0, 4 * ELL, (21, 3)))
     assert jax.vmap(field.mean_at)(pts).shape == (21, 3)
     assert jax.vmap(field.cov_between)(pts, pts[::-1]).shape == (21, 3, 3)

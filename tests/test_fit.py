@@ -23,17 +23,17 @@ from driftwise.tracks import tracks_from_frame
 fitmod = sys.modules["driftwise.fit"]  # driftwise.fit is the function; the module lives here
 
 
-def _tracks(n_tracks=12, hours=4.0, seed=3):
-    rng = np.random.default_rng(seed)
-    starts = rng.uniform(0.0, 2000.0, (n_tracks, 2))
-    frame = simulate_drifters(TaylorGreen(0.2, 1000.0), starts, duration_s=hours * 3600.0, fix_interval_s=600.0,
-                              diffusivity_m2_s=1.0, position_error_m=5.0, seed=seed)
-    return tracks_from_frame(frame)
+@pytest.fixture(scope="module")
+def table():
+    """12 drifters, 4 h of fixes every 10 min in Taylor–Green cells: 288 velocity observations."""
+    starts = np.random.default_rng(3).uniform(0.0, 2000.0, (12, 2))
+    return simulate_drifters(TaylorGreen(0.2, 1000.0), starts, duration_s=4 * 3600.0, fix_interval_s=600.0,
+                             diffusivity_m2_s=1.0, position_error_m=5.0, seed=3)
 
 
 @pytest.fixture(scope="module")
-def tracks():
-    return _tracks()
+def tracks(table):
+    return tracks_from_frame(table)
 
 
 SMALL = dict(inducing=12, position_error_m=5.0, progress=False)
@@ -114,7 +114,7 @@ def test_resume_after_interrupt_ends_at_the_same_elbo(tracks, tmp_path, monkeypa
     with np.load(checkpoint, allow_pickle=False) as saved:
         assert json.loads(str(saved["meta"]))["step"] == 23
     resumed = driftwise.fit(tracks, checkpoint=checkpoint, resume=True, **options)
-    a, b = fitmod.fit_summary(straight), fitmod.fit_summary(resumed)
+    a, b = straight.fit_info, resumed.fit_info
     assert a["steps"] == b["steps"] == 30
     assert b["elbo"] == pytest.approx(a["elbo"], rel=1e-6, abs=1e-6)
     np.testing.assert_allclose(b["elbo_history"], a["elbo_history"], rtol=1e-9, atol=1e-9)
@@ -125,22 +125,21 @@ def test_same_seed_same_fit_and_checkpoint_mismatch_is_refused(tracks, tmp_path)
     options = dict(SMALL, steps=6, patience=1000, batch_size=64)
     a = driftwise.fit(tracks, seed=1, **options)
     b = driftwise.fit(tracks, seed=1, checkpoint=tmp_path / "c.npz", **options)
-    assert fitmod.fit_summary(a)["elbo"] == pytest.approx(fitmod.fit_summary(b)["elbo"], rel=1e-12, abs=0.0)
+    assert a.fit_info["elbo"] == pytest.approx(b.fit_info["elbo"], rel=1e-12, abs=0.0)
     with pytest.raises(InputError, match="different fit"):
         driftwise.fit(tracks, seed=2, checkpoint=tmp_path / "c.npz", resume=True, **options)
 
 
 def test_converges_early_on_a_plateau_and_records_history(tracks):
     field = driftwise.fit(tracks, steps=400, patience=10, **SMALL)
-    info = fitmod.fit_summary(field)
+    info = field.fit_info
     assert info["converged"] and info["steps"] < 400 and info["steps"] % 10 == 0
     assert len(info["elbo_history"]) == info["steps"]
     history = np.asarray(info["elbo_history"])
     assert np.all(np.isfinite(history)) and history[-1] > history[0]
     assert info["decorrelation_time_source"] == "length_scale/rms_speed"
     assert field.decorrelation_time_s == pytest.approx(info["length_scale_m"] / info["rms_speed_m_s"], rel=1e-12)
-    assert field.data_summary["n_tracks"] == 12 and field.data_summary["n_observations"] == info["n_observations"] \
-        if "n_observations" in info else field.data_summary["n_tracks"] == 12
+    assert field.data_summary["n_tracks"] == 12 and field.data_summary["n_observations"] == 12 * 24
 
 
 def test_non_finite_step_is_retried_with_more_jitter_and_smaller_step(tracks, monkeypatch):
@@ -154,7 +153,7 @@ def test_non_finite_step_is_retried_with_more_jitter_and_smaller_step(tracks, mo
 
     monkeypatch.setattr(fitmod, "_step", flaky)
     field = driftwise.fit(tracks, steps=5, patience=1000, learning_rate=0.04, **SMALL)
-    info = fitmod.fit_summary(field)
+    info = field.fit_info
     assert info["steps"] == 5
     assert field.jitter_multiple == pytest.approx(1e10, rel=1e-12)       # two retries: 1e6 → 1e8 → 1e10
     assert info["learning_rate_final"] == pytest.approx(0.02, rel=1e-12)  # halved on the second retry
@@ -192,34 +191,32 @@ def test_progress_bar_stays_off_when_not_a_terminal(tracks, capsys):
 
 # ------------------------------------------------------------------------ the command line
 @pytest.fixture(scope="module")
-def tracks_csv(tmp_path_factory):
-    rng = np.random.default_rng(11)
-    frame = simulate_drifters(TaylorGreen(0.2, 1000.0), rng.uniform(0.0, 2000.0, (10, 2)), duration_s=3 * 3600.0,
-                              fix_interval_s=600.0, diffusivity_m2_s=1.0, position_error_m=5.0, seed=11)
+def tracks_csv(table, tmp_path_factory):
     path = tmp_path_factory.mktemp("cli") / "tracks.csv"
-    frame.to_csv(path, index=False)
+    table.to_csv(path, index=False)
     return path
 
 
 def test_cli_fit_json_contract(tracks_csv, tmp_path, run_cli):
     out = tmp_path / "model.npz"
-    code, stdout, err = run_cli("fit", tracks_csv, "--out", out, "--inducing", "10", "--position-error", "5m",
-                                "--kernel", "divergence-free", "--json")
+    code, stdout, err = run_cli("fit", tracks_csv, "--out", out, "--inducing", "12", "--position-error", "5m",
+                                "--kernel", "divergence-free", "--no-calibrate", "--json")
     assert code == 0, err
     report = json.loads(stdout)
     for key in ("kernel", "n_tracks", "n_observations", "elbo", "hyperparameters", "diffusivity_m2_s",
                 "decorrelation_time_s"):
         assert key in report
-    assert report["kernel"] == "divergence-free" and report["n_tracks"] == 10 and report["n_observations"] == 10 * 18
+    assert report["kernel"] == "divergence-free" and report["n_tracks"] == 12 and report["n_observations"] == 12 * 24
     assert report["decorrelation_time_source"] == "length_scale/rms_speed"
     model = driftwise.load(out)
     assert model.diffusivity_m2_s == pytest.approx(report["diffusivity_m2_s"], rel=1e-12)
-    assert fitmod.fit_summary(model)["elbo"] == pytest.approx(report["elbo"], rel=1e-12)
+    assert model.fit_info["elbo"] == pytest.approx(report["elbo"], rel=1e-12)
     assert not (tmp_path / "model.ckpt.npz").exists()  # the checkpoint goes once the model is written
 
 
 def test_cli_fit_human_summary(tracks_csv, tmp_path, run_cli):
-    code, stdout, _ = run_cli("fit", tracks_csv, "--out", tmp_path / "m.npz", "--inducing", "10", "--quiet")
+    code, stdout, _ = run_cli("fit", tracks_csv, "--out", tmp_path / "m.npz", "--inducing", "12", "--position-error", "5m", "--no-calibrate",
+                            "--quiet")
     assert code == 0
     assert "helmholtz kernel" in stdout and "wrote" in stdout and "decorrelation time" in stdout
 

@@ -32,13 +32,10 @@ def _field(family="helmholtz", frame=None, seed=0):
     size = params.q_mean.shape[0]
     sqrt = np.tril(0.1 * rng.standard_normal((size, size)), -1) + np.diag(rng.uniform(0.2, 0.9, size))
     params = dataclasses.replace(params, q_mean=rng.standard_normal(size), q_sqrt_raw=fld.q_sqrt_raw_from(sqrt))
-    field = fld.FlowField.from_params(params, frame=frame or Frame(), decorrelation_time_s=4321.0,
-                                      position_error_m=10.0,
-                                      data_summary={"n_tracks": 3, "n_observations": 40,
-                                                    "extent_m": {"min": [0, 0], "max": [5000, 5000]}})
-    meta = json.loads(field.metadata_json)
-    meta["fit"] = {"elbo": 12.5, "elbo_history": [1.0, 2.0, 12.5], "decorrelation_time_source": "length_scale/rms_speed"}
-    return dataclasses.replace(field, metadata_json=json.dumps(meta, sort_keys=True))
+    return fld.FlowField.from_params(
+        params, frame=frame or Frame(), decorrelation_time_s=4321.0, position_error_m=10.0,
+        data_summary={"n_tracks": 3, "n_observations": 40, "extent_m": {"min": [0, 0], "max": [5000, 5000]}},
+        fit_info={"elbo": 12.5, "elbo_history": [1.0, 2.0, 12.5], "decorrelation_time_source": "length_scale/rms_speed"})
 
 
 @pytest.fixture(scope="module")

@@ -234,15 +234,25 @@ def test_skill_coverage_figure(tmp_path):
 
 
 def test_elbo_figure(tmp_path):
-    steps = np.arange(400)
-    elbo = 5000 - 4e5 * np.exp(-steps / 40.0)
-    fig = plots.plot_elbo(steps, elbo, n_observations=5000, stopped_at=380)
+    steps = np.arange(1, 401)
+    rng = np.random.default_rng(3)
+    elbo = 5000 - 4e5 * np.exp(-steps / 20.0) + rng.normal(0, 30, steps.size)
+    fig = plots.plot_elbo(steps, elbo, n_observations=5000, final_elbo=5001.0, stopped_at=380, window=10)
     _units_everywhere(fig)
-    ax_all, ax_end = fig.axes
-    assert ax_all.get_yscale() == "log"
-    y = ax_all.get_lines()[0].get_ydata()
-    np.testing.assert_allclose(y, ((elbo.max() - elbo) / 5000)[:-1], rtol=1e-12, atol=0)
-    assert "per observation" in ax_end.get_ylabel()
+    (ax,) = fig.axes
+    raw, smooth = ax.get_lines()[:2]
+    np.testing.assert_allclose(raw.get_ydata(), elbo / 5000, rtol=1e-12, atol=0)
+    # running mean: numpy's own moving average of 10 consecutive steps (the definition)
+    expected = np.array([elbo[i:i + 10].mean() for i in range(elbo.size - 9)]) / 5000
+    np.testing.assert_allclose(smooth.get_ydata(), expected, rtol=1e-12, atol=0)
+    # the early transient (-80 nats/obs) is cut off: the axis starts 3 plateau ranges below the final half
+    lo, hi = ax.get_ylim()
+    tail = elbo[200:] / 5000
+    np.testing.assert_allclose(lo, tail.min() - 3 * (tail.max() - tail.min()), rtol=1e-12, atol=0)
+    assert 0.7 < lo < 1.0 and 1.0 < hi < 1.1
+    below = int(np.sum(elbo / 5000 < lo))
+    assert any(f"{below} early step(s) below the axis" in t.get_text() for t in ax.texts)
+    assert "per observation" in ax.get_ylabel()
     _saved(fig, tmp_path, "elbo")
 
 
@@ -259,4 +269,13 @@ def test_lonlat_axes_when_the_data_were_geographic(tmp_path):
     np.testing.assert_allclose([x0, x1], [4.0 - 0.1460, 4.0 + 0.1460], rtol=0, atol=0.004)
     # equal ground distances: the y/x display ratio is 1/cos(latitude)
     np.testing.assert_allclose(ax.get_aspect(), 1 / math.cos(math.radians(52.0)), rtol=2e-3, atol=0)
+    # the kilometre bar: its length in degrees against pyproj's geodesic (WGS 84) along the parallel
+    import pyproj
+    from mpl_toolkits.axes_grid1.anchored_artists import AnchoredSizeBar
+
+    (bar,) = [a for a in ax.artists if isinstance(a, AnchoredSizeBar)]
+    km = float(bar.txt_label.get_text().split()[0])
+    width_deg = bar.size_bar.get_children()[0].get_width()
+    _, _, metres = pyproj.Geod(ellps="WGS84").inv(4.0, 52.0, 4.0 + width_deg, 52.0)
+    np.testing.assert_allclose(metres, km * 1000, rtol=4e-3, atol=0)  # sphere vs ellipsoid: ~0.3 % at 52° N
     _saved(fig, tmp_path, "field_lonlat")

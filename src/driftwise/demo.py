@@ -34,16 +34,12 @@ from typing import Any, Callable
 import numpy as np
 
 from .errors import InputError
+from .scenarios import (HARBOUR_MOUTH_M, OUTFALL_M, SHELLFISH_BED, SHELLFISH_BED_M, in_frame, outfall_share,
+                        outfall_table, plume_snapshot, site_places, sites_in_frame, snapshot_clocks, spill_table,
+                        to_frame)
 
 HOUR_S = 3600.0
 
-# Sites of the invented scenarios, in metres of the frame the demo data were generated in
-# (driftwise.synthetic.DemoScenario: AEQD centred at 9° W, 44° N); converted to lon/lat and
-# then into the fitted model's own frame, so they stay put whatever frame the fit chooses.
-HARBOUR_MOUTH_M = (5200.0, -4800.0)          # just off the river mouth of Port Aldous
-OUTFALL_M = (4500.0, 5500.0)                  # the (invented) Kestle Point outfall, north-east shore
-SHELLFISH_BED_M = ((-5200.0, -7600.0), (-1800.0, -7600.0), (-1400.0, -5400.0), (-4600.0, -4900.0))
-SHELLFISH_BED = "Aldous Flats shellfish bed"
 
 
 @dataclass(frozen=True)
@@ -62,13 +58,14 @@ class DemoSettings:
     grid_cells_across: int = 40
     skill_horizons_s: tuple[float, ...] = (6 * HOUR_S, 12 * HOUR_S, 24 * HOUR_S)
     max_skill_starts: int | None = 400
+    calibration_starts: int = 400
     seed: int = 0
 
     @classmethod
     def fast(cls) -> "DemoSettings":
         return cls(inducing=48, fit_steps=60, family_inducing=32, family_steps=30, horizon_s=24 * HOUR_S, every_s=2 * HOUR_S,
                    outfall_hours=6, grid_cells_across=20, skill_horizons_s=(6 * HOUR_S, 12 * HOUR_S),
-                   max_skill_starts=60)
+                   max_skill_starts=60, calibration_starts=100)
 
 
 # ----------------------------------------------------------------- bookkeeping
@@ -160,16 +157,6 @@ def demo_data_dir(out: Path) -> Path:
     return out / "demo_data"
 
 
-def _bay_to_model(frame: Any, xy_bay_m: Any) -> np.ndarray:
-    """Sites given in the generator's frame (synthetic.DemoScenario) → the model's frame, metres (n, 2)."""
-    from .frame import Frame
-    from .synthetic import DemoScenario
-
-    scenario = DemoScenario()
-    lon, lat = Frame("lonlat", scenario.lon0_deg, scenario.lat0_deg).to_lonlat(np.atleast_2d(xy_bay_m))
-    return frame.from_lonlat(lon, lat) if getattr(frame, "kind", "metric") == "lonlat" else np.atleast_2d(xy_bay_m)
-
-
 # ----------------------------------------------------------------- 1. data
 def step_data(job: Job) -> str:
     tracks_mod = need("tracks", "read_tracks", "inspect_summary")
@@ -197,9 +184,12 @@ def _data_table(s: dict) -> dict:
     speed = s.get("speed_m_s", {})
     out["median_speed_m_s"], out["95th_percentile_speed_m_s"] = speed.get("p50"), speed.get("p95")
     frame = s.get("frame", {})
-    out["frame"] = ("lon/lat degrees, projected to a local azimuthal-equidistant frame centred at "
-                    f"{frame['lat0_deg']:.4f}° N, {frame['lon0_deg']:.4f}° E") if frame.get("kind") == "lonlat" \
-        else "metres in a local frame"
+    if frame.get("kind") == "lonlat":
+        lat, lon = frame["lat0_deg"], frame["lon0_deg"]
+        out["frame"] = ("lon/lat degrees, projected to a local azimuthal-equidistant frame centred at "
+                        f"{abs(lat):.4f}° {'N' if lat >= 0 else 'S'}, {abs(lon):.4f}° {'E' if lon >= 0 else 'W'}")
+    else:
+        out["frame"] = "metres in a local frame"
     return out
 
 
@@ -208,36 +198,13 @@ def figure_tracks(job: Job) -> None:
 
     fit_tracks, heldout = job.state["fit_tracks"], job.state["heldout"]
     frame = fit_tracks.frame
-    held_m = _to_frame(heldout, frame)
-    places = _places(frame)
+    held_m = to_frame(heldout, frame)
+    places = site_places(frame)
     job.add_figure(plot_tracks(fit_tracks.position_m, fit_tracks.track_id, frame=frame, heldout_position_m=held_m,
                                heldout_track=heldout.track_id, places=places,
+                               area_m=sites_in_frame(frame, SHELLFISH_BED_M), area_label=SHELLFISH_BED,
                                title="Mirren Bay drifters (invented data)"),
                    "tracks.png", "The drifter tracks: fit set and held-out set, with the scenario sites.", "data")
-
-
-def _to_frame(tracks: Any, frame: Any) -> np.ndarray:
-    """Positions of ``tracks`` expressed in ``frame`` (each file is projected about its own centre)."""
-    if getattr(frame, "kind", "metric") != "lonlat" or tracks.frame == frame:
-        return np.asarray(tracks.position_m)
-    lon, lat = tracks.frame.to_lonlat(tracks.position_m[:, :2])
-    return frame.from_lonlat(lon, lat)
-
-
-def in_frame(tracks: Any, frame: Any) -> Any:
-    """``tracks`` re-projected into ``frame`` (the model's), so positions compare metre for metre."""
-    import dataclasses
-
-    if getattr(frame, "kind", "metric") != "lonlat" or tracks.frame == frame:
-        return tracks
-    return dataclasses.replace(tracks, position_m=_to_frame(tracks, frame), frame=frame)
-
-
-def _places(frame: Any) -> list[dict]:
-    harbour, outfall = _bay_to_model(frame, [HARBOUR_MOUTH_M, OUTFALL_M])
-    bed = _bay_to_model(frame, SHELLFISH_BED_M).mean(axis=0)
-    return [{"label": "Port Aldous harbour mouth", "xy_m": harbour}, {"label": "Kestle Point outfall", "xy_m": outfall},
-            {"label": SHELLFISH_BED, "xy_m": bed}]
 
 
 # ----------------------------------------------------------------- 2. fit
@@ -250,7 +217,7 @@ def step_fit(job: Job) -> str:
     field.save(path)
     job.add_file(path, "the fitted Helmholtz model (npz without pickles + JSON metadata; driftwise.load)")
     job.state["field"] = field
-    info = field.fit_info if isinstance(field.fit_info, dict) else field.fit_info()
+    info = field.fit_info
     data = field.data_summary
     job.summary["fit"] = {
         "kernel": field.kernel_family, "base_kernel": field.kernel_base,
@@ -268,7 +235,8 @@ def step_fit(job: Job) -> str:
         from .plots import plot_elbo
 
         n_obs = data.get("n_observations")
-        job.add_figure(plot_elbo(np.arange(1, len(history) + 1), np.asarray(history, float), n_observations=n_obs),
+        job.add_figure(plot_elbo(np.arange(1, len(history) + 1), np.asarray(history, float), n_observations=n_obs,
+                                 final_elbo=info.get("elbo")),
                        "elbo.png", f"The evidence lower bound while fitting ({info.get('elbo_history_kind', '')}).",
                        "fit")
     return (f"helmholtz, M = {job.summary['fit']['n_inducing']}, K = {field.diffusivity_m2_s:.3g} m²/s, "
@@ -282,9 +250,30 @@ def _group_hyperparameters(h: dict[str, float]) -> dict[str, Any]:
         part = next((p for p in ("divergence_free", "curl_free") if name.startswith(p + "_")), None)
         if part:
             out.setdefault(part.replace("_", "-") + " part", {})[name[len(part) + 1:]] = float(value)
-        else:
+        elif name != "diffusivity_m2_s":  # shown once, with the decorrelation time, in the fit table
             out[name] = float(value)
     return out
+
+
+def step_calibrate(job: Job) -> str:
+    """K and τ from the fit tracks' transitions (as ``driftwise fit`` does by default); the model is saved again."""
+    sde = need("sde", "calibrate")
+    field = _field(job)
+    before = (field.diffusivity_m2_s, field.decorrelation_time_s)
+    field = sde.calibrate(field, job.state["fit_tracks"], max_starts=job.settings.calibration_starts)
+    job.state["field"] = field
+    field.save(job.out / "model.npz")
+    info = field.fit_info
+    record = info.get("calibration", {})
+    fit = job.summary["fit"]
+    fit.update(diffusivity_m2_s=field.diffusivity_m2_s, decorrelation_time_s=field.decorrelation_time_s,
+               diffusivity_before_calibration_m2_s=before[0], decorrelation_time_before_calibration_s=before[1])
+    fit["notes"] = [f"K and τ were calibrated by maximising the likelihood of {record.get('n_transitions', 'the')} "
+                    "observed displacements between fixes of the fit tracks under the moment-propagated Gaussian "
+                    f"transition (before: K = {before[0]:.3g} m²/s, τ = {before[1] / HOUR_S:.3g} h from the "
+                    "length scale over the RMS speed, Taylor 1921)."]
+    return (f"K {before[0]:.3g} → {field.diffusivity_m2_s:.3g} m²/s, "
+            f"τ {before[1] / HOUR_S:.3g} → {field.decorrelation_time_s / HOUR_S:.3g} h")
 
 
 # ----------------------------------------------------------------- 3. map
@@ -397,8 +386,8 @@ def step_spread(job: Job) -> str:
 
     field, s = _field(job), job.settings
     frame = field.frame
-    harbour, outfall = _bay_to_model(frame, [HARBOUR_MOUTH_M, OUTFALL_M])
-    bed = _bay_to_model(frame, SHELLFISH_BED_M)
+    harbour, outfall = sites_in_frame(frame, [HARBOUR_MOUTH_M, OUTFALL_M])
+    bed = sites_in_frame(frame, SHELLFISH_BED_M)
     times = s.every_s * np.arange(int(round(s.horizon_s / s.every_s)) + 1)
     spill = spread_mod.spread_from_field(
         field, [spread_mod.Release(harbour, cov0_m2=s.spill_sd_m**2 * np.eye(2), name="fuel spill")], times,
@@ -413,7 +402,7 @@ def step_spread(job: Job) -> str:
             job.add_file(path, f"{name} forecast: means, covariances, ellipses, P(inside the shellfish bed)")
     share = outfall_share(plume.probability, times, starts)
     job.state.update(spill=spill, plume=plume, bed=bed, share=share, times=times, starts=starts)
-    job.summary["spread"] = [_spill_table(spill, s), _outfall_table(plume, share, times, starts, s)]
+    job.summary["spread"] = [spill_table(spill, s), outfall_table(plume, share, times, starts, s)]
     _spread_figures(job)
     arrival = spill.first_arrival_s[0]
     return (f"spill P(bed) max {spill.probability[0].max():.2f}, first ≥ {s.threshold:g} "
@@ -421,90 +410,28 @@ def step_spread(job: Job) -> str:
             + f"; outfall share max {np.nanmax(share):.2f}")
 
 
-def outfall_share(probability: np.ndarray, times_s: np.ndarray, starts_s: np.ndarray) -> np.ndarray:
-    """Expected share of the discharged water inside the area at clock times ``times_s`` since the outfall started.
-
-    Parcel i (released at ``starts_s[i]``) is inside with probability p_i(T − t_i) (its own clock);
-    the discharge so far is the equal-weight mixture of the released parcels, so the share is the mean
-    of p_i over the parcels with t_i ≤ T.  ``probability`` (R, T) on the release-relative ``times_s``.
-    Returns (T,); the outputs must be on a grid that contains every start time.
-    """
-    share = np.full(times_s.shape, np.nan)
-    for k, clock in enumerate(times_s):
-        ages = clock - starts_s[starts_s <= clock + 1e-9]
-        idx = np.searchsorted(times_s, ages - 1e-9)
-        share[k] = np.mean(probability[np.arange(ages.size), np.minimum(idx, times_s.size - 1)])
-    return share
-
-
-def _lonlat_or_xy(forecast: Any, r: int, k: int) -> list[Any]:
-    if forecast.mean_lonlat is not None:
-        return [round(float(v), 5) for v in forecast.mean_lonlat[r, k]]
-    return [float(v) for v in forecast.means[r, k, :2]]
-
-
-def _table_hours(times_s: np.ndarray) -> list[int]:
-    wanted = [0, 3, 6, 12, 18, 24, 36, 48]
-    return [k for k, t in enumerate(times_s) if round(t / HOUR_S, 6) in wanted]
-
-
-def _spill_table(spill: Any, s: DemoSettings) -> dict:
-    level = spill.levels.index(0.95)
-    geo = spill.mean_lonlat is not None
-    rows = [[spill.times_s[k] / HOUR_S, *_lonlat_or_xy(spill, 0, k), *spill.semi_axes_m[0, k, level],
-             spill.probability[0, k]] for k in _table_hours(spill.times_s)]
-    arrival = spill.first_arrival_s[0]
-    return {"name": "Fuel spill at the Port Aldous harbour mouth",
-            "description": f"An instantaneous release at the harbour mouth with an initial spread of "
-                           f"{s.spill_sd_m:g} m (s.d.), followed for {s.horizon_s / HOUR_S:g} h.",
-            "method": f"{spill.method} (Gaussian moment matching on the fitted SDE)",
-            "columns": ["time since release (h)", "mean lon (°)" if geo else "mean x (m)",
-                        "mean lat (°)" if geo else "mean y (m)", "95 % ellipse semi-major (m)",
-                        "95 % ellipse semi-minor (m)", f"P(inside {SHELLFISH_BED}) (–)"],
-            "rows": rows,
-            "notes": [f"The probability first reaches {s.threshold:g} "
-                      + ("never within the horizon." if arrival is None else f"{arrival / HOUR_S:g} h after the release.")]}
-
-
-def _outfall_table(plume: Any, share: np.ndarray, times: np.ndarray, starts: np.ndarray, s: DemoSettings) -> dict:
-    rows = [[times[k] / HOUR_S, int(np.sum(starts <= times[k] + 1e-9)), share[k],
-             float(np.max(plume.probability[:, k]))] for k in _table_hours(times)]
-    return {"name": "Continuous outfall at Kestle Point",
-            "description": f"Discharge for {s.outfall_hours} h modelled as one release per hour (each with a "
-                           "30 m initial spread), each followed for "
-                           f"{s.horizon_s / HOUR_S:g} h.",
-            "method": f"{plume.method}, {len(plume.releases)} releases in one batched call",
-            "columns": ["time since the outfall started (h)", "parcels released (–)",
-                        f"expected share inside {SHELLFISH_BED} (–)",
-                        f"highest single-parcel P(inside) at that parcel age (h) (–)"],
-            "rows": rows,
-            "notes": ["The share is the mean, over the parcels released so far, of each parcel's probability of "
-                      "being inside the bed: the mixture of the parcels' Gaussians."]}
-
-
 def _spread_figures(job: Job) -> None:
-    from .plots import plot_area_probability, plot_release_spread
+    from .plots import plot_area_probability, plot_plume, plot_release_spread
 
     spill, plume, bed, grid = job.state["spill"], job.state["plume"], job.state["bed"], job.state.get("grid")
     frame = job.state["field"].frame
     background = None if grid is None else {"x_m": grid.x_m, "y_m": grid.y_m, "mean_m_s": grid.mean_m_s}
-    places = _places(frame)
+    places = site_places(frame)
     rel = lambda f, r, label: {"label": label, "times_s": f.times_s, "mean_m": f.means[r],  # noqa: E731
                                "covariance_m2": f.covs[r]}
     horizon_h = spill.times_s[-1] / HOUR_S
     spill_times = [t * HOUR_S for t in (6, 12, 24, 48) if t <= horizon_h]
     job.add_figure(plot_release_spread([rel(spill, 0, "fuel spill, mean path")], ellipse_times_s=spill_times,
                                        frame=frame, field=background, area_m=bed, area_label=SHELLFISH_BED,
-                                       places=places[:2], title="Fuel spill"),
+                                       places=places, title="Fuel spill"),
                    "spread_spill.png", "Fuel spill: mean path with 50 % (shaded) and 95 % (dashed) ellipses; "
                    "grey arrows are the fitted mean flow.", "spread")
-    pick = sorted({0, len(plume.releases) // 2, len(plume.releases) - 1})
-    job.add_figure(plot_release_spread([rel(plume, r, f"parcel released at +{plume.releases[r].start_time_s / HOUR_S:g} h")
-                                        for r in pick], ellipse_times_s=[t * HOUR_S for t in (12, 24) if t <= horizon_h],
-                                       frame=frame, field=background, area_m=bed, area_label=SHELLFISH_BED,
-                                       places=places[:2], title="Outfall parcels"),
-                   "spread_outfall.png", "Outfall: three of the hourly parcels, ellipses at parcel ages 12 h and 24 h.",
-                   "spread")
+    snaps = [plume_snapshot(plume, clock, job.state["starts"]) for clock in snapshot_clocks(plume.times_s)]
+    job.add_figure(plot_plume(snaps, frame=frame, field=background, area_m=bed, area_label=SHELLFISH_BED,
+                              places=places, title="Outfall plume (hourly parcels as one mixture)"),
+                   "spread_outfall.png", "Outfall plume at three times after the discharge started: the regions "
+                   "holding 50 % (shaded) and 95 % (line) of the discharged water, from the mixture of the hourly "
+                   "parcels' Gaussians.", "spread")
     curves = [{"label": "fuel spill: P(inside)", "times_s": spill.times_s, "probability": spill.probability[0]},
               {"label": "outfall: expected share inside", "times_s": job.state["times"], "probability": job.state["share"]}]
     job.add_figure(plot_area_probability(curves, area_label="the shellfish bed", threshold=job.settings.threshold,
@@ -567,6 +494,7 @@ def plain(value: Any) -> Any:
 STEPS: tuple[tuple[str, str, Callable[[Job], str]], ...] = (
     ("data", "data", step_data),
     ("fit", "fit", step_fit),
+    ("calibrate", "fit", step_calibrate),
     ("map", "fit", step_map),
     ("check", "check", step_check),
     ("physics figure", "check", figure_physics),
@@ -686,10 +614,10 @@ def digest(summary: dict, out: Path) -> str:
 
     steps = {s["name"]: s for s in summary["job"]["steps"]}
     lines = [f"driftwise demo: Mirren Bay (invented data), {summary['job']['wall_time_s']:.0f} s"]
-    for name in ("data", "fit", "map", "check", "spread", "score"):
+    for name in ("data", "fit", "calibrate", "map", "check", "spread", "score"):
         step = steps.get(name, {"status": "not run", "detail": ""})
         text = step["detail"] if step["status"] == "done" else f"{step['status'].upper()}: {step['detail']}"
-        lines.append(f"  {name:<7} {text}")
+        lines.append(f"  {name:<9} {text}")
     lines.append(f"  files in {out}/")
     figures = [f for f in summary["files"] if f["path"].endswith(".png")]
     for f in summary["files"]:

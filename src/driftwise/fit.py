@@ -18,19 +18,17 @@ Hensman et al. scheme); the benchmark compares the two.
 
 Before and after the loop q is set to the exact optimum for the current
 hyperparameters — at the start from a large random subsample, at the end from
-all data, accumulated chunk by chunk: Λ = I + Σ_c (Λ_c − I), Λm = Σ_c Λ_c m_c,
-with (m_c, S_c) the optimum for chunk c alone.  The reported ELBO is then
-evaluated exactly over all observations.
+all data, accumulated chunk by chunk: Λ = I + Σ_c Φ_cᵀR_c⁻¹Φ_c, Λm = Σ_c Φ_cᵀR_c⁻¹y_c
+with Φ = K(X, Z) L_Z^{−T}.  The reported ELBO is then evaluated exactly over all
+observations.
 
 Minibatches are epochs of a permutation drawn from ``numpy.random.default_rng
 ([seed, epoch])``; the random state is therefore fully given by (seed, step),
 which with the parameters, the optimiser state, the jitter and the ELBO history
 is what a checkpoint holds, so a resumed fit retraces the uninterrupted one.
 
-Note for field.py (owned separately): the fit summary (ELBO history, τ source,
-steps) is stored as a ``"fit"`` entry of ``FlowField.metadata_json`` through
-``dataclasses.replace``; :func:`fit_summary` reads it.  A ``fit_info`` argument
-to ``FlowField.from_params`` would make that explicit.
+The fit record (ELBO history, steps, τ and its source) travels as
+``FlowField.fit_info``.
 """
 
 from __future__ import annotations
@@ -205,21 +203,35 @@ def _with_q(params: fld.FieldParams, mean: jax.Array, sqrt: jax.Array) -> fld.Fi
     return dataclasses.replace(params, q_mean=mean, q_sqrt_raw=fld.q_sqrt_raw_from(sqrt))
 
 
+def data_precision(params: fld.FieldParams, batch: fld.ObservationBatch, *, jitter_multiple) -> tuple[jax.Array, jax.Array]:
+    """(Σ_n Φ_nᵀ R_n⁻¹ Φ_n, Σ_n Φ_nᵀ R_n⁻¹ y_n) over ``batch``, Φ = K(X, Z) L_Z^{−T} (b·d, M·d).
+
+    The likelihood's contribution to the natural parameters of q(w) (Titsias 2009, eq. 10 in
+    whitened form): the optimal q on these observations alone has Λ = I + the first term
+    and Λm = the second.
+    """
+    chol = fld.inducing_cholesky(params, jitter_multiple=jitter_multiple)
+    kzx = params.kernel.gram_matrix(params.inducing_m, batch.position_m)        # (M·d, b·d)
+    phi_t = solve_triangular(chol, kzx, lower=True)                              # Φᵀ
+    weight = jnp.repeat(1.0 / fld.noise_variance_m2_s2(params, batch), batch.position_m.shape[1])
+    return (phi_t * weight) @ phi_t.T, phi_t @ (weight * batch.velocity_m_s.reshape(-1))
+
+
 def natural_step(params: fld.FieldParams, batch: fld.ObservationBatch, n_total, gamma, *,
-                 jitter_multiple: float) -> fld.FieldParams:
-    """θ ← (1 − γ) θ + γ θ̂_B in natural parameters (Hensman et al. 2013, eq. 11-12); γ = 1 is the optimum."""
-    best = fld.optimal_q(params, batch, n_total=n_total, jitter_multiple=jitter_multiple)
+                 jitter_multiple) -> fld.FieldParams:
+    """θ ← (1 − γ) θ + γ θ̂_B in natural parameters (Hensman et al. 2013, §3), θ̂_B = (I + (N/b) ΦᵀR⁻¹Φ,
+    (N/b) ΦᵀR⁻¹y) the optimum for minibatch B scaled to N observations; γ = 1 gives θ̂_B itself."""
+    lam_data, eta_data = data_precision(params, batch, jitter_multiple=jitter_multiple)
+    scale = n_total / batch.position_m.shape[0]
     lam_old, eta_old = natural_from_q(params.q_mean, params.q_sqrt)
-    lam_new, eta_new = natural_from_q(best.q_mean, best.q_sqrt)
-    mean, sqrt = q_from_natural((1 - gamma) * lam_old + gamma * lam_new, (1 - gamma) * eta_old + gamma * eta_new)
-    return _with_q(params, mean, sqrt)
+    eye = jnp.eye(lam_old.shape[0], dtype=lam_old.dtype)
+    lam = (1 - gamma) * lam_old + gamma * (eye + scale * lam_data)
+    eta = (1 - gamma) * eta_old + gamma * scale * eta_data
+    return _with_q(params, *q_from_natural(lam, eta))
 
 
-@jax.jit(static_argnames=("jitter_multiple",))
-def _chunk_natural(params, batch, *, jitter_multiple):
-    best = fld.optimal_q(params, batch, jitter_multiple=jitter_multiple)
-    lam, eta = natural_from_q(best.q_mean, best.q_sqrt)
-    return lam - jnp.eye(lam.shape[0], dtype=lam.dtype), eta
+_natural_step_jit = jax.jit(natural_step, static_argnames=("jitter_multiple",))
+_chunk_natural = jax.jit(data_precision, static_argnames=("jitter_multiple",))
 
 
 @jax.jit(static_argnames=("jitter_multiple",))
@@ -496,7 +508,7 @@ def _initial_q(params: fld.FieldParams, data: _Data, seed: int) -> fld.FieldPara
     if data.n <= INIT_SUBSAMPLE:
         return exact_q(params, data.batch, jitter_multiple=fld.JITTER_MULTIPLE)
     idx = np.sort(np.random.default_rng([seed, 2**31 - 1]).choice(data.n, INIT_SUBSAMPLE, replace=False))
-    return natural_step(params, _take(data.batch, idx), float(data.n), 1.0, jitter_multiple=fld.JITTER_MULTIPLE)
+    return _natural_step_jit(params, _take(data.batch, idx), float(data.n), 1.0, jitter_multiple=fld.JITTER_MULTIPLE)
 
 
 def _z_scale(params: fld.FieldParams) -> float:
@@ -511,10 +523,9 @@ def _finish(state: _State, data: _Data, config: _Config, *, steps: int, patience
     elbo = full_elbo(params, data.batch, jitter_multiple=jitter)
     if not math.isfinite(elbo):
         raise RuntimeError("fit: the final ELBO is not finite; refit with fewer inducing points or check the data")
-    field = fld.FlowField.from_params(params, frame=data.frame, data_summary=_data_summary(data),
-                                      position_error_m=float(np.asarray(data.obs.position_error_m).mean()),
-                                      jitter_multiple=jitter)
-    tau, rms_speed, length = _decorrelation_time_s(field, data)
+    common = dict(frame=data.frame, data_summary=_data_summary(data), jitter_multiple=jitter,
+                  position_error_m=float(np.asarray(data.obs.position_error_m).mean()))
+    tau, rms_speed, length = _decorrelation_time_s(params, data, jitter)
     info = {"elbo": elbo, "elbo_per_observation": elbo / data.n, "elbo_history": list(state.history),
             "elbo_history_kind": "per-step minibatch estimate (N/b scaled), nats" if config.batch_size < data.n
             else "per-step ELBO on all observations, nats",
@@ -524,10 +535,7 @@ def _finish(state: _State, data: _Data, config: _Config, *, steps: int, patience
             "decorrelation_time_source": "length_scale/rms_speed", "rms_speed_m_s": rms_speed,
             "length_scale_m": length,
             "rms_speed_source": "posterior mean speed at the observation midpoints (RMS)"}
-    field = dataclasses.replace(field, decorrelation_time_s=tau)
-    meta = json.loads(field.metadata_json)
-    meta["fit"] = info
-    return dataclasses.replace(field, metadata_json=json.dumps(meta, sort_keys=True))
+    return fld.FlowField.from_params(params, decorrelation_time_s=tau, fit_info=info, **common)
 
 
 def _data_summary(data: _Data) -> dict[str, Any]:
@@ -545,29 +553,35 @@ def _data_summary(data: _Data) -> dict[str, Any]:
     return summary
 
 
-def field_length_scale_m(field: fld.FlowField) -> float:
+def length_scale_m(kernel) -> float:
     """ℓ of the kernel; for Helmholtz the variance-weighted mean (σ₁²ℓ₁ + σ₂²ℓ₂)/(σ₁² + σ₂²) of the parts."""
-    h = field.params.kernel.hyperparameters()
+    h = kernel.hyperparameters()
     if "length_scale_m" in h:
         return float(h["length_scale_m"])
     w1, w2 = h["divergence_free_velocity_scale_m_s"] ** 2, h["curl_free_velocity_scale_m_s"] ** 2
     return float((w1 * h["divergence_free_length_scale_m"] + w2 * h["curl_free_length_scale_m"]) / (w1 + w2))
 
 
-def _decorrelation_time_s(field: fld.FlowField, data: _Data) -> tuple[float, float, float]:
-    """τ = ℓ / U_rms (s), U_rms the RMS posterior-mean speed at ≤ 20 000 observation midpoints (Taylor 1921)."""
-    position = np.asarray(data.batch.position_m)
-    if position.shape[0] > KMEANS_SUBSAMPLE:
-        position = position[np.random.default_rng(0).choice(position.shape[0], KMEANS_SUBSAMPLE, replace=False)]
-    mean, _ = field.predict(position)
-    rms = float(np.sqrt(np.mean(np.sum(mean**2, axis=1))))
-    length = field_length_scale_m(field)
+@jax.jit(static_argnames=("jitter_multiple",))
+def _mean_speed_squared(params: fld.FieldParams, x: jax.Array, *, jitter_multiple: float) -> jax.Array:
+    """Σ_n |μ(x_n)|² with μ(x) = K(x, Z) L_Z^{−T} m, the posterior mean (m²/s²)."""
+    chol = fld.inducing_cholesky(params, jitter_multiple=jitter_multiple)
+    alpha = solve_triangular(chol.T, params.q_mean, lower=False)
+    return jnp.sum((params.kernel.gram_matrix(x, params.inducing_m) @ alpha) ** 2)
+
+
+def _decorrelation_time_s(params: fld.FieldParams, data: _Data, jitter: float) -> tuple[float, float, float]:
+    """τ = ℓ / U_rms (s), U_rms the RMS posterior-mean speed at the observation midpoints (Taylor 1921)."""
+    total = sum(float(_mean_speed_squared(params, _take(data.batch, idx).position_m, jitter_multiple=jitter))
+                for idx in _chunks(data.n))
+    rms = math.sqrt(total / data.n)
+    length = length_scale_m(params.kernel)
     return length / max(rms, 1e-9), rms, length
 
 
 def fit_summary(field: fld.FlowField) -> dict[str, Any]:
-    """The ``"fit"`` record of a fitted field (ELBO history, steps, τ source), or {} if it has none."""
-    return json.loads(field.metadata_json).get("fit", {})
+    """The fit record of a fitted field (ELBO history, steps, τ source), or {} if it has none."""
+    return field.fit_info
 
 
 def fit_report(field: fld.FlowField) -> dict[str, Any]:

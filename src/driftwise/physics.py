@@ -38,9 +38,11 @@ from .errors import InputError
 
 __all__ = [
     "DerivativePosterior",
+    "FieldGrid",
     "HelmholtzSplit",
     "Significance",
     "benjamini_hochberg",
+    "check",
     "divergence_posterior",
     "field_grid",
     "helmholtz_split",
@@ -521,3 +523,11 @@ def field_grid(field, *, spacing_m: float | None = None, cells_across: int = 80,
                      div.mean.reshape(shape), div.std.reshape(shape), vort.mean.reshape(shape),
                      vort.std.reshape(shape), ratio.reshape(shape), (ratio < SUPPORT_RATIO).reshape(shape),
                      lon, lat, {p.quantity: p.reason for p in (div, vort) if p.reason}, frame, field.kernel_family)
+
+
+def check(tracks, **options) -> dict:
+    """Family evidence, constraint tests and the verdict for ``tracks``: :func:`driftwise.verdict.check`
+    (kept there so this module stays the mathematics; same keyword-only options)."""
+    from .verdict import check as run
+
+    return run(tracks, **options)

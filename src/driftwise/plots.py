@@ -24,9 +24,8 @@ pattern (plain arrays in, ``Figure`` out).
 from __future__ import annotations
 
 import os
-from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Callable, Mapping, Sequence
+from typing import Any, Mapping, Sequence
 
 import numpy as np
 from matplotlib.colors import TwoSlopeNorm
@@ -34,8 +33,12 @@ from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 
 from .io import atomic_write
+from .mapaxes import (WIDTH_IN, MapCoords, draw_places, draw_polygon, draw_tracks, grid_corners,
+                      hatch_unsupported, light_arrows, map_height_in, new_figure, nice_round, unique_in_order)
 
-WIDTH_IN = 7.2
+# The private names the map helpers had before they moved to driftwise.mapaxes (used by figure functions
+# other modules add here).
+_Coords, _figure, _map_height_in = MapCoords, new_figure, map_height_in
 DPI = 130
 SEQUENTIAL = "viridis"
 UNCERTAINTY = "cividis"
@@ -54,8 +57,12 @@ __all__ = [
     "plot_divergence_vorticity",
     "plot_release_spread",
     "plot_area_probability",
+    "plot_plume",
+    "mixture_density_grid",
+    "highest_density_levels",
     "plot_skill_coverage",
     "plot_elbo",
+    "plot_physics_maps",
 ]
 
 
@@ -100,72 +107,6 @@ def wilson_interval(k: np.ndarray, n: np.ndarray, *, z: float = 1.959964) -> tup
     return centre - half, centre + half
 
 
-@dataclass(frozen=True)
-class _Coords:
-    """Maps local metric positions to what the axes show (km or lon/lat)."""
-
-    to_lonlat: Callable[[np.ndarray], tuple[np.ndarray, np.ndarray]] | None
-    lat0_deg: float = 0.0
-
-    @classmethod
-    def from_frame(cls, frame: Any, sample_m: np.ndarray | None = None) -> "_Coords":
-        if frame is None or getattr(frame, "kind", "metric") != "lonlat":
-            return cls(None)
-        coords = cls(frame.to_lonlat)
-        lat0 = 0.0
-        if sample_m is not None and np.size(sample_m):
-            _, lat = coords.xy(np.asarray(sample_m, float).reshape(-1, 2)[:1])
-            lat0 = float(np.ravel(lat)[0])
-        return cls(frame.to_lonlat, lat0)
-
-    @property
-    def aspect(self) -> float:
-        """Display units per unit of y relative to x (1/cos φ₀ for lon/lat, 1 for km)."""
-        return 1.0 / max(np.cos(np.radians(self.lat0_deg)), 1e-3) if self.geographic else 1.0
-
-    @property
-    def geographic(self) -> bool:
-        return self.to_lonlat is not None
-
-    def xy(self, points_m: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        pts = np.asarray(points_m, float)
-        flat = pts.reshape(-1, pts.shape[-1])[:, :2]
-        if self.to_lonlat is None:
-            x, y = flat[:, 0] / 1000.0, flat[:, 1] / 1000.0
-        else:
-            lon, lat = self.to_lonlat(flat)
-            x, y = np.asarray(lon, float), np.asarray(lat, float)
-        return x.reshape(pts.shape[:-1]), y.reshape(pts.shape[:-1])
-
-    def grid(self, x_m: np.ndarray, y_m: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        gx, gy = np.meshgrid(np.asarray(x_m, float), np.asarray(y_m, float))
-        return self.xy(np.stack([gx, gy], axis=-1))
-
-    def decorate(self, ax: Any) -> None:
-        if self.geographic:
-            ax.set_xlabel("longitude (° E)")
-            ax.set_ylabel("latitude (° N)")
-            ax.set_aspect(self.aspect)
-        else:
-            ax.set_xlabel("x, local frame (km)")
-            ax.set_ylabel("y, local frame (km)")
-            ax.set_aspect("equal")
-
-
-def _figure(ncols: int = 1, *, height_in: float = 4.6, width_in: float = WIDTH_IN) -> tuple[Figure, list[Any]]:
-    fig = Figure(figsize=(width_in, height_in), layout="constrained")
-    axes = fig.subplots(1, ncols, squeeze=False)[0]
-    return fig, list(axes)
-
-
-def _map_height_in(coords: "_Coords", X: np.ndarray, Y: np.ndarray, ncols: int, *, extra_in: float) -> float:
-    """Figure height that fits ``ncols`` equal-aspect map panels of the extent of X, Y without blank bands."""
-    width = max(float(np.nanmax(X) - np.nanmin(X)), 1e-12)
-    height = float(np.nanmax(Y) - np.nanmin(Y)) * coords.aspect
-    panel_in = (WIDTH_IN - 0.9 * ncols) / ncols
-    return float(np.clip(panel_in * height / width + extra_in, 2.6, 8.5))
-
-
 def _power_of_ten(values: np.ndarray) -> int:
     """Exponent e so that values / 10**e are of order one (for colour-bar units)."""
     big = np.nanmax(np.abs(values)) if np.size(values) and np.any(np.isfinite(values)) else 1.0
@@ -177,81 +118,36 @@ def _superscript(exponent: int) -> str:
     return str(exponent).translate(table)
 
 
-def _hatch_unsupported(ax: Any, X: np.ndarray, Y: np.ndarray, support: np.ndarray | None) -> list[Any]:
-    """Hatch grid cells outside the data support; return a legend handle when drawn."""
-    if support is None or np.all(support):
-        return []
-    from matplotlib.patches import Patch
-
-    cs = ax.contourf(X, Y, (~np.asarray(support, bool)).astype(float), levels=[0.5, 1.5], colors="none",
-                     hatches=["///"])
-    cs.set_hatchcolor("0.3")
-    cs.set_hatch_linewidth(0.7)
-    return [Patch(facecolor="none", edgecolor="0.3", hatch="///", label="little data (posterior ≈ prior)")]
-
-
-def _draw_tracks(ax: Any, coords: _Coords, position_m: np.ndarray, track: np.ndarray, **style: Any) -> None:
-    x, y = coords.xy(position_m)
-    for key in _unique_in_order(track):
-        sel = track == key
-        ax.plot(x[sel], y[sel], **style)
-
-
-def _unique_in_order(values: np.ndarray) -> list[Any]:
-    _, first = np.unique(values, return_index=True)
-    return [values[i] for i in np.sort(first)]
-
-
-def _draw_places(ax: Any, coords: _Coords, places: Sequence[Mapping[str, Any]] | None) -> None:
-    """Named sites ``{"label", "xy_m" (2,)}`` as a black-and-white cross with a haloed label."""
-    import matplotlib.patheffects as effects
-
-    halo = [effects.withStroke(linewidth=2.5, foreground="white")]
-    for place in places or ():
-        x, y = coords.xy(np.asarray(place["xy_m"], float)[None, :2])
-        ax.plot(x, y, marker="X", color="black", markeredgecolor="white", markersize=9, linestyle="none",
-                zorder=6)
-        ax.annotate(str(place["label"]), (x[0], y[0]), xytext=(6, -10), textcoords="offset points",
-                    fontsize="x-small", zorder=6, path_effects=halo)
-
-
-def _draw_polygon(ax: Any, coords: _Coords, polygon_m: np.ndarray, label: str) -> Any:
-    from matplotlib.patches import Patch
-
-    ring = np.vstack([polygon_m, polygon_m[:1]])
-    x, y = coords.xy(ring)
-    patch = ax.fill(x, y, facecolor="none", edgecolor="0.1", hatch="..", linewidth=0)[0]
-    patch.set_hatchcolor("0.35")
-    ax.plot(x, y, color="0.1", linewidth=1.4)
-    return Patch(facecolor="none", edgecolor="0.1", hatch="..", linewidth=1.4, label=label)
-
-
 # ----------------------------------------------------------------- tracks
 def plot_tracks(position_m: np.ndarray, track: np.ndarray, *, frame: Any = None,
                 heldout_position_m: np.ndarray | None = None, heldout_track: np.ndarray | None = None,
-                places: Sequence[Mapping[str, Any]] | None = None, title: str = "Drifter tracks") -> Figure:
+                places: Sequence[Mapping[str, Any]] | None = None, area_m: np.ndarray | None = None,
+                area_label: str = "area of interest", title: str = "Drifter tracks") -> Figure:
     """The fixes as tracks: fit set solid dark grey, held-out set dashed, starts marked.
 
     ``position_m`` (n, 2) metres in the local frame, ``track`` (n,) track ids,
-    sorted by time within each track; ``places`` named sites ``{"label", "xy_m"}``.
+    sorted by time within each track; ``places`` named sites ``{"label", "xy_m"}``;
+    ``area_m`` (k, 2) a polygon of interest, drawn hatched.
     """
     position_m, track = np.asarray(position_m, float), np.asarray(track)
-    coords = _Coords.from_frame(frame, position_m)
+    coords = MapCoords.from_frame(frame, position_m)
     everything = position_m if heldout_position_m is None else np.vstack([position_m, heldout_position_m])
-    fig, (ax,) = _figure(height_in=_map_height_in(coords, *coords.xy(everything), 1, extra_in=1.0))
-    _draw_tracks(ax, coords, position_m, track, color="0.25", linewidth=0.8)
-    starts = np.array([position_m[track == k][0] for k in _unique_in_order(track)])
+    fig, (ax,) = new_figure(height_in=map_height_in(coords, *coords.xy(everything), 1, extra_in=1.0))
+    draw_tracks(ax, coords, position_m, track, color="0.25", linewidth=0.8)
+    starts = np.array([position_m[track == k][0] for k in unique_in_order(track)])
     sx, sy = coords.xy(starts)
     ax.plot(sx, sy, "o", color="0.0", markersize=3.5, linestyle="none")
     handles = [Line2D([], [], color="0.25", linewidth=1.0, label=f"fit set ({len(starts)} tracks)"),
                Line2D([], [], color="0.0", marker="o", markersize=3.5, linestyle="none", label="track start")]
     if heldout_position_m is not None and heldout_track is not None:
         heldout_position_m, heldout_track = np.asarray(heldout_position_m, float), np.asarray(heldout_track)
-        _draw_tracks(ax, coords, heldout_position_m, heldout_track, color="#d55e00", linewidth=1.1,
+        draw_tracks(ax, coords, heldout_position_m, heldout_track, color="#d55e00", linewidth=1.1,
                      linestyle="--")
-        n_held = len(_unique_in_order(heldout_track))
+        n_held = len(unique_in_order(heldout_track))
         handles.append(Line2D([], [], color="#d55e00", linestyle="--", label=f"held out ({n_held} tracks)"))
-    _draw_places(ax, coords, places)
+    if area_m is not None:
+        handles.append(draw_polygon(ax, coords, np.asarray(area_m, float), area_label))
+    draw_places(ax, coords, places)
     coords.decorate(ax)
     ax.set_title(title)
     ax.legend(handles=handles, loc="best", fontsize="small", framealpha=0.9)
@@ -270,10 +166,10 @@ def plot_mean_field(x_m: np.ndarray, y_m: np.ndarray, mean_m_s: np.ndarray, sd_m
     to the prior (hatched); ``data_position_m`` (n, 2) observation points.
     """
     mean_m_s, sd_m_s = np.asarray(mean_m_s, float), np.asarray(sd_m_s, float)
-    coords = _Coords.from_frame(frame, np.array([[np.mean(x_m), np.mean(y_m)]]))
+    coords = MapCoords.from_frame(frame, np.array([[np.mean(x_m), np.mean(y_m)]]))
     X, Y = coords.grid(x_m, y_m)
     speed = np.hypot(mean_m_s[..., 0], mean_m_s[..., 1])
-    fig, (ax_speed, ax_sd) = _figure(2, height_in=_map_height_in(coords, X, Y, 2, extra_in=2.0))
+    fig, (ax_speed, ax_sd) = new_figure(2, height_in=map_height_in(coords, X, Y, 2, extra_in=2.0))
     vmax = float(np.nanmax(np.concatenate([speed.ravel(), sd_m_s.ravel()])))
     mesh = ax_speed.pcolormesh(X, Y, speed, cmap=SEQUENTIAL, shading="auto", vmin=0.0, vmax=vmax)
     fig.colorbar(mesh, ax=ax_speed, orientation="horizontal", label="posterior mean speed (m/s)", shrink=0.9)
@@ -281,7 +177,7 @@ def plot_mean_field(x_m: np.ndarray, y_m: np.ndarray, mean_m_s: np.ndarray, sd_m
     q = ax_speed.quiver(X[::step, ::step], Y[::step, ::step], mean_m_s[::step, ::step, 0],
                         mean_m_s[::step, ::step, 1], color="white", edgecolor="black", linewidth=0.4,
                         angles="uv", pivot="middle", width=0.006)
-    ref = _nice_round(np.nanpercentile(speed, 90))
+    ref = nice_round(np.nanpercentile(speed, 90))
     ax_speed.quiverkey(q, 0.80, 1.03, ref, f"{ref:g} m/s", labelpos="E", coordinates="axes",
                        fontproperties={"size": "small"})
     mesh_sd = ax_sd.pcolormesh(X, Y, sd_m_s, cmap=UNCERTAINTY, shading="auto", vmin=0.0, vmax=vmax)
@@ -293,7 +189,7 @@ def plot_mean_field(x_m: np.ndarray, y_m: np.ndarray, mean_m_s: np.ndarray, sd_m
         ax_sd.plot(dx, dy, ".", color="white", markersize=1.2, alpha=0.7, linestyle="none")
         handles.append(Line2D([], [], marker=".", color="0.5", linestyle="none", label="observations"))
     for ax in (ax_speed, ax_sd):
-        handles_ax = _hatch_unsupported(ax, X, Y, support)
+        handles_ax = hatch_unsupported(ax, X, Y, support)
         coords.decorate(ax)
     handles += handles_ax
     ax_speed.set_title("(a) mean velocity", loc="left")
@@ -304,16 +200,6 @@ def plot_mean_field(x_m: np.ndarray, y_m: np.ndarray, mean_m_s: np.ndarray, sd_m
     return fig
 
 
-def _nice_round(value: float) -> float:
-    """1, 2 or 5 times a power of ten just below ``value`` (for a quiver key)."""
-    if not np.isfinite(value) or value <= 0:
-        return 0.1
-    exp = np.floor(np.log10(value))
-    lead = value / 10**exp
-    return float(max(m for m in (1.0, 2.0, 5.0) if m <= lead) * 10**exp)
-
-
-# ----------------------------------------------------------------- divergence and vorticity
 def plot_divergence_vorticity(x_m: np.ndarray, y_m: np.ndarray, divergence_s: np.ndarray | None,
                               divergence_z: np.ndarray | None, vorticity_s: np.ndarray,
                               vorticity_z: np.ndarray, *, frame: Any = None,
@@ -329,25 +215,29 @@ def plot_divergence_vorticity(x_m: np.ndarray, y_m: np.ndarray, divergence_s: np
     with a ``divergence_note`` for a model that is divergence-free by
     construction (nothing is drawn in that panel but the note).
     """
-    coords = _Coords.from_frame(frame, np.array([[np.mean(x_m), np.mean(y_m)]]))
+    coords = MapCoords.from_frame(frame, np.array([[np.mean(x_m), np.mean(y_m)]]))
     X, Y = coords.grid(x_m, y_m)
-    fig, axes = _figure(2, height_in=_map_height_in(coords, X, Y, 2, extra_in=2.0))
+    fig, axes = new_figure(2, height_in=map_height_in(coords, X, Y, 2, extra_in=2.0))
     panels = [("(a) divergence ∇·u", divergence_s, divergence_z), ("(b) vorticity ∂v/∂x − ∂u/∂y", vorticity_s,
                                                                       vorticity_z)]
     thresholds = (z_threshold, z_threshold) if np.isscalar(z_threshold) else tuple(z_threshold)
     handles: dict[str, Any] = {}
+    hatches: list[Any] = []
     for ax, (title, value, z), threshold in zip(axes, panels, thresholds):
-        coords.decorate(ax)
         ax.set_title(title, loc="left")
         if value is None:
             ax.text(0.5, 0.5, divergence_note or "not available", ha="center", va="center", wrap=True,
                     transform=ax.transAxes, fontsize="small")
             ax.set_xlim(np.min(X), np.max(X))
             ax.set_ylim(np.min(Y), np.max(Y))
-            continue
-        for h in _signed_panel(fig, ax, X, Y, np.asarray(value, float), np.asarray(z, float), threshold,
-                               title.split()[1]) + _hatch_unsupported(ax, X, Y, support):
-            handles.setdefault(h.get_label(), h)
+        else:
+            for h in _signed_panel(fig, ax, X, Y, np.asarray(value, float), np.asarray(z, float), threshold,
+                                   title.split()[1]):
+                handles.setdefault(h.get_label(), h)
+            hatches = hatch_unsupported(ax, X, Y, support)
+        coords.decorate(ax)
+    for h in hatches:  # the hatch key last, after the line keys
+        handles.setdefault(h.get_label(), h)
     if handles:
         fig.legend(handles=list(handles.values()), loc="outside lower center", ncols=len(handles),
                    fontsize="x-small", frameon=False)
@@ -390,19 +280,19 @@ def plot_release_spread(releases: Sequence[Mapping[str, Any]], *, ellipse_times_
     a polygon drawn hatched; ``places`` named sites ``{"label", "xy_m"}``.
     """
     sample = np.concatenate([np.asarray(r["mean_m"], float)[:, :2] for r in releases])
-    coords = _Coords.from_frame(frame, sample[:1])
+    coords = MapCoords.from_frame(frame, sample[:1])
     extent = np.vstack([sample, _ellipse_extent(releases, ellipse_times_s)])
     if field is not None:
-        extent = np.vstack([extent, _grid_corners(field)])
-    fig, (ax,) = _figure(height_in=_map_height_in(coords, *coords.xy(extent), 1, extra_in=1.0))
+        extent = np.vstack([extent, grid_corners(field)])
+    fig, (ax,) = new_figure(height_in=map_height_in(coords, *coords.xy(extent), 1, extra_in=1.0))
     if field is not None:
-        _light_arrows(ax, coords, field)
+        light_arrows(ax, coords, field)
     handles = []
     if area_m is not None:
-        handles.append(_draw_polygon(ax, coords, np.asarray(area_m, float), area_label))
+        handles.append(draw_polygon(ax, coords, np.asarray(area_m, float), area_label))
     for i, rel in enumerate(releases):
         handles += _draw_release(ax, coords, rel, ellipse_times_s, i)
-    _draw_places(ax, coords, places)
+    draw_places(ax, coords, places)
     handles += [Line2D([], [], color="0.2", linewidth=4, alpha=0.35, label="50 % ellipse"),
                 Line2D([], [], color="0.2", linestyle="--", linewidth=1.0, label="95 % ellipse")]
     coords.decorate(ax)
@@ -423,20 +313,7 @@ def _ellipse_extent(releases: Sequence[Mapping[str, Any]], ellipse_times_s: Sequ
     return np.vstack(pts) if pts else np.zeros((0, 2))
 
 
-def _grid_corners(field: Mapping[str, np.ndarray]) -> np.ndarray:
-    x, y = np.asarray(field["x_m"], float), np.asarray(field["y_m"], float)
-    return np.array([[x.min(), y.min()], [x.max(), y.max()]])
-
-
-def _light_arrows(ax: Any, coords: _Coords, field: Mapping[str, np.ndarray]) -> None:
-    X, Y = coords.grid(field["x_m"], field["y_m"])
-    mean = np.asarray(field["mean_m_s"], float)
-    step = max(1, int(round(max(mean.shape[:2]) / 18)))
-    ax.quiver(X[::step, ::step], Y[::step, ::step], mean[::step, ::step, 0], mean[::step, ::step, 1],
-              color="0.65", angles="uv", pivot="middle", width=0.003, zorder=0)
-
-
-def _draw_release(ax: Any, coords: _Coords, rel: Mapping[str, Any], ellipse_times_s: Sequence[float],
+def _draw_release(ax: Any, coords: MapCoords, rel: Mapping[str, Any], ellipse_times_s: Sequence[float],
                   i: int) -> list[Line2D]:
     colour, style, marker = GREYS[i % len(GREYS)], LINESTYLES[i % len(LINESTYLES)], MARKERS[i % len(MARKERS)]
     mean, cov = np.asarray(rel["mean_m"], float)[:, :2], np.asarray(rel["covariance_m2"], float)[:, :2, :2]
@@ -459,6 +336,72 @@ def _draw_release(ax: Any, coords: _Coords, rel: Mapping[str, Any], ellipse_time
     return [path]
 
 
+def mixture_density_grid(means_m: np.ndarray, covs_m2: np.ndarray, *, n: int = 160,
+                         pad_sd: float = 4.0) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Equal-weight Gaussian mixture density on a regular grid covering it: (x (n,), y (n,), pdf (n, n) in 1/m²).
+
+    pdf(x) = (1/R) Σ_r N(x | m_r, P_r), the position density of material released as R
+    equal parcels (a plume).  The grid spans every component's mean ± ``pad_sd`` s.d.
+    """
+    means, covs = np.asarray(means_m, float)[:, :2], np.asarray(covs_m2, float)[:, :2, :2]
+    covs = covs + np.eye(2) * 1e-6 * max(1.0, float(np.max(np.trace(covs, axis1=1, axis2=2))))
+    sd = np.sqrt(np.stack([covs[:, 0, 0], covs[:, 1, 1]], -1))
+    lo, hi = (means - pad_sd * sd).min(0), (means + pad_sd * sd).max(0)
+    x, y = np.linspace(lo[0], hi[0], n), np.linspace(lo[1], hi[1], n)
+    pts = np.stack(np.meshgrid(x, y), -1).reshape(-1, 2)
+    inv, det = np.linalg.inv(covs), np.linalg.det(covs)
+    d = pts[None, :, :] - means[:, None, :]
+    maha = np.einsum("rni,rij,rnj->rn", d, inv, d)
+    pdf = np.mean(np.exp(-0.5 * maha) / (2 * np.pi * np.sqrt(det))[:, None], axis=0)
+    return x, y, pdf.reshape(n, n)
+
+
+def highest_density_levels(pdf: np.ndarray, cell_area_m2: float, probabilities: Sequence[float]) -> list[float]:
+    """Density thresholds whose super-level sets hold ``probabilities`` of the mass (highest-density regions).
+
+    Cells are sorted by density; the level for p is the density at which the running
+    sum of density × cell area first reaches p (of the total on the grid).
+    """
+    values = np.sort(np.asarray(pdf, float).ravel())[::-1]
+    mass = np.cumsum(values) * cell_area_m2
+    mass /= mass[-1]
+    return [float(values[min(int(np.searchsorted(mass, p)), values.size - 1)]) for p in probabilities]
+
+
+def plot_plume(snapshots: Sequence[Mapping[str, Any]], *, frame: Any = None,
+               field: Mapping[str, np.ndarray] | None = None, area_m: np.ndarray | None = None,
+               area_label: str = "target area", places: Sequence[Mapping[str, Any]] | None = None,
+               title: str = "Plume") -> Figure:
+    """A continuous release as plume snapshots: 50 % (filled) and 95 % (line) highest-density regions.
+
+    Each snapshot is ``{"label", "means_m" (R, 2), "covariances_m2" (R, 2, 2)}``: the parcels
+    present at one clock time; the plume is their equal-weight Gaussian mixture
+    (:func:`mixture_density_grid`), and its highest-density regions hold 50 % and 95 % of it.
+    """
+    grids = [mixture_density_grid(s["means_m"], s["covariances_m2"]) for s in snapshots]
+    corners = np.vstack([[[g[0][0], g[1][0]], [g[0][-1], g[1][-1]]] for g in grids])
+    coords = MapCoords.from_frame(frame, corners[:1])
+    extent = corners if field is None else np.vstack([corners, grid_corners(field)])
+    fig, (ax,) = new_figure(height_in=map_height_in(coords, *coords.xy(extent), 1, extra_in=1.0))
+    if field is not None:
+        light_arrows(ax, coords, field)
+    handles = [] if area_m is None else [draw_polygon(ax, coords, np.asarray(area_m, float), area_label)]
+    for i, (snap, (x, y, pdf)) in enumerate(zip(snapshots, grids)):
+        colour, style = GREYS[i % len(GREYS)], LINESTYLES[i % len(LINESTYLES)]
+        p50, p95 = highest_density_levels(pdf, (x[1] - x[0]) * (y[1] - y[0]), (0.5, 0.95))
+        X, Y = coords.grid(x, y)
+        ax.contourf(X, Y, pdf, levels=[p50, np.inf], colors=[colour], alpha=0.35, zorder=2)
+        ax.contour(X, Y, pdf, levels=[p95], colors=[colour], linestyles=[style], linewidths=1.4, zorder=3)
+        handles.append(Line2D([], [], color=colour, linestyle=style, linewidth=1.4, label=str(snap["label"])))
+    draw_places(ax, coords, places)
+    handles += [Line2D([], [], color="0.2", linewidth=4, alpha=0.35, label="50 % of the plume (shaded)"),
+                Line2D([], [], color="0.2", linewidth=1.2, label="95 % of the plume (line)")]
+    coords.decorate(ax)
+    ax.set_title(title)
+    ax.legend(handles=handles, loc="best", fontsize="x-small", framealpha=0.9)
+    return fig
+
+
 def plot_area_probability(curves: Sequence[Mapping[str, Any]], *, area_label: str = "target area",
                           threshold: float | None = None, time_label: str = "time since release (h)") -> Figure:
     """Probability of being inside an area against time, one line per scenario.
@@ -467,7 +410,7 @@ def plot_area_probability(curves: Sequence[Mapping[str, Any]], *, area_label: st
     ``threshold`` a dotted line is drawn and the first time each curve reaches
     it is marked.
     """
-    fig, (ax,) = _figure(height_in=3.6)
+    fig, (ax,) = new_figure(height_in=3.6)
     for i, curve in enumerate(curves):
         t_h = np.asarray(curve["times_s"], float) / 3600.0
         p = np.asarray(curve["probability"], float)
@@ -477,7 +420,7 @@ def plot_area_probability(curves: Sequence[Mapping[str, Any]], *, area_label: st
         if threshold is not None and np.any(p >= threshold):
             k = int(np.argmax(p >= threshold))
             ax.plot(t_h[k], p[k], marker="*", color="black", markersize=11, linestyle="none")
-            ax.annotate(f"{t_h[k]:.3g} h", (t_h[k], p[k]), xytext=(4, -12), textcoords="offset points",
+            ax.annotate(f"{t_h[k]:.3g} h", (t_h[k], p[k]), xytext=(-26, 6), textcoords="offset points",
                         fontsize="x-small")
     if threshold is not None:
         ax.axhline(threshold, color="0.3", linestyle=":", linewidth=1.0, label=f"threshold {threshold:g}")
@@ -503,7 +446,7 @@ def plot_skill_coverage(horizons_s: Sequence[float], *, skill: Sequence[float], 
     ``n_forecasts`` the coverage carries Wilson 95 % intervals.
     """
     h = np.asarray(horizons_s, float) / 3600.0
-    fig, (ax_s, ax_d, ax_c) = _figure(3, height_in=3.5, width_in=WIDTH_IN + 1.2)
+    fig, (ax_s, ax_d, ax_c) = new_figure(3, height_in=3.5, width_in=WIDTH_IN + 1.2)
     series = [("driftwise", {"skill": skill, "separation_m": separation_m})]
     series += list((baselines or {}).items())
     for i, (name, values) in enumerate(series):
@@ -546,32 +489,88 @@ def _coverage_panel(ax: Any, h: np.ndarray, cov50: Sequence[float], cov95: Seque
 
 # ----------------------------------------------------------------- fitting
 def plot_elbo(steps: Sequence[float], elbo: Sequence[float], *, n_observations: int | None = None,
-              stopped_at: int | None = None) -> Figure:
-    """The evidence lower bound during fitting: whole run and the final half.
+              final_elbo: float | None = None, stopped_at: int | None = None, window: int = 10) -> Figure:
+    """The evidence lower bound during fitting, per optimiser step.
 
-    ``elbo`` in nats (per observation when ``n_observations`` is given, so runs
-    of different size compare).  The left panel shows the shortfall from the
-    best value on a log scale (how fast the fit converged); the right one the
-    final half on a linear scale (the plateau early stopping acted on).
+    ``elbo`` (nats; per observation when ``n_observations`` is given, so runs of
+    different size compare) is often a minibatch estimate, so it is drawn thin
+    and grey with its centred running mean over ``window`` steps in black;
+    ``final_elbo`` (the bound on all data at the end) is a dashed line.  The
+    y-range is robust: an early transient far below the plateau is cut off
+    and the number of steps below the axis is stated.
     """
     steps, elbo = np.asarray(steps, float), np.asarray(elbo, float)
     unit = "nats"
+    scale = float(n_observations) if n_observations else 1.0
     if n_observations:
-        elbo, unit = elbo / n_observations, "nats per observation"
-    fig, (ax_all, ax_end) = _figure(2, height_in=3.3)
-    shortfall = np.nanmax(elbo) - elbo
-    keep = shortfall > 0
-    ax_all.semilogy(steps[keep], shortfall[keep], color="0.1", linewidth=1.0)
-    half = len(steps) // 2
-    ax_end.plot(steps[half:], elbo[half:], color="0.1", linewidth=1.0)
-    ax_all.set_ylabel(f"best ELBO − ELBO ({unit})")
-    ax_end.set_ylabel(f"ELBO ({unit})")
-    for ax, title in ((ax_all, "(a) shortfall from the best (log)"), (ax_end, "(b) final half")):
-        ax.set_xlabel("optimiser step (–)")
-        ax.set_title(title, loc="left")
-        ax.grid(True, color="0.9")
-        if stopped_at is not None:
-            ax.axvline(stopped_at, color="0.4", linestyle="--", linewidth=0.9, label="early stop")
+        unit = "nats per observation"
+    elbo = elbo / scale
+    fig, (ax,) = new_figure(height_in=3.2, width_in=WIDTH_IN * 0.8)
+    ax.plot(steps, elbo, color="0.6", linewidth=0.7, label="per step")
+    if len(elbo) >= window:
+        kernel = np.ones(window) / window
+        smooth = np.convolve(elbo, kernel, mode="valid")
+        ax.plot(steps[window // 2: window // 2 + smooth.size], smooth, color="0.0", linewidth=1.6,
+                label=f"running mean ({window} steps)")
+    if final_elbo is not None:
+        ax.axhline(final_elbo / scale, color="0.2", linestyle="--", linewidth=1.0, label="final, all data")
+    tail = elbo[len(elbo) // 2:]
+    spread = float(np.nanmax(tail) - np.nanmin(tail)) or abs(float(np.nanmax(tail))) * 1e-3 or 1.0
+    low = float(np.nanmin(tail)) - 3.0 * spread
+    top = max(float(np.nanmax(elbo)), final_elbo / scale if final_elbo is not None else -np.inf) + 0.5 * spread
+    below = int(np.sum(elbo < low))
+    if below:
+        ax.set_ylim(low, top)
+        ax.text(0.99, 0.03, f"{below} early step(s) below the axis (min {np.nanmin(elbo):.4g})",
+                transform=ax.transAxes, ha="right", fontsize="x-small", color="0.3")
     if stopped_at is not None:
-        ax_end.legend(fontsize="x-small")
+        ax.axvline(stopped_at, color="0.4", linestyle=":", linewidth=1.0, label="early stop")
+    ax.set_xlabel("optimiser step (–)")
+    ax.set_ylabel(f"ELBO ({unit})")
+    ax.grid(True, color="0.9")
+    ax.legend(fontsize="x-small", loc="lower right" if not below else "center right")
+    return fig
+
+
+# ----------------------------------------------------------------- skill: from a score result
+def plot_skill(result: Mapping[str, Any], path: str | os.PathLike) -> Path:
+    """Write the skill/separation/coverage figure of a ``skill.score`` result to ``path`` (PNG)."""
+    baselines = {name: {"skill": b["skill"], "separation_m": b["separation_m"]}
+                 for name, b in result["baselines"].items()}
+    fig = plot_skill_coverage(result["horizons_s"], skill=result["skill"], separation_m=result["separation_m"],
+                              coverage_50=result["coverage_50"], coverage_95=result["coverage_95"],
+                              baselines=baselines, n_forecasts=result.get("n_pairs"))
+    return save_figure(fig, path)
+
+
+# ----------------------------------------------------------------- physics: from a check result (physics.py)
+def plot_physics_maps(maps: Any, *, alpha: float = 0.05) -> Figure:
+    """Divergence and vorticity maps (1/s) of a ``verdict.run_check`` result (its ``CheckMaps``).
+
+    Cells outside the data hull are blank.  Each panel outlines the cells whose |z| reaches
+    that quantity's Benjamini–Hochberg cut-off; when nothing is significant, the cut-off a
+    single cell would need (z at p = α/m) is quoted instead.  2-D only.
+    """
+    from scipy.stats import norm
+
+    grid = maps.grid
+    if len(grid.axes_m) != 2:
+        raise ValueError("physics maps are drawn for 2-D fields only")
+    x_m, y_m = grid.axes_m
+    coords = _Coords.from_frame(maps.frame, np.array([[np.mean(x_m), np.mean(y_m)]]))
+    X, Y = coords.grid(x_m, y_m)
+    fig, axes = _figure(2, height_in=_map_height_in(coords, X, Y, 2, extra_in=1.7))
+    titles = {"divergence": "(a) divergence ∇·u", "vorticity": "(b) vorticity ∂v/∂x − ∂u/∂y"}
+    handles: list[Any] = []
+    for ax, name in zip(axes, ("divergence", "vorticity")):
+        post, sig = maps.posteriors[name], maps.significance[name]
+        mean, z = np.full(grid.inside.shape, np.nan), np.full(grid.inside.shape, np.nan)
+        mean[grid.inside], z[grid.inside] = post.mean, post.z
+        cut = sig.z_critical if np.isfinite(sig.z_critical) else float(norm.isf(alpha / (2 * max(post.mean.size, 1))))
+        coords.decorate(ax)
+        ax.set_title(f"{titles[name]}, BH α = {alpha:g}", loc="left")
+        handles = _signed_panel(fig, ax, X, Y, mean, z, cut, name)
+        ax.set_xlim(np.min(X), np.max(X))
+        ax.set_ylim(np.min(Y), np.max(Y))
+        ax.legend(handles=handles, loc="lower left", fontsize="x-small", framealpha=0.9)
     return fig

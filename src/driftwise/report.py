@@ -80,9 +80,15 @@ def unit_of(name: str) -> str:
     return ""
 
 
-_SPECIAL_LABELS = {"elbo": "ELBO (nats)", "heldout_log_likelihood": "held-out log likelihood (nats)",
+_SPECIAL_LABELS = {"elbo": "ELBO (nats)", "elbo_per_observation": "ELBO per observation (nats)",
+                   "heldout_log_likelihood": "held-out log likelihood (nats)",
+                   "heldout_log_likelihood_per_observation": "held-out log likelihood per observation (nats)",
                    "log_score": "log score (nats)", "n_tracks": "tracks (–)", "n_fixes": "fixes (–)",
-                   "n_observations": "velocity observations (–)"}
+                   "n_observations": "velocity observations (–)", "n_inducing": "inducing points (–)",
+                   "optimiser_steps": "optimiser steps (–)", "n_cells": "grid cells tested (–)",
+                   "max_abs_z": "max |z| (–)", "z_critical": "critical |z| after correction (–)",
+                   "significant_area_fraction": "significant share of the hull (–)",
+                   "divergent_variance_fraction": "divergent share of the velocity variance (–)"}
 
 
 def label_of(name: str) -> str:

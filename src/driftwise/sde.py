@@ -96,8 +96,9 @@ class PointPosterior:
 
     def cov_at(self, x: jax.Array) -> jax.Array:
         """Posterior velocity covariance at x (d,) m → (d, d) m²/s², symmetrised."""
-        g = self.kernel.gram_matrix(x[None, :], self.inducing_m) @ self.projection
-        cov = self.kernel.block(x, x) - (g * self.weights) @ g.T
+        g = self.kernel.gram_matrix(x[None, :], self.inducing_m) @ self.projection  # (d, M·d)
+        # Σ_k λ_k g_ak g_bk as a multiply-and-sum: under vmap it fuses instead of a batch of tiny products
+        cov = self.kernel.block(x, x) - jnp.sum((g * self.weights)[:, None, :] * g[None, :, :], axis=-1)
         return 0.5 * (cov + cov.T)
 
 
@@ -301,24 +302,32 @@ def _tracks_from_observations(obs) -> Any:
 
 
 def transitions_from_tracks(tracks_or_observations, *, lags_s=CALIBRATION_LAGS_S, position_error_m: float,
-                            max_starts: int | None = 600) -> Transitions:
+                            max_starts: int | None = 600, frame: Any = None) -> Transitions:
     """Every fix (after a track's first) as a start, with the same track at each lag later.
 
     At most ``max_starts`` starts, evenly spaced over all of them (deterministic).  Accepts
-    Tracks or the Observations made from them.
+    Tracks (re-projected into ``frame``, the model's, when given) or the Observations made from them.
     """
-    from .skill import forecast_windows
+    from .skill import forecast_windows, in_model_frame
 
     data = tracks_or_observations
     if hasattr(data, "velocity_m_s") and hasattr(data, "dt_s"):
         data = _tracks_from_observations(data)
+    elif frame is not None:
+        data = in_model_frame(data, frame)
     lags = np.sort(np.asarray(lags_s, dtype=float))
     win = forecast_windows(data, lags, step_s=float(lags.max()), max_starts=max_starts)
     keep = np.searchsorted(win.times_s, lags)
     valid = win.valid[:, keep]
     observed = np.where(valid[..., None], win.observed_m[:, keep], 0.0)
     obs_var = position_error_m**2 * win.obs_var_factor[:, keep] + 1e-6
-    return Transitions(win.start_m, np.concatenate([[0.0], lags]), observed, obs_var, valid.astype(float))
+    # pad to a multiple of 128 starts (weight 0) so calls of similar size share one compilation
+    pad = (-win.start_m.shape[0]) % 128
+    start = np.concatenate([win.start_m, np.repeat(win.start_m[:1], pad, axis=0)])
+    observed = np.concatenate([observed, np.repeat(observed[:1], pad, axis=0)])
+    obs_var = np.concatenate([obs_var, np.repeat(obs_var[:1], pad, axis=0)])
+    weight = np.concatenate([valid.astype(float), np.zeros((pad, lags.size))])
+    return Transitions(start, np.concatenate([[0.0], lags]), observed, obs_var, weight)
 
 
 def calibrate_transport(field: Any, tracks_or_observations, *, lags_s=CALIBRATION_LAGS_S,
@@ -343,7 +352,7 @@ def calibrate_transport(field: Any, tracks_or_observations, *, lags_s=CALIBRATIO
     integrator = RK4(step_s=1800.0) if integrator is None else integrator
     sigma = _calibration_sigma(field, position_error_m)
     trans = transitions_from_tracks(tracks_or_observations, lags_s=lags_s, position_error_m=sigma,
-                                    max_starts=max_starts)
+                                    max_starts=max_starts, frame=getattr(field, "frame", None))
     posterior = _posterior_of(field)
     d = trans.start_m.shape[1]
     args = (posterior, method, integrator, int(min(chunk, trans.start_m.shape[0])),
@@ -363,7 +372,8 @@ def calibrate_transport(field: Any, tracks_or_observations, *, lags_s=CALIBRATIO
     k, tau = (float(v) for v in np.exp(result.x))
     n = int(trans.weight.sum())
     info = {"diffusivity_m2_s": k, "decorrelation_time_s": tau,
-            "mean_log_likelihood": -float(result.fun), "n_transitions": n, "n_starts": int(trans.start_m.shape[0]),
+            "mean_log_likelihood": -float(result.fun), "n_transitions": n,
+            "n_starts": int(np.count_nonzero(trans.weight.sum(axis=1))),
             "lags_s": [float(v) for v in trans.times_s[1:]], "position_error_m": sigma,
             "converged": bool(result.success), "iterations": int(result.nit), "message": str(result.message),
             "initial": {"diffusivity_m2_s": float(np.exp(theta0[0])), "decorrelation_time_s": float(np.exp(theta0[1]))},
@@ -416,3 +426,41 @@ def _log_std(fun: Callable, theta: np.ndarray, n: int) -> dict[str, float]:
     else:
         std = np.where(diag > 1e-8 * max(diag.max(), 1e-300), 1.0 / np.sqrt(np.abs(diag) + 1e-300), np.inf)
     return {"log_diffusivity": float(std[0]), "log_decorrelation_time": float(std[1])}
+
+
+def _json_safe(value: Any) -> Any:
+    """Record values for the model's JSON metadata: non-finite floats become None."""
+    if isinstance(value, dict):
+        return {k: _json_safe(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_json_safe(v) for v in value]
+    if isinstance(value, float) and not np.isfinite(value):
+        return None
+    return value
+
+
+def calibrate(field: Any, tracks_or_observations, *, lags_s=CALIBRATION_LAGS_S, max_starts: int | None = 600,
+              method: Any = None) -> Any:
+    """The FlowField with K and τ replaced by :func:`calibrate_transport` on ``tracks_or_observations``.
+
+    Give the tracks the field was fitted on.  The returned field's ``diffusivity_m2_s`` and
+    ``decorrelation_time_s`` (and so every forecast and the saved model file) use the calibrated
+    values; the fit record keeps the previous ones and the optimiser's record under
+    ``fit_info["calibration"]``.  The variational posterior itself is unchanged.
+    """
+    import dataclasses
+    import json
+
+    k, tau, info = calibrate_transport(field, tracks_or_observations, lags_s=lags_s, max_starts=max_starts,
+                                       method=method)
+    meta = json.loads(field.metadata_json)
+    record = meta.setdefault("fit", {})
+    record["calibration"] = _json_safe({
+        **info, "diffusivity_m2_s_before": field.diffusivity_m2_s,
+        "decorrelation_time_s_before": field.decorrelation_time_s,
+        "decorrelation_time_source_before": record.get("decorrelation_time_source")})
+    record["decorrelation_time_source"] = "calibrated: transition likelihood on the fit tracks"
+    record["diffusivity_source"] = "calibrated: transition likelihood on the fit tracks"
+    params = dataclasses.replace(field.params, log_diffusivity_m2_s=jnp.log(jnp.asarray(k, dtype=jnp.float64)))
+    return dataclasses.replace(field, params=params, decorrelation_time_s=float(tau),
+                               metadata_json=json.dumps(meta, sort_keys=True))

@@ -334,6 +334,30 @@ def write_score_csv(result: dict[str, Any], path) -> None:
 
 
 # ------------------------------------------------------------------ the door
+def in_model_frame(tracks, frame):
+    """``tracks`` with positions in the model's ``frame``.
+
+    Each lon/lat file is projected about its own centre, so held-out tracks read from another
+    file must be re-projected (via lon/lat) before they compare metre for metre with the model.
+    A metric model frame, or tracks already in it, are returned unchanged; lon/lat tracks
+    against a metric model are an InputError.
+    """
+    import dataclasses
+
+    mine = getattr(tracks, "frame", None)
+    if frame is None or mine is None or mine == frame:
+        return tracks
+    if getattr(frame, "kind", "metric") != "lonlat" or getattr(mine, "kind", "metric") != "lonlat":
+        if getattr(frame, "kind", "metric") == getattr(mine, "kind", "metric") == "metric":
+            return tracks
+        raise InputError(f"{tracks.source}: the tracks are in a {mine.kind} frame but the model's frame is "
+                         f"{frame.kind}; give tracks with the same kind of positions the model was fitted on")
+    lon, lat = mine.to_lonlat(tracks.position_m[:, :2])
+    xy = np.asarray(frame.from_lonlat(lon, lat), dtype=float)
+    position = np.concatenate([xy, tracks.position_m[:, 2:]], axis=1)
+    return dataclasses.replace(tracks, position_m=position, frame=frame)
+
+
 def forecast_moments(field, win: Windows, *, method: str = "cubature", position_error_m: float,
                      step_s: float | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Forecast means (R, T, d) and covariances (R, T, d, d) from every start in ONE batched call.
@@ -379,6 +403,9 @@ def score(field, holdout_tracks, *, horizons_s=DEFAULT_HORIZONS_S, method: str =
     sigma = field.position_error_m if position_error_m is None else float(position_error_m)
     if sigma is None or not np.isfinite(sigma) or sigma < 0:
         raise InputError("score: the model records no position error; give position_error_m (m)")
+    frame = getattr(field, "frame", None)
+    holdout_tracks = in_model_frame(holdout_tracks, frame)
+    fit_tracks = None if fit_tracks is None else in_model_frame(fit_tracks, frame)
     win = forecast_windows(holdout_tracks, horizons, step_s=step_s, max_starts=max_starts)
     means, covs = forecast_moments(field, win, method=method, position_error_m=sigma)
     result: dict[str, Any] = {"horizons_s": horizons.tolist(), "method": method}

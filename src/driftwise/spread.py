@@ -62,7 +62,7 @@ class SupportWarning(UserWarning):
 
 
 # ------------------------------------------------------------------ releases
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class Release:
     """One release: start position ``start_m (d,)`` in metres (local frame), start time
     ``start_time_s`` (the model's time axis, seconds), optional release uncertainty
@@ -74,18 +74,19 @@ class Release:
     name: str = ""
 
     def __post_init__(self) -> None:
+        label = f"release {self.name!r}" if self.name else "release"
         start = np.asarray(self.start_m, dtype=np.float64)
         if start.ndim != 1 or start.size not in (2, 3) or not np.all(np.isfinite(start)):
-            raise InputError(f"release {self.name or ''}: start_m must be 2 or 3 finite numbers (metres), got {self.start_m!r}")
+            raise InputError(f"{label}: start_m must be 2 or 3 finite numbers (metres), got {self.start_m!r}")
         d = start.size
         cov = np.zeros((d, d)) if self.cov0_m2 is None else np.asarray(self.cov0_m2, dtype=np.float64)
         if cov.shape != (d, d) or not np.all(np.isfinite(cov)):
-            raise InputError(f"release {self.name}: cov0_m2 must be a finite {d}x{d} matrix, got shape {cov.shape}")
+            raise InputError(f"{label}: cov0_m2 must be a finite {d}x{d} matrix, got shape {cov.shape}")
         cov = 0.5 * (cov + cov.T)
         if np.linalg.eigvalsh(cov).min() < -1e-9 * max(1.0, np.abs(cov).max()):
-            raise InputError(f"release {self.name}: cov0_m2 is not positive semi-definite")
+            raise InputError(f"{label}: cov0_m2 is not positive semi-definite")
         if not np.isfinite(float(self.start_time_s)):
-            raise InputError(f"release {self.name}: start_time_s must be finite")
+            raise InputError(f"{label}: start_time_s must be finite")
         object.__setattr__(self, "start_m", start)
         object.__setattr__(self, "cov0_m2", cov)
         object.__setattr__(self, "start_time_s", float(self.start_time_s))
@@ -124,7 +125,7 @@ def check_times(times_s: Any) -> np.ndarray:
 
 
 # ------------------------------------------------------------------ result
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class Spread:
     """Forecast of R releases at T output times.
 

@@ -33,8 +33,8 @@ import numpy as np
 from . import physics
 from .errors import InputError
 
-__all__ = ["FAMILIES", "CheckMaps", "check", "evidence_reading", "heldout_log_likelihood", "run_check",
-           "split_tracks", "verdict"]
+__all__ = ["FAMILIES", "CheckMaps", "check", "constraint_tests", "evidence_reading", "heldout_log_likelihood",
+           "in_frame", "run_check", "split_tracks", "verdict", "verdict_spacing_m"]
 
 FAMILIES = ("helmholtz", "divergence-free", "curl-free", "independent")
 CAN_DIVERGE = ("helmholtz", "curl-free", "independent")
@@ -181,6 +181,48 @@ def _physics_model(model, helmholtz_field, observations):
     return model, f"the given model ({model.kernel_family} kernel)"
 
 
+def verdict_spacing_m(field, position_m, *, min_cells: int = 50, max_cells: int = 2000) -> float:
+    """Grid step for the area test: half the smallest kernel length scale (about the model's
+    resolution, so neighbouring cells are not all near-duplicates), kept between ``min_cells`` and
+    ``max_cells`` cells over the data hull."""
+    from scipy.spatial import ConvexHull, QhullError
+
+    lengths = [v for k, v in field.hyperparameters.items() if k.endswith("length_scale_m")]
+    try:
+        volume = ConvexHull(np.asarray(position_m)).volume
+    except (QhullError, ValueError):
+        raise InputError("the observation positions do not span a region; cannot define the data hull") from None
+    d = np.shape(position_m)[1]
+    lo, hi = (volume / max_cells) ** (1.0 / d), (volume / min_cells) ** (1.0 / d)
+    return float(np.clip(0.5 * min(lengths), lo, hi))
+
+
+def constraint_tests(field, position_m, *, alpha: float = physics.ALPHA) -> dict:
+    """The verdict's area tests for one field: grid in the hull of ``position_m`` (n, d) m at
+    :func:`verdict_spacing_m`, divergence and vorticity posteriors there, BH significance.
+
+    Returns {"grid": HullGrid, "posteriors": {q: DerivativePosterior}, "significance": {q: Significance}}.
+    """
+    grid = physics.hull_grid(position_m, spacing_m=verdict_spacing_m(field, position_m))
+    points = grid.points_m
+    posts = {"divergence": physics.divergence_posterior(field, points),
+             "vorticity": physics.vorticity_posterior(field, points)}
+    return {"grid": grid, "posteriors": posts,
+            "significance": {q: physics.significance(p, alpha=alpha) for q, p in posts.items()}}
+
+
+def in_frame(tracks, frame):
+    """``tracks`` re-expressed in ``frame`` (a model's), via lon/lat when both frames are geographic."""
+    if tracks.frame == frame:
+        return tracks
+    if not (tracks.frame.is_geographic and frame.is_geographic):
+        raise InputError(f"{tracks.source}: the tracks are in a {tracks.frame.kind} frame but the model in a "
+                         f"{frame.kind} frame; give tracks with the same kind of coordinates as the model's data")
+    lon, lat = tracks.frame.to_lonlat(tracks.position_m[:, :2])
+    position = np.column_stack([frame.from_lonlat(lon, lat), tracks.position_m[:, 2:]])
+    return dataclasses.replace(tracks, position_m=position, frame=frame)
+
+
 @dataclasses.dataclass(frozen=True)
 class CheckMaps:
     """What the figures need: the hull grid, the tested posteriors and their significance."""
@@ -193,7 +235,7 @@ class CheckMaps:
 
 def check(tracks, *, model=None, holdout_fraction: float = 0.2, seed: int = 0, inducing: int = 64,
           steps: int = 300, position_error_m: float = 10.0, alpha: float = physics.ALPHA,
-          n_cells: int = physics.HULL_CELLS, progress: bool = False) -> dict:
+          progress: bool = False) -> dict:
     """Fit the four families, test the constraints and return the design-sheet dictionary.
 
     Keys: ``families`` (per family ``elbo``, ``heldout_log_likelihood``, …), ``evidence``,
@@ -205,16 +247,17 @@ def check(tracks, *, model=None, holdout_fraction: float = 0.2, seed: int = 0, i
     Families are fitted with ``inducing`` points and at most ``steps`` optimiser steps.
     """
     return run_check(tracks, model=model, holdout_fraction=holdout_fraction, seed=seed, inducing=inducing,
-                     steps=steps, position_error_m=position_error_m, alpha=alpha, n_cells=n_cells,
-                     progress=progress)[0]
+                     steps=steps, position_error_m=position_error_m, alpha=alpha, progress=progress)[0]
 
 
 def run_check(tracks, *, model=None, holdout_fraction: float = 0.2, seed: int = 0, inducing: int = 64,
               steps: int = 300, position_error_m: float = 10.0, alpha: float = physics.ALPHA,
-              n_cells: int = physics.HULL_CELLS, progress: bool = False) -> tuple[dict, CheckMaps]:
+              progress: bool = False) -> tuple[dict, CheckMaps]:
     """:func:`check` plus the maps for the figures."""
     from .tracks import velocity_observations
 
+    if model is not None:
+        tracks = in_frame(tracks, model.frame)
     train, held = split_tracks(tracks, holdout_fraction=holdout_fraction, seed=seed)
     every = velocity_observations(tracks, position_error_m=position_error_m)
     held_obs = velocity_observations(held, position_error_m=position_error_m)
@@ -223,14 +266,14 @@ def run_check(tracks, *, model=None, holdout_fraction: float = 0.2, seed: int = 
     fields, table = _fit_families(train, families=FAMILIES, fit_options=options, holdout_obs=held_obs)
     tested, source = _physics_model(model, fields["helmholtz"], every)
     helmholtz = tested if tested.kernel_family == "helmholtz" else _condition_on(fields["helmholtz"], every)
-    grid = physics.hull_grid(every.position_m, n_cells=n_cells)
+    tests = constraint_tests(tested, every.position_m, alpha=alpha)
+    for quantity, post in list(tests["posteriors"].items()):
+        if post.zero_by_construction:   # the given model cannot show it: test the Helmholtz refit instead
+            again = constraint_tests(helmholtz, every.position_m, alpha=alpha)
+            tests["posteriors"][quantity] = again["posteriors"][quantity]
+            tests["significance"][quantity] = again["significance"][quantity]
+    grid, posts, sig = tests["grid"], tests["posteriors"], tests["significance"]
     points = grid.points_m
-    posts = {}
-    for quantity, posterior in (("divergence", physics.divergence_posterior),
-                                ("vorticity", physics.vorticity_posterior)):
-        post = posterior(tested, points)
-        posts[quantity] = posterior(helmholtz, points) if post.zero_by_construction else post
-    sig = {q: physics.significance(p, alpha=alpha) for q, p in posts.items()}
     split = physics.helmholtz_split(helmholtz, points)
     summary = {
         "families": table,
