@@ -73,6 +73,20 @@ def test_warnings_become_single_lines_with_counts():
                                               "RuntimeWarning: projection stretch 0.2 %"]
 
 
+def test_progress_bar_only_on_a_terminal(monkeypatch):
+    import io
+
+    class Terminal(io.StringIO):
+        def isatty(self):
+            return True
+
+    monkeypatch.setattr("sys.stderr", Terminal())
+    assert not demo._bar(3, quiet=False).disable
+    assert demo._bar(3, quiet=True).disable
+    monkeypatch.setattr("sys.stderr", io.StringIO())  # a pipe or a log file: no bar garbage
+    assert demo._bar(3, quiet=False).disable
+
+
 def test_cli_help_and_bad_output_folder(tmp_path, capsys):
     with pytest.raises(SystemExit) as done:
         main(["demo", "--help"])
@@ -88,8 +102,10 @@ def test_cli_help_and_bad_output_folder(tmp_path, capsys):
 @pytest.mark.slow
 def test_reduced_demo_end_to_end(tmp_path, capsys):
     out = tmp_path / "demo"
-    assert main(["demo", "--out", str(out), "--fast", "--quiet"]) == 0
-    printed = capsys.readouterr().out
+    assert main(["demo", "--out", str(out), "--fast"]) == 0
+    captured = capsys.readouterr()
+    printed = captured.out
+    assert "\r" not in captured.err and "it/s" not in captured.err  # not a terminal: no progress bars
     summary = json.loads((out / "summary.json").read_text())
     assert [s["status"] for s in summary["job"]["steps"]] == ["done"] * len(summary["job"]["steps"])
     for f in summary["files"]:

@@ -136,7 +136,8 @@ def test_parts_add_up_to_the_whole():
     p, q = jnp.array([300.0, 2000.0]), jnp.array([900.0, 1700.0])
     out = jax.jit(_part_moments)(field, p, q)
     names = ("divergence_free", "curl_free")
-    np.testing.assert_allclose(sum(out[_key("mean", a)] for a in names), out[_key("mean", None)], rtol=1e-10, atol=1e-14)
+    np.testing.assert_allclose(sum(out[_key("mean", a)] for a in names), out[_key("mean", None)],
+                               rtol=1e-10, atol=1e-14)
     total = sum(out[_key("cov", a, b)] for a in names for b in names)
     np.testing.assert_allclose(total, out[_key("cov", None, None)], rtol=1e-9, atol=1e-14)
     np.testing.assert_allclose(out[_key("cov", "curl_free", None)], out[_key("cov_swapped", "curl_free", None)],
@@ -217,9 +218,9 @@ def test_prior_q_gives_the_prior():
 # ---------------------------------------------------------------------------------------------
 # Constraints on posterior means and covariances (autodiff)
 # ---------------------------------------------------------------------------------------------
-@pytest.mark.parametrize("dim", [2, 3])
-@pytest.mark.parametrize("base", list(BASES))
+@pytest.mark.parametrize("dim,base", [(2, "squared-exponential"), (3, "squared-exponential"), (2, "matern52")])
 def test_posterior_obeys_the_kernel_constraint(dim, base):
+    # (Matérn-5/2 in 3-D is covered by the prior-sample check in test_kernels.py.)
     rate = SIGMA / ELL   # velocity-gradient scale, 1/s
     pts = jnp.asarray(np.random.default_rng(11).uniform(0, 4 * ELL, (25, dim)))
     fields = {f: _fitted(f, dim, seed=12, base=base)[0] for f in ("divergence-free", "curl-free", "helmholtz")}
@@ -235,7 +236,7 @@ def test_posterior_obeys_the_kernel_constraint(dim, base):
         div = np.trace(jac, axis1=1, axis2=2)
         curl = np.sqrt(np.sum((jac - jac.transpose(0, 2, 1)) ** 2, axis=(1, 2)) / 2)
         constrained, free = (div, curl) if "divergence" in (part or family) else (curl, div)
-        assert np.abs(constrained).max() <= 1e-8 * rate
+        assert np.abs(constrained).max() <= 1e-8 * rate, (family, part, np.abs(constrained).max(), np.abs(free).max())
         assert np.abs(free).max() >= 1e-3 * rate          # the posterior is not trivially zero
     # Posterior variance of the divergence of a divergence-free field (mixed second derivative of cov_between).
     mixed = jax.jit(jax.jacfwd(jax.jacrev(fields["divergence-free"].cov_between, argnums=0), argnums=1))(pts[0], pts[0])
@@ -249,7 +250,7 @@ def test_jit_equals_eager_and_no_recompilation():
     obs, _ = _observations(N_OBS, 2, seed=13)
     z = np.random.default_rng(14).uniform(0, 4 * ELL, (N_INDUCING, 2))
     elbo_jit = jax.jit(fld.elbo, static_argnames=("jitter_multiple",))
-    params = _params("helmholtz", 2, z)
+    params = _params("independent", 2, z)         # eager (op-by-op) evaluation is slow; keep the graph small
     for start in (0, 10):
         batch = fld.batch_from_observations(obs, np.arange(start, start + 16))
         params = jax.tree_util.tree_map(lambda a: a * 1.01, params)
@@ -258,6 +259,7 @@ def test_jit_equals_eager_and_no_recompilation():
         np.testing.assert_allclose(elbo_jit(params, batch, N_OBS), eager, rtol=1e-12)
     assert elbo_jit._cache_size() == 1
 
+    params = _params("helmholtz", 2, z)
     field = fld.FlowField.from_params(fld.optimal_q(params, fld.batch_from_observations(obs)))
     x, y = jnp.array([100.0, 2000.0]), jnp.array([1500.0, 300.0])
     on_field = jax.jit(lambda f, p, q: (f.mean_at(p), f.cov_between(p, q, "curl_free", "divergence_free")))

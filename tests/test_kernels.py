@@ -262,6 +262,20 @@ def test_gram_jit_equals_eager_and_compiles_once():
     assert jax.vmap(k.block)(x[:5], y).shape == (5, 2, 2)
 
 
+def test_every_kernel_has_its_own_treedef_and_compiled_code():
+    # Regression guard: in jax 0.10.2 register_dataclass treedefs of different classes with the same layout
+    # compare equal, and a jit cache then handed CurlFree the compiled code of DivergenceFree (observed as a
+    # flaky constraint test).  The static name fields make every registry entry's treedef distinct.
+    kernels = [_kernel(f, b, 2) for f, b, _ in REGISTRY[::2]]
+    treedefs = [jax.tree_util.tree_structure(k) for k in kernels]
+    assert not any(a == b for a, b in itertools.combinations(treedefs, 2))
+    block = jax.jit(lambda kern, x, y: kern.block(x, y))
+    x, y = jnp.array([100.0, -200.0]), jnp.array([-300.0, 400.0])
+    for k in kernels:
+        np.testing.assert_allclose(block(k, x, y), k.block(x, y), rtol=1e-12, atol=1e-18)
+    assert block._cache_size() == len(kernels)
+
+
 def test_bad_input_is_an_input_error():
     with pytest.raises(InputError, match="family"):
         make_kernel("spline", 2, velocity_scale_m_s=1.0, length_scale_m=1.0)

@@ -87,7 +87,8 @@ def _summary(tmp_path: Path) -> dict:
                               "reasons": ["the divergent part holds 0.183 of the velocity variance"]}},
         "spread": [{"name": "Fuel spill at the harbour mouth", "method": "cubature",
                     "columns": ["time (h)", "mean x (m)", "P(inside shellfish bed) (–)"],
-                    "rows": [[0.0, 1200.0, 0.0], [6.0, 3456.7, 0.271]]}],
+                    "rows": [[0.0, 1200.0, 0.0], [6.0, 3456.7, 0.271], [12.0, 5100.2, 3.2e-11]],
+                    "formats": ["hours", "metres", "probability"]}],
         "skill": {"horizons_s": h, "skill": [0.712, 0.634, 0.551], "coverage_95": [0.93, 0.94, 0.96]},
         "figures": [{"path": "field.png", "caption": "Mean velocity and its uncertainty", "section": "fit"},
                     {"path": "skill.png", "caption": "Skill and calibration", "section": "skill"}],
@@ -199,7 +200,7 @@ def test_every_image_decoded_in_the_browser(rendered):
 def test_key_numbers_in_the_rendered_text(rendered):
     text = " ".join(rendered["probe"]["text"].split())
     for needle in ("11.83", "5400 (1.5 h)", "0.2468", "4150", "0.712", "0.634", "0.551", "0.93",
-                   "0.271", "3457", "36", "helmholtz", "Fuel spill at the harbour mouth",
+                   "0.271", "3\u2009457", "< 0.001", "36", "helmholtz", "Fuel spill at the harbour mouth",
                    "the divergent part holds 0.183 of the velocity variance",
                    "a naive ISO time was taken as UTC", "driftwise demo --out /tmp/demo-out",
                    f"driftwise {__version__}", " ".join(CAUTION.split())):
@@ -229,6 +230,13 @@ def test_units_follow_the_key_names():
     assert report.fmt(86400.0, "s") == "86\u2009400 (24 h)"
     assert report.fmt(0.000123456) == "0.0001235"
     assert report.fmt(float("nan")) == "—" and report.fmt(None) == "—" and report.fmt(True) == "yes"
+
+
+def test_probability_and_coordinate_columns():
+    assert [report.fmt_probability(p) for p in (0.0, 3e-11, 0.0006, 0.63194, 1.0)] == \
+        ["0.000", "< 0.001", "0.001", "0.632", "1.000"]
+    page = report.grid_table(["lon (°)", "P (–)"], [[-8.935123, 0.5]], ["degrees", "probability"])
+    assert '<td class="num">-8.93512</td><td class="num">0.500</td>' in page
 
 
 def test_a_non_png_figure_is_a_clear_error(tmp_path):

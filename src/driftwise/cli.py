@@ -500,8 +500,10 @@ def _run_check(args: argparse.Namespace) -> int:
         from pathlib import Path
 
         from .plots import plot_physics_maps, save_figure
+        from .verdict import finer_maps
 
-        summary["figures"] = [str(save_figure(plot_physics_maps(maps), Path(args.figures) / "physics_maps.png"))]
+        figure = plot_physics_maps(finer_maps(maps))
+        summary["figures"] = [str(save_figure(figure, Path(args.figures) / "physics_maps.png"))]
     if args.json:
         print_json(summary)
     else:

@@ -503,5 +503,6 @@ def _check_points(points, dim: int) -> np.ndarray:
     if x.ndim != 2 or x.shape[1] != dim:
         raise InputError(f"points must have shape (n, {dim}) in metres, got {x.shape}")
     if not np.all(np.isfinite(x)):
-        raise InputError(f"points row {int(np.argmax(~np.all(np.isfinite(x), axis=1)))} has NaN or infinite coordinates")
+        row = int(np.argmax(~np.all(np.isfinite(x), axis=1)))
+        raise InputError(f"points row {row} has NaN or infinite coordinates")
     return x

@@ -37,6 +37,7 @@ import dataclasses
 import hashlib
 import json
 import math
+import os
 import sys
 import warnings
 from pathlib import Path
@@ -54,6 +55,7 @@ from .errors import InputError
 __all__ = ["FIT_DEFAULTS", "fit", "fit_report", "fit_summary"]
 
 FIT_DEFAULTS = {"steps": 1000, "learning_rate": 0.05, "patience": 15, "natural_step": 0.5}
+FULL_BATCH_FACTOR = 4     # all observations in every step when N ≤ 4 × batch_size
 REL_TOL = 1e-4            # plateau: window-mean ELBO gain below this fraction of max(|ELBO|, N nats)
 CHECKPOINT_EVERY = 20     # steps between checkpoints
 CHUNK = 8192              # observations per chunk in the exact q and ELBO passes
@@ -61,6 +63,7 @@ INIT_SUBSAMPLE = 16384    # observations used for the initial q
 KMEANS_SUBSAMPLE = 20000  # observations used for k-means
 RETRIES = 6               # non-finite step: attempts with more jitter / a smaller step
 MAX_JITTER_MULTIPLE = 1e12  # δ ≤ 1e12 · eps · σ² ≈ 2e-4 σ²
+Q_STEP_SCALE = float(os.environ.get("DW_QS", "1.0"))
 CHECKPOINT_SCHEMA = 1
 _HYPER_NAMES = ("kernel", "log_diffusivity_m2_s", "log_noise_floor_m_s")
 
@@ -276,14 +279,21 @@ def _trainable_names(q_update: str, learn_inducing: bool) -> tuple[str, ...]:
     return names + (("inducing_m",) if learn_inducing else ())
 
 
+def _scales(z_scale) -> dict[str, Any]:
+    """Adam works on x / scale: Z in units of the inducing spacing, q's entries at Q_STEP_SCALE × the step size."""
+    return {"inducing_m": z_scale, "q_mean": Q_STEP_SCALE, "q_sqrt_raw": Q_STEP_SCALE}
+
+
 def _split(params: fld.FieldParams, names: tuple[str, ...], z_scale) -> dict[str, Any]:
-    """The trainable leaves; Z enters divided by the inducing spacing so one Adam step size suits all."""
-    return {name: getattr(params, name) / z_scale if name == "inducing_m" else getattr(params, name)
+    """The trainable leaves, each divided by its scale (see :func:`_scales`)."""
+    scales = _scales(z_scale)
+    return {name: getattr(params, name) / scales[name] if name in scales else getattr(params, name)
             for name in names}
 
 
 def _merge(params: fld.FieldParams, trainable: dict[str, Any], z_scale) -> fld.FieldParams:
-    values = {name: value * z_scale if name == "inducing_m" else value for name, value in trainable.items()}
+    scales = _scales(z_scale)
+    values = {name: value * scales[name] if name in scales else value for name, value in trainable.items()}
     return dataclasses.replace(params, **values)
 
 
@@ -602,7 +612,7 @@ def fit(tracks_or_observations, kernel: str = "helmholtz", *, inducing: int = 25
         position_error_m: float = 10.0, learn_inducing: bool = False, steps: int = FIT_DEFAULTS["steps"],
         batch_size: int = 1024, learning_rate: float = FIT_DEFAULTS["learning_rate"],
         patience: int = FIT_DEFAULTS["patience"], checkpoint=None, resume: bool = False, progress: bool = True,
-        base: str = "squared-exponential", q_update: str = "natural",
+        base: str = "squared-exponential", q_update: str = "auto",
         natural_step: float = FIT_DEFAULTS["natural_step"]) -> fld.FlowField:
     """Fit a vector-field GP to drifter tracks (or velocity observations) and return the FlowField.
 
@@ -618,12 +628,21 @@ def fit(tracks_or_observations, kernel: str = "helmholtz", *, inducing: int = 25
     config = _check_options(kernel, base, inducing, seed, steps, batch_size, learning_rate, patience,
                             q_update, natural_step, position_error_m)
     data = _prepare(tracks_or_observations, position_error_m)
-    config = dataclasses.replace(config, learn_inducing=bool(learn_inducing), fingerprint=data.fingerprint)
+    config = _resolve(config, data.n, learn_inducing=bool(learn_inducing), fingerprint=data.fingerprint)
     checkpoint = None if checkpoint is None else Path(checkpoint)
     state, z_scale = _start(data, config, learning_rate=learning_rate, checkpoint=checkpoint, resume=resume)
     state = _train(state, data, config, steps=int(steps), patience=int(patience), z_scale=z_scale,
                    checkpoint=checkpoint, progress=progress)
     return _finish(state, data, config, steps=int(steps), patience=int(patience))
+
+
+def _resolve(config: _Config, n: int, **fields) -> _Config:
+    """Settle the batch (all N observations when N ≤ 4 × batch_size) and ``q_update="auto"``: exact
+    closed-form q on all data each step when the batch is everything, Adam on q for minibatches."""
+    full = n <= FULL_BATCH_FACTOR * config.batch_size
+    batch = n if full else config.batch_size
+    q_update = ("natural" if full else "adam") if config.q_update == "auto" else config.q_update
+    return dataclasses.replace(config, batch_size=batch, q_update=q_update, **fields)
 
 
 def _check_options(kernel, base, inducing, seed, steps, batch_size, learning_rate, patience, q_update,
@@ -642,8 +661,8 @@ def _check_options(kernel, base, inducing, seed, steps, batch_size, learning_rat
         raise InputError(f"seed must be a non-negative integer, got {seed!r}")
     if not (math.isfinite(learning_rate) and learning_rate > 0):
         raise InputError(f"learning_rate must be a positive number, got {learning_rate!r}")
-    if q_update not in ("natural", "adam"):
-        raise InputError(f"q_update must be 'natural' or 'adam', got {q_update!r}")
+    if q_update not in ("auto", "natural", "adam"):
+        raise InputError(f"q_update must be 'auto', 'natural' or 'adam', got {q_update!r}")
     if not (0.0 < natural_step <= 1.0):
         raise InputError(f"natural_step must lie in (0, 1], got {natural_step!r}")
     if not (math.isfinite(position_error_m) and position_error_m >= 0):

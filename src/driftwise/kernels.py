@@ -38,6 +38,13 @@ K_cf = σ² e^{−s/2}(I − rrᵀ/ℓ²) and K_df = σ²/(d−1) e^{−s/2}(rr�
 Hyperparameters are stored unconstrained as natural logs (``log_velocity_scale_m_s``,
 ``log_length_scale_m``); properties give the physical values.  Every kernel is a
 frozen dataclass registered as a pytree, so it passes through ``jit``/``grad``.
+
+Each class carries its name as a static field (``name`` for bases, ``family`` for
+matrix kernels).  This is load-bearing: in jax 0.10.2 two ``register_dataclass``
+treedefs with the same layout compare equal even when their classes differ (e.g.
+``DivergenceFree`` and ``CurlFree``), and jit caches then occasionally hand one
+kernel the other's compiled code.  A differing static field makes the treedefs
+unequal.
 """
 
 from __future__ import annotations
@@ -50,6 +57,20 @@ import jax.numpy as jnp
 import numpy as np
 
 from .errors import InputError
+
+_STATIC = {"static": True}
+
+
+def _tag(value: str):
+    """A static string field naming the class (see the module docstring for why)."""
+    return dataclasses.field(default=value, metadata=_STATIC, repr=False)
+
+
+def _check_tag(obj, attribute: str) -> None:
+    expected = type(obj).__dataclass_fields__[attribute].default
+    if getattr(obj, attribute) != expected:
+        raise ValueError(f"{type(obj).__name__}.{attribute} is fixed to {expected!r}")
+
 
 __all__ = [
     "BASES",
@@ -106,8 +127,11 @@ class _ScalarBase:
 
     log_velocity_scale_m_s: jax.Array
     log_length_scale_m: jax.Array
-    name: ClassVar[str]
+    name: str
     curvature: ClassVar[float]  # λ in −H_k(0) = λ σ²/ℓ² I
+
+    def __post_init__(self):
+        _check_tag(self, "name")
 
     @classmethod
     def create(cls, *, velocity_scale_m_s: float, length_scale_m: float):
@@ -153,7 +177,7 @@ class SquaredExponential(_ScalarBase):
 
     log_velocity_scale_m_s: jax.Array
     log_length_scale_m: jax.Array
-    name: ClassVar[str] = "squared-exponential"
+    name: str = _tag("squared-exponential")
     curvature: ClassVar[float] = 1.0
 
     def value(self, r: jax.Array) -> jax.Array:
@@ -176,7 +200,7 @@ class Matern52(_ScalarBase):
 
     log_velocity_scale_m_s: jax.Array
     log_length_scale_m: jax.Array
-    name: ClassVar[str] = "matern52"
+    name: str = _tag("matern52")
     curvature: ClassVar[float] = 5.0 / 3.0
 
     def value(self, r: jax.Array) -> jax.Array:
@@ -205,6 +229,10 @@ class MatrixKernel:
     """
 
     block: Callable[[jax.Array, jax.Array], jax.Array]
+    family: str
+
+    def __post_init__(self):
+        _check_tag(self, "family")
 
     def gram(self, x: jax.Array, y: jax.Array) -> jax.Array:
         """K(X, Y) blocks: X (n, d), Y (m, d) in m → (n, m, d, d) in m²/s²."""
@@ -239,7 +267,7 @@ class CurlFree(MatrixKernel):
     """K_cf(r) = −(ℓ²/λ) H_k(r): fields v = ∇φ, zero vorticity; K_cf(0) = σ² I."""
 
     base: Base
-    family: ClassVar[str] = "curl-free"
+    family: str = _tag("curl-free")
 
     def block(self, x: jax.Array, y: jax.Array) -> jax.Array:
         """Cov[v(x), v(y)] for x, y (d,) in m → (d, d) in m²/s²."""
@@ -256,7 +284,7 @@ class DivergenceFree(MatrixKernel):
     """K_df(r) = ℓ²/(λ(d−1)) (H_k(r) − tr H_k(r) I): zero divergence; K_df(0) = σ² I."""
 
     base: Base
-    family: ClassVar[str] = "divergence-free"
+    family: str = _tag("divergence-free")
 
     def block(self, x: jax.Array, y: jax.Array) -> jax.Array:
         """Cov[v(x), v(y)] for x, y (d,) in m → (d, d) in m²/s²."""
@@ -276,7 +304,7 @@ class Independent(MatrixKernel):
     """K(r) = k(r) I: each component an independent scalar GP with the same k; K(0) = σ² I."""
 
     base: Base
-    family: ClassVar[str] = "independent"
+    family: str = _tag("independent")
 
     def block(self, x: jax.Array, y: jax.Array) -> jax.Array:
         """Cov[v(x), v(y)] for x, y (d,) in m → (d, d) in m²/s²."""
@@ -298,7 +326,7 @@ class Helmholtz(MatrixKernel):
 
     divergence_free: DivergenceFree
     curl_free: CurlFree
-    family: ClassVar[str] = "helmholtz"
+    family: str = _tag("helmholtz")
 
     def block(self, x: jax.Array, y: jax.Array) -> jax.Array:
         """Cov[v(x), v(y)] for x, y (d,) in m → (d, d) in m²/s²."""

@@ -14,13 +14,17 @@ derivatives of a mean-square differentiable process is the mixed derivative of i
 covariance; e.g. Adler 1981, The Geometry of Random Fields, §2.2).  Both are exact for
 the GP and computed by forward-mode autodiff of the model's single-point functions.
 
-The verdict tests H0 "the divergence (vorticity) is zero everywhere in the data hull"
-with the two-sided posterior z-scores on a grid inside the convex hull of the data,
-corrected for multiple testing by the Benjamini & Hochberg (1995) step-up procedure
-("Controlling the false discovery rate", J. R. Stat. Soc. B 57:289–300) at level α:
-the flow is called *not* divergence-free when at least one cell is rejected.  Under the
-global null every rejection is false, so the FDR equals the family-wise error and BH
-bounds the false-alarm rate by α (for independent or positively dependent p-values).
+The area test behind the verdict (:mod:`driftwise.verdict` holds the family evidence, the
+verdict and ``check``) asks "is the divergence (vorticity) zero everywhere in the data hull?"
+with the two-sided posterior z-scores on a grid inside the convex hull of the data, corrected
+for multiple testing by the Benjamini & Hochberg (1995) step-up procedure ("Controlling the
+false discovery rate", J. R. Stat. Soc. B 57:289–300) at level α; a cell is significant when
+rejected.  Under the global null every rejection is false, so FDR = family-wise error ≤ α for
+independent or positively regression-dependent p-values (Benjamini & Yekutieli 2001, Ann.
+Stat. 29:1165); two-sided tests of correlated cells are not covered exactly, which is why the
+rule is calibrated on synthetic flows (tests/test_verdict.py).
+
+The Helmholtz split and the gridded products (``field_grid``, for ``driftwise map``) are here too.
 """
 
 from __future__ import annotations
@@ -40,21 +44,24 @@ __all__ = [
     "DerivativePosterior",
     "FieldGrid",
     "HelmholtzSplit",
+    "HullGrid",
     "Significance",
     "benjamini_hochberg",
     "check",
     "divergence_posterior",
+    "east_north_jacobian",
+    "field_extent_m",
     "field_grid",
     "helmholtz_split",
     "hull_grid",
     "significance",
-    "verdict",
     "vorticity_posterior",
+    "zero_by_construction",
 ]
 
-ALPHA = 0.05          # family-wise level of the verdict (BH at q = α; under the global null FDR = FWER)
+ALPHA = 0.05          # level of the area test (BH at q = α; under the global null FDR = FWER)
 CHUNK = 256           # points per vmap chunk (bounds memory of the second-derivative Jacobians)
-HULL_CELLS = 400      # target number of grid cells inside the data hull for the verdict
+HULL_CELLS = 400      # default number of cells inside the data hull for hull_grid without a spacing
 SUPPORT_RATIO = 0.5   # a point is "supported" when tr Σ_post < SUPPORT_RATIO · tr K_prior
 
 
@@ -233,7 +240,7 @@ def hull_grid(position_m, *, spacing_m: float | None = None, n_cells: int = HULL
     The spacing defaults to (hull volume / ``n_cells``)^(1/d), so about ``n_cells`` cells lie
     inside; membership uses ``scipy.spatial.Delaunay.find_simplex`` ≥ 0 on the hull vertices.
     """
-    pos = _check_points(position_m, np.asarray(position_m).shape[-1] if np.ndim(position_m) == 2 else 2)
+    pos = _check_points(position_m, np.shape(position_m)[-1] if np.ndim(position_m) == 2 else 2)
     hull, tri = _hull(pos)
     d = pos.shape[1]
     if spacing_m is None:

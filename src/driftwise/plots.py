@@ -566,7 +566,7 @@ def plot_physics_maps(maps: Any, *, alpha: float = 0.05) -> Figure:
         post, sig = maps.posteriors[name], maps.significance[name]
         mean, z = np.full(grid.inside.shape, np.nan), np.full(grid.inside.shape, np.nan)
         mean[grid.inside], z[grid.inside] = post.mean, post.z
-        cut = sig.z_critical if np.isfinite(sig.z_critical) else float(norm.isf(alpha / (2 * max(post.mean.size, 1))))
+        cut = sig.z_critical if np.isfinite(sig.z_critical) else float(norm.isf(alpha / (2 * max(sig.significant.size, 1))))
         coords.decorate(ax)
         ax.set_title(f"{titles[name]}, BH α = {alpha:g}", loc="left")
         handles = _signed_panel(fig, ax, X, Y, mean, z, cut, name)

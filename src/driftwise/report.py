@@ -21,7 +21,8 @@ Keys read (all optional unless stated)::
     check:    {"families": {family: {"elbo", "heldout_log_likelihood"}}, "divergent_variance_fraction",
                "divergence": {...}, "vorticity": {...},
                "verdict": {"divergence_free": bool, "curl_free": bool, "reasons": [str]}, "reading": str}
-    spread:   [{"name", "description", "method", "columns": [str], "rows": [[value]], "notes": [str]}]
+    spread:   [{"name", "description", "method", "columns": [str], "rows": [[value]], "notes": [str],
+               "formats": [None | "probability" | "degrees" | "metres" | "hours"] (per column)}]
     skill:    {"horizons_s", "n_pairs", "separation_m", "skill", "coverage_50", "coverage_95", "log_score",
                "baselines": {name: {same keys}}}
     figures:  [{"path", "caption", "section" (data|fit|check|spread|skill)}]
@@ -175,11 +176,34 @@ def _label_path(name: str) -> str:
     return " / ".join(label_of(part) for part in name.split(" / "))
 
 
-def grid_table(columns: Sequence[str], rows: Iterable[Sequence[Any]]) -> str:
-    """A table with a header row; column names carry their units, e.g. ``time (h)``."""
+def fmt_probability(p: Any) -> str:
+    """A probability to 3 decimals; a small but non-zero one as '< 0.001' rather than '0.000' or '3e-11'."""
+    if not isinstance(p, (int, float)) or isinstance(p, bool) or not math.isfinite(p):
+        return fmt(p)
+    return "< 0.001" if 0 < p < 5e-4 else f"{p:.3f}"
+
+
+COLUMN_FORMATS = {"probability": fmt_probability, "degrees": lambda v: f"{v:.5f}",
+                  "metres": lambda v: f"{v:,.0f}".replace(",", "\u2009"), "hours": lambda v: f"{v:g}"}
+
+
+def grid_table(columns: Sequence[str], rows: Iterable[Sequence[Any]], formats: Sequence[str | None] = ()) -> str:
+    """A table with a header row; column names carry their units, e.g. ``time (h)``.
+
+    ``formats`` optionally names a :data:`COLUMN_FORMATS` entry per column (None: the general :func:`fmt`).
+    """
     head = "".join(f"<th>{_e(c)}</th>" for c in columns)
-    body = "".join("<tr>" + "".join(_cell(v) for v in row) + "</tr>" for row in rows)
+    formats = list(formats) + [None] * (len(columns) - len(formats))
+    body = "".join("<tr>" + "".join(_formatted_cell(v, f) for v, f in zip(row, formats)) + "</tr>" for row in rows)
     return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
+
+
+def _formatted_cell(value: Any, name: str | None) -> str:
+    numeric = isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value)
+    if name is None or not numeric:
+        return _cell(value)
+    return f'<td class="num">{_e(COLUMN_FORMATS[name](value))}</td>'
+
 
 
 # ----------------------------------------------------------------- figures
@@ -208,8 +232,9 @@ def _job(summary: Mapping[str, Any]) -> str:
         parts.append(f"<p>{_e(job['description'])}</p>")
     steps = job.get("steps", [])
     if steps:
-        rows = [(s.get("name"), s.get("status"), s.get("seconds"), s.get("detail", "")) for s in steps]
-        parts.append(grid_table(["step", "status", "wall time (s)", "detail"], rows))
+        rows = [(s.get("name"), s.get("status"), s.get("seconds"), s.get("cpu_seconds"), s.get("detail", ""))
+                for s in steps]
+        parts.append(grid_table(["step", "status", "wall time (s)", "CPU time (s)", "detail"], rows))
     if job.get("wall_time_s") is not None:
         parts.append(f"<p>Total wall time: {_e(fmt(float(job['wall_time_s'])))} s.</p>")
     return "".join(parts)
@@ -271,9 +296,10 @@ def _check(check: Mapping[str, Any]) -> str:
             ["family"] + [label_of(c) for c in cols], [[f] + [v.get(c) for c in cols] for f, v in families.items()]))
     if check.get("reading"):
         parts.append(f"<p>{_e(check['reading'])}</p>")
-    rest = {k: v for k, v in check.items() if k not in ("verdict", "families", "reading")}
-    if rest:
-        parts.append("<h3>Statistics</h3>" + key_value_table(rest))
+    rest = {k: v for k, v in check.items() if k not in ("verdict", "families", "reading", "statistics")}
+    stats = {**(check.get("statistics") or {}), **rest}
+    if stats:
+        parts.append("<h3>Statistics</h3>" + key_value_table(stats))
     return "".join(parts)
 
 
@@ -286,7 +312,7 @@ def _spread(scenarios: Sequence[Mapping[str, Any]]) -> str:
         if sc.get("method"):
             parts.append(f"<p class=\"meta\">Method: {_e(sc['method'])}</p>")
         if sc.get("columns"):
-            parts.append(grid_table(sc["columns"], sc.get("rows", [])))
+            parts.append(grid_table(sc["columns"], sc.get("rows", []), sc.get("formats", ())))
         parts += [f"<p>{_e(n)}</p>" for n in sc.get("notes", [])]
     return "".join(parts)
 

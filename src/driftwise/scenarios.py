@@ -122,7 +122,8 @@ def spill_table(spill: Any, s: Any) -> dict:
             "columns": ["time since release (h)", "mean lon (°)" if geo else "mean x (m)",
                         "mean lat (°)" if geo else "mean y (m)", "95 % ellipse semi-major (m)",
                         "95 % ellipse semi-minor (m)", f"P(inside {SHELLFISH_BED}) (–)"],
-            "rows": rows,
+            "rows": rows, "formats": ["hours"] + (["degrees"] * 2 if geo else ["metres"] * 2) + ["metres"] * 2
+            + ["probability"],
             "notes": [f"The probability first reaches {s.threshold:g} "
                       + ("never within the horizon." if arrival is None else f"{arrival / HOUR_S:g} h after the release.")]}
 
@@ -140,6 +141,6 @@ def outfall_table(plume: Any, share: np.ndarray, times: np.ndarray, starts: np.n
             "columns": ["time since the outfall started (h)", "parcels released (–)",
                         f"expected share inside {SHELLFISH_BED} (–)",
                         "highest single-parcel P(inside) (–)"],
-            "rows": rows,
+            "rows": rows, "formats": ["hours", None, "probability", "probability"],
             "notes": ["The share is the mean, over the parcels released so far, of each parcel's probability of "
                       "being inside the bed: the mixture of the parcels' Gaussians."]}

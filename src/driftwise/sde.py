@@ -194,20 +194,29 @@ def join_from_jit(dynamic: list[Any], static: _Static) -> SDE:
 # the code above belongs to the SDE/propagation work)
 # =====================================================================================
 #
-# For a fix x_i at t_i and a later fix of the same track at t_i + λ (lag λ), the moment
-# propagator started from N(x_i, σ² I) gives N(m_λ, P_λ) for the true position; the later
-# fix is that position plus N(0, σ² I) error, so
+# For a fix x_i at t_i and the same track at t_i + λ (lag λ), the moment propagator started
+# from N(x_i, σ² I) gives N(m_λ, P_λ) for the true position; the later fix is that position
+# plus N(0, σ² I) error, so
 #
-#     log p(x_j | x_i; K, τ) = log N(x_j | m_λ(K, τ), P_λ(K, τ) + σ² I).
+#     log p(x_j | x_i; K, τ) = log N(x_j | m_λ, P_λ(K, τ) + σ² I).
 #
 # The calibration maximises the mean of these over every start fix and every lag in
-# ``lags_s`` (a composite likelihood: overlapping windows are treated as independent, which
-# leaves the maximiser consistent but makes the curvature-based spread too small; it is
-# reported as a rough guide only).  The search runs over θ = (log K, log τ) with L-BFGS-B
-# (scipy.optimize.minimize) inside bounds, with the exact gradient of the jitted objective
-# from jax.  The gradient is forward-mode (jax.jacfwd): the RK4/Dopri5 loops have data-
-# dependent trip counts (while loops), which reverse mode cannot differentiate, and with
-# two parameters forward mode costs about as much as one reverse pass anyway.
+# ``lags_s`` (a composite likelihood: overlapping windows count as independent, which keeps
+# the maximiser consistent but makes the curvature-based spread too small; it is reported as
+# a rough guide only), over θ = (log K, log τ), with L-BFGS-B (scipy.optimize.minimize)
+# inside bounds and the exact gradient of a jitted jax objective.  Two routes:
+#
+# * Linearize (default).  Linearized moments (Maybeck 1982, vol. 2, §12.3) have
+#   dm/dt = μ(m), independent of P, and dP/dt = J P + P Jᵀ + 2(K I + τ Σ(m)), linear in
+#   (P, K, τ) along that fixed mean path; RK4 keeps this linearity step by step.  So
+#   P_λ = K·A_λ + τ·B_λ + C_λ exactly, where A, B, C are three runs of the propagator
+#   (moments.propagate_batch: D = 2I from P0 = 0; D = 2Σ from P0 = 0; D = 0 from σ² I).
+#   After these three runs each likelihood evaluation costs microseconds, whatever M.
+# * Any other moment method (e.g. SphericalCubature): the sigma points move with P, so the
+#   propagator runs inside the objective and jax.jacfwd differentiates through it (forward
+#   mode: the RK4/Dopri5 loops have data-dependent trip counts, i.e. while loops, which
+#   reverse mode cannot differentiate; with two parameters forward mode is as cheap).
+#   Exact for that method but costly for a large field (each evaluation is a full forecast).
 #
 # K and τΣ(x) enter D(x) = 2(K I + τ Σ(x)) additively, so they are told apart only by the
 # spatial variation of the posterior covariance Σ(x): where Σ is nearly uniform the data fix
@@ -215,7 +224,7 @@ def join_from_jit(dynamic: list[Any], static: _Static) -> SDE:
 
 from functools import partial as _partial  # noqa: E402  (this section's own import)
 
-CALIBRATION_LAGS_S = (3600.0, 3 * 3600.0, 6 * 3600.0, 12 * 3600.0)
+CALIBRATION_LAGS_S = (3600.0, 3 * 3600.0, 6 * 3600.0, 12 * 3600.0, 24 * 3600.0)
 CALIBRATION_BOUNDS = {"diffusivity_m2_s": (1e-3, 1e4), "decorrelation_time_s": (1.0, 30 * 86400.0)}
 
 
@@ -226,55 +235,23 @@ def _posterior_of(field: Any) -> Any:
     return PointPosterior.from_field(field)
 
 
-def transport_sde(posterior: Any, diffusivity_m2_s: jax.Array, decorrelation_time_s: jax.Array) -> SDE:
+def transport_sde(posterior: Any, diffusivity_m2_s: Any, decorrelation_time_s: Any) -> SDE:
     """The field SDE with K and τ as (possibly traced) jax scalars, no input checks (for jit/grad)."""
     return SDE(
         drift=jax.tree_util.Partial(_field_drift, posterior),
-        diffusion=jax.tree_util.Partial(_field_diffusion, posterior, diffusivity_m2_s, decorrelation_time_s),
+        diffusion=jax.tree_util.Partial(_field_diffusion, posterior, jnp.asarray(diffusivity_m2_s, jnp.float64),
+                                        jnp.asarray(decorrelation_time_s, jnp.float64)),
     )
-
-
-def _mean_transition_log_likelihood(theta, posterior, method, integrator, chunk, means0, covs0, times_s,
-                                    observed, obs_var, weight):
-    """Mean of log N(x_obs | m(λ), P(λ) + obs_var I) over weighted (start, lag) pairs; θ = (log K, log τ)."""
-    from .moments import _propagate_one
-
-    sde = transport_sde(posterior, jnp.exp(theta[0]), jnp.exp(theta[1]))
-
-    def one(release):
-        return _propagate_one(sde, method, integrator, release[0], release[1], times_s)
-
-    means, covs = jax.vmap(one)((means0, covs0)) if chunk >= means0.shape[0] else \
-        jax.lax.map(one, (means0, covs0), batch_size=chunk)
-    d = means0.shape[-1]
-    total = covs[:, 1:] + obs_var[..., None, None] * jnp.eye(d)
-    resid = observed - means[:, 1:]
-    chol = jnp.linalg.cholesky(total)
-    z = jax.scipy.linalg.solve_triangular(chol, resid[..., None], lower=True)[..., 0]
-    logdet = 2.0 * jnp.sum(jnp.log(jnp.diagonal(chol, axis1=-2, axis2=-1)), axis=-1)
-    logp = -0.5 * (jnp.sum(z * z, axis=-1) + logdet + d * jnp.log(2.0 * jnp.pi))
-    return jnp.sum(jnp.where(weight > 0, logp, 0.0) * weight) / jnp.sum(weight)
-
-
-@_partial(jax.jit, static_argnames=("method", "chunk"))
-def _value_and_grad(theta, posterior, method, integrator, chunk, means0, covs0, times_s, observed, obs_var, weight):
-    """(−mean log likelihood, its gradient in θ), forward mode."""
-    def f(th):
-        value = -_mean_transition_log_likelihood(th, posterior, method, integrator, chunk, means0, covs0,
-                                                 times_s, observed, obs_var, weight)
-        return value, value
-
-    grad, value = jax.jacfwd(f, has_aux=True)(theta)
-    return value, grad
 
 
 @dataclass(frozen=True)
 class Transitions:
-    """Start fixes and later fixes at the calibration lags.
+    """Start fixes and the same tracks at the calibration lags.
 
     ``start_m`` (R, d) start fixes, ``times_s`` (1 + L,) = (0, lags), ``observed_m`` (R, L, d)
-    the track at t_start + lag (linear interpolation between fixes, NaN where the track ends),
-    ``obs_var_m2`` (R, L) its error variance per component, ``weight`` (R, L) 1 where observed.
+    the track at t_start + lag (linear interpolation between fixes), ``obs_var_m2`` (R, L) its
+    error variance per component, ``weight`` (R, L) 1 where observed, 0 elsewhere and for the
+    padding rows (R is padded to a multiple of 128 so similar calls share one compilation).
     """
 
     start_m: np.ndarray
@@ -289,13 +266,12 @@ def _tracks_from_observations(obs) -> Any:
     from .tracks import Tracks
 
     idx = np.asarray(obs.track_index)
-    half = 0.5 * np.asarray(obs.velocity_m_s) * np.asarray(obs.dt_s)[:, None]
-    first = np.asarray(obs.position_m) - half
-    last_of_track = np.r_[idx[1:] != idx[:-1], True]
-    pos = np.concatenate([first, (np.asarray(obs.position_m) + half)[last_of_track]])
-    time = np.concatenate([np.asarray(obs.time_s) - 0.5 * np.asarray(obs.dt_s),
-                           (np.asarray(obs.time_s) + 0.5 * np.asarray(obs.dt_s))[last_of_track]])
-    ids = np.concatenate([idx, idx[last_of_track]])
+    mid, dt = np.asarray(obs.position_m), np.asarray(obs.dt_s)
+    half = 0.5 * np.asarray(obs.velocity_m_s) * dt[:, None]
+    last = np.r_[idx[1:] != idx[:-1], True]
+    pos = np.concatenate([mid - half, (mid + half)[last]])
+    time = np.concatenate([np.asarray(obs.time_s) - 0.5 * dt, (np.asarray(obs.time_s) + 0.5 * dt)[last]])
+    ids = np.concatenate([idx, idx[last]])
     order = np.lexsort((time, ids))
     return Tracks(track_id=np.array([str(i) for i in ids[order]], dtype=object), time_s=time[order],
                   position_m=pos[order], source="observations")
@@ -303,10 +279,10 @@ def _tracks_from_observations(obs) -> Any:
 
 def transitions_from_tracks(tracks_or_observations, *, lags_s=CALIBRATION_LAGS_S, position_error_m: float,
                             max_starts: int | None = 600, frame: Any = None) -> Transitions:
-    """Every fix (after a track's first) as a start, with the same track at each lag later.
+    """Every fix after a track's first as a start, with the same track at each lag later.
 
-    At most ``max_starts`` starts, evenly spaced over all of them (deterministic).  Accepts
-    Tracks (re-projected into ``frame``, the model's, when given) or the Observations made from them.
+    At most ``max_starts`` starts, evenly spaced over all (deterministic).  Tracks are
+    re-projected into ``frame`` (the model's) when given; Observations are turned back into fixes.
     """
     from .skill import forecast_windows, in_model_frame
 
@@ -319,15 +295,105 @@ def transitions_from_tracks(tracks_or_observations, *, lags_s=CALIBRATION_LAGS_S
     win = forecast_windows(data, lags, step_s=float(lags.max()), max_starts=max_starts)
     keep = np.searchsorted(win.times_s, lags)
     valid = win.valid[:, keep]
-    observed = np.where(valid[..., None], win.observed_m[:, keep], 0.0)
-    obs_var = position_error_m**2 * win.obs_var_factor[:, keep] + 1e-6
-    # pad to a multiple of 128 starts (weight 0) so calls of similar size share one compilation
-    pad = (-win.start_m.shape[0]) % 128
-    start = np.concatenate([win.start_m, np.repeat(win.start_m[:1], pad, axis=0)])
-    observed = np.concatenate([observed, np.repeat(observed[:1], pad, axis=0)])
-    obs_var = np.concatenate([obs_var, np.repeat(obs_var[:1], pad, axis=0)])
+    pad = (-valid.shape[0]) % 128
+    rows = np.r_[np.arange(valid.shape[0]), np.zeros(pad, dtype=int)]
+    observed = np.where(valid[..., None], win.observed_m[:, keep], 0.0)[rows]
+    obs_var = (position_error_m**2 * win.obs_var_factor[:, keep] + 1e-6)[rows]
     weight = np.concatenate([valid.astype(float), np.zeros((pad, lags.size))])
-    return Transitions(start, np.concatenate([[0.0], lags]), observed, obs_var, weight)
+    return Transitions(win.start_m[rows], np.concatenate([[0.0], lags]), observed, obs_var, weight)
+
+
+def _mean_log_likelihood(means, covs, observed, obs_var, weight):
+    """Weighted mean of log N(x_obs | m, P + obs_var I); means (R, L, d), covs (R, L, d, d)."""
+    d = means.shape[-1]
+    chol = jnp.linalg.cholesky(covs + obs_var[..., None, None] * jnp.eye(d))
+    z = jax.scipy.linalg.solve_triangular(chol, (observed - means)[..., None], lower=True)[..., 0]
+    logdet = 2.0 * jnp.sum(jnp.log(jnp.diagonal(chol, axis1=-2, axis2=-1)), axis=-1)
+    logp = -0.5 * (jnp.sum(z * z, axis=-1) + logdet + d * jnp.log(2.0 * jnp.pi))
+    return jnp.sum(jnp.where(weight > 0, logp, 0.0) * weight) / jnp.sum(weight)
+
+
+# ----- route 1: linearized moments, P = K A + τ B + C
+def linearized_parts(posterior: Any, trans: Transitions, position_error_m: float, integrator: Any):
+    """(means (R, L, d), A, B, C (R, L, d, d)) with P(K, τ) = K A + τ B + C under Linearize().
+
+    Three propagate_batch runs along the same linearized mean path: D = 2I and D = 2Σ from a
+    point release, and D = 0 from the fix's error σ² I.
+    """
+    from .moments import Linearize, propagate_batch
+
+    r, d = trans.start_m.shape
+    zero = np.zeros((r, d, d))
+    fix = np.broadcast_to(position_error_m**2 * np.eye(d), (r, d, d))
+    runs = [propagate_batch(transport_sde(posterior, k, tau), trans.start_m, p0, trans.times_s,
+                            method=Linearize(), integrator=integrator, chunk=r)
+            for k, tau, p0 in ((1.0, 0.0, zero), (0.0, 1.0, zero), (0.0, 0.0, fix))]
+    return (runs[0][0][:, 1:],) + tuple(run[1][:, 1:] for run in runs)
+
+
+@jax.jit
+def _parts_value_and_grad(theta, means, a, b, c, observed, obs_var, weight):
+    """(−mean log likelihood, gradient) in θ = (log K, log τ) for P = e^θ₀ A + e^θ₁ B + C (reverse mode)."""
+    def f(th):
+        return -_mean_log_likelihood(means, jnp.exp(th[0]) * a + jnp.exp(th[1]) * b + c, observed, obs_var, weight)
+
+    return jax.value_and_grad(f)(theta)
+
+
+# ----- route 2: any moment method, forward-mode gradient through the propagator
+def _propagated_log_likelihood(theta, posterior, method, integrator, chunk, means0, covs0, times_s,
+                               observed, obs_var, weight):
+    from .moments import _propagate_one
+
+    sde = transport_sde(posterior, jnp.exp(theta[0]), jnp.exp(theta[1]))
+
+    def one(release):
+        return _propagate_one(sde, method, integrator, release[0], release[1], times_s)
+
+    if chunk >= means0.shape[0]:
+        means, covs = jax.vmap(one)((means0, covs0))
+    else:
+        means, covs = jax.lax.map(one, (means0, covs0), batch_size=chunk)
+    return _mean_log_likelihood(means[:, 1:], covs[:, 1:], observed, obs_var, weight)
+
+
+@_partial(jax.jit, static_argnames=("method", "chunk"))
+def _value_and_grad(theta, posterior, method, integrator, chunk, means0, covs0, times_s, observed, obs_var, weight):
+    """(−mean log likelihood, gradient) with the propagator inside (jax.jacfwd)."""
+    def f(th):
+        value = -_propagated_log_likelihood(th, posterior, method, integrator, chunk, means0, covs0, times_s,
+                                            observed, obs_var, weight)
+        return value, value
+
+    grad, value = jax.jacfwd(f, has_aux=True)(theta)
+    return value, grad
+
+
+def _objective(field: Any, trans: Transitions, sigma: float, method: Any, integrator: Any, chunk: int):
+    """θ ↦ (value, gradient) as floats/numpy for scipy, by route 1 (Linearize) or route 2."""
+    from .moments import Linearize
+
+    posterior = _posterior_of(field)
+    data = (jnp.asarray(trans.observed_m), jnp.asarray(trans.obs_var_m2), jnp.asarray(trans.weight))
+    if isinstance(method, Linearize):
+        parts = linearized_parts(posterior, trans, sigma, integrator)
+
+        def evaluate(theta):
+            return _parts_value_and_grad(jnp.asarray(theta), *parts, *data)
+    else:
+        r, d = trans.start_m.shape
+        covs0 = jnp.asarray(np.broadcast_to(sigma**2 * np.eye(d), (r, d, d)))
+        args = (posterior, method, integrator, int(min(chunk, r)), jnp.asarray(trans.start_m), covs0,
+                jnp.asarray(trans.times_s))
+
+        def evaluate(theta):
+            return _value_and_grad(jnp.asarray(theta), *args, *data)
+
+    def fun(theta):
+        value, grad = evaluate(theta)
+        return float(value), np.asarray(grad, dtype=float)
+
+    return fun
 
 
 def calibrate_transport(field: Any, tracks_or_observations, *, lags_s=CALIBRATION_LAGS_S,
@@ -337,48 +403,36 @@ def calibrate_transport(field: Any, tracks_or_observations, *, lags_s=CALIBRATIO
     """Estimate the eddy diffusivity K (m²/s) and decorrelation time τ (s) from fit-set transitions.
 
     Maximises the mean transition log likelihood of the section comment above over
-    θ = (log K, log τ) with L-BFGS-B inside ``CALIBRATION_BOUNDS``, starting from ``initial``
-    (default: the field's K and τ, or ℓ-free guesses 1 m²/s, 1 h).  ``field`` is a FlowField
-    (or any pytree with ``mean_at(x)``/``cov_at(x)``, e.g. a known analytic field in tests);
-    ``position_error_m`` defaults to the field's.  Use the fit set only: calibrating on
-    held-out tracks would leak them into the score.  Returns (K, τ, info) with the optimiser's
-    record, the number of transitions and rough log-space standard errors.
+    θ = (log K, log τ) with L-BFGS-B inside ``CALIBRATION_BOUNDS``, from ``initial`` (default:
+    the field's K and τ, else 1 m²/s and 1 h).  ``method``: a moments strategy, default
+    ``Linearize()`` (exact fast route); ``integrator`` default RK4 with 30 min steps.
+    ``field`` is a FlowField or any pytree with ``mean_at(x)``/``cov_at(x)`` (e.g. a known
+    analytic field); ``position_error_m`` defaults to the field's.  Use the fit set only:
+    calibrating on held-out tracks would leak them into the score.  Returns (K, τ, info) with
+    the optimiser's record, the number of transitions and rough log-space standard errors.
     """
     from scipy.optimize import minimize
 
-    from .moments import RK4, SphericalCubature
+    from .moments import RK4, Linearize
 
-    method = SphericalCubature() if method is None else method
+    method = Linearize() if method is None else method
     integrator = RK4(step_s=1800.0) if integrator is None else integrator
     sigma = _calibration_sigma(field, position_error_m)
     trans = transitions_from_tracks(tracks_or_observations, lags_s=lags_s, position_error_m=sigma,
                                     max_starts=max_starts, frame=getattr(field, "frame", None))
-    posterior = _posterior_of(field)
-    d = trans.start_m.shape[1]
-    args = (posterior, method, integrator, int(min(chunk, trans.start_m.shape[0])),
-            jnp.asarray(trans.start_m), jnp.asarray(np.broadcast_to(sigma**2 * np.eye(d), (trans.start_m.shape[0], d, d))),
-            jnp.asarray(trans.times_s), jnp.asarray(trans.observed_m), jnp.asarray(trans.obs_var_m2),
-            jnp.asarray(trans.weight))
-
-    def fun(theta):
-        value, grad = _value_and_grad(jnp.asarray(theta), *args)
-        return float(value), np.asarray(grad, dtype=float)
-
-    theta0 = np.log(_initial_transport(field, initial))
+    fun = _objective(field, trans, sigma, method, integrator, chunk)
     bounds = [tuple(np.log(CALIBRATION_BOUNDS[k])) for k in ("diffusivity_m2_s", "decorrelation_time_s")]
-    theta0 = np.clip(theta0, [b[0] for b in bounds], [b[1] for b in bounds])
+    theta0 = np.clip(np.log(_initial_transport(field, initial)), [b[0] for b in bounds], [b[1] for b in bounds])
     result = minimize(fun, theta0, jac=True, method="L-BFGS-B", bounds=bounds,
-                      options={"maxiter": 60, "ftol": 1e-10, "gtol": 1e-7})
+                      options={"maxiter": 100, "ftol": 1e-12, "gtol": 1e-8})
     k, tau = (float(v) for v in np.exp(result.x))
     n = int(trans.weight.sum())
-    info = {"diffusivity_m2_s": k, "decorrelation_time_s": tau,
-            "mean_log_likelihood": -float(result.fun), "n_transitions": n,
-            "n_starts": int(np.count_nonzero(trans.weight.sum(axis=1))),
+    info = {"diffusivity_m2_s": k, "decorrelation_time_s": tau, "mean_log_likelihood": -float(result.fun),
+            "n_transitions": n, "n_starts": int(np.count_nonzero(trans.weight.sum(axis=1))),
             "lags_s": [float(v) for v in trans.times_s[1:]], "position_error_m": sigma,
             "converged": bool(result.success), "iterations": int(result.nit), "message": str(result.message),
             "initial": {"diffusivity_m2_s": float(np.exp(theta0[0])), "decorrelation_time_s": float(np.exp(theta0[1]))},
-            "at_bound": _at_bounds(result.x, bounds),
-            "log_std": _log_std(fun, result.x, n),
+            "at_bound": _at_bounds(result.x, bounds), "log_std": _log_std(fun, result.x, n),
             "method": type(method).__name__, "objective": "mean Gaussian transition log likelihood (composite)"}
     return k, tau, info
 
