@@ -40,7 +40,10 @@ CORE_M = 5000.0
 @jax.tree_util.register_dataclass
 @dataclass(frozen=True)
 class KnownVortex:
-    """A known field in the posterior interface (mean_at, cov_at): Lamb–Oseen mean, Σ(x) = s² e^{−|x−c|²/2L²} I."""
+    """A known field with the posterior interface (mean_at, cov_at).
+
+    Lamb–Oseen mean velocity; velocity covariance Σ(x) = s² e^{−|x−c|²/2L²} I.
+    """
 
     circulation_m2_s: jax.Array
     core_radius_m: jax.Array

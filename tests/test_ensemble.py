@@ -6,10 +6,11 @@ Outside references:
   x0 + t tanh(x0) and variance t + t² (1 − tanh²(x0)).
 - Ornstein–Uhlenbeck moments by Van Loan (1978) with scipy.linalg.expm.
 - Pure diffusion, Var = 2 K t (Einstein 1905); zero drift makes every
-  Euler–Maruyama step exact in law (Kloeden & Platen 1992, §10.2).
-- Sampling covariance of a Gaussian sample covariance,
-  Var(s_ij) = (σ_ii σ_jj + σ_ij²)/N (Anderson 2003, "An Introduction to
-  Multivariate Statistical Analysis", 3rd ed., Theorem 3.4.4, large-N form).
+  Euler–Maruyama step exact in law (Kloeden & Platen 1992).
+- Sampling variance of a Gaussian sample covariance, Var(s_ij) ≈ (σ_ii σ_jj + σ_ij²)/N
+  for large N, since E[x_i² x_j²] = σ_ii σ_jj + 2 σ_ij² by Isserlis (1918), "On a
+  formula for the product-moment coefficient of any order of a normal frequency
+  distribution".
 - numpy.mean / numpy.cov as the two-pass reference for the streamed sums.
 """
 
@@ -88,7 +89,7 @@ def test_pure_diffusion_and_standard_errors_against_gaussian_theory():
     sigma = d_rate * t  # Einstein 1905: P(t) = D t for a point release
     assert np.all(np.abs(result.cov[1] - sigma) < 3.0 * result.cov_se[1])
     assert np.all(np.abs(np.asarray(result.mean[1]) - [10.0, -3.0]) < 3.0 * result.mean_se[1])
-    # the fourth-moment standard error agrees with the Gaussian formula (Anderson 2003)
+    # the fourth-moment standard error agrees with the Gaussian formula (Isserlis 1918)
     se_theory = np.sqrt((np.outer(np.diag(sigma), np.diag(sigma)) + sigma**2) / n)
     np.testing.assert_allclose(result.cov_se[1], se_theory, rtol=0.03, atol=0)
     np.testing.assert_allclose(result.mean_se[1], np.sqrt(np.diag(sigma) / n), rtol=0.01, atol=0)

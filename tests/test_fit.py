@@ -8,6 +8,7 @@ plateau detection is checked on hand-made histories.
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import sys
 
@@ -80,6 +81,14 @@ def test_plateau_rule():
     assert fitmod._plateau(flat, 10, 100)
     assert not fitmod._plateau(flat[:19], 10, 100)       # needs two full windows
     assert not fitmod._plateau(flat[:35], 10, 100)       # checked at window ends only
+
+
+def test_auto_schedule_uses_all_data_with_exact_q_when_it_fits():
+    config = fitmod._check_options("helmholtz", "squared-exponential", 16, 0, 10, 100, 0.05, 5, "auto", 0.5, 10.0)
+    small, large = fitmod._resolve(config, 400), fitmod._resolve(config, 401)
+    assert (small.batch_size, small.q_update) == (400, "natural")
+    assert (large.batch_size, large.q_update) == (100, "adam")
+    assert fitmod._resolve(dataclasses.replace(config, q_update="natural"), 401).q_update == "natural"
 
 
 def test_initial_inducing_is_seeded_kmeans():
@@ -157,7 +166,7 @@ def _loop_parts(tracks, **overrides):
     options.update(overrides)
     data = fitmod._prepare(tracks, 5.0)
     config = fitmod._check_options(*options.values())
-    config = fitmod.dataclasses.replace(config, fingerprint=data.fingerprint)
+    config = dataclasses.replace(config, fingerprint=data.fingerprint)
     state, z_scale = fitmod._start(data, config, learning_rate=options["learning_rate"], checkpoint=None, resume=False)
     return data, config, state, z_scale
 
@@ -168,7 +177,7 @@ def test_the_compiled_step_flags_a_non_finite_elbo(tracks):
     good = fitmod._step(state.params, state.opt_state, data.batch, float(data.n), 1.0, z_scale, names=names,
                         q_update="adam", jitter_multiple=fld.JITTER_MULTIPLE)
     assert bool(good[3]) and np.isfinite(float(good[2]))
-    broken = fitmod.dataclasses.replace(state.params, log_noise_floor_m_s=state.params.log_noise_floor_m_s * np.nan)
+    broken = dataclasses.replace(state.params, log_noise_floor_m_s=state.params.log_noise_floor_m_s * np.nan)
     bad = fitmod._step(broken, state.opt_state, data.batch, float(data.n), 1.0, z_scale, names=names,
                        q_update="adam", jitter_multiple=fld.JITTER_MULTIPLE)
     assert not bool(bad[3])

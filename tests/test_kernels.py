@@ -41,7 +41,8 @@ def _separations(dim, n=6, seed=0):
 # ---------------------------------------------------------------------------------------------
 @pytest.mark.parametrize("dim", [2, 3])
 def test_base_values_match_scikit_learn(dim):
-    # Reference: scikit-learn RBF and Matern(nu=2.5) (Rasmussen & Williams 2006, eqs. 4.9 and 4.17).
+    # Reference: scikit-learn RBF and Matern(nu=2.5) (Rasmussen & Williams 2006, Gaussian Processes for
+    # Machine Learning, eqs. 4.9 and 4.17; equation numbers from memory).
     x = np.random.default_rng(1).uniform(0, 3 * ELL, (12, dim))
     references = {
         "squared-exponential": ConstantKernel(SIGMA**2, "fixed") * RBF(ELL, "fixed"),
@@ -63,7 +64,7 @@ def test_closed_form_hessian_matches_autodiff_and_finite_differences(name, dim):
         auto = jax.hessian(base.value)(jnp.asarray(r))
         np.testing.assert_allclose(closed, auto, rtol=0, atol=1e-10 * unit)
         # Outside reference: central second differences of scikit-learn's kernel value, step h = 1e-3 ℓ
-        # (truncation error O(h²/ℓ²) ≈ 1e-6 relative; Abramowitz & Stegun 1964, 25.3.26-27).
+        # (truncation error O(h²/ℓ²) ≈ 1e-6 relative; the four-point mixed difference, common practice).
         ref = (ConstantKernel(SIGMA**2, "fixed") * (RBF(ELL, "fixed") if name == "squared-exponential"
                                                      else Matern(ELL, "fixed", nu=2.5)))
         h = 1e-3 * ELL
@@ -78,7 +79,7 @@ def test_closed_form_hessian_matches_autodiff_and_finite_differences(name, dim):
 @pytest.mark.parametrize("name", list(BASES))
 def test_hessian_at_zero_is_finite_and_exact(name):
     # −H_k(0) = λσ²/ℓ² I with λ = 1 (SE) and 5/3 (Matérn-5/2), from the Taylor series
-    # k = σ²(1 − ρ²/2 + …) and σ²(1 − 5ρ²/6 + …) (Rasmussen & Williams 2006, eq. 4.17 expanded).
+    # k = σ²(1 − ρ²/2 + …) and σ²(1 − 5ρ²/6 + …) (Rasmussen & Williams 2006, eq. 4.17 expanded by hand).
     base = make_base(name, velocity_scale_m_s=SIGMA, length_scale_m=ELL)
     lam = {"squared-exponential": 1.0, "matern52": 5.0 / 3.0}[name]
     for dim in (2, 3):

@@ -195,3 +195,16 @@ def test_split_fixed_by_model_and_needs_helmholtz():
     assert P.helmholtz_split(exact_field("curl-free"), POINTS).fraction == 1.0
     with pytest.raises(driftwise.InputError, match="helmholtz"):
         P.helmholtz_split(exact_field("independent"), POINTS)
+
+
+def test_significance_in_3d_tests_each_vorticity_component():
+    field = exact_field("independent", dim=3, n=25)
+    grid = P.hull_grid(np.asarray(field.params.inducing_m), n_cells=40)
+    post = P.vorticity_posterior(field, grid.points_m)
+    sig = P.significance(post)
+    assert sig.significant.shape == (grid.points_m.shape[0],)
+    # a cell is significant when any of its three components is rejected by BH over all 3·G tests
+    p = 2.0 * stats.norm.sf(np.abs(post.z))
+    expected = np.any(stats.false_discovery_control(p.ravel(), method="bh").reshape(p.shape) <= 0.05, axis=1)
+    np.testing.assert_array_equal(sig.significant, expected)
+    np.testing.assert_allclose(sig.max_abs_z, np.max(np.abs(post.z)), rtol=1e-12)

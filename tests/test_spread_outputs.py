@@ -98,7 +98,8 @@ def test_netcdf_round_trip_with_cf_attributes(tmp_path):
         np.testing.assert_allclose(ds["time"].values, TIMES, rtol=0, atol=0)
         np.testing.assert_allclose(ds["semi_minor_m"].sel(level=0.5).values, spread.semi_axes_m[:, :, 0, 1], rtol=0)
         np.testing.assert_allclose(ds["probability_inside"].values, spread.probability, rtol=0, atol=0)
-        assert list(ds["release_name"].values) == ["=HYPERLINK(x)", "north pier"]
+        assert list(ds["release"].values) == ["=HYPERLINK(x)", "north pier"]
+        np.testing.assert_allclose(ds["mean_m"].sel(release="north pier").values, spread.means[1], rtol=0, atol=0)
         assert Frame.from_dict(json.loads(ds.attrs["frame"])) == FRAME
 
 

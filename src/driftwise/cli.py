@@ -265,7 +265,8 @@ def _add_fit(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--out", required=True, metavar="MODEL", help="model file to write (.npz)")
     p.add_argument("--kernel", default="helmholtz", choices=["helmholtz", "divergence-free", "curl-free", "independent"],
                    help="kernel family (default helmholtz: divergence-free + curl-free parts)")
-    p.add_argument("--inducing", type=int, default=256, metavar="M", help="number of inducing points (default 256)")
+    p.add_argument("--inducing", type=int, default=None, metavar="M",
+                   help="number of inducing points (default: min(256, observations/32), at least 16)")
     p.add_argument("--seed", type=int, default=0, metavar="S", help="random seed (default 0)")
     p.add_argument("--position-error", default="10m", help="standard deviation of one fix per axis (default 10m)")
     p.add_argument("--max-speed", default="5m/s", help="drop fixes implying a faster speed (default 5m/s)")
@@ -293,7 +294,7 @@ def _run_fit(args: argparse.Namespace) -> int:
     from .units import parse_length_m
 
     position_error = parse_length_m(args.position_error, what="--position-error")
-    if args.inducing < 1:
+    if args.inducing is not None and args.inducing < 1:
         raise InputError(f"--inducing must be a positive integer, got {args.inducing}")
     if args.seed < 0:
         raise InputError(f"--seed must be a non-negative integer, got {args.seed}")

@@ -2,7 +2,7 @@
 
 x_{k+1} = x_k + μ(x_k) h + L(x_k) √h ξ_k,  ξ_k ~ N(0, I),  L Lᵀ = D
 (Kloeden & Platen 1992, "Numerical Solution of Stochastic Differential
-Equations", §10.2: strong order 1/2, weak order 1).  Particles start from
+Equations": strong order 1/2, weak order 1).  Particles start from
 N(mean0, cov0) and are simulated in chunks; each chunk adds its shifted power
 sums up to fourth order to float64 accumulators, so memory is bounded by one
 chunk whatever the particle count, and the sample mean, covariance and their

@@ -155,8 +155,6 @@ def spread_dataset(spread):
     comp = list("xyz"[: spread.dim])
     rel_dims, t_dims = ("release",), ("release", "time")
     data = {
-        "release_name": (rel_dims, np.array([r.name for r in spread.releases], dtype=object),
-                         {"long_name": "release name"}),
         "start_time_s": (rel_dims, np.array([r.start_time_s for r in spread.releases]),
                          {"units": "s", "long_name": "release start time on the model's time axis"}),
         "start_m": (("release", "component"), np.stack([r.start_m for r in spread.releases]),
@@ -180,7 +178,9 @@ def spread_dataset(spread):
         data["probability_inside"] = (t_dims, spread.probability,
                                       {"units": "1", "long_name": "probability of being inside the polygon"})
         data["polygon_m"] = (("vertex", "component_xy"), spread.polygon_m, {"units": "m", "long_name": "polygon vertices"})
-    coords = {"time": ("time", np.asarray(spread.times_s), {"units": "s", "long_name": "time since the release"}),
+    coords = {"release": ("release", np.array([r.name for r in spread.releases], dtype=object),
+                          {"long_name": "release name"}),
+              "time": ("time", np.asarray(spread.times_s), {"units": "s", "long_name": "time since the release"}),
               "component": ("component", comp), "component2": ("component2", comp),
               "level": ("level", np.array(spread.levels), {"units": "1", "long_name": "probability level of the ellipse"})}
     attrs = {"Conventions": "CF-1.8", "title": "driftwise spread forecast", "method": spread.method,

@@ -19,7 +19,8 @@ The Matérn profiles are functions of s with hand-written derivatives
 ``where``); derivatives of every order stay finite and take their limits at r = 0.
 
 Matrix kernels (Narcowich & Ward 1994, "Generalized Hermite interpolation via
-matrix-valued conditionally positive definite functions"; Fuselier 2008):
+matrix-valued conditionally positive definite functions"; Fuselier 2008, "Sobolev-type
+approximation rates for divergence-free and curl-free RBF interpolants"):
 
 * curl-free       K_cf(r) = −c H_k(r)                      (v = ∇φ)
 * divergence-free K_df(r) = c′ (H_k(r) − tr H_k(r) I)      (2-D: v = (∂ψ/∂y, −∂ψ/∂x))

@@ -1,8 +1,8 @@
 """Gaussian moment propagation for an Itô SDE dx = μ(x) dt + L(x) dβ, D = L Lᵀ.
 
 Assumed-density (Gaussian) moment equations (Jazwinski 1970, "Stochastic
-Processes and Filtering Theory", §9; Maybeck 1982, "Stochastic Models,
-Estimation and Control", vol. 2, §12.4):
+Processes and Filtering Theory"; Maybeck 1982, "Stochastic Models,
+Estimation and Control", vol. 2):
 
     dm/dt = E[μ(x)]
     dP/dt = E[μ(x)(x − m)ᵀ] + E[(x − m)μ(x)ᵀ] + E[D(x)],     x ~ N(m, P).
@@ -99,7 +99,7 @@ class Linearize:
     """First-order expansion of μ about the mean (extended-Kalman-type moments).
 
     E[μ] ≈ μ(m), E[μ(x)(x − m)ᵀ] ≈ J P with J = ∂μ/∂x at m (jax.jacfwd),
-    E[D] ≈ D(m) (Maybeck 1982 vol. 2, §12.3).  Exact for linear drift and
+    E[D] ≈ D(m) (Maybeck 1982, vol. 2).  Exact for linear drift and
     constant diffusion; one drift Jacobian per evaluation.
     """
 
@@ -281,7 +281,8 @@ def _dopri5_step(f: Callable, y: jax.Array, h: jax.Array) -> tuple[jax.Array, ja
 )
 @dataclass(frozen=True)
 class Dopri5:
-    """Adaptive Dormand–Prince 5(4) with error control (Hairer, Nørsett & Wanner 1993, §II.4).
+    """Adaptive Dormand–Prince 5(4) with error control (Hairer, Nørsett & Wanner 1993,
+    "Solving Ordinary Differential Equations I", step-size selection).
 
     A step is accepted when the RMS of err_i / (atol + rtol·max(|y_i|, |y_new,i|))
     is ≤ 1; the next step is h · clip(0.9 err^(−1/5), 0.2, 5).  `atol` is in the

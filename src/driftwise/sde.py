@@ -404,37 +404,85 @@ def calibrate_transport(field: Any, tracks_or_observations, *, lags_s=CALIBRATIO
 
     Maximises the mean transition log likelihood of the section comment above over
     θ = (log K, log τ) with L-BFGS-B inside ``CALIBRATION_BOUNDS``, from ``initial`` (default:
-    the field's K and τ, else 1 m²/s and 1 h).  ``method``: a moments strategy, default
-    ``Linearize()`` (exact fast route); ``integrator`` default RK4 with 30 min steps.
-    ``field`` is a FlowField or any pytree with ``mean_at(x)``/``cov_at(x)`` (e.g. a known
-    analytic field); ``position_error_m`` defaults to the field's.  Use the fit set only:
-    calibrating on held-out tracks would leak them into the score.  Returns (K, τ, info) with
-    the optimiser's record, the number of transitions and rough log-space standard errors.
+    the field's K and τ, else 1 m²/s and 1 h).  ``field`` is a FlowField or any pytree with
+    ``mean_at(x)``/``cov_at(x)`` (e.g. a known analytic field) — or a list of fields with a
+    list of track sets of the same length (cross-validation folds: field i forecasts the
+    tracks i it was not fitted on; the likelihood is pooled over all folds).  ``method``: a
+    moments strategy, default ``Linearize()`` (the exact fast route); ``integrator`` default
+    RK4 with 30 min steps; ``position_error_m`` defaults to the field's; ``max_starts`` is
+    shared among the folds.  Use the fit set only: calibrating on held-out tracks would leak
+    them into the score.  Returns (K, τ, info) with the optimiser's record, the number of
+    transitions and rough log-space standard errors.
     """
     from scipy.optimize import minimize
 
     from .moments import RK4, Linearize
 
+    fields, datas = _folds(field, tracks_or_observations)
     method = Linearize() if method is None else method
     integrator = RK4(step_s=1800.0) if integrator is None else integrator
-    sigma = _calibration_sigma(field, position_error_m)
-    trans = transitions_from_tracks(tracks_or_observations, lags_s=lags_s, position_error_m=sigma,
-                                    max_starts=max_starts, frame=getattr(field, "frame", None))
-    fun = _objective(field, trans, sigma, method, integrator, chunk)
+    sigma = _calibration_sigma(fields[0], position_error_m)
+    per_fold = None if max_starts is None else max(1, int(max_starts) // len(fields))
+    transitions = [transitions_from_tracks(data, lags_s=lags_s, position_error_m=sigma, max_starts=per_fold,
+                                           frame=getattr(f, "frame", None)) for f, data in zip(fields, datas)]
+    fun = _pooled([_objective(f, t, sigma, method, integrator, chunk) for f, t in zip(fields, transitions)],
+                  [float(t.weight.sum()) for t in transitions])
     bounds = [tuple(np.log(CALIBRATION_BOUNDS[k])) for k in ("diffusivity_m2_s", "decorrelation_time_s")]
-    theta0 = np.clip(np.log(_initial_transport(field, initial)), [b[0] for b in bounds], [b[1] for b in bounds])
+    theta0 = np.clip(np.log(_initial_transport(fields[0], initial)), [b[0] for b in bounds], [b[1] for b in bounds])
     result = minimize(fun, theta0, jac=True, method="L-BFGS-B", bounds=bounds,
                       options={"maxiter": 100, "ftol": 1e-12, "gtol": 1e-8})
     k, tau = (float(v) for v in np.exp(result.x))
-    n = int(trans.weight.sum())
+    n = int(sum(t.weight.sum() for t in transitions))
     info = {"diffusivity_m2_s": k, "decorrelation_time_s": tau, "mean_log_likelihood": -float(result.fun),
-            "n_transitions": n, "n_starts": int(np.count_nonzero(trans.weight.sum(axis=1))),
-            "lags_s": [float(v) for v in trans.times_s[1:]], "position_error_m": sigma,
-            "converged": bool(result.success), "iterations": int(result.nit), "message": str(result.message),
+            "n_transitions": n, "n_starts": int(sum(np.count_nonzero(t.weight.sum(axis=1)) for t in transitions)),
+            "n_folds": len(fields), "lags_s": [float(v) for v in transitions[0].times_s[1:]],
+            "position_error_m": sigma, "converged": bool(result.success), "iterations": int(result.nit),
+            "message": str(result.message),
             "initial": {"diffusivity_m2_s": float(np.exp(theta0[0])), "decorrelation_time_s": float(np.exp(theta0[1]))},
             "at_bound": _at_bounds(result.x, bounds), "log_std": _log_std(fun, result.x, n),
             "method": type(method).__name__, "objective": "mean Gaussian transition log likelihood (composite)"}
     return k, tau, info
+
+
+def _folds(field: Any, data: Any) -> tuple[list[Any], list[Any]]:
+    if not isinstance(field, (list, tuple)):
+        return [field], [data]
+    if not isinstance(data, (list, tuple)) or len(data) != len(field) or not field:
+        raise InputError("calibration folds: give as many track sets as fields (one per fold)")
+    return list(field), list(data)
+
+
+def _pooled(funs: list[Callable], weights: list[float]) -> Callable:
+    """θ ↦ Σ_f w_f fun_f(θ) / Σ_f w_f for (value, gradient) pairs."""
+    total = float(sum(weights))
+
+    def fun(theta):
+        value, grad = 0.0, np.zeros(2)
+        for f, w in zip(funs, weights):
+            v, g = f(theta)
+            value, grad = value + w * v / total, grad + w * g / total
+        return value, grad
+
+    return fun
+
+
+def cross_validation_folds(tracks, refit: Callable[[Any], Any], *, folds: int = 2) -> tuple[list[Any], list[Any]]:
+    """(fields, held-out tracks): track j goes to fold j mod ``folds``; field i = ``refit`` on the other folds.
+
+    ``refit(tracks) -> FlowField`` must fit with the same settings as the model being calibrated.
+    """
+    if not hasattr(tracks, "select") or not hasattr(tracks, "unique_ids"):
+        raise InputError("cross-validated calibration needs Tracks (with track ids), not velocity observations")
+    ids = [str(i) for i in tracks.unique_ids]
+    if not (isinstance(folds, int) and 2 <= folds <= len(ids)):
+        raise InputError(f"cross-validated calibration needs 2 <= folds <= number of tracks ({len(ids)}), "
+                         f"got {folds!r}")
+    fields, held = [], []
+    for f in range(folds):
+        test = ids[f::folds]
+        fields.append(refit(tracks.select([i for i in ids if i not in set(test)])))
+        held.append(tracks.select(test))
+    return fields, held
 
 
 def _calibration_sigma(field: Any, position_error_m: float | None) -> float:
@@ -493,28 +541,39 @@ def _json_safe(value: Any) -> Any:
     return value
 
 
-def calibrate(field: Any, tracks_or_observations, *, lags_s=CALIBRATION_LAGS_S, max_starts: int | None = 600,
-              method: Any = None) -> Any:
-    """The FlowField with K and τ replaced by :func:`calibrate_transport` on ``tracks_or_observations``.
+def calibrate(field: Any, tracks_or_observations, *, refit: Callable[[Any], Any] | None = None, folds: int = 2,
+              lags_s=CALIBRATION_LAGS_S, max_starts: int | None = 600, method: Any = None) -> Any:
+    """The FlowField with K and τ replaced by calibrated values (see :func:`calibrate_transport`).
 
-    Give the tracks the field was fitted on.  The returned field's ``diffusivity_m2_s`` and
-    ``decorrelation_time_s`` (and so every forecast and the saved model file) use the calibrated
-    values; the fit record keeps the previous ones and the optimiser's record under
-    ``fit_info["calibration"]``.  The variational posterior itself is unchanged.
+    Give the tracks the field was fitted on.  With ``refit`` (tracks → FlowField, the same fit
+    settings) the calibration is cross-validated: the tracks are split into ``folds`` by track,
+    each fold is forecast by a field refitted without it, and K, τ maximise the pooled
+    likelihood of those out-of-sample transitions.  Without ``refit`` the field itself forecasts
+    its own fit tracks, which it has partly learnt, so the spread comes out optimistic.
+    The returned field's ``diffusivity_m2_s`` and ``decorrelation_time_s`` (and so every
+    forecast and the saved model) use the calibrated values; ``fit_info["calibration"]`` keeps
+    the previous ones and the optimiser's record.  The variational posterior is unchanged.
     """
     import dataclasses
     import json
 
-    k, tau, info = calibrate_transport(field, tracks_or_observations, lags_s=lags_s, max_starts=max_starts,
-                                       method=method)
+    if refit is None:
+        fields, data = field, tracks_or_observations
+    else:
+        fields, data = cross_validation_folds(tracks_or_observations, refit, folds=folds)
+    k, tau, info = calibrate_transport(fields, data, lags_s=lags_s, max_starts=max_starts, method=method,
+                                       position_error_m=field.position_error_m,
+                                       initial=(field.diffusivity_m2_s, field.decorrelation_time_s or 3600.0))
+    info["cross_validated"] = refit is not None
     meta = json.loads(field.metadata_json)
     record = meta.setdefault("fit", {})
     record["calibration"] = _json_safe({
         **info, "diffusivity_m2_s_before": field.diffusivity_m2_s,
         "decorrelation_time_s_before": field.decorrelation_time_s,
         "decorrelation_time_source_before": record.get("decorrelation_time_source")})
-    record["decorrelation_time_source"] = "calibrated: transition likelihood on the fit tracks"
-    record["diffusivity_source"] = "calibrated: transition likelihood on the fit tracks"
+    source = "calibrated: transition likelihood on the fit tracks" + (
+        f" ({folds}-fold cross-validated by track)" if refit is not None else "")
+    record["decorrelation_time_source"] = record["diffusivity_source"] = source
     params = dataclasses.replace(field.params, log_diffusivity_m2_s=jnp.log(jnp.asarray(k, dtype=jnp.float64)))
     return dataclasses.replace(field, params=params, decorrelation_time_s=float(tau),
                                metadata_json=json.dumps(meta, sort_keys=True))

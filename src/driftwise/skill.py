@@ -359,12 +359,13 @@ def in_model_frame(tracks, frame):
 
 
 def forecast_moments(field, win: Windows, *, method: str = "cubature", position_error_m: float,
-                     step_s: float | None = None) -> tuple[np.ndarray, np.ndarray]:
+                     step_s: float | None = 1800.0) -> tuple[np.ndarray, np.ndarray]:
     """Forecast means (R, T, d) and covariances (R, T, d, d) from every start in ONE batched call.
 
     Each start is the fix itself with the fix's error as release uncertainty, N(x_start, σ² I);
     the SDE is the field's (μ = posterior mean, D = 2(K I + τ Σ)), propagated by
-    ``moments.propagate_batch`` with the named moment ``method``.
+    ``moments.propagate_batch`` with the named moment ``method`` and RK4 steps of at most
+    ``step_s`` (s; 30 min is ample for flows whose Lagrangian time scale is hours).
     """
     from .moments import propagate_batch
     from .sde import sde_from_field
@@ -387,17 +388,19 @@ def forecast_moments(field, win: Windows, *, method: str = "cubature", position_
 
 def score(field, holdout_tracks, *, horizons_s=DEFAULT_HORIZONS_S, method: str = "cubature",
           max_starts: int | None = 2000, fit_tracks=None, position_error_m: float | None = None,
-          step_s: float | None = None) -> dict[str, Any]:
+          step_s: float | None = None, integration_step_s: float = 1800.0) -> dict[str, Any]:
     """Score a fitted field's forecasts against tracks it did not see, next to two baselines.
 
     Every fix of ``holdout_tracks`` after a track's first is a start (at most ``max_starts``,
     evenly spaced); all starts are forecast in one batched propagation.  ``horizons_s`` are
     lead times (s).  ``fit_tracks`` (the tracks the model was fitted on) give the baselines'
     error variance for their coverage and log score; without them those are NaN.
-    ``position_error_m`` defaults to the model's.  Returns a dict with ``horizons_s`` and, per
-    horizon, ``n_pairs``, ``separation_m`` (median), ``separation_p90_m``, ``skill``
-    (Liu–Weisberg), ``coverage_50``, ``coverage_95``, ``log_score`` (nats), plus ``baselines``
-    {``persistence``, ``no_motion``} with the same keys, and ``method``, ``notes``.
+    ``position_error_m`` defaults to the model's; ``step_s`` is the output spacing of the
+    Liu–Weisberg sums (default: the median fix interval), ``integration_step_s`` the RK4 step.
+    Returns a dict with ``horizons_s`` and, per horizon, ``n_pairs``, ``separation_m``
+    (median), ``separation_p90_m``, ``skill`` (Liu–Weisberg), ``coverage_50``, ``coverage_95``,
+    ``log_score`` (nats), plus ``baselines`` {``persistence``, ``no_motion``} with the same
+    keys, and ``method``, ``n_starts``, ``n_tracks``, K, τ and ``notes``.
     """
     horizons = np.sort(np.asarray(horizons_s, dtype=float))
     sigma = field.position_error_m if position_error_m is None else float(position_error_m)
@@ -407,7 +410,7 @@ def score(field, holdout_tracks, *, horizons_s=DEFAULT_HORIZONS_S, method: str =
     holdout_tracks = in_model_frame(holdout_tracks, frame)
     fit_tracks = None if fit_tracks is None else in_model_frame(fit_tracks, frame)
     win = forecast_windows(holdout_tracks, horizons, step_s=step_s, max_starts=max_starts)
-    means, covs = forecast_moments(field, win, method=method, position_error_m=sigma)
+    means, covs = forecast_moments(field, win, method=method, position_error_m=sigma, step_s=integration_step_s)
     result: dict[str, Any] = {"horizons_s": horizons.tolist(), "method": method}
     result.update(summarise(win, means, horizons, covs + observation_covariance_m2(win, sigma)))
     variance = None if fit_tracks is None else baseline_error_variance_m2(fit_tracks, horizons, max_starts=max_starts)

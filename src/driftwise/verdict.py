@@ -10,7 +10,8 @@
    Σ_n log N(y_n | m(x_n), Σ(x_n) + r_n I) (pointwise, common practice; r_n the fitted
    noise variance of observation n), are reported with a plain-words reading.
 3. The verdict uses one Helmholtz model: the training fit's hyperparameters with q set to
-   its closed-form optimum on *all* tracks (Titsias 2009).  Divergence and vorticity
+   its closed-form optimum on *all* tracks (Titsias 2009), or the model the caller gives
+   (for a quantity that model holds zero by construction, the Helmholtz one).  Divergence and vorticity
    posteriors on a grid inside the data hull are tested with Benjamini–Hochberg
    (:mod:`driftwise.physics`); ``divergence_free`` is False exactly when some cell is
    significant, and likewise ``curl_free``.  The evidence margin and the variance
@@ -111,11 +112,10 @@ def verdict(divergence: physics.Significance, vorticity: physics.Significance, s
     reasons = {"divergence_free": [_area_reason(divergence, "divergence")],
                "curl_free": [_area_reason(vorticity, "vorticity")]}
     if split is not None and split.reason is None:
-        text = (f"the curl-free (divergent) part carries {split.fraction:.2f} ± {split.std:.2f} of the velocity "
-                f"variance over the data hull")
-        reasons["divergence_free"].append(text)
-        reasons["curl_free"].append(text.replace(f"{split.fraction:.2f} ±", f"{1 - split.fraction:.2f} ±")
-                                    .replace("curl-free (divergent)", "divergence-free (rotational)"))
+        for key, part, share in (("divergence_free", "curl-free (divergent)", split.fraction),
+                                 ("curl_free", "divergence-free (rotational)", 1.0 - split.fraction)):
+            reasons[key].append(f"the {part} part carries {share:.2f} ± {split.std:.2f} of the velocity variance "
+                                "over the data hull (Helmholtz split)")
     if families:
         reasons["divergence_free"].append(_margin_reason(families, "divergence-free", CAN_DIVERGE, "divergence"))
         reasons["curl_free"].append(_margin_reason(families, "curl-free", CAN_ROTATE, "vorticity"))
@@ -167,10 +167,12 @@ def _fit_families(train, *, families, fit_options: dict, holdout_obs) -> tuple[d
 
 
 def _condition_on(field, observations):
-    """``field`` with q at its closed-form optimum on ``observations`` (hyperparameters and Z kept)."""
-    from .field import batch_from_observations, optimal_q
+    """``field`` with q at its closed-form optimum on ``observations`` (hyperparameters and Z kept;
+    accumulated in chunks by :func:`driftwise.fit.exact_q`, so any number of observations fits in memory)."""
+    from .field import batch_from_observations
+    from .fit import exact_q
 
-    params = optimal_q(field.params, batch_from_observations(observations), jitter_multiple=field.jitter_multiple)
+    params = exact_q(field.params, batch_from_observations(observations), jitter_multiple=field.jitter_multiple)
     return dataclasses.replace(field, params=params)
 
 
