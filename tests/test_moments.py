@@ -344,3 +344,8 @@ def test_bad_input_raises_input_error(mean0, cov0, times, match):
 def test_unscented_rejects_degenerate_scaling():
     with pytest.raises(InputError, match="alpha"):
         Unscented(alpha=1.0, kappa=-2.0).points_and_weights(2)
+
+
+def test_empty_batch_raises_input_error():
+    with pytest.raises(InputError, match="R >= 1"):
+        moments.propagate_batch(ou_sde(), np.zeros((0, 2)), np.zeros((0, 2, 2)), [0.0, 1.0])

@@ -1,5 +1,3 @@
-# LEAD NOTE TO ALL DEVELOPERS (remove before release): hard deadline 02:45 UTC (check `date`). By then your tests must pass,
-# total runtime of your tests within budget, and your report sent. Finish the essential acceptance points first.
 """driftwise: flow fields with honest uncertainty from particle trajectories.
 
 Fit a vector-field Gaussian process to drifter fixes, forecast how a release

@@ -1,5 +1,3 @@
-# LEAD NOTE TO ALL DEVELOPERS (remove before release): hard deadline 02:45 UTC (check `date`). By then your tests must pass,
-# total runtime of your tests within budget, and your report sent. Finish the essential acceptance points first.
 """The ``driftwise`` command line: parse, call the library, print.
 
 Exit codes: 0 success, 2 bad input (one line on stderr, no traceback),

@@ -37,7 +37,6 @@ import dataclasses
 import hashlib
 import json
 import math
-import os
 import sys
 import warnings
 from pathlib import Path
@@ -64,7 +63,6 @@ INIT_SUBSAMPLE = 16384    # observations used for the initial q
 KMEANS_SUBSAMPLE = 20000  # observations used for k-means
 RETRIES = 6               # non-finite step: attempts with more jitter / a smaller step
 MAX_JITTER_MULTIPLE = 1e12  # δ ≤ 1e12 · eps · σ² ≈ 2e-4 σ²
-Q_STEP_SCALE = float(os.environ.get("DW_QS", "1.0"))
 CHECKPOINT_SCHEMA = 1
 _HYPER_NAMES = ("kernel", "log_diffusivity_m2_s", "log_noise_floor_m_s")
 
@@ -280,21 +278,14 @@ def _trainable_names(q_update: str, learn_inducing: bool) -> tuple[str, ...]:
     return names + (("inducing_m",) if learn_inducing else ())
 
 
-def _scales(z_scale) -> dict[str, Any]:
-    """Adam works on x / scale: Z in units of the inducing spacing, q's entries at Q_STEP_SCALE × the step size."""
-    return {"inducing_m": z_scale, "q_mean": Q_STEP_SCALE, "q_sqrt_raw": Q_STEP_SCALE}
-
-
 def _split(params: fld.FieldParams, names: tuple[str, ...], z_scale) -> dict[str, Any]:
-    """The trainable leaves, each divided by its scale (see :func:`_scales`)."""
-    scales = _scales(z_scale)
-    return {name: getattr(params, name) / scales[name] if name in scales else getattr(params, name)
+    """The trainable leaves; Z enters divided by the inducing spacing so one Adam step size suits all."""
+    return {name: getattr(params, name) / z_scale if name == "inducing_m" else getattr(params, name)
             for name in names}
 
 
 def _merge(params: fld.FieldParams, trainable: dict[str, Any], z_scale) -> fld.FieldParams:
-    scales = _scales(z_scale)
-    values = {name: value * scales[name] if name in scales else value for name, value in trainable.items()}
+    values = {name: value * z_scale if name == "inducing_m" else value for name, value in trainable.items()}
     return dataclasses.replace(params, **values)
 
 

@@ -1,5 +1,3 @@
-# LEAD NOTE TO ALL DEVELOPERS (remove before release): hard deadline 02:45 UTC (check `date`). By then your tests must pass,
-# total runtime of your tests within budget, and your report sent. Finish the essential acceptance points first.
 """File formats: model files and product writers, all written atomically.
 
 Every writer goes through :func:`atomic_write`: the bytes land in a temporary

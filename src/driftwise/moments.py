@@ -439,8 +439,8 @@ def propagate_batch(
     integrator reuses the compiled code.
     """
     means, covs = validate_release(means0, covs0, "releases")
-    if means.ndim != 2:
-        raise InputError(f"releases: means0 must have shape (R, d), got {means.shape}.")
+    if means.ndim != 2 or means.shape[0] == 0:
+        raise InputError(f"releases: means0 must have shape (R, d) with R >= 1, got {means.shape}.")
     if not (isinstance(chunk, int) and chunk >= 1):
         raise InputError(f"chunk must be an integer >= 1, got {chunk!r}.")
     times = validate_times(times_s)

@@ -544,7 +544,7 @@ def plot_skill(result: Mapping[str, Any], path: str | os.PathLike) -> Path:
 
 
 # ----------------------------------------------------------------- physics: from a check result (physics.py)
-def plot_physics_maps(maps: Any, *, alpha: float = 0.05) -> Figure:
+def plot_physics_maps(maps: Any) -> Figure:
     """Divergence and vorticity maps (1/s) of a ``verdict.run_check`` result (its ``CheckMaps``).
 
     Cells outside the data hull are blank.  Each panel outlines the cells whose |z| reaches
@@ -561,16 +561,17 @@ def plot_physics_maps(maps: Any, *, alpha: float = 0.05) -> Figure:
     X, Y = coords.grid(x_m, y_m)
     fig, axes = _figure(2, height_in=_map_height_in(coords, X, Y, 2, extra_in=1.7))
     titles = {"divergence": "(a) divergence ∇·u", "vorticity": "(b) vorticity ∂v/∂x − ∂u/∂y"}
-    handles: list[Any] = []
+    alpha = maps.significance["divergence"].alpha
     for ax, name in zip(axes, ("divergence", "vorticity")):
         post, sig = maps.posteriors[name], maps.significance[name]
         mean, z = np.full(grid.inside.shape, np.nan), np.full(grid.inside.shape, np.nan)
         mean[grid.inside], z[grid.inside] = post.mean, post.z
         cut = sig.z_critical if np.isfinite(sig.z_critical) else float(norm.isf(alpha / (2 * max(sig.significant.size, 1))))
         coords.decorate(ax)
-        ax.set_title(f"{titles[name]}, BH α = {alpha:g}", loc="left")
+        ax.set_title(titles[name], loc="left")
         handles = _signed_panel(fig, ax, X, Y, mean, z, cut, name)
         ax.set_xlim(np.min(X), np.max(X))
         ax.set_ylim(np.min(Y), np.max(Y))
-        ax.legend(handles=handles, loc="lower left", fontsize="x-small", framealpha=0.9)
+        ax.legend(handles=handles, loc="lower right", fontsize="x-small", framealpha=0.9)
+    fig.suptitle(f"outlined: significant after the Benjamini–Hochberg correction (α = {alpha:g})", fontsize="small")
     return fig
