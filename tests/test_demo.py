@@ -123,6 +123,10 @@ def test_reduced_demo_end_to_end(tmp_path, capsys):
     # the digest and the report carry the same key numbers
     report = (out / "report.html").read_text()
     k = summary["fit"]["diffusivity_m2_s"]
-    assert f"K = {k:.3g} m²/s" in printed and f"{k:.4g}" in report
+    assert f"→ {k:.3g} m²/s" in printed and f"{k:.4g}" in report  # the calibrated K
     assert str(out / "") in printed or f"files in {out}/" in printed
     assert "Caution" in printed and "Caution" in report
+
+
+def test_durations_read_naturally():
+    assert [demo.duration(s) for s in (34632.0, 95.0, 1.0, 2 * 86400.0)] == ["9.62 h", "1.58 min", "1 s", "2 d"]

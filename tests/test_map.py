@@ -65,7 +65,7 @@ def test_netcdf_passes_cf_sanity_checks(lonlat_model, tmp_path, capsys):
     assert ds["x_m"].attrs["standard_name"] == "projection_x_coordinate"
     assert ds["y_m"].attrs["standard_name"] == "projection_y_coordinate"
     assert ds["lon_deg"].attrs["units"] == "degrees_east" and ds["lat_deg"].attrs["units"] == "degrees_north"
-    assert ds["lon_deg"].dims == ("y", "x")
+    assert ds["lon_deg"].dims == ("y_m", "x_m") and ds["divergence_per_s"].dims == ("y_m", "x_m")
     # CF standard names (CF standard name table; from memory) and units
     expected = {"eastward_velocity_m_s": ("eastward_sea_water_velocity", "m s-1"),
                 "northward_velocity_std_m_s": ("northward_sea_water_velocity standard_error", "m s-1"),
@@ -121,7 +121,7 @@ def test_csv_has_the_same_columns_one_row_per_node(lonlat_model, tmp_path, capsy
     ds = xr.open_dataset(nc, engine="h5netcdf")
     with open(table, newline="") as handle:
         rows = list(csv.DictReader(handle))
-    ny, nx = ds.sizes["y"], ds.sizes["x"]
+    ny, nx = ds.sizes["y_m"], ds.sizes["x_m"]
     assert len(rows) == ny * nx
     names = [n for n in ds.data_vars if n != "crs"]
     assert set(rows[0]) == set(names) | {"x_m", "y_m", "lon_deg", "lat_deg"}

@@ -358,7 +358,8 @@ def _add_demo(sub: argparse._SubParsersAction) -> None:
 def _run_demo(args: argparse.Namespace) -> int:
     import shlex
 
-    from .demo import DemoSettings, complete, run_demo
+    from .demo import DemoSettings, run_demo
+    from .report import complete
 
     words = ["driftwise", "demo", "--out", args.out] + (["--figures", args.figures] if args.figures else [])
     words += [flag for flag, on in (("--fast", args.fast), ("--json", args.json), ("--quiet", args.quiet)) if on]

@@ -35,9 +35,10 @@ from typing import Any, Callable
 import numpy as np
 
 from .errors import InputError
-from .scenarios import (HARBOUR_MOUTH_M, HOUR_S, OUTFALL_M, SHELLFISH_BED, SHELLFISH_BED_M, in_frame,
-                        outfall_share, outfall_table, plume_snapshot, site_places, sites_in_frame, snapshot_clocks,
-                        spill_table, to_frame)
+from .report import digest
+from .scenarios import (HOUR_S, SHELLFISH_BED, SHELLFISH_BED_M, forecast_scenarios, in_frame, outfall_share,
+                        outfall_table, plume_snapshot, site_places, sites_in_frame, snapshot_clocks, spill_table,
+                        to_frame)
 
 
 @dataclass(frozen=True)
@@ -53,6 +54,7 @@ class DemoSettings:
     fit_steps: int = 80
     family_inducing: int = 32
     family_steps: int = 60
+    check_cells: int = 400
     horizon_s: float = 48 * HOUR_S
     every_s: float = HOUR_S
     outfall_hours: int = 24
@@ -66,7 +68,8 @@ class DemoSettings:
 
     @classmethod
     def fast(cls) -> "DemoSettings":
-        return cls(inducing=32, fit_steps=40, family_inducing=24, family_steps=30, horizon_s=24 * HOUR_S,
+        return cls(inducing=32, fit_steps=40, family_inducing=24, family_steps=30, check_cells=150,
+                   horizon_s=24 * HOUR_S,
                    every_s=2 * HOUR_S, outfall_hours=6, grid_cells_across=20,
                    skill_horizons_s=(6 * HOUR_S, 12 * HOUR_S), max_skill_starts=60, calibration_starts=50)
 
@@ -134,6 +137,14 @@ def one_line(text: str, limit: int = 300) -> str:
     """``text`` with its whitespace collapsed onto one line, cut at ``limit`` characters."""
     text = " ".join(str(text).split())
     return text if len(text) <= limit else text[: limit - 1] + "…"
+
+
+def duration(seconds: float) -> str:
+    """``34 632`` → ``9.62 h``; ``95`` → ``1.58 min``; ``1.0`` → ``1 s`` (3 significant digits)."""
+    for unit, size in (("d", 86400.0), ("h", HOUR_S), ("min", 60.0)):
+        if abs(seconds) >= size:
+            return f"{seconds / size:.3g} {unit}"
+    return f"{seconds:.3g} s"
 
 
 def need(module: str, *names: str) -> Any:
@@ -244,7 +255,7 @@ def step_fit(job: Job) -> str:
                        "elbo.png", f"The evidence lower bound while fitting ({info.get('elbo_history_kind', '')}).",
                        "fit")
     return (f"helmholtz, M = {job.summary['fit']['n_inducing']}, K = {field.diffusivity_m2_s:.3g} m²/s, "
-            f"τ = {field.decorrelation_time_s / HOUR_S:.3g} h, {info.get('steps')} steps")
+            f"τ = {duration(field.decorrelation_time_s)}, {info.get('steps')} steps")
 
 
 def _group_hyperparameters(h: dict[str, float]) -> dict[str, Any]:
@@ -283,13 +294,13 @@ def step_calibrate(job: Job) -> str:
     truth = _true_diffusivity_m2_s()
     fit["notes"] = [f"K and τ were calibrated by maximising the likelihood of {record.get('n_transitions', 'the')} "
                     "observed displacements between fixes of the fit tracks under the moment-propagated Gaussian "
-                    f"transition (before: K = {before[0]:.3g} m²/s, τ = {before[1] / HOUR_S:.3g} h from the "
+                    f"transition (before: K = {before[0]:.3g} m²/s, τ = {duration(before[1])} from the "
                     "length scale over the RMS speed, Taylor 1921)."]
     if truth is not None:
         fit["notes"].append(f"The invented data were simulated with K = {truth:g} m²/s (demo_data/README.md), "
                             "so the estimate can be checked against the truth.")
     return (f"K {before[0]:.3g} → {field.diffusivity_m2_s:.3g} m²/s, "
-            f"τ {before[1] / HOUR_S:.3g} → {field.decorrelation_time_s / HOUR_S:.3g} h")
+            f"τ {duration(before[1])} → {duration(field.decorrelation_time_s)}")
 
 
 # ----------------------------------------------------------------- 3. map
@@ -333,7 +344,7 @@ def step_check(job: Job) -> str:
     verdict = need("verdict", "check")
     field, s = _field(job), job.settings
     result = verdict.check(job.state["fit_tracks"], model=field, inducing=s.family_inducing, steps=s.family_steps,
-                           seed=s.seed, progress=job.progress)
+                           n_cells=s.check_cells, seed=s.seed, progress=job.progress)
     job.state["check"] = result
     job.summary["check"] = _check_summary(result)
     from .io import atomic_write_text
@@ -399,20 +410,13 @@ def figure_physics(job: Job) -> str:
 
 # ----------------------------------------------------------------- 5. spread
 def step_spread(job: Job) -> str:
-    spread_mod = need("spread", "Release", "spread_from_field")
+    need("spread", "Release", "spread_from_field")
     from .io import write_spread
 
     field, s = _field(job), job.settings
     frame = field.frame
-    harbour, outfall = sites_in_frame(frame, [HARBOUR_MOUTH_M, OUTFALL_M])
+    spill, plume, times, starts = forecast_scenarios(field, s)
     bed = sites_in_frame(frame, SHELLFISH_BED_M)
-    times = s.every_s * np.arange(int(round(s.horizon_s / s.every_s)) + 1)
-    starts = HOUR_S * np.arange(s.outfall_hours)
-    releases = [spread_mod.Release(harbour, cov0_m2=s.spill_sd_m**2 * np.eye(2), name="fuel spill")]
-    releases += [spread_mod.Release(outfall, start_time_s=t0, cov0_m2=30.0**2 * np.eye(2),
-                                    name=f"outfall +{t0 / HOUR_S:g} h") for t0 in starts]
-    both = spread_mod.spread_from_field(field, releases, times, polygon_m=bed, threshold=s.threshold)
-    spill, plume = release_subset(both, [0]), release_subset(both, range(1, len(releases)))
     for name, forecast in (("spill", spill), ("outfall", plume)):
         for suffix in (".json", ".csv", ".geojson") if frame.kind == "lonlat" else (".json", ".csv"):
             path = write_spread(forecast, job.out / f"spread_{name}{suffix}")
@@ -425,20 +429,6 @@ def step_spread(job: Job) -> str:
     return (f"spill P(bed) max {spill.probability[0].max():.2f}, first ≥ {s.threshold:g} "
             + ("never" if arrival is None else f"at {arrival / HOUR_S:g} h")
             + f"; outfall share max {np.nanmax(share):.2f}")
-
-
-def release_subset(forecast: Any, rows: Any) -> Any:
-    """The forecast of some of its releases only (every per-release array sliced alike)."""
-    import dataclasses
-
-    rows = list(rows)
-    pick = lambda a: None if a is None else np.asarray(a)[rows]  # noqa: E731
-    arrival = forecast.first_arrival_s
-    return dataclasses.replace(
-        forecast, releases=tuple(forecast.releases[r] for r in rows), means=pick(forecast.means),
-        covs=pick(forecast.covs), mean_lonlat=pick(forecast.mean_lonlat), semi_axes_m=pick(forecast.semi_axes_m),
-        orientation_deg=pick(forecast.orientation_deg), probability=pick(forecast.probability),
-        first_arrival_s=None if arrival is None else tuple(arrival[r] for r in rows))
 
 
 def _spread_figures(job: Job) -> None:
@@ -631,36 +621,3 @@ def _write_outputs(job: Job, summary: dict) -> None:
               {"path": "report.html", "description": "the report: one self-contained HTML file, open in a browser"}]
     atomic_write_text(job.out / "summary.json", json.dumps(summary, indent=1, allow_nan=False) + "\n")
     write_report(summary, job.out / "report.html")
-
-
-def complete(summary: dict) -> bool:
-    """True when every step of the demo ran to the end."""
-    return all(step["status"] == "done" for step in summary["job"]["steps"])
-
-
-# ----------------------------------------------------------------- digest
-def digest(summary: dict, out: Path) -> str:
-    """A short plain-text account of the run: key numbers, then where each file is."""
-    from .cli import CAUTION
-
-    steps = {s["name"]: s for s in summary["job"]["steps"]}
-    lines = [f"driftwise demo: Mirren Bay (invented data), {summary['job']['wall_time_s']:.0f} s"]
-    for name in ("data", "fit", "calibrate", "map", "check", "spread", "score"):
-        step = steps.get(name, {"status": "not run", "detail": ""})
-        text = step["detail"] if step["status"] == "done" else f"{step['status'].upper()}: {step['detail']}"
-        lines.append(f"  {name:<9} {text}")
-    lines.append(f"  files in {out}/")
-    figures = [f for f in summary["files"] if f["path"].endswith(".png")]
-    for f in summary["files"]:
-        if f not in figures:
-            lines.append(f"    {f['path']:<22} {f['description']}")
-    if figures:
-        folder = Path(figures[0]["path"]).parent.as_posix() + "/"
-        lines.append(f"    {folder:<22} {len(figures)} PNG figures: " + ", ".join(Path(f['path']).name for f in figures))
-    warn = summary.get("warnings", [])
-    lines.append(f"  warnings: {len(warn)}" + ("" if not warn else " (also in the report)"))
-    lines += [f"    {w}" for w in warn]
-    if not complete(summary):
-        lines.append("  The demo is INCOMPLETE: the steps marked above did not run; the report says why.")
-    lines.append(CAUTION)
-    return "\n".join(lines)

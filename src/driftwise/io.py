@@ -491,7 +491,7 @@ def _grid_variables(grid) -> list[tuple[str, object, dict]]:
 
 
 def field_grid_dataset(grid):
-    """A physics.FieldGrid as an xarray Dataset with CF-1.8 attributes (dims y, x).
+    """A physics.FieldGrid as an xarray Dataset with CF-1.8 attributes (dims y_m, x_m).
 
     Coordinates x_m, y_m (projection_x/y_coordinate, m, increasing); for a lon/lat model also
     2-D auxiliary lon_deg, lat_deg (named in each variable's ``coordinates`` attribute) and a
@@ -504,11 +504,11 @@ def field_grid_dataset(grid):
 
     from . import __version__
 
-    dims = ("y", "x")
-    coords = {"x_m": ("x", np.asarray(grid.x_m, float), {
+    dims = ("y_m", "x_m")           # coordinate variables named as their dimensions (CF-1.8 §1.3)
+    coords = {"x_m": ("x_m", np.asarray(grid.x_m, float), {
                   "standard_name": "projection_x_coordinate", "units": "m", "axis": "X",
                   "long_name": "x (east) in the model's local metric frame"}),
-              "y_m": ("y", np.asarray(grid.y_m, float), {
+              "y_m": ("y_m", np.asarray(grid.y_m, float), {
                   "standard_name": "projection_y_coordinate", "units": "m", "axis": "Y",
                   "long_name": "y (north) in the model's local metric frame"})}
     data = {name: (dims, np.asarray(values), attrs) for name, values, attrs in _grid_variables(grid)}

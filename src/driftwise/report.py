@@ -1,4 +1,4 @@
-"""One self-contained HTML report of a driftwise job, built from a summary dict.
+"""One self-contained HTML report of a driftwise job, built from a summary dict (and its plain-text digest).
 
 The file carries everything inside it: figures as base64 PNG ``data:`` URIs,
 the style sheet inline, no script and no external reference.  A
@@ -403,3 +403,36 @@ def write_report(summary: Mapping[str, Any], path: str | os.PathLike) -> Path:
     """Render ``summary`` and write it atomically to ``path``; figure paths resolve against its folder."""
     target = Path(path)
     return atomic_write_text(target, render_report(summary, base_dir=target.parent))
+
+
+# ----------------------------------------------------------------- plain-text digest
+def complete(summary: Mapping[str, Any]) -> bool:
+    """True when every step of the demo ran to the end."""
+    return all(step["status"] == "done" for step in summary["job"]["steps"])
+
+
+def digest(summary: Mapping[str, Any], out: str | os.PathLike) -> str:
+    """A short plain-text account of the run: key numbers, then where each file is."""
+    from .cli import CAUTION
+
+    steps = {s["name"]: s for s in summary["job"]["steps"]}
+    lines = [f"driftwise demo: Mirren Bay (invented data), {summary['job']['wall_time_s']:.0f} s"]
+    for name in ("data", "fit", "calibrate", "map", "check", "spread", "score"):
+        step = steps.get(name, {"status": "not run", "detail": ""})
+        text = step["detail"] if step["status"] == "done" else f"{step['status'].upper()}: {step['detail']}"
+        lines.append(f"  {name:<9} {text}")
+    lines.append(f"  files in {out}/")
+    figures = [f for f in summary["files"] if f["path"].endswith(".png")]
+    for f in summary["files"]:
+        if f not in figures:
+            lines.append(f"    {f['path']:<22} {f['description']}")
+    if figures:
+        folder = Path(figures[0]["path"]).parent.as_posix() + "/"
+        lines.append(f"    {folder:<22} {len(figures)} PNG figures: " + ", ".join(Path(f['path']).name for f in figures))
+    warn = summary.get("warnings", [])
+    lines.append(f"  warnings: {len(warn)}" + ("" if not warn else " (also in the report)"))
+    lines += [f"    {w}" for w in warn]
+    if not complete(summary):
+        lines.append("  The demo is INCOMPLETE: the steps marked above did not run; the report says why.")
+    lines.append(CAUTION)
+    return "\n".join(lines)

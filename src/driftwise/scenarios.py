@@ -27,6 +27,7 @@ HARBOUR_MOUTH_M = (5200.0, -4800.0)          # just off the river mouth of Port 
 OUTFALL_M = (4500.0, 5500.0)                  # the (invented) Kestle Point outfall, north-east shore
 SHELLFISH_BED_M = ((-7400.0, -4600.0), (-4300.0, -4700.0), (-3900.0, -2300.0), (-6900.0, -1700.0))
 SHELLFISH_BED = "Aldous Flats shellfish bed"
+OUTFALL_SD_M = 30.0                           # initial spread of each hourly parcel at the diffuser
 
 
 def sites_in_frame(frame: Any, xy_bay_m: Any) -> np.ndarray:
@@ -60,6 +61,41 @@ def site_places(frame: Any) -> list[dict]:
     """The two release sites of the scenarios, in the model's frame (for the maps)."""
     harbour, outfall = sites_in_frame(frame, [HARBOUR_MOUTH_M, OUTFALL_M])
     return [{"label": "Port Aldous harbour mouth", "xy_m": harbour}, {"label": "Kestle Point outfall", "xy_m": outfall}]
+
+
+def forecast_scenarios(field: Any, settings: Any) -> tuple[Any, Any, np.ndarray, np.ndarray]:
+    """Forecast the spill and the outfall's hourly parcels in ``field``, in one batched call.
+
+    ``settings`` gives ``every_s``, ``horizon_s``, ``outfall_hours``, ``spill_sd_m`` and
+    ``threshold`` (demo.DemoSettings).  Returns (spill, plume, times_s, outfall starts_s):
+    two ``spread.Spread`` with P(inside the shellfish bed) at every output time.
+    """
+    from .spread import Release, spread_from_field
+
+    s = settings
+    harbour, outfall = sites_in_frame(field.frame, [HARBOUR_MOUTH_M, OUTFALL_M])
+    times = s.every_s * np.arange(int(round(s.horizon_s / s.every_s)) + 1)
+    starts = HOUR_S * np.arange(s.outfall_hours)
+    releases = [Release(harbour, cov0_m2=s.spill_sd_m**2 * np.eye(2), name="fuel spill")]
+    releases += [Release(outfall, start_time_s=t0, cov0_m2=OUTFALL_SD_M**2 * np.eye(2),
+                         name=f"outfall +{t0 / HOUR_S:g} h") for t0 in starts]
+    both = spread_from_field(field, releases, times, polygon_m=sites_in_frame(field.frame, SHELLFISH_BED_M),
+                             threshold=s.threshold)
+    return release_subset(both, [0]), release_subset(both, range(1, len(releases))), times, starts
+
+
+def release_subset(forecast: Any, rows: Any) -> Any:
+    """The forecast of some of its releases only (every per-release array sliced alike)."""
+    import dataclasses
+
+    rows = list(rows)
+    pick = lambda a: None if a is None else np.asarray(a)[rows]  # noqa: E731
+    arrival = forecast.first_arrival_s
+    return dataclasses.replace(
+        forecast, releases=tuple(forecast.releases[r] for r in rows), means=pick(forecast.means),
+        covs=pick(forecast.covs), mean_lonlat=pick(forecast.mean_lonlat), semi_axes_m=pick(forecast.semi_axes_m),
+        orientation_deg=pick(forecast.orientation_deg), probability=pick(forecast.probability),
+        first_arrival_s=None if arrival is None else tuple(arrival[r] for r in rows))
 
 
 def outfall_share(probability: np.ndarray, times_s: np.ndarray, starts_s: np.ndarray) -> np.ndarray:
@@ -135,7 +171,7 @@ def outfall_table(plume: Any, share: np.ndarray, times: np.ndarray, starts: np.n
             for k in _table_hours(times)]
     return {"name": "Continuous outfall at Kestle Point",
             "description": f"Discharge for {s.outfall_hours} h modelled as one release per hour (each with a "
-                           "30 m initial spread), each followed for "
+                           f"{OUTFALL_SD_M:g} m initial spread), each followed for "
                            f"{s.horizon_s / HOUR_S:g} h.",
             "method": f"{plume.method}, {len(plume.releases)} releases in one batched call",
             "columns": ["time since the outfall started (h)", "parcels released (–)",
