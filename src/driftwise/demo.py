@@ -54,7 +54,6 @@ class DemoSettings:
     fit_steps: int = 80
     family_inducing: int = 32
     family_steps: int = 60
-    check_cells: int = 400
     horizon_s: float = 48 * HOUR_S
     every_s: float = HOUR_S
     outfall_hours: int = 24
@@ -68,8 +67,7 @@ class DemoSettings:
 
     @classmethod
     def fast(cls) -> "DemoSettings":
-        return cls(inducing=32, fit_steps=40, family_inducing=24, family_steps=30, check_cells=150,
-                   horizon_s=24 * HOUR_S,
+        return cls(inducing=32, fit_steps=40, family_inducing=24, family_steps=30, horizon_s=24 * HOUR_S,
                    every_s=2 * HOUR_S, outfall_hours=6, grid_cells_across=20,
                    skill_horizons_s=(6 * HOUR_S, 12 * HOUR_S), max_skill_starts=60, calibration_starts=50)
 
@@ -344,7 +342,7 @@ def step_check(job: Job) -> str:
     verdict = need("verdict", "check")
     field, s = _field(job), job.settings
     result = verdict.check(job.state["fit_tracks"], model=field, inducing=s.family_inducing, steps=s.family_steps,
-                           n_cells=s.check_cells, seed=s.seed, progress=job.progress)
+                           seed=s.seed, progress=job.progress)
     job.state["check"] = result
     job.summary["check"] = _check_summary(result)
     from .io import atomic_write_text

@@ -314,20 +314,29 @@ def _mean_log_likelihood(means, covs, observed, obs_var, weight):
 
 
 # ----- route 1: linearized moments, P = K A + τ B + C
+def _constant_diffusion(rate_m2_s: jax.Array, x: jax.Array) -> jax.Array:
+    """D(x) = rate · I (m²/s), independent of x."""
+    return rate_m2_s * jnp.eye(x.shape[-1], dtype=x.dtype)
+
+
 def linearized_parts(posterior: Any, trans: Transitions, position_error_m: float, integrator: Any):
     """(means (R, L, d), A, B, C (R, L, d, d)) with P(K, τ) = K A + τ B + C under Linearize().
 
     Three propagate_batch runs along the same linearized mean path: D = 2I and D = 2Σ from a
-    point release, and D = 0 from the fix's error σ² I.
+    point release, and D = 0 from the fix's error σ² I (only the second evaluates Σ).
     """
     from .moments import Linearize, propagate_batch
 
     r, d = trans.start_m.shape
+    drift = jax.tree_util.Partial(_field_drift, posterior)
     zero = np.zeros((r, d, d))
     fix = np.broadcast_to(position_error_m**2 * np.eye(d), (r, d, d))
-    runs = [propagate_batch(transport_sde(posterior, k, tau), trans.start_m, p0, trans.times_s,
-                            method=Linearize(), integrator=integrator, chunk=r)
-            for k, tau, p0 in ((1.0, 0.0, zero), (0.0, 1.0, zero), (0.0, 0.0, fix))]
+    runs = []
+    for sde, p0 in ((SDE(drift, jax.tree_util.Partial(_constant_diffusion, jnp.asarray(2.0))), zero),
+                    (transport_sde(posterior, 0.0, 1.0), zero),
+                    (SDE(drift, jax.tree_util.Partial(_constant_diffusion, jnp.asarray(0.0))), fix)):
+        runs.append(propagate_batch(sde, trans.start_m, p0, trans.times_s, method=Linearize(),
+                                    integrator=integrator, chunk=min(r, 1024)))
     return (runs[0][0][:, 1:],) + tuple(run[1][:, 1:] for run in runs)
 
 
@@ -466,22 +475,38 @@ def _pooled(funs: list[Callable], weights: list[float]) -> Callable:
     return fun
 
 
-def cross_validation_folds(tracks, refit: Callable[[Any], Any], *, folds: int = 2) -> tuple[list[Any], list[Any]]:
-    """(fields, held-out tracks): track j goes to fold j mod ``folds``; field i = ``refit`` on the other folds.
+def posterior_refit(field: Any, tracks) -> Any:
+    """``field`` with its variational posterior q recomputed from ``tracks`` only (same hyperparameters).
 
-    ``refit(tracks) -> FlowField`` must fit with the same settings as the model being calibrated.
+    The ELBO-optimal Gaussian q for fixed kernel, inducing points, K and σ₀ (Titsias 2009) —
+    one linear solve, so a cross-validation fold costs a fraction of a refit.  The
+    hyperparameters were learnt on all tracks, which leaves the folds slightly optimistic.
     """
+    import dataclasses
+
+    from .field import batch_from_observations
+    from .fit import exact_q
+    from .tracks import velocity_observations
+
+    obs = velocity_observations(tracks, position_error_m=float(field.position_error_m))
+    params = exact_q(field.params, batch_from_observations(obs), jitter_multiple=field.jitter_multiple)
+    return dataclasses.replace(field, params=params)
+
+
+def cross_validation_folds(tracks, refit: Callable[[Any], Any], *, folds: int = 2) -> tuple[list[Any], list[Any]]:
+    """(fields, held-out tracks): track j goes to fold j mod ``folds``; field i = ``refit`` on the other folds."""
     if not hasattr(tracks, "select") or not hasattr(tracks, "unique_ids"):
-        raise InputError("cross-validated calibration needs Tracks (with track ids), not velocity observations")
+        raise InputError("cross-validated calibration needs Tracks (with track ids), not velocity observations; "
+                         "give the tracks or use folds=1")
     ids = [str(i) for i in tracks.unique_ids]
     if not (isinstance(folds, int) and 2 <= folds <= len(ids)):
         raise InputError(f"cross-validated calibration needs 2 <= folds <= number of tracks ({len(ids)}), "
                          f"got {folds!r}")
     fields, held = [], []
     for f in range(folds):
-        test = ids[f::folds]
-        fields.append(refit(tracks.select([i for i in ids if i not in set(test)])))
-        held.append(tracks.select(test))
+        test = set(ids[f::folds])
+        fields.append(refit(tracks.select([i for i in ids if i not in test])))
+        held.append(tracks.select(sorted(test)))
     return fields, held
 
 
@@ -541,30 +566,33 @@ def _json_safe(value: Any) -> Any:
     return value
 
 
-def calibrate(field: Any, tracks_or_observations, *, refit: Callable[[Any], Any] | None = None, folds: int = 2,
-              lags_s=CALIBRATION_LAGS_S, max_starts: int | None = 600, method: Any = None) -> Any:
+def calibrate(field: Any, tracks_or_observations, *, folds: int = 2, refit: Callable[[Any], Any] | None = None,
+              lags_s=CALIBRATION_LAGS_S, max_starts: int | None = 1000, method: Any = None) -> Any:
     """The FlowField with K and τ replaced by calibrated values (see :func:`calibrate_transport`).
 
-    Give the tracks the field was fitted on.  With ``refit`` (tracks → FlowField, the same fit
-    settings) the calibration is cross-validated: the tracks are split into ``folds`` by track,
-    each fold is forecast by a field refitted without it, and K, τ maximise the pooled
-    likelihood of those out-of-sample transitions.  Without ``refit`` the field itself forecasts
-    its own fit tracks, which it has partly learnt, so the spread comes out optimistic.
-    The returned field's ``diffusivity_m2_s`` and ``decorrelation_time_s`` (and so every
-    forecast and the saved model) use the calibrated values; ``fit_info["calibration"]`` keeps
-    the previous ones and the optimiser's record.  The variational posterior is unchanged.
+    Give the tracks the field was fitted on.  With ``folds`` ≥ 2 (default 2) the calibration is
+    cross-validated by track: fold i's tracks are forecast by the field refitted without them
+    (``refit(tracks) -> FlowField``; default :func:`posterior_refit`, the same hyperparameters
+    with q recomputed) and K, τ maximise the pooled likelihood of those out-of-sample
+    transitions.  ``folds=1`` lets the field forecast its own fit tracks, which it has partly
+    learnt, so the spread comes out optimistic.  The returned field's ``diffusivity_m2_s`` and
+    ``decorrelation_time_s`` (so every forecast and the saved model) use the calibrated values;
+    ``fit_info["calibration"]`` keeps the previous ones and the optimiser's record.  The
+    variational posterior itself is unchanged.
     """
     import dataclasses
+    import functools
     import json
 
-    if refit is None:
+    if folds == 1:
         fields, data = field, tracks_or_observations
     else:
+        refit = functools.partial(posterior_refit, field) if refit is None else refit
         fields, data = cross_validation_folds(tracks_or_observations, refit, folds=folds)
     k, tau, info = calibrate_transport(fields, data, lags_s=lags_s, max_starts=max_starts, method=method,
                                        position_error_m=field.position_error_m,
                                        initial=(field.diffusivity_m2_s, field.decorrelation_time_s or 3600.0))
-    info["cross_validated"] = refit is not None
+    info["folds"] = int(folds)
     meta = json.loads(field.metadata_json)
     record = meta.setdefault("fit", {})
     record["calibration"] = _json_safe({
@@ -572,7 +600,7 @@ def calibrate(field: Any, tracks_or_observations, *, refit: Callable[[Any], Any]
         "decorrelation_time_s_before": field.decorrelation_time_s,
         "decorrelation_time_source_before": record.get("decorrelation_time_source")})
     source = "calibrated: transition likelihood on the fit tracks" + (
-        f" ({folds}-fold cross-validated by track)" if refit is not None else "")
+        f" ({folds}-fold cross-validated by track)" if folds != 1 else " (in sample)")
     record["decorrelation_time_source"] = record["diffusivity_source"] = source
     params = dataclasses.replace(field.params, log_diffusivity_m2_s=jnp.log(jnp.asarray(k, dtype=jnp.float64)))
     return dataclasses.replace(field, params=params, decorrelation_time_s=float(tau),
