@@ -107,7 +107,7 @@ def test_divergence_matches_numpy_gradient_of_the_velocity_grid(frame, tmp_path)
     # the lon/lat grid is rotated to true east/north, which differs from the frame axes by < 1e-3 rad here
     inner = (slice(2, -2), slice(2, -2))
     scale_div, scale_vort = np.max(np.abs(div[inner])), np.max(np.abs(vort[inner]))
-    tol = 1e-2 if frame.kind == "metric" else 3e-2
+    tol = 3e-3 if frame.kind == "metric" else 5e-3     # measured: 8e-4 and 1.1e-3 of the maximum
     np.testing.assert_allclose(_gradient_divergence(u, v, h)[inner], div[inner], rtol=0, atol=tol * scale_div)
     fd_vort = np.gradient(v, h, axis=1) - np.gradient(u, h, axis=0)
     np.testing.assert_allclose(fd_vort[inner], vort[inner], rtol=0, atol=tol * scale_vort)
