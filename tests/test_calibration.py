@@ -201,6 +201,31 @@ class _Unfast:
         return Linearize().expectations(sde_, mean, cov)
 
 
+def test_calibrate_a_fitted_field_and_round_trip(tmp_path):
+    # A small real fit: posterior_refit on all its own tracks reproduces the fitted q (the fit ends
+    # with the ELBO-optimal q for its hyperparameters, Titsias 2009), and the calibrated K and τ
+    # survive the model file.
+    import driftwise
+
+    tracks = _vortex_tracks(5.0, seed=3, n_tracks=8)
+    field = driftwise.fit(tracks, "divergence-free", inducing=16, steps=40, position_error_m=SIGMA_POS_M,
+                          progress=False)
+    again = sde.posterior_refit(field, tracks)
+    np.testing.assert_allclose(np.asarray(again.params.q_mean), np.asarray(field.params.q_mean),
+                               rtol=1e-7, atol=1e-9)
+    folds, held = sde.cross_validation_folds(tracks, lambda t: sde.posterior_refit(field, t), folds=2)
+    assert [h.n_tracks for h in held] == [4, 4]
+    assert set(held[0].unique_ids).isdisjoint(held[1].unique_ids)
+    cal = sde.calibrate(field, tracks, max_starts=200)
+    record = cal.fit_info["calibration"]
+    assert record["folds"] == 2 and record["n_transitions"] > 100
+    assert cal.diffusivity_m2_s == pytest.approx(record["diffusivity_m2_s"], rel=1e-12)
+    loaded = driftwise.load(cal.save(tmp_path / "m.npz"))
+    assert loaded.diffusivity_m2_s == pytest.approx(cal.diffusivity_m2_s, rel=1e-12)
+    assert loaded.decorrelation_time_s == pytest.approx(cal.decorrelation_time_s, rel=1e-12)
+    assert loaded.fit_info["decorrelation_time_source"].startswith("calibrated")
+
+
 def test_calibration_needs_a_position_error():
     from driftwise.errors import InputError
 

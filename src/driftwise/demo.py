@@ -51,9 +51,9 @@ class DemoSettings:
     """
 
     inducing: int = 64
-    fit_steps: int = 80
+    fit_steps: int = 60
     family_inducing: int = 32
-    family_steps: int = 60
+    family_steps: int = 40
     horizon_s: float = 48 * HOUR_S
     every_s: float = HOUR_S
     outfall_hours: int = 24

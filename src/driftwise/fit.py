@@ -1,34 +1,34 @@
-"""Fitting a :class:`~driftwise.field.FlowField` to drifter data.
+"""Fitting a :class:`~driftwise.field.FlowField` to drifter data: :func:`fit`.
 
-One entry point, :func:`fit`.  The objective is the sparse variational ELBO of
-:mod:`driftwise.field` (Titsias 2009; Hensman, Fusi & Lawrence 2013, "Gaussian
-processes for big data"), maximised over the kernel hyperparameters, the eddy
-diffusivity K and the noise floor σ₀ (and optionally the inducing inputs Z).
+The objective is the sparse variational ELBO of :mod:`driftwise.field` (Titsias 2009;
+Hensman, Fusi & Lawrence 2013, "Gaussian processes for big data"), maximised over the
+kernel hyperparameters, the eddy diffusivity K and the noise floor σ₀ (optionally also
+the inducing inputs Z), with Adam (Kingma & Ba 2015, via optax) on log parameters.
 
-The variational distribution q(w) = N(m, SSᵀ) is updated in closed form
-(``q_update="natural"``, the default): with natural parameters θ = (Λ, Λm),
-Λ = (SSᵀ)^{−1}, each step moves θ ← (1 − γ) θ + γ θ̂_B, where θ̂_B is the
-ELBO-optimal q for the current minibatch B scaled by N/|B| (Hensman et al. 2013,
-§3: a natural-gradient step of length γ).  When all data fit in one batch
-γ = 1 and this is the exact optimal q (Titsias 2009), so the hyperparameter
-gradient taken at that q is the gradient of the collapsed bound.  The
-hyperparameters take one Adam step (Kingma & Ba 2015, via optax) per step.
-``q_update="adam"`` instead optimises m and S with Adam too (the plain
-Hensman et al. scheme); the benchmark compares the two.
+Schedule (``q_update="auto"``):
 
-Before and after the loop q is set to the exact optimum for the current
-hyperparameters — at the start from a large random subsample, at the end from
-all data, accumulated chunk by chunk: Λ = I + Σ_c Φ_cᵀR_c⁻¹Φ_c, Λm = Σ_c Φ_cᵀR_c⁻¹y_c
-with Φ = K(X, Z) L_Z^{−T}.  The reported ELBO is then evaluated exactly over all
-observations.
+* N ≤ 4 × batch_size: every step uses all observations; q(w) is first set to its exact
+  optimum for the current hyperparameters (:mod:`driftwise.variational`), then Adam
+  moves the hyperparameters along the ELBO gradient at that q — which is the gradient
+  of Titsias' collapsed bound.  Deterministic.
+* larger N: minibatches; Adam on q(w) and the hyperparameters together (Hensman et al.).
+  ``q_update="natural"`` replaces Adam on q by natural-gradient steps of length
+  ``natural_step`` towards each minibatch's optimum.  Measured on the demo bay and in
+  tests/benchmarks/bench_fit.py, natural steps on minibatches reach a lower ELBO more
+  slowly (the noisy q biases the hyperparameter gradient), so they are not the default.
 
-Minibatches are epochs of a permutation drawn from ``numpy.random.default_rng
-([seed, epoch])``; the random state is therefore fully given by (seed, step),
-which with the parameters, the optimiser state, the jitter and the ELBO history
-is what a checkpoint holds, so a resumed fit retraces the uninterrupted one.
+q starts at the exact optimum (from ≤ 16 384 random observations) and ends there (from
+all data, chunk by chunk); the reported ELBO is then evaluated on all observations.
+Every ``patience`` steps the ELBO on fixed evaluation rows is checked; the fit stops when
+it gained less than 1e-4 × max(|ELBO|, N nats) since the previous check.
 
-The fit record (ELBO history, steps, τ and its source) travels as
-``FlowField.fit_info``.
+Minibatches are epochs of a permutation from ``numpy.random.default_rng([seed, epoch])``,
+so the random state is (seed, step); with the parameters, the optimiser state (learning
+rate included), the jitter, the ELBO history and the checks it is what a checkpoint
+holds, and a resumed fit retraces the uninterrupted one.  A non-finite ELBO or gradient
+is retried with 100× the jitter, then also half the learning rate, and raises after six
+attempts.  The fit record (ELBO history, steps, τ and its source) travels as
+``FlowField.fit_info``; τ defaults to length scale / RMS posterior-mean speed.
 """
 
 from __future__ import annotations
@@ -46,19 +46,19 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 import optax
-from jax.scipy.linalg import solve_triangular
 
 from . import field as fld
 from .errors import InputError
+from .variational import (CHUNK, chunks, exact_q, full_elbo, mean_speed_squared, natural_step, natural_step_jit,
+                          take)
 
 __all__ = ["FIT_DEFAULTS", "fit", "fit_report", "fit_summary"]
 
-FIT_DEFAULTS = {"steps": 1000, "learning_rate": 0.1, "patience": 15, "natural_step": 0.5}
+FIT_DEFAULTS = {"steps": 1000, "learning_rate": 0.1, "patience": 10, "natural_step": 0.5}
 FULL_BATCH_FACTOR = 4     # all observations in every step when N ≤ 4 × batch_size
 MAX_DEFAULT_INDUCING = 256
-REL_TOL = 1e-4            # plateau: window-mean ELBO gain below this fraction of max(|ELBO|, N nats)
+REL_TOL = 1e-4            # plateau: ELBO gain between checks below this fraction of max(|ELBO|, N nats)
 CHECKPOINT_EVERY = 20     # steps between checkpoints
-CHUNK = 8192              # observations per chunk in the exact q and ELBO passes
 INIT_SUBSAMPLE = 16384    # observations used for the initial q
 KMEANS_SUBSAMPLE = 20000  # observations used for k-means
 RETRIES = 6               # non-finite step: attempts with more jitter / a smaller step
@@ -182,91 +182,6 @@ def _strong(tree):
     return jax.tree_util.tree_map(lambda leaf: jnp.asarray(np.asarray(leaf, dtype=np.float64)), tree)
 
 
-# ------------------------------------------------------------------------ q in closed form
-def natural_from_q(q_mean: jax.Array, q_sqrt: jax.Array) -> tuple[jax.Array, jax.Array]:
-    """(Λ, η) = ((SSᵀ)^{−1}, Λm) of q(w) = N(m, SSᵀ); shapes (M·d, M·d), (M·d,)."""
-    s_inv = solve_triangular(q_sqrt, jnp.eye(q_sqrt.shape[0], dtype=q_sqrt.dtype), lower=True)
-    precision = s_inv.T @ s_inv
-    return precision, precision @ q_mean
-
-
-def q_from_natural(precision: jax.Array, eta: jax.Array) -> tuple[jax.Array, jax.Array]:
-    """Inverse of :func:`natural_from_q`: m = Λ^{−1}η and lower-triangular S with SSᵀ = Λ^{−1}.
-
-    Λ is factored in reversed order (JΛJ = UUᵀ, so Λ = (JUJ)(JUJ)ᵀ with JUJ upper
-    triangular) and S = (JUJ)^{−T}, as in :func:`driftwise.field.optimal_q`.
-    """
-    upper = jnp.linalg.cholesky(precision[::-1, ::-1])[::-1, ::-1]
-    s = solve_triangular(upper.T, jnp.eye(precision.shape[0], dtype=precision.dtype), lower=True)
-    return s @ (s.T @ eta), s
-
-
-def _with_q(params: fld.FieldParams, mean: jax.Array, sqrt: jax.Array) -> fld.FieldParams:
-    return dataclasses.replace(params, q_mean=mean, q_sqrt_raw=fld.q_sqrt_raw_from(sqrt))
-
-
-def data_precision(params: fld.FieldParams, batch: fld.ObservationBatch, *, jitter_multiple) -> tuple[jax.Array, jax.Array]:
-    """(Σ_n Φ_nᵀ R_n⁻¹ Φ_n, Σ_n Φ_nᵀ R_n⁻¹ y_n) over ``batch``, Φ = K(X, Z) L_Z^{−T} (b·d, M·d).
-
-    The likelihood's contribution to the natural parameters of q(w) (Titsias 2009, eq. 10 in
-    whitened form): the optimal q on these observations alone has Λ = I + the first term
-    and Λm = the second.
-    """
-    chol = fld.inducing_cholesky(params, jitter_multiple=jitter_multiple)
-    kzx = params.kernel.gram_matrix(params.inducing_m, batch.position_m)        # (M·d, b·d)
-    phi_t = solve_triangular(chol, kzx, lower=True)                              # Φᵀ
-    weight = jnp.repeat(1.0 / fld.noise_variance_m2_s2(params, batch), batch.position_m.shape[1])
-    return (phi_t * weight) @ phi_t.T, phi_t @ (weight * batch.velocity_m_s.reshape(-1))
-
-
-def natural_step(params: fld.FieldParams, batch: fld.ObservationBatch, n_total, gamma, *,
-                 jitter_multiple) -> fld.FieldParams:
-    """θ ← (1 − γ) θ + γ θ̂_B in natural parameters (Hensman et al. 2013, §3), θ̂_B = (I + (N/b) ΦᵀR⁻¹Φ,
-    (N/b) ΦᵀR⁻¹y) the optimum for minibatch B scaled to N observations; γ = 1 gives θ̂_B itself."""
-    lam_data, eta_data = data_precision(params, batch, jitter_multiple=jitter_multiple)
-    scale = n_total / batch.position_m.shape[0]
-    lam_old, eta_old = natural_from_q(params.q_mean, params.q_sqrt)
-    eye = jnp.eye(lam_old.shape[0], dtype=lam_old.dtype)
-    lam = (1 - gamma) * lam_old + gamma * (eye + scale * lam_data)
-    eta = (1 - gamma) * eta_old + gamma * scale * eta_data
-    return _with_q(params, *q_from_natural(lam, eta))
-
-
-_natural_step_jit = jax.jit(natural_step, static_argnames=("jitter_multiple",))
-_chunk_natural = jax.jit(data_precision, static_argnames=("jitter_multiple",))
-
-
-@jax.jit(static_argnames=("jitter_multiple",))
-def _chunk_log_likelihood(params, batch, *, jitter_multiple):
-    chol = fld.inducing_cholesky(params, jitter_multiple=jitter_multiple)
-    return jnp.sum(fld.expected_log_likelihood(params, batch, chol))
-
-
-def _take(batch: fld.ObservationBatch, idx) -> fld.ObservationBatch:
-    return jax.tree_util.tree_map(lambda a: a[idx], batch)
-
-
-def _chunks(n: int) -> list[np.ndarray]:
-    return np.array_split(np.arange(n), max(1, math.ceil(n / CHUNK)))
-
-
-def exact_q(params: fld.FieldParams, batch: fld.ObservationBatch, *, jitter_multiple: float) -> fld.FieldParams:
-    """The ELBO-optimal q(w) on all of ``batch`` (any size), accumulated over chunks of ≤ 8192 rows."""
-    size = params.q_mean.shape[0]
-    lam, eta = jnp.eye(size), jnp.zeros(size)
-    for idx in _chunks(batch.position_m.shape[0]):
-        d_lam, d_eta = _chunk_natural(params, _take(batch, idx), jitter_multiple=jitter_multiple)
-        lam, eta = lam + d_lam, eta + d_eta
-    return _with_q(params, *q_from_natural(lam, eta))
-
-
-def full_elbo(params: fld.FieldParams, batch: fld.ObservationBatch, *, jitter_multiple: float) -> float:
-    """ELBO over all observations: Σ_n E_q log N(y_n | v(x_n), R_n) − KL(q ‖ p) (nats), chunked."""
-    total = sum(float(_chunk_log_likelihood(params, _take(batch, idx), jitter_multiple=jitter_multiple))
-                for idx in _chunks(batch.position_m.shape[0]))
-    return total - float(fld.kl_divergence(params))
-
-
 # ------------------------------------------------------------------------------ one step
 def _optimizer() -> optax.GradientTransformation:
     """Adam whose learning rate lives in the state (so it is checkpointed and can be halved)."""
@@ -319,6 +234,7 @@ class _State:
     history: tuple[float, ...]
     jitter_multiple: float
     converged: bool = False
+    checks: tuple[float, ...] = ()   # ELBO on the evaluation rows every `patience` steps
 
 
 @dataclasses.dataclass(frozen=True)
@@ -366,18 +282,33 @@ def _epoch_permutation(n: int, seed: int, epoch: int) -> np.ndarray:
     return _PERMUTATION_CACHE[key]
 
 
-def _plateau(history: tuple[float, ...], window: int, n_total: int) -> bool:
-    """Mean ELBO of the last ``window`` steps gained < REL_TOL · max(|previous window mean|, N)."""
-    if len(history) < 2 * window or len(history) % window:
+def _plateau(checks: tuple[float, ...], n_total: int) -> bool:
+    """The last check gained < REL_TOL · max(|previous check|, N nats) on the one before."""
+    if len(checks) < 2:
         return False
-    new, old = np.mean(history[-window:]), np.mean(history[-2 * window:-window])
-    return bool((new - old) < REL_TOL * max(abs(old), float(n_total)))
+    return bool(checks[-1] - checks[-2] < REL_TOL * max(abs(checks[-2]), float(n_total)))
+
+
+def _evaluation_rows(n: int, seed: int) -> np.ndarray | None:
+    """Fixed rows on which the plateau is judged: all (None) when N ≤ 8192, else a seeded sample of 8192."""
+    if n <= CHUNK:
+        return None
+    return np.sort(np.random.default_rng([seed, 2**31 - 2]).choice(n, CHUNK, replace=False))
+
+
+def _check(state: _State, data: _Data, config: _Config) -> _State:
+    """Append the ELBO (N/b-scaled, current q) on the evaluation rows and flag a plateau."""
+    idx = _evaluation_rows(data.n, config.seed)
+    batch = data.batch if idx is None else take(data.batch, idx)
+    value = float(fld.elbo(state.params, batch, float(data.n), jitter_multiple=state.jitter_multiple))
+    checks = state.checks + (value,)
+    return dataclasses.replace(state, checks=checks, converged=_plateau(checks, data.n))
 
 
 def _advance(state: _State, data: _Data, config: _Config, z_scale: float) -> _State:
     """One accepted step; on a non-finite ELBO/gradient retry with 100× jitter, then also half the step size."""
     idx = _batch_indices(data.n, config.batch_size, config.seed, state.step)
-    batch = data.batch if idx is None else _take(data.batch, idx)
+    batch = data.batch if idx is None else take(data.batch, idx)
     gamma = 1.0 if idx is None else config.natural_step
     names = _trainable_names(config.q_update, config.learn_inducing)
     jitter, opt_state = state.jitter_multiple, state.opt_state
@@ -424,7 +355,7 @@ def save_checkpoint(path, state: _State, config: _Config) -> Path:
 
     meta = {"schema": CHECKPOINT_SCHEMA, "config": json.loads(config.to_json()), "step": state.step,
             "rng": {"seed": config.seed, "step": state.step, "scheme": "numpy default_rng([seed, epoch]) permutations"},
-            "jitter_multiple": state.jitter_multiple, "converged": state.converged}
+            "jitter_multiple": state.jitter_multiple, "converged": state.converged, "checks": list(state.checks)}
     arrays = {**_flat("params/", state.params), **_flat("opt/", state.opt_state),
               "history": np.asarray(state.history, dtype=np.float64), "meta": np.array(json.dumps(meta))}
 
@@ -455,7 +386,7 @@ def load_checkpoint(path, template: _State, config: _Config) -> _State:
     if len(history) != int(meta["step"]):
         raise InputError(f"{path}: checkpoint is inconsistent (step {meta['step']}, {len(history)} ELBO values)")
     return _State(params, opt_state, int(meta["step"]), history, float(meta["jitter_multiple"]),
-                  bool(meta.get("converged", False)))
+                  bool(meta["converged"]), tuple(float(v) for v in meta["checks"]))
 
 
 # ------------------------------------------------------------------------------ the loop
@@ -473,8 +404,8 @@ def _train(state: _State, data: _Data, config: _Config, *, steps: int, patience:
     try:
         while state.step < steps and not state.converged:
             state = _advance(state, data, config, z_scale)
-            if _plateau(state.history, patience, data.n):
-                state = dataclasses.replace(state, converged=True)
+            if state.step % patience == 0:
+                state = _check(state, data, config)
             if checkpoint is not None and state.step % CHECKPOINT_EVERY == 0:
                 save_checkpoint(checkpoint, state, config)
             bar.update(1)
@@ -510,7 +441,7 @@ def _initial_q(params: fld.FieldParams, data: _Data, seed: int) -> fld.FieldPara
     if data.n <= INIT_SUBSAMPLE:
         return exact_q(params, data.batch, jitter_multiple=fld.JITTER_MULTIPLE)
     idx = np.sort(np.random.default_rng([seed, 2**31 - 1]).choice(data.n, INIT_SUBSAMPLE, replace=False))
-    return _natural_step_jit(params, _take(data.batch, idx), float(data.n), 1.0, jitter_multiple=fld.JITTER_MULTIPLE)
+    return natural_step_jit(params, take(data.batch, idx), float(data.n), 1.0, jitter_multiple=fld.JITTER_MULTIPLE)
 
 
 def _z_scale(params: fld.FieldParams) -> float:
@@ -532,6 +463,7 @@ def _finish(state: _State, data: _Data, config: _Config, *, steps: int, patience
             "elbo_history_kind": "per-step minibatch estimate (N/b scaled), nats" if config.batch_size < data.n
             else "per-step ELBO on all observations, nats",
             "steps": state.step, "max_steps": steps, "converged": state.converged, "patience_steps": patience,
+            "plateau_checks": list(state.checks),
             "q_update": config.q_update, "seed": config.seed, "batch_size": min(config.batch_size, data.n),
             "learning_rate_final": float(state.opt_state.hyperparams["learning_rate"]),
             "decorrelation_time_source": "length_scale/rms_speed", "rms_speed_m_s": rms_speed,
@@ -564,18 +496,10 @@ def length_scale_m(kernel) -> float:
     return float((w1 * h["divergence_free_length_scale_m"] + w2 * h["curl_free_length_scale_m"]) / (w1 + w2))
 
 
-@jax.jit(static_argnames=("jitter_multiple",))
-def _mean_speed_squared(params: fld.FieldParams, x: jax.Array, *, jitter_multiple: float) -> jax.Array:
-    """Σ_n |μ(x_n)|² with μ(x) = K(x, Z) L_Z^{−T} m, the posterior mean (m²/s²)."""
-    chol = fld.inducing_cholesky(params, jitter_multiple=jitter_multiple)
-    alpha = solve_triangular(chol.T, params.q_mean, lower=False)
-    return jnp.sum((params.kernel.gram_matrix(x, params.inducing_m) @ alpha) ** 2)
-
-
 def _decorrelation_time_s(params: fld.FieldParams, data: _Data, jitter: float) -> tuple[float, float, float]:
     """τ = ℓ / U_rms (s), U_rms the RMS posterior-mean speed at the observation midpoints (Taylor 1921)."""
-    total = sum(float(_mean_speed_squared(params, _take(data.batch, idx).position_m, jitter_multiple=jitter))
-                for idx in _chunks(data.n))
+    total = sum(float(mean_speed_squared(params, take(data.batch, idx).position_m, jitter_multiple=jitter))
+                for idx in chunks(data.n))
     rms = math.sqrt(total / data.n)
     length = length_scale_m(params.kernel)
     return length / max(rms, 1e-9), rms, length
@@ -612,8 +536,9 @@ def fit(tracks_or_observations, kernel: str = "helmholtz", *, inducing: int | No
     {"squared-exponential", "matern52"}; ``inducing`` M points by k-means (default None:
     min(256, max(16, N/32)) for N velocity observations); ``position_error_m``
     σ_pos of one fix (m, used when tracks are given).  At most ``steps`` optimiser steps on
-    minibatches of ``batch_size`` (all data when it fits); stops early when the mean ELBO
-    over ``patience`` steps gains less than 1e-4 of |ELBO| (floored at 1 nat per observation).
+    minibatches of ``batch_size`` (all N when N ≤ 4 × batch_size); every ``patience`` steps the
+    ELBO on fixed evaluation rows (all, or 8192 when N is larger) is checked, and the fit stops
+    once it gained less than 1e-4 × max(|ELBO|, N nats) since the previous check.
     ``checkpoint`` (path) is written every 20 steps, on Ctrl-C and at the end;
     ``resume=True`` continues from it and ends where the uninterrupted fit would.
     ``q_update``: "natural" (closed-form natural-gradient steps on q, default) or "adam".
