@@ -4,17 +4,18 @@ The fields here are *known*: a Lamb–Oseen vortex (Oseen 1912; Lamb 1932, Hydro
 as the mean flow, written in jax so the propagator can run through it, and an optional map of
 velocity uncertainty Σ(x).  Drifters are simulated outside driftwise's SDE code.
 
-τ recovery — how the truth is built.  K and τ enter the SDE only as D(x) = 2(K I + τ Σ(x)), so
-they can be told apart only where Σ varies in space.  The true drifters therefore carry an
+τ recovery — how the truth is built.  K and τ enter the SDE as D(x, a) = 2(K I + τ(1 − e^{−a/τ}) Σ(x))
+at release age a, so they are told apart by the growth of the spread with lag and where Σ varies
+in space.  The true drifters therefore carry an
 *unresolved velocity* u′ on top of a weak vortex: per drifter an Ornstein–Uhlenbeck process with
 decorrelation time τ and local variance Σ(x) per component, Σ(x) = s² exp(−|x|²/2L²) (a bump
 of radius L = 3 km; the drifters start along a 24 km strip across it, so some live inside and
 some outside), plus a white-noise random walk of diffusivity K.  For lags t much longer than τ
-this disperses like a diffusivity K + τ Σ (Taylor 1921, "Diffusion by continuous movements",
-Proc. London Math. Soc. 20: Var = 2Στ[t − τ(1 − e^{−t/τ})] per component), which is exactly the
-SDE's D.  The lags used (3, 6, 12 h) are ≥ 18 τ, where Taylor's formula is within 5.5 % of the
-diffusive limit (so a few per cent low bias is expected); the calibration sees Σ(x) as the
-field's velocity covariance and must return the τ of the simulated u′ and the K outside it.
+this disperses as Var = 2Στ[t − τ(1 − e^{−t/τ})] + 2Kt per component (Taylor 1921, "Diffusion by
+continuous movements", Proc. London Math. Soc. 20), which is the SDE's D integrated over the
+release age (for a Σ that is constant along the path).  The lags used are 3, 6 and 12 h (≥ 18 τ);
+the calibration sees Σ(x) as the field's velocity covariance and must return the τ of the
+simulated u′ and the K outside it.
 """
 
 from __future__ import annotations
@@ -195,10 +196,10 @@ def test_linear_decomposition_equals_propagating_inside_the_objective():
 class _Unfast:
     """Linearize's expectations, under another type so calibrate takes the propagate-inside route."""
 
-    def expectations(self, sde_, mean, cov):
+    def expectations(self, sde_, mean, cov, age_s=0.0):
         from driftwise.moments import Linearize
 
-        return Linearize().expectations(sde_, mean, cov)
+        return Linearize().expectations(sde_, mean, cov, age_s)
 
 
 def test_calibrate_a_fitted_field_and_round_trip(tmp_path):

@@ -175,15 +175,13 @@ def test_gp_draw_is_divergence_free_with_the_right_scale():
 
 @pytest.mark.slow
 def test_coverage_is_calibrated_on_a_gaussian_process_flow():
-    # The SDE treats the posterior velocity uncertainty as a diffusivity τΣ (a Markov
-    # approximation: Taylor 1921, "Diffusion by continuous movements", shows the displacement
-    # variance of a velocity error correlated over τ grows as Σt² for t ≪ τ and as 2Στt only for
-    # t ≫ τ).  It is exact for the eddy-diffusion part, so calibration is tested where the fitted
-    # mean flow is well resolved (ℓ = 8 km over a 20 km box): measured 2026-12-02, calibrated
-    # K = 5.8 m²/s (truth 5), coverage 0.54/0.56/0.57 (50 %) and 0.958/0.949/0.944 (95 %) at
-    # 6/12/24 h.  With ℓ = 4 km (under-resolved, mean-flow error comparable to the eddy spread)
-    # the same pipeline gave 0.69/0.65/0.54 and 0.993/0.988/0.932: over-dispersed at short
-    # horizons, as the Markov approximation predicts.
+    # Measured 2026-12-02 with this setting (ℓ = 8 km over a 20 km box, the flow well resolved):
+    # calibrated K = 5.8 m²/s (truth 5), coverage 0.54/0.56/0.57 (50 %) and 0.958/0.949/0.944
+    # (95 %) at 6/12/24 h.  With ℓ = 4 km the mean-flow error is comparable to the eddy spread and
+    # its ballistic growth matters (Taylor 1921, "Diffusion by continuous movements": variance Σt²
+    # for t ≪ τ): the Markov diffusion 2(K I + τΣ) gave 0.69/0.65/0.54 and 0.993/0.988/0.932
+    # (over-spread early); the age-dependent D = 2(K I + τ(1 − e^{−a/τ})Σ) gives 0.62/0.62/0.61 and
+    # 0.974/0.970/0.944 (the right shape, a little wide: the cross-validation folds see half the data).
     flow = GPStreamDraw.draw(velocity_scale_m_s=0.08, length_scale_m=8000.0, features=2000, seed=7)
     rng = np.random.default_rng(8)
     starts = rng.uniform(-10_000, 10_000, (100, 2))

@@ -15,6 +15,7 @@ Outside references:
 from __future__ import annotations
 
 import dataclasses
+import math
 
 import jax
 import jax.numpy as jnp
@@ -66,35 +67,51 @@ def test_point_posterior_equals_field_functions(fitted_field):
 
 def test_drift_and_diffusion_follow_the_design_formula(fitted_field):
     sde = sde_from_field(fitted_field)
+    markov = sde_from_field(fitted_field, velocity_memory=False)
+    assert sde.with_age and not markov.with_age
     points = np.array([[1000.0, 2000.0], [5000.0, 5000.0], [12_000.0, -1000.0]])
     mean, cov = fitted_field.predict(points)
     k, tau = fitted_field.diffusivity_m2_s, fitted_field.decorrelation_time_s
     for p, m, c in zip(points, mean, cov):
         np.testing.assert_allclose(sde.drift(jnp.asarray(p)), m, rtol=1e-10, atol=1e-13)
-        expected = 2.0 * (k * np.eye(2) + tau * c)  # D = 2 (K I + τ Σ)
-        np.testing.assert_allclose(sde.diffusion(jnp.asarray(p)), expected, rtol=1e-9, atol=1e-12)
+        for age in (0.0, 0.3 * tau, 3.0 * tau):
+            # D = 2 (K I + τ (1 − e^{−a/τ}) Σ), Taylor (1921) at release age a
+            expected = 2.0 * (k * np.eye(2) + tau * (1.0 - np.exp(-age / tau)) * c)
+            np.testing.assert_allclose(sde.rate(jnp.asarray(p), age), expected, rtol=1e-9, atol=1e-12)
+        # the Markov limit a → ∞: D = 2 (K I + τ Σ)
+        np.testing.assert_allclose(markov.diffusion(jnp.asarray(p)), 2.0 * (k * np.eye(2) + tau * c),
+                                   rtol=1e-9, atol=1e-12)
 
 
-def test_prior_field_gives_taylor_diffusivity_and_einstein_spread():
-    field = make_field(fitted=False, decorrelation_time_s=900.0)
+def test_prior_field_gives_taylor_spread():
+    # Zero mean flow, Σ = (σ_df² + σ_cf²) I everywhere: a velocity error with exponential
+    # autocorrelation over τ spreads as 2Στ[t − τ(1 − e^{−t/τ})] (Taylor 1921, "Diffusion by
+    # continuous movements", eq. for the exponential correlation), plus 2Kt (Einstein 1905).
+    tau, k = 900.0, 2.5
+    field = make_field(fitted=False, decorrelation_time_s=tau)
     sde = sde_from_field(field)
     x = jnp.asarray([3000.0, 7000.0])
-    d_expected = 2.0 * (2.5 + 900.0 * (SIGMA_DF**2 + SIGMA_CF**2)) * np.eye(2)  # Taylor 1921
-    np.testing.assert_allclose(sde.diffusion(x), d_expected, rtol=1e-9, atol=0)
+    var = SIGMA_DF**2 + SIGMA_CF**2
+    np.testing.assert_allclose(sde.rate(x, 1e9), 2.0 * (k + tau * var) * np.eye(2), rtol=1e-9, atol=0)
     np.testing.assert_allclose(sde.drift(x), 0.0, rtol=0, atol=1e-15)
-    times = np.array([0.0, 3600.0, 7200.0])
-    _, covs = moments.propagate(sde, np.asarray(x), np.zeros((2, 2)), times, integrator=moments.RK4(step_s=1800.0))
-    np.testing.assert_allclose(covs, times[:, None, None] * d_expected, rtol=1e-9, atol=1e-9)  # Einstein 1905
+    times = np.array([0.0, 300.0, 900.0, 3600.0, 7200.0])
+    _, covs = moments.propagate(sde, np.asarray(x), np.zeros((2, 2)), times, integrator=moments.RK4(step_s=30.0))
+    taylor = 2.0 * k * times + 2.0 * var * tau * (times - tau * (1.0 - np.exp(-times / tau)))
+    # RK4 on a forcing of t alone is Simpson's rule: relative error ~ (h/τ)⁴/2880 ≈ 4e-10 at h = 30 s
+    np.testing.assert_allclose(covs, taylor[:, None, None] * np.eye(2), rtol=1e-8, atol=1e-9)
+    markov = sde_from_field(field, velocity_memory=False)
+    _, covs = moments.propagate(markov, np.asarray(x), np.zeros((2, 2)), times, integrator=moments.RK4(step_s=1800.0))
+    np.testing.assert_allclose(covs, 2.0 * (k + tau * var) * times[:, None, None] * np.eye(2), rtol=1e-9, atol=1e-9)
 
 
 def test_overrides_and_uncalibrated_decorrelation_time(fitted_field):
     x = jnp.asarray([4000.0, 4000.0])
     posterior = PointPosterior.from_field(fitted_field)
     sigma = np.asarray(posterior.cov_at(x))
-    d = sde_from_field(fitted_field, diffusivity_m2_s=7.0, decorrelation_time_s=60.0).diffusion(x)
-    np.testing.assert_allclose(d, 2.0 * (7.0 * np.eye(2) + 60.0 * sigma), rtol=1e-12, atol=0)
+    d = sde_from_field(fitted_field, diffusivity_m2_s=7.0, decorrelation_time_s=60.0).rate(x, 60.0)
+    np.testing.assert_allclose(d, 2.0 * (7.0 * np.eye(2) + 60.0 * (1 - math.exp(-1)) * sigma), rtol=1e-12, atol=0)
     uncalibrated = dataclasses.replace(fitted_field, decorrelation_time_s=None)
-    d0 = sde_from_field(uncalibrated).diffusion(x)
+    d0 = sde_from_field(uncalibrated).rate(x, 3600.0)
     np.testing.assert_allclose(d0, 2.0 * fitted_field.diffusivity_m2_s * np.eye(2), rtol=1e-12, atol=0)
 
 

@@ -105,7 +105,7 @@ def _add_spread(sub: argparse._SubParsersAction) -> None:
     p = sub.add_parser(
         "spread", help="forecast where releases go: mean paths, covariance ellipses, probability of reaching an area",
         description="Forecast releases through the fitted flow (Itô SDE: drift = posterior mean, diffusion = "
-        "2(K I + tau Sigma)) by Gaussian moment matching or an Euler-Maruyama ensemble. Outputs the mean path and "
+        "2(K I + tau (1 - exp(-age/tau)) Sigma)) by Gaussian moment matching or an Euler-Maruyama ensemble. Outputs the mean path and "
         "covariance (metres, local frame; also lon/lat for a lon/lat model) at times since each release, the 50/90/95 %% "
         "ellipses, and with --polygon the probability of being inside it and the first time it reaches --threshold.",
         epilog=CAUTION)

@@ -297,8 +297,14 @@ def step_calibrate(job: Job) -> str:
     if truth is not None:
         fit["notes"].append(f"The invented data were simulated with K = {truth:g} m²/s (demo_data/README.md), "
                             "so the estimate can be checked against the truth.")
+    tau_at_bound = bool(record.get("at_bound", {}).get("decorrelation_time_s"))
+    if tau_at_bound:
+        fit["notes"].append("τ reached the upper end of its search range: over the calibration lags the error of "
+                            "the fitted velocity acts as if frozen along each path (its spread grows as Σt², "
+                            "Taylor 1921), so a longer τ would fit as well.")
     return (f"K {before[0]:.3g} → {field.diffusivity_m2_s:.3g} m²/s, "
-            f"τ {duration(before[1])} → {duration(field.decorrelation_time_s)}")
+            f"τ {duration(before[1])} → {duration(field.decorrelation_time_s)}"
+            + (" (upper bound: velocity error frozen over the lags)" if tau_at_bound else ""))
 
 
 # ----------------------------------------------------------------- 3. map

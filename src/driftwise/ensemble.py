@@ -64,18 +64,18 @@ def _paths(sde: SDE, method: EulerMaruyama, mean0, chol0, times_s, key) -> jax.A
     x0 = mean0 + jax.random.normal(k_init, (method.chunk, mean0.shape[-1])) @ chol0.T
 
     def em_step(h, state):
-        x, k = state
+        x, k, age = state  # age: time since the release (s), for a diffusion that depends on it
         k, sub = jax.random.split(k)
-        chol = jax.vmap(lambda z: psd_cholesky(sde.diffusion(z)))(x)
+        chol = jax.vmap(lambda z: psd_cholesky(sde.rate(z, age)))(x)
         noise = jnp.einsum("nij,nj->ni", chol, jax.random.normal(sub, x.shape))
-        return x + h * jax.vmap(sde.drift)(x) + jnp.sqrt(h) * noise, k
+        return x + h * jax.vmap(sde.drift)(x) + jnp.sqrt(h) * noise, k, age + h
 
     def interval(state, span):
         n = _substeps(span, method.step_s)
         state = jax.lax.fori_loop(0, n, lambda _, s: em_step(span / n, s), state)
         return state, state[0]
 
-    _, xs = jax.lax.scan(interval, (x0, k_path), jnp.diff(times_s))
+    _, xs = jax.lax.scan(interval, (x0, k_path, jnp.zeros((), dtype=x0.dtype)), jnp.diff(times_s))
     return jnp.concatenate([x0[None], xs])
 
 

@@ -85,12 +85,12 @@ def psd_cholesky(cov: jax.Array) -> jax.Array:
 # ----------------------------------------------------------------- strategies
 
 
-def _cubature_expectations(sde: SDE, mean, cov, points, weights):
-    """(E[μ], E[μ(x)(x − m)ᵀ], E[D]) by the rule Σ_i w_i f(m + √P ξ_i)."""
+def _cubature_expectations(sde: SDE, mean, cov, age_s, points, weights):
+    """(E[μ], E[μ(x)(x − m)ᵀ], E[D]) by the rule Σ_i w_i f(m + √P ξ_i); age_s: time since release (s)."""
     dx = jnp.asarray(points) @ psd_cholesky(cov).T  # (n, d)
     w = jnp.asarray(weights)
     drift = jax.vmap(sde.drift)(mean + dx)  # (n, d)
-    diffusion = jax.vmap(sde.diffusion)(mean + dx)  # (n, d, d)
+    diffusion = jax.vmap(lambda x: sde.rate(x, age_s))(mean + dx)  # (n, d, d)
     return w @ drift, (drift * w[:, None]).T @ dx, jnp.tensordot(w, diffusion, axes=1)
 
 
@@ -103,9 +103,9 @@ class Linearize:
     constant diffusion; one drift Jacobian per evaluation.
     """
 
-    def expectations(self, sde: SDE, mean: jax.Array, cov: jax.Array):
+    def expectations(self, sde: SDE, mean: jax.Array, cov: jax.Array, age_s=0.0):
         jac = jax.jacfwd(sde.drift)(mean)
-        return sde.drift(mean), jac @ cov, sde.diffusion(mean)
+        return sde.drift(mean), jac @ cov, sde.rate(mean, age_s)
 
 
 @dataclass(frozen=True)
@@ -140,8 +140,8 @@ class Unscented:
         weights[0] = lam / (d + lam)
         return points, weights
 
-    def expectations(self, sde: SDE, mean: jax.Array, cov: jax.Array):
-        return _cubature_expectations(sde, mean, cov, *self.points_and_weights(mean.shape[-1]))
+    def expectations(self, sde: SDE, mean: jax.Array, cov: jax.Array, age_s=0.0):
+        return _cubature_expectations(sde, mean, cov, age_s, *self.points_and_weights(mean.shape[-1]))
 
 
 @dataclass(frozen=True)
@@ -157,8 +157,8 @@ class SphericalCubature:
         axes = np.sqrt(d) * np.eye(d)
         return np.concatenate([axes, -axes]), np.full(2 * d, 0.5 / d)
 
-    def expectations(self, sde: SDE, mean: jax.Array, cov: jax.Array):
-        return _cubature_expectations(sde, mean, cov, *self.points_and_weights(mean.shape[-1]))
+    def expectations(self, sde: SDE, mean: jax.Array, cov: jax.Array, age_s=0.0):
+        return _cubature_expectations(sde, mean, cov, age_s, *self.points_and_weights(mean.shape[-1]))
 
 
 def hermite_nodes_weights(order: int) -> tuple[np.ndarray, np.ndarray]:
@@ -192,20 +192,20 @@ class GaussHermite:
         points = np.array(list(itertools.product(nodes, repeat=d)))
         return points, np.prod(np.array(list(itertools.product(weights, repeat=d))), axis=1)
 
-    def expectations(self, sde: SDE, mean: jax.Array, cov: jax.Array):
-        return _cubature_expectations(sde, mean, cov, *self.points_and_weights(mean.shape[-1]))
+    def expectations(self, sde: SDE, mean: jax.Array, cov: jax.Array, age_s=0.0):
+        return _cubature_expectations(sde, mean, cov, age_s, *self.points_and_weights(mean.shape[-1]))
 
 
 Method = Linearize | Unscented | SphericalCubature | GaussHermite
 
 
-def moment_rates(method: Method, sde: SDE, mean: jax.Array, cov: jax.Array):
-    """(dm/dt (d,), dP/dt (d, d)) of the Gaussian moment ODE at (m, P).
+def moment_rates(method: Method, sde: SDE, mean: jax.Array, cov: jax.Array, age_s=0.0):
+    """(dm/dt (d,), dP/dt (d, d)) of the Gaussian moment ODE at (m, P), ``age_s`` s after the release.
 
     dm/dt = E[μ], dP/dt = C + Cᵀ + sym(E[D]) with C = E[μ(x)(x − m)ᵀ]; the
     result is exactly symmetric.  Units: m/s and m²/s.
     """
-    e_drift, cross, e_diff = method.expectations(sde, mean, cov)
+    e_drift, cross, e_diff = method.expectations(sde, mean, cov, age_s)
     return e_drift, (cross + cross.T) + 0.5 * (e_diff + e_diff.T)
 
 
@@ -347,13 +347,19 @@ Integrator = RK4 | Dopri5
 def _propagate_one(sde: SDE, method: Method, integrator: Integrator, mean0, cov0, times_s):
     """Means (T, d) and covariances (T, d, d) of one release (traceable)."""
     d = mean0.shape[-1]
-
-    def f(y):
-        dm, dp = moment_rates(method, sde, y[:d], y[d:].reshape(d, d))
-        return jnp.concatenate([dm, dp.ravel()])
-
     y0 = jnp.concatenate([mean0, (0.5 * (cov0 + cov0.T)).ravel()])
-    ys = integrator.integrate(f, y0, times_s)
+    if sde.with_age:  # the time since release rides along as one more state, d(age)/dt = 1
+        def f(y):
+            dm, dp = moment_rates(method, sde, y[:d], y[d:-1].reshape(d, d), y[-1])
+            return jnp.concatenate([dm, dp.ravel(), jnp.ones(1, dtype=y.dtype)])
+
+        ys = integrator.integrate(f, jnp.concatenate([y0, jnp.zeros(1, dtype=y0.dtype)]), times_s)[:, :-1]
+    else:
+        def f(y):
+            dm, dp = moment_rates(method, sde, y[:d], y[d:].reshape(d, d))
+            return jnp.concatenate([dm, dp.ravel()])
+
+        ys = integrator.integrate(f, y0, times_s)
     return ys[:, :d], ys[:, d:].reshape(-1, d, d)
 
 

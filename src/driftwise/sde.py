@@ -1,12 +1,20 @@
 """The Itô SDE a release follows: dx = μ(x) dt + L(x) dβ with D(x) = L(x) L(x)ᵀ.
 
 A fitted `FlowField` gives the drift μ(x) = posterior mean velocity (m/s) and the
-diffusion D(x) = 2 (K I + τ Σ(x)) (m²/s), where K is the eddy diffusivity (m²/s),
-Σ(x) the posterior velocity covariance at x (m²/s²) and τ a velocity
-decorrelation time (s): unresolved velocity with variance Σ and Lagrangian time
-scale τ disperses like a diffusivity τ Σ (Taylor 1921, "Diffusion by continuous
-movements").  The covariance ODE of the moment propagators gains E[D(x)], so D
-is the full rate matrix (twice the diffusivity), not its square root.
+diffusion
+
+    D(x, a) = 2 (K I + τ (1 − e^{−a/τ}) Σ(x))   (m²/s),
+
+where K is the eddy diffusivity (m²/s), Σ(x) the posterior velocity covariance at x
+(m²/s²), τ a velocity decorrelation time (s) and a the time since the release (s).
+The second term is the error of the fitted mean velocity: an error with variance Σ
+and autocorrelation e^{−|s|/τ} along the path displaces a particle with variance
+2Στ [t − τ (1 − e^{−t/τ})] (Taylor 1921, "Diffusion by continuous movements"), i.e. at
+the rate 2Στ(1 − e^{−t/τ}): ballistic (Σt²) for t ≪ τ, diffusive (2Στt) for t ≫ τ.
+``velocity_memory=False`` drops the age factor (the Markov limit D = 2(K I + τΣ)),
+which over-spreads forecasts shorter than τ.  The covariance ODE of the moment
+propagators gains E[D(x)], so D is the full rate matrix (twice the diffusivity), not
+its square root.
 
 `SDE` also takes plain user callables, so the propagators (`moments`,
 `ensemble`) can be used and tested on analytic SDEs.  Calibrating K and τ from
@@ -16,7 +24,7 @@ takes them from the field or from the caller.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field as _dataclass_field
 from typing import Any, Callable, Hashable
 
 import jax
@@ -38,13 +46,22 @@ class SDE:
                rate at which the covariance grows, D = L Lᵀ (a pure diffusion
                with diffusivity K has D = 2 K I, so Var grows as 2 K t).
 
+    with_age:  when True, diffusion is called as diffusion(x, age_s) with the
+               time since the release (s); the propagators carry that age.
+
     Both are pytree fields: pass `jax.tree_util.Partial(fn, params...)` to keep
     parameters as traced data (changing them does not recompile the
     propagators); plain functions are treated as static (hashed by identity).
     """
 
     drift: Callable[[jax.Array], jax.Array]
-    diffusion: Callable[[jax.Array], jax.Array]
+    diffusion: Callable[..., jax.Array]
+    with_age: bool = _dataclass_field(default=False, metadata=dict(static=True))
+
+    def rate(self, x: jax.Array, age_s: jax.Array) -> jax.Array:
+        """D at x (d,) for a particle released ``age_s`` seconds ago: ``diffusion(x, age_s)`` when
+        ``with_age`` (a diffusion that depends on the time since release), else ``diffusion(x)``."""
+        return self.diffusion(x, age_s) if self.with_age else self.diffusion(x)
 
 
 @jax.tree_util.register_dataclass
@@ -116,6 +133,33 @@ def _field_diffusion(
     return 2.0 * (diffusivity_m2_s * eye + decorrelation_time_s * sigma)
 
 
+def _velocity_memory_weight(decorrelation_time_s: jax.Array, age_s: jax.Array) -> jax.Array:
+    """τ (1 − e^{−a/τ}) (s), the weight of Σ at release age a (Taylor 1921); 0 when τ = 0."""
+    positive = decorrelation_time_s > 0
+    tau = jnp.where(positive, decorrelation_time_s, 1.0)
+    return jnp.where(positive, -tau * jnp.expm1(-age_s / tau), 0.0)
+
+
+def _field_diffusion_with_age(
+    posterior: PointPosterior, diffusivity_m2_s: jax.Array, decorrelation_time_s: jax.Array, x: jax.Array,
+    age_s: jax.Array,
+) -> jax.Array:
+    """D(x, a) = 2 (K I + τ (1 − e^{−a/τ}) Σ(x)); x (d,) m, a s since release -> (d, d) m²/s."""
+    sigma = posterior.cov_at(x)
+    eye = jnp.eye(x.shape[-1], dtype=sigma.dtype)
+    return 2.0 * (diffusivity_m2_s * eye + _velocity_memory_weight(decorrelation_time_s, age_s) * sigma)
+
+
+def _field_sde(posterior: Any, diffusivity_m2_s: jax.Array, decorrelation_time_s: jax.Array,
+               velocity_memory: bool) -> SDE:
+    if velocity_memory:
+        return SDE(drift=jax.tree_util.Partial(_field_drift, posterior),
+                   diffusion=jax.tree_util.Partial(_field_diffusion_with_age, posterior, diffusivity_m2_s,
+                                                   decorrelation_time_s), with_age=True)
+    return SDE(drift=jax.tree_util.Partial(_field_drift, posterior),
+               diffusion=jax.tree_util.Partial(_field_diffusion, posterior, diffusivity_m2_s, decorrelation_time_s))
+
+
 def _check_nonnegative(value: Any, name: str) -> jax.Array:
     """Return `value` as a float64 scalar, or raise InputError naming `name`."""
     arr = np.asarray(value, dtype=float)
@@ -129,11 +173,14 @@ def sde_from_field(
     *,
     diffusivity_m2_s: float | None = None,
     decorrelation_time_s: float | None = None,
+    velocity_memory: bool = True,
 ) -> SDE:
     """The SDE of a particle in a fitted flow field.
 
-    μ(x) = field.mean_at(x) (m/s);  D(x) = 2 (K I + τ Σ(x)) (m²/s) with
-    Σ(x) = field.cov_between(x, x) the posterior velocity covariance (m²/s²).
+    μ(x) = field.mean_at(x) (m/s);  D(x, a) = 2 (K I + τ (1 − e^{−a/τ}) Σ(x)) (m²/s) at
+    release age a, with Σ(x) = field.cov_between(x, x) the posterior velocity covariance
+    (m²/s²) — see the module docstring; ``velocity_memory=False`` gives the Markov limit
+    D(x) = 2 (K I + τ Σ(x)) (an SDE without age).
     K (`diffusivity_m2_s`, m²/s) and τ (`decorrelation_time_s`, s) default to
     the field's own `diffusivity_m2_s` and `decorrelation_time_s`.
 
@@ -151,11 +198,7 @@ def sde_from_field(
     tau = field.decorrelation_time_s if decorrelation_time_s is None else decorrelation_time_s
     k = _check_nonnegative(k, "diffusivity_m2_s")
     tau = _check_nonnegative(0.0 if tau is None else tau, "decorrelation_time_s")
-    posterior = PointPosterior.from_field(field)
-    return SDE(
-        drift=jax.tree_util.Partial(_field_drift, posterior),
-        diffusion=jax.tree_util.Partial(_field_diffusion, posterior, k, tau),
-    )
+    return _field_sde(PointPosterior.from_field(field), k, tau, bool(velocity_memory))
 
 
 @dataclass(frozen=True)
@@ -206,21 +249,22 @@ def join_from_jit(dynamic: list[Any], static: _Static) -> SDE:
 # a rough guide only), over θ = (log K, log τ), with L-BFGS-B (scipy.optimize.minimize)
 # inside bounds and the exact gradient of a jitted jax objective.  Two routes:
 #
-# * Linearize (default).  Linearized moments (Maybeck 1982, vol. 2, §12.3) have
-#   dm/dt = μ(m), independent of P, and dP/dt = J P + P Jᵀ + 2(K I + τ Σ(m)), linear in
-#   (P, K, τ) along that fixed mean path; RK4 keeps this linearity step by step.  So
-#   P_λ = K·A_λ + τ·B_λ + C_λ exactly, where A, B, C are three runs of the propagator
-#   (moments.propagate_batch: D = 2I from P0 = 0; D = 2Σ from P0 = 0; D = 0 from σ² I).
-#   After these three runs each likelihood evaluation costs microseconds, whatever M.
+# * Linearize with RK4 (default).  Linearized moments (Maybeck 1982, vol. 2, §12.3) have
+#   dm/dt = μ(m), independent of P, and dP/dt = J P + P Jᵀ + 2(K I + w_τ(a) Σ(m)) with
+#   w_τ(a) = τ(1 − e^{−a/τ}) at release age a.  In the RK4 step of the joint (m, P) ODE the
+#   mean stages never see P, so the mean path and, at each of its four stages per step,
+#   J = ∂μ/∂x and Σ are computed once (:func:`linearized_path`); each likelihood evaluation
+#   then re-runs only the d × d covariance RK4 with those stage values — the same numbers as
+#   moments.propagate_batch with Linearize() and that RK4, at microseconds per evaluation
+#   whatever M, differentiated in reverse mode through a fixed-length scan.
 # * Any other moment method (e.g. SphericalCubature): the sigma points move with P, so the
 #   propagator runs inside the objective and jax.jacfwd differentiates through it (forward
 #   mode: the RK4/Dopri5 loops have data-dependent trip counts, i.e. while loops, which
 #   reverse mode cannot differentiate; with two parameters forward mode is as cheap).
 #   Exact for that method but costly for a large field (each evaluation is a full forecast).
 #
-# K and τΣ(x) enter D(x) = 2(K I + τ Σ(x)) additively, so they are told apart only by the
-# spatial variation of the posterior covariance Σ(x): where Σ is nearly uniform the data fix
-# K + τ Σ and not each alone, and ``info["log_std"]`` shows it as a large spread of log τ.
+# K and τ are told apart by how the spread grows with lag (K: linear; the velocity-error
+# term: quadratic for lags ≪ τ, linear beyond) and by the spatial variation of Σ(x).
 
 from functools import partial as _partial  # noqa: E402  (this section's own import)
 
@@ -235,13 +279,11 @@ def _posterior_of(field: Any) -> Any:
     return PointPosterior.from_field(field)
 
 
-def transport_sde(posterior: Any, diffusivity_m2_s: Any, decorrelation_time_s: Any) -> SDE:
+def transport_sde(posterior: Any, diffusivity_m2_s: Any, decorrelation_time_s: Any, *,
+                  velocity_memory: bool = True) -> SDE:
     """The field SDE with K and τ as (possibly traced) jax scalars, no input checks (for jit/grad)."""
-    return SDE(
-        drift=jax.tree_util.Partial(_field_drift, posterior),
-        diffusion=jax.tree_util.Partial(_field_diffusion, posterior, jnp.asarray(diffusivity_m2_s, jnp.float64),
-                                        jnp.asarray(decorrelation_time_s, jnp.float64)),
-    )
+    return _field_sde(posterior, jnp.asarray(diffusivity_m2_s, jnp.float64),
+                      jnp.asarray(decorrelation_time_s, jnp.float64), velocity_memory)
 
 
 @dataclass(frozen=True)
@@ -313,38 +355,85 @@ def _mean_log_likelihood(means, covs, observed, obs_var, weight):
     return jnp.sum(jnp.where(weight > 0, logp, 0.0) * weight) / jnp.sum(weight)
 
 
-# ----- route 1: linearized moments, P = K A + τ B + C
-def _constant_diffusion(rate_m2_s: jax.Array, x: jax.Array) -> jax.Array:
-    """D(x) = rate · I (m²/s), independent of x."""
-    return rate_m2_s * jnp.eye(x.shape[-1], dtype=x.dtype)
+# ----- route 1: linearized moments along a fixed mean path (Linearize + RK4)
+_RK4_STAGE_FRACTIONS = np.array([0.0, 0.5, 0.5, 1.0])
 
 
-def linearized_parts(posterior: Any, trans: Transitions, position_error_m: float, integrator: Any):
-    """(means (R, L, d), A, B, C (R, L, d, d)) with P(K, τ) = K A + τ B + C under Linearize().
+def rk4_substeps(times_s: np.ndarray, step_s: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(h (S,), age at each substep's start (S,), index of the substep ending at each output (T−1,)).
 
-    Three propagate_batch runs along the same linearized mean path: D = 2I and D = 2Σ from a
-    point release, and D = 0 from the fix's error σ² I (only the second evaluates Σ).
+    The grid of moments.RK4: every output interval cut into ceil(Δt/step_s) equal substeps.
     """
-    from .moments import Linearize, propagate_batch
+    spans = np.diff(np.asarray(times_s, dtype=float))
+    counts = np.maximum(1, np.ceil(spans / float(step_s) * (1.0 - 1e-12))).astype(int)
+    hs = np.repeat(spans / counts, counts)
+    ages = np.concatenate([[0.0], np.cumsum(hs)[:-1]])
+    return hs, ages, np.cumsum(counts) - 1
 
-    r, d = trans.start_m.shape
-    drift = jax.tree_util.Partial(_field_drift, posterior)
-    zero = np.zeros((r, d, d))
-    fix = np.broadcast_to(position_error_m**2 * np.eye(d), (r, d, d))
-    runs = []
-    for sde, p0 in ((SDE(drift, jax.tree_util.Partial(_constant_diffusion, jnp.asarray(2.0))), zero),
-                    (transport_sde(posterior, 0.0, 1.0), zero),
-                    (SDE(drift, jax.tree_util.Partial(_constant_diffusion, jnp.asarray(0.0))), fix)):
-        runs.append(propagate_batch(sde, trans.start_m, p0, trans.times_s, method=Linearize(),
-                                    integrator=integrator, chunk=min(r, 1024)))
-    return (runs[0][0][:, 1:],) + tuple(run[1][:, 1:] for run in runs)
+
+def linearized_path(posterior: Any, starts_m: Any, hs: np.ndarray, chunk: int = 256):
+    """RK4 mean paths from ``starts_m`` (R, d) and, at every stage, J = ∂μ/∂x and Σ.
+
+    Returns (means (R, S, d) after each substep, jac (R, S, 4, d, d) s⁻¹, sigma (R, S, 4, d, d)
+    m²/s²) for substeps ``hs`` (S,) s; the stage states are those of the joint RK4 step.
+    """
+    mu = jax.tree_util.Partial(_field_drift, posterior)
+
+    def one(x0):
+        def step(x, h):
+            k1 = mu(x)
+            x2 = x + 0.5 * h * k1
+            k2 = mu(x2)
+            x3 = x + 0.5 * h * k2
+            k3 = mu(x3)
+            x4 = x + h * k3
+            stages = jnp.stack([x, x2, x3, x4])
+            x_new = x + (h / 6.0) * (k1 + 2.0 * k2 + 2.0 * k3 + mu(x4))
+            return x_new, (x_new, jax.vmap(jax.jacfwd(mu))(stages), jax.vmap(posterior.cov_at)(stages))
+
+        return jax.lax.scan(step, x0, hs)[1]
+
+    starts = jnp.asarray(starts_m)
+    return jax.lax.map(one, starts, batch_size=min(int(chunk), starts.shape[0]))
+
+
+_linearized_path_jit = jax.jit(linearized_path, static_argnames=("chunk",))
+
+
+def linearized_covariances(log_k: jax.Array, log_tau: jax.Array, jac: jax.Array, sigma: jax.Array,
+                           hs: jax.Array, ages: jax.Array, cov0: jax.Array) -> jax.Array:
+    """Covariances (R, S, d, d) m² after each substep for K = e^{log_k}, τ = e^{log_tau}.
+
+    RK4 on dP/dt = J P + P Jᵀ + 2(K I + τ(1 − e^{−a/τ}) Σ) with the stage values of
+    :func:`linearized_path`; cov0 (R, d, d) at age 0.
+    """
+    k, tau = jnp.exp(log_k), jnp.exp(log_tau)
+    eye = jnp.eye(cov0.shape[-1], dtype=cov0.dtype)
+    weights = _velocity_memory_weight(tau, ages[:, None] + hs[:, None] * _RK4_STAGE_FRACTIONS)   # (S, 4)
+
+    def step(p, inputs):
+        jac_s, sigma_s, h, w = inputs                       # (R, 4, d, d), (R, 4, d, d), (), (4,)
+
+        def rate(q, i):
+            jq = jac_s[:, i] @ q
+            return jq + jnp.swapaxes(jq, -1, -2) + 2.0 * (k * eye + w[i] * sigma_s[:, i])
+
+        k1 = rate(p, 0)
+        k2 = rate(p + 0.5 * h * k1, 1)
+        k3 = rate(p + 0.5 * h * k2, 2)
+        p = p + (h / 6.0) * (k1 + 2.0 * k2 + 2.0 * k3 + rate(p + h * k3, 3))
+        return p, p
+
+    _, covs = jax.lax.scan(step, cov0, (jnp.swapaxes(jac, 0, 1), jnp.swapaxes(sigma, 0, 1), hs, weights))
+    return jnp.swapaxes(covs, 0, 1)
 
 
 @jax.jit
-def _parts_value_and_grad(theta, means, a, b, c, observed, obs_var, weight):
-    """(−mean log likelihood, gradient) in θ = (log K, log τ) for P = e^θ₀ A + e^θ₁ B + C (reverse mode)."""
+def _path_value_and_grad(theta, means, jac, sigma, hs, ages, cov0, out_index, observed, obs_var, weight):
+    """(−mean log likelihood, gradient) in θ = (log K, log τ) by the covariance-only RK4 (reverse mode)."""
     def f(th):
-        return -_mean_log_likelihood(means, jnp.exp(th[0]) * a + jnp.exp(th[1]) * b + c, observed, obs_var, weight)
+        covs = linearized_covariances(th[0], th[1], jac, sigma, hs, ages, cov0)[:, out_index]
+        return -_mean_log_likelihood(means, covs, observed, obs_var, weight)
 
     return jax.value_and_grad(f)(theta)
 
@@ -379,18 +468,23 @@ def _value_and_grad(theta, posterior, method, integrator, chunk, means0, covs0, 
 
 
 def _objective(field: Any, trans: Transitions, sigma: float, method: Any, integrator: Any, chunk: int):
-    """θ ↦ (value, gradient) as floats/numpy for scipy, by route 1 (Linearize) or route 2."""
-    from .moments import Linearize
+    """θ ↦ (value, gradient) as floats/numpy for scipy, by route 1 (Linearize + RK4) or route 2."""
+    from .moments import RK4, Linearize
 
     posterior = _posterior_of(field)
     data = (jnp.asarray(trans.observed_m), jnp.asarray(trans.obs_var_m2), jnp.asarray(trans.weight))
-    if isinstance(method, Linearize):
-        parts = linearized_parts(posterior, trans, sigma, integrator)
+    r, d = trans.start_m.shape
+    if isinstance(method, Linearize) and isinstance(integrator, RK4):
+        hs, ages, out_index = rk4_substeps(trans.times_s, float(integrator.step_s))
+        hs_j = jnp.asarray(hs)
+        means, jac, sig = _linearized_path_jit(posterior, jnp.asarray(trans.start_m), hs_j, chunk=min(r, 256))
+        out = jnp.asarray(out_index)
+        cov0 = jnp.asarray(np.broadcast_to(sigma**2 * np.eye(d), (r, d, d)))
+        parts = (means[:, out], jac, sig, hs_j, jnp.asarray(ages), cov0, out)
 
         def evaluate(theta):
-            return _parts_value_and_grad(jnp.asarray(theta), *parts, *data)
+            return _path_value_and_grad(jnp.asarray(theta), *parts, *data)
     else:
-        r, d = trans.start_m.shape
         covs0 = jnp.asarray(np.broadcast_to(sigma**2 * np.eye(d), (r, d, d)))
         args = (posterior, method, integrator, int(min(chunk, r)), jnp.asarray(trans.start_m), covs0,
                 jnp.asarray(trans.times_s))

@@ -363,7 +363,7 @@ def forecast_moments(field, win: Windows, *, method: str = "cubature", position_
     """Forecast means (R, T, d) and covariances (R, T, d, d) from every start in ONE batched call.
 
     Each start is the fix itself with the fix's error as release uncertainty, N(x_start, σ² I);
-    the SDE is the field's (μ = posterior mean, D = 2(K I + τ Σ)), propagated by
+    the SDE is the field's (μ = posterior mean, D = 2(K I + τ(1 − e^{−a/τ}) Σ)), propagated by
     ``moments.propagate_batch`` with the named moment ``method`` and RK4 steps of at most
     ``step_s`` (s; 30 min is ample for flows whose Lagrangian time scale is hours).
     """

@@ -268,7 +268,7 @@ def spread_from_field(field: Any, releases: Any, times_s: Any, *, method: str = 
                       diffusivity_m2_s: float | None = None, decorrelation_time_s: float | None = None,
                       seed: int = 0, gauss_hermite_order: int = 3, polygon_m: Any = None,
                       threshold: float | None = None) -> Spread:
-    """Forecast releases in a fitted FlowField: SDE μ = posterior mean, D = 2(K I + τ Σ) (sde.sde_from_field).
+    """Forecast releases in a fitted FlowField: SDE μ = posterior mean, D = 2(K I + τ(1 − e^{−a/τ}) Σ) at release age a (sde.sde_from_field).
 
     ``method`` is one of METHODS ("cubature" default); ``step_s`` the RK4 step (default 600 s) or the
     Euler–Maruyama step (default 60 s) for ``"ensemble"`` with ``particles``; K and τ default to the
