@@ -347,19 +347,15 @@ Integrator = RK4 | Dopri5
 def _propagate_one(sde: SDE, method: Method, integrator: Integrator, mean0, cov0, times_s):
     """Means (T, d) and covariances (T, d, d) of one release (traceable)."""
     d = mean0.shape[-1]
-    y0 = jnp.concatenate([mean0, (0.5 * (cov0 + cov0.T)).ravel()])
-    if sde.with_age:  # the time since release rides along as one more state, d(age)/dt = 1
-        def f(y):
-            dm, dp = moment_rates(method, sde, y[:d], y[d:-1].reshape(d, d), y[-1])
-            return jnp.concatenate([dm, dp.ravel(), jnp.ones(1, dtype=y.dtype)])
+    n = d + d * d
+    age = [jnp.zeros(1, dtype=mean0.dtype)] if sde.with_age else []  # time since release rides along: d(age)/dt = 1
 
-        ys = integrator.integrate(f, jnp.concatenate([y0, jnp.zeros(1, dtype=y0.dtype)]), times_s)[:, :-1]
-    else:
-        def f(y):
-            dm, dp = moment_rates(method, sde, y[:d], y[d:].reshape(d, d))
-            return jnp.concatenate([dm, dp.ravel()])
+    def f(y):
+        dm, dp = moment_rates(method, sde, y[:d], y[d:n].reshape(d, d), y[n] if sde.with_age else 0.0)
+        return jnp.concatenate([dm, dp.ravel()] + [jnp.ones_like(a) for a in age])
 
-        ys = integrator.integrate(f, y0, times_s)
+    y0 = jnp.concatenate([mean0, (0.5 * (cov0 + cov0.T)).ravel()] + age)
+    ys = integrator.integrate(f, y0, times_s)[:, :n]
     return ys[:, :d], ys[:, d:].reshape(-1, d, d)
 
 

@@ -145,19 +145,15 @@ def _field_diffusion_with_age(
     age_s: jax.Array,
 ) -> jax.Array:
     """D(x, a) = 2 (K I + τ (1 − e^{−a/τ}) Σ(x)); x (d,) m, a s since release -> (d, d) m²/s."""
-    sigma = posterior.cov_at(x)
-    eye = jnp.eye(x.shape[-1], dtype=sigma.dtype)
-    return 2.0 * (diffusivity_m2_s * eye + _velocity_memory_weight(decorrelation_time_s, age_s) * sigma)
+    return _field_diffusion(posterior, diffusivity_m2_s, _velocity_memory_weight(decorrelation_time_s, age_s), x)
 
 
 def _field_sde(posterior: Any, diffusivity_m2_s: jax.Array, decorrelation_time_s: jax.Array,
                velocity_memory: bool) -> SDE:
-    if velocity_memory:
-        return SDE(drift=jax.tree_util.Partial(_field_drift, posterior),
-                   diffusion=jax.tree_util.Partial(_field_diffusion_with_age, posterior, diffusivity_m2_s,
-                                                   decorrelation_time_s), with_age=True)
+    diffusion = _field_diffusion_with_age if velocity_memory else _field_diffusion
     return SDE(drift=jax.tree_util.Partial(_field_drift, posterior),
-               diffusion=jax.tree_util.Partial(_field_diffusion, posterior, diffusivity_m2_s, decorrelation_time_s))
+               diffusion=jax.tree_util.Partial(diffusion, posterior, diffusivity_m2_s, decorrelation_time_s),
+               with_age=bool(velocity_memory))
 
 
 def _check_nonnegative(value: Any, name: str) -> jax.Array:
@@ -364,8 +360,10 @@ def rk4_substeps(times_s: np.ndarray, step_s: float) -> tuple[np.ndarray, np.nda
 
     The grid of moments.RK4: every output interval cut into ceil(Δt/step_s) equal substeps.
     """
+    from .moments import _substeps
+
     spans = np.diff(np.asarray(times_s, dtype=float))
-    counts = np.maximum(1, np.ceil(spans / float(step_s) * (1.0 - 1e-12))).astype(int)
+    counts = np.asarray(_substeps(jnp.asarray(spans), float(step_s)), dtype=int)
     hs = np.repeat(spans / counts, counts)
     ages = np.concatenate([[0.0], np.cumsum(hs)[:-1]])
     return hs, ages, np.cumsum(counts) - 1

@@ -185,7 +185,7 @@ def main():
         rows += part_schedules()
     if "exact" in parts:
         rows += part_exact()
-    rows.append((f"load average at end", f"{os.getloadavg()[0]:.1f}", "other processes share the cores"))
+    rows.append(("load average at end", f"{os.getloadavg()[0]:.1f}", "other processes share the cores"))
 
     width = max(len(r[0]) for r in rows)
     print()
