@@ -142,3 +142,23 @@ def test_baseline_variance_from_fit_tracks():
     var = skill.baseline_error_variance_m2(_tracks(rows), [3600.0, 7200.0])
     np.testing.assert_allclose(var["persistence"], [0.0, 0.0], rtol=0, atol=1e-18)
     np.testing.assert_allclose(var["no_motion"], [(100**2 + 50**2) / 2, 4 * (100**2 + 50**2) / 2], rtol=1e-12, atol=0)
+
+
+# ------------------------------------------------------------------ coverage precision
+def test_clustered_coverage_se_equal_clusters_is_se_of_cluster_means():
+    # For equal cluster sizes the ratio-estimator variance (Cochran 1977, Sampling Techniques,
+    # ch. 6, from memory) reduces to the textbook s²/T of the T per-cluster fractions (numpy).
+    rng = np.random.default_rng(3)
+    inside = rng.uniform(size=(7, 12)) < rng.uniform(0.5, 1.0, (7, 1))
+    cluster = np.repeat(np.arange(7), 12)
+    expected = np.std(inside.mean(axis=1), ddof=1) / np.sqrt(7)
+    assert skill.clustered_coverage_se(inside.ravel(), cluster) == pytest.approx(expected, rel=1e-12)
+
+
+def test_clustered_coverage_se_unequal_clusters_by_hand():
+    # Clusters (n, h) = (2, 2), (4, 1): p = 3/6 = 0.5; residuals h − p n = 1, −1;
+    # variance = 2/1 · (1 + 1) / 6² = 4/36, so SE = 1/3 (arithmetic written out).
+    inside = np.array([1, 1, 1, 0, 0, 0], bool)
+    cluster = np.array(["a", "a", "b", "b", "b", "b"])
+    assert skill.clustered_coverage_se(inside, cluster) == pytest.approx(1.0 / 3.0, rel=1e-12)
+    assert np.isnan(skill.clustered_coverage_se(inside, np.zeros(6)))  # one track: undefined

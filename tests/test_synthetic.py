@@ -196,7 +196,7 @@ def test_demo_data_is_small_clean_and_split_by_track():
     with warnings.catch_warnings():
         warnings.simplefilter("error")
         fit, holdout = read_tracks(DEMO / "bay_fit.csv"), read_tracks(DEMO / "bay_holdout.csv")
-    assert (fit.n_tracks, holdout.n_tracks) == (40, 10) and fit.n_fixes >= 2500 and holdout.n_fixes >= 600
+    assert (fit.n_tracks, holdout.n_tracks) == (40, 30) and fit.n_fixes >= 2500 and holdout.n_fixes >= 2000
     assert not set(fit.unique_ids) & set(holdout.unique_ids)
     assert fit.time_is_absolute and fit.frame.kind == "lonlat" and fit.qc == ()
     readme = (DEMO / "README.md").read_text()

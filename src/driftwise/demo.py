@@ -61,7 +61,7 @@ class DemoSettings:
     threshold: float = 0.1
     grid_cells_across: int = 40
     skill_horizons_s: tuple[float, ...] = (6 * HOUR_S, 12 * HOUR_S, 24 * HOUR_S)
-    max_skill_starts: int | None = 200
+    max_skill_starts: int | None = 720
     calibration_starts: int = 100
     seed: int = 0
 
@@ -481,18 +481,21 @@ def step_score(job: Job) -> str:
     if hasattr(skill, "write_score_csv"):
         skill.write_score_csv(result, job.out / "skill.csv")
         job.add_file(job.out / "skill.csv", "the same scores as a table (CSV)")
-    from .plots import plot_skill_coverage
+    from .plots import coverage_se_of, plot_skill_coverage
 
     base = {name: {k: b[k] for k in ("skill", "separation_m") if k in b} for name, b in result["baselines"].items()}
     job.add_figure(plot_skill_coverage(result["horizons_s"], skill=result["skill"], separation_m=result["separation_m"],
                                        coverage_50=result["coverage_50"], coverage_95=result["coverage_95"],
-                                       baselines=base, n_forecasts=result.get("n_pairs")),
+                                       baselines=base, n_forecasts=result.get("n_pairs"),
+                                       coverage_se=coverage_se_of(result)),
                    "skill.png", "Skill, median separation and ellipse coverage on the held-out tracks, against "
-                   "persistence and no-motion baselines; shaded: 95 % Wilson intervals of the coverage.", "skill")
+                   "persistence and no-motion baselines; shaded: ±1.96 standard errors of the coverage with the "
+                   "forecast starts clustered by track.", "skill")
     k = len(result["horizons_s"]) - 1
+    se = result.get("coverage_95_se", [float("nan")] * (k + 1))[k]
     return (f"{result['horizons_s'][k] / HOUR_S:g} h: skill {result['skill'][k]:.2f} "
             f"(persistence {result['baselines']['persistence']['skill'][k]:.2f}), "
-            f"95 % coverage {result['coverage_95'][k]:.2f}")
+            f"95 % coverage {result['coverage_95'][k]:.2f} ± {se:.2f}")
 
 
 # ----------------------------------------------------------------- JSON

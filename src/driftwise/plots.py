@@ -49,6 +49,7 @@ GREYS = ("0.0", "0.35", "0.55", "0.2")
 
 __all__ = [
     "save_figure",
+    "coverage_se_of",
     "velocity_sd_m_s",
     "ellipse_xy_m",
     "wilson_interval",
@@ -436,14 +437,17 @@ def plot_area_probability(curves: Sequence[Mapping[str, Any]], *, area_label: st
 def plot_skill_coverage(horizons_s: Sequence[float], *, skill: Sequence[float], separation_m: Sequence[float],
                         coverage_50: Sequence[float], coverage_95: Sequence[float],
                         baselines: Mapping[str, Mapping[str, Sequence[float]]] | None = None,
-                        n_forecasts: Sequence[int] | None = None) -> Figure:
+                        n_forecasts: Sequence[int] | None = None,
+                        coverage_se: tuple[Sequence[float], Sequence[float]] | None = None) -> Figure:
     """Skill, separation and ellipse coverage against forecast horizon, with baselines.
 
     ``skill`` is the Liu & Weisberg (2011) score (1 perfect, 0 no skill),
     ``separation_m`` the median separation (m), ``coverage_*`` the fraction of
     observed end points inside the 50 %/95 % ellipses.  ``baselines`` maps a
     name (e.g. "persistence") to ``{"skill", "separation_m"}``.  With
-    ``n_forecasts`` the coverage carries Wilson 95 % intervals.
+    ``coverage_se`` = (standard errors of the 50 % and of the 95 % coverage, e.g. clustered by
+    track) the coverage carries ±1.96 SE bands; otherwise, with ``n_forecasts``, Wilson 95 %
+    intervals (which treat the forecasts as independent: too narrow when starts share a track).
     """
     h = np.asarray(horizons_s, float) / 3600.0
     fig, (ax_s, ax_d, ax_c) = new_figure(3, height_in=3.5, width_in=WIDTH_IN + 1.2)
@@ -461,7 +465,7 @@ def plot_skill_coverage(horizons_s: Sequence[float], *, skill: Sequence[float], 
     ax_s.set_ylim(-0.03, 1.0)
     ax_d.set_ylabel("median separation (km)")
     ax_d.set_ylim(bottom=0.0)
-    _coverage_panel(ax_c, h, coverage_50, coverage_95, n_forecasts)
+    _coverage_panel(ax_c, h, coverage_50, coverage_95, n_forecasts, coverage_se)
     for ax, title in zip((ax_s, ax_d, ax_c), ("(a) skill", "(b) separation", "(c) calibration")):
         ax.set_xlabel("forecast horizon (h)")
         ax.set_title(title, loc="left")
@@ -474,12 +478,16 @@ def plot_skill_coverage(horizons_s: Sequence[float], *, skill: Sequence[float], 
 
 
 def _coverage_panel(ax: Any, h: np.ndarray, cov50: Sequence[float], cov95: Sequence[float],
-                    n: Sequence[int] | None) -> None:
-    for nominal, values, marker, style in ((0.5, cov50, "o", "-"), (0.95, cov95, "s", "--")):
+                    n: Sequence[int] | None, se: tuple[Sequence[float], Sequence[float]] | None = None) -> None:
+    for i, (nominal, values, marker, style) in enumerate(((0.5, cov50, "o", "-"), (0.95, cov95, "s", "--"))):
         values = np.asarray(values, float)
         ax.axhline(nominal, color="0.6", linestyle=":", linewidth=1.0)
         ax.plot(h, values, color="0.1", marker=marker, linestyle=style, label=f"{nominal:.0%} ellipse")
-        if n is not None:
+        if se is not None:
+            half = 1.959964 * np.asarray(se[i], float)
+            ax.fill_between(h, np.clip(values - half, 0, 1), np.clip(values + half, 0, 1), color="0.5", alpha=0.2,
+                            linewidth=0)
+        elif n is not None:
             lo, hi = wilson_interval(np.round(values * np.asarray(n, float)), np.asarray(n, float))
             ax.fill_between(h, lo, hi, color="0.5", alpha=0.2, linewidth=0)
     ax.set_ylim(0.0, 1.02)
@@ -539,8 +547,17 @@ def plot_skill(result: Mapping[str, Any], path: str | os.PathLike) -> Path:
                  for name, b in result["baselines"].items()}
     fig = plot_skill_coverage(result["horizons_s"], skill=result["skill"], separation_m=result["separation_m"],
                               coverage_50=result["coverage_50"], coverage_95=result["coverage_95"],
-                              baselines=baselines, n_forecasts=result.get("n_pairs"))
+                              baselines=baselines, n_forecasts=result.get("n_pairs"),
+                              coverage_se=coverage_se_of(result))
     return save_figure(fig, path)
+
+
+def coverage_se_of(result: Mapping[str, Any]) -> tuple[list[float], list[float]] | None:
+    """(50 %, 95 %) coverage standard errors of a ``skill.score`` result, or None when it has none."""
+    if "coverage_50_se" not in result or "coverage_95_se" not in result:
+        return None
+    return ([np.nan if v is None else v for v in result["coverage_50_se"]],
+            [np.nan if v is None else v for v in result["coverage_95_se"]])
 
 
 # ----------------------------------------------------------------- physics: from a check result (physics.py)

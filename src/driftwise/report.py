@@ -320,7 +320,7 @@ def _spread(scenarios: Sequence[Mapping[str, Any]]) -> str:
 _SKILL_COLUMNS = (("n_pairs", "forecasts (–)"), ("separation_m", "median separation (m)"),
                   ("separation_p90_m", "90th pct separation (m)"), ("skill", "Liu–Weisberg skill (–)"),
                   ("coverage_50", "50 % coverage (–)"), ("coverage_95", "95 % coverage (–)"),
-                  ("log_score", "log score (nats)"))
+                  ("coverage_95_se", "95 % coverage, standard error by track (–)"), ("log_score", "log score (nats)"))
 
 
 def _skill(skill: Mapping[str, Any]) -> str:
@@ -334,7 +334,8 @@ def _skill(skill: Mapping[str, Any]) -> str:
     parts = [grid_table(["forecast", "horizon (h)"] + [n for _, n in cols], rows)]
     parts.append("<p>Skill: 1 is perfect, 0 no better than the observed track length (Liu &amp; Weisberg 2011). "
                  "Coverage: the share of observed positions inside the forecast 50 % and 95 % ellipses; "
-                 "a calibrated forecast is close to 0.50 and 0.95, lower means the spread is too narrow.</p>")
+                 "a calibrated forecast is close to 0.50 and 0.95, lower means the spread is too narrow. Its "
+                 "standard error counts the starts on one track as one correlated cluster.</p>")
     parts += [f"<p>{_e(n)}</p>" for n in skill.get("notes", [])]
     return "".join(parts)
 

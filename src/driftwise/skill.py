@@ -40,7 +40,8 @@ from .io import atomic_write
 
 DEFAULT_HORIZONS_S = (6 * 3600.0, 12 * 3600.0, 24 * 3600.0)
 COVERAGE_LEVELS = (0.50, 0.95)
-SCORE_KEYS = ("n_pairs", "separation_m", "separation_p90_m", "skill", "coverage_50", "coverage_95", "log_score")
+SCORE_KEYS = ("n_pairs", "separation_m", "separation_p90_m", "skill", "coverage_50", "coverage_95", "log_score",
+              "coverage_50_se", "coverage_95_se")
 
 
 # ------------------------------------------------------------------ scores on arrays
@@ -95,6 +96,27 @@ def coverage(maha2: np.ndarray, level: float, dim: int) -> float:
     if maha2.size == 0:
         return float("nan")
     return float(np.mean(maha2 <= chi2.ppf(level, dim)))
+
+
+def clustered_coverage_se(inside: np.ndarray, cluster: np.ndarray) -> float:
+    """Standard error of a pooled coverage fraction whose pairs come in correlated clusters (tracks).
+
+    Starts on one track share most of their future path, so their hits are far from
+    independent and the binomial √(p(1−p)/n) is much too small.  With clusters t = 1..T
+    holding n_t pairs and h_t hits, p = Σh_t / Σn_t and the linearised (ratio-estimator)
+    variance is  T/(T−1) · Σ_t (h_t − p n_t)² / (Σ_t n_t)²  (Cochran 1977, Sampling
+    Techniques, ch. 6, ratio estimators, from memory; for equal n_t it is the squared standard
+    error of the mean of the per-cluster fractions).  NaN with fewer than two clusters.
+    """
+    inside = np.asarray(inside, bool)
+    labels, index = np.unique(np.asarray(cluster), return_inverse=True)
+    if labels.size < 2 or inside.size == 0:
+        return float("nan")
+    n_t = np.bincount(index, minlength=labels.size).astype(float)
+    h_t = np.bincount(index, weights=inside.astype(float), minlength=labels.size)
+    p = h_t.sum() / n_t.sum()
+    t = labels.size
+    return float(np.sqrt(t / (t - 1) * np.sum((h_t - p * n_t) ** 2)) / n_t.sum())
 
 
 # ------------------------------------------------------------------ forecast windows
@@ -247,12 +269,13 @@ def summarise(win: Windows, mean_m: np.ndarray, horizons_s, cov_m2: np.ndarray |
         skill = lw[v, k]
         out["skill"].append(float(np.mean(skill[np.isfinite(skill)])) if np.isfinite(skill).any() else float("nan"))
         if cov_m2 is None or d.size == 0:
-            for key in ("coverage_50", "coverage_95", "log_score"):
+            for key in ("coverage_50", "coverage_95", "log_score", "coverage_50_se", "coverage_95_se"):
                 out[key].append(float("nan"))
             continue
         maha2, logp = gaussian_scores(mean_m[v, k], cov_m2[v, k], win.observed_m[v, k])
-        out["coverage_50"].append(coverage(maha2, 0.50, dim))
-        out["coverage_95"].append(coverage(maha2, 0.95, dim))
+        for level, key in ((0.50, "coverage_50"), (0.95, "coverage_95")):
+            out[key].append(coverage(maha2, level, dim))
+            out[f"{key}_se"].append(clustered_coverage_se(maha2 <= chi2.ppf(level, dim), win.track_index[v]))
         out["log_score"].append(float(np.mean(logp)))
     return out
 
@@ -295,10 +318,18 @@ def _fmt(value: float, spec: str) -> str:
     return "—" if value is None or not np.isfinite(value) else format(value, spec)
 
 
+def _coverage_cell(scores: dict[str, Any], key: str, k: int) -> str:
+    """'0.814 ± 0.056' (13 characters), or the value alone when the standard error is undefined."""
+    se = scores.get(f"{key}_se", [float("nan")] * (k + 1))[k]
+    if se is None or not np.isfinite(se):
+        return f"{_fmt(scores[key][k], '7.3f'):>13}"
+    return f"{_fmt(scores[key][k], '5.3f')} ± {se:5.3f}"
+
+
 def format_score_table(result: dict[str, Any]) -> str:
     """The readable table the command line prints: one block per horizon, one row per forecast."""
     head = (f"{'horizon':>8}  {'forecast':<12}{'pairs':>6}  {'sep median':>11}  {'sep p90':>9}  "
-            f"{'skill':>6}  {'cov 50%':>7}  {'cov 95%':>7}  {'log score':>9}")
+            f"{'skill':>6}  {'cov 50%':>13}  {'cov 95%':>13}  {'log score':>9}")
     lines = [head, "-" * len(head)]
     for name, k, s in _rows(result):
         hours = result["horizons_s"][k] / 3600.0
@@ -306,22 +337,24 @@ def format_score_table(result: dict[str, Any]) -> str:
         lines.append(
             f"{label:>8}  {_LABELS[name]:<12}{s['n_pairs'][k]:>6d}  {_fmt(s['separation_m'][k], '9.0f')} m  "
             f"{_fmt(s['separation_p90_m'][k], '7.0f')} m  {_fmt(s['skill'][k], '6.3f')}  "
-            f"{_fmt(s['coverage_50'][k], '7.3f')}  {_fmt(s['coverage_95'][k], '7.3f')}  "
+            f"{_coverage_cell(s, 'coverage_50', k)}  {_coverage_cell(s, 'coverage_95', k)}  "
             f"{_fmt(s['log_score'][k], '9.2f')}")
     lines.append("sep: distance between forecast and observed position; skill: Liu & Weisberg (2011), 1 = perfect, "
                  "0 = no skill; cov: fraction of observed positions inside the forecast's 50 %/95 % ellipse "
-                 "(ideal 0.50/0.95); log score: mean Gaussian log density, nats (higher is better).")
+                 "(ideal 0.50/0.95), ± its standard error with the starts clustered by track; "
+                 "log score: mean Gaussian log density, nats (higher is better).")
     lines.extend(result.get("notes", []))
     return "\n".join(lines)
 
 
 CSV_COLUMNS = ("forecast", "horizon_s", "n_pairs", "separation_median_m", "separation_p90_m", "skill",
-               "coverage_50", "coverage_95", "log_score_nats")
+               "coverage_50", "coverage_95", "log_score_nats", "coverage_50_se", "coverage_95_se")
 
 
 def write_score_csv(result: dict[str, Any], path) -> None:
     """One row per (forecast, horizon); empty cells where a score is undefined.  Atomic write."""
-    keys = ("n_pairs", "separation_m", "separation_p90_m", "skill", "coverage_50", "coverage_95", "log_score")
+    keys = ("n_pairs", "separation_m", "separation_p90_m", "skill", "coverage_50", "coverage_95", "log_score",
+            "coverage_50_se", "coverage_95_se")
     lines = [",".join(CSV_COLUMNS)]
     for name, k, s in _rows(result):
         cells = [name, repr(float(result["horizons_s"][k]))]
@@ -399,8 +432,9 @@ def score(field, holdout_tracks, *, horizons_s=DEFAULT_HORIZONS_S, method: str =
     Liu–Weisberg sums (default: the median fix interval), ``integration_step_s`` the RK4 step.
     Returns a dict with ``horizons_s`` and, per horizon, ``n_pairs``, ``separation_m``
     (median), ``separation_p90_m``, ``skill`` (Liu–Weisberg), ``coverage_50``, ``coverage_95``,
-    ``log_score`` (nats), plus ``baselines`` {``persistence``, ``no_motion``} with the same
-    keys, and ``method``, ``n_starts``, ``n_tracks``, K, τ and ``notes``.
+    ``log_score`` (nats), ``coverage_50_se``/``coverage_95_se`` (standard errors with the starts
+    clustered by track, :func:`clustered_coverage_se`), plus ``baselines``
+    {``persistence``, ``no_motion``} with the same keys, and ``method``, ``n_starts``, ``n_tracks``, K, τ and ``notes``.
     """
     horizons = np.sort(np.asarray(horizons_s, dtype=float))
     sigma = field.position_error_m if position_error_m is None else float(position_error_m)
