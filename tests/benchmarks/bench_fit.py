@@ -125,11 +125,14 @@ def exact_log_marginal(trainable, z_dummy, x, y, walk, pos_noise):
     return -0.5 * jnp.sum(alpha**2) - jnp.sum(jnp.log(jnp.diag(chol))) - 0.5 * y.size * math.log(2 * math.pi)
 
 
-def exact_gp(obs, init_params, test_x, *, max_evaluations=200):
+def exact_gp(obs, init_params, test_x, *, max_evaluations=60):
     """Exact GP: hyperparameters by L-BFGS-B (scipy) on the exact log evidence, then the posterior mean.
 
     A quasi-Newton optimiser needs far fewer evaluations than Adam on this smooth 6-parameter
-    objective, so the speed-up quoted against it is conservative.  Returns (s, mean, evaluations).
+    objective, so the speed-up quoted against it is conservative; it stops at ``max_evaluations``
+    or when an iteration improves the evidence by less than 1e-7 relative (ftol, a few 1e-3 nats
+    here), which again favours the exact GP's time.  Each evaluation (a 2N × 2N Cholesky and its
+    reverse-mode gradient) is printed as it finishes.  Returns (s, mean, evaluations).
     """
     from jax.flatten_util import ravel_pytree
     from scipy.optimize import minimize
@@ -146,11 +149,13 @@ def exact_gp(obs, init_params, test_x, *, max_evaluations=200):
     def fun(v):
         value, grad = value_and_grad(jnp.asarray(v))
         evaluations.append(float(value))
+        print(f"  exact GP evaluation {len(evaluations)}: −log evidence {float(value):.3f}, "
+              f"{time.perf_counter() - t0:.0f} s so far", flush=True)
         return float(value), np.asarray(grad, dtype=float)
 
     t0 = time.perf_counter()
     result = minimize(fun, np.asarray(flat0, dtype=float), jac=True, method="L-BFGS-B",
-                      options={"maxfun": max_evaluations, "ftol": 1e-9, "gtol": 1e-6})
+                      options={"maxfun": max_evaluations, "ftol": 1e-7, "gtol": 1e-6})
     kernel, log_k, log_floor = unravel(jnp.asarray(result.x))
     r = jnp.repeat(jnp.exp(log_k) * walk + pos_noise + jnp.exp(2 * log_floor), 2)
     chol = jnp.linalg.cholesky(kernel.gram_matrix(x, x) + jnp.diag(r))
