@@ -492,10 +492,9 @@ def step_score(job: Job) -> str:
                    "persistence and no-motion baselines; shaded: ±1.96 standard errors of the coverage with the "
                    "forecast starts clustered by track.", "skill")
     k = len(result["horizons_s"]) - 1
-    se = result.get("coverage_95_se", [float("nan")] * (k + 1))[k]
     return (f"{result['horizons_s'][k] / HOUR_S:g} h: skill {result['skill'][k]:.2f} "
             f"(persistence {result['baselines']['persistence']['skill'][k]:.2f}), "
-            f"95 % coverage {result['coverage_95'][k]:.2f} ± {se:.2f}")
+            f"95 % coverage {result['coverage_95'][k]:.2f} ± {result['coverage_95_se'][k]:.2f}")
 
 
 # ----------------------------------------------------------------- JSON

@@ -40,8 +40,8 @@ from .io import atomic_write
 
 DEFAULT_HORIZONS_S = (6 * 3600.0, 12 * 3600.0, 24 * 3600.0)
 COVERAGE_LEVELS = (0.50, 0.95)
-SCORE_KEYS = ("n_pairs", "separation_m", "separation_p90_m", "skill", "coverage_50", "coverage_95", "log_score",
-              "coverage_50_se", "coverage_95_se")
+SPREAD_KEYS = ("coverage_50", "coverage_95", "log_score", "coverage_50_se", "coverage_95_se")  # need a covariance
+SCORE_KEYS = ("n_pairs", "separation_m", "separation_p90_m", "skill") + SPREAD_KEYS
 
 
 # ------------------------------------------------------------------ scores on arrays
@@ -92,10 +92,13 @@ def gaussian_scores(mean_m: np.ndarray, cov_m2: np.ndarray, observed_m: np.ndarr
 
 def coverage(maha2: np.ndarray, level: float, dim: int) -> float:
     """Fraction of points inside the ``level`` ellipse: Mahalanobis² ≤ χ²_dim quantile."""
-    maha2 = np.asarray(maha2, float)
-    if maha2.size == 0:
-        return float("nan")
-    return float(np.mean(maha2 <= chi2.ppf(level, dim)))
+    inside = inside_ellipse(maha2, level, dim)
+    return float(np.mean(inside)) if inside.size else float("nan")
+
+
+def inside_ellipse(maha2: np.ndarray, level: float, dim: int) -> np.ndarray:
+    """Which points lie inside the ``level`` ellipse: Mahalanobis² ≤ χ²_dim quantile (bool array)."""
+    return np.asarray(maha2, float) <= chi2.ppf(level, dim)
 
 
 def clustered_coverage_se(inside: np.ndarray, cluster: np.ndarray) -> float:
@@ -269,13 +272,15 @@ def summarise(win: Windows, mean_m: np.ndarray, horizons_s, cov_m2: np.ndarray |
         skill = lw[v, k]
         out["skill"].append(float(np.mean(skill[np.isfinite(skill)])) if np.isfinite(skill).any() else float("nan"))
         if cov_m2 is None or d.size == 0:
-            for key in ("coverage_50", "coverage_95", "log_score", "coverage_50_se", "coverage_95_se"):
+            for key in SPREAD_KEYS:
                 out[key].append(float("nan"))
             continue
         maha2, logp = gaussian_scores(mean_m[v, k], cov_m2[v, k], win.observed_m[v, k])
-        for level, key in ((0.50, "coverage_50"), (0.95, "coverage_95")):
-            out[key].append(coverage(maha2, level, dim))
-            out[f"{key}_se"].append(clustered_coverage_se(maha2 <= chi2.ppf(level, dim), win.track_index[v]))
+        for level in COVERAGE_LEVELS:
+            key = f"coverage_{round(100 * level)}"
+            inside = inside_ellipse(maha2, level, dim)
+            out[key].append(float(np.mean(inside)))
+            out[f"{key}_se"].append(clustered_coverage_se(inside, win.track_index[v]))
         out["log_score"].append(float(np.mean(logp)))
     return out
 
@@ -320,7 +325,7 @@ def _fmt(value: float, spec: str) -> str:
 
 def _coverage_cell(scores: dict[str, Any], key: str, k: int) -> str:
     """'0.814 ± 0.056' (13 characters), or the value alone when the standard error is undefined."""
-    se = scores.get(f"{key}_se", [float("nan")] * (k + 1))[k]
+    se = scores[f"{key}_se"][k]
     if se is None or not np.isfinite(se):
         return f"{_fmt(scores[key][k], '7.3f'):>13}"
     return f"{_fmt(scores[key][k], '5.3f')} ± {se:5.3f}"
@@ -353,12 +358,10 @@ CSV_COLUMNS = ("forecast", "horizon_s", "n_pairs", "separation_median_m", "separ
 
 def write_score_csv(result: dict[str, Any], path) -> None:
     """One row per (forecast, horizon); empty cells where a score is undefined.  Atomic write."""
-    keys = ("n_pairs", "separation_m", "separation_p90_m", "skill", "coverage_50", "coverage_95", "log_score",
-            "coverage_50_se", "coverage_95_se")
     lines = [",".join(CSV_COLUMNS)]
     for name, k, s in _rows(result):
         cells = [name, repr(float(result["horizons_s"][k]))]
-        for key in keys:
+        for key in SCORE_KEYS:
             value = s[key][k]
             cells.append("" if value is None or not np.isfinite(value) else repr(value))
         lines.append(",".join(cells))
@@ -433,8 +436,8 @@ def score(field, holdout_tracks, *, horizons_s=DEFAULT_HORIZONS_S, method: str =
     Returns a dict with ``horizons_s`` and, per horizon, ``n_pairs``, ``separation_m``
     (median), ``separation_p90_m``, ``skill`` (Liu–Weisberg), ``coverage_50``, ``coverage_95``,
     ``log_score`` (nats), ``coverage_50_se``/``coverage_95_se`` (standard errors with the starts
-    clustered by track, :func:`clustered_coverage_se`), plus ``baselines``
-    {``persistence``, ``no_motion``} with the same keys, and ``method``, ``n_starts``, ``n_tracks``, K, τ and ``notes``.
+    clustered by track, :func:`clustered_coverage_se`), plus ``baselines`` {``persistence``,
+    ``no_motion``} with the same keys, and ``method``, ``n_starts``, ``n_tracks``, K, τ and ``notes``.
     """
     horizons = np.sort(np.asarray(horizons_s, dtype=float))
     sigma = field.position_error_m if position_error_m is None else float(position_error_m)
