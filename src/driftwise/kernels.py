@@ -2,9 +2,11 @@
 
 A vector field v: R^d → R^d (d = 2 or 3) gets a Gaussian-process prior through a
 matrix-valued kernel K(x, y) = Cov[v(x), v(y)] of shape (d, d).  Every kernel here
-is stationary, K(x, y) = K(r) with r = x − y, and writes only :meth:`block` for one
-pair of points; :class:`MatrixKernel` builds Gram matrices from it with nested
-``vmap``.
+is stationary, K(x, y) = K(r) with r = x − y, and writes only :meth:`blocks`, which
+maps separations r of shape (..., d) to blocks (..., d, d) with plain broadcasting;
+:class:`MatrixKernel` builds one pair's block and Gram matrices from it.  (Broadcasting,
+not a nested ``vmap`` of a one-pair function: XLA then fuses the whole Gram matrix into
+one elementwise loop, 2–4× faster on CPU — tests/benchmarks/bench_spread.py.)
 
 Scalar bases, with velocity scale σ (m/s), length scale ℓ (m) and s = |r|²/ℓ²:
 
@@ -158,14 +160,30 @@ class _ScalarBase:
         return jnp.exp(2.0 * self.log_velocity_scale_m_s)
 
     def _scaled_sq_distance(self, r: jax.Array) -> jax.Array:
-        return jnp.sum(r * r) / self.length_scale_m**2
+        """s = |r|²/ℓ² over the last axis of r (..., d) → (...)."""
+        return _squared_norm(r) / self.length_scale_m**2
+
+    def hessian_terms(self, r: jax.Array) -> tuple[jax.Array, jax.Array]:
+        """(α, β), each (...), with H_k(r) = α I + β r rᵀ for r (..., d) m: α = σ² a(s)/ℓ², β = σ² b(s)/ℓ⁴."""
+        a, b = self._hessian_profiles(self._scaled_sq_distance(r))
+        scale = self.variance_m2_s2 / self.length_scale_m**2
+        return scale * a, scale * b / self.length_scale_m**2
 
     def hessian(self, r: jax.Array) -> jax.Array:
-        """H_k(r) = (σ²/ℓ²) [a(s) I + b(s) r rᵀ/ℓ²], shape (d, d), units m²/s² per m²."""
-        a, b = self._hessian_profiles(self._scaled_sq_distance(r))
-        ell2 = self.length_scale_m**2
-        eye = jnp.eye(r.shape[-1], dtype=r.dtype)
-        return (self.variance_m2_s2 / ell2) * (a * eye + b * jnp.outer(r, r) / ell2)
+        """H_k(r) = (σ²/ℓ²) [a(s) I + b(s) r rᵀ/ℓ²] for r (..., d) m → (..., d, d), units m²/s² per m²."""
+        alpha, beta = self.hessian_terms(r)
+        return _identity_plus_outer(alpha, beta, r)
+
+
+def _squared_norm(r: jax.Array) -> jax.Array:
+    """|r|² over the last (short) axis, unrolled so that XLA fuses it with what follows."""
+    return sum(r[..., i] * r[..., i] for i in range(r.shape[-1]))
+
+
+def _identity_plus_outer(alpha: jax.Array, beta: jax.Array, r: jax.Array) -> jax.Array:
+    """α I + β r rᵀ: α, β (...), r (..., d) → (..., d, d)."""
+    eye = jnp.eye(r.shape[-1], dtype=r.dtype)
+    return alpha[..., None, None] * eye + beta[..., None, None] * (r[..., :, None] * r[..., None, :])
 
 
 @jax.tree_util.register_dataclass
@@ -182,7 +200,7 @@ class SquaredExponential(_ScalarBase):
     curvature: ClassVar[float] = 1.0
 
     def value(self, r: jax.Array) -> jax.Array:
-        """k(r) for one separation r (d,) in m → scalar in m²/s²."""
+        """k(r) for separations r (..., d) in m → (...) in m²/s²."""
         return self.variance_m2_s2 * jnp.exp(-0.5 * self._scaled_sq_distance(r))
 
     @staticmethod
@@ -205,7 +223,7 @@ class Matern52(_ScalarBase):
     curvature: ClassVar[float] = 5.0 / 3.0
 
     def value(self, r: jax.Array) -> jax.Array:
-        """k(r) for one separation r (d,) in m → scalar in m²/s²."""
+        """k(r) for separations r (..., d) in m → (...) in m²/s²."""
         s = self._scaled_sq_distance(r)
         return self.variance_m2_s2 * (_one_plus_root5_exp(s) + (5.0 / 3.0) * s * _exp_root5(s))
 
@@ -222,22 +240,26 @@ BASES: dict[str, type] = {"squared-exponential": SquaredExponential, "matern52":
 # Matrix-valued kernels
 # --------------------------------------------------------------------------------------
 class MatrixKernel:
-    """Gram matrices built from a kernel's one-pair ``block(x, y) -> (d, d)``.
+    """One pair's block and Gram matrices, built from a kernel's ``blocks(r) -> (..., d, d)``.
 
     Ordering of the flattened Gram matrix: point-major, component-minor, i.e. row
     ``i·d + a`` is component a of point i (``gram(X, Y).transpose(0, 2, 1, 3)``
     reshaped to (n·d, m·d)).
     """
 
-    block: Callable[[jax.Array, jax.Array], jax.Array]
+    blocks: Callable[[jax.Array], jax.Array]
     family: str
 
     def __post_init__(self):
         _check_tag(self, "family")
 
+    def block(self, x: jax.Array, y: jax.Array) -> jax.Array:
+        """Cov[v(x), v(y)] for x, y (d,) in m → (d, d) in m²/s²."""
+        return self.blocks(x - y)
+
     def gram(self, x: jax.Array, y: jax.Array) -> jax.Array:
         """K(X, Y) blocks: X (n, d), Y (m, d) in m → (n, m, d, d) in m²/s²."""
-        return jax.vmap(jax.vmap(self.block, in_axes=(None, 0)), in_axes=(0, None))(x, y)
+        return self.blocks(x[:, None, :] - y[None, :, :])
 
     def gram_matrix(self, x: jax.Array, y: jax.Array) -> jax.Array:
         """K(X, Y) flattened point-major, component-minor: (n·d, m·d) in m²/s²."""
@@ -247,7 +269,7 @@ class MatrixKernel:
 
     def diag_blocks(self, x: jax.Array) -> jax.Array:
         """K(x_i, x_i) for each point: X (n, d) → (n, d, d), O(n d²) work."""
-        return jax.vmap(lambda p: self.block(p, p))(x)
+        return self.blocks(jnp.zeros_like(x))
 
 
 def _potential_scale(base: Base) -> jax.Array:
@@ -270,9 +292,9 @@ class CurlFree(MatrixKernel):
     base: Base
     family: str = _tag("curl-free")
 
-    def block(self, x: jax.Array, y: jax.Array) -> jax.Array:
-        """Cov[v(x), v(y)] for x, y (d,) in m → (d, d) in m²/s²."""
-        return -_potential_scale(self.base) * self.base.hessian(x - y)
+    def blocks(self, r: jax.Array) -> jax.Array:
+        """K_cf(r) for separations r (..., d) in m → (..., d, d) in m²/s²."""
+        return -_potential_scale(self.base) * self.base.hessian(r)
 
     def hyperparameters(self) -> dict[str, float]:
         """Physical hyperparameters, units in the key names."""
@@ -287,12 +309,13 @@ class DivergenceFree(MatrixKernel):
     base: Base
     family: str = _tag("divergence-free")
 
-    def block(self, x: jax.Array, y: jax.Array) -> jax.Array:
-        """Cov[v(x), v(y)] for x, y (d,) in m → (d, d) in m²/s²."""
-        d = x.shape[-1]
-        h = self.base.hessian(x - y)
+    def blocks(self, r: jax.Array) -> jax.Array:
+        """K_df(r) for separations r (..., d) in m → (..., d, d) in m²/s²."""
+        d = r.shape[-1]
+        alpha, beta = self.base.hessian_terms(r)
+        trace = d * alpha + beta * _squared_norm(r)  # tr H_k, in closed form (no reduction)
         scale = _potential_scale(self.base) / (d - 1)
-        return scale * (h - jnp.trace(h) * jnp.eye(d, dtype=h.dtype))
+        return _identity_plus_outer(scale * (alpha - trace), scale * beta, r)
 
     def hyperparameters(self) -> dict[str, float]:
         """Physical hyperparameters, units in the key names."""
@@ -307,10 +330,10 @@ class Independent(MatrixKernel):
     base: Base
     family: str = _tag("independent")
 
-    def block(self, x: jax.Array, y: jax.Array) -> jax.Array:
-        """Cov[v(x), v(y)] for x, y (d,) in m → (d, d) in m²/s²."""
-        d = x.shape[-1]
-        return self.base.value(x - y) * jnp.eye(d, dtype=x.dtype)
+    def blocks(self, r: jax.Array) -> jax.Array:
+        """k(r) I for separations r (..., d) in m → (..., d, d) in m²/s²."""
+        d = r.shape[-1]
+        return self.base.value(r)[..., None, None] * jnp.eye(d, dtype=r.dtype)
 
     def hyperparameters(self) -> dict[str, float]:
         """Physical hyperparameters, units in the key names."""
@@ -329,9 +352,9 @@ class Helmholtz(MatrixKernel):
     curl_free: CurlFree
     family: str = _tag("helmholtz")
 
-    def block(self, x: jax.Array, y: jax.Array) -> jax.Array:
-        """Cov[v(x), v(y)] for x, y (d,) in m → (d, d) in m²/s²."""
-        return self.divergence_free.block(x, y) + self.curl_free.block(x, y)
+    def blocks(self, r: jax.Array) -> jax.Array:
+        """K_df(r) + K_cf(r) for separations r (..., d) in m → (..., d, d) in m²/s²."""
+        return self.divergence_free.blocks(r) + self.curl_free.blocks(r)
 
     @property
     def parts(self) -> dict[str, MatrixKernel]:
