@@ -86,10 +86,10 @@ def test_plateau_rule():
 
 def test_auto_schedule_uses_all_data_with_exact_q_when_it_fits():
     config = fitmod._check_options("helmholtz", "squared-exponential", 16, 0, 10, 100, 0.05, 5, "auto", 0.5, 10.0)
-    small, large = fitmod._resolve(config, 400), fitmod._resolve(config, 401)
-    assert (small.batch_size, small.q_update) == (400, "natural")
+    small, large = fitmod._resolve(config, 1600), fitmod._resolve(config, 1601)   # 16 × batch 100
+    assert (small.batch_size, small.q_update) == (1600, "natural")
     assert (large.batch_size, large.q_update) == (100, "adam")
-    assert fitmod._resolve(dataclasses.replace(config, q_update="natural"), 401).q_update == "natural"
+    assert fitmod._resolve(dataclasses.replace(config, q_update="natural"), 1601).q_update == "natural"
 
 
 def test_initial_inducing_is_seeded_kmeans():
@@ -114,7 +114,7 @@ class _HardKill(BaseException):
     ("adam", _HardKill, 10),              # killed: resume from the last periodic checkpoint (every 5 steps here)
 ])
 def test_resume_after_interrupt_ends_at_the_same_elbo(tracks, tmp_path, monkeypatch, q_update, stop, saved_step):
-    options = dict(SMALL, steps=16, patience=1000, batch_size=64, q_update=q_update, seed=7)
+    options = dict(SMALL, steps=16, patience=1000, batch_size=16, q_update=q_update, seed=7)  # 288 > 16 × 16: minibatches
     monkeypatch.setattr(fitmod, "CHECKPOINT_EVERY", 5)
     straight = driftwise.fit(tracks, **options)
     checkpoint = tmp_path / "run.ckpt.npz"
@@ -140,7 +140,7 @@ def test_resume_after_interrupt_ends_at_the_same_elbo(tracks, tmp_path, monkeypa
 
 
 def test_same_seed_same_fit_and_checkpoint_mismatch_is_refused(tracks, tmp_path):
-    options = dict(SMALL, steps=6, patience=1000, batch_size=64)
+    options = dict(SMALL, steps=6, patience=1000, batch_size=16)
     a = driftwise.fit(tracks, seed=1, **options)
     b = driftwise.fit(tracks, seed=1, checkpoint=tmp_path / "c.npz", **options)
     assert a.fit_info["elbo"] == pytest.approx(b.fit_info["elbo"], rel=1e-12, abs=0.0)
