@@ -106,7 +106,7 @@ def _add_spread(sub: argparse._SubParsersAction) -> None:
         "spread", help="forecast where releases go: mean paths, covariance ellipses, probability of reaching an area",
         description="Forecast releases through the fitted flow (Itô SDE: drift = posterior mean, diffusion = "
         "2(K I + tau (1 - exp(-age/tau)) Sigma)) by Gaussian moment matching or an Euler-Maruyama ensemble. Outputs the mean path and "
-        "covariance (metres, local frame; also lon/lat for a lon/lat model) at times since each release, the 50/90/95 %% "
+        "covariance (metres, local frame; also lon/lat for a lon/lat model) at times since each release, the 50/90/95 % "
         "ellipses, and with --polygon the probability of being inside it and the first time it reaches --threshold.",
         epilog=CAUTION)
     # A western longitude such as "-3.97,47.2" is a value, not an option: widen argparse's
@@ -386,7 +386,7 @@ def _add_score(sub: argparse._SubParsersAction) -> None:
         "score", help="score forecasts on held-out tracks: separation, skill, ellipse coverage, baselines",
         description="Forecast from every fix of tracks the model never saw and compare with where they went, per "
         "horizon: median and 90th-percentile separation, Liu-Weisberg (2011) skill (1 perfect, 0 none), the "
-        "fraction of observed positions inside the forecast's 50 %% and 95 %% ellipses (calibration) and the "
+        "fraction of observed positions inside the forecast's 50 % and 95 % ellipses (calibration) and the "
         "Gaussian log score, next to persistence and no-motion baselines.", epilog=CAUTION)
     p.add_argument("model", help="model file written by `driftwise fit`")
     p.add_argument("holdout", help="tracks file NOT used in the fit (CSV, CSV.GZ, Parquet or CF-trajectory NetCDF)")
@@ -459,7 +459,7 @@ def _add_check(sub: argparse._SubParsersAction) -> None:
         "tracks with identical settings and compare their ELBO and the log likelihood of held-out tracks (whole "
         "tracks are held out). Then test divergence and vorticity on a grid inside the data hull: posterior "
         "z-scores of the Helmholtz model (its hyperparameters from the training tracks, conditioned on all "
-        "tracks), Benjamini-Hochberg correction at 5 %%. Reports the divergent share of the velocity variance "
+        "tracks), Benjamini-Hochberg correction at 5 %. Reports the divergent share of the velocity variance "
         "and a verdict with its reasons.", epilog=CAUTION)
     p.add_argument("tracks", help="CSV, CSV.GZ, Parquet or CF-trajectory NetCDF file of fixes")
     p.add_argument("--model", default=None, metavar="MODEL",
