@@ -87,9 +87,30 @@ def test_plateau_rule():
 def test_auto_schedule_uses_all_data_with_exact_q_when_it_fits():
     config = fitmod._check_options("helmholtz", "squared-exponential", 16, 0, 10, 100, 0.05, 5, "auto", 0.5, 10.0)
     small, large = fitmod._resolve(config, 1600), fitmod._resolve(config, 1601)   # 16 × batch 100
-    assert (small.batch_size, small.q_update) == (1600, "natural")
-    assert (large.batch_size, large.q_update) == (100, "adam")
-    assert fitmod._resolve(dataclasses.replace(config, q_update="natural"), 1601).q_update == "natural"
+    assert (small.batch_size, small.q_update, small.subsample) == (1600, "natural", 0)
+    assert (large.batch_size, large.q_update, large.subsample) == (1600, "natural", 1600)
+    minibatch = fitmod._resolve(dataclasses.replace(config, q_update="adam"), 1601)
+    assert (minibatch.batch_size, minibatch.q_update, minibatch.subsample) == (100, "adam", 0)
+
+
+def test_large_n_fits_hyperparameters_on_a_subsample_then_q_on_all_data(tracks):
+    """288 observations > 16 × 16: the hyperparameters are those of an all-rows fit to the 256 subsampled
+    rows, and q is then Titsias-optimal for all 288 (the returned ELBO equals the exact-q ELBO on all)."""
+    from driftwise.variational import exact_q, full_elbo
+
+    field = driftwise.fit(tracks, steps=8, patience=1000, batch_size=16, **SMALL)
+    data = fitmod._prepare(tracks, SMALL["position_error_m"])
+    assert data.n == 288 and field.fit_info["hyperparameter_rows"] == 256
+    rows = fitmod.subsample_rows(data.n, 256, 0)
+    obs = data.obs
+    subset = dataclasses.replace(obs, **{name: getattr(obs, name)[rows] for name in
+                                         ("position_m", "velocity_m_s", "dt_s", "time_s", "track_index")})
+    alone = driftwise.fit(subset, steps=8, patience=1000, batch_size=256, **SMALL)
+    np.testing.assert_allclose(field.params.kernel.divergence_free.base.log_length_scale_m,
+                               alone.params.kernel.divergence_free.base.log_length_scale_m, rtol=1e-9)
+    best = exact_q(field.params, data.batch, jitter_multiple=field.jitter_multiple)
+    assert field.fit_info["elbo"] == pytest.approx(full_elbo(best, data.batch, jitter_multiple=field.jitter_multiple),
+                                                   rel=1e-12)
 
 
 def test_initial_inducing_is_seeded_kmeans():
