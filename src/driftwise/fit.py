@@ -19,9 +19,9 @@ Schedule (``q_update="auto"``):
 * larger N: the same exact-q steps on a seeded random subsample of 16 × batch_size
   observations, whose own (unscaled) collapsed bound sets the hyperparameters; q is
   then made optimal on all N (below).  On 20 000 Taylor–Green observations (M = 256)
-  this reached ELBO 74 666.5 nats on all data, as high as all-data steps (74 666.4),
-  RMSE 0.0019 m/s, where minibatches with Adam on q stopped at 74 037 nats and
-  0.0031 m/s.
+  this reached ELBO 74 666.0 nats on all data, as high as all-data steps (74 666.4),
+  RMSE 0.0018 m/s, where minibatches with Adam on q stopped at 74 037 nats and
+  0.0031 m/s; on 100 000, 374 372 against 373 661 nats, RMSE 0.0011 against 0.0013 m/s.
 * ``q_update="adam"`` or ``"natural"`` with N > 16 × batch_size: minibatches instead
   (Hensman et al.); Adam on q(w) and the hyperparameters together, or natural-gradient
   steps of length ``natural_step`` towards each minibatch's optimum.  Both stop below
