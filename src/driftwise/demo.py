@@ -467,7 +467,7 @@ def _spread_figures(job: Job) -> None:
 
 # ----------------------------------------------------------------- 6. score
 def step_score(job: Job) -> str:
-    skill = need("skill", "score")
+    skill = need("skill", "score", "write_score_csv")
     field, s = _field(job), job.settings
     heldout = in_frame(job.state["heldout"], field.frame)
     result = skill.score(field, heldout, horizons_s=s.skill_horizons_s, max_starts=s.max_skill_starts,
@@ -478,19 +478,14 @@ def step_score(job: Job) -> str:
 
     atomic_write_text(path, json.dumps(plain(result), indent=1, allow_nan=False) + "\n")
     job.add_file(path, "forecast skill per horizon: separation, Liu–Weisberg skill, coverage, log score, baselines")
-    if hasattr(skill, "write_score_csv"):
-        skill.write_score_csv(result, job.out / "skill.csv")
-        job.add_file(job.out / "skill.csv", "the same scores as a table (CSV)")
-    from .plots import coverage_se_of, plot_skill_coverage
+    skill.write_score_csv(result, job.out / "skill.csv")
+    job.add_file(job.out / "skill.csv", "the same scores as a table (CSV)")
+    from .plots import skill_figure
 
-    base = {name: {k: b[k] for k in ("skill", "separation_m") if k in b} for name, b in result["baselines"].items()}
-    job.add_figure(plot_skill_coverage(result["horizons_s"], skill=result["skill"], separation_m=result["separation_m"],
-                                       coverage_50=result["coverage_50"], coverage_95=result["coverage_95"],
-                                       baselines=base, n_forecasts=result.get("n_pairs"),
-                                       coverage_se=coverage_se_of(result)),
-                   "skill.png", "Skill, median separation and ellipse coverage on the held-out tracks, against "
-                   "persistence and no-motion baselines; shaded: ±1.96 standard errors of the coverage with the "
-                   "forecast starts clustered by track.", "skill")
+    job.add_figure(skill_figure(result), "skill.png",
+                   "Skill, median separation and ellipse coverage on the held-out tracks, against persistence and "
+                   "no-motion baselines; shaded: ±1.96 standard errors of the coverage with the forecast starts "
+                   "clustered by track.", "skill")
     k = len(result["horizons_s"]) - 1
     return (f"{result['horizons_s'][k] / HOUR_S:g} h: skill {result['skill'][k]:.2f} "
             f"(persistence {result['baselines']['persistence']['skill'][k]:.2f}), "

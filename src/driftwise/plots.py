@@ -49,7 +49,7 @@ GREYS = ("0.0", "0.35", "0.55", "0.2")
 
 __all__ = [
     "save_figure",
-    "coverage_se_of",
+    "skill_figure",
     "velocity_sd_m_s",
     "ellipse_xy_m",
     "wilson_interval",
@@ -541,23 +541,21 @@ def plot_elbo(steps: Sequence[float], elbo: Sequence[float], *, n_observations: 
 
 
 # ----------------------------------------------------------------- skill: from a score result
-def plot_skill(result: Mapping[str, Any], path: str | os.PathLike) -> Path:
-    """Write the skill/separation/coverage figure of a ``skill.score`` result to ``path`` (PNG)."""
+def skill_figure(result: Mapping[str, Any]) -> Figure:
+    """The skill/separation/coverage figure of a ``skill.score`` result, coverage bands ±1.96 SE by track."""
     baselines = {name: {"skill": b["skill"], "separation_m": b["separation_m"]}
                  for name, b in result["baselines"].items()}
-    fig = plot_skill_coverage(result["horizons_s"], skill=result["skill"], separation_m=result["separation_m"],
-                              coverage_50=result["coverage_50"], coverage_95=result["coverage_95"],
-                              baselines=baselines, n_forecasts=result.get("n_pairs"),
-                              coverage_se=coverage_se_of(result))
-    return save_figure(fig, path)
+    se = None
+    if "coverage_50_se" in result and "coverage_95_se" in result:
+        se = tuple([np.nan if v is None else v for v in result[key]] for key in ("coverage_50_se", "coverage_95_se"))
+    return plot_skill_coverage(result["horizons_s"], skill=result["skill"], separation_m=result["separation_m"],
+                               coverage_50=result["coverage_50"], coverage_95=result["coverage_95"],
+                               baselines=baselines, n_forecasts=result.get("n_pairs"), coverage_se=se)
 
 
-def coverage_se_of(result: Mapping[str, Any]) -> tuple[list[float], list[float]] | None:
-    """(50 %, 95 %) coverage standard errors of a ``skill.score`` result, or None when it has none."""
-    if "coverage_50_se" not in result or "coverage_95_se" not in result:
-        return None
-    return ([np.nan if v is None else v for v in result["coverage_50_se"]],
-            [np.nan if v is None else v for v in result["coverage_95_se"]])
+def plot_skill(result: Mapping[str, Any], path: str | os.PathLike) -> Path:
+    """Write :func:`skill_figure` of a ``skill.score`` result to ``path`` (PNG)."""
+    return save_figure(skill_figure(result), path)
 
 
 # ----------------------------------------------------------------- physics: from a check result (physics.py)
