@@ -31,6 +31,7 @@ from ..dynamics.methods import DEFAULT_METHOD, DEFAULT_PARTICLES, METHODS
 from ..dynamics.spread import Release, as_releases, read_polygon, read_releases, spread_from_field
 from ..errors import InputError
 from ..files import CAUTION, plain
+from ..gp.background import BACKGROUNDS
 from ..gp.kernels import DEFAULT_FAMILY, KERNEL_FAMILIES
 from ..gp.modelfile import load_model, save_model
 from ..gp.schedule import Checkpoint
@@ -258,6 +259,9 @@ def _add_fit(sub: argparse._SubParsersAction) -> None:
                    + f" (default {DEFAULT_FAMILY})")
     p.add_argument("--inducing", type=int, default=None, metavar="M",
                    help="number of inducing points (default: min(256, observations/32), at least 16)")
+    p.add_argument("--background", default="linear", choices=list(BACKGROUNDS),
+                   help="background flow of the prior, learned with the field: none; uniform (a mean velocity); "
+                   "linear (a mean velocity plus divergence, rotation and strain about the data's centre; default)")
     p.add_argument("--seed", type=int, default=0, metavar="S", help="random seed (default 0)")
     p.add_argument("--position-error", default="10m", help="standard deviation of one fix per axis (default 10m)")
     p.add_argument("--max-speed", default="5m/s", help="drop fixes implying a faster speed (default 5m/s)")
@@ -288,7 +292,8 @@ def _run_fit(args: argparse.Namespace) -> int:
     checkpoint = _checkpoint_path(args.out)
     try:
         field = fit(tracks, args.kernel, inducing=args.inducing, seed=args.seed, position_error_m=position_error,
-                    checkpoint=Checkpoint(checkpoint, resume=args.resume), progress=not (args.quiet or args.json))
+                    checkpoint=Checkpoint(checkpoint, resume=args.resume), progress=not (args.quiet or args.json),
+                    background=args.background)
     except KeyboardInterrupt:
         print(f"driftwise: fit interrupted; continue with --resume (checkpoint {checkpoint})", file=sys.stderr)
         raise

@@ -434,7 +434,8 @@ def fit_summary(field: fld.FlowField) -> dict[str, Any]:
 
 def fit_report(field: fld.FlowField) -> dict[str, Any]:
     """The ``driftwise fit --json`` object: kernel, n_tracks, n_observations, elbo, hyperparameters,
-    diffusivity_m2_s, decorrelation_time_s (and its source), plus steps and convergence."""
+    diffusivity_m2_s, decorrelation_time_s (and its source), steps and convergence, and the background
+    flow's coefficients (posterior mean and s.d.)."""
     info, summary = fit_summary(field), field.data_summary
     return {"kernel": field.kernel_family, "base": field.kernel_base, "dimension": field.dim,
             "n_inducing": int(field.params.n_inducing), "n_tracks": summary.get("n_tracks"),
@@ -442,7 +443,14 @@ def fit_report(field: fld.FlowField) -> dict[str, Any]:
             "elbo_per_observation": info.get("elbo_per_observation"), "hyperparameters": field.hyperparameters,
             "diffusivity_m2_s": field.diffusivity_m2_s, "decorrelation_time_s": field.decorrelation_time_s,
             "decorrelation_time_source": info.get("decorrelation_time_source"), "steps": info.get("steps"),
-            "converged": info.get("converged"), "frame": field.frame_dict}
+            "converged": info.get("converged"), "frame": field.frame_dict, "background": _background_report(field)}
+
+
+def _background_report(field: fld.FlowField) -> dict[str, dict[str, float]]:
+    """Posterior mean and s.d. of each background coefficient (m/s or 1/s, unit in the name); {} without one."""
+    names, mean, cov = field.background_posterior()
+    std = np.sqrt(np.clip(np.diag(cov), 0.0, None))
+    return {name: {"mean": float(m), "std": float(s)} for name, m, s in zip(names, mean, std)}
 
 
 # ------------------------------------------------------------------------------ the door
@@ -505,7 +513,8 @@ def default_inducing(n_observations: int) -> int:
     return int(min(MAX_DEFAULT_INDUCING, max(16, n_observations // 32)))
 
 
-def _check_options(kernel, base, inducing, seed, schedule: Schedule, position_error_m, background) -> TrainConfig:
+def _check_options(kernel, base, inducing, seed, schedule: Schedule, position_error_m,
+                   background: str = "linear") -> TrainConfig:
     if background not in BACKGROUNDS:
         raise InputError(f"unknown background {background!r}; choose one of {', '.join(BACKGROUNDS)}")
     if kernel not in KERNEL_FAMILIES:
