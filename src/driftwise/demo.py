@@ -36,9 +36,9 @@ import numpy as np
 
 from .errors import InputError
 from .report import digest
-from .scenarios import (HOUR_S, SHELLFISH_BED, SHELLFISH_BED_M, forecast_scenarios, in_frame, outfall_share,
-                        outfall_table, plume_snapshot, site_places, sites_in_frame, snapshot_clocks, spill_table,
-                        to_frame)
+from .scenarios import (HOUR_S, SHELLFISH_BED, SHELLFISH_BED_M, forecast_scenarios, gaussian_check_notes,
+                        gaussian_checks, in_frame, outfall_share, outfall_table, plume_snapshot, site_places,
+                        sites_in_frame, snapshot_clocks, spill_table, to_frame)
 
 
 @dataclass(frozen=True)
@@ -249,7 +249,7 @@ def step_fit(job: Job) -> str:
 
         n_obs = data.get("n_observations")
         job.add_figure(plot_elbo(np.arange(1, len(history) + 1), np.asarray(history, float), n_observations=n_obs,
-                                 final_elbo=info.get("elbo")),
+                                 final_elbo=info.get("elbo"), converged=info.get("converged")),
                        "elbo.png", f"The evidence lower bound while fitting ({info.get('elbo_history_kind', '')}).",
                        "fit")
     return (f"helmholtz, M = {job.summary['fit']['n_inducing']}, K = {field.diffusivity_m2_s:.3g} m²/s, "
@@ -426,8 +426,12 @@ def step_spread(job: Job) -> str:
             path = write_spread(forecast, job.out / f"spread_{name}{suffix}")
             job.add_file(path, f"{name} forecast: means, covariances, ellipses, P(inside the shellfish bed)")
     share = outfall_share(plume.probability, times, starts)
-    job.state.update(spill=spill, plume=plume, bed=bed, share=share, times=times, starts=starts)
+    checks = gaussian_checks(field, spill, plume)
+    job.state.update(spill=spill, plume=plume, bed=bed, share=share, times=times, starts=starts, checks=checks)
     job.summary["spread"] = [spill_table(spill, s), outfall_table(plume, share, times, starts, s)]
+    for table, name, note in zip(job.summary["spread"], checks, gaussian_check_notes(checks).values()):
+        table.setdefault("alerts" if checks[name].poor else "notes", []).append(note)
+        table["gaussian_check"] = checks[name].to_dict()
     _spread_figures(job)
     arrival = spill.first_arrival_s[0]
     return (f"spill P(bed) max {spill.probability[0].max():.2f}, first ≥ {s.threshold:g} "
@@ -446,21 +450,29 @@ def _spread_figures(job: Job) -> None:
                                "covariance_m2": f.covs[r]}
     horizon_h = spill.times_s[-1] / HOUR_S
     spill_times = [t * HOUR_S for t in (6, 12, 24, 48) if t <= horizon_h]
+    check, notes = job.state["checks"], gaussian_check_notes(job.state["checks"])
     job.add_figure(plot_release_spread([rel(spill, 0, "fuel spill, mean path")], ellipse_times_s=spill_times,
                                        frame=frame, field=background, area_m=bed, area_label=SHELLFISH_BED,
-                                       places=places, title="Fuel spill"),
+                                       places=places, title="Fuel spill", note=notes["spill"],
+                                       particles_m=check["spill"].samples_m,
+                                       particles_label=f"{check['spill'].particles} simulated particles at "
+                                                       f"{check['spill'].time_s / HOUR_S:g} h (ensemble check)"),
                    "spread_spill.png", "Fuel spill: mean path with 50 % (shaded) and 95 % (dashed) ellipses; "
-                   "grey arrows are the fitted mean flow.", "spread")
+                   "grey arrows are the fitted mean flow; orange dots: a small ensemble at the last time, which "
+                   "checks the Gaussian summary.", "spread")
     snaps = [plume_snapshot(plume, clock, job.state["starts"]) for clock in snapshot_clocks(plume.times_s)]
     job.add_figure(plot_plume(snaps, frame=frame, field=background, area_m=bed, area_label=SHELLFISH_BED,
-                              places=places, title="Outfall plume (hourly parcels as one mixture)"),
+                              places=places, title="Outfall plume (hourly parcels as one mixture)",
+                              note=notes["outfall"]),
                    "spread_outfall.png", "Outfall plume at three times after the discharge started: the regions "
                    "holding 50 % (shaded) and 95 % (line) of the discharged water, from the mixture of the hourly "
                    "parcels' Gaussians.", "spread")
-    curves = [{"label": "fuel spill: P(inside)", "times_s": spill.times_s, "probability": spill.probability[0]},
-              {"label": "outfall: expected share inside", "times_s": job.state["times"], "probability": job.state["share"]}]
+    curves = [{"label": "fuel spill", "times_s": spill.times_s, "probability": spill.probability[0],
+               "xlabel": "time since the spill (h)", "ylabel": "probability inside the bed (–)"},
+              {"label": "outfall", "times_s": job.state["times"], "probability": job.state["share"],
+               "xlabel": "time since the outfall started (h)", "ylabel": "expected share of the water inside (–)"}]
     job.add_figure(plot_area_probability(curves, area_label="the shellfish bed", threshold=job.settings.threshold,
-                                         time_label="time since the release / since the outfall started (h)"),
+                                         title=f"Reaching the {SHELLFISH_BED}"),
                    "area_probability.png", f"Probability of reaching the {SHELLFISH_BED} against time; "
                    "the star marks the first time the threshold is reached.", "spread")
 

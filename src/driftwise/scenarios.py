@@ -124,6 +124,7 @@ def plume_snapshot(plume: Any, clock_s: float, starts_s: np.ndarray) -> dict:
     idx = [(r, int(np.argmin(np.abs(times - (clock_s - t0))))) for r, t0 in enumerate(starts_s) if t0 <= clock_s + 1e-9]
     rows, ks = zip(*idx)
     return {"label": f"{clock_s / HOUR_S:g} h after the start ({len(rows)} parcels)",
+            "time_label": f"{clock_s / HOUR_S:g} h",
             "means_m": plume.means[list(rows), list(ks), :2], "covariances_m2": plume.covs[list(rows), list(ks), :2, :2]}
 
 
@@ -180,3 +181,18 @@ def outfall_table(plume: Any, share: np.ndarray, times: np.ndarray, starts: np.n
             "rows": rows, "formats": ["hours", None, "probability", "probability"],
             "notes": ["The share is the mean, over the parcels released so far, of each parcel's probability of "
                       "being inside the bed: the mixture of the parcels' Gaussians."]}
+
+
+def gaussian_checks(field: Any, spill: Any, plume: Any, *, particles: int = 1000) -> dict:
+    """Is one Gaussian a fair summary?  The spill and the oldest outfall parcel against a small ensemble
+    at the last output time (:func:`driftwise.adequacy.spread_adequacy`): {"spill": …, "outfall": …}."""
+    from .adequacy import spread_adequacy
+
+    return {"spill": spread_adequacy(field, spill, 0, particles=particles),
+            "outfall": spread_adequacy(field, plume, 0, particles=particles)}
+
+
+def gaussian_check_notes(checks: dict) -> dict:
+    """Report text per scenario: the check's sentence, naming which release was checked."""
+    return {"spill": checks["spill"].sentence(),
+            "outfall": "Oldest parcel: " + checks["outfall"].sentence()}
