@@ -217,8 +217,8 @@ def plot_divergence_vorticity(x_m: np.ndarray, y_m: np.ndarray, divergence_s: np
     thresholds = (z_threshold, z_threshold) if np.isscalar(z_threshold) else tuple(z_threshold)
     handles: dict[str, Any] = {}
     hatches: list[Any] = []
-    for ax, (title, value, z), threshold in zip(axes, panels, thresholds):
-        ax.set_title(title, loc="left")
+    for ax, (panel_title, value, z), threshold in zip(axes, panels, thresholds):
+        ax.set_title(panel_title, loc="left")
         if value is None:
             ax.text(0.5, 0.5, divergence_note or "not available", ha="center", va="center", wrap=True,
                     transform=ax.transAxes, fontsize="small")
@@ -226,7 +226,7 @@ def plot_divergence_vorticity(x_m: np.ndarray, y_m: np.ndarray, divergence_s: np
             ax.set_ylim(np.min(Y), np.max(Y))
         else:
             for h in _signed_panel(fig, ax, X, Y, np.asarray(value, float), np.asarray(z, float), threshold,
-                                   title.split()[1]):
+                                   panel_title.split()[1]):
                 handles.setdefault(h.get_label(), h)
             hatches = hatch_unsupported(ax, X, Y, support)
         coords.decorate(ax)
@@ -317,9 +317,9 @@ def plot_skill_coverage(horizons_s: Sequence[float], *, skill: Sequence[float], 
     ax_d.set_ylabel("median separation (km)")
     ax_d.set_ylim(bottom=0.0)
     _coverage_panel(ax_c, h, coverage_50, coverage_95, n_forecasts, coverage_se)
-    for ax, title in zip((ax_s, ax_d, ax_c), ("(a) skill", "(b) separation", "(c) calibration")):
+    for ax, panel_title in zip((ax_s, ax_d, ax_c), ("(a) skill", "(b) separation", "(c) calibration")):
         ax.set_xlabel("forecast horizon (h)")
-        ax.set_title(title, loc="left")
+        ax.set_title(panel_title, loc="left")
         ax.grid(True, color="0.9")
         ax.set_xlim(0, max(h) * 1.08 if len(h) else 1)
         ax.set_xticks(h)
