@@ -207,13 +207,19 @@ def test_release_spread_has_release_time_speed_key_note_and_covers_ellipses_and_
     _speed_key(ax)
     assert any(note[:40] in (leg.get_title().get_text().replace("\n", " ")) for leg in fig.legends)
     ellipses = np.vstack([plots.ellipse_xy_m(rel["mean_m"][k], rel["covariance_m2"][k], 0.95) for k in (6, 48)])
-    everything = np.vstack([ellipses, particles, rel["mean_m"]])
+    # the map covers the ellipses, the path and the central 99 % of the particles in each direction
+    bulk = np.percentile(particles, [0.5, 99.5], axis=0)
+    everything = np.vstack([ellipses, bulk, rel["mean_m"]])
     _covers(ax, everything[:, 0] / 1e3, everything[:, 1] / 1e3)
     # a time on every ellipse: the labels are the requested hours
     assert sorted(t.get_text() for t in ax.texts if t.get_text().endswith(" h")) == ["48 h", "6 h"]
     _labels_have_units(fig)
     labels = [t.get_text() for t in ax.get_legend().get_texts()]
-    assert "simulated particles" in labels and "95 % ellipse" in labels
+    assert "95 % ellipse" in labels
+    (dots,) = [lab for lab in labels if lab.startswith("simulated particles")]
+    lo, hi = everything.min(axis=0), everything.max(axis=0)  # the data box the map was sized to
+    beyond = int(np.sum(np.any((particles < lo) | (particles > hi), axis=1)))
+    assert beyond > 0 and dots == f"simulated particles; {beyond} beyond the map"
 
 
 def test_release_spread_without_a_clock_says_so():

@@ -75,15 +75,18 @@ class GaussianAdequacy:
         off_50 = abs(self.inside_50 - 0.5) > MAX_OFF_50 + 3.0 * self.se_50
         return bool(low_95 or off_50)
 
-    def sentence(self) -> str:
-        """One line for a figure or report: what the ellipses hold, and what to do when that is poor."""
+    def sentence(self, what: str = "") -> str:
+        """One line for a figure or report: what the ellipses hold, and what to do when that is poor.
+
+        ``what`` names the release checked (e.g. "the oldest parcel"), else "this release"."""
         hours = f"{self.time_s / 3600.0:g} h"
-        held = (f"at {hours} the 95 % ellipse holds {self.inside_95:.0%} and the 50 % ellipse "
-                f"{self.inside_50:.0%} of {self.particles} simulated particles")
+        held = (f"at {hours} the 95 % ellipse holds {100 * self.inside_95:.0f} % and the 50 % ellipse "
+                f"{100 * self.inside_50:.0f} % of {self.particles} simulated particles")
+        subject = what or "this release"
         if not self.poor:
-            return f"Gaussian summary checked: {held}."
-        return (f"The single-Gaussian ellipses are a poor summary here: {held} (nominal 95 % and 50 %). "
-                "Use the ensemble method (driftwise spread --method ensemble) for this release.")
+            return f"Gaussian summary checked for {subject}: {held}."
+        return (f"The single-Gaussian ellipses are a poor summary of {subject}: {held} (nominal 95 % and 50 %). "
+                "Use the ensemble method (driftwise spread --method ensemble) here.")
 
     def to_dict(self) -> dict[str, Any]:
         return {"time_s": self.time_s, "particles": self.particles, "inside_50_ellipse": self.inside_50,

@@ -211,7 +211,7 @@ def plot_divergence_vorticity(x_m: np.ndarray, y_m: np.ndarray, divergence_s: np
     """
     coords = MapCoords.from_frame(frame, np.array([[np.mean(x_m), np.mean(y_m)]]))
     X, Y = coords.grid(x_m, y_m)
-    fig, axes = new_figure(2, height_in=map_height_in(coords, X, Y, 2, extra_in=2.0))
+    fig, axes = new_figure(2, height_in=map_height_in(coords, X, Y, 2, extra_in=2.5))
     panels = [("(a) divergence ∇·u", divergence_s, divergence_z), ("(b) vorticity ∂v/∂x − ∂u/∂y", vorticity_s,
                                                                       vorticity_z)]
     thresholds = (z_threshold, z_threshold) if np.isscalar(z_threshold) else tuple(z_threshold)
@@ -414,7 +414,8 @@ def _robust_gap_range(ax: Any, gap: np.ndarray) -> None:
     if below:
         ax.set_ylim(low, max(float(np.nanmax(gap)), 0.0) + 0.5 * spread)
         ax.text(0.99, 0.03, f"{below} early step(s) below the axis (lowest {np.nanmin(gap):.3g} %)",
-                transform=ax.transAxes, ha="right", fontsize="x-small", color="0.3")
+                transform=ax.transAxes, ha="right", fontsize="x-small", color="0.3",
+                bbox={"facecolor": "white", "alpha": 0.85, "linewidth": 0})
 
 
 def _elbo_headline(prog: Mapping[str, Any], n_steps: int, window: int, converged: bool | None, tolerance: float,
@@ -464,7 +465,7 @@ def plot_physics_maps(maps: Any) -> Figure:
     x_m, y_m = grid.axes_m
     coords = _Coords.from_frame(maps.frame, np.array([[np.mean(x_m), np.mean(y_m)]]))
     X, Y = coords.grid(x_m, y_m)
-    fig, axes = _figure(2, height_in=_map_height_in(coords, X, Y, 2, extra_in=1.7))
+    fig, axes = _figure(2, height_in=_map_height_in(coords, X, Y, 2, extra_in=2.1))
     titles = {"divergence": "(a) divergence ∇·u", "vorticity": "(b) vorticity ∂v/∂x − ∂u/∂y"}
     alpha = maps.significance["divergence"].alpha
     for ax, name in zip(axes, ("divergence", "vorticity")):

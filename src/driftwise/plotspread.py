@@ -60,8 +60,8 @@ def plot_release_spread(releases: Sequence[Mapping[str, Any]], *, ellipse_times_
     """
     sample = np.concatenate([np.asarray(r["mean_m"], float)[:, :2] for r in releases])
     coords = MapCoords.from_frame(frame, sample[:1])
-    extent = np.vstack([sample, _ellipse_extent(releases, ellipse_times_s)]
-                       + ([np.asarray(particles_m, float)[:, :2]] if particles_m is not None else []))
+    bulk = None if particles_m is None else _bulk(np.asarray(particles_m, float)[:, :2])
+    extent = np.vstack([sample, _ellipse_extent(releases, ellipse_times_s)] + ([bulk] if bulk is not None else []))
     if field is not None:
         extent = np.vstack([extent, grid_corners(field)])
     fig, (ax,) = new_figure(height_in=map_height_in(coords, *coords.xy(extent), 1, extra_in=1.6 if note else 1.0))
@@ -73,20 +73,39 @@ def plot_release_spread(releases: Sequence[Mapping[str, Any]], *, ellipse_times_
     for i, rel in enumerate(releases):
         handles += _draw_release(ax, coords, rel, ellipse_times_s, i)
     if particles_m is not None:
-        px, py = coords.xy(np.asarray(particles_m, float)[:, :2])
-        ax.plot(px, py, ".", color="#d55e00", markersize=1.5, alpha=0.6, linestyle="none", zorder=4)
-        handles.append(Line2D([], [], marker=".", color="#d55e00", linestyle="none", label=particles_label))
+        pts = np.asarray(particles_m, float)[:, :2]
+        px, py = coords.xy(pts)
+        ax.plot(px, py, ".", color="#d55e00", markersize=1.5, alpha=0.6, linestyle="none", zorder=1.5)
+        lo, hi = extent.min(axis=0), extent.max(axis=0)
+        outside = int(np.sum(np.any((pts < lo) | (pts > hi), axis=1)))
+        handles.append(Line2D([], [], marker=".", color="#d55e00", linestyle="none",
+                              label=particles_label + (f"; {outside} beyond the map" if outside else "")))
     draw_places(ax, coords, places)
+    if bulk is not None:  # strays beyond the data box stay off the map (counted in the key)
+        _limit_to(ax, coords, extent)
     handles += [Patch(facecolor="0.2", alpha=0.3, label="50 % ellipse (time beside it)"),
                 Line2D([], [], color="0.2", linestyle="--", linewidth=1.0, label="95 % ellipse")]
     coords.decorate(ax)
     hours = ", ".join(f"{t / 3600:g}" for t in ellipse_times_s)
     ax.set_title(f"{title}: 50 % and 95 % ellipses at {hours} h after the release\n{release_text(release_time)}",
                  fontsize="medium")
-    ax.legend(handles=handles, loc="upper left", fontsize="x-small", framealpha=0.9)
+    ax.legend(handles=handles, loc="best", fontsize="x-small", framealpha=0.8)
     if note:
         figure_note(fig, note)
     return fig
+
+
+def _bulk(points_m: np.ndarray) -> np.ndarray:
+    """The corners of the box holding the central 99 % of ``points_m`` (N, 2) per axis: a few strays
+    do not shrink the map (they are counted in the key instead)."""
+    return np.percentile(points_m, [0.5, 99.5], axis=0)
+
+
+def _limit_to(ax: Any, coords: MapCoords, extent_m: np.ndarray, pad: float = 0.03) -> None:
+    x, y = coords.xy(extent_m)
+    dx, dy = pad * (np.max(x) - np.min(x)), pad * (np.max(y) - np.min(y))
+    ax.set_xlim(np.min(x) - dx, np.max(x) + dx)
+    ax.set_ylim(np.min(y) - dy, np.max(y) + dy)
 
 
 def _nearest_index(times_s: np.ndarray, t: float) -> int:
@@ -199,12 +218,19 @@ def _draw_snapshot(ax: Any, coords: MapCoords, snap: Mapping[str, Any], grid: tu
     X, Y = coords.grid(x, y)
     ax.contourf(X, Y, pdf, levels=[p50, np.inf], colors=[colour], alpha=0.45, zorder=2)
     ax.contour(X, Y, pdf, levels=[p95], colors=[colour], linestyles=[style], linewidths=1.5, zorder=3)
-    iy, ix = np.unravel_index(int(np.argmax(pdf)), pdf.shape)
+    iy, ix = _label_cell(pdf, p50)
     ax.annotate(str(snap.get("time_label", snap["label"])), (X[iy, ix], Y[iy, ix]), fontsize="x-small",
                 ha="center", va="center", color=colour, fontweight="bold", zorder=6,
                 path_effects=[effects.withStroke(linewidth=2.5, foreground="white")])
     return (Patch(facecolor=colour, alpha=0.45, edgecolor="none"),
             Line2D([], [], color=colour, linestyle=style, linewidth=1.5))
+
+
+def _label_cell(pdf: np.ndarray, level: float) -> tuple[int, int]:
+    """The cell of the region ``pdf ≥ level`` nearest its centroid (inside the region even when it is an arc)."""
+    iy, ix = np.nonzero(pdf >= level)
+    k = int(np.argmin((iy - iy.mean()) ** 2 + (ix - ix.mean()) ** 2))
+    return int(iy[k]), int(ix[k])
 
 
 # ----------------------------------------------------------------- probability against time

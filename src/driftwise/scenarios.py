@@ -194,5 +194,5 @@ def gaussian_checks(field: Any, spill: Any, plume: Any, *, particles: int = 1000
 
 def gaussian_check_notes(checks: dict) -> dict:
     """Report text per scenario: the check's sentence, naming which release was checked."""
-    return {"spill": checks["spill"].sentence(),
-            "outfall": "Oldest parcel: " + checks["outfall"].sentence()}
+    return {"spill": checks["spill"].sentence("the spill"),
+            "outfall": checks["outfall"].sentence("the oldest outfall parcel")}
