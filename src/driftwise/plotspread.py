@@ -73,13 +73,7 @@ def plot_release_spread(releases: Sequence[Mapping[str, Any]], *, ellipse_times_
     for i, rel in enumerate(releases):
         handles += _draw_release(ax, coords, rel, ellipse_times_s, i)
     if particles_m is not None:
-        pts = np.asarray(particles_m, float)[:, :2]
-        px, py = coords.xy(pts)
-        ax.plot(px, py, ".", color="#d55e00", markersize=1.5, alpha=0.6, linestyle="none", zorder=1.5)
-        lo, hi = extent.min(axis=0), extent.max(axis=0)
-        outside = int(np.sum(np.any((pts < lo) | (pts > hi), axis=1)))
-        handles.append(Line2D([], [], marker=".", color="#d55e00", linestyle="none",
-                              label=particles_label + (f"; {outside} beyond the map" if outside else "")))
+        handles.append(_draw_particles(ax, coords, np.asarray(particles_m, float)[:, :2], extent, particles_label))
     draw_places(ax, coords, places)
     if bulk is not None:  # strays beyond the data box stay off the map (counted in the key)
         _limit_to(ax, coords, extent)
@@ -99,6 +93,16 @@ def _bulk(points_m: np.ndarray) -> np.ndarray:
     """The corners of the box holding the central 99 % of ``points_m`` (N, 2) per axis: a few strays
     do not shrink the map (they are counted in the key instead)."""
     return np.percentile(points_m, [0.5, 99.5], axis=0)
+
+
+def _draw_particles(ax: Any, coords: MapCoords, pts: np.ndarray, extent: np.ndarray, label: str) -> Line2D:
+    """Ensemble positions (N, 2) m as small dots under the ellipses; the key counts those beyond ``extent``."""
+    px, py = coords.xy(pts)
+    ax.plot(px, py, ".", color="#d55e00", markersize=1.5, alpha=0.6, linestyle="none", zorder=1.5)
+    lo, hi = extent.min(axis=0), extent.max(axis=0)
+    outside = int(np.sum(np.any((pts < lo) | (pts > hi), axis=1)))
+    return Line2D([], [], marker=".", color="#d55e00", linestyle="none",
+                  label=label + (f"; {outside} beyond the map" if outside else ""))
 
 
 def _limit_to(ax: Any, coords: MapCoords, extent_m: np.ndarray, pad: float = 0.03) -> None:

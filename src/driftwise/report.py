@@ -282,7 +282,7 @@ def _verdict_word(value: Any) -> str:
     return '<span class="yes">yes</span>' if value else '<span class="no">no</span>'
 
 
-def _check(check: Mapping[str, Any]) -> str:
+def _check(check: Mapping[str, Any], elbo_note: str = "") -> str:
     parts = []
     verdict = check.get("verdict", {})
     if verdict:
@@ -305,6 +305,7 @@ def _check(check: Mapping[str, Any]) -> str:
         cols = sorted({k for v in families.values() for k, x in v.items() if not isinstance(x, Mapping)})
         parts.append("<h3>Kernel-family evidence</h3>" + grid_table(
             ["family"] + [label_of(c) for c in cols], [[f] + [v.get(c) for c in cols] for f, v in families.items()]))
+        parts.append(elbo_note)
     if check.get("reading"):
         parts.append(f"<p>{_e(check['reading'])}</p>")
     rest = {k: v for k, v in check.items() if k not in ("verdict", "families", "reading", "statistics")}
@@ -404,9 +405,8 @@ def _section(name: str, summary: Mapping[str, Any], base_dir: Path | None) -> st
     if name in missing:
         parts.append(f'<p class="missing">Not produced: {_e(missing[name])}</p>')
     if summary.get(name):
-        parts.append(_RENDER[name](summary[name]))
-        if name == "check":
-            parts.append(elbo_comparison(summary))
+        parts.append(_check(summary[name], elbo_comparison(summary)) if name == "check"
+                     else _RENDER[name](summary[name]))
     elif name not in missing:
         return ""
     parts += [_figure_html(f, base_dir) for f in summary.get("figures", []) if f.get("section") == name]
