@@ -1,0 +1,294 @@
+"""CF trajectory NetCDF files (featureType = trajectory) as one row per fix.
+
+Layouts (CF Conventions 1.8, §9.3 and appendix H.4): the contiguous ragged
+array (H.4.3: a count variable whose ``sample_dimension`` names the obs
+dimension) and the multidimensional array (H.4.1: positions on
+(trajectory, obs); time on (trajectory, obs) in the incomplete form, on (obs)
+in the orthogonal form).
+
+Which variables are the positions does not depend on their names.  A variable
+on the observation dimension(s) is taken, in this order of precedence, as
+
+1. longitude/latitude by ``standard_name`` (``longitude``, ``latitude``), or
+   x/y in a projection by ``projection_x_coordinate``/``projection_y_coordinate``;
+2. longitude/latitude by ``units``: ``degrees_east`` and the aliases CF §4.2
+   accepts (``degree_east``, ``degree_E``, ``degrees_E``, ``degreeE``,
+   ``degreesE``), ``degrees_north`` and the §4.1 aliases;
+3. x/y by ``axis`` = ``X``/``Y`` (with units that say metres or degrees);
+4. by name: lon/longitude, lat/latitude, x/x_m, y/y_m.
+
+Positions must be placeable in degrees or metres: x/y need length units
+(m, km, …; the name ``x_m``/``y_m`` counts as metres); without units, or with
+plain ``degrees`` (rotated-pole coordinates, CF §4.1–4.2), the file is refused
+naming the variable.  A time on the observation dimension(s) is CF-decoded;
+a plain number is seconds, or is scaled by its units (``h``, ``min``, ``d``).
+
+Missing values (``_FillValue``/``missing_value``, NaN, NaT): an observation
+whose time and positions are all missing is padding (the unused slots of the
+multidimensional layout, CF §9.3.2) and is skipped with a notice; an
+observation with some but not all of them missing is a masked fix and is
+dropped with a warning that gives the count and the first observation index
+(it is not refused: one bad sensor sample should not stop a whole file).
+Errors found later in the rows of this table name the trajectory and
+observation index, not a spreadsheet row (:meth:`CFTable.naming_observations`).
+"""
+
+from __future__ import annotations
+
+from contextlib import contextmanager
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Iterator
+
+import numpy as np
+import pandas as pd
+
+from .trackfile import TrackError
+from .trackqc import QCAction, plural
+
+LON_UNITS = frozenset(u.lower() for u in ("degrees_east", "degree_east", "degree_E", "degrees_E", "degreeE",
+                                          "degreesE"))  # CF 1.8 §4.2
+LAT_UNITS = frozenset(u.lower() for u in ("degrees_north", "degree_north", "degree_N", "degrees_N", "degreeN",
+                                          "degreesN"))  # CF 1.8 §4.1
+PLAIN_DEGREES = frozenset(("degree", "degrees", "deg"))
+LENGTH_UNITS_M = {"m": 1.0, "meter": 1.0, "meters": 1.0, "metre": 1.0, "metres": 1.0,
+                  "km": 1000.0, "kilometer": 1000.0, "kilometers": 1000.0, "kilometre": 1000.0, "kilometres": 1000.0}
+DURATION_UNITS_S = {"s": 1.0, "sec": 1.0, "secs": 1.0, "second": 1.0, "seconds": 1.0, "min": 60.0,
+                    "minute": 60.0, "minutes": 60.0, "h": 3600.0, "hr": 3600.0, "hrs": 3600.0, "hour": 3600.0,
+                    "hours": 3600.0, "d": 86400.0, "day": 86400.0, "days": 86400.0}
+_BY_STANDARD_NAME = {"longitude": "lon", "latitude": "lat", "projection_x_coordinate": "x",
+                     "projection_y_coordinate": "y", "time": "time", "altitude": "z", "height": "z"}
+_BY_NAME = {"lon": "lon", "longitude": "lon", "lat": "lat", "latitude": "lat", "x": "x", "x_m": "x",
+            "y": "y", "y_m": "y", "z": "z", "z_m": "z", "time": "time"}
+_WHAT = {"lon": "longitude", "lat": "latitude", "x": "x position", "y": "y position"}
+
+
+@dataclass(frozen=True)
+class CFTable:
+    """The fixes of a CF trajectory file and where each came from.
+
+    ``frame``: one row per kept fix with columns ``track_id``, ``time``,
+    ``lon``/``lat`` (degrees) and/or ``x``/``y`` (metres), optional ``z``,
+    then the other observation variables under their own names.
+    ``trajectory``, ``observation``: (n,) int64 indices of each row in the file
+    (for the ragged layout ``observation`` is the index along the sample dimension).
+    """
+
+    frame: pd.DataFrame
+    notices: tuple[QCAction, ...]
+    trajectory: np.ndarray
+    observation: np.ndarray
+    ragged: bool
+
+    def place(self, row: int) -> str:
+        """Where table row ``row`` (2 = first fix, as :class:`TrackError` counts) is in the file."""
+        k = row - 2
+        if not 0 <= k < self.observation.size:
+            return f"table row {row}"
+        if self.ragged:
+            return f"observation index {self.observation[k]}"
+        return f"trajectory index {self.trajectory[k]}, observation index {self.observation[k]}"
+
+    @contextmanager
+    def naming_observations(self) -> Iterator[None]:
+        """Re-raise a TrackError about a table row as one naming the trajectory/observation index."""
+        try:
+            yield
+        except TrackError as err:
+            if err.row is None:
+                raise
+            raise TrackError(err.file, err.problem, column=err.column, where=self.place(err.row)) from None
+
+
+def read_netcdf_frame(path: Path, file: str) -> CFTable:
+    """Read a CF trajectory file (see the module docstring); a TrackError names what cannot be read."""
+    import xarray as xr  # a third-party import kept lazy: `driftwise --help` should not pay for it
+
+    try:
+        ds = xr.open_dataset(path, decode_timedelta=False)
+    except Exception as err:  # xarray raises many types for unreadable files
+        raise TrackError(file, f"is not a readable NetCDF file ({type(err).__name__}: {err})") from None
+    with ds:
+        feature = str(ds.attrs.get("featureType", "trajectory"))
+        if feature.lower() != "trajectory":
+            raise TrackError(file, f"has featureType {feature!r}; driftwise reads CF trajectory files")
+        ragged = [name for name, v in ds.variables.items() if "sample_dimension" in v.attrs]
+        return _ragged_table(ds, ragged[0], file) if ragged else _multidim_table(ds, file)
+
+
+# ---------------------------------------------------------------- which variable is what
+def _role_of(name: str, attrs: dict) -> tuple[str, int, str] | None:
+    """``(role, rank, how)`` of one variable: rank 0 standard_name, 1 units, 2 axis, 3 name (lower wins)."""
+    standard = str(attrs.get("standard_name", "")).strip()
+    units = str(attrs.get("units", "")).strip().lower()
+    axis = str(attrs.get("axis", "")).strip().upper()
+    if standard in _BY_STANDARD_NAME:
+        return _BY_STANDARD_NAME[standard], 0, f"standard_name {standard!r}"
+    if units in LON_UNITS or units in LAT_UNITS:
+        return ("lon" if units in LON_UNITS else "lat"), 1, f"units {attrs['units']!r}"
+    if axis in ("X", "Y", "T"):
+        return {"X": "x", "Y": "y", "T": "time"}[axis], 2, f"axis {axis!r}"
+    if name.lower() in _BY_NAME:
+        return _BY_NAME[name.lower()], 3, "its name"
+    return None
+
+
+def _assign_roles(ds, names: list[str]) -> dict[str, tuple[str, int, str]]:
+    """role -> (variable name, rank, how) for the best-ranked variable of each role among ``names``."""
+    best: dict[str, tuple[tuple, str, int, str]] = {}
+    for order, name in enumerate(names):
+        found = _role_of(name, ds[name].attrs)
+        if found is None:
+            continue
+        role, rank, how = found
+        key = (rank, _BY_NAME.get(name.lower()) != role, order)
+        if role not in best or key < best[role][0]:
+            best[role] = (key, name, rank, how)
+    return {role: (name, rank, how) for role, (_, name, rank, how) in best.items()}
+
+
+def _position_scale(ds, role: str, found: tuple[str, int, str], file: str) -> tuple[str, float]:
+    """The table column and factor to degrees/metres for a position variable, or a TrackError naming it."""
+    name, rank, how = found
+    raw = str(ds[name].attrs.get("units", "")).strip()
+    units = raw.lower()
+    if role in ("lon", "lat"):
+        if units in (LON_UNITS if role == "lon" else LAT_UNITS) or (rank in (0, 3) and units in PLAIN_DEGREES | {""}):
+            return role, 1.0
+        raise TrackError(file, f"variable {name!r} is a {_WHAT[role]} by {how} but has units {raw!r}; expected "
+                         f"{'degrees_east' if role == 'lon' else 'degrees_north'} (CF §4.1–4.2)", column=name)
+    if units in LENGTH_UNITS_M:
+        return role, LENGTH_UNITS_M[units]
+    if units == "" and name.lower() in ("x_m", "y_m"):
+        return role, 1.0
+    if units in PLAIN_DEGREES:
+        problem = (f"has units {raw!r}, which CF §4.1–4.2 reserve for rotated-pole coordinates; driftwise needs "
+                   f"true longitude/latitude (units degrees_east/degrees_north) or metres")
+    elif units == "":
+        problem = "has no units, so its positions cannot be placed in metres or degrees"
+    else:
+        problem = f"has units {raw!r}, which are neither a length (m, km) nor degrees_east/degrees_north"
+    raise TrackError(file, f"variable {name!r} ({_WHAT[role]} by {how}) {problem}; set its units attribute to "
+                     "'m' or to 'degrees_east'/'degrees_north'", column=name)
+
+
+def _positions(ds, roles: dict, file: str) -> dict[str, tuple[str, float]]:
+    """role -> (variable, scale) for the horizontal positions (lon/lat when both pairs are there; the other
+    pair stays an extra column); a TrackError if no usable pair is there."""
+    pairs = [p for p in (("lon", "lat"), ("x", "y")) if all(r in roles for r in p)]
+    lone = [r for r in ("lon", "lat", "x", "y") if r in roles and not any(r in p for p in pairs)]
+    if not pairs:
+        have = ", ".join(f"{roles[r][0]!r} ({_WHAT[r]} by {roles[r][2]})" for r in lone) or "none"
+        raise TrackError(file, "has no pair of position variables (longitude and latitude, or x and y) on the "
+                         f"observation dimension; found {have}")
+    return {role: (roles[role][0], _position_scale(ds, role, roles[role], file)[1]) for role in pairs[0]}
+
+
+def _time_values(ds, name: str, file: str) -> np.ndarray:
+    """The time variable's values: datetime64 as decoded, or float seconds (scaled by plain duration units)."""
+    var = ds[name]
+    if var.dtype.kind == "M":
+        return var.values
+    raw = str(var.attrs.get("units", "")).strip()
+    if var.dtype.kind not in "iuf":
+        raise TrackError(file, f"time variable {name!r} holds {var.dtype} values, not times", column=name)
+    if raw and raw.lower() not in DURATION_UNITS_S:
+        raise TrackError(file, f"time variable {name!r} has units {raw!r}, which are neither '<unit> since "
+                         "<date>' nor a duration (s, min, h, d)", column=name)
+    return var.values.astype(np.float64) * DURATION_UNITS_S.get(raw.lower(), 1.0)
+
+
+def _trajectory_ids(ds, name: str | None, n: int) -> np.ndarray:
+    if name is None:
+        return np.array([str(i) for i in range(n)], dtype=object)
+    values = ds[name].values
+    if values.dtype.kind == "S":
+        values = np.char.decode(values, "utf-8")
+    if values.ndim == 2 and values.dtype.kind in "SU":  # a char array (trajectory, strlen)
+        values = np.array(["".join(map(str, row)) for row in values])
+    return np.array([str(v).strip() for v in values], dtype=object)
+
+
+def _track_id_variable(ds) -> str | None:
+    return next((name for name, v in ds.variables.items() if v.attrs.get("cf_role") == "trajectory_id"), None)
+
+
+# ---------------------------------------------------------------- layouts
+def _ragged_table(ds, count_name: str, file: str) -> CFTable:
+    count_var = ds[count_name]
+    obs_dim = count_var.attrs["sample_dimension"]
+    counts = np.asarray(count_var.values, dtype=np.int64)
+    if counts.sum() != ds.sizes.get(obs_dim, -1):
+        raise TrackError(file, f"the row sizes in {count_name!r} add up to {counts.sum()} fixes but dimension "
+                         f"{obs_dim!r} has {ds.sizes.get(obs_dim)}")
+    names = [n for n, v in ds.variables.items() if v.dims == (obs_dim,) and n != count_name]
+    trajectory = np.repeat(np.arange(counts.size, dtype=np.int64), counts)
+    ids = _trajectory_ids(ds, _track_id_variable(ds), counts.size)[trajectory]
+    columns, missing = _columns(ds, names, file, lambda values: values)
+    columns = {"track_id": ids, **columns}
+    observation = np.arange(trajectory.size, dtype=np.int64)
+    return _drop_missing(columns, missing, trajectory, observation, file, ragged=True)
+
+
+def _multidim_table(ds, file: str) -> CFTable:
+    two_d = [n for n, v in ds.variables.items() if v.ndim == 2 and v.attrs.get("cf_role") != "trajectory_id"]
+    positional = [n for n in two_d if (_role_of(n, ds[n].attrs) or ("",))[0] in ("lon", "lat", "x", "y")]
+    if not positional:
+        raise TrackError(file, "is not a CF trajectory file driftwise understands: no count variable with "
+                         "'sample_dimension' and no two-dimensional (trajectory, obs) positions")
+    traj_dim, obs_dim = ds[positional[0]].dims
+    shape = (ds.sizes[traj_dim], ds.sizes[obs_dim])
+    names = [n for n, v in ds.variables.items() if v.dims == (traj_dim, obs_dim) and n in two_d]
+    names += [n for n, v in ds.variables.items() if v.dims == (obs_dim,) and (_role_of(n, v.attrs) or ("",))[0]
+              == "time"]
+    columns, missing = _columns(ds, names, file, lambda values: np.broadcast_to(values, shape).reshape(-1))
+    trajectory, observation = (a.reshape(-1) for a in np.indices(shape, dtype=np.int64))
+    ids = _trajectory_ids(ds, _track_id_variable(ds), shape[0])[trajectory]
+    return _drop_missing({"track_id": ids, **columns}, missing, trajectory, observation, file, ragged=False)
+
+
+def _columns(ds, names: list[str], file: str, flat) -> tuple[dict[str, np.ndarray], np.ndarray]:
+    """Table columns from the observation variables ``names`` and the (k, n) missing-value mask of time and
+    the horizontal positions (``flat`` turns a variable's values into (n,) values)."""
+    roles = _assign_roles(ds, names)
+    if "time" not in roles:
+        raise TrackError(file, "has no time variable on the observation dimension (looked for standard_name "
+                         "'time', axis 'T' or the name 'time')")
+    positions = _positions(ds, roles, file)
+    time_name = roles["time"][0]
+    time = flat(_time_values(ds, time_name, file))
+    columns = {"time": time}
+    for role, (name, scale) in positions.items():
+        columns[role] = flat(ds[name].values).astype(np.float64) * scale
+    used = {time_name, *(name for name, _ in positions.values())}
+    if "z" in roles:
+        columns["z"] = flat(ds[roles["z"][0]].values)
+        used.add(roles["z"][0])
+    for name in names:
+        if name not in used:
+            columns[name if name not in columns else f"{name}_variable"] = flat(ds[name].values)
+    missing = np.vstack([pd.isna(columns["time"])] + [np.isnan(columns[r]) for r in positions])
+    return columns, missing
+
+
+def _drop_missing(columns: dict, missing: np.ndarray, trajectory: np.ndarray, observation: np.ndarray, file: str,
+                  *, ragged: bool) -> CFTable:
+    """Skip padding (everything missing) and drop masked fixes (some missing), with a QC action for each."""
+    padding = missing.all(axis=0)
+    masked = missing.any(axis=0) & ~padding
+    notices = []
+    if padding.any() and not ragged:
+        n = int(padding.sum())
+        notices.append(QCAction("padding", n, f"{file}: skipped {plural(n, 'empty observation slot')} (time and "
+                                "position all missing: the padding of the multidimensional layout)"))
+    if ragged:
+        masked |= padding
+    if masked.any():
+        n, first = int(masked.sum()), int(np.argmax(masked))
+        where = f"observation index {observation[first]}" if ragged else \
+            f"trajectory index {trajectory[first]}, observation index {observation[first]}"
+        notices.append(QCAction("masked_fixes", n, f"{file}: dropped {plural(n, 'fix')} whose time or position is "
+                                f"missing (fill value), first at {where}", "warning"))
+    keep = ~(padding | masked)
+    frame = pd.DataFrame({k: np.asarray(v)[keep] for k, v in columns.items()})
+    return CFTable(frame, tuple(notices), trajectory[keep], observation[keep], ragged)
