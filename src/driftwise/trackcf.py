@@ -83,8 +83,6 @@ class CFTable:
     def place(self, row: int) -> str:
         """Where table row ``row`` (2 = first fix, as :class:`TrackError` counts) is in the file."""
         k = row - 2
-        if not 0 <= k < self.observation.size:
-            return f"table row {row}"
         if self.ragged:
             return f"observation index {self.observation[k]}"
         return f"trajectory index {self.trajectory[k]}, observation index {self.observation[k]}"
@@ -95,7 +93,7 @@ class CFTable:
         try:
             yield
         except TrackError as err:
-            if err.row is None:
+            if err.row is None or not 0 <= err.row - 2 < self.observation.size:
                 raise
             raise TrackError(err.file, err.problem, column=err.column, where=self.place(err.row)) from None
 

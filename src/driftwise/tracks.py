@@ -14,6 +14,12 @@ position   x, y[, z] (or x_m, y_m, z_m) in metres, or lon, lat[, z]
            in degrees (projected, see :mod:`driftwise.frame`)
 =========  ===========================================================
 
+In a CF trajectory NetCDF file the positions are found by their attributes
+(standard_name, CF degree units, axis), whatever their names, and fill values
+are dropped with a count (see :mod:`driftwise.trackcf`).  Positions read as
+metres that span less than a metre over more than a minute get a warning
+(degrees in columns named x/y, most likely).
+
 Other columns are kept in ``Tracks.extra``.  Problems the user must fix raise
 :class:`TrackError` (file, row, column, problem); quality-control steps that
 change the data (sorting, dropping impossible or lone fixes, splitting at gaps)
