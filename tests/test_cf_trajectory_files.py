@@ -267,10 +267,11 @@ def test_longitude_without_latitude_is_refused(tmp_path):
 def test_bad_value_is_reported_by_observation_index(tmp_path):
     table = _reference(common_times=False, metric=False)
     table.loc[5, "b"] = 95.0  # trajectory 0 has 6 fixes: observation index 5 is its last
-    _write_netcdf4(tmp_path / "r.nc", table, "contiguous_ragged", "standard", _masked_rows(table, False))
+    _write_netcdf4(tmp_path / "r.nc", table, "contiguous_ragged", "degrees_named_xy", _masked_rows(table, False))
     with pytest.raises(TrackError) as info:
         read_tracks(tmp_path / "r.nc")
-    assert str(info.value).startswith(f"{tmp_path / 'r.nc'}, observation index 5, column 'lat': latitude 95")
+    # the file's variable (y, a latitude by its units), not the table's column name
+    assert str(info.value).startswith(f"{tmp_path / 'r.nc'}, observation index 5, column 'y': latitude 95")
     assert info.value.row is None
 
 
@@ -295,6 +296,14 @@ def test_time_in_plain_hours_is_scaled_to_seconds(tmp_path):
     tracks, _ = _read(tmp_path / "p.nc")
     assert not tracks.time_is_absolute
     np.testing.assert_allclose(tracks.time_s, np.arange(40) * 600.0, rtol=1e-12, atol=1e-9)
+
+
+def test_time_in_a_model_calendar_is_refused_naming_it(tmp_path):
+    _issue_file(tmp_path / "c.nc", {"units": "degrees_east"}, {"units": "degrees_north"})
+    with netCDF4.Dataset(tmp_path / "c.nc", "a") as nc:
+        nc["time"].calendar = "360_day"
+    with pytest.raises(TrackError, match="time variable 'time' .*calendar '360_day'.* standard \\(Gregorian\\)"):
+        read_tracks(tmp_path / "c.nc")
 
 
 def test_positions_read_as_metres_spanning_under_a_metre_warn(write_file):

@@ -72,6 +72,7 @@ class CFTable:
     then the other observation variables under their own names.
     ``trajectory``, ``observation``: (n,) int64 indices of each row in the file
     (for the ragged layout ``observation`` is the index along the sample dimension).
+    ``variables``: table column -> the NetCDF variable it came from.
     """
 
     frame: pd.DataFrame
@@ -79,6 +80,7 @@ class CFTable:
     trajectory: np.ndarray
     observation: np.ndarray
     ragged: bool
+    variables: dict[str, str]
 
     def place(self, row: int) -> str:
         """Where table row ``row`` (2 = first fix, as :class:`TrackError` counts) is in the file."""
@@ -95,7 +97,8 @@ class CFTable:
         except TrackError as err:
             if err.row is None or not 0 <= err.row - 2 < self.observation.size:
                 raise
-            raise TrackError(err.file, err.problem, column=err.column, where=self.place(err.row)) from None
+            column = self.variables.get(err.column, err.column)
+            raise TrackError(err.file, err.problem, column=column, where=self.place(err.row)) from None
 
 
 def read_netcdf_frame(path: Path, file: str) -> CFTable:
@@ -145,20 +148,20 @@ def _assign_roles(ds, names: list[str]) -> dict[str, tuple[str, int, str]]:
     return {role: (name, rank, how) for role, (_, name, rank, how) in best.items()}
 
 
-def _position_scale(ds, role: str, found: tuple[str, int, str], file: str) -> tuple[str, float]:
-    """The table column and factor to degrees/metres for a position variable, or a TrackError naming it."""
+def _position_scale(ds, role: str, found: tuple[str, int, str], file: str) -> float:
+    """The factor to degrees (lon/lat) or metres (x/y) for a position variable, or a TrackError naming it."""
     name, rank, how = found
     raw = str(ds[name].attrs.get("units", "")).strip()
     units = raw.lower()
     if role in ("lon", "lat"):
         if units in (LON_UNITS if role == "lon" else LAT_UNITS) or (rank in (0, 3) and units in PLAIN_DEGREES | {""}):
-            return role, 1.0
+            return 1.0
         raise TrackError(file, f"variable {name!r} is a {_WHAT[role]} by {how} but has units {raw!r}; expected "
                          f"{'degrees_east' if role == 'lon' else 'degrees_north'} (CF §4.1–4.2)", column=name)
     if units in LENGTH_UNITS_M:
-        return role, LENGTH_UNITS_M[units]
+        return LENGTH_UNITS_M[units]
     if units == "" and name.lower() in ("x_m", "y_m"):
-        return role, 1.0
+        return 1.0
     if units in PLAIN_DEGREES:
         problem = (f"has units {raw!r}, which CF §4.1–4.2 reserve for rotated-pole coordinates; driftwise needs "
                    f"true longitude/latitude (units degrees_east/degrees_north) or metres")
@@ -179,7 +182,7 @@ def _positions(ds, roles: dict, file: str) -> dict[str, tuple[str, float]]:
         have = ", ".join(f"{roles[r][0]!r} ({_WHAT[r]} by {roles[r][2]})" for r in lone) or "none"
         raise TrackError(file, "has no pair of position variables (longitude and latitude, or x and y) on the "
                          f"observation dimension; found {have}")
-    return {role: (roles[role][0], _position_scale(ds, role, roles[role], file)[1]) for role in pairs[0]}
+    return {role: (roles[role][0], _position_scale(ds, role, roles[role], file)) for role in pairs[0]}
 
 
 def _time_values(ds, name: str, file: str) -> np.ndarray:
@@ -187,12 +190,14 @@ def _time_values(ds, name: str, file: str) -> np.ndarray:
     var = ds[name]
     if var.dtype.kind == "M":
         return var.values
-    raw = str(var.attrs.get("units", "")).strip()
+    raw = str(var.attrs.get("units", var.encoding.get("units", ""))).strip()
     if var.dtype.kind not in "iuf":
-        raise TrackError(file, f"time variable {name!r} holds {var.dtype} values, not times", column=name)
+        calendar = var.attrs.get("calendar", var.encoding.get("calendar", "standard"))
+        raise TrackError(file, f"time variable {name!r} (units {raw!r}, calendar {calendar!r}) cannot be read as "
+                         "times of the standard (Gregorian) calendar", column=name)
     if raw and raw.lower() not in DURATION_UNITS_S:
-        raise TrackError(file, f"time variable {name!r} has units {raw!r}, which are neither '<unit> since "
-                         "<date>' nor a duration (s, min, h, d)", column=name)
+        raise TrackError(file, f"time variable {name!r} has units {raw!r}, which are neither a readable "
+                         "'<unit> since <date>' nor a duration (s, min, h, d)", column=name)
     return var.values.astype(np.float64) * DURATION_UNITS_S.get(raw.lower(), 1.0)
 
 
@@ -222,10 +227,10 @@ def _ragged_table(ds, count_name: str, file: str) -> CFTable:
     names = [n for n, v in ds.variables.items() if v.dims == (obs_dim,) and n != count_name]
     trajectory = np.repeat(np.arange(counts.size, dtype=np.int64), counts)
     ids = _trajectory_ids(ds, _track_id_variable(ds), counts.size)[trajectory]
-    columns, missing = _columns(ds, names, file, lambda values: values)
+    columns, missing, sources = _columns(ds, names, file, lambda values: values)
     columns = {"track_id": ids, **columns}
     observation = np.arange(trajectory.size, dtype=np.int64)
-    return _drop_missing(columns, missing, trajectory, observation, file, ragged=True)
+    return _drop_missing(columns, missing, trajectory, observation, file, ragged=True, sources=sources)
 
 
 def _multidim_table(ds, file: str) -> CFTable:
@@ -239,15 +244,16 @@ def _multidim_table(ds, file: str) -> CFTable:
     names = [n for n, v in ds.variables.items() if v.dims == (traj_dim, obs_dim) and n in two_d]
     names += [n for n, v in ds.variables.items() if v.dims == (obs_dim,) and (_role_of(n, v.attrs) or ("",))[0]
               == "time"]
-    columns, missing = _columns(ds, names, file, lambda values: np.broadcast_to(values, shape).reshape(-1))
+    columns, missing, sources = _columns(ds, names, file, lambda values: np.broadcast_to(values, shape).reshape(-1))
     trajectory, observation = (a.reshape(-1) for a in np.indices(shape, dtype=np.int64))
     ids = _trajectory_ids(ds, _track_id_variable(ds), shape[0])[trajectory]
-    return _drop_missing({"track_id": ids, **columns}, missing, trajectory, observation, file, ragged=False)
+    return _drop_missing({"track_id": ids, **columns}, missing, trajectory, observation, file, ragged=False,
+                         sources=sources)
 
 
-def _columns(ds, names: list[str], file: str, flat) -> tuple[dict[str, np.ndarray], np.ndarray]:
-    """Table columns from the observation variables ``names`` and the (k, n) missing-value mask of time and
-    the horizontal positions (``flat`` turns a variable's values into (n,) values)."""
+def _columns(ds, names: list[str], file: str, flat) -> tuple[dict[str, np.ndarray], np.ndarray, dict[str, str]]:
+    """Table columns from the observation variables ``names``, the (k, n) missing-value mask of time and
+    the horizontal positions, and column -> variable (``flat`` turns a variable's values into (n,) values)."""
     roles = _assign_roles(ds, names)
     if "time" not in roles:
         raise TrackError(file, "has no time variable on the observation dimension (looked for standard_name "
@@ -255,22 +261,21 @@ def _columns(ds, names: list[str], file: str, flat) -> tuple[dict[str, np.ndarra
     positions = _positions(ds, roles, file)
     time_name = roles["time"][0]
     time = flat(_time_values(ds, time_name, file))
-    columns = {"time": time}
+    columns, sources = {"time": time}, {"time": time_name}
     for role, (name, scale) in positions.items():
-        columns[role] = flat(ds[name].values).astype(np.float64) * scale
-    used = {time_name, *(name for name, _ in positions.values())}
+        columns[role], sources[role] = flat(ds[name].values).astype(np.float64) * scale, name
     if "z" in roles:
-        columns["z"] = flat(ds[roles["z"][0]].values)
-        used.add(roles["z"][0])
+        columns["z"], sources["z"] = flat(ds[roles["z"][0]].values), roles["z"][0]
     for name in names:
-        if name not in used:
-            columns[name if name not in columns else f"{name}_variable"] = flat(ds[name].values)
+        if name not in sources.values():
+            column = name if name not in columns else f"{name}_variable"
+            columns[column], sources[column] = flat(ds[name].values), name
     missing = np.vstack([pd.isna(columns["time"])] + [np.isnan(columns[r]) for r in positions])
-    return columns, missing
+    return columns, missing, sources
 
 
 def _drop_missing(columns: dict, missing: np.ndarray, trajectory: np.ndarray, observation: np.ndarray, file: str,
-                  *, ragged: bool) -> CFTable:
+                  *, ragged: bool, sources: dict[str, str]) -> CFTable:
     """Skip padding (everything missing) and drop masked fixes (some missing), with a QC action for each."""
     padding = missing.all(axis=0)
     masked = missing.any(axis=0) & ~padding
@@ -289,4 +294,4 @@ def _drop_missing(columns: dict, missing: np.ndarray, trajectory: np.ndarray, ob
                                 f"missing (fill value), first at {where}", "warning"))
     keep = ~(padding | masked)
     frame = pd.DataFrame({k: np.asarray(v)[keep] for k, v in columns.items()})
-    return CFTable(frame, tuple(notices), trajectory[keep], observation[keep], ragged)
+    return CFTable(frame, tuple(notices), trajectory[keep], observation[keep], ragged, sources)
