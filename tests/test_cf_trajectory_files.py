@@ -189,6 +189,105 @@ def test_round_trip(tmp_path, writer, layout, naming, masked):
     assert not [w for w in caught if "span only" in str(w.message)]
 
 
+# ---------------------------------------------------------------- the other two CF layouts
+def _write_indexed(path, table, naming, hidden, *, by):
+    """Indexed ragged array (CF 1.8 §H.4.4, example H.15): fixes in time order, interleaving the drifters."""
+    (xname, xattrs), (yname, yattrs) = NAMINGS[naming]
+    order = np.lexsort((table.track.to_numpy(), table.time.to_numpy()))
+    table, hidden = table.iloc[order].reset_index(drop=True), hidden[order]
+    a, b = table.a.where(~hidden), table.b.where(~hidden)
+    ids = np.array(["MB-01", "MB-02", "MB-07"], dtype=object)
+    if by == "xarray":
+        xr.Dataset({"trajectory": ("trajectory", ids, {"cf_role": "trajectory_id"}),
+                    "trajectory_index": ("obs", table.track.to_numpy(np.int32), {"instance_dimension": "trajectory"}),
+                    "time": ("obs", table.time.to_numpy(), {"standard_name": "time"}),
+                    xname: ("obs", a.to_numpy(), xattrs), yname: ("obs", b.to_numpy(), yattrs),
+                    "temp_c": ("obs", table.temp_c.to_numpy())}, attrs={"featureType": "trajectory"}).to_netcdf(path)
+        return
+    with netCDF4.Dataset(path, "w") as nc:
+        nc.featureType = "trajectory"
+        nc.createDimension("obs", None)                      # unlimited, the canonical streaming case
+        nc.createDimension("trajectory", 3)
+        nc.createDimension("name_strlen", 5)
+        traj = nc.createVariable("trajectory", "S1", ("trajectory", "name_strlen"))
+        traj.cf_role = "trajectory_id"
+        traj[:] = netCDF4.stringtochar(ids.astype("S5"))
+        index = nc.createVariable("trajectory_index", "i4", ("obs",))
+        index.instance_dimension = "trajectory"
+        index[:] = table.track.to_numpy(np.int32)
+        _obs_variables(nc, table, ("obs",), ((xname, xattrs, a), (yname, yattrs, b)))
+
+
+def _obs_variables(nc, table, dims, positions):
+    """time (seconds since 1970, as in CF §4.4) and the positions (_FillValue for masked fixes) on ``dims``."""
+    time = nc.createVariable("time", "f8", dims)
+    time.setncatts({"standard_name": "time", "units": "seconds since 1970-01-01T00:00:00Z"})
+    time[:] = (table.time.to_numpy() - EPOCH) / np.timedelta64(1, "s")
+    for name, attrs, values in positions:
+        var = nc.createVariable(name, "f8", dims, fill_value=FILL)
+        var.setncatts(attrs)
+        var[:] = np.where(np.isnan(values), FILL, values)
+    nc.createVariable("temp_c", "f8", dims)[:] = table.temp_c.to_numpy()
+
+
+def _write_single(path, table, naming, hidden, *, by):
+    """A single trajectory (CF 1.8 §H.4.2, example H.13): no trajectory dimension, a char-array id."""
+    (xname, xattrs), (yname, yattrs) = NAMINGS[naming]
+    a, b = table.a.where(~hidden), table.b.where(~hidden)
+    if by == "xarray":
+        xr.Dataset({"trajectory": ((), "MB-07", {"cf_role": "trajectory_id"}),
+                    "time": ("time", table.time.to_numpy(), {"standard_name": "time"}),
+                    xname: ("time", a.to_numpy(), xattrs), yname: ("time", b.to_numpy(), yattrs),
+                    "temp_c": ("time", table.temp_c.to_numpy())}, attrs={"featureType": "trajectory"}).to_netcdf(path)
+        return
+    with netCDF4.Dataset(path, "w") as nc:
+        nc.featureType = "trajectory"
+        nc.createDimension("time", len(table))
+        nc.createDimension("name_strlen", 8)
+        traj = nc.createVariable("trajectory", "S1", ("name_strlen",))
+        traj.cf_role = "trajectory_id"
+        traj[:] = netCDF4.stringtochar(np.array(["MB-07"], dtype="S8"))[0]
+        _obs_variables(nc, table, ("time",), ((xname, xattrs, a), (yname, yattrs, b)))
+
+
+@pytest.mark.parametrize("masked", [False, True], ids=["complete", "masked"])
+@pytest.mark.parametrize("naming", ["standard", "degrees_named_xy", "axis_km"])
+@pytest.mark.parametrize("by", ["netCDF4", "xarray"])
+@pytest.mark.parametrize("layout", ["indexed_ragged", "single_trajectory"])
+def test_round_trip_indexed_ragged_and_single(tmp_path, layout, by, naming, masked):
+    metric = naming == "axis_km"
+    table = _reference(common_times=False, metric=metric)
+    if layout == "single_trajectory":
+        table = table[table.track_id == "MB-07"].reset_index(drop=True)
+        table["track"] = 0
+    hidden = _masked_rows(table, masked) if layout == "indexed_ragged" else \
+        np.isin(np.arange(len(table)), [2] if masked else [])
+    writer = _write_indexed if layout == "indexed_ragged" else _write_single
+    writer(tmp_path / "t.nc", table, naming, hidden, by=by)
+    tracks, _ = _read(tmp_path / "t.nc")
+    kept = table.loc[~hidden].sort_values(["track_id", "time"])
+    assert tracks.track_id.tolist() == kept.track_id.tolist()
+    np.testing.assert_array_equal(tracks.time_s, (kept.time.to_numpy() - EPOCH) / np.timedelta64(1, "s"))
+    if metric:
+        np.testing.assert_allclose(tracks.position_m, 1000.0 * kept[["a", "b"]].to_numpy(), rtol=1e-12, atol=0)
+    else:                                                                 # pyproj inverse projection round trip
+        lon, lat = tracks.frame.to_lonlat(tracks.position_m)
+        np.testing.assert_allclose(np.column_stack([lon, lat]), kept[["a", "b"]].to_numpy(), rtol=1e-9, atol=0)
+    np.testing.assert_array_equal(tracks.extra["temp_c"], kept.temp_c.to_numpy())
+    assert {a.name: a.count for a in tracks.qc} == ({"masked_fixes": int(hidden.sum())} if masked else {})
+
+
+def test_indexed_ragged_index_out_of_range_is_refused(tmp_path):
+    table = _reference(common_times=False, metric=False)
+    _write_indexed(tmp_path / "i.nc", table, "standard", _masked_rows(table, False), by="netCDF4")
+    with netCDF4.Dataset(tmp_path / "i.nc", "a") as nc:
+        nc["trajectory_index"][4] = 3
+    with pytest.raises(TrackError) as info:
+        read_tracks(tmp_path / "i.nc")
+    assert str(info.value) == (f"{tmp_path / 'i.nc'}, observation index 4, column 'trajectory_index': the trajectory "
+                               "index 3 is not one of the 3 trajectories (0…2)")
+
+
 def test_masked_fix_message_names_the_observation_index(tmp_path):
     table = _reference(common_times=False, metric=False)
     hidden = _masked_rows(table, True)

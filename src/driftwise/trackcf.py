@@ -1,10 +1,12 @@
 """CF trajectory NetCDF files (featureType = trajectory) as one row per fix.
 
-Layouts (CF Conventions 1.8, §9.3 and appendix H.4): the contiguous ragged
-array (H.4.3: a count variable whose ``sample_dimension`` names the obs
-dimension) and the multidimensional array (H.4.1: positions on
-(trajectory, obs); time on (trajectory, obs) in the incomplete form, on (obs)
-in the orthogonal form).
+Layouts (CF Conventions 1.8, §9.3 and appendix H.4): the multidimensional
+array (H.4.1: positions on (trajectory, obs); time on (trajectory, obs) in the
+incomplete form, on (obs) or a ``time(time)`` coordinate in the orthogonal
+form), the single trajectory (H.4.2: no trajectory dimension), the contiguous
+ragged array (H.4.3: a count variable whose ``sample_dimension`` names the obs
+dimension) and the indexed ragged array (H.4.4: an index variable whose
+``instance_dimension`` names the trajectory dimension).
 
 Which variables are the positions does not depend on their names.  A variable
 on the observation dimension(s) is taken, in this order of precedence, as
@@ -113,8 +115,11 @@ def read_netcdf_frame(path: Path, file: str) -> CFTable:
         feature = str(ds.attrs.get("featureType", "trajectory"))
         if feature.lower() != "trajectory":
             raise TrackError(file, f"has featureType {feature!r}; driftwise reads CF trajectory files")
-        ragged = [name for name, v in ds.variables.items() if "sample_dimension" in v.attrs]
-        return _ragged_table(ds, ragged[0], file) if ragged else _multidim_table(ds, file)
+        for attribute, reader in (("sample_dimension", _ragged_table), ("instance_dimension", _indexed_table)):
+            found = [name for name, v in ds.variables.items() if attribute in v.attrs]
+            if found:
+                return reader(ds, found[0], file)
+        return _multidim_table(ds, file)
 
 
 # ---------------------------------------------------------------- which variable is what
@@ -201,14 +206,18 @@ def _time_values(ds, name: str, file: str) -> np.ndarray:
     return var.values.astype(np.float64) * DURATION_UNITS_S.get(raw.lower(), 1.0)
 
 
-def _trajectory_ids(ds, name: str | None, n: int) -> np.ndarray:
+def _trajectory_ids(ds, name: str | None, n: int, file: str) -> np.ndarray:
+    """(n,) the trajectory ids as text: from the ``cf_role = trajectory_id`` variable, else 0, 1, …"""
     if name is None:
         return np.array([str(i) for i in range(n)], dtype=object)
-    values = ds[name].values
+    values = np.atleast_1d(ds[name].values)
     if values.dtype.kind == "S":
         values = np.char.decode(values, "utf-8")
-    if values.ndim == 2 and values.dtype.kind in "SU":  # a char array (trajectory, strlen)
-        values = np.array(["".join(map(str, row)) for row in values])
+    if values.dtype.kind in "SU" and (values.ndim == 2 or (n == 1 and values.size > 1)):  # char arrays
+        values = np.array(["".join(map(str, row)) for row in values.reshape(n, -1)])
+    if values.shape != (n,):
+        raise TrackError(file, f"the trajectory id variable {name!r} has shape {values.shape}; expected one id "
+                         f"for each of the {n} trajectories", column=name)
     return np.array([str(v).strip() for v in values], dtype=object)
 
 
@@ -224,21 +233,58 @@ def _ragged_table(ds, count_name: str, file: str) -> CFTable:
     if counts.sum() != ds.sizes.get(obs_dim, -1):
         raise TrackError(file, f"the row sizes in {count_name!r} add up to {counts.sum()} fixes but dimension "
                          f"{obs_dim!r} has {ds.sizes.get(obs_dim)}")
-    names = [n for n, v in ds.variables.items() if v.dims == (obs_dim,) and n != count_name]
     trajectory = np.repeat(np.arange(counts.size, dtype=np.int64), counts)
-    ids = _trajectory_ids(ds, _track_id_variable(ds), counts.size)[trajectory]
+    return _sample_table(ds, obs_dim, count_name, trajectory, counts.size, file)
+
+
+def _indexed_table(ds, index_name: str, file: str) -> CFTable:
+    """The indexed ragged array (CF H.4.4): each observation's trajectory index in the variable whose
+    ``instance_dimension`` attribute names the trajectory dimension; observations in any order."""
+    var = ds[index_name]
+    n_traj = ds.sizes.get(str(var.attrs["instance_dimension"]))
+    if var.ndim != 1 or n_traj is None:
+        raise TrackError(file, f"the index variable {index_name!r} must be one-dimensional and its "
+                         f"instance_dimension {var.attrs['instance_dimension']!r} a dimension of the file")
+    index = np.asarray(var.values, dtype=np.float64)
+    bad = ~np.isfinite(index) | (index < 0) | (index >= n_traj) | (index != np.round(index))
+    if bad.any():
+        k = int(np.argmax(bad))
+        raise TrackError(file, f"the trajectory index {index[k]:g} is not one of the {n_traj} trajectories "
+                         f"(0…{n_traj - 1})", where=f"observation index {k}", column=index_name)
+    return _sample_table(ds, var.dims[0], index_name, index.astype(np.int64), n_traj, file)
+
+
+def _sample_table(ds, obs_dim: str, skip: str | None, trajectory: np.ndarray, n_traj: int, file: str) -> CFTable:
+    """The table of the variables on the sample dimension ``obs_dim`` (but ``skip``), fix k in trajectory
+    ``trajectory[k]``: the ragged layouts and the single trajectory."""
+    names = [n for n, v in ds.variables.items() if v.dims == (obs_dim,) and n != skip]
+    ids = _trajectory_ids(ds, _track_id_variable(ds), n_traj, file)[trajectory]
     columns, missing, sources = _columns(ds, names, file, lambda values: values)
-    columns = {"track_id": ids, **columns}
     observation = np.arange(trajectory.size, dtype=np.int64)
-    return _drop_missing(columns, missing, trajectory, observation, file, ragged=True, sources=sources)
+    return _drop_missing({"track_id": ids, **columns}, missing, trajectory, observation, file, ragged=True,
+                         sources=sources)
+
+
+def _single_table(ds, file: str) -> CFTable:
+    """A single trajectory (CF H.4.2): no trajectory dimension, time and positions on one dimension."""
+    positional = [n for n, v in ds.variables.items() if v.ndim == 1 and _is_position(n, v.attrs)]
+    if not positional:
+        raise TrackError(file, "is not a CF trajectory file driftwise understands: no count variable with "
+                         "'sample_dimension', no index variable with 'instance_dimension' and no position "
+                         "variables on (trajectory, obs) or on one observation dimension")
+    obs_dim = ds[positional[0]].dims[0]
+    return _sample_table(ds, obs_dim, None, np.zeros(ds.sizes[obs_dim], dtype=np.int64), 1, file)
+
+
+def _is_position(name: str, attrs: dict) -> bool:
+    return (_role_of(name, attrs) or ("",))[0] in ("lon", "lat", "x", "y")
 
 
 def _multidim_table(ds, file: str) -> CFTable:
     two_d = [n for n, v in ds.variables.items() if v.ndim == 2 and v.attrs.get("cf_role") != "trajectory_id"]
-    positional = [n for n in two_d if (_role_of(n, ds[n].attrs) or ("",))[0] in ("lon", "lat", "x", "y")]
+    positional = [n for n in two_d if _is_position(n, ds[n].attrs)]
     if not positional:
-        raise TrackError(file, "is not a CF trajectory file driftwise understands: no count variable with "
-                         "'sample_dimension' and no two-dimensional (trajectory, obs) positions")
+        return _single_table(ds, file)
     traj_dim, obs_dim = ds[positional[0]].dims
     shape = (ds.sizes[traj_dim], ds.sizes[obs_dim])
     names = [n for n, v in ds.variables.items() if v.dims == (traj_dim, obs_dim) and n in two_d]
@@ -246,7 +292,7 @@ def _multidim_table(ds, file: str) -> CFTable:
               == "time"]
     columns, missing, sources = _columns(ds, names, file, lambda values: np.broadcast_to(values, shape).reshape(-1))
     trajectory, observation = (a.reshape(-1) for a in np.indices(shape, dtype=np.int64))
-    ids = _trajectory_ids(ds, _track_id_variable(ds), shape[0])[trajectory]
+    ids = _trajectory_ids(ds, _track_id_variable(ds), shape[0], file)[trajectory]
     return _drop_missing({"track_id": ids, **columns}, missing, trajectory, observation, file, ragged=False,
                          sources=sources)
 
