@@ -2,10 +2,8 @@
 
 Everything here is about bytes and formats, not about tracks: path checks,
 gzip decompression with a size cap, recognising content that is not CSV,
-the delimiter, chunked CSV reading, Parquet, and NetCDF files that follow the
-CF discrete-sampling-geometry conventions for trajectories (CF Conventions
-1.8+, appendix H.4: contiguous ragged arrays and the orthogonal/incomplete
-multidimensional forms).  :mod:`driftwise.data.tracks` turns the tables into Tracks.
+the delimiter, chunked CSV reading and Parquet (CF trajectory NetCDF files are
+read by :mod:`driftwise.data.trackcf`).  :mod:`driftwise.data.tracks` turns the tables into Tracks.
 """
 
 from __future__ import annotations
@@ -20,7 +18,6 @@ from contextlib import contextmanager
 from pathlib import Path
 from typing import BinaryIO, Iterator
 
-import numpy as np
 import pandas as pd
 
 from ..errors import InputError
@@ -36,16 +33,21 @@ class TrackError(InputError):
     """A tracks file the user must fix: which file, which row and column, and what is wrong.
 
     ``row`` counts as a spreadsheet shows the table: the header is row 1 and the
-    first data record is row 2 (for Parquet, NetCDF and DataFrames too).
+    first data record is row 2 (for Parquet and DataFrames too).  ``where``
+    replaces the row where rows mean nothing to the user (a NetCDF file's
+    "trajectory index 2, observation index 5").
     """
 
-    def __init__(self, file: str, problem: str, *, row: int | None = None, column: str | None = None):
-        self.file, self.problem, self.row, self.column = str(file), problem, row, column
+    def __init__(self, file: str, problem: str, *, row: int | None = None, column: str | None = None,
+                 where: str | None = None):
+        self.file, self.problem, self.row, self.column, self.where = str(file), problem, row, column, where
         super().__init__(str(self))
 
     def __str__(self) -> str:
         where = self.file
-        if self.row is not None:
+        if self.where is not None:
+            where += f", {self.where}"
+        elif self.row is not None:
             where += f", row {self.row}"
         if self.column is not None:
             where += f", column {self.column!r}"
@@ -250,96 +252,3 @@ def read_parquet_frame(path: Path, file: str) -> pd.DataFrame:
         return pq.read_table(path).to_pandas()
     except (pa.ArrowException, OSError, ValueError) as err:
         raise TrackError(file, f"is not a readable Parquet file ({err})") from None
-
-
-# ---------------------------------------------------------------- NetCDF (CF trajectories)
-def read_netcdf_frame(path: Path, file: str) -> pd.DataFrame:
-    """A CF trajectory file (featureType = trajectory) as one row per fix.
-
-    Handles the contiguous ragged array (a count variable whose
-    ``sample_dimension`` attribute names the obs dimension) and the
-    orthogonal/incomplete multidimensional forms (variables on (trajectory, obs),
-    time on (obs) or (trajectory, obs); padding rows are dropped).
-    """
-    import xarray as xr
-
-    try:
-        ds = xr.open_dataset(path, decode_timedelta=False)
-    except Exception as err:  # xarray raises many types for unreadable files
-        raise TrackError(file, f"is not a readable NetCDF file ({type(err).__name__}: {err})") from None
-    with ds:
-        feature = str(ds.attrs.get("featureType", "trajectory"))
-        if feature.lower() != "trajectory":
-            raise TrackError(file, f"has featureType {feature!r}; driftwise reads CF trajectory files")
-        ragged = [name for name, v in ds.variables.items() if "sample_dimension" in v.attrs]
-        table = _ragged_table(ds, ragged[0], file) if ragged else _multidim_table(ds, file)
-    return table
-
-
-def _cf_variables(ds) -> dict[str, str]:
-    """Map roles (track_id, time, lon, lat, x, y, z) to variable names by CF attributes, then by name."""
-    roles: dict[str, str] = {}
-    by_standard = {"time": "time", "longitude": "lon", "latitude": "lat", "projection_x_coordinate": "x",
-                   "projection_y_coordinate": "y", "altitude": "z", "height": "z"}
-    for name, var in ds.variables.items():
-        if var.attrs.get("cf_role") == "trajectory_id":
-            roles.setdefault("track_id", name)
-        role = by_standard.get(str(var.attrs.get("standard_name", "")))
-        if role:
-            roles.setdefault(role, name)
-    for role, names in {"time": ("time",), "lon": ("lon", "longitude"), "lat": ("lat", "latitude"),
-                        "x": ("x", "x_m"), "y": ("y", "y_m"), "z": ("z", "z_m")}.items():
-        for name in names:
-            if role not in roles and name in ds.variables:
-                roles[role] = name
-    return roles
-
-
-def _trajectory_ids(ds, roles: dict[str, str], n: int) -> np.ndarray:
-    if "track_id" not in roles:
-        return np.array([str(i) for i in range(n)], dtype=object)
-    values = ds[roles["track_id"]].values
-    if values.dtype.kind == "S":
-        values = np.char.decode(values, "utf-8")
-    if values.ndim == 2 and values.dtype.kind in "SU":  # a char array (trajectory, strlen)
-        values = np.array(["".join(map(str, row)) for row in values])
-    return np.array([str(v).strip() for v in values], dtype=object)
-
-
-def _ragged_table(ds, count_name: str, file: str) -> pd.DataFrame:
-    roles, count_var = _cf_variables(ds), ds[count_name]
-    obs_dim = count_var.attrs["sample_dimension"]
-    counts = np.asarray(count_var.values, dtype=np.int64)
-    if counts.sum() != ds.sizes.get(obs_dim, -1):
-        raise TrackError(file, f"the row sizes in {count_name!r} add up to {counts.sum()} fixes but dimension "
-                         f"{obs_dim!r} has {ds.sizes.get(obs_dim)}")
-    columns = {"track_id": np.repeat(_trajectory_ids(ds, roles, counts.size), counts)}
-    for name, var in ds.variables.items():
-        if var.dims == (obs_dim,) and name != count_name:
-            columns[_role_name(roles, name)] = var.values
-    return pd.DataFrame(columns)
-
-
-def _multidim_table(ds, file: str) -> pd.DataFrame:
-    roles = _cf_variables(ds)
-    position = [roles[r] for r in ("lon", "lat", "x", "y") if r in roles]
-    if not position or ds[position[0]].ndim != 2:
-        raise TrackError(file, "is not a CF trajectory file driftwise understands: no count variable with "
-                         "'sample_dimension' and no two-dimensional (trajectory, obs) positions")
-    shape = ds[position[0]].shape
-    traj_dim, obs_dim = ds[position[0]].dims
-    columns = {"track_id": np.repeat(_trajectory_ids(ds, roles, shape[0]), shape[1])}
-    for name, var in ds.variables.items():
-        if var.dims == (traj_dim, obs_dim) or (name == roles.get("time") and var.dims == (obs_dim,)):
-            columns[_role_name(roles, name)] = np.broadcast_to(var.values, shape).reshape(-1)
-    table = pd.DataFrame(columns)
-    padding = table[[_role_name(roles, p) for p in position]].isna().all(axis=1)
-    return table.loc[~padding.to_numpy()].reset_index(drop=True)
-
-
-def _role_name(roles: dict[str, str], name: str) -> str:
-    """The table column for a NetCDF variable: its role if it has one, else its own name."""
-    for role, var_name in roles.items():
-        if var_name == name and role != "track_id":
-            return role
-    return name
