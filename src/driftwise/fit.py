@@ -59,6 +59,7 @@ import optax
 
 from . import field as fld
 from .errors import InputError
+from .observations import MIN_FIT_OBSERVATIONS
 from .variational import (CHUNK, chunks, exact_q, full_elbo, mean_speed_squared, natural_step, natural_step_jit,
                           take)
 
@@ -107,9 +108,9 @@ def _prepare(data, position_error_m: float) -> _Data:
         raise InputError(f"fit needs driftwise Tracks or Observations, got {type(data).__name__}")
     batch = fld.batch_from_observations(obs)
     _check_finite(batch)
-    if batch.position_m.shape[0] < 3:
-        raise InputError(f"fit needs at least 3 velocity observations (consecutive fixes of a track), "
-                         f"got {batch.position_m.shape[0]}")
+    if batch.position_m.shape[0] < MIN_FIT_OBSERVATIONS:
+        raise InputError(f"fit needs at least {MIN_FIT_OBSERVATIONS} velocity observations (consecutive fixes "
+                         f"of a track), got {batch.position_m.shape[0]}")
     from .frame import Frame
 
     frame = getattr(data, "frame", None) or getattr(obs, "frame", None) or Frame()
