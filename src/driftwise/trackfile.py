@@ -173,6 +173,10 @@ def sniff_text(head: bytes, file: str) -> str:
     return _delimiter(body.split("\n", 1)[0])
 
 
+_NUL_PROBLEM = ("contains a NUL byte (0x00) in this line; CSV text never holds one (a damaged or partly binary "
+                "file?): remove it or export the table again")
+
+
 def _stray_nul(head: bytes, file: str) -> TrackError | None:
     """A TrackError naming the line (and column) of the first NUL byte when the rest of ``head`` is plain
     UTF-8 text (a NUL in one field of a normal CSV); None when the content looks binary."""
@@ -185,10 +189,6 @@ def _stray_nul(head: bytes, file: str) -> TrackError | None:
     at = head.index(b"\x00")
     line = head.count(b"\n", 0, at) + 1
     return TrackError(file, _NUL_PROBLEM, row=line, column=_column_at(head, at, line))
-
-
-_NUL_PROBLEM = ("contains a NUL byte (0x00) in this line; CSV text never holds one (a damaged or partly binary "
-                "file?): remove it or export the table again")
 
 
 def _column_at(head: bytes, at: int, line: int) -> str | None:
@@ -283,11 +283,11 @@ def _header_line(head: bytes, stream: BinaryIO, file: str, delimiter: str) -> by
     columns = outside.count(delimiter.encode()) + 1
     if columns > MAX_COLUMNS:
         count = f"{columns:,} columns" if whole else \
-            f"at least {columns:,} columns in its first {MAX_HEADER_BYTES // 2**20} MiB"
+            f"at least {columns:,} columns in its first {MAX_HEADER_BYTES / 2**20:.3g} MiB"
         raise TrackError(file, f"the header (line 1) has {count}, more than the {MAX_COLUMNS:,} driftwise reads; "
                          "a tracks table needs an id, a time and two or three positions", row=1)
     if not whole:
-        raise TrackError(file, f"the header (line 1) is longer than {MAX_HEADER_BYTES // 2**20} MiB; is this a "
+        raise TrackError(file, f"the header (line 1) is longer than {MAX_HEADER_BYTES / 2**20:.3g} MiB; is this a "
                          "tracks table?", row=1)
     return header
 
