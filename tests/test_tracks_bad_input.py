@@ -373,8 +373,7 @@ def _wide_csv(path, n_columns: int):
     names = ["track_id", "time", "x", "y"] + [f"c{i}" for i in range(n_columns - 4)]
     with open(path, "w") as out:
         out.write(",".join(names) + "\n")
-        for t in (0, 60):
-            out.write(f"A,{t},1,2" + ",0" * (n_columns - 4) + "\n")
+        out.writelines(f"A,{t},1,2" + ",0" * (n_columns - 4) + "\n" for t in (0, 60))
     return path
 
 

@@ -2,11 +2,10 @@
 
 from __future__ import annotations
 
-import pytest
-
 import json
 
 import numpy as np
+import pytest
 
 from driftwise import field as fld
 from driftwise.errors import InputError

@@ -26,11 +26,11 @@ from dataclasses import dataclass
 import jax
 import numpy as np
 
-
 # The fewest velocity observations a fit accepts.  A track of m fixes gives m − 1 observations.
-# Three observations in 2-D carry six velocity components, as many numbers as the default
-# Helmholtz fit learns hyperparameters (two velocity scales, two length scales, K and σ₀);
-# with fewer, the data cannot pin them down (the ELBO is then set by the priors' starting values).
+# Counting argument (necessary, not sufficient): three observations in 2-D carry six velocity
+# components, as many numbers as the default Helmholtz fit learns hyperparameters (two velocity
+# scales, two length scales, K and σ₀); with fewer numbers than hyperparameters the ELBO has no
+# isolated maximum and the fit would only echo its starting values.
 MIN_FIT_OBSERVATIONS = 3
 
 
