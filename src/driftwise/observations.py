@@ -29,8 +29,8 @@ import numpy as np
 # The fewest velocity observations a fit accepts.  A track of m fixes gives m − 1 observations.
 # Counting argument (necessary, not sufficient): three observations in 2-D carry six velocity
 # components, as many numbers as the default Helmholtz fit learns hyperparameters (two velocity
-# scales, two length scales, K and σ₀); with fewer numbers than hyperparameters the ELBO has no
-# isolated maximum and the fit would only echo its starting values.
+# scales, two length scales, K and σ₀); with fewer numbers than hyperparameters the data cannot
+# determine them all.
 MIN_FIT_OBSERVATIONS = 3
 
 
