@@ -7,17 +7,11 @@ import json
 import numpy as np
 import pytest
 
-from driftwise import field as fld
+from driftwise.data.frame import Frame
 from driftwise.errors import InputError
-from driftwise.frame import Frame
-from driftwise.io import save_model
-from driftwise.units import (
-    parse_diffusivity_m2_s,
-    parse_duration_s,
-    parse_durations_s,
-    parse_length_m,
-    parse_speed_m_s,
-)
+from driftwise.gp import field as fld
+from driftwise.gp.modelfile import save_model
+from driftwise.units import parse_diffusivity_m2_s, parse_duration_s, parse_durations_s, parse_length_m, parse_speed_m_s
 
 
 @pytest.mark.parametrize(
