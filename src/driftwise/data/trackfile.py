@@ -9,6 +9,7 @@ read by :mod:`driftwise.data.trackcf`).  :mod:`driftwise.data.tracks` turns the 
 from __future__ import annotations
 
 import codecs
+import csv
 import gzip
 import io
 import os
@@ -24,6 +25,8 @@ from ..errors import InputError
 
 SNIFF_BYTES = 64 * 1024
 CSV_CHUNK_ROWS = 200_000
+MAX_COLUMNS = 10_000  # a header with more columns is refused from its first bytes (a tracks table has a handful)
+MAX_HEADER_BYTES = 4 * 2**20  # the header line is read at most this far; 10,000 names fit with room to spare
 MAX_DECOMPRESSED_BYTES = 8 * 2**30  # a .csv.gz that inflates past this is refused (decompression bomb)
 PARQUET_SUFFIXES = (".parquet", ".pq")
 NETCDF_SUFFIXES = (".nc", ".nc4", ".netcdf", ".cdf")
@@ -150,6 +153,10 @@ def sniff_text(head: bytes, file: str) -> str:
         if head.startswith(magics):
             raise TrackError(file, f"this is not CSV text: it looks like {looks_like}")
     if b"\x00" in head:
+        if not _looks_utf16(head):
+            stray = _stray_nul(head, file)
+            if stray is not None:
+                raise stray
         raise TrackError(file, "this is not CSV text: it looks like "
                          + ("UTF-16 text; save it as UTF-8" if _looks_utf16(head) else "binary data"))
     text = _decode_head(head, file)
@@ -166,6 +173,38 @@ def sniff_text(head: bytes, file: str) -> str:
         raise TrackError(file, f"contains the control character {ord(control.group()):#04x}; it looks like binary "
                          "data, not CSV text", row=row)
     return _delimiter(body.split("\n", 1)[0])
+
+
+_NUL_PROBLEM = ("contains a NUL byte (0x00) in this line; CSV text never holds one (a damaged or partly binary "
+                "file?): remove it or export the table again")
+
+
+def _stray_nul(head: bytes, file: str) -> TrackError | None:
+    """A TrackError naming the line (and column) of the first NUL byte when the rest of ``head`` is plain
+    UTF-8 text (a NUL in one field of a normal CSV); None when the content looks binary."""
+    try:
+        text = codecs.getincrementaldecoder("utf-8")().decode(head.replace(b"\x00", b""), final=False)
+    except UnicodeDecodeError:
+        return None
+    if re.search(r"[\x01-\x08\x0b\x0c\x0e-\x1f\x7f]", text):
+        return None
+    at = head.index(b"\x00")
+    line = head.count(b"\n", 0, at) + 1
+    return TrackError(file, _NUL_PROBLEM, row=line, column=_column_at(head, at, line))
+
+
+def _column_at(head: bytes, at: int, line: int) -> str | None:
+    """The header name of the field holding byte ``at`` of ``head`` (on ``line`` > 1), if it can be told cheaply."""
+    header_end = head.find(b"\n")
+    if line == 1 or header_end < 0:
+        return None
+    header = head[:header_end].rstrip(b"\r").lstrip(b"\xef\xbb\xbf").decode("utf-8", "replace")
+    delimiter = _delimiter(header)
+    names = next(csv.reader([header], delimiter=delimiter), [])
+    start = head.rfind(b"\n", 0, at) + 1
+    prefix = re.sub(r'"[^"]*"', "", head[start:at].replace(b"\x00", b"").decode("utf-8", "replace"))
+    field = prefix.count(delimiter)
+    return names[field] if field < len(names) else None
 
 
 def _looks_utf16(head: bytes) -> bool:
@@ -220,12 +259,85 @@ def read_csv_chunks(path: Path, file: str) -> tuple[str, Iterator[pd.DataFrame]]
     """
     with open_bytes(path) as stream:
         head = stream.read(SNIFF_BYTES)
-    delimiter = sniff_text(head, file)
+        delimiter = sniff_text(head, file)
+        header = _header_line(head, stream, file, delimiter)
+    check_header_names(_header_names(header, delimiter, file), file)
     return delimiter, _chunks(path, file, delimiter)
 
 
+def _header_line(head: bytes, stream: BinaryIO, file: str, delimiter: str) -> bytes:
+    """The first line's bytes (no line end), read at most MAX_HEADER_BYTES far.
+
+    Refuses, before any name is built, a header with more than MAX_COLUMNS
+    columns (delimiters outside quotes + 1) or one longer than the byte cap.
+    """
+    line, end = bytearray(head), head.find(b"\n")
+    while end < 0 and len(line) <= MAX_HEADER_BYTES:
+        block = stream.read(SNIFF_BYTES)
+        if not block:
+            break
+        end = block.find(b"\n")
+        end = end + len(line) if end >= 0 else -1
+        line += block
+    whole = 0 <= end <= MAX_HEADER_BYTES or (end < 0 and len(line) <= MAX_HEADER_BYTES)
+    header = bytes(line[: min(end if end >= 0 else len(line), MAX_HEADER_BYTES)]).rstrip(b"\r")
+    outside = re.sub(rb'"[^"]*"', b"", header) if b'"' in header else header
+    columns = outside.count(delimiter.encode()) + 1
+    if columns > MAX_COLUMNS:
+        count = f"{columns:,} columns" if whole else \
+            f"at least {columns:,} columns in its first {MAX_HEADER_BYTES / 2**20:.3g} MiB"
+        raise TrackError(file, f"the header (line 1) has {count}, more than the {MAX_COLUMNS:,} driftwise reads; "
+                         "a tracks table needs an id, a time and two or three positions", row=1)
+    if not whole:
+        raise TrackError(file, f"the header (line 1) is longer than {MAX_HEADER_BYTES / 2**20:.3g} MiB; is this a "
+                         "tracks table?", row=1)
+    return header
+
+
+def _header_names(header: bytes, delimiter: str, file: str) -> list[str]:
+    """The column names of the header line, as the CSV reader will see them (a UTF-8 BOM dropped)."""
+    try:
+        text = header.decode("utf-8").lstrip("\ufeff")
+    except UnicodeDecodeError as err:
+        raise _not_utf8(file, header, err.start) from None
+    return next(csv.reader([text], delimiter=delimiter, quotechar='"'), [])
+
+
+def check_header_names(names, file: str) -> None:
+    """Refuse a column name given twice (empty names, as after a trailing delimiter, are allowed)."""
+    seen: dict[str, int] = {}
+    for position, name in enumerate(names, start=1):
+        name = str(name)
+        if name.strip() == "":
+            continue
+        if name in seen:
+            raise TrackError(file, f"the column name {name!r} appears twice in the header (columns {seen[name]} "
+                             f"and {position}); rename or remove one", row=1, column=name)
+        seen[name] = position
+
+
+class _NulGuard(io.RawIOBase):
+    """Read-only stream that refuses a NUL byte, naming its line (bytes.find and count: memchr speed)."""
+
+    def __init__(self, inner: BinaryIO, *, file: str):
+        self._inner, self._file, self._lines = inner, file, 0
+
+    def readable(self) -> bool:
+        return True
+
+    def readinto(self, buffer) -> int:
+        data = self._inner.read(len(buffer))
+        at = data.find(b"\x00")
+        if at >= 0:
+            raise TrackError(self._file, _NUL_PROBLEM, row=self._lines + data.count(b"\n", 0, at) + 1)
+        self._lines += data.count(b"\n")
+        buffer[: len(data)] = data
+        return len(data)
+
+
 def _chunks(path: Path, file: str, delimiter: str) -> Iterator[pd.DataFrame]:
-    with open_bytes(path) as stream:
+    with open_bytes(path) as raw:
+        stream = io.BufferedReader(_NulGuard(raw, file=file), buffer_size=1 << 20)
         try:
             yield from pd.read_csv(stream, sep=delimiter, dtype=str, keep_default_na=False, na_values=[],
                                    skip_blank_lines=False, index_col=False, encoding="utf-8-sig", quotechar='"',

@@ -40,15 +40,15 @@ import pandas as pd
 from ..errors import InputError
 from ..units import parse_duration_s, parse_speed_m_s
 from .frame import Frame, frame_for
-from .observations import Observations, velocity_observations
+from .observations import MIN_FIT_OBSERVATIONS, Observations, velocity_observations
 from .trackcf import read_netcdf_frame
 from .trackfile import TrackError, check_path, file_format, read_csv_chunks, read_parquet_frame
 from .trackparse import TableParser, detect_layout
-from .trackqc import QCAction, clean, tiny_metre_span
+from .trackqc import QCAction, clean, plural, tiny_metre_span
 
 __all__ = ["Tracks", "Frame", "QCAction", "TrackError", "TrackWarning", "TrackNotice", "Observations",
            "read_tracks", "tracks_from_frame", "velocity_observations", "inspect_summary", "format_summary",
-           "read_tracks_from_cli"]
+           "read_tracks_from_cli", "fit_shortfall"]
 
 
 class TrackWarning(UserWarning):
@@ -218,6 +218,25 @@ def read_tracks_from_cli(args) -> Tracks:
     return read_tracks(args.tracks, max_speed_m_s=max_speed, max_gap_s=max_gap)
 
 
+def fit_shortfall(tracks: Tracks, *, calibrate: bool = False) -> str | None:
+    """Why a fit cannot start from ``tracks``, or None when it can.
+
+    A fit needs MIN_FIT_OBSERVATIONS velocity observations (see
+    :mod:`driftwise.data.observations`); a track of m fixes gives m − 1.  The
+    cross-validated calibration (``calibrate``) holds whole tracks out, two
+    folds, so it needs at least two tracks.
+    """
+    n_obs = tracks.n_fixes - tracks.n_tracks
+    have = (f"{plural(tracks.n_fixes, 'fix')} in {plural(tracks.n_tracks, 'track')} give "
+            f"{plural(n_obs, 'velocity observation')} (a track of m fixes gives m - 1)")
+    if n_obs < MIN_FIT_OBSERVATIONS:
+        return (f"{have}; fit needs at least {MIN_FIT_OBSERVATIONS} to learn its hyperparameters, e.g. one track "
+                f"of {MIN_FIT_OBSERVATIONS + 1} fixes or {MIN_FIT_OBSERVATIONS} tracks of 2")
+    if calibrate and tracks.n_tracks < 2:
+        return (f"{have}; the calibration of K and tau holds whole tracks out (2 folds), so it needs at least 2 "
+                "tracks: give more tracks, or --no-calibrate")
+    return None
+
 
 # ---------------------------------------------------------------- inspect
 def inspect_summary(tracks: Tracks) -> dict[str, Any]:
@@ -240,6 +259,9 @@ def inspect_summary(tracks: Tracks) -> dict[str, Any]:
         "qc": [{"name": a.name, "count": a.count, "level": a.level, "message": a.message} for a in tracks.qc],
         "extra_columns": sorted(tracks.extra),
     }
+    shortfall = fit_shortfall(tracks)
+    if shortfall:
+        summary["fit_warning"] = f"{tracks.source}: {shortfall}"
     if tracks.time_is_absolute:
         summary["time"].update(start_iso=_iso(start), end_iso=_iso(end))
     if tracks.frame.is_geographic:
@@ -269,6 +291,8 @@ def format_summary(summary: dict[str, Any]) -> str:
         lines.append("  extra        " + ", ".join(summary["extra_columns"]))
     lines.append("  QC           " + ("none needed" if not summary["qc"] else f"{len(summary['qc'])} actions"))
     lines += [f"    - [{a['level']}] {a['message']}" for a in summary["qc"]]
+    if summary.get("fit_warning"):
+        lines.append(f"  fit          warning: {summary['fit_warning']}")
     return "\n".join(lines)
 
 
