@@ -13,6 +13,7 @@ import tempfile
 from pathlib import Path
 from typing import Callable
 
+from .cfproducts import CAUTION, crs_attributes, discovery_attributes, spread_dataset
 from .errors import InputError
 
 
@@ -143,52 +144,8 @@ def write_spread_csv(spread, path) -> Path:
     return atomic_write_text(path, buffer.getvalue())
 
 
-def spread_dataset(spread):
-    """The Spread as an xarray Dataset with CF-1.8 attributes (dims release, time, component, level)."""
-    import json
-
-    import numpy as np
-    import xarray as xr
-
-    comp = list("xyz"[: spread.dim])
-    rel_dims, t_dims = ("release",), ("release", "time")
-    data = {
-        "start_time_s": (rel_dims, np.array([r.start_time_s for r in spread.releases]),
-                         {"units": "s", "long_name": "release start time on the model's time axis"}),
-        "start_m": (("release", "component"), np.stack([r.start_m for r in spread.releases]),
-                    {"units": "m", "long_name": "release position in the local frame"}),
-        "mean_m": (t_dims + ("component",), spread.means, {"units": "m", "long_name": "mean position in the local frame"}),
-        "covariance_m2": (t_dims + ("component", "component2"), spread.covs,
-                          {"units": "m2", "long_name": "position covariance"}),
-        "semi_major_m": (t_dims + ("level",), spread.semi_axes_m[..., 0],
-                         {"units": "m", "long_name": "semi-major axis of the horizontal probability ellipse"}),
-        "semi_minor_m": (t_dims + ("level",), spread.semi_axes_m[..., 1],
-                         {"units": "m", "long_name": "semi-minor axis of the horizontal probability ellipse"}),
-        "orientation_deg": (t_dims, spread.orientation_deg,
-                            {"units": "degree", "long_name": "major-axis angle counter-clockwise from local +x (east)"}),
-    }
-    if spread.mean_lonlat is not None:
-        data["lon"] = (t_dims, spread.mean_lonlat[..., 0], {"units": "degrees_east", "standard_name": "longitude",
-                                                            "long_name": "mean longitude"})
-        data["lat"] = (t_dims, spread.mean_lonlat[..., 1], {"units": "degrees_north", "standard_name": "latitude",
-                                                            "long_name": "mean latitude"})
-    if spread.probability is not None:
-        data["probability_inside"] = (t_dims, spread.probability,
-                                      {"units": "1", "long_name": "probability of being inside the polygon"})
-        data["polygon_m"] = (("vertex", "component_xy"), spread.polygon_m, {"units": "m", "long_name": "polygon vertices"})
-    coords = {"release": ("release", np.array([r.name for r in spread.releases], dtype=object),
-                          {"long_name": "release name"}),
-              "time": ("time", np.asarray(spread.times_s), {"units": "s", "long_name": "time since the release"}),
-              "component": ("component", comp), "component2": ("component2", comp),
-              "level": ("level", np.array(spread.levels), {"units": "1", "long_name": "probability level of the ellipse"})}
-    attrs = {"Conventions": "CF-1.8", "title": "driftwise spread forecast", "method": spread.method,
-             "source": "driftwise", "frame": json.dumps(spread.frame.to_dict()) if spread.frame is not None else "",
-             "comment": "Caution: a research forecast; validate locally and defer to the responsible authorities."}
-    return xr.Dataset(data, coords=coords, attrs=attrs)
-
-
 def write_spread_netcdf(spread, path) -> Path:
-    """Write :func:`spread_dataset` as NetCDF-4 (h5netcdf engine), atomically."""
+    """Write :func:`cfproducts.spread_dataset` (a CF trajectory file) as NetCDF-4 (h5netcdf engine), atomically."""
     dataset = spread_dataset(spread)
     return atomic_write(path, lambda tmp: dataset.to_netcdf(tmp, engine="h5netcdf"))
 
@@ -453,9 +410,10 @@ def load_model(path):
 # ---------------------------------------------------------------- gridded field (physics.py, `driftwise map`)
 FIELD_GRID_SUFFIXES = (".nc", ".csv")
 SUPPORT_MEANING = "unsupported supported"
-_GEO_NAMES = {  # CF standard names (CF standard name table, from memory; checked against the table's spelling)
+_GEO_NAMES = {  # CF standard names, checked against the table bundled with compliance-checker (v93); the
+    # table has no divergence of sea-water velocity, so divergence carries a long_name only
     "eastward": "eastward_sea_water_velocity", "northward": "northward_sea_water_velocity",
-    "divergence": "divergence_of_sea_water_velocity", "vorticity": "ocean_relative_vorticity"}
+    "vorticity": "ocean_relative_vorticity"}
 
 
 def _grid_variables(grid) -> list[tuple[str, object, dict]]:
@@ -468,7 +426,7 @@ def _grid_variables(grid) -> list[tuple[str, object, dict]]:
         what = "true-east" if comp == "eastward" else "true-north" if comp == "northward" else f"local-frame {comp}"
         for kind, values in (("", grid.mean_m_s[..., c]), ("_std", grid.std_m_s[..., c])):
             attrs = {"units": "m s-1", "long_name": f"posterior {'standard deviation' if kind else 'mean'} of the "
-                                                     f"{what} velocity component"}
+                                                     f"{what} velocity component", "coverage_content_type": "modelResult"}
             if geo:
                 attrs["standard_name"] = _GEO_NAMES[comp] + (" standard_error" if kind else "")
             out.append((f"{comp}_velocity{kind}_m_s", values, attrs))
@@ -476,62 +434,65 @@ def _grid_variables(grid) -> list[tuple[str, object, dict]]:
                                       ("vorticity", grid.vorticity_s, grid.vorticity_std_s,
                                        "relative vorticity ∂v/∂x − ∂u/∂y")):
         for kind, values in (("", mean), ("_std", std)):
-            attrs = {"units": "s-1", "long_name": f"posterior {'standard deviation' if kind else 'mean'} of the {text}"}
-            if geo:
+            attrs = {"units": "s-1", "long_name": f"posterior {'standard deviation' if kind else 'mean'} of the {text}",
+                     "coverage_content_type": "modelResult"}
+            if geo and quantity in _GEO_NAMES:
                 attrs["standard_name"] = _GEO_NAMES[quantity] + (" standard_error" if kind else "")
             if quantity in grid.reasons:
                 attrs["comment"] = "identically zero: " + grid.reasons[quantity]
             out.append((f"{quantity}{kind}_per_s", values, attrs))
     out.append(("variance_ratio", grid.variance_ratio, {
-        "units": "1", "long_name": "posterior over prior velocity variance, tr(posterior cov)/tr(prior cov)"}))
+        "units": "1", "long_name": "posterior over prior velocity variance, tr(posterior cov)/tr(prior cov)",
+        "coverage_content_type": "qualityInformation"}))
     out.append(("supported", grid.supported.astype("int8"), {
         "long_name": "data support: 1 where the posterior velocity variance is below half the prior variance",
-        "flag_values": np.array([0, 1], dtype="int8"), "flag_meanings": SUPPORT_MEANING}))
+        "flag_values": np.array([0, 1], dtype="int8"), "flag_meanings": SUPPORT_MEANING,
+        "coverage_content_type": "qualityInformation"}))
     return out
 
 
 def field_grid_dataset(grid):
-    """A physics.FieldGrid as an xarray Dataset with CF-1.8 attributes (dims y_m, x_m).
+    """A physics.FieldGrid as an xarray Dataset with CF-1.11 and ACDD-1.3 attributes (dims y_m, x_m).
 
-    Coordinates x_m, y_m (projection_x/y_coordinate, m, increasing); for a lon/lat model also
-    2-D auxiliary lon_deg, lat_deg (named in each variable's ``coordinates`` attribute) and a
-    ``crs`` grid mapping (azimuthal_equidistant on WGS 84; CF-1.8 appendix F, from memory).
+    Coordinates x_m, y_m (projection_x/y_coordinate, m, increasing, no _FillValue); for a lon/lat
+    model also 2-D auxiliary lon_deg, lat_deg (named in each variable's ``coordinates`` attribute)
+    and a ``crs`` grid mapping (azimuthal_equidistant on WGS 84; CF-1.11 appendix F).
     """
     import json
 
     import numpy as np
     import xarray as xr
 
-    from . import __version__
-
-    dims = ("y_m", "x_m")           # coordinate variables named as their dimensions (CF-1.8 §1.3)
-    coords = {"x_m": ("x_m", np.asarray(grid.x_m, float), {
-                  "standard_name": "projection_x_coordinate", "units": "m", "axis": "X",
-                  "long_name": "x (east) in the model's local metric frame"}),
-              "y_m": ("y_m", np.asarray(grid.y_m, float), {
-                  "standard_name": "projection_y_coordinate", "units": "m", "axis": "Y",
-                  "long_name": "y (north) in the model's local metric frame"})}
+    dims = ("y_m", "x_m")           # coordinate variables named as their dimensions (CF-1.11 §1.3)
+    coords = {axis: (axis, np.asarray(getattr(grid, axis), float), {
+                  "standard_name": f"projection_{axis[0]}_coordinate", "units": "m", "axis": axis[0].upper(),
+                  "long_name": f"{axis[0]} ({'east' if axis[0] == 'x' else 'north'}) in the model's local metric frame",
+                  "coverage_content_type": "coordinate"}) for axis in ("x_m", "y_m")}
     data = {name: (dims, np.asarray(values), attrs) for name, values, attrs in _grid_variables(grid)}
     frame = grid.frame.to_dict() if hasattr(grid.frame, "to_dict") else dict(grid.frame or {})
-    if grid.lon_deg is not None:
-        coords["lon_deg"] = (dims, grid.lon_deg, {"standard_name": "longitude", "units": "degrees_east",
-                                                  "long_name": "longitude (WGS 84)"})
-        coords["lat_deg"] = (dims, grid.lat_deg, {"standard_name": "latitude", "units": "degrees_north",
-                                                  "long_name": "latitude (WGS 84)"})
-        data["crs"] = ((), np.int32(0), {
-            "grid_mapping_name": "azimuthal_equidistant", "longitude_of_projection_origin": frame["lon0_deg"],
-            "latitude_of_projection_origin": frame["lat0_deg"], "false_easting": 0.0, "false_northing": 0.0,
-            "semi_major_axis": 6378137.0, "inverse_flattening": 298.257223563, "proj4_text": frame.get("proj", "")})
+    geo = grid.lon_deg is not None
+    if geo:
+        for name, values, axis in (("lon_deg", grid.lon_deg, "longitude"), ("lat_deg", grid.lat_deg, "latitude")):
+            coords[name] = (dims, values, {"standard_name": axis, "units": f"degrees_{'east' if name[1] == 'o' else 'north'}",
+                                           "long_name": f"{axis} (WGS 84)", "coverage_content_type": "coordinate"})
+        data["crs"] = ((), np.int32(0), crs_attributes(frame))
         for name, _, attrs in _grid_variables(grid):
             data[name][2]["grid_mapping"] = "crs"
-    attrs = {"Conventions": "CF-1.8", "title": "driftwise gridded flow field",
-             "source": f"driftwise {__version__}", "kernel_family": grid.kernel_family,
-             "frame": json.dumps(frame, sort_keys=True),
-             "grid_spacing_m": float(grid.x_m[1] - grid.x_m[0]) if len(grid.x_m) > 1 else 0.0,
-             "comment": "Posterior of a Gaussian-process fit to drifter tracks; derivatives are exact for the GP. "
-                        "Caution: a research product; validate locally and defer to the responsible authorities."}
+    attrs = discovery_attributes(
+        "driftwise gridded flow field",
+        "Posterior of a Gaussian-process fit to drifter tracks on a regular grid: mean velocity and its standard "
+        "deviation, divergence and relative vorticity with their standard deviations (exact GP derivatives), "
+        "and a data-support mask.", "ocean currents, drifter, surface velocity, divergence, vorticity, uncertainty",
+        lonlat=(grid.lon_deg, grid.lat_deg) if geo else None)
+    attrs.update(kernel_family=grid.kernel_family, frame=json.dumps(frame, sort_keys=True),
+                 grid_spacing_m=float(grid.x_m[1] - grid.x_m[0]) if len(grid.x_m) > 1 else 0.0,
+                 comment="Posterior of a Gaussian-process fit to drifter tracks; derivatives are exact for the GP. "
+                         + CAUTION)
     dataset = xr.Dataset(data, coords=coords, attrs=attrs)
-    if grid.lon_deg is not None:   # name only the auxiliary coordinates (CF-1.8 §5)
+    for name in ("x_m", "y_m", "lon_deg", "lat_deg"):
+        if name in dataset.variables:
+            dataset[name].encoding["_FillValue"] = None        # no _FillValue on coordinates (CF-1.11 §2.5.1)
+    if geo:   # name only the auxiliary coordinates (CF-1.11 §5)
         for name, _, _ in _grid_variables(grid):
             dataset[name].encoding["coordinates"] = "lon_deg lat_deg"
     return dataset
