@@ -15,6 +15,8 @@ from typing import Callable
 
 from .cfproducts import CAUTION, crs_attributes, discovery_attributes, spread_dataset
 from .errors import InputError
+from .spreadgeojson import spread_geojson
+from .utctime import iso_utc
 
 
 def atomic_write(path: str | os.PathLike, write: Callable[[Path], None]) -> Path:
@@ -70,37 +72,51 @@ def _floats(array) -> list:
 
 
 def spread_to_dict(spread) -> dict:
-    """The JSON contract of a Spread: ``method``, ``releases`` (each ``name``, ``start`` (d,) m,
-    ``start_time_s``, ``times_s`` (T,) since the release, ``mean`` (T, d) m, ``covariance`` (T, d, d) m²,
-    ``ellipses`` per level, and ``mean_lonlat``/``start_lonlat`` for a lon/lat model, ``probability_inside``
-    and ``first_arrival_s`` with a polygon)."""
-    lonlat = spread.mean_lonlat is not None
-    releases = []
-    for r, rel in enumerate(spread.releases):
-        entry = {"name": rel.name, "start": _floats(rel.start_m), "start_time_s": rel.start_time_s,
-                 "times_s": _floats(spread.times_s), "mean": _floats(spread.means[r]),
-                 "covariance": _floats(spread.covs[r])}
-        if lonlat:
-            entry["start_lonlat"] = _floats(spread.mean_lonlat[r, 0])
-            entry["mean_lonlat"] = _floats(spread.mean_lonlat[r])
-        entry["ellipses"] = [{"level": level, "semi_major_m": _floats(spread.semi_axes_m[r, :, i, 0]),
-                              "semi_minor_m": _floats(spread.semi_axes_m[r, :, i, 1]),
-                              "orientation_deg": _floats(spread.orientation_deg[r])}
-                             for i, level in enumerate(spread.levels)]
-        if spread.probability is not None:
-            entry["probability_inside"] = _floats(spread.probability[r])
-        if spread.first_arrival_s is not None:
-            entry["first_arrival_s"] = spread.first_arrival_s[r]
-        releases.append(entry)
+    """The JSON contract of a Spread: ``method``, ``time_origin_utc`` (ISO-8601 of the model's time zero, or
+    None), ``releases`` (each ``name``, ``start`` (d,) m, ``start_time_s``, ``times_s`` (T,) since the release,
+    ``mean`` (T, d) m, ``covariance`` (T, d, d) m², ``ellipses`` per level with ``bearing_deg`` (clockwise
+    from north) and ``angle_ccw_from_east_deg``, ``start_time_utc``/``times_utc`` when the time origin is
+    known, ``mean_lonlat``/``start_lonlat`` for a lon/lat model, ``probability_inside`` and
+    ``first_arrival_s`` with a polygon)."""
+    releases = [_release_dict(spread, r) for r in range(len(spread.releases))]
     out = {"method": spread.method, "dimension": spread.dim,
            "frame": spread.frame.to_dict() if spread.frame is not None else None,
+           "time_origin_utc": spread.time_origin_utc,
            "units": {"times_s": "s since the release", "mean": "m (local frame)", "covariance": "m2",
-                     "mean_lonlat": "degrees (lon, lat, WGS84)", "orientation_deg": "degrees counter-clockwise from +x (east)"},
+                     "mean_lonlat": "degrees (lon, lat, WGS84)", "times_utc": "ISO-8601 UTC",
+                     "bearing_deg": "degrees clockwise from north (true north for a lon/lat model, else local +y), "
+                                    "in [0, 180): the major axis has no sense",
+                     "angle_ccw_from_east_deg": "degrees counter-clockwise from local +x (east), in (-90, 90]"},
            "releases": releases}
     if spread.polygon_m is not None:
         out["polygon_m"] = _floats(spread.polygon_m)
         out["threshold"] = spread.threshold
     return out
+
+
+def _release_dict(spread, r: int) -> dict:
+    rel = spread.releases[r]
+    entry = {"name": rel.name, "start": _floats(rel.start_m), "start_time_s": rel.start_time_s,
+             "times_s": _floats(spread.times_s), "mean": _floats(spread.means[r]), "covariance": _floats(spread.covs[r])}
+    if spread.time_origin_utc is not None:
+        entry["start_time_utc"], entry["times_utc"] = spread.start_times_utc[r], spread.times_utc(r)
+    if spread.mean_lonlat is not None:
+        entry["start_lonlat"] = _floats(spread.mean_lonlat[r, 0])
+        entry["mean_lonlat"] = _floats(spread.mean_lonlat[r])
+    bearing, angle = _floats(spread.bearing_deg[r]), _floats(spread.orientation_deg[r])
+    entry["ellipses"] = [{"level": level, "semi_major_m": _floats(spread.semi_axes_m[r, :, i, 0]),
+                          "semi_minor_m": _floats(spread.semi_axes_m[r, :, i, 1]),
+                          "bearing_deg": bearing, "angle_ccw_from_east_deg": angle}
+                         for i, level in enumerate(spread.levels)]
+    if spread.probability is not None:
+        entry["probability_inside"] = _floats(spread.probability[r])
+    if spread.first_arrival_s is not None:
+        arrival = spread.first_arrival_s[r]
+        entry["first_arrival_s"] = arrival
+        if spread.time_origin_utc is not None:
+            entry["first_arrival_utc"] = None if arrival is None else iso_utc(spread.time_origin_utc,
+                                                                              rel.start_time_s + arrival)
+    return entry
 
 
 def write_spread_json(spread, path) -> Path:
@@ -115,27 +131,33 @@ def _spread_rows(spread):
 
     axes_names = "xyz"[: spread.dim]
     pairs = [(i, j) for i in range(spread.dim) for j in range(i, spread.dim)]
-    header = ["release", "start_time_s", "time_s"] + [f"{a}_m" for a in axes_names]
-    header += [f"cov_{axes_names[i]}{axes_names[j]}_m2" for i, j in pairs]
-    header += ["semi_major_50_m", "semi_minor_50_m", "semi_major_95_m", "semi_minor_95_m", "orientation_deg"]
+    absolute = spread.time_origin_utc is not None
+    header = ["release", "start_time_s", "time_s"] + (["start_time_utc", "time_utc"] if absolute else [])
+    header += [f"{a}_m" for a in axes_names] + [f"cov_{axes_names[i]}{axes_names[j]}_m2" for i, j in pairs]
+    header += ["semi_major_50_m", "semi_minor_50_m", "semi_major_95_m", "semi_minor_95_m", "bearing_deg",
+               "angle_ccw_from_east_deg"]
     header += ["lon_deg", "lat_deg"] if spread.mean_lonlat is not None else []
     header += ["probability_inside"] if spread.probability is not None else []
     i50, i95 = spread.levels.index(0.5), spread.levels.index(0.95)
+    bearing = spread.bearing_deg
     yield header
     for r, rel in enumerate(spread.releases):
+        stamps = spread.times_utc(r) if absolute else None
         for t, time_s in enumerate(spread.times_s):
-            row = [csv_safe_text(rel.name), rel.start_time_s, float(time_s)] + list(spread.means[r, t])
-            row += [spread.covs[r, t, i, j] for i, j in pairs]
+            row = [csv_safe_text(rel.name), rel.start_time_s, float(time_s)]
+            row += [spread.start_times_utc[r], stamps[t]] if absolute else []
+            row += list(spread.means[r, t]) + [spread.covs[r, t, i, j] for i, j in pairs]
             row += list(spread.semi_axes_m[r, t, i50]) + list(spread.semi_axes_m[r, t, i95])
-            row += [spread.orientation_deg[r, t]]
+            row += [bearing[r, t], spread.orientation_deg[r, t]]
             row += list(spread.mean_lonlat[r, t]) if spread.mean_lonlat is not None else []
             row += [spread.probability[r, t]] if spread.probability is not None else []
             yield [cell if isinstance(cell, str) else repr(float(cell)) for cell in row]
 
 
 def write_spread_csv(spread, path) -> Path:
-    """One row per release and output time: release, start_time_s, time_s, x_m, y_m[, z_m], the upper
-    covariance entries (m²), semi-axes of the 50 % and 95 % ellipses (m), orientation, lon/lat when known."""
+    """One row per release and output time: release, start_time_s, time_s[, start_time_utc, time_utc (ISO-8601,
+    when the model knows its time origin)], x_m, y_m[, z_m], the upper covariance entries (m²), semi-axes of the
+    50 % and 95 % ellipses (m), bearing_deg (clockwise from north) and angle_ccw_from_east_deg, lon/lat when known."""
     import csv
     import io as _io
 
@@ -148,49 +170,6 @@ def write_spread_netcdf(spread, path) -> Path:
     """Write :func:`cfproducts.spread_dataset` (a CF trajectory file) as NetCDF-4 (h5netcdf engine), atomically."""
     dataset = spread_dataset(spread)
     return atomic_write(path, lambda tmp: dataset.to_netcdf(tmp, engine="h5netcdf"))
-
-
-def _ccw_ring(lon, lat) -> list:
-    """Closed RFC 7946 exterior ring: counter-clockwise in lon/lat, first point repeated last."""
-    import numpy as np
-
-    ring = np.stack([lon, lat], -1)
-    x, y = ring[:, 0], ring[:, 1]
-    if np.sum(x * np.roll(y, -1) - np.roll(x, -1) * y) < 0:
-        ring = ring[::-1]
-    ring = np.round(np.concatenate([ring, ring[:1]]), 7)
-    return ring.tolist()
-
-
-def spread_geojson(spread, *, n: int = 72) -> dict:
-    """RFC 7946 FeatureCollection: a Polygon per release, time and level (properties release, time_s,
-    start_time_s, level, semi-axes) and a LineString of each mean path; lon/lat WGS84 only."""
-    import numpy as np
-
-    if spread.frame is None or getattr(spread.frame, "kind", "metric") != "lonlat":
-        raise InputError("GeoJSON (RFC 7946) holds WGS84 lon/lat only, but this model was fitted in a local "
-                         "metric frame; write .json, .csv or .nc instead")
-    features = []
-    for i, level in enumerate(spread.levels):
-        rings = spread.ellipses(level, n)                                     # (R, T, n, 2) metres
-        lon, lat = spread.frame.to_lonlat(rings.reshape(-1, 2))
-        lon, lat = np.asarray(lon).reshape(rings.shape[:-1]), np.asarray(lat).reshape(rings.shape[:-1])
-        if np.any(np.ptp(lon, axis=-1) > 180.0):
-            raise InputError("GeoJSON: an ellipse crosses the antimeridian, which this writer does not split; "
-                             "write .json, .csv or .nc instead")
-        for r, rel in enumerate(spread.releases):
-            for t, time_s in enumerate(spread.times_s):
-                props = {"release": rel.name, "kind": "ellipse", "time_s": float(time_s), "start_time_s": rel.start_time_s,
-                         "level": level, "semi_major_m": float(spread.semi_axes_m[r, t, i, 0]),
-                         "semi_minor_m": float(spread.semi_axes_m[r, t, i, 1])}
-                features.append({"type": "Feature", "properties": props,
-                                 "geometry": {"type": "Polygon", "coordinates": [_ccw_ring(lon[r, t], lat[r, t])]}})
-    for r, rel in enumerate(spread.releases):
-        path = np.round(spread.mean_lonlat[r], 7).tolist()
-        features.append({"type": "Feature", "properties": {"release": rel.name, "kind": "mean_path",
-                                                           "start_time_s": rel.start_time_s},
-                         "geometry": {"type": "LineString", "coordinates": path}})
-    return {"type": "FeatureCollection", "features": features}
 
 
 def write_spread_geojson(spread, path) -> Path:
