@@ -17,6 +17,7 @@ from typing import Any, Callable
 
 from . import __version__
 from .errors import InputError
+from .utctime import default_start_time_s, seconds_since_origin
 
 CAUTION = (
     "Caution: driftwise is a research tool. Forecasts that may guide spill response, "
@@ -118,6 +119,10 @@ def _add_spread(sub: argparse._SubParsersAction) -> None:
                    "LON,LAT degrees for a model fitted on lon/lat tracks; repeat for more releases")
     p.add_argument("--releases", metavar="FILE", help="CSV of releases: columns x,y[,z] (metres) or lon,lat "
                    "(degrees), optional start_time (seconds or ISO-8601), name, sd_m (release uncertainty, metres)")
+    p.add_argument("--start", default=None, metavar="TIME",
+                   help="release time of the --release points: ISO-8601 (UTC unless a zone is given) or seconds on "
+                   "the model's time axis (default: the model's last observation for tracks with absolute times, "
+                   "else 0)")
     p.add_argument("--horizon", default="2d", help="forecast length (default 2d)")
     p.add_argument("--every", default="1h", help="output interval (default 1h)")
     p.add_argument("--method", choices=_SPREAD_METHODS, default="cubature",
@@ -176,10 +181,28 @@ def _parse_release(text: str, frame, dim: int):
     return list(frame.from_lonlat([lon], [lat])[0]) + z
 
 
-def _spread_releases(args: argparse.Namespace, frame, dim: int):
+def _start_time_s(args: argparse.Namespace, model) -> float:
+    """--start as seconds on the model's time axis (ISO-8601 → seconds since its Unix-epoch origin)."""
+    absolute = model.data_summary.get("time_origin_utc") is not None
+    if args.start is None:
+        return default_start_time_s(model.data_summary)
+    try:
+        return float(args.start)
+    except ValueError:
+        pass
+    if not absolute:
+        raise InputError(f"--start {args.start!r}: this model was fitted on relative times (no calendar date), "
+                         "so give the release time in seconds on its time axis")
+    seconds = seconds_since_origin(model.data_summary["time_origin_utc"], args.start)
+    if seconds is None:
+        raise InputError(f"--start {args.start!r}: not a number of seconds or an ISO-8601 time")
+    return seconds
+
+
+def _spread_releases(args: argparse.Namespace, frame, dim: int, start_s: float = 0.0):
     from .spread import Release, as_releases, read_releases
 
-    releases = [Release(_parse_release(text, frame, dim)) for text in args.release]
+    releases = [Release(_parse_release(text, frame, dim), start_time_s=start_s) for text in args.release]
     if args.releases:
         releases += list(read_releases(args.releases, frame=frame, dim=dim))
     if not releases:
@@ -222,7 +245,7 @@ def _run_spread(args: argparse.Namespace) -> int:
         raise InputError("--out .geojson: GeoJSON (RFC 7946) holds lon/lat only, but this model was fitted in a local "
                          "metric frame; write .json, .csv or .nc instead")
     times = _output_times_s(args)
-    releases = _spread_releases(args, model.frame, model.dim)
+    releases = _spread_releases(args, model.frame, model.dim, _start_time_s(args, model))
     forecast = model.spread(releases, times, **_spread_options(args, model.frame))
     written = [str(write_spread(forecast, out)) for out in args.out]
     if args.json:

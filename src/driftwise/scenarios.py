@@ -18,6 +18,8 @@ from typing import Any
 
 import numpy as np
 
+from .utctime import default_start_time_s
+
 HOUR_S = 3600.0
 
 # Sites of the invented scenarios, in metres of the frame the demo data were generated in
@@ -76,8 +78,9 @@ def forecast_scenarios(field: Any, settings: Any) -> tuple[Any, Any, np.ndarray,
     harbour, outfall = sites_in_frame(field.frame, [HARBOUR_MOUTH_M, OUTFALL_M])
     times = s.every_s * np.arange(int(round(s.horizon_s / s.every_s)) + 1)
     starts = HOUR_S * np.arange(s.outfall_hours)
-    releases = [Release(harbour, cov0_m2=s.spill_sd_m**2 * np.eye(2), name="fuel spill")]
-    releases += [Release(outfall, start_time_s=t0, cov0_m2=OUTFALL_SD_M**2 * np.eye(2),
+    base = default_start_time_s(getattr(field, "data_summary", None))   # the data's end on an absolute axis
+    releases = [Release(harbour, start_time_s=base, cov0_m2=s.spill_sd_m**2 * np.eye(2), name="fuel spill")]
+    releases += [Release(outfall, start_time_s=base + t0, cov0_m2=OUTFALL_SD_M**2 * np.eye(2),
                          name=f"outfall +{t0 / HOUR_S:g} h") for t0 in starts]
     both = spread_from_field(field, releases, times, polygon_m=sites_in_frame(field.frame, SHELLFISH_BED_M),
                              threshold=s.threshold)

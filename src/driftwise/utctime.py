@@ -47,3 +47,26 @@ def iso_utc(origin_utc: str, seconds: Any) -> Any:
 def cf_time_units(origin_utc: str) -> str:
     """CF time units ``seconds since YYYY-MM-DDThh:mm:ssZ`` for the origin (CF-1.11 §4.4, UDUNITS syntax)."""
     return "seconds since " + iso_utc(origin_utc, 0.0)
+
+
+def default_start_time_s(data_summary: dict | None) -> float:
+    """Release time for releases given without one: the model's last velocity observation (the midpoint of
+    its last track segment, ``time_span_s[1]``) when the model knows its time origin, so that a forecast
+    starts where the data end; 0 on a relative time axis (and for model files without the record)."""
+    summary = data_summary or {}
+    span = summary.get("time_span_s")
+    if summary.get("time_origin_utc") is None or not span:
+        return 0.0
+    return float(span[1])
+
+
+def seconds_since_origin(origin_utc: str, text: str) -> float | None:
+    """Seconds from the origin to the ISO-8601 time ``text`` (a zone offset is converted; no zone = UTC),
+    or None when ``text`` is not an ISO-8601 time."""
+    import pandas as pd
+
+    stamp = pd.to_datetime(pd.Series([str(text)]), format="ISO8601", utc=True, errors="coerce")[0]
+    if pd.isna(stamp):
+        return None
+    delta = stamp.as_unit("us") - pd.Timestamp(origin_datetime64(origin_utc), tz="UTC").as_unit("us")
+    return delta // pd.Timedelta(microseconds=1) / 1e6
