@@ -78,18 +78,22 @@ def _bay_field(frame, summary_extra=None):
 
 @pytest.fixture(scope="module")
 def netcdf_products(tmp_path_factory):
-    """Every NetCDF product driftwise writes: spread (lon/lat with a time origin, metric without, 3-D) and map."""
+    """Every NetCDF product driftwise writes: spread (lon/lat or metric frame, with or without a time origin,
+    3-D) and map (lon/lat and metric)."""
     out = tmp_path_factory.mktemp("cf")
     paths = {"spread_lonlat": write_spread(_spread(), out / "spread_lonlat.nc"),
              "spread_metric": write_spread(_spread(None, origin=None, polygon=False), out / "spread_metric.nc"),
-             "spread_3d": write_spread(_spread(None, dim=3, origin=None), out / "spread_3d.nc")}
+             "spread_3d": write_spread(_spread(None, dim=3, origin=None), out / "spread_3d.nc"),
+             "spread_lonlat_relative": write_spread(_spread(origin=None), out / "spread_lonlat_relative.nc"),
+             "spread_metric_absolute": write_spread(_spread(None, polygon=False), out / "spread_metric_absolute.nc")}
     for name, frame in (("map_lonlat", FRAME), ("map_metric", Frame())):
         paths[name] = write_field_grid(P.field_grid(_bay_field(frame), spacing_m=1000.0), out / f"{name}.nc")
     return paths
 
 
 # ------------------------------------------------------------------------------------------- CF checkers
-@pytest.mark.parametrize("product", ["spread_lonlat", "spread_metric", "spread_3d", "map_lonlat", "map_metric"])
+@pytest.mark.parametrize("product", ["spread_lonlat", "spread_metric", "spread_3d", "spread_lonlat_relative",
+                                     "spread_metric_absolute", "map_lonlat", "map_metric"])
 def test_every_netcdf_product_passes_both_cf_checkers(netcdf_products, product):
     path = netcdf_products[product]
     suite = cf_checkers.newest_cf_suite()                       # cf:1.11 with compliance-checker 6.1
@@ -157,7 +161,7 @@ def test_spread_netcdf_is_a_trajectory_file_with_cf_time(netcdf_products):
         np.testing.assert_allclose(ds["lon"].values, spread.mean_lonlat[..., 0], rtol=0, atol=0)
         np.testing.assert_allclose(ds["bearing_deg"].values, spread.bearing_deg, rtol=0, atol=0)
     with xr.open_dataset(netcdf_products["spread_metric"], engine="h5netcdf") as ds:
-        assert "time" not in ds.variables                        # no calendar date is invented
+        assert "time" not in ds.variables and "featureType" not in ds.attrs   # no calendar date is invented
         np.testing.assert_allclose(ds["start_time_s"].values, [T0_S, T0_S + 7200.0], rtol=0, atol=0)
 
 
@@ -298,3 +302,13 @@ def test_release_subset_keeps_the_time_origin():
     part = release_subset(spread, [1])
     assert part.time_origin_utc == UNIX_EPOCH_UTC and part.start_times_utc == ["2024-06-03T14:00:00Z"]
     assert dataclasses.replace(spread, time_origin_utc=None).times_utc(0) is None
+
+
+def test_iso_utc_text():
+    from driftwise.utctime import iso_utc, seconds_since_origin
+
+    # reference values: pandas.Timestamp(1717416000, unit="s") == 2024-06-03 12:00:00 (checked by hand)
+    assert iso_utc(UNIX_EPOCH_UTC, [T0_S, T0_S + 0.5]) == ["2024-06-03T12:00:00Z", "2024-06-03T12:00:00.500Z"]
+    assert iso_utc(UNIX_EPOCH_UTC, 0.0) == "1970-01-01T00:00:00Z"
+    assert seconds_since_origin(UNIX_EPOCH_UTC, "2024-06-03T14:00:00+02:00") == T0_S
+    assert seconds_since_origin(UNIX_EPOCH_UTC, "yesterday") is None

@@ -1,9 +1,11 @@
 """NetCDF products as CF-1.11 / ACDD-1.3 datasets: the spread as a discrete-sampling-geometry
 trajectory file, and the global attributes every product shares.
 
-The spread file is a CF "trajectory" feature collection in the multidimensional array
-representation (CF-1.11 §9.3.1 and appendix H.4.1): one trajectory per release (dimension
-``trajectory``), the output times along ``obs``.  Each release's name is the ``cf_role =
+When the model knows its time origin, the spread file is a CF "trajectory" feature collection in
+the multidimensional array representation (CF-1.11 §9.3.1 and appendix H.4.1): one trajectory per
+release (dimension ``trajectory``), the output times along ``obs``.  A discrete sampling geometry
+needs a CF time coordinate, so without a time origin the same variables form a plain CF file (no
+``featureType``) and no calendar date is invented.  Each release's name is the ``cf_role =
 trajectory_id`` character variable ``release_name`` (a label, not a coordinate variable).  The
 mean path is ``lon``/``lat`` (a lon/lat model) and always ``x_m``/``y_m`` in the model's local
 frame; ``time`` is CF time (``seconds since <origin>``) when the model knows its time origin, and
@@ -186,7 +188,9 @@ def _spread_attributes(spread) -> dict[str, Any]:
         f"(Gaussian moment matching, method {spread.method}): mean path, position covariance and the "
         f"{', '.join(f'{100 * lv:g}' for lv in spread.levels)} % ellipses at times since each release.",
         "ocean currents, drifter, trajectory forecast, dispersion, uncertainty", lonlat=lonlat, time_range=time_range)
-    attrs.update(featureType="trajectory", cdm_data_type="Trajectory", method=spread.method,
+    if spread.time_origin_utc is not None:   # a CF trajectory needs a CF time coordinate (CF-1.11 §9.1)
+        attrs.update(featureType="trajectory", cdm_data_type="Trajectory")
+    attrs.update(method=spread.method,
                  frame=json.dumps(spread.frame.to_dict()) if spread.frame is not None else "",
                  time_origin_utc=spread.time_origin_utc or "unknown (the tracks had relative times)",
                  time_coverage_duration=f"PT{float(spread.times_s[-1]):g}S")

@@ -30,7 +30,7 @@ def origin_datetime64(origin_utc: str) -> np.datetime64:
 
 
 def iso_utc(origin_utc: str, seconds: Any) -> Any:
-    """ISO-8601 UTC text (``YYYY-MM-DDThh:mm:ssZ``, milliseconds when needed) of ``origin + seconds``.
+    """ISO-8601 UTC text (``YYYY-MM-DDThh:mm:ssZ``; with milliseconds when not whole seconds) of ``origin + seconds``.
 
     ``seconds``: a number or an array (any shape) of seconds since the origin; returns a str or
     nested lists of str of the same shape.  Rounded to the microsecond (numpy datetime64[us]).
@@ -38,9 +38,11 @@ def iso_utc(origin_utc: str, seconds: Any) -> Any:
     values = np.asarray(seconds, dtype=np.float64)
     if not np.all(np.isfinite(values)):
         raise InputError("iso_utc: times must be finite seconds")
-    stamps = origin_datetime64(origin_utc) + np.round(values * 1e6).astype("int64").astype("timedelta64[us]")
-    whole = np.all(np.round(values * 1e6) % 1_000_000 == 0)
-    text = np.char.add(np.datetime_as_string(stamps, unit="s" if whole else "ms"), "Z")
+    micro = np.round(values * 1e6).astype("int64")
+    stamps = origin_datetime64(origin_utc) + micro.astype("timedelta64[us]")
+    text = np.where(micro % 1_000_000 == 0, np.datetime_as_string(stamps, unit="s"),
+                    np.datetime_as_string(stamps, unit="ms"))
+    text = np.char.add(text.astype(str), "Z")
     return str(text) if text.ndim == 0 else text.tolist()
 
 
