@@ -312,3 +312,25 @@ def test_iso_utc_text():
     assert iso_utc(UNIX_EPOCH_UTC, 0.0) == "1970-01-01T00:00:00Z"
     assert seconds_since_origin(UNIX_EPOCH_UTC, "2024-06-03T14:00:00+02:00") == T0_S
     assert seconds_since_origin(UNIX_EPOCH_UTC, "yesterday") is None
+
+
+def test_flat_ellipse_becomes_the_linestring_of_its_major_axis(tmp_path):
+    from shapely.geometry import shape
+
+    # a release spread along x only (σx = 30 m, σy = 0) at t = 0: no area, so a LineString through the
+    # two ends of the major axis, ±√(χ²₂(level)) σx from the mean (χ²₂ quantile −2 ln(1 − level))
+    rel = as_releases([Release([0.0, 0.0], start_time_s=T0_S, cov0_m2=np.diag([900.0, 0.0]), name="flat")])
+    covs = np.array([[np.diag([900.0, 0.0]), np.diag([1000.0, 100.0])]])
+    spread = make_spread("cubature", rel, np.array([0.0, 3600.0]), np.zeros((1, 2, 2)), covs, frame=FRAME,
+                         time_origin_utc=UNIX_EPOCH_UTC)
+    raw = json.loads(write_spread(spread, tmp_path / "f.geojson").read_text())
+    flat = [f for f in raw["features"] if f["properties"]["kind"] == "ellipse" and f["properties"]["time_s"] == 0.0]
+    for feature in flat:
+        assert feature["geometry"]["type"] == "LineString" and shape(feature["geometry"]).is_valid
+        ends = FRAME.from_lonlat(*np.asarray(feature["geometry"]["coordinates"]).T)
+        half = np.sqrt(-2.0 * np.log(1.0 - feature["properties"]["level"])) * 30.0
+        np.testing.assert_allclose(np.sort(ends[:, 0]), [-half, half], rtol=0, atol=0.02)   # 1e-7° rounding ≈ 1 cm
+        np.testing.assert_allclose(ends[:, 1], 0.0, rtol=0, atol=0.02)
+        assert feature["properties"]["bearing_deg"] == pytest.approx(90.0, abs=1e-6)      # along east
+    assert all(f["geometry"]["type"] == "Polygon" for f in raw["features"]
+               if f["properties"]["kind"] == "ellipse" and f["properties"]["time_s"] == 3600.0)
