@@ -67,7 +67,10 @@ def spread_geojson(spread, *, n: int = 72) -> dict:
     """RFC 7946 FeatureCollection (lon/lat WGS84 only): a Feature per release, time and level (properties
     release, kind "ellipse", time_s, start_time_s, time_utc/start_time_utc when the time origin is known,
     level, semi-axes, bearing_deg) whose geometry is the ellipse Polygon, or a Point (zero-size ellipse, e.g.
-    t = 0 of a point release) or LineString (flat ellipse); and a LineString of each mean path."""
+    t = 0 of a point release) or LineString (flat ellipse); and a LineString of each mean path.  ``n`` (even)
+    vertices per ellipse."""
+    if int(n) < 8 or int(n) % 2:
+        raise InputError(f"GeoJSON: n = {n} vertices per ellipse; give an even number >= 8")
     if spread.frame is None or getattr(spread.frame, "kind", "metric") != "lonlat":
         raise InputError("GeoJSON (RFC 7946) holds WGS84 lon/lat only, but this model was fitted in a local "
                          "metric frame; write .json, .csv or .nc instead")
