@@ -131,8 +131,7 @@ def _time_variables(spread) -> tuple[dict[str, tuple], str]:
         "standard_name": "time", "units": units, "calendar": "standard", "axis": "T",
         "units_metadata": "leap_seconds: none",
         "long_name": "forecast valid time", "coverage_content_type": "coordinate"})
-    period["start_time"] = (("trajectory",), starts, {"units": units, "calendar": "standard",
-                                                      "units_metadata": "leap_seconds: none",
+    period["start_time"] = (("trajectory",), starts, {"units": units, "units_metadata": "leap_seconds: none",
                                                       "long_name": "release time",
                                                       "coverage_content_type": "auxiliaryInformation"})
     return period, "time forecast_period"
@@ -161,7 +160,9 @@ def spread_dataset(spread):
     data, time_coords = _time_variables(spread)
     coords = time_coords + (" lat lon" if lonlat else "")
     names = np.array([r.name for r in spread.releases], dtype=object)
-    data["release_name"] = (("trajectory",), names, {"cf_role": "trajectory_id", "long_name": "release name"})
+    data["release_name"] = (("trajectory",), names, {"long_name": "release name"})
+    if spread.time_origin_utc is not None:   # the trajectory identifier of the DSG file (CF-1.11 §9.5)
+        data["release_name"][2]["cf_role"] = "trajectory_id"
     for part in (_position_variables, _covariance_variables, _ellipse_variables, _polygon_variables):
         data.update(part(spread, coords))
     if lonlat:
