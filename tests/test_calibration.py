@@ -1,4 +1,4 @@
-"""Calibrating the eddy diffusivity K and the decorrelation time τ from transitions (sde.calibrate_transport).
+"""Calibrating the eddy diffusivity K and the decorrelation time τ from transitions (calib.calibrate_transport).
 
 The fields here are *known*: a Lamb–Oseen vortex (Oseen 1912; Lamb 1932, Hydrodynamics §334a)
 as the mean flow, written in jax so the propagator can run through it, and an optional map of
@@ -29,8 +29,10 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from driftwise import sde, synthetic
-from driftwise.tracks import tracks_from_frame, velocity_observations
+from driftwise.data import synthetic
+from driftwise.data.tracks import tracks_from_frame, velocity_observations
+from driftwise.dynamics import calibrate as calib
+from driftwise.gp.schedule import Schedule
 
 LAGS_S = (3 * 3600.0, 6 * 3600.0, 12 * 3600.0)
 SIGMA_POS_M = 10.0
@@ -93,8 +95,9 @@ def test_diffusivity_recovery(k_true):
     # Tracks in the known vortex with random-walk diffusivity K (Einstein 1905) and 10 m GPS error;
     # the field has no velocity uncertainty, so only K is identified and τ is flagged as flat.
     tracks = _vortex_tracks(k_true, seed=int(k_true))
-    k, tau, info = sde.calibrate_transport(known_field(), tracks, lags_s=LAGS_S, position_error_m=SIGMA_POS_M,
-                                           initial=(2.0, 3600.0), max_starts=600)
+    found = calib.calibrate_transport(known_field(), tracks, lags_s=LAGS_S, position_error_m=SIGMA_POS_M,
+                                      initial=(2.0, 3600.0), max_starts=600)
+    k, tau, info = found.diffusivity_m2_s, found.decorrelation_time_s, found.to_dict()
     assert k == pytest.approx(k_true, rel=0.25)
     assert info["converged"] and info["n_transitions"] > 1000
     assert info["log_std"]["log_decorrelation_time"] == math.inf
@@ -135,16 +138,18 @@ def test_decorrelation_time_recovery():
     # from it); weak vortex, peak speed 0.02 m/s
     field = known_field(velocity_sd_m_s=0.2, circulation_m2_s=GAMMA_M2_S / 10)
     tracks = _ou_tracks(field, 5.0, 600.0, seed=11)
-    k, tau, info = sde.calibrate_transport(field, tracks, lags_s=LAGS_S, position_error_m=SIGMA_POS_M,
-                                           initial=(1.0, 3600.0), max_starts=600)
+    found = calib.calibrate_transport(field, tracks, lags_s=LAGS_S, position_error_m=SIGMA_POS_M,
+                                      initial=(1.0, 3600.0), max_starts=600)
+    k, tau, info = found.diffusivity_m2_s, found.decorrelation_time_s, found.to_dict()
     assert tau == pytest.approx(600.0, rel=0.25)
     assert k == pytest.approx(5.0, rel=0.25)
     assert np.isfinite(info["log_std"]["log_decorrelation_time"])
 
     # the same fixes given as velocity observations rebuild the same transitions (x = mid ∓ v Δt/2)
     obs = velocity_observations(tracks, position_error_m=SIGMA_POS_M)
-    k2, tau2, _ = sde.calibrate_transport(field, obs, lags_s=LAGS_S, position_error_m=SIGMA_POS_M,
-                                          initial=(1.0, 3600.0), max_starts=600)
+    found2 = calib.calibrate_transport(field, obs, lags_s=LAGS_S, position_error_m=SIGMA_POS_M,
+                                       initial=(1.0, 3600.0), max_starts=600)
+    k2, tau2 = found2.diffusivity_m2_s, found2.decorrelation_time_s
     assert k2 == pytest.approx(k, rel=1e-6) and tau2 == pytest.approx(tau, rel=1e-6)
 
 
@@ -152,24 +157,24 @@ def test_gradient_matches_finite_differences():
     # Route 2 (SphericalCubature, propagator inside the objective): the forward-mode jax gradient
     # against central finite differences
     # (a general numerical reference; step 1e-4 in log space, O(h²) error).
-    from driftwise.moments import RK4, SphericalCubature
+    from driftwise.dynamics.moments import RK4, SphericalCubature
 
     field = known_field(velocity_sd_m_s=0.05)
     tracks = _vortex_tracks(3.0, seed=5)  # same shapes as the recovery tests: one compilation serves all
-    trans = sde.transitions_from_tracks(tracks, lags_s=LAGS_S, position_error_m=SIGMA_POS_M, max_starts=600)
+    trans = calib.transitions_from_tracks(tracks, lags_s=LAGS_S, position_error_m=SIGMA_POS_M, max_starts=600)
     r = trans.start_m.shape[0]
     args = (field, SphericalCubature(), RK4(step_s=1800.0), r, jnp.asarray(trans.start_m),
             jnp.asarray(np.broadcast_to(SIGMA_POS_M**2 * np.eye(2), (r, 2, 2))), jnp.asarray(trans.times_s),
             jnp.asarray(trans.observed_m), jnp.asarray(trans.obs_var_m2), jnp.asarray(trans.weight))
     theta = np.log([3.0, 2000.0])
-    value, grad = sde._value_and_grad(jnp.asarray(theta), *args)
+    value, grad = calib.propagated_value_and_grad(jnp.asarray(theta), *args)
     step = 1e-4
     fd = []
     for j in range(2):
         e = np.zeros(2)
         e[j] = step
-        up, _ = sde._value_and_grad(jnp.asarray(theta + e), *args)
-        down, _ = sde._value_and_grad(jnp.asarray(theta - e), *args)
+        up, _ = calib.propagated_value_and_grad(jnp.asarray(theta + e), *args)
+        down, _ = calib.propagated_value_and_grad(jnp.asarray(theta - e), *args)
         fd.append((float(up) - float(down)) / (2 * step))
     np.testing.assert_allclose(np.asarray(grad), fd, rtol=1e-5, atol=1e-9)
     assert np.isfinite(float(value))
@@ -179,13 +184,13 @@ def test_linear_decomposition_equals_propagating_inside_the_objective():
     # Linearized moments: P(K, τ) = K A + τ B + C exactly (the moment ODE is linear in P, K, τ
     # along the fixed mean path; Maybeck 1982 vol. 2 §12.3).  The fast route's value and gradient
     # must equal running the propagator inside the objective with the same method.
-    from driftwise.moments import RK4, Linearize
+    from driftwise.dynamics.moments import RK4, Linearize
 
     field = known_field(velocity_sd_m_s=0.05)
     tracks = _vortex_tracks(3.0, seed=5)
-    trans = sde.transitions_from_tracks(tracks, lags_s=LAGS_S, position_error_m=SIGMA_POS_M, max_starts=600)
-    fast = sde._objective(field, trans, SIGMA_POS_M, Linearize(), RK4(step_s=1800.0), 4096)
-    slow = sde._objective(field, trans, SIGMA_POS_M, _Unfast(), RK4(step_s=1800.0), 4096)
+    trans = calib.transitions_from_tracks(tracks, lags_s=LAGS_S, position_error_m=SIGMA_POS_M, max_starts=600)
+    fast = calib.transition_objective(field, trans, SIGMA_POS_M, Linearize(), RK4(step_s=1800.0), 4096)
+    slow = calib.transition_objective(field, trans, SIGMA_POS_M, _Unfast(), RK4(step_s=1800.0), 4096)
     for theta in (np.log([3.0, 2000.0]), np.log([20.0, 50.0])):
         (v1, g1), (v2, g2) = fast(theta), slow(theta)
         assert v1 == pytest.approx(v2, rel=1e-10)
@@ -197,7 +202,7 @@ class _Unfast:
     """Linearize's expectations, under another type so calibrate takes the propagate-inside route."""
 
     def expectations(self, sde_, mean, cov, age_s=0.0):
-        from driftwise.moments import Linearize
+        from driftwise.dynamics.moments import Linearize
 
         return Linearize().expectations(sde_, mean, cov, age_s)
 
@@ -209,19 +214,19 @@ def test_calibrate_a_fitted_field_and_round_trip(tmp_path):
     import driftwise
 
     tracks = _vortex_tracks(5.0, seed=3, n_tracks=8)
-    field = driftwise.fit(tracks, "divergence-free", inducing=16, steps=40, position_error_m=SIGMA_POS_M,
+    field = driftwise.fit(tracks, "divergence-free", inducing=16, schedule=Schedule(steps=40), position_error_m=SIGMA_POS_M,
                           progress=False)
-    again = sde.posterior_refit(field, tracks)
+    again = calib.posterior_refit(field, tracks)
     np.testing.assert_allclose(np.asarray(again.params.q_mean), np.asarray(field.params.q_mean),
                                rtol=1e-7, atol=1e-9)
-    folds, held = sde.cross_validation_folds(tracks, lambda t: sde.posterior_refit(field, t), folds=2)
+    folds, held = calib.cross_validation_folds(tracks, lambda t: calib.posterior_refit(field, t), folds=2)
     assert [h.n_tracks for h in held] == [4, 4]
     assert set(held[0].unique_ids).isdisjoint(held[1].unique_ids)
-    cal = sde.calibrate(field, tracks, max_starts=200)
+    cal = calib.calibrate(field, tracks, max_starts=200)
     record = cal.fit_info["calibration"]
     assert record["folds"] == 2 and record["n_transitions"] > 100
     assert cal.diffusivity_m2_s == pytest.approx(record["diffusivity_m2_s"], rel=1e-12)
-    loaded = driftwise.load(cal.save(tmp_path / "m.npz"))
+    loaded = driftwise.load(driftwise.save(cal, tmp_path / "m.npz"))
     assert loaded.diffusivity_m2_s == pytest.approx(cal.diffusivity_m2_s, rel=1e-12)
     assert loaded.decorrelation_time_s == pytest.approx(cal.decorrelation_time_s, rel=1e-12)
     assert loaded.fit_info["decorrelation_time_source"].startswith("calibrated")
@@ -231,4 +236,4 @@ def test_calibration_needs_a_position_error():
     from driftwise.errors import InputError
 
     with pytest.raises(InputError, match="position error"):
-        sde.calibrate_transport(known_field(), _vortex_tracks(1.0, seed=1, n_tracks=2))
+        calib.calibrate_transport(known_field(), _vortex_tracks(1.0, seed=1, n_tracks=2))

@@ -14,7 +14,6 @@ from __future__ import annotations
 
 import csv
 import dataclasses
-import importlib
 import json
 import types
 
@@ -24,18 +23,20 @@ import pytest
 import xarray as xr
 
 import driftwise  # noqa: F401  (switches on float64)
-from driftwise import cli
-from driftwise import field as F
-from driftwise import physics as P
-from driftwise.cfproducts import spread_dataset
-from driftwise.frame import Frame
-from driftwise.io import load_model, save_model, write_field_grid, write_spread
-from driftwise.spread import Release, as_releases, bearing_deg, make_spread
-from driftwise.synthetic import DemoBay
-from driftwise.tracks import tracks_from_frame
-from driftwise.utctime import UNIX_EPOCH_UTC
+from driftwise.app import cli
+from driftwise.app.bay import DemoBay
+from driftwise.app.scenarios import release_subset
+from driftwise.data.frame import Frame
+from driftwise.data.tracks import tracks_from_frame
+from driftwise.data.utctime import UNIX_EPOCH_UTC, iso_utc, seconds_since_origin
+from driftwise.diagnostics.grid import field_grid
+from driftwise.dynamics.spread import Release, as_releases, bearing_deg, make_spread
+from driftwise.gp import field as F
+from driftwise.gp import training as fitting
+from driftwise.gp.modelfile import load_model, save_model
+from driftwise.products.cfproducts import spread_dataset
+from driftwise.products.writers import field_grid_dataset, write_field_grid, write_spread
 
-fitting = importlib.import_module("driftwise.fit")   # the module (driftwise.fit is also the function's name)
 cf_checkers = pytest.importorskip("cf_checkers")      # tests/cf_checkers.py (needs the `test` extra)
 
 FRAME = Frame("lonlat", -9.0, 44.0)
@@ -87,7 +88,7 @@ def netcdf_products(tmp_path_factory):
              "spread_lonlat_relative": write_spread(_spread(origin=None), out / "spread_lonlat_relative.nc"),
              "spread_metric_absolute": write_spread(_spread(None, polygon=False), out / "spread_metric_absolute.nc")}
     for name, frame in (("map_lonlat", FRAME), ("map_metric", Frame())):
-        paths[name] = write_field_grid(P.field_grid(_bay_field(frame), spacing_m=1000.0), out / f"{name}.nc")
+        paths[name] = write_field_grid(field_grid(_bay_field(frame), spacing_m=1000.0), out / f"{name}.nc")
     return paths
 
 
@@ -110,8 +111,6 @@ def test_every_netcdf_product_passes_both_cf_checkers(netcdf_products, product):
 
 def test_the_checkers_do_catch_what_the_issue_reported(tmp_path):
     """Negative control: an undefined standard name and a _FillValue on a coordinate variable are flagged."""
-    from driftwise.io import field_grid_dataset
-
     dataset = spread_dataset(_spread())
     dataset["bearing_deg"].attrs["standard_name"] = "bearing_of_spread_ellipse"
     path = tmp_path / "bad.nc"
@@ -119,7 +118,7 @@ def test_the_checkers_do_catch_what_the_issue_reported(tmp_path):
     result = cf_checkers.compliance_results(path, cf_checkers.newest_cf_suite())
     assert "bearing_of_spread_ellipse" in " ".join(" ".join(msgs) for _, msgs in result["high"])
     assert any("bearing_of_spread_ellipse" in m for m in cf_checkers.cfchecker_messages(path)["ERROR"])
-    grid = field_grid_dataset(P.field_grid(_bay_field(Frame()), spacing_m=2000.0))
+    grid = field_grid_dataset(field_grid(_bay_field(Frame()), spacing_m=2000.0))
     grid["x_m"].encoding["_FillValue"] = -1.0
     grid.to_netcdf(tmp_path / "bad_map.nc", engine="h5netcdf")
     result = cf_checkers.compliance_results(tmp_path / "bad_map.nc", cf_checkers.newest_cf_suite())
@@ -296,8 +295,6 @@ def test_cli_spread_uses_the_model_time_origin_and_old_files_still_load(tmp_path
 
 
 def test_release_subset_keeps_the_time_origin():
-    from driftwise.scenarios import release_subset
-
     spread = _spread()
     part = release_subset(spread, [1])
     assert part.time_origin_utc == UNIX_EPOCH_UTC and part.start_times_utc == ["2024-06-03T14:00:00Z"]
@@ -305,8 +302,6 @@ def test_release_subset_keeps_the_time_origin():
 
 
 def test_iso_utc_text():
-    from driftwise.utctime import iso_utc, seconds_since_origin
-
     # reference values: pandas.Timestamp(1717416000, unit="s") == 2024-06-03 12:00:00 (checked by hand)
     assert iso_utc(UNIX_EPOCH_UTC, [T0_S, T0_S + 0.5]) == ["2024-06-03T12:00:00Z", "2024-06-03T12:00:00.500Z"]
     assert iso_utc(UNIX_EPOCH_UTC, 0.0) == "1970-01-01T00:00:00Z"

@@ -13,8 +13,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from driftwise import demo, scenarios
-from driftwise.cli import main
+from driftwise.app import demo, scenarios
+from driftwise.app.cli import main
 
 
 def _job(tmp_path: Path) -> demo.Job:
@@ -38,7 +38,7 @@ def test_outfall_share_is_the_mixture_mean_of_parcel_probabilities():
 def test_sites_land_where_the_generator_put_them():
     # Through lon/lat and back into a frame centred elsewhere: distances between sites are kept
     # (AEQD, WGS 84; a 10 km baseline differs by < 1e-4 between two nearby centres).
-    from driftwise.frame import Frame
+    from driftwise.data.frame import Frame
 
     other = Frame("lonlat", -9.02, 44.015)
     a, b = scenarios.sites_in_frame(other, [scenarios.HARBOUR_MOUTH_M, scenarios.OUTFALL_M])
@@ -53,7 +53,7 @@ def test_a_failing_step_is_recorded_not_hidden(tmp_path):
         raise RuntimeError("no\nconvergence")
 
     def missing(_job):
-        demo.need("no_such_module_here")
+        raise demo.Unavailable("needs no_such_module_here, which this installation lacks")
 
     assert not job.run("fit", "fit", broken)
     assert not job.run("score", "skill", missing)

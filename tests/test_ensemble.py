@@ -20,13 +20,13 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 import pytest
+from test_moments import BENES_TIMES, BENES_X0, M0, P0, benes_exact, ou_exact, ou_sde
 
 import driftwise  # noqa: F401  (enables float64)
-from driftwise import ensemble
-from driftwise.ensemble import EulerMaruyama
+from driftwise.dynamics import ensemble
+from driftwise.dynamics.ensemble import EulerMaruyama
+from driftwise.dynamics.sde import SDE
 from driftwise.errors import InputError
-from driftwise.sde import SDE
-from test_moments import BENES_TIMES, BENES_X0, M0, P0, benes_exact, ou_exact, ou_sde
 
 Partial = jax.tree_util.Partial
 

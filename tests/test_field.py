@@ -14,10 +14,10 @@ from sklearn.gaussian_process import GaussianProcessRegressor
 from sklearn.gaussian_process.kernels import RBF, ConstantKernel, Matern
 
 import driftwise  # noqa: F401  (switches on float64)
-from driftwise import field as fld
+from driftwise.data.observations import Observations
 from driftwise.errors import InputError
-from driftwise.kernels import BASES
-from driftwise.observations import Observations
+from driftwise.gp import field as fld
+from driftwise.gp.kernels import BASES
 
 SIGMA = 0.3        # m/s
 ELL = 900.0        # m

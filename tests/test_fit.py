@@ -10,19 +10,18 @@ from __future__ import annotations
 
 import dataclasses
 import json
-import sys
 
 import numpy as np
 import pytest
 
 import driftwise
-from driftwise import field as fld
+from driftwise.data.synthetic import TaylorGreen, simulate_drifters
+from driftwise.data.tracks import tracks_from_frame
 from driftwise.errors import InputError
-from driftwise.synthetic import TaylorGreen, simulate_drifters
-from driftwise.tracks import tracks_from_frame
-
-fitmod = sys.modules["driftwise.fit"]  # driftwise.fit is the function; the module lives here
-var = sys.modules["driftwise.variational"]
+from driftwise.gp import field as fld
+from driftwise.gp import training as fitmod
+from driftwise.gp import variational as var
+from driftwise.gp.schedule import Checkpoint, Schedule
 
 
 @pytest.fixture(scope="module")
@@ -96,16 +95,16 @@ def test_auto_schedule_uses_all_data_with_exact_q_when_it_fits():
 def test_large_n_fits_hyperparameters_on_a_subsample_then_q_on_all_data(tracks):
     """288 observations > 16 × 16: the hyperparameters are those of an all-rows fit to the 256 subsampled
     rows, and q is then Titsias-optimal for all 288 (the returned ELBO equals the exact-q ELBO on all)."""
-    from driftwise.variational import exact_q, full_elbo
+    from driftwise.gp.variational import exact_q, full_elbo
 
-    field = driftwise.fit(tracks, steps=8, patience=1000, batch_size=16, **SMALL)
+    field = driftwise.fit(tracks, schedule=Schedule(steps=8, patience=1000, batch_size=16), **SMALL)
     data = fitmod._prepare(tracks, SMALL["position_error_m"])
     assert data.n == 288 and field.fit_info["hyperparameter_rows"] == 256
     rows = fitmod.subsample_rows(data.n, 256, 0)
     obs = data.obs
     subset = dataclasses.replace(obs, **{name: getattr(obs, name)[rows] for name in
                                          ("position_m", "velocity_m_s", "dt_s", "time_s", "track_index")})
-    alone = driftwise.fit(subset, steps=8, patience=1000, batch_size=256, **SMALL)
+    alone = driftwise.fit(subset, schedule=Schedule(steps=8, patience=1000, batch_size=256), **SMALL)
     np.testing.assert_allclose(field.params.kernel.divergence_free.base.log_length_scale_m,
                                alone.params.kernel.divergence_free.base.log_length_scale_m, rtol=1e-9)
     best = exact_q(field.params, data.batch, jitter_multiple=field.jitter_multiple)
@@ -135,8 +134,7 @@ class _HardKill(BaseException):
     ("adam", _HardKill, 10),              # killed: resume from the last periodic checkpoint (every 5 steps here)
 ])
 def test_resume_after_interrupt_ends_at_the_same_elbo(tracks, tmp_path, monkeypatch, q_update, stop, saved_step):
-    options = dict(SMALL, steps=16, patience=1000, batch_size=16, q_update=q_update, seed=7)  # 288 > 16 × 16: minibatches
-    monkeypatch.setattr(fitmod, "CHECKPOINT_EVERY", 5)
+    options = dict(SMALL, schedule=Schedule(steps=16, patience=1000, batch_size=16, q_update=q_update), seed=7)  # 288 > 16 × 16: minibatches
     straight = driftwise.fit(tracks, **options)
     checkpoint = tmp_path / "run.ckpt.npz"
     real_advance = fitmod._advance
@@ -148,11 +146,11 @@ def test_resume_after_interrupt_ends_at_the_same_elbo(tracks, tmp_path, monkeypa
 
     monkeypatch.setattr(fitmod, "_advance", stop_at_11)
     with pytest.raises(stop):
-        driftwise.fit(tracks, checkpoint=checkpoint, **options)
+        driftwise.fit(tracks, checkpoint=Checkpoint(checkpoint, every_steps=5), **options)
     monkeypatch.setattr(fitmod, "_advance", real_advance)
     with np.load(checkpoint, allow_pickle=False) as saved:
         assert json.loads(str(saved["meta"]))["step"] == saved_step
-    resumed = driftwise.fit(tracks, checkpoint=checkpoint, resume=True, **options)
+    resumed = driftwise.fit(tracks, checkpoint=Checkpoint(checkpoint, resume=True, every_steps=5), **options)
     a, b = straight.fit_info, resumed.fit_info
     assert a["steps"] == b["steps"] == 16
     assert b["elbo"] == pytest.approx(a["elbo"], rel=1e-6, abs=1e-6)
@@ -161,16 +159,16 @@ def test_resume_after_interrupt_ends_at_the_same_elbo(tracks, tmp_path, monkeypa
 
 
 def test_same_seed_same_fit_and_checkpoint_mismatch_is_refused(tracks, tmp_path):
-    options = dict(SMALL, steps=6, patience=1000, batch_size=16)
+    options = dict(SMALL, schedule=Schedule(steps=6, patience=1000, batch_size=16))
     a = driftwise.fit(tracks, seed=1, **options)
-    b = driftwise.fit(tracks, seed=1, checkpoint=tmp_path / "c.npz", **options)
+    b = driftwise.fit(tracks, seed=1, checkpoint=Checkpoint(tmp_path / "c.npz"), **options)
     assert a.fit_info["elbo"] == pytest.approx(b.fit_info["elbo"], rel=1e-12, abs=0.0)
     with pytest.raises(InputError, match="different fit"):
-        driftwise.fit(tracks, seed=2, checkpoint=tmp_path / "c.npz", resume=True, **options)
+        driftwise.fit(tracks, seed=2, checkpoint=Checkpoint(tmp_path / "c.npz", resume=True), **options)
 
 
 def test_converges_early_on_a_plateau_and_records_history(tracks):
-    field = driftwise.fit(tracks, steps=400, patience=5, **SMALL)
+    field = driftwise.fit(tracks, schedule=Schedule(steps=400, patience=5), **SMALL)
     info = field.fit_info
     assert info["converged"] and info["steps"] < 400 and info["steps"] % 5 == 0
     assert len(info["elbo_history"]) == info["steps"]
@@ -188,8 +186,8 @@ def test_converges_early_on_a_plateau_and_records_history(tracks):
 
 
 def test_learned_inducing_points_move_and_stay_finite(tracks):
-    fixed = driftwise.fit(tracks, steps=3, patience=1000, **SMALL)
-    moved = driftwise.fit(tracks, steps=3, patience=1000, learn_inducing=True, **SMALL)
+    fixed = driftwise.fit(tracks, schedule=Schedule(steps=3, patience=1000), **SMALL)
+    moved = driftwise.fit(tracks, schedule=Schedule(steps=3, patience=1000, learn_inducing=True), **SMALL)
     shift = np.abs(np.asarray(moved.params.inducing_m) - np.asarray(fixed.params.inducing_m))
     assert np.all(np.isfinite(shift)) and shift.max() > 1.0       # metres
     assert np.isfinite(moved.fit_info["elbo"])
@@ -260,7 +258,7 @@ def test_bad_options_and_data_are_input_errors(tracks):
 
 
 def test_progress_bar_stays_off_when_not_a_terminal(tracks, capsys):
-    driftwise.fit(tracks, steps=2, progress=True, inducing=12, position_error_m=5.0)
+    driftwise.fit(tracks, schedule=Schedule(steps=2), progress=True, inducing=12, position_error_m=5.0)
     captured = capsys.readouterr()
     assert captured.out == "" and "driftwise fit" not in captured.err
 

@@ -12,12 +12,12 @@ import pytest
 import xarray as xr
 
 import driftwise  # noqa: F401  (switches on float64)
-from driftwise import cli
-from driftwise import field as F
-from driftwise import physics as P
-from driftwise.frame import Frame
-from driftwise.io import save_model
-from driftwise.synthetic import DemoBay
+from driftwise.app import cli
+from driftwise.app.bay import DemoBay
+from driftwise.data.frame import Frame
+from driftwise.diagnostics import physics as P
+from driftwise.gp import field as F
+from driftwise.gp.modelfile import save_model
 
 LENGTH_M = 3000.0
 HALF_WIDTH_M = 8000.0
@@ -96,7 +96,7 @@ def _gradient_divergence(u, v, h):
 def test_divergence_matches_numpy_gradient_of_the_velocity_grid(frame, tmp_path):
     grid = P.field_grid(bay_field(frame=frame), spacing_m=LENGTH_M / 30)
     path = tmp_path / "field.nc"
-    from driftwise.io import write_field_grid
+    from driftwise.products.writers import write_field_grid
 
     write_field_grid(grid, path)
     ds = xr.open_dataset(path, engine="h5netcdf")
@@ -148,7 +148,7 @@ def test_divergence_free_model_exports_zero_with_the_reason(tmp_path):
     grid = P.field_grid(bay_field("divergence-free"), spacing_m=2000.0)
     assert "divergence" in grid.reasons
     np.testing.assert_array_equal(grid.divergence_s, 0.0)
-    from driftwise.io import write_field_grid
+    from driftwise.products.writers import write_field_grid
 
     write_field_grid(grid, tmp_path / "df.nc")
     ds = xr.open_dataset(tmp_path / "df.nc", engine="h5netcdf")

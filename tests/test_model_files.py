@@ -17,10 +17,10 @@ import numpy as np
 import pytest
 
 import driftwise
-from driftwise import field as fld
+from driftwise.data.frame import Frame
 from driftwise.errors import InputError
-from driftwise.frame import Frame
-from driftwise.io import MODEL_SCHEMA_VERSION, ModelFileError, arrays_sha256, load_model, save_model
+from driftwise.gp import field as fld
+from driftwise.gp.modelfile import MODEL_SCHEMA_VERSION, ModelFileError, arrays_sha256, load_model, save_model
 
 
 def _field(family="helmholtz", frame=None, seed=0):
@@ -53,7 +53,7 @@ def _points():
 @pytest.mark.parametrize("family", ["helmholtz", "divergence-free", "curl-free", "independent"])
 def test_round_trip_predicts_identically(tmp_path, family):
     field = _field(family)
-    path = field.save(tmp_path / "m.npz")
+    path = driftwise.save(field, tmp_path / "m.npz")
     loaded = driftwise.load(path)
     mean0, cov0 = field.predict(_points())
     mean1, cov1 = loaded.predict(_points())

@@ -26,16 +26,17 @@ import numpy as np
 import pytest
 import scipy.linalg
 from numpy.polynomial.hermite_e import hermegauss
+from sweeps import MOMENT_METHODS
 
 import driftwise  # noqa: F401  (enables float64)
-from driftwise import moments
+from driftwise.dynamics import moments
+from driftwise.dynamics.moments import RK4, Dopri5, GaussHermite, Linearize, SphericalCubature, Unscented
+from driftwise.dynamics.sde import SDE
 from driftwise.errors import InputError
-from driftwise.moments import RK4, Dopri5, GaussHermite, Linearize, SphericalCubature, Unscented
-from driftwise.sde import SDE
 
 Partial = jax.tree_util.Partial
 
-METHODS = [Linearize(), Unscented(), SphericalCubature(), GaussHermite(order=3)]
+METHODS = MOMENT_METHODS   # every moment method of the registry (tests/sweeps.py)
 INTEGRATORS = [RK4(step_s=0.01), Dopri5(rtol=1e-11, atol=1e-13, first_step_s=0.01)]
 
 A_OU = np.array([[-0.3, 1.1], [-0.7, -0.2]])  # non-symmetric, complex eigenvalues

@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import types
 
-import jax
 import jax.numpy as jnp
 import numpy as np
 import pytest
@@ -16,8 +15,8 @@ from matplotlib.path import Path as MplPath
 from scipy import stats
 
 import driftwise  # noqa: F401  (switches on float64)
-from driftwise import field as F
-from driftwise import physics as P
+from driftwise.diagnostics import physics as P
+from driftwise.gp import field as F
 
 LENGTH_M = 1000.0
 

@@ -18,7 +18,7 @@ from matplotlib.path import Path as MplPath
 from PIL import Image
 from scipy.stats import binomtest, chi2
 
-from driftwise import plots
+from driftwise.products import plots
 
 X_M = np.linspace(0.0, 20e3, 41)
 Y_M = np.linspace(0.0, 12e3, 25)

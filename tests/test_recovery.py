@@ -18,7 +18,6 @@ scipy.stats.chi2) at between 85 % and 99 % of the grid points.
 from __future__ import annotations
 
 import math
-import sys
 
 import numpy as np
 import pandas as pd
@@ -27,10 +26,9 @@ from scipy.spatial import Delaunay
 from scipy.stats import chi2
 
 import driftwise
-from driftwise.synthetic import LambOseenVortex, TaylorGreen, random_walk, simulate_drifters
-from driftwise.tracks import tracks_from_frame
+from driftwise.data.synthetic import LambOseenVortex, TaylorGreen, random_walk, simulate_drifters
+from driftwise.data.tracks import tracks_from_frame
 
-fitmod = sys.modules["driftwise.fit"]
 CHI2_95_2DOF = chi2.ppf(0.95, 2)  # 5.991
 ALPHA_M = 250.0  # alpha-shape radius of the data hull (m)
 

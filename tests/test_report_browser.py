@@ -36,8 +36,9 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from driftwise import __version__, plots, report
-from driftwise.cli import CAUTION
+from driftwise import __version__
+from driftwise.files import CAUTION
+from driftwise.products import plots, report
 
 FLAGS = ["--headless", "--no-sandbox", "--disable-gpu", "--no-first-run", "--disable-background-networking",
          "--disable-component-update", "--disable-sync", "--disable-quic", "--hide-scrollbars",

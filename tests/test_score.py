@@ -25,8 +25,9 @@ import pandas as pd
 import pytest
 
 import driftwise
-from driftwise import skill, synthetic
-from driftwise.tracks import tracks_from_frame
+from driftwise.data import synthetic
+from driftwise.data.tracks import tracks_from_frame
+from driftwise.diagnostics import skill
 
 SIGMA_POS_M = 10.0
 HORIZONS_S = (6 * 3600.0, 12 * 3600.0, 24 * 3600.0)
@@ -44,7 +45,7 @@ def _split_tables(table: pd.DataFrame, every: int = 5) -> tuple[pd.DataFrame, pd
 @pytest.fixture(scope="module")
 def vortex_case(tmp_path_factory):
     """Fit (CLI, calibration on) on 40 vortex tracks; 10 interleaved tracks held out."""
-    from driftwise.cli import main
+    from driftwise.app.cli import main
 
     core, peak = 3000.0, 0.25
     vortex = synthetic.LambOseenVortex(2 * math.pi * core * peak / (1 - math.exp(-1)), core)
@@ -90,7 +91,7 @@ def test_fit_json_reports_calibrated_transport(vortex_case):
 @pytest.mark.slow
 def test_skill_beats_persistence_in_a_vortex(vortex_case):
     field = driftwise.load(vortex_case["model"])
-    result = skill.score(field, vortex_case["held"], horizons_s=HORIZONS_S, fit_tracks=vortex_case["fit"])
+    result = skill.score(field, vortex_case["held"], horizons_s=HORIZONS_S, fit_tracks=vortex_case["fit"]).to_dict()
     pers = result["baselines"]["persistence"]
     for k in (1, 2):  # 12 h and 24 h
         assert result["skill"][k] > pers["skill"][k] + 0.1, (result["skill"], pers["skill"])
@@ -191,10 +192,10 @@ def test_coverage_is_calibrated_on_a_gaussian_process_flow():
     fit_tracks, held = tracks_from_frame(fit_table), tracks_from_frame(held_table)
     field = driftwise.fit(fit_tracks, "divergence-free", inducing=81, seed=0, position_error_m=SIGMA_POS_M,
                           progress=False)
-    from driftwise.sde import calibrate
+    from driftwise.dynamics.calibrate import calibrate
 
     field = calibrate(field, fit_tracks)
-    result = skill.score(field, held, horizons_s=HORIZONS_S)
+    result = skill.score(field, held, horizons_s=HORIZONS_S).to_dict()
     assert min(result["n_pairs"]) > 500
     for k in range(3):
         assert 0.40 <= result["coverage_50"][k] <= 0.60, result["coverage_50"]

@@ -23,10 +23,10 @@ import numpy as np
 import pytest
 
 import driftwise  # noqa: F401  (enables float64)
-from driftwise import field as fieldmod
-from driftwise import moments
+from driftwise.dynamics import moments
+from driftwise.dynamics.sde import SDE, PointPosterior, join_from_jit, sde_from_field, split_for_jit
 from driftwise.errors import InputError
-from driftwise.sde import SDE, PointPosterior, join_from_jit, sde_from_field, split_for_jit
+from driftwise.gp import field as fieldmod
 
 SIGMA_DF, SIGMA_CF = 0.2, 0.1  # m/s
 

@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 from scipy.stats import multivariate_normal
 
-from driftwise import skill
+from driftwise.diagnostics import skill
 
 
 def _tracks(rows):

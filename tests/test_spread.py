@@ -14,9 +14,9 @@ from matplotlib.path import Path
 from scipy import integrate
 from scipy.special import erf, ndtr
 from scipy.stats import chi2, multivariate_normal, norm
+from sweeps import METHOD_NAMES, decaying_rotation
 
-from driftwise.errors import InputError
-from driftwise.spread import (
+from driftwise.dynamics.spread import (
     Release,
     as_releases,
     check_times,
@@ -27,6 +27,7 @@ from driftwise.spread import (
     probability_inside,
     semi_axes,
 )
+from driftwise.errors import InputError
 
 N_MC = 1_000_000
 COV = np.array([[900.0, 420.0], [420.0, 400.0]])   # m², correlated, anisotropic
@@ -232,38 +233,25 @@ def test_bad_releases_and_times_raise_input_error():
 
 # ---------------------------------------------------------------- spread() on an analytic SDE
 def test_spread_on_a_decaying_rotation_matches_closed_form_for_every_method():
-    # Linear SDE dx = A x dt + √(2K) dβ with A = −a I + b J (J the 90° rotation): closed form
-    # m(t) = e^{−at} R(bt) m0 and, for isotropic P0 = p0 I, P(t) = (p0 e^{−2at} + K (1 − e^{−2at}) / a) I
-    # (the linear moment equations dP/dt = AP + PAᵀ + 2K I, Jazwinski 1970 §7; solved by hand).
+    # The sweep's reference problem (tests/sweeps.py): a linear SDE with a closed form (Jazwinski 1970 §7).
     import jax
-    import jax.numpy as jnp
 
-    from driftwise.sde import SDE
-    from driftwise.spread import METHODS, method_object, spread
+    from driftwise.dynamics.methods import make_method
+    from driftwise.dynamics.spread import spread_releases
 
-    a, b, k = 1e-4, 2e-4, 1.0
-    mat = jnp.array([[-a, -b], [b, -a]])
-    sde = SDE(drift=jax.tree_util.Partial(lambda m, x: m @ x, mat),
-              diffusion=jax.tree_util.Partial(lambda m, x: 2.0 * k * jnp.eye(2), mat))
-    rels = [Release([100.0, 0.0], name="=cmd"), Release([0.0, 50.0], start_time_s=3600.0, cov0_m2=25.0 * np.eye(2))]
-    times = np.arange(0.0, 6 * 3600.0 + 1, 3600.0)
-    decay, angle = np.exp(-a * times), b * times
-    rot = np.stack([np.stack([np.cos(angle), -np.sin(angle)], -1), np.stack([np.sin(angle), np.cos(angle)], -1)], -2)
-    exact_mean = np.stack([decay[:, None] * (rot @ r.start_m) for r in rels])
-    exact_var = np.stack([p0 * decay**2 + k * (1 - decay**2) / a for p0 in (0.0, 25.0)])
-    exact_cov = exact_var[..., None, None] * np.eye(2)
-    for name in METHODS:
-        method, integrator = method_object(name, particles=20_000, step_s=60.0)
-        out = spread(sde, rels, times, method=method, integrator=integrator, key=jax.random.key(1))
+    sde, rels, times, exact_mean, exact_cov, max_var = decaying_rotation()
+    for name in METHOD_NAMES:
+        method, integrator = make_method(name, particles=20_000, step_s=60.0)
+        out = spread_releases(sde, rels, times, method=method, integrator=integrator, key=jax.random.key(1))
         assert out.method == name and out.means.shape == (2, 7, 2) and out.covs.shape == (2, 7, 2, 2)
         if name == "ensemble":   # Monte Carlo: within 4 standard errors sqrt(P/N) (and 5 % on the covariance)
-            np.testing.assert_allclose(out.means, exact_mean, rtol=0, atol=4 * np.sqrt(exact_var.max() / 20_000))
-            np.testing.assert_allclose(out.covs, exact_cov, rtol=0, atol=0.05 * exact_var.max())
+            np.testing.assert_allclose(out.means, exact_mean, rtol=0, atol=4 * np.sqrt(max_var / 20_000))
+            np.testing.assert_allclose(out.covs, exact_cov, rtol=0, atol=0.05 * max_var)
         else:                    # exact for a linear SDE, up to the RK4 error (O(step⁴), ~1e-10 relative at 60 s)
             np.testing.assert_allclose(out.means, exact_mean, rtol=1e-8, atol=1e-7)   # metres, on a 100 m scale
             np.testing.assert_allclose(out.covs, exact_cov, rtol=1e-8, atol=1e-6)     # m², on a 1e4 m² scale
     assert [r.name for r in out.releases] == ["=cmd", "r2"]
     with pytest.raises(InputError, match="random key"):
-        spread(sde, rels, times, method=method_object("ensemble")[0])
+        spread_releases(sde, rels, times, method=make_method("ensemble")[0])
     with pytest.raises(InputError, match="unknown"):
-        method_object("kalman")
+        make_method("kalman")

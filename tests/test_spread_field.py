@@ -14,13 +14,16 @@ import warnings
 import numpy as np
 import pytest
 
-from driftwise.cli import main
-from driftwise.field import FlowField
-from driftwise.fit import fit
-from driftwise.frame import Frame
-from driftwise.spread import METHODS, Release, SupportWarning, spread_from_field
-from driftwise.synthetic import LambOseenVortex, simulate_drifters
-from driftwise.tracks import tracks_from_frame
+import driftwise
+from driftwise.app.cli import main
+from driftwise.data.frame import Frame
+from driftwise.data.synthetic import LambOseenVortex, simulate_drifters
+from driftwise.data.tracks import tracks_from_frame
+from driftwise.dynamics.methods import METHODS
+from driftwise.dynamics.spread import Release, SupportWarning, spread_from_field
+from driftwise.gp.field import FlowField
+from driftwise.gp.schedule import Schedule
+from driftwise.gp.training import fit
 
 # Γ = 1.5e4 m²/s, r_c = 10 km: 0.15 m/s at r = r_c, a quarter turn in about a day there.
 VORTEX = LambOseenVortex(circulation_m2_s=1.5e4, core_radius_m=10_000.0)
@@ -39,7 +42,7 @@ def _vortex_table(frame=None):
 @pytest.fixture(scope="module")
 def vortex_field():
     """A divergence-free field fitted to drifters in the Lamb–Oseen vortex (small M for speed)."""
-    return fit(tracks_from_frame(_vortex_table()), "divergence-free", inducing=16, seed=0, steps=300, progress=False)
+    return fit(tracks_from_frame(_vortex_table()), "divergence-free", inducing=16, seed=0, schedule=Schedule(steps=300), progress=False)
 
 
 @pytest.mark.slow
@@ -52,7 +55,7 @@ def test_cubature_matches_100k_particle_ensemble_on_lamb_oseen_field(vortex_fiel
     # covariance 0.25/0.69/0.98 % (at 6/12/24 h; spread 480/700/1040 m; the cloud turned 19/38/78°).
     release = Release([10_000.0, 0.0], name="core edge")
     times = HOURS * 3600.0
-    cub = vortex_field.spread(release, times, method="cubature", step_s=600.0)
+    cub = spread_from_field(vortex_field, release, times, method="cubature", step_s=600.0)
     ens = spread_from_field(vortex_field, release, times, method="ensemble", particles=100_000, step_s=300.0, seed=3)
     for k in range(1, len(times)):
         scale = np.sqrt(np.trace(ens.covs[0, k]))
@@ -68,7 +71,7 @@ def test_cubature_matches_100k_particle_ensemble_on_lamb_oseen_field(vortex_fiel
 def test_field_spread_api_shapes_methods_and_support_warning(vortex_field):
     times = np.arange(0.0, 6 * 3600.0 + 1, 3600.0)
     releases = [Release([10_000.0, 0.0]), Release([0.0, -5000.0], cov0_m2=np.diag([100.0, 400.0]), name="b")]
-    forecasts = {m: vortex_field.spread(releases, times, method=m, particles=2000, seed=0) for m in METHODS}
+    forecasts = {m: spread_from_field(vortex_field, releases, times, method=m, particles=2000, seed=0) for m in METHODS}
     cub = forecasts["cubature"]
     assert cub.means.shape == (2, 7, 2) and cub.covs.shape == (2, 7, 2, 2) and cub.mean_lonlat is None
     np.testing.assert_allclose(cub.means[:, 0], [[10_000.0, 0.0], [0.0, -5000.0]], rtol=0, atol=0)
@@ -78,13 +81,13 @@ def test_field_spread_api_shapes_methods_and_support_warning(vortex_field):
     for name in ("unscented", "gauss-hermite", "linearize"):
         np.testing.assert_allclose(forecasts[name].means, cub.means, rtol=0, atol=0.02 * np.sqrt(cub.covs[..., 0, 0].max()))
     # Deterministic: the same seed gives the same ensemble (rules: explicit seeds).
-    again = vortex_field.spread(releases, times, method="ensemble", particles=2000, seed=0)
+    again = spread_from_field(vortex_field, releases, times, method="ensemble", particles=2000, seed=0)
     np.testing.assert_array_equal(again.means, forecasts["ensemble"].means)
     with warnings.catch_warnings():
         warnings.simplefilter("error")
-        vortex_field.spread([0.0, 0.0], times)            # inside the data: no warning
+        spread_from_field(vortex_field, [0.0, 0.0], times)            # inside the data: no warning
     with pytest.warns(SupportWarning, match="outside the model's data support"):
-        vortex_field.spread([90_000.0, 0.0], times)
+        spread_from_field(vortex_field, [90_000.0, 0.0], times)
 
 
 # ---------------------------------------------------------------- command line
@@ -93,10 +96,10 @@ def models(tmp_path_factory, vortex_field):
     """(metric model file, lon/lat model file): the same fitted flow, the second declared to live in the
     azimuthal-equidistant frame of LONLAT (as if the drifters had been given in degrees)."""
     folder = tmp_path_factory.mktemp("models")
-    metric = vortex_field.save(folder / "metric.npz")
+    metric = driftwise.save(vortex_field, folder / "metric.npz")
     lonlat = FlowField.from_params(vortex_field.params, frame=LONLAT, decorrelation_time_s=vortex_field.decorrelation_time_s,
                                    position_error_m=vortex_field.position_error_m)
-    return metric, lonlat.save(folder / "lonlat.npz")
+    return metric, driftwise.save(lonlat, folder / "lonlat.npz")
 
 
 def _run_json(capsys, argv):

@@ -16,10 +16,10 @@ import pytest
 import xarray as xr
 from scipy.stats import chi2
 
+from driftwise.data.frame import Frame
+from driftwise.dynamics.spread import Release, as_releases, make_spread
 from driftwise.errors import InputError
-from driftwise.frame import Frame
-from driftwise.io import spread_to_dict, write_spread
-from driftwise.spread import Release, as_releases, make_spread
+from driftwise.products.writers import spread_to_dict, write_spread
 
 TIMES = np.arange(0.0, 6 * 3600.0 + 1, 1800.0)
 BOX = np.array([[2000.0, -800.0], [5000.0, -800.0], [5000.0, 900.0], [2000.0, 900.0]])

@@ -9,10 +9,19 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from driftwise.frame import Frame
-from driftwise.synthetic import (DemoBay, DemoScenario, GaussianGyre, LambOseenVortex, Mixture, PotentialSources,
-                                 TaylorGreen, UniformFlow, main, random_walk, simulate_drifters, write_demo_data)
-from driftwise.tracks import read_tracks
+from driftwise.app.bay import DemoBay, DemoScenario, main, write_demo_data
+from driftwise.data.frame import Frame
+from driftwise.data.synthetic import (
+    GaussianGyre,
+    LambOseenVortex,
+    Mixture,
+    PotentialSources,
+    TaylorGreen,
+    UniformFlow,
+    random_walk,
+    simulate_drifters,
+)
+from driftwise.data.tracks import read_tracks
 
 DEMO = Path(__file__).resolve().parents[1] / "demo_data"
 

@@ -15,11 +15,19 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from pyproj import Geod
 
-from driftwise import trackfile
-from driftwise.frame import Frame, ProjectionWarning, projection_stretch
-from driftwise.synthetic import random_walk
-from driftwise.tracks import (TrackError, TrackNotice, Tracks, format_summary, inspect_summary, read_tracks,
-                              tracks_from_frame, velocity_observations)
+from driftwise.data import trackfile
+from driftwise.data.frame import Frame, ProjectionWarning, projection_stretch
+from driftwise.data.synthetic import random_walk
+from driftwise.data.tracks import (
+    TrackError,
+    TrackNotice,
+    Tracks,
+    format_summary,
+    inspect_summary,
+    read_tracks,
+    tracks_from_frame,
+    velocity_observations,
+)
 
 WGS84 = Geod(ellps="WGS84")  # pyproj's geodesics (Karney 2013, J. Geodesy 87, 43) are the reference distances
 

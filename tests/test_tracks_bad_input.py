@@ -17,8 +17,9 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from driftwise import trackfile
-from driftwise.tracks import TrackError, TrackNotice, TrackWarning, csv_safe_text, read_tracks
+from driftwise.data import trackfile
+from driftwise.data.tracks import TrackError, TrackNotice, TrackWarning, read_tracks
+from driftwise.files import csv_safe_text
 
 H = "track_id,time,x,y\n"
 

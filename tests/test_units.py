@@ -5,13 +5,7 @@ from __future__ import annotations
 import pytest
 
 from driftwise.errors import InputError
-from driftwise.units import (
-    parse_diffusivity_m2_s,
-    parse_duration_s,
-    parse_durations_s,
-    parse_length_m,
-    parse_speed_m_s,
-)
+from driftwise.units import parse_diffusivity_m2_s, parse_duration_s, parse_durations_s, parse_length_m, parse_speed_m_s
 
 
 @pytest.mark.parametrize(

@@ -17,13 +17,14 @@ import pytest
 from scipy import stats
 
 import driftwise  # noqa: F401  (switches on float64)
-from driftwise import cli
-from driftwise import field as F
-from driftwise import physics as P
-from driftwise import synthetic as S
-from driftwise import verdict as V
-from driftwise.fit import fit, initial_inducing
-from driftwise.tracks import tracks_from_frame, velocity_observations
+from driftwise.app import cli
+from driftwise.data import synthetic as S
+from driftwise.data.tracks import tracks_from_frame, velocity_observations
+from driftwise.diagnostics import physics as P
+from driftwise.diagnostics import verdict as V
+from driftwise.gp import field as F
+from driftwise.gp.schedule import Schedule
+from driftwise.gp.training import fit, initial_inducing
 
 U_M_S, CELL_M, BOX_M, BUMP_M = 0.2, 3000.0, 6000.0, 1500.0
 K_M2_S, SIGMA_POS_M, FIX_S = 0.2, 5.0, 1800.0
@@ -171,7 +172,7 @@ def test_mixture_70_30_divergent_fraction():
     flow = divergent_mixture(0.3, rng, offset)
     tracks = drifters(flow, 8, offset, n_tracks=24, hours=9.0)
     obs = velocity_observations(tracks, position_error_m=SIGMA_POS_M)
-    field = fit(tracks, "helmholtz", inducing=64, steps=150, position_error_m=SIGMA_POS_M, seed=0,
+    field = fit(tracks, "helmholtz", inducing=64, schedule=Schedule(steps=150), position_error_m=SIGMA_POS_M, seed=0,
                               progress=False)
     grid = P.hull_grid(obs.position_m, n_cells=300)
     split = P.helmholtz_split(field, grid.points_m)
@@ -230,25 +231,26 @@ def test_evidence_reading_uses_kass_raftery_grades():
 def test_verdict_booleans_follow_the_area_test():
     yes = P.Significance(np.array([False, True, False]), 3.1, 3.1, 0.05)
     no = P.Significance(np.zeros(3, dtype=bool), math.inf, 1.2, 0.05)
-    out = V.verdict(yes, no, None, None)
+    out = V.decide(yes, no, None, None)
     assert out["divergence_free"] is False and out["curl_free"] is True
     assert "33.3 % of the data hull" in out["reasons"]["divergence_free"][0]
     assert "Benjamini-Hochberg" in out["rule"]
 
 
 def test_tracks_are_moved_into_the_model_frame():
-    from driftwise.frame import Frame
+    from driftwise.data.frame import Frame
+    from driftwise.data.tracks import in_model_frame
 
     a, b = Frame("lonlat", -9.0, 44.0), Frame("lonlat", -8.95, 44.02)
     xy = np.array([[100.0, 200.0], [-3000.0, 1500.0]])
     tracks = driftwise.Tracks(track_id=np.array(["A", "A"], dtype=object), time_s=np.array([0.0, 60.0]),
                               position_m=xy, frame=a)
-    moved = V.in_frame(tracks, b)
+    moved = in_model_frame(tracks, b)
     lon, lat = b.to_lonlat(moved.position_m)
     lon0, lat0 = a.to_lonlat(xy)
     np.testing.assert_allclose(np.c_[lon, lat], np.c_[lon0, lat0], atol=1e-9)
     with pytest.raises(driftwise.InputError, match="frame"):
-        V.in_frame(tracks, Frame())
+        in_model_frame(tracks, Frame())
 
 
 def test_check_cli_bad_input_exits_2(tmp_path, capsys):
