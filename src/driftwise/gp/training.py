@@ -53,7 +53,7 @@ from scipy.cluster.vq import kmeans2
 from tqdm.auto import tqdm
 
 from ..data.frame import Frame
-from ..data.observations import velocity_observations
+from ..data.observations import MIN_FIT_OBSERVATIONS, velocity_observations
 from ..data.utctime import UNIX_EPOCH_UTC
 from ..errors import InputError
 from . import field as fld
@@ -103,9 +103,9 @@ def _prepare(data, position_error_m: float) -> _Data:
         raise InputError(f"fit needs driftwise Tracks or Observations, got {type(data).__name__}")
     batch = fld.batch_from_observations(obs)
     _check_finite(batch)
-    if batch.position_m.shape[0] < 3:
-        raise InputError(f"fit needs at least 3 velocity observations (consecutive fixes of a track), "
-                         f"got {batch.position_m.shape[0]}")
+    if batch.position_m.shape[0] < MIN_FIT_OBSERVATIONS:
+        raise InputError(f"fit needs at least {MIN_FIT_OBSERVATIONS} velocity observations (consecutive fixes "
+                         f"of a track), got {batch.position_m.shape[0]}")
 
     frame = getattr(data, "frame", None) or getattr(obs, "frame", None) or Frame()
     return _Data(obs, batch, n_tracks, frame, _fingerprint(batch), bool(getattr(data, "time_is_absolute", False)))

@@ -23,7 +23,7 @@ from driftwise.data.synthetic import (
 )
 from driftwise.data.tracks import read_tracks
 
-DEMO = Path(__file__).resolve().parents[1] / "demo_data"
+DEMO = Path(__file__).resolve().parents[2] / "demo_data"
 
 FIELDS = {
     "lamb_oseen": LambOseenVortex(circulation_m2_s=5e3, core_radius_m=800.0, center_m=(300.0, -200.0)),

@@ -12,7 +12,7 @@
   standard_name is ``area_type`` or ``region``, so offline they are left empty and
   :func:`cfchecker_messages` refuses to check a file that has such a variable (nothing is faked).
 
-``python tests/cf_checkers.py FILE.nc ...`` prints both checkers' scores and failures.
+``python tests/products/cf_checkers.py FILE.nc ...`` prints both checkers' scores and failures.
 """
 
 from __future__ import annotations

@@ -16,6 +16,7 @@ from driftwise.app import cli
 from driftwise.app.bay import DemoBay
 from driftwise.data.frame import Frame
 from driftwise.diagnostics import physics as P
+from driftwise.diagnostics.grid import field_grid
 from driftwise.gp import field as F
 from driftwise.gp.modelfile import save_model
 
@@ -94,7 +95,7 @@ def _gradient_divergence(u, v, h):
 
 @pytest.mark.parametrize("frame", [Frame(), Frame("lonlat", -9.0, 44.0)], ids=["metric", "lonlat"])
 def test_divergence_matches_numpy_gradient_of_the_velocity_grid(frame, tmp_path):
-    grid = P.field_grid(bay_field(frame=frame), spacing_m=LENGTH_M / 30)
+    grid = field_grid(bay_field(frame=frame), spacing_m=LENGTH_M / 30)
     path = tmp_path / "field.nc"
     from driftwise.products.writers import write_field_grid
 
@@ -135,7 +136,7 @@ def test_csv_has_the_same_columns_one_row_per_node(lonlat_model, tmp_path, capsy
 
 def test_support_mask_follows_the_variance_ratio():
     field = bay_field()
-    grid = P.field_grid(field, spacing_m=2000.0)
+    grid = field_grid(field, spacing_m=2000.0)
     np.testing.assert_array_equal(grid.supported, grid.variance_ratio < P.SUPPORT_RATIO)
     assert grid.supported.mean() > 0.8                # the data cover the extent densely
     far = np.array([[60_000.0, 60_000.0]])
@@ -145,7 +146,7 @@ def test_support_mask_follows_the_variance_ratio():
 
 
 def test_divergence_free_model_exports_zero_with_the_reason(tmp_path):
-    grid = P.field_grid(bay_field("divergence-free"), spacing_m=2000.0)
+    grid = field_grid(bay_field("divergence-free"), spacing_m=2000.0)
     assert "divergence" in grid.reasons
     np.testing.assert_array_equal(grid.divergence_s, 0.0)
     from driftwise.products.writers import write_field_grid

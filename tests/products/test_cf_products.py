@@ -4,7 +4,7 @@ tooling, absolute ISO-8601 times and compass bearings.
 External references beside each check:
 * IOOS ``compliance-checker`` (PyPI) ``cf`` suite at its newest CF version and ``acdd:1.3``;
   ``cfchecker`` (PyPI, the CF community checker) — both offline with the CF standard-name table
-  bundled in compliance-checker (``tests/cf_checkers.py`` says how).
+  bundled in compliance-checker (``tests/products/cf_checkers.py`` says how).
 * RFC 7946 (Butler et al. 2016) §3.1.6 rings and winding, §4 lon/lat and no ``crs`` member;
   OGC simple-feature validity as implemented by GEOS (shapely ``is_valid``); ``geopandas.read_file``.
 * CF time decoding by xarray/cftime (CF-1.11 §4.4).
@@ -37,7 +37,7 @@ from driftwise.gp.modelfile import load_model, save_model
 from driftwise.products.cfproducts import spread_dataset
 from driftwise.products.writers import field_grid_dataset, write_field_grid, write_spread
 
-cf_checkers = pytest.importorskip("cf_checkers")      # tests/cf_checkers.py (needs the `test` extra)
+cf_checkers = pytest.importorskip("cf_checkers")      # tests/products/cf_checkers.py (needs the `test` extra)
 
 FRAME = Frame("lonlat", -9.0, 44.0)
 TIMES = np.arange(0.0, 6 * 3600.0 + 1, 1800.0)
