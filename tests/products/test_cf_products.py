@@ -27,7 +27,7 @@ from driftwise.app import cli
 from driftwise.app.bay import DemoBay
 from driftwise.app.scenarios import release_subset
 from driftwise.data.frame import Frame
-from driftwise.data.tracks import tracks_from_frame
+from driftwise.data.tracks import read_tracks, tracks_from_frame
 from driftwise.data.utctime import UNIX_EPOCH_UTC, iso_utc, seconds_since_origin
 from driftwise.diagnostics.grid import field_grid
 from driftwise.dynamics.spread import Release, as_releases, bearing_deg, make_spread
@@ -329,3 +329,16 @@ def test_flat_ellipse_becomes_the_linestring_of_its_major_axis(tmp_path):
         assert feature["properties"]["bearing_deg"] == pytest.approx(90.0, abs=1e-6)      # along east
     assert all(f["geometry"]["type"] == "Polygon" for f in raw["features"]
                if f["properties"]["kind"] == "ellipse" and f["properties"]["time_s"] == 3600.0)
+
+
+def test_the_spread_trajectory_file_reads_back_as_tracks(netcdf_products):
+    # the package's own CF trajectory reader (data/trackcf) takes the forecast file as drifter tracks: the mean
+    # paths at their absolute times (a tool that reads drifter files reads forecasts too)
+    spread = _spread()
+    tracks = read_tracks(netcdf_products["spread_lonlat"])
+    assert tracks.time_is_absolute and sorted(set(tracks.track_id)) == ["buoy 2", "pier Ø"]
+    for r, rel in enumerate(spread.releases):
+        rows = tracks.track_id == rel.name
+        np.testing.assert_allclose(tracks.time_s[rows], rel.start_time_s + TIMES, rtol=0, atol=1e-6)
+        lon, lat = tracks.frame.to_lonlat(tracks.position_m[rows])
+        np.testing.assert_allclose(np.stack([lon, lat], -1), spread.mean_lonlat[r], rtol=0, atol=1e-9)
