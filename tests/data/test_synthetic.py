@@ -211,7 +211,7 @@ def test_demo_data_is_small_clean_and_split_by_track():
     readme = (DEMO / "README.md").read_text()
     scenario = DemoScenario()
     assert "invented" in readme and f"K = {scenario.diffusivity_m2_s:g} m²/s" in readme
-    assert "python -m driftwise.synthetic --out demo_data" in readme
+    assert "python -m driftwise.app.bay --out demo_data" in readme   # the generator moved to app/bay
 
 
 def test_write_demo_data_returns_the_paths(tmp_path):
