@@ -452,7 +452,7 @@ def _spread_figures(job: Job) -> None:
                                "covariance_m2": f.covs[r]}
     horizon_h = spill.times_s[-1] / HOUR_S
     spill_times = [t * HOUR_S for t in (6, 12, 24, 48) if t <= horizon_h]
-    extra = check_figure_options(job.state["checks"])
+    extra = check_figure_options(job.state["checks"], spill, plume)
     job.add_figure(plot_release_spread([rel(spill, 0, "fuel spill, mean path")], ellipse_times_s=spill_times,
                                        frame=frame, field=background, area_m=bed, area_label=SHELLFISH_BED,
                                        places=places, title="Fuel spill", **extra["spill"]),
@@ -466,7 +466,7 @@ def _spread_figures(job: Job) -> None:
                    "parcels' Gaussians.", "spread")
     curves = area_curves(spill, job.state["times"], job.state["share"])
     job.add_figure(plot_area_probability(curves, area_label="the shellfish bed", threshold=job.settings.threshold,
-                                         title=f"Reaching the {SHELLFISH_BED}"),
+                                         title=f"Reaching the {SHELLFISH_BED}", **extra["area"]),
                    "area_probability.png", f"Probability of reaching the {SHELLFISH_BED} against time; "
                    "the star marks the first time the threshold is reached.", "spread")
 

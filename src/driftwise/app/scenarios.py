@@ -20,6 +20,7 @@ from typing import Any
 import numpy as np
 
 from ..data.frame import Frame
+from ..data.utctime import default_start_time_s
 from ..dynamics.adequacy import spread_adequacy
 from ..dynamics.spread import Release, spread_from_field
 from .bay import DemoScenario
@@ -64,8 +65,9 @@ def forecast_scenarios(field: Any, settings: Any) -> tuple[Any, Any, np.ndarray,
     harbour, outfall = sites_in_frame(field.frame, [HARBOUR_MOUTH_M, OUTFALL_M])
     times = s.every_s * np.arange(int(round(s.horizon_s / s.every_s)) + 1)
     starts = HOUR_S * np.arange(s.outfall_hours)
-    releases = [Release(harbour, cov0_m2=s.spill_sd_m**2 * np.eye(2), name="fuel spill")]
-    releases += [Release(outfall, start_time_s=t0, cov0_m2=OUTFALL_SD_M**2 * np.eye(2),
+    base = default_start_time_s(getattr(field, "data_summary", None))   # the data's end on an absolute axis
+    releases = [Release(harbour, start_time_s=base, cov0_m2=s.spill_sd_m**2 * np.eye(2), name="fuel spill")]
+    releases += [Release(outfall, start_time_s=base + t0, cov0_m2=OUTFALL_SD_M**2 * np.eye(2),
                          name=f"outfall +{t0 / HOUR_S:g} h") for t0 in starts]
     both = spread_from_field(field, releases, times, polygon_m=sites_in_frame(field.frame, SHELLFISH_BED_M),
                              threshold=s.threshold)
@@ -190,13 +192,16 @@ def gaussian_check_notes(checks: dict) -> dict:
             "outfall": checks["outfall"].sentence("the oldest outfall parcel")}
 
 
-def check_figure_options(checks: dict) -> dict:
-    """Keyword arguments of the spill and plume figures from the checks: the boxed note, the spill's particles."""
-    notes, spill = gaussian_check_notes(checks), checks["spill"]
-    return {"spill": {"note": notes["spill"], "particles_m": spill.samples_m,
-                      "particles_label": f"{spill.particles} simulated particles at {spill.time_s / HOUR_S:g} h "
+def check_figure_options(checks: dict, spill: Any, plume: Any) -> dict:
+    """Keyword arguments of the spread figures: the release (discharge start) time as ISO-8601 UTC when the
+    model knows its time origin, the checks' boxed notes, and the spill's check particles."""
+    notes, check = gaussian_check_notes(checks), checks["spill"]
+    spill_start, plume_start = ((f.start_times_utc or [None])[0] for f in (spill, plume))
+    return {"spill": {"note": notes["spill"], "particles_m": check.samples_m, "release_time": spill_start,
+                      "particles_label": f"{check.particles} simulated particles at {check.time_s / HOUR_S:g} h "
                                          "(ensemble check)"},
-            "outfall": {"note": notes["outfall"]}}
+            "outfall": {"note": notes["outfall"], "release_time": plume_start},
+            "area": {"release_time": spill_start if spill_start == plume_start else None}}
 
 
 def area_curves(spill: Any, times_s: np.ndarray, share: np.ndarray) -> list[dict]:
