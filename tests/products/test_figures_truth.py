@@ -126,7 +126,7 @@ def test_signed_maps_scale_to_the_significant_signal():
     fig = plots.plot_divergence_vorticity(X_M, Y_M, div, z_div, vort, z_vort, z_threshold=(3.0, 3.5))
     ax_div, ax_vort = _maps(fig)
     mesh = next(c for c in ax_div.collections if isinstance(getattr(c, "norm", None), TwoSlopeNorm))
-    exponent = plots._power_of_ten(np.array([np.abs(div[np.abs(z_div) >= 3.0]).max()]))
+    exponent = plots.power_of_ten(np.array([np.abs(div[np.abs(z_div) >= 3.0]).max()]))
     # divergence: the scale ends at the largest significant |value|, not at the 3e-5 spike
     np.testing.assert_allclose(mesh.norm.vmax * 10.0**exponent, np.abs(div[np.abs(z_div) >= 3.0]).max(),
                                rtol=1e-12, atol=0)
@@ -137,7 +137,7 @@ def test_signed_maps_scale_to_the_significant_signal():
     text = " ".join(t.get_text() for t in ax_vort.texts)
     assert f"nothing significant: largest |z| {np.abs(z_vort).max():.2g} < 3.5 needed" in text
     mesh = next(c for c in ax_vort.collections if isinstance(getattr(c, "norm", None), TwoSlopeNorm))
-    np.testing.assert_allclose(mesh.norm.vmax * 10.0 ** plots._power_of_ten(np.array([3.5e-6])), 3.5e-6,
+    np.testing.assert_allclose(mesh.norm.vmax * 10.0 ** plots.power_of_ten(np.array([3.5e-6])), 3.5e-6,
                                rtol=1e-9, atol=0)
     assert not [c for c in ax_vort.collections if list(getattr(c, "levels", [])) == [3.5]]  # no outline
     _labels_have_units(fig)
@@ -177,7 +177,7 @@ def test_physics_maps_say_nothing_significant_and_scale_to_the_signal():
     _, g = _vortex()
     mesh = next(c for c in ax_vort.collections if isinstance(getattr(c, "norm", None), TwoSlopeNorm))
     top = np.abs(5e-5 * g[9.0 * g >= 3.2]).max()
-    np.testing.assert_allclose(mesh.norm.vmax * 10.0 ** plots._power_of_ten(np.array([top])), top, rtol=1e-12,
+    np.testing.assert_allclose(mesh.norm.vmax * 10.0 ** plots.power_of_ten(np.array([top])), top, rtol=1e-12,
                                atol=0)
     for ax in (ax_div, ax_vort):
         _covers(ax, X_M / 1e3, Y_M / 1e3)

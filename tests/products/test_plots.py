@@ -160,13 +160,13 @@ def test_divergence_vorticity_centred_and_outlined(tmp_path):
         assert mesh.get_cmap().name == plots.DIVERGING
         assert mesh.norm.vcenter == 0.0 and mesh.norm.vmin == pytest.approx(-mesh.norm.vmax, rel=1e-12)
     # the colour scale ends at the significant signal: max |div| where |z| >= 1.96 ...
-    scale = 10.0 ** plots._power_of_ten(np.array([np.abs(div[np.abs(z_div) >= 1.96]).max()]))
+    scale = 10.0 ** plots.power_of_ten(np.array([np.abs(div[np.abs(z_div) >= 1.96]).max()]))
     mesh = next(c for c in ax_div.collections if isinstance(getattr(c, "norm", None), TwoSlopeNorm))
     np.testing.assert_allclose(mesh.norm.vmax * scale, np.abs(div[np.abs(z_div) >= 1.96]).max(), rtol=1e-12, atol=0)
     # ... and with nothing significant at the smallest value that could be: 1.96 x median s.d. (|vort| / 0.5)
     mesh = next(c for c in ax_vort.collections if isinstance(getattr(c, "norm", None), TwoSlopeNorm))
     limit = 1.96 * np.median(np.abs(vort) / 0.5)
-    np.testing.assert_allclose(mesh.norm.vmax * 10.0 ** plots._power_of_ten(np.array([limit])), limit,
+    np.testing.assert_allclose(mesh.norm.vmax * 10.0 ** plots.power_of_ten(np.array([limit])), limit,
                                rtol=1e-12, atol=0)
     cbar_labels = [a.get_xlabel() for a in fig.axes if hasattr(a, "_colorbar")]
     assert any("s⁻¹" in lab for lab in cbar_labels)

@@ -530,7 +530,7 @@ def run_demo(out_dir: str | Path = "driftwise-demo", *, quiet: bool = False, set
     start = time.perf_counter()
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        bar = _bar(len(STEPS), quiet)
+        bar = progress_bar(len(STEPS), quiet)
         for name, section, fn in STEPS:
             bar.set_description(f"driftwise demo: {name}")
             ok = job.run(name, section, fn)
@@ -554,7 +554,8 @@ def _prepare_out(out: Path, figures: Path) -> None:
             raise InputError(f"{folder}: cannot create the output folder ({err.strerror})") from None
 
 
-def _bar(total: int, quiet: bool) -> Any:
+def progress_bar(total: int, quiet: bool) -> Any:
+    """The demo's step bar on stderr (tqdm), shown only on a terminal and without ``--quiet``."""
     disable = quiet or not (hasattr(sys.stderr, "isatty") and sys.stderr.isatty())
     return tqdm(total=total, disable=disable, unit="step", file=sys.stderr, leave=False, dynamic_ncols=True)
 

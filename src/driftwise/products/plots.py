@@ -111,7 +111,7 @@ def wilson_interval(k: np.ndarray, n: np.ndarray, *, z: float = 1.959964) -> tup
     return centre - half, centre + half
 
 
-def _power_of_ten(values: np.ndarray) -> int:
+def power_of_ten(values: np.ndarray) -> int:
     """Exponent e so that values / 10**e are of order one (for colour-bar units)."""
     big = np.nanmax(np.abs(values)) if np.size(values) and np.any(np.isfinite(values)) else 1.0
     return int(np.floor(np.log10(big))) if big > 0 else 0
@@ -278,7 +278,7 @@ def signal_limit(value: np.ndarray, z: np.ndarray, z_threshold: float) -> tuple[
 def _signed_panel(fig: Figure, ax: Any, X: np.ndarray, Y: np.ndarray, value: np.ndarray, z: np.ndarray,
                   z_threshold: float, name: str) -> list[Any]:
     limit, significant = signal_limit(value, z, z_threshold)
-    exponent = _power_of_ten(np.array([limit]))
+    exponent = power_of_ten(np.array([limit]))
     scaled, limit = value / 10.0**exponent, limit / 10.0**exponent
     norm = TwoSlopeNorm(vcenter=0.0, vmin=-limit, vmax=limit)
     mesh = ax.pcolormesh(X, Y, scaled, cmap=DIVERGING, norm=norm, shading="auto")
