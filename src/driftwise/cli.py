@@ -266,13 +266,16 @@ def _add_fit(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--inducing", type=int, default=None, metavar="M",
                    help="number of inducing points (default: min(256, observations/32), at least 16)")
     p.add_argument("--seed", type=int, default=0, metavar="S", help="random seed (default 0)")
-    p.add_argument("--position-error", default="10m", help="standard deviation of one fix per axis (default 10m)")
+    p.add_argument("--position-error", default=None,
+                   help="standard deviation of one fix per axis, e.g. 0.5mm or 10m (default: estimated from the "
+                   "tracks' second differences and reported; refused if larger than the typical step between fixes)")
     p.add_argument("--max-speed", default="5m/s", help="drop fixes implying a faster speed (default 5m/s)")
     p.add_argument("--max-gap", default=None, help="split a track at gaps longer than this (e.g. 6h; default: never)")
     p.add_argument("--resume", action="store_true", help="continue from the checkpoint MODEL.ckpt.npz if present")
     p.add_argument("--calibrate", action=argparse.BooleanOptionalAction, default=True,
                    help="after the fit, estimate K and tau from the likelihood of observed displacements between "
-                   "fixes (lags 1h-12h) on these tracks and store them in the model (default: on)")
+                   "fixes on these tracks (up to 5 lags from 2 sampling intervals to a third of the median track "
+                   "duration) and store them in the model (default: on)")
     _add_quiet_flag(p)
     _add_json_flag(p)
     p.set_defaults(run=_run_fit)
@@ -287,29 +290,39 @@ def _checkpoint_path(out: str):
 
 
 def _run_fit(args: argparse.Namespace) -> int:
+    from .datascales import check_position_error, data_scales
     from .fit import fit, fit_report
     from .tracks import read_tracks_from_cli
     from .units import parse_length_m
 
-    position_error = parse_length_m(args.position_error, what="--position-error")
+    position_error = None
+    if args.position_error is not None:
+        position_error = parse_length_m(args.position_error, what="--position-error")
     if args.inducing is not None and args.inducing < 1:
         raise InputError(f"--inducing must be a positive integer, got {args.inducing}")
     if args.seed < 0:
         raise InputError(f"--seed must be a non-negative integer, got {args.seed}")
     tracks = read_tracks_from_cli(args)
+    if position_error is not None:
+        check_position_error(position_error, data_scales(tracks), option="--position-error")
     checkpoint = _checkpoint_path(args.out)
+    existed = checkpoint.exists()
     try:
         field = fit(tracks, args.kernel, inducing=args.inducing, seed=args.seed, position_error_m=position_error,
                     checkpoint=checkpoint, resume=args.resume, progress=not (args.quiet or args.json))
     except KeyboardInterrupt:
         print(f"driftwise: fit interrupted; continue with --resume (checkpoint {checkpoint})", file=sys.stderr)
         raise
+    except BaseException:
+        if not existed:   # a checkpoint this run wrote is no use after a failure (one given to --resume is kept)
+            checkpoint.unlink(missing_ok=True)
+        raise
+    checkpoint.unlink(missing_ok=True)   # the fit is complete: nothing to resume, whatever happens next
     if args.calibrate:
         from .sde import calibrate
 
         field = calibrate(field, tracks)
     written = field.save(args.out)
-    checkpoint.unlink(missing_ok=True)
     report = {**fit_report(field), "model": str(written)}
     if args.calibrate:
         report["calibration"] = field.fit_info.get("calibration")
@@ -327,10 +340,26 @@ def _format_fit(report: dict[str, Any]) -> str:
              f"  ELBO {report['elbo']:.6g} nats ({report['elbo_per_observation']:.4g} per observation) after "
              f"{report['steps']} steps" + ("" if report["converged"] else " (step limit reached before the plateau)")]
     lines += [f"  {name} = {value:.4g}" for name, value in hyper.items()]
+    lines.append(_position_error_line(report))
     lines += [f"  decorrelation time τ = {report['decorrelation_time_s']:.4g} s "
               f"({report.get('decorrelation_time_source') or 'length scale / RMS speed'})",
               f"wrote {report['model']}"]
     return "\n".join(lines)
+
+
+def _position_error_line(report: dict[str, Any]) -> str:
+    """``  position error σ = 0.52 mm (estimated ± 0.03 mm: …)`` or ``(given)``."""
+    from .datascales import length_text
+
+    text = f"  position error σ = {length_text(report['position_error_m'])} ({report['position_error_source']}"
+    estimate = report.get("position_error_estimate") or {}
+    if report["position_error_source"] == "estimated":
+        se = estimate.get("standard_error_m")
+        text += "" if se is None else f" ± {length_text(se)}"
+        text += (f" from the second differences of {estimate.get('n_used')} windows of 6 fixes in "
+                 f"{estimate.get('n_tracks')} tracks")
+        text += f"; {estimate['note']}" if estimate.get("note") else ""
+    return text + ")"
 
 
 COMMANDS: list[Callable[[argparse._SubParsersAction], None]] = [_add_inspect, _add_spread, _add_fit]

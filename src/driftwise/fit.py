@@ -58,7 +58,9 @@ import numpy as np
 import optax
 
 from . import field as fld
+from .datascales import check_position_error, data_scales
 from .errors import InputError
+from .positionerror import estimate_position_error
 from .variational import (CHUNK, chunks, exact_q, full_elbo, mean_speed_squared, natural_step, natural_step_jit,
                           take)
 
@@ -114,6 +116,19 @@ def _prepare(data, position_error_m: float) -> _Data:
 
     frame = getattr(data, "frame", None) or getattr(obs, "frame", None) or Frame()
     return _Data(obs, batch, n_tracks, frame, _fingerprint(batch))
+
+
+def _position_error(data, position_error_m: float | None, seed: int) -> tuple[float | None, dict[str, Any]]:
+    """σ_pos (m) for the fit and its record.  Tracks: the given value, refused when larger than the
+    data's median step (:func:`driftwise.datascales.check_position_error`), or, when None, the
+    estimate of :func:`driftwise.positionerror.estimate_position_error`.  Observations carry theirs."""
+    if not hasattr(data, "track_id"):
+        return position_error_m, {"position_error_source": "given"}
+    if position_error_m is not None:
+        check_position_error(position_error_m, data_scales(data), option="position_error_m")
+        return position_error_m, {"position_error_source": "given"}
+    estimate = estimate_position_error(data, seed=seed)
+    return estimate.value_m, {"position_error_source": "estimated", "position_error_estimate": estimate.to_dict()}
 
 
 def _check_finite(batch: fld.ObservationBatch) -> None:
@@ -461,7 +476,8 @@ def _z_scale(params: fld.FieldParams) -> float:
 
 
 # ------------------------------------------------------------------------------ the result
-def _finish(state: _State, data: _Data, config: _Config, *, steps: int, patience: int) -> fld.FlowField:
+def _finish(state: _State, data: _Data, config: _Config, *, steps: int, patience: int,
+            record: dict[str, Any] | None = None) -> fld.FlowField:
     jitter = state.jitter_multiple
     params = exact_q(state.params, data.batch, jitter_multiple=jitter)
     elbo = full_elbo(params, data.batch, jitter_multiple=jitter)
@@ -478,7 +494,7 @@ def _finish(state: _State, data: _Data, config: _Config, *, steps: int, patience
             "learning_rate_final": float(state.opt_state.hyperparams["learning_rate"]),
             "decorrelation_time_source": "length_scale/rms_speed", "rms_speed_m_s": rms_speed,
             "length_scale_m": length,
-            "rms_speed_source": "posterior mean speed at the observation midpoints (RMS)"}
+            "rms_speed_source": "posterior mean speed at the observation midpoints (RMS)"} | (record or {})
     return fld.FlowField.from_params(params, decorrelation_time_s=tau, fit_info=info, **common)
 
 
@@ -538,12 +554,15 @@ def fit_report(field: fld.FlowField) -> dict[str, Any]:
             "elbo_per_observation": info.get("elbo_per_observation"), "hyperparameters": field.hyperparameters,
             "diffusivity_m2_s": field.diffusivity_m2_s, "decorrelation_time_s": field.decorrelation_time_s,
             "decorrelation_time_source": info.get("decorrelation_time_source"), "steps": info.get("steps"),
-            "converged": info.get("converged"), "frame": field.frame_dict}
+            "converged": info.get("converged"), "frame": field.frame_dict,
+            "position_error_m": field.position_error_m,
+            "position_error_source": info.get("position_error_source", "given"),
+            "position_error_estimate": info.get("position_error_estimate")}
 
 
 # ------------------------------------------------------------------------------ the door
 def fit(tracks_or_observations, kernel: str = "helmholtz", *, inducing: int | None = None, seed: int = 0,
-        position_error_m: float = 10.0, learn_inducing: bool = False, steps: int = FIT_DEFAULTS["steps"],
+        position_error_m: float | None = None, learn_inducing: bool = False, steps: int = FIT_DEFAULTS["steps"],
         batch_size: int = 1024, learning_rate: float = FIT_DEFAULTS["learning_rate"],
         patience: int = FIT_DEFAULTS["patience"], checkpoint=None, resume: bool = False, progress: bool = True,
         base: str = "squared-exponential", q_update: str = "auto",
@@ -553,7 +572,10 @@ def fit(tracks_or_observations, kernel: str = "helmholtz", *, inducing: int | No
     ``kernel`` ∈ {"helmholtz", "divergence-free", "curl-free", "independent"}, ``base`` ∈
     {"squared-exponential", "matern52"}; ``inducing`` M points by k-means (default None:
     min(256, max(16, N/32)) for N velocity observations); ``position_error_m``
-    σ_pos of one fix (m, used when tracks are given).  At most ``steps`` optimiser steps, each on
+    σ_pos of one fix (m, used when tracks are given; None: estimated from the tracks'
+    second differences, :mod:`driftwise.positionerror`; a value above the median step between
+    fixes is refused).  ``fit_info`` records ``position_error_source`` ("given" or "estimated")
+    and the estimate with its standard error.  At most ``steps`` optimiser steps, each on
     all N observations when N ≤ 16 × ``batch_size``; for larger N on a fixed seeded subsample of
     16 × ``batch_size`` of them (``q_update="auto"``) or on minibatches of ``batch_size`` ("adam",
     "natural").  Every ``patience`` steps the ELBO on fixed evaluation rows (all, or 8192 when
@@ -567,14 +589,16 @@ def fit(tracks_or_observations, kernel: str = "helmholtz", *, inducing: int | No
     """
     config = _check_options(kernel, base, inducing, seed, steps, batch_size, learning_rate, patience,
                             q_update, natural_step, position_error_m)
+    position_error_m, record = _position_error(tracks_or_observations, position_error_m, int(seed))
     data = _prepare(tracks_or_observations, position_error_m)
-    config = _resolve(config, data.n, learn_inducing=bool(learn_inducing), fingerprint=data.fingerprint)
+    config = _resolve(config, data.n, learn_inducing=bool(learn_inducing), fingerprint=data.fingerprint,
+                      position_error_m=float(data.obs.position_error_m))
     checkpoint = None if checkpoint is None else Path(checkpoint)
     train = _subsample(data, config.subsample, config.seed)
     state, z_scale = _start(train, config, learning_rate=learning_rate, checkpoint=checkpoint, resume=resume)
     state = _train(state, train, config, steps=int(steps), patience=int(patience), z_scale=z_scale,
                    checkpoint=checkpoint, progress=progress)
-    return _finish(state, data, config, steps=int(steps), patience=int(patience))
+    return _finish(state, data, config, steps=int(steps), patience=int(patience), record=record)
 
 
 def _resolve(config: _Config, n: int, **fields) -> _Config:
@@ -630,8 +654,7 @@ def _check_options(kernel, base, inducing, seed, steps, batch_size, learning_rat
         raise InputError(f"q_update must be 'auto', 'natural' or 'adam', got {q_update!r}")
     if not (0.0 < natural_step <= 1.0):
         raise InputError(f"natural_step must lie in (0, 1], got {natural_step!r}")
-    if not (math.isfinite(position_error_m) and position_error_m >= 0):
+    if position_error_m is not None and not (math.isfinite(position_error_m) and position_error_m >= 0):
         raise InputError(f"position error must be a finite number of metres ≥ 0, got {position_error_m!r}")
     return _Config(kernel, base, 0 if inducing is None else int(inducing), int(seed), int(batch_size), False,
-                   q_update, float(natural_step),
-                   float(position_error_m), "")
+                   q_update, float(natural_step), 0.0, "")

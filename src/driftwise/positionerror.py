@@ -84,7 +84,9 @@ class PositionErrorEstimate:
     note: str = ""
 
     def to_dict(self) -> dict[str, Any]:
-        return {"value_m": self.value_m, "standard_error_m": self.standard_error_m, "method": self.method,
+        """JSON-safe record (an infinite standard error becomes None)."""
+        se = self.standard_error_m if math.isfinite(self.standard_error_m) else None
+        return {"value_m": self.value_m, "standard_error_m": se, "method": self.method,
                 "n_used": self.n_used, "identified": self.identified, "estimate_m": self.estimate_m,
                 "n_tracks": self.n_tracks, "note": self.note}
 
