@@ -419,7 +419,10 @@ def _add_score(sub: argparse._SubParsersAction) -> None:
         "Gaussian log score, next to persistence and no-motion baselines.", epilog=CAUTION)
     p.add_argument("model", help="model file written by `driftwise fit`")
     p.add_argument("holdout", help="tracks file NOT used in the fit (CSV, CSV.GZ, Parquet or CF-trajectory NetCDF)")
-    p.add_argument("--horizons", default="6h,12h,24h", help="comma-separated forecast horizons (default 6h,12h,24h)")
+    p.add_argument("--horizons", default=None,
+                   help="comma-separated forecast horizons, e.g. 6h,12h,24h (default: a twelfth, a sixth and a third "
+                   "of the held-out tracks' median duration on whole sampling intervals; refused if shorter than "
+                   "the sampling interval)")
     p.add_argument("--method", choices=("cubature", "unscented", "gauss-hermite", "linearize"), default="cubature",
                    help="moment method of the forecasts (default cubature)")
     p.add_argument("--fit-tracks", default=None, metavar="TRACKS",
@@ -445,16 +448,21 @@ def _run_score(args: argparse.Namespace) -> int:
 
     import driftwise
 
+    from .datascales import check_horizons, data_scales
     from .skill import format_score_table, score, write_score_csv
     from .units import parse_durations_s
 
-    horizons = parse_durations_s(args.horizons, what="--horizons")
-    if not horizons or min(horizons) <= 0:
+    horizons = None if args.horizons is None else parse_durations_s(args.horizons, what="--horizons")
+    if horizons is not None and (not horizons or min(horizons) <= 0):
         raise InputError(f"--horizons {args.horizons!r}: give positive durations such as 6h,12h,24h")
     if args.max_starts < 1:
         raise InputError(f"--max-starts must be a positive integer, got {args.max_starts}")
     model = driftwise.load(args.model)
     holdout = _read_named_tracks(args.holdout, args.max_speed)
+    scales = data_scales(holdout)
+    if horizons is None:
+        horizons = list(scales.horizons_s)
+    check_horizons(horizons, scales, option="--horizons")
     fit_tracks = _read_named_tracks(args.fit_tracks, args.max_speed) if args.fit_tracks else None
     result = score(model, holdout, horizons_s=horizons, method=args.method, max_starts=args.max_starts,
                    fit_tracks=fit_tracks)
