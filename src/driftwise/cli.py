@@ -506,7 +506,9 @@ def _add_check(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--seed", type=int, default=0, metavar="S", help="random seed of the split and fits (default 0)")
     p.add_argument("--inducing", type=int, default=64, metavar="M", help="inducing points per family fit (default 64)")
     p.add_argument("--steps", type=int, default=300, metavar="N", help="optimiser steps per family fit (default 300)")
-    p.add_argument("--position-error", default="10m", help="standard deviation of one fix per axis (default 10m)")
+    p.add_argument("--position-error", default=None,
+                   help="standard deviation of one fix per axis, e.g. 0.5mm or 10m (default: estimated from the "
+                   "tracks' second differences; refused if larger than the typical step between fixes)")
     p.add_argument("--max-speed", default="5m/s", help="drop fixes implying a faster speed (default 5m/s)")
     p.add_argument("--max-gap", default=None, help="split a track at gaps longer than this (e.g. 6h; default: never)")
     p.add_argument("--figures", default=None, metavar="DIR", help="write divergence and vorticity maps (PNG) here")
@@ -520,7 +522,9 @@ def _run_check(args: argparse.Namespace) -> int:
     from .units import parse_length_m
     from .verdict import run_check
 
-    position_error = parse_length_m(args.position_error, what="--position-error")
+    position_error = None
+    if args.position_error is not None:
+        position_error = parse_length_m(args.position_error, what="--position-error")
     for name, value, low in (("--seed", args.seed, 0), ("--inducing", args.inducing, 1), ("--steps", args.steps, 1)):
         if value < low:
             raise InputError(f"{name} must be an integer ≥ {low}, got {value}")
@@ -530,6 +534,10 @@ def _run_check(args: argparse.Namespace) -> int:
 
         model = load_model(args.model)
     tracks = read_tracks_from_cli(args)
+    if position_error is not None:
+        from .datascales import check_position_error, data_scales
+
+        check_position_error(position_error, data_scales(tracks), option="--position-error")
     summary, maps = run_check(tracks, model=model, holdout_fraction=args.holdout_fraction, seed=args.seed,
                               inducing=args.inducing, steps=args.steps, position_error_m=position_error,
                               progress=not (args.quiet or args.json))
@@ -548,10 +556,19 @@ def _run_check(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _check_position_error_line(s: dict[str, Any]) -> str:
+    from .datascales import length_text
+
+    if "position_error_m" not in s:
+        return "  position error: not recorded"
+    return f"  position error σ = {length_text(s['position_error_m'])} ({s['position_error_source']})"
+
+
 def _format_check(s: dict[str, Any]) -> str:
     ev, split, verdict = s["evidence"], s["helmholtz_split"], s["verdict"]
     lines = [f"check: {s['n_tracks']} tracks; {ev['heldout_tracks']} held out ({ev['heldout_observations']} velocity "
              f"observations); tested model: {s['tested_model']}",
+             _check_position_error_line(s),
              f"  {'family':<16} {'ELBO (nats)':>14} {'held-out log lik. (nats)':>26} {'per obs.':>9}"]
     for name, fam in s["families"].items():
         lines.append(f"  {name:<16} {fam['elbo']:>14.1f} {fam['heldout_log_likelihood']:>26.1f} "

@@ -32,7 +32,9 @@ import math
 import numpy as np
 
 from . import physics
+from .datascales import check_position_error, data_scales
 from .errors import InputError
+from .positionerror import estimate_position_error
 
 __all__ = ["FAMILIES", "CheckMaps", "check", "constraint_tests", "evidence_reading", "finer_maps",
            "heldout_log_likelihood", "in_frame", "run_check", "split_tracks", "verdict", "verdict_spacing_m"]
@@ -259,7 +261,7 @@ def finer_maps(maps: CheckMaps, *, factor: int = 3) -> CheckMaps:
 
 
 def check(tracks, *, model=None, holdout_fraction: float = 0.2, seed: int = 0, inducing: int = 64,
-          steps: int = 300, position_error_m: float = 10.0, alpha: float = physics.ALPHA,
+          steps: int = 300, position_error_m: float | None = None, alpha: float = physics.ALPHA,
           progress: bool = False) -> dict:
     """Fit the four families, test the constraints and return the design-sheet dictionary.
 
@@ -270,19 +272,26 @@ def check(tracks, *, model=None, holdout_fraction: float = 0.2, seed: int = 0, i
     ``model``: a fitted FlowField whose posterior is tested instead of the Helmholtz refit
     (a quantity it holds zero by construction is then tested with the Helmholtz refit).
     Families are fitted with ``inducing`` points and at most ``steps`` optimiser steps.
+    ``position_error_m`` None: estimated from the tracks (:mod:`driftwise.positionerror`); a given
+    value above the median step between fixes is refused.  The summary records the value and its source.
     """
     return run_check(tracks, model=model, holdout_fraction=holdout_fraction, seed=seed, inducing=inducing,
                      steps=steps, position_error_m=position_error_m, alpha=alpha, progress=progress)[0]
 
 
 def run_check(tracks, *, model=None, holdout_fraction: float = 0.2, seed: int = 0, inducing: int = 64,
-              steps: int = 300, position_error_m: float = 10.0, alpha: float = physics.ALPHA,
+              steps: int = 300, position_error_m: float | None = None, alpha: float = physics.ALPHA,
               progress: bool = False) -> tuple[dict, CheckMaps]:
     """:func:`check` plus the maps for the figures."""
     from .tracks import velocity_observations
 
     if model is not None:
         tracks = in_frame(tracks, model.frame)
+    error_source = "given"
+    if position_error_m is None:
+        position_error_m, error_source = estimate_position_error(tracks, seed=seed).value_m, "estimated"
+    else:
+        check_position_error(position_error_m, data_scales(tracks), option="position_error_m")
     train, held = split_tracks(tracks, holdout_fraction=holdout_fraction, seed=seed)
     every = velocity_observations(tracks, position_error_m=position_error_m)
     held_obs = velocity_observations(held, position_error_m=position_error_m)
@@ -309,5 +318,6 @@ def run_check(tracks, *, model=None, holdout_fraction: float = 0.2, seed: int = 
         "grid": {"n_cells": int(points.shape[0]), "spacing_m": grid.spacing_m},
         "n_tracks": int(tracks.n_tracks), "holdout_track_ids": [str(t) for t in held.unique_ids],
         "seed": seed, "fit_options": {k: v for k, v in options.items() if k != "progress"},
+        "position_error_m": float(position_error_m), "position_error_source": error_source,
     }
     return summary, CheckMaps(grid, tests["posteriors"], sig, tests["fields"], tracks.frame, every.position_m)
