@@ -38,7 +38,8 @@ components — the pure lag-one estimate −c₁ would give half that but is bia
 At ocean sampling (σ = 10 m, h = 30 min, K = 5 m²/s: 2Kh/σ² = 180) a 20 % σ needs millions
 of fixes; at 2 Hz in a tank (σ = 0.5 mm, K = 1e-5 m²/s: 2Kh/σ² = 40) about a hundred
 thousand.  Limit: a flow turning by more than about 0.1 rad between fixes (ωh > 0.1) biases
-even the local-quadratic form (−20 % in σ² at ωh = 0.2 in the tests' rotation).
+even the local-quadratic form (in the tests' rotation at ωh = 0.2: −21 % in σ² with regular,
+−46 % with irregular steps; at ωh = 0.1 within 6 %).
 
 Not identifiable (σ² not above 2 SE, or fewer than 30 windows): ``identified=False`` and
 ``value_m`` is the upper bound √(max(σ̂², 0) + 2 SE) (0 with no SE), with the reason; the
