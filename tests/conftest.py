@@ -19,8 +19,8 @@ def write_file(tmp_path):
 
 @pytest.fixture
 def run_cli(capsys):
-    """``run_cli(*argv)`` → (exit code, stdout, stderr) of ``driftwise.cli.main``."""
-    from driftwise.cli import main
+    """``run_cli(*argv)`` → (exit code, stdout, stderr) of ``driftwise.app.cli.main``."""
+    from driftwise.app.cli import main
 
     def run(*argv: str):
         capsys.readouterr()

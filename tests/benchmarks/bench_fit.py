@@ -32,19 +32,17 @@ Kernel evaluations and O(nm) terms are left out, so the rates are lower bounds.
 from __future__ import annotations
 
 import math
-import sys
 import time
 from types import SimpleNamespace
 
-import numpy as np
-
 import jax
 import jax.numpy as jnp
+import numpy as np
 
 import driftwise
-from driftwise import field as fld
+from driftwise.gp import training as F
+from driftwise.gp.schedule import Schedule
 
-F = sys.modules["driftwise.fit"]
 U, CELL, K_TRUE, SIGMA_POS = 0.2, 1000.0, 1.0, 10.0
 
 
@@ -92,9 +90,9 @@ def step_flops(b, d, M, q_update):
 
 def time_step(q_update, M=256, b=1024, n=20000):
     data = F._prepare(observations(n, 1), SIGMA_POS)
-    config = F._check_options("helmholtz", "squared-exponential", M, 0, 100, b, 0.05, 15, q_update, 0.5, SIGMA_POS)
+    config = F._check_options("helmholtz", "squared-exponential", M, 0, Schedule(steps=100, batch_size=b, learning_rate=0.05, patience=15, q_update=q_update, natural_step=0.5), SIGMA_POS)
     config = F.dataclasses.replace(config, fingerprint=data.fingerprint)
-    state, z_scale = F._start(data, config, learning_rate=0.05, checkpoint=None, resume=False)
+    state, z_scale = F._start(data, config, learning_rate=0.05, checkpoint=None)
     for _ in range(2):  # compile, warm up
         state = F._advance(state, data, config, z_scale)
     times = []
@@ -110,7 +108,8 @@ def time_step(q_update, M=256, b=1024, n=20000):
 def time_fit(n, seed=2, **options):
     obs = observations(n, seed)
     t0 = time.perf_counter()
-    field = driftwise.fit(obs, "helmholtz", inducing=256, position_error_m=SIGMA_POS, progress=False, **options)
+    field = driftwise.fit(obs, "helmholtz", inducing=256, position_error_m=SIGMA_POS, progress=False,
+                          schedule=Schedule(**options))
     return time.perf_counter() - t0, field
 
 

@@ -42,10 +42,10 @@ import jax.numpy as jnp
 import numpy as np
 
 import driftwise  # noqa: F401  (float64)
-from driftwise import ensemble, moments
-from driftwise import field as fieldmod
-from driftwise.sde import SDE, PointPosterior, sde_from_field, split_for_jit
-from driftwise.synthetic import DemoBay
+from driftwise.app.bay import DemoBay
+from driftwise.dynamics import ensemble, moments
+from driftwise.dynamics.sde import SDE, PointPosterior, sde_from_field, split_for_jit
+from driftwise.gp import field as fieldmod
 
 METHODS = {
     "linearize": moments.Linearize(),

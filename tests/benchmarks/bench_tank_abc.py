@@ -24,14 +24,17 @@ from pathlib import Path
 
 import numpy as np
 
+from driftwise.app.cli import main as cli
+from driftwise.data import synthetic
+from driftwise.data.tracks import read_tracks, velocity_observations
+from driftwise.gp.modelfile import load_model
+
 SIGMA_M = 5e-4
 K_M2_S = 1e-5
 SPEED_M_S = 2e-3
 
 
 def simulate(n_tracks: int, n_fixes: int, path: Path, seed: int = 0) -> None:
-    from driftwise import synthetic
-
     starts = np.random.default_rng(seed).uniform(0.0, 1.0, (n_tracks, 3))
     table = synthetic.simulate_drifters(synthetic.ABCFlow(speed_m_s=SPEED_M_S, box_m=1.0), starts,
                                         duration_s=0.5 * (n_fixes - 1), fix_interval_s=0.5,
@@ -41,11 +44,7 @@ def simulate(n_tracks: int, n_fixes: int, path: Path, seed: int = 0) -> None:
 
 def velocity_error(model_path: Path, csv_path: Path) -> tuple[float, float]:
     """(RMS |mean − truth|, RMS |truth|) in m/s at the midpoints of consecutive fixes."""
-    import driftwise
-    from driftwise import synthetic
-    from driftwise.tracks import read_tracks, velocity_observations
-
-    field = driftwise.load(model_path)
+    field = load_model(model_path)
     obs = velocity_observations(read_tracks(csv_path), position_error_m=0.0)
     points = obs.position_m[:: max(1, obs.n // 5000)]
     mean, _ = field.predict(points)
@@ -59,8 +58,6 @@ def main() -> None:
     parser.add_argument("--fixes", type=int, default=241)
     parser.add_argument("--out", default=None, help="folder for tracks.csv and model.npz (default: a temp dir)")
     args = parser.parse_args()
-    from driftwise.cli import main as cli
-
     folder = Path(args.out or tempfile.mkdtemp(prefix="tank_abc_"))
     folder.mkdir(parents=True, exist_ok=True)
     csv, model = folder / "tracks.csv", folder / "model.npz"

@@ -1,0 +1,599 @@
+"""The ``driftwise`` command line: parse, call the library, print.
+
+Exit codes: 0 success, 2 bad input (one line on stderr, no traceback),
+1 internal error.  With ``--json`` exactly one JSON object goes to stdout.
+
+Each command is a pair ``_add_<name>(subparsers)`` / ``_run_<name>(args)``;
+no numerics live here.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import re
+import shlex
+import sys
+import traceback
+import warnings
+from pathlib import Path
+from typing import Any, Callable
+
+import numpy as np
+
+from ..data.datascales import resolve_horizons
+from ..data.positionerror import position_error_text
+from ..data.tracks import (TrackError, TrackWarning, fit_shortfall, format_summary, inspect_summary,
+                           read_tracks_from_cli)
+from ..diagnostics.grid import field_grid
+from ..diagnostics.skill import score
+from ..diagnostics.verdict import finer_maps, run_check
+from ..dynamics.calibrate import calibrate
+from ..dynamics.methods import DEFAULT_METHOD, DEFAULT_PARTICLES, METHODS
+from ..dynamics.spread import Release, as_releases, read_polygon, read_releases, spread_from_field
+from ..errors import InputError
+from ..files import CAUTION, plain
+from ..gp.kernels import DEFAULT_FAMILY, KERNEL_FAMILIES
+from ..gp.modelfile import load_model, save_model
+from ..gp.schedule import Checkpoint
+from ..gp.training import fit, fit_report
+from ..products.plots import plot_physics_maps, plot_skill, save_figure
+from ..products.report import complete
+from ..products.writers import (
+    FIELD_GRID_SUFFIXES,
+    SPREAD_SUFFIXES,
+    format_score_table,
+    spread_to_dict,
+    write_field_grid,
+    write_score_csv,
+    write_spread,
+)
+from ..units import parse_diffusivity_m2_s, parse_duration_s, parse_durations_s, parse_length_m
+from ..version import __version__
+from .demo import DemoSettings, run_demo
+
+EXIT_OK, EXIT_INTERNAL, EXIT_BAD_INPUT = 0, 1, 2
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse that reports a usage error as bad input (exit 2) in one line."""
+
+    def error(self, message: str) -> None:  # pragma: no cover - exercised via main()
+        raise InputError(f"{self.prog}: {message}")
+
+
+def print_json(payload: dict[str, Any]) -> None:
+    """Write one JSON object on stdout (NaN/inf become null)."""
+    print(json.dumps(plain(payload), allow_nan=False))
+
+
+
+def _add_json_flag(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--json", action="store_true", help="print one JSON object on stdout and nothing else")
+
+
+def _add_quiet_flag(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--quiet", action="store_true", help="no progress bars")
+
+
+# ---------------------------------------------------------------- inspect
+def _add_inspect(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser("inspect", help="summarise a tracks file and its quality-control actions",
+                       description="Summarise a tracks file: tracks, fixes, time span, sampling, speeds, frame and QC actions.")
+    p.add_argument("tracks", help="CSV, CSV.GZ, Parquet or CF-trajectory NetCDF file of fixes")
+    p.add_argument("--max-speed", default="5m/s", help="drop fixes implying a faster speed (bare: m/s; default 5m/s)")
+    p.add_argument("--max-gap", default=None,
+                   help="split a track at gaps longer than this duration, with its unit (e.g. 6h; default: never)")
+    _add_json_flag(p)
+    p.set_defaults(run=_run_inspect)
+
+
+def _run_inspect(args: argparse.Namespace) -> int:
+    tracks = read_tracks_from_cli(args)
+    summary = inspect_summary(tracks)
+    if summary.get("fit_warning"):
+        warnings.warn(summary["fit_warning"], TrackWarning, stacklevel=1)
+    if args.json:
+        print_json(summary)
+    else:
+        print(format_summary(summary))
+    return EXIT_OK
+
+
+
+# ---------------------------------------------------------------- spread
+_MAX_OUTPUT_TIMES = 100_000
+
+
+def _add_spread(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser(
+        "spread", help="forecast where releases go: mean paths, covariance ellipses, probability of reaching an area",
+        description="Forecast releases through the fitted flow (Itô SDE: drift = posterior mean, diffusion = "
+        "2(K I + tau (1 - exp(-age/tau)) Sigma)) by Gaussian moment matching or an Euler-Maruyama ensemble. Outputs the mean path and "
+        "covariance (metres, local frame; also lon/lat for a lon/lat model) at times since each release, the 50/90/95 % "
+        "ellipses, and with --polygon the probability of being inside it and the first time it reaches --threshold.",
+        epilog=CAUTION)
+    # A western longitude such as "-3.97,47.2" is a value, not an option: widen argparse's
+    # negative-number test to comma-separated coordinates (`--release=-3.97,47.2` works anyway).
+    p._negative_number_matcher = re.compile(r"^-\d+$|^-\d*\.\d+$|^-\d*\.?\d*(?:[eE][-+]?\d+)?[a-z]*,")
+    p.add_argument("model", help="model file written by `driftwise fit`")
+    p.add_argument("--release", action="append", default=[], metavar="X,Y[,Z]",
+                   help="a release point: metres in the model's local frame (a bare number is metres; units "
+                   "allowed, e.g. 1.2km,-300m), or "
+                   "LON,LAT degrees for a model fitted on lon/lat tracks; repeat for more releases")
+    p.add_argument("--releases", metavar="FILE", help="CSV of releases: columns x,y[,z] (metres) or lon,lat "
+                   "(degrees), optional start_time (seconds or ISO-8601), name, sd_m (release uncertainty, metres)")
+    p.add_argument("--horizon", default="2d", help="forecast length with its unit (s, min, h, d; default 2d)")
+    p.add_argument("--every", default="1h", help="output interval with its unit (default 1h)")
+    p.add_argument("--method", choices=list(METHODS), default=DEFAULT_METHOD,
+                   help="; ".join(f"{name}: {spec.help}" for name, spec in METHODS.items())
+                   + f" (default {DEFAULT_METHOD})")
+    p.add_argument("--particles", type=int, default=DEFAULT_PARTICLES,
+                   help=f"ensemble particles (default {DEFAULT_PARTICLES})")
+    p.add_argument("--step", default=None,
+                   help="integration step with its unit (default 10min for moments, 1min for the ensemble)")
+    p.add_argument("--diffusivity", default=None,
+                   help="eddy diffusivity K, e.g. 5m2/s (bare number: m²/s; default: the model's)")
+    p.add_argument("--decorrelation-time", default=None,
+                   help="velocity decorrelation time tau with its unit, e.g. 6h (default: the model's)")
+    p.add_argument("--seed", type=int, default=0, help="random seed of the ensemble (default 0)")
+    p.add_argument("--polygon", metavar="FILE", help="area of interest: GeoJSON Polygon (lon/lat) or CSV of "
+                   "vertices (x,y metres or lon,lat degrees)")
+    p.add_argument("--threshold", type=float, default=0.5,
+                   help="probability whose first reaching is reported as the arrival time (default 0.5)")
+    p.add_argument("--out", action="append", default=[], metavar="FILE",
+                   help="write the forecast: .json, .csv, .nc (CF NetCDF) or .geojson (lon/lat models); repeatable")
+    _add_json_flag(p)
+    _add_quiet_flag(p)
+    p.set_defaults(run=_run_spread)
+
+
+def _output_times_s(args: argparse.Namespace):
+
+    horizon = parse_duration_s(args.horizon, what="--horizon")
+    every = parse_duration_s(args.every, what="--every")
+    if not (horizon > 0 and every > 0):
+        raise InputError(f"--horizon and --every must be positive, got {args.horizon!r} and {args.every!r}")
+    if horizon / every > _MAX_OUTPUT_TIMES:
+        raise InputError(f"--horizon {args.horizon} every {args.every} asks for more than {_MAX_OUTPUT_TIMES} outputs")
+    times = every * np.arange(int(np.floor(horizon / every * (1 + 1e-12))) + 1)
+    return times if np.isclose(times[-1], horizon, rtol=1e-12) else np.append(times, horizon)
+
+
+def _parse_release(text: str, frame, dim: int):
+
+    parts = [part.strip() for part in str(text).split(",")]
+    lonlat = frame.kind == "lonlat"
+    shape = ("LON,LAT" if lonlat else "X,Y") + (",Z" if dim == 3 else "")
+    if len(parts) not in (2, 3) or not all(parts):
+        raise InputError(f"--release {text!r}: give {shape} separated by commas")
+    if len(parts) != dim:
+        raise InputError(f"--release {text!r}: the model is {dim}-D, so give {shape}")
+    z = [parse_length_m(parts[2], what=f"--release {text!r}", bare_unit="m")] if dim == 3 else []
+    if not lonlat:
+        return [parse_length_m(part, what=f"--release {text!r}", bare_unit="m") for part in parts[:2]] + z
+    try:
+        lon, lat = float(parts[0]), float(parts[1])
+    except ValueError:
+        raise InputError(f"--release {text!r}: this model was fitted on lon/lat tracks; give LON,LAT in degrees") from None
+    if not (abs(lon) <= 360 and abs(lat) <= 90):
+        raise InputError(f"--release {text!r}: ({lon}, {lat}) is not a longitude, latitude in degrees")
+    return list(frame.from_lonlat([lon], [lat])[0]) + z
+
+
+def _spread_releases(args: argparse.Namespace, frame, dim: int):
+
+    releases = [Release(_parse_release(text, frame, dim)) for text in args.release]
+    if args.releases:
+        releases += list(read_releases(args.releases, frame=frame, dim=dim))
+    if not releases:
+        raise InputError("spread: give at least one --release X,Y or a --releases FILE")
+    return as_releases(releases)
+
+
+def _spread_options(args: argparse.Namespace, frame) -> dict[str, Any]:
+
+    if args.particles < 2:
+        raise InputError(f"--particles must be at least 2, got {args.particles}")
+    if not 0.0 < args.threshold <= 1.0:
+        raise InputError(f"--threshold must be a probability in (0, 1], got {args.threshold}")
+    step = parse_duration_s(args.step, what="--step") if args.step else None
+    if step is not None and not step > 0:
+        raise InputError(f"--step must be positive, got {args.step!r}")
+    polygon = read_polygon(args.polygon, frame=frame) if args.polygon else None
+    return dict(method=args.method, particles=args.particles, step_s=step, seed=args.seed, polygon_m=polygon,
+                threshold=args.threshold if polygon is not None else None,
+                diffusivity_m2_s=parse_diffusivity_m2_s(args.diffusivity, what="--diffusivity")
+                if args.diffusivity else None,
+                decorrelation_time_s=parse_duration_s(args.decorrelation_time, what="--decorrelation-time")
+                if args.decorrelation_time else None)
+
+
+def _run_spread(args: argparse.Namespace) -> int:
+
+
+    bad = [out for out in args.out if Path(out).suffix.lower() not in SPREAD_SUFFIXES]
+    if bad:
+        raise InputError(f"--out {bad[0]}: unknown format; use a name ending in {', '.join(SPREAD_SUFFIXES)}")
+    model = load_model(args.model)
+    if any(Path(out).suffix.lower() == ".geojson" for out in args.out) and model.frame.kind != "lonlat":
+        raise InputError("--out .geojson: GeoJSON (RFC 7946) holds lon/lat only, but this model was fitted in a local "
+                         "metric frame; write .json, .csv or .nc instead")
+    times = _output_times_s(args)
+    releases = _spread_releases(args, model.frame, model.dim)
+    forecast = spread_from_field(model, releases, times, **_spread_options(args, model.frame))
+    written = [str(write_spread(forecast, out)) for out in args.out]
+    if args.json:
+        print_json({**spread_to_dict(forecast), "outputs": written, "caution": CAUTION})
+    else:
+        print(_format_spread(forecast, written))
+    return EXIT_OK
+
+
+def _format_spread(forecast, written: list[str]) -> str:
+    """A short human summary: per release the final mean, 95 % ellipse and polygon probability."""
+    hours = forecast.times_s[-1] / 3600.0
+    lines = [f"spread: {len(forecast.releases)} release(s), method {forecast.method}, "
+             f"{len(forecast.times_s)} output times to {hours:.3g} h"]
+    for r, rel in enumerate(forecast.releases):
+        end = forecast.means[r, -1]
+        major, minor = forecast.semi_axes_m[r, -1, forecast.levels.index(0.95)]
+        text = f"  {rel.name}: end mean ({', '.join(f'{v:.0f}' for v in end)}) m"
+        if forecast.mean_lonlat is not None:
+            text += " = lon/lat ({:.5f}, {:.5f})".format(*forecast.mean_lonlat[r, -1])
+        text += f"; 95 % ellipse {major:.0f} m x {minor:.0f} m"
+        if forecast.probability is not None:
+            arrival = forecast.first_arrival_s[r]
+            text += f"; P(inside) max {forecast.probability[r].max():.3f}, reaches {forecast.threshold:g} " + (
+                "never" if arrival is None else f"at {arrival / 3600.0:.3g} h")
+        lines.append(text)
+    lines += [f"wrote {path}" for path in written] + [CAUTION]
+    return "\n".join(lines)
+
+# ---------------------------------------------------------------- fit
+def _add_fit(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser("fit", help="fit a flow field with uncertainty to a tracks file",
+                       description="Fit a vector-field Gaussian process (sparse variational, matrix-valued kernel) "
+                       "to the velocities between consecutive fixes and write the model file. A checkpoint "
+                       "MODEL.ckpt.npz is kept while fitting; --resume continues an interrupted fit from it.",
+                       epilog=CAUTION)
+    p.add_argument("tracks", help="CSV, CSV.GZ, Parquet or CF-trajectory NetCDF file of fixes")
+    p.add_argument("--out", required=True, metavar="MODEL", help="model file to write (.npz)")
+    p.add_argument("--kernel", default=DEFAULT_FAMILY, choices=list(KERNEL_FAMILIES),
+                   help="kernel family: " + "; ".join(f"{name}: {spec.help}" for name, spec in KERNEL_FAMILIES.items())
+                   + f" (default {DEFAULT_FAMILY})")
+    p.add_argument("--inducing", type=int, default=None, metavar="M",
+                   help="number of inducing points (default: min(256, observations/32), at least 16)")
+    p.add_argument("--seed", type=int, default=0, metavar="S", help="random seed (default 0)")
+    p.add_argument("--position-error", default=None, help="standard deviation of one fix per axis, with its unit "
+                   "(m, km, cm, mm; default: estimated from the tracks; refused above the typical step between fixes)")
+    p.add_argument("--max-speed", default="5m/s", help="drop fixes implying a faster speed (bare: m/s; default 5m/s)")
+    p.add_argument("--max-gap", default=None,
+                   help="split a track at gaps longer than this duration, with its unit (e.g. 6h; default: never)")
+    p.add_argument("--resume", action="store_true", help="continue from the checkpoint MODEL.ckpt.npz if present")
+    p.add_argument("--calibrate", action=argparse.BooleanOptionalAction, default=True,
+                   help="after the fit, estimate K and tau from the likelihood of displacements between fixes "
+                   "(lags from 2 fixes to a third of the tracks' duration) and store them in the model (default: on)")
+    _add_quiet_flag(p)
+    _add_json_flag(p)
+    p.set_defaults(run=_run_fit)
+
+
+def _run_fit(args: argparse.Namespace) -> int:
+    position_error = args.position_error and parse_length_m(args.position_error, what="--position-error")
+    if args.inducing is not None and args.inducing < 1:
+        raise InputError(f"--inducing must be a positive integer, got {args.inducing}")
+    if args.seed < 0:
+        raise InputError(f"--seed must be a non-negative integer, got {args.seed}")
+    tracks = read_tracks_from_cli(args)
+    shortfall = fit_shortfall(tracks, calibrate=args.calibrate)
+    if shortfall:
+        raise TrackError(tracks.source, shortfall)
+    checkpoint = Checkpoint.beside(args.out, resume=args.resume)
+    existed = checkpoint.path.exists()
+    try:
+        field = fit(tracks, args.kernel, inducing=args.inducing, seed=args.seed, position_error_m=position_error,
+                    checkpoint=checkpoint, progress=not (args.quiet or args.json))
+    except KeyboardInterrupt:
+        print(f"driftwise: fit interrupted; continue with --resume (checkpoint {checkpoint.path})", file=sys.stderr)
+        raise
+    except BaseException:
+        if not existed:   # a checkpoint this run wrote is no use after a failure (one given to --resume is kept)
+            checkpoint.path.unlink(missing_ok=True)
+        raise
+    checkpoint.path.unlink(missing_ok=True)   # the fit is complete: nothing to resume, whatever happens next
+    if args.calibrate:
+        field = calibrate(field, tracks)
+    written = save_model(field, args.out)
+    report = {**fit_report(field), "model": str(written)} | (
+        {"calibration": field.fit_info.get("calibration")} if args.calibrate else {})
+    if args.json:
+        print_json(report)
+    else:
+        print(_format_fit(report))
+    return EXIT_OK
+
+
+def _format_fit(report: dict[str, Any]) -> str:
+    hyper = report["hyperparameters"]
+    lines = [f"fit: {report['kernel']} kernel, {report['n_observations']} velocity observations from "
+             f"{report['n_tracks']} tracks, {report['n_inducing']} inducing points",
+             f"  ELBO {report['elbo']:.6g} nats ({report['elbo_per_observation']:.4g} per observation) after "
+             f"{report['steps']} steps" + ("" if report["converged"] else " (step limit reached before the plateau)")]
+    lines += [f"  {name} = {value:.4g}" for name, value in hyper.items()]
+    lines.append("  " + position_error_text(report))
+    lines += [f"  decorrelation time τ = {report['decorrelation_time_s']:.4g} s "
+              f"({report.get('decorrelation_time_source') or 'length scale / RMS speed'})",
+              f"wrote {report['model']}"]
+    return "\n".join(lines)
+
+
+COMMANDS: list[Callable[[argparse._SubParsersAction], None]] = [_add_inspect, _add_spread, _add_fit]
+
+
+# ---------------------------------------------------------------- demo
+def _add_demo(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser("demo", help="the whole job on the bundled invented bay: fit, check, spread, score, report",
+                       description="Run the whole job on the bundled demo data (Mirren Bay, invented): inspect the "
+                       "tracks, fit a Helmholtz flow field, check divergence and vorticity, forecast a fuel spill "
+                       "and an outfall plume reaching a shellfish bed, score forecasts on held-out tracks, and "
+                       "export the gridded field. Writes every product, the figures, summary.json and a "
+                       "self-contained report.html into the output folder and prints a short digest.",
+                       epilog=CAUTION)
+    p.add_argument("--out", default="driftwise-demo", metavar="DIR",
+                   help="output folder (default ./driftwise-demo; created if needed, files in it are replaced)")
+    p.add_argument("--figures", default=None, metavar="DIR", help="folder for the PNG figures (default DIR/figures)")
+    p.add_argument("--fast", action="store_true",
+                   help="smaller sizes for a quick smoke run (fewer inducing points and steps; rougher numbers)")
+    _add_json_flag(p)
+    _add_quiet_flag(p)
+    p.set_defaults(run=_run_demo)
+
+
+def _run_demo(args: argparse.Namespace) -> int:
+
+    words = ["driftwise", "demo", "--out", args.out] + (["--figures", args.figures] if args.figures else [])
+    words += [flag for flag, on in (("--fast", args.fast), ("--json", args.json), ("--quiet", args.quiet)) if on]
+    command = " ".join(shlex.quote(w) for w in words)
+    settings = DemoSettings.fast() if args.fast else DemoSettings()
+    summary = run_demo(args.out, quiet=args.quiet, settings=settings, command=command, figures_dir=args.figures,
+                       stream=sys.stderr if args.json else sys.stdout)
+    if args.json:
+        print_json(summary)
+    if not complete(summary):
+        failed = [s["name"] for s in summary["job"]["steps"] if s["status"] != "done"]
+        print(f"driftwise: demo incomplete: {', '.join(failed)} did not run to the end (see {args.out}/report.html)",
+              file=sys.stderr)
+        return EXIT_INTERNAL
+    return EXIT_OK
+
+
+COMMANDS.append(_add_demo)
+
+
+# ---------------------------------------------------------------- score
+def _add_score(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser(
+        "score", help="score forecasts on held-out tracks: separation, skill, ellipse coverage, baselines",
+        description="Forecast from every fix of tracks the model never saw and compare with where they went, per "
+        "horizon: median and 90th-percentile separation, Liu-Weisberg (2011) skill (1 perfect, 0 none), the "
+        "fraction of observed positions inside the forecast's 50 % and 95 % ellipses (calibration) and the "
+        "Gaussian log score, next to persistence and no-motion baselines.", epilog=CAUTION)
+    p.add_argument("model", help="model file written by `driftwise fit`")
+    p.add_argument("holdout", help="tracks file NOT used in the fit (CSV, CSV.GZ, Parquet or CF-trajectory NetCDF)")
+    p.add_argument("--horizons", default=None,
+                   help="comma-separated forecast horizons with units, e.g. 6h,12h,24h (default: D/12, D/6, D/3 "
+                   "for the held-out tracks' median duration D; refused below the sampling interval)")
+    p.add_argument("--method", choices=[name for name, spec in METHODS.items() if not spec.ensemble],
+                   default=DEFAULT_METHOD, help=f"moment method of the forecasts (default {DEFAULT_METHOD})")
+    p.add_argument("--fit-tracks", default=None, metavar="TRACKS",
+                   help="the tracks the model was fitted on: gives the baselines an error variance, so their coverage "
+                   "and log score are defined (otherwise shown as —)")
+    p.add_argument("--max-starts", type=int, default=2000, help="at most this many forecast starts (default 2000)")
+    p.add_argument("--max-speed", default="5m/s", help="drop fixes implying a faster speed (bare: m/s; default 5m/s)")
+    p.add_argument("--out", default=None, metavar="TABLE.csv", help="write the table as CSV")
+    p.add_argument("--figures", default=None, metavar="DIR", help="write skill.png (skill and coverage vs horizon)")
+    _add_json_flag(p)
+    _add_quiet_flag(p)
+    p.set_defaults(run=_run_score)
+
+
+def _read_named_tracks(path: str, max_speed: str):
+
+    return read_tracks_from_cli(argparse.Namespace(tracks=path, max_speed=max_speed, max_gap=None))
+
+
+def _run_score(args: argparse.Namespace) -> int:
+
+
+    horizons = None if args.horizons is None else parse_durations_s(args.horizons, what="--horizons")
+    if horizons is not None and (not horizons or min(horizons) <= 0):
+        raise InputError(f"--horizons {args.horizons!r}: give positive durations such as 6h,12h,24h")
+    if args.max_starts < 1:
+        raise InputError(f"--max-starts must be a positive integer, got {args.max_starts}")
+    model = load_model(args.model)
+    holdout = _read_named_tracks(args.holdout, args.max_speed)
+    horizons = resolve_horizons(horizons, holdout, option="--horizons")
+    fit_tracks = _read_named_tracks(args.fit_tracks, args.max_speed) if args.fit_tracks else None
+    result = score(model, holdout, horizons_s=horizons, method=args.method, max_starts=args.max_starts,
+                   fit_tracks=fit_tracks).to_dict()
+    written = []
+    if args.out:
+        write_score_csv(result, args.out)
+        written.append(str(args.out))
+    if args.figures:
+
+        written.append(str(plot_skill(result, Path(args.figures) / "skill.png")))
+    if args.json:
+        print_json({**result, "outputs": written, "caution": CAUTION})
+    else:
+        print(f"score: {result['n_starts']} forecasts from {result['n_tracks']} held-out tracks, method "
+              f"{result['method']}, K = {result['diffusivity_m2_s']:.3g} m²/s, tau = "
+              + ("—" if result["decorrelation_time_s"] is None else f"{result['decorrelation_time_s']:.4g} s"))
+        print(format_score_table(result))
+        print("\n".join([f"wrote {path}" for path in written] + [CAUTION]))
+    return EXIT_OK
+
+
+COMMANDS.append(_add_score)
+
+
+# ---------------------------------------------------------------- check and map (physics.py, verdict.py)
+def _add_check(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser(
+        "check", help="is the flow divergence-free? curl-free? kernel-family evidence and calibrated tests",
+        description="Fit the four kernel families (helmholtz, divergence-free, curl-free, independent) to the "
+        "tracks with identical settings and compare their ELBO and the log likelihood of held-out tracks (whole "
+        "tracks are held out). Then test divergence and vorticity on a grid inside the data hull: posterior "
+        "z-scores of the Helmholtz model (its hyperparameters from the training tracks, conditioned on all "
+        "tracks), Benjamini-Hochberg correction at 5 %. Reports the divergent share of the velocity variance "
+        "and a verdict with its reasons.", epilog=CAUTION)
+    p.add_argument("tracks", help="CSV, CSV.GZ, Parquet or CF-trajectory NetCDF file of fixes")
+    p.add_argument("--model", default=None, metavar="MODEL",
+                   help="test this fitted model's posterior instead of the Helmholtz refit (families are still fitted)")
+    p.add_argument("--holdout-fraction", type=float, default=0.2, metavar="F",
+                   help="share of the tracks held out for the family comparison (default 0.2)")
+    p.add_argument("--seed", type=int, default=0, metavar="S", help="random seed of the split and fits (default 0)")
+    p.add_argument("--inducing", type=int, default=64, metavar="M", help="inducing points per family fit (default 64)")
+    p.add_argument("--steps", type=int, default=300, metavar="N", help="optimiser steps per family fit (default 300)")
+    p.add_argument("--position-error", default=None, help="standard deviation of one fix per axis, with its unit "
+                   "(m, km, cm, mm; default: estimated from the tracks; refused above the typical step between fixes)")
+    p.add_argument("--max-speed", default="5m/s", help="drop fixes implying a faster speed (bare: m/s; default 5m/s)")
+    p.add_argument("--max-gap", default=None,
+                   help="split a track at gaps longer than this duration, with its unit (e.g. 6h; default: never)")
+    p.add_argument("--figures", default=None, metavar="DIR", help="write divergence and vorticity maps (PNG) here")
+    _add_quiet_flag(p)
+    _add_json_flag(p)
+    p.set_defaults(run=_run_check)
+
+
+def _run_check(args: argparse.Namespace) -> int:
+    position_error = args.position_error and parse_length_m(args.position_error, what="--position-error")
+    for name, value, low in (("--seed", args.seed, 0), ("--inducing", args.inducing, 1), ("--steps", args.steps, 1)):
+        if value < low:
+            raise InputError(f"{name} must be an integer ≥ {low}, got {value}")
+    model = None
+    if args.model is not None:
+
+        model = load_model(args.model)
+    tracks = read_tracks_from_cli(args)
+    summary, maps = run_check(tracks, model=model, holdout_fraction=args.holdout_fraction, seed=args.seed,
+                              inducing=args.inducing, steps=args.steps, position_error_m=position_error,
+                              progress=not (args.quiet or args.json))
+    if args.figures is not None and tracks.dim == 2:
+
+        figure = plot_physics_maps(finer_maps(maps))
+        summary["figures"] = [str(save_figure(figure, Path(args.figures) / "physics_maps.png"))]
+    if args.json:
+        print_json(summary)
+    else:
+        print(_format_check(summary))
+    return EXIT_OK
+
+
+def _format_check(s: dict[str, Any]) -> str:
+    ev, split, verdict = s["evidence"], s["helmholtz_split"], s["verdict"]
+    lines = [f"check: {s['n_tracks']} tracks; {ev['heldout_tracks']} held out ({ev['heldout_observations']} velocity "
+             f"observations); tested model: {s['tested_model']}",
+             "  " + position_error_text(s),
+             f"  {'family':<16} {'ELBO (nats)':>14} {'held-out log lik. (nats)':>26} {'per obs.':>9}"]
+    for name, fam in s["families"].items():
+        lines.append(f"  {name:<16} {fam['elbo']:>14.1f} {fam['heldout_log_likelihood']:>26.1f} "
+                     f"{fam['heldout_log_likelihood_per_observation']:>9.3f}")
+    lines += [f"  {ev['reading']}",
+              f"  divergent share of the velocity variance: {split['divergent_variance_fraction']:.3f} ± "
+              f"{split['std']:.3f} (delta method; 90 % {split['interval_90'][0]:.3f}–{split['interval_90'][1]:.3f})"]
+    for name in ("divergence", "vorticity"):
+        q = s[name]
+        lines.append(f"  {name + ':':<11} significant over {100 * q['significant_area_fraction']:.1f} % of the data hull "
+                     f"({q['n_cells']} cells, BH α = {q['alpha']:g}), max |z| = {q['max_abs_z']:.2f}")
+    for key, label in (("divergence_free", "divergence-free"), ("curl_free", "curl-free")):
+        lines.append(f"  verdict {label}: {'YES' if verdict[key] else 'NO'}")
+        lines += [f"    - {reason}" for reason in verdict["reasons"][key]]
+    lines += [f"  rule: {verdict['rule']}"] + [f"wrote {path}" for path in s.get("figures", [])] + [CAUTION]
+    return "\n".join(lines)
+
+
+def _add_map(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser(
+        "map", help="export the fitted field on a regular grid (NetCDF with CF attributes, or CSV)",
+        description="Sample a 2-D model on a regular grid over its data extent: posterior mean velocity and its "
+        "standard deviation (east/north for a lon/lat model), divergence and vorticity with their standard "
+        "deviations (exact GP derivatives), and a data-support mask (where the posterior variance stays near "
+        "the prior, the data say little). Writes NetCDF-4 with CF-1.8 attributes (.nc) or one CSV row per "
+        "grid node (.csv).", epilog=CAUTION)
+    p.add_argument("model", help="model file written by `driftwise fit`")
+    p.add_argument("--out", required=True, metavar="FIELD.nc", help="output file, .nc (NetCDF) or .csv")
+    p.add_argument("--spacing", default=None,
+                   help="grid spacing with its unit, e.g. 500m (default: about 80 cells across the extent)")
+    _add_json_flag(p)
+    p.set_defaults(run=_run_map)
+
+
+def _run_map(args: argparse.Namespace) -> int:
+
+    if Path(args.out).suffix.lower() not in FIELD_GRID_SUFFIXES:
+        raise InputError(f"--out {args.out}: unknown gridded-field format; use a name ending in "
+                         f"{' or '.join(FIELD_GRID_SUFFIXES)}")
+    spacing = parse_length_m(args.spacing, what="--spacing") if args.spacing is not None else None
+    grid = field_grid(load_model(args.model), spacing_m=spacing)
+    written = write_field_grid(grid, args.out)
+    report = {"out": str(written), "shape": list(grid.supported.shape), "spacing_m": float(grid.x_m[1] - grid.x_m[0])
+              if grid.x_m.size > 1 else None, "x_range_m": [float(grid.x_m[0]), float(grid.x_m[-1])],
+              "y_range_m": [float(grid.y_m[0]), float(grid.y_m[-1])], "components": list(grid.components),
+              "supported_fraction": float(grid.supported.mean()), "zero_by_construction": grid.reasons}
+    if args.json:
+        print_json(report)
+    else:
+        print(f"map: {report['shape'][1]} × {report['shape'][0]} nodes every {report['spacing_m']:g} m; data support "
+              f"over {100 * report['supported_fraction']:.0f} % of the grid\nwrote {written}\n{CAUTION}")
+    return EXIT_OK
+
+
+COMMANDS += [_add_check, _add_map]
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = _Parser(
+        prog="driftwise",
+        description="Flow fields with uncertainty from particle trajectories; spread forecasts; "
+        "physical-constraint checks; forecast skill. Units are SI (m, s, m/s, m²/s); "
+        "options accept units such as 10m, 6h, 2d. A length or duration needs its unit (48 could be seconds or "
+        "hours) unless the option's help says what a bare number means.",
+        epilog=CAUTION,
+    )
+    parser.add_argument("--version", action="version", version=f"driftwise {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    sub.required = True
+    for add in COMMANDS:
+        add(sub)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Entry point of the console script; returns the exit code."""
+    warnings.simplefilter("default")
+    warnings.formatwarning = lambda message, category, *a, **k: f"driftwise: warning: {message}\n"
+    try:
+        parser = build_parser()
+        args = parser.parse_args(argv)
+        return int(args.run(args) or EXIT_OK)
+    except InputError as err:
+        print(f"driftwise: error: {err}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    except KeyboardInterrupt:
+        print("driftwise: interrupted", file=sys.stderr)
+        return 130
+    except BrokenPipeError:
+        return EXIT_OK
+    except Exception as err:  # internal error: one line, exit 1; DRIFTWISE_DEBUG=1 shows the traceback
+        if os.environ.get("DRIFTWISE_DEBUG"):
+            traceback.print_exc()
+        print(f"driftwise: internal error: {type(err).__name__}: {err} "
+              "(set DRIFTWISE_DEBUG=1 for a traceback; please report it)", file=sys.stderr)
+        return EXIT_INTERNAL
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

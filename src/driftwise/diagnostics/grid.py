@@ -1,0 +1,130 @@
+"""Gridded products of a fitted 2-D field (``driftwise map``): mean, s.d., divergence, vorticity, data support.
+
+Velocities in a lon/lat frame are rotated from the frame's axes to true east/north with the local
+Jacobian of the projection (WGS 84 geodesics, pyproj.Geod); divergence and vorticity are the exact
+GP derivative posteriors of :mod:`driftwise.diagnostics.physics`, in the frame's metres.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+from pyproj import Geod
+
+from ..errors import InputError
+from .physics import SUPPORT_RATIO, divergence_posterior, vorticity_posterior
+
+__all__ = ["FieldGrid", "east_north_jacobian", "field_extent_m", "field_grid"]
+
+
+@dataclasses.dataclass(frozen=True)
+class FieldGrid:
+    """A fitted 2-D field sampled on a regular grid; arrays are (n_y, n_x) unless noted.
+
+    x_m, y_m              grid axes (n_x,), (n_y,) in the model's local metric frame, m, increasing
+    components            ("x", "y") for a metric frame; ("eastward", "northward") for a lon/lat frame,
+                          where the velocity is rotated from the frame's axes to true east/north
+    mean_m_s, std_m_s     posterior mean and standard deviation of the two components, (n_y, n_x, 2), m/s
+    divergence_s, divergence_std_s, vorticity_s, vorticity_std_s   posterior mean and std, s⁻¹
+    variance_ratio        tr Σ_post / tr K_prior (1 = the data taught nothing here)
+    supported             variance_ratio < ``SUPPORT_RATIO`` (the data constrain the field)
+    lon_deg, lat_deg      (n_y, n_x) node longitudes/latitudes for a lon/lat frame, else None
+    reasons               {"divergence"|"vorticity": why it is zero by construction}
+    """
+
+    x_m: np.ndarray
+    y_m: np.ndarray
+    components: tuple[str, str]
+    mean_m_s: np.ndarray
+    std_m_s: np.ndarray
+    divergence_s: np.ndarray
+    divergence_std_s: np.ndarray
+    vorticity_s: np.ndarray
+    vorticity_std_s: np.ndarray
+    variance_ratio: np.ndarray
+    supported: np.ndarray
+    lon_deg: np.ndarray | None
+    lat_deg: np.ndarray | None
+    reasons: dict
+    frame: object
+    kernel_family: str
+
+
+def _nice_step(value: float) -> float:
+    """1, 2 or 5 × a power of ten, the largest not above ``value``."""
+    exponent = math.floor(math.log10(value))
+    lead = value / 10.0**exponent
+    return max(m for m in (1.0, 2.0, 5.0) if m <= lead) * 10.0**exponent
+
+
+def field_extent_m(field) -> tuple[np.ndarray, np.ndarray]:
+    """(lower, upper) corners (2,) in m of the region a field describes: the data bounding box
+    stored with the model when present, else the inducing points' bounding box."""
+    extent = field.data_summary.get("extent_m")
+    if isinstance(extent, dict) and "min" in extent and "max" in extent:
+        return np.asarray(extent["min"], dtype=np.float64), np.asarray(extent["max"], dtype=np.float64)
+    z = np.asarray(field.params.inducing_m)
+    return z.min(axis=0), z.max(axis=0)
+
+
+def east_north_jacobian(frame, points_m: np.ndarray, *, step_m: float = 1.0) -> np.ndarray:
+    """J (n, 2, 2) mapping a frame vector (x, y) to ground (east, north) at each point (n, 2) m.
+
+    Column a is the ground displacement (m east, m north) of a ``step_m`` step along frame
+    axis a, from the WGS 84 geodesic azimuth and length (pyproj.Geod.inv), divided by the step.
+    """
+    geod = Geod(ellps="WGS84")
+    lon0, lat0 = frame.to_lonlat(points_m)
+    jac = np.empty((points_m.shape[0], 2, 2))
+    for a in range(2):
+        lon1, lat1 = frame.to_lonlat(points_m + step_m * np.eye(2)[a])
+        azimuth, _, dist = geod.inv(lon0, lat0, lon1, lat1)
+        rad = np.radians(azimuth)
+        jac[:, 0, a], jac[:, 1, a] = dist * np.sin(rad) / step_m, dist * np.cos(rad) / step_m
+    return jac
+
+
+def field_grid(field, *, spacing_m: float | None = None, cells_across: int = 80,
+               max_nodes: int = 250_000) -> FieldGrid:
+    """Sample a 2-D field on a grid over its extent (:func:`field_extent_m`).
+
+    ``spacing_m`` defaults to a 1-2-5 step giving about ``cells_across`` cells over the
+    longer side; nodes are multiples of the spacing.  Mean and covariance from
+    ``field.predict`` (rotated to east/north, mean J m and covariance J Σ Jᵀ, for a lon/lat
+    frame); divergence and vorticity from :func:`divergence_posterior` /
+    :func:`vorticity_posterior` (exact GP derivatives in the frame's metres).
+    """
+    if field.dim != 2:
+        raise InputError(f"gridded export supports 2-D fields; this model is {field.dim}-D")
+    lo, hi = field_extent_m(field)
+    if spacing_m is None:
+        spacing_m = _nice_step(max(float(np.max(hi - lo)), 1e-9) / cells_across)
+    if not (math.isfinite(spacing_m) and spacing_m > 0.0):
+        raise InputError(f"--spacing must be a positive distance, got {spacing_m!r} m")
+    counts = [math.ceil(hi[a] / spacing_m) - math.floor(lo[a] / spacing_m) + 1 for a in range(2)]
+    if counts[0] * counts[1] > max_nodes:
+        raise InputError(f"a {spacing_m:g} m grid over the model's {hi[0] - lo[0]:.0f} m × {hi[1] - lo[1]:.0f} m "
+                         f"extent has {counts[0] * counts[1]} nodes (limit {max_nodes}); choose a larger --spacing")
+    axes = [(math.floor(lo[a] / spacing_m) + np.arange(counts[a])) * spacing_m for a in range(2)]
+    shape = (axes[1].size, axes[0].size)
+    gx, gy = np.meshgrid(*axes)
+    points = np.column_stack([gx.ravel(), gy.ravel()])
+    mean, cov = field.predict(points)
+    prior = np.asarray(jax.vmap(field.prior_variance_at)(jnp.asarray(points)))
+    ratio = np.trace(cov, axis1=1, axis2=2) / np.trace(prior, axis1=1, axis2=2)
+    frame, lon, lat, components = field.frame, None, None, ("x", "y")
+    if getattr(frame, "kind", "metric") == "lonlat":
+        jac = east_north_jacobian(frame, points)
+        mean, cov = np.einsum("nab,nb->na", jac, mean), np.einsum("nab,nbc,ndc->nad", jac, cov, jac)
+        lon, lat = (v.reshape(shape) for v in frame.to_lonlat(points))
+        components = ("eastward", "northward")
+    div, vort = divergence_posterior(field, points), vorticity_posterior(field, points)
+    std = np.sqrt(np.clip(np.diagonal(cov, axis1=1, axis2=2), 0.0, None))
+    return FieldGrid(axes[0], axes[1], components, mean.reshape(*shape, 2), std.reshape(*shape, 2),
+                     div.mean.reshape(shape), div.std.reshape(shape), vort.mean.reshape(shape),
+                     vort.std.reshape(shape), ratio.reshape(shape), (ratio < SUPPORT_RATIO).reshape(shape),
+                     lon, lat, {p.quantity: p.reason for p in (div, vort) if p.reason}, frame, field.kernel_family)

@@ -1,0 +1,76 @@
+"""The one registry of forecast methods: name ↔ strategy object, defaults and help text.
+
+The command line's ``--method`` choices, :func:`driftwise.dynamics.spread.spread_from_field`, the
+scores, the report and the test sweeps all read :data:`METHODS`.  A moment method is integrated by
+RK4 (default step :data:`DEFAULT_RK4_STEP_S`); the ensemble is Euler–Maruyama with its own step.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any, Callable
+
+import numpy as np
+
+from ..errors import InputError
+from .ensemble import EulerMaruyama
+from .moments import RK4, GaussHermite, Linearize, SphericalCubature, Unscented
+
+__all__ = ["MethodSpec", "METHODS", "DEFAULT_METHOD", "method_name", "make_method"]
+
+DEFAULT_METHOD = "cubature"
+DEFAULT_PARTICLES = 10_000
+
+
+@dataclass(frozen=True)
+class MethodSpec:
+    """One forecast method: its name, strategy class, how to build it, and a one-line description."""
+
+    name: str
+    kind: type
+    build: Callable[[int, int], Any]        # (particles, gauss_hermite_order) -> strategy object
+    help: str
+    ensemble: bool = False
+
+
+METHODS: dict[str, MethodSpec] = {spec.name: spec for spec in (
+    MethodSpec("cubature", SphericalCubature, lambda n, order: SphericalCubature(),
+               "third-degree spherical-radial cubature, 2d points (Arasaratnam & Haykin 2009)"),
+    MethodSpec("unscented", Unscented, lambda n, order: Unscented(),
+               "unscented transform, 2d + 1 points (Julier & Uhlmann 1997)"),
+    MethodSpec("gauss-hermite", GaussHermite, lambda n, order: GaussHermite(int(order)),
+               "Gauss–Hermite product rule, order^d points"),
+    MethodSpec("linearize", Linearize, lambda n, order: Linearize(),
+               "linearization about the mean (extended-Kalman moments; Maybeck 1982)"),
+    MethodSpec("ensemble", EulerMaruyama, lambda n, order: EulerMaruyama(int(n)),
+               "Euler–Maruyama particles (Kloeden & Platen 1992), the Monte Carlo baseline", ensemble=True),
+)}
+
+
+def method_name(method: Any) -> str:
+    """The registry name of a strategy object, e.g. ``SphericalCubature()`` → ``"cubature"``."""
+    for spec in METHODS.values():
+        if isinstance(method, spec.kind):
+            return spec.name
+    raise InputError(f"method: expected one of {', '.join(METHODS)} (a moments or ensemble method object), "
+                     f"got {method!r}")
+
+
+def make_method(name: str, *, particles: int = DEFAULT_PARTICLES, step_s: float | None = None,
+                gauss_hermite_order: int = 3) -> tuple[Any, Any]:
+    """(strategy, integrator) for a registry ``name``; ``step_s`` is the RK4 or Euler–Maruyama step (s).
+
+    Moment methods get ``RK4(step_s)`` (default RK4()); the ensemble gets ``EulerMaruyama(particles,
+    step_s)`` and no integrator.
+    """
+    if name not in METHODS:
+        raise InputError(f"method: unknown {name!r}; use one of {', '.join(METHODS)}")
+    if step_s is not None and not float(step_s) > 0:
+        raise InputError(f"step_s must be > 0 seconds, got {step_s!r}")
+    spec = METHODS[name]
+    if spec.ensemble:
+        if not (isinstance(particles, (int, np.integer)) and particles >= 2):
+            raise InputError(f"particles must be an integer >= 2, got {particles!r}")
+        method = spec.build(particles, gauss_hermite_order)
+        return (method if step_s is None else EulerMaruyama(int(particles), step_s=float(step_s))), None
+    return spec.build(particles, gauss_hermite_order), RK4() if step_s is None else RK4(step_s=float(step_s))

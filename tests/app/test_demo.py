@@ -1,0 +1,144 @@
+"""``driftwise demo``: the bookkeeping, the derived scenario numbers, and one reduced end-to-end run.
+
+The full-size demo is CI's separate smoke test; here the pieces are checked on hand-made inputs
+and one run at reduced size checks that every product, figure and the report appear and agree.
+"""
+
+from __future__ import annotations
+
+import json
+import warnings
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from driftwise.app import demo, scenarios
+from driftwise.app.cli import main
+
+
+def _job(tmp_path: Path) -> demo.Job:
+    (tmp_path / "figures").mkdir(exist_ok=True)
+    return demo.Job(tmp_path, demo.DemoSettings.fast(), progress=False, figures_dir=tmp_path / "figures")
+
+
+def test_outfall_share_is_the_mixture_mean_of_parcel_probabilities():
+    # Three parcels released at 0, 1, 2 h; parcel i's probability at age a hours is p_i(a).
+    # By hand, at clock 2 h: parcels of ages 2, 1, 0 h -> (p0(2) + p1(1) + p2(0)) / 3.
+    times = 3600.0 * np.arange(5)
+    starts = 3600.0 * np.arange(3)
+    p = np.array([[0.0, 0.1, 0.4, 0.6, 0.8], [0.0, 0.2, 0.3, 0.5, 0.7], [0.0, 0.05, 0.15, 0.25, 0.35]])
+    share = scenarios.outfall_share(p, times, starts)
+    np.testing.assert_allclose(share[0], 0.0, rtol=0, atol=1e-15)
+    np.testing.assert_allclose(share[1], (0.1 + 0.0) / 2, rtol=1e-12, atol=0)
+    np.testing.assert_allclose(share[2], (0.4 + 0.2 + 0.0) / 3, rtol=1e-12, atol=0)
+    np.testing.assert_allclose(share[4], (0.8 + 0.5 + 0.15) / 3, rtol=1e-12, atol=0)  # ages 4, 3, 2 h
+
+
+def test_sites_land_where_the_generator_put_them():
+    # Through lon/lat and back into a frame centred elsewhere: distances between sites are kept
+    # (AEQD, WGS 84; a 10 km baseline differs by < 1e-4 between two nearby centres).
+    from driftwise.data.frame import Frame
+
+    other = Frame("lonlat", -9.02, 44.015)
+    a, b = scenarios.sites_in_frame(other, [scenarios.HARBOUR_MOUTH_M, scenarios.OUTFALL_M])
+    d_bay = np.hypot(*np.subtract(scenarios.HARBOUR_MOUTH_M, scenarios.OUTFALL_M))
+    np.testing.assert_allclose(np.hypot(*(a - b)), d_bay, rtol=1e-4, atol=0)
+
+
+def test_a_failing_step_is_recorded_not_hidden(tmp_path):
+    job = _job(tmp_path)
+
+    def broken(_job):
+        raise RuntimeError("no\nconvergence")
+
+    def missing(_job):
+        raise demo.Unavailable("needs no_such_module_here, which this installation lacks")
+
+    assert not job.run("fit", "fit", broken)
+    assert not job.run("score", "skill", missing)
+    assert job.steps[0]["status"] == "failed" and job.steps[0]["detail"] == "RuntimeError: no convergence"
+    assert job.steps[1]["status"] == "not available" and "no_such_module_here" in job.steps[1]["detail"]
+    assert [m["section"] for m in job.missing] == ["fit", "skill"]
+    assert "RuntimeError" in job.state["tracebacks"][0]
+
+
+def test_warnings_become_single_lines_with_counts():
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        for _ in range(3):
+            warnings.warn("naive ISO time taken as UTC\nsecond line", UserWarning)
+        warnings.warn("projection stretch 0.2 %", RuntimeWarning)
+    assert demo.one_line_warnings(caught) == ["UserWarning: naive ISO time taken as UTC (×3)",
+                                              "RuntimeWarning: projection stretch 0.2 %"]
+
+
+def test_progress_bar_only_on_a_terminal(monkeypatch):
+    import io
+
+    class Terminal(io.StringIO):
+        def isatty(self):
+            return True
+
+    monkeypatch.setattr("sys.stderr", Terminal())
+    assert not demo._bar(3, quiet=False).disable
+    assert demo._bar(3, quiet=True).disable
+    monkeypatch.setattr("sys.stderr", io.StringIO())  # a pipe or a log file: no bar garbage
+    assert demo._bar(3, quiet=False).disable
+
+
+@pytest.mark.parametrize("command", ["inspect", "fit", "spread", "score", "check", "map", "demo"])
+def test_every_help_page_renders_cleanly(command, capsys):
+    """argparse leaves a description's text as written (only help strings are %-formatted): no stray '%%'."""
+    with pytest.raises(SystemExit) as done:
+        main([command, "--help"])
+    assert done.value.code == 0
+    text = capsys.readouterr().out
+    assert "%%" not in text and "%(" not in text
+    if command in ("spread", "score", "demo"):  # forecasts that can guide decisions carry the caution
+        assert "research tool" in " ".join(text.split())
+
+
+def test_cli_help_and_bad_output_folder(tmp_path, capsys):
+    with pytest.raises(SystemExit) as done:
+        main(["demo", "--help"])
+    assert done.value.code == 0
+    assert "--out DIR" in capsys.readouterr().out
+    afile = tmp_path / "taken"
+    afile.write_text("x")
+    assert main(["demo", "--out", str(afile), "--quiet"]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "is not a folder" in err
+
+
+@pytest.mark.slow
+def test_reduced_demo_end_to_end(tmp_path, capsys):
+    out = tmp_path / "demo"
+    assert main(["demo", "--out", str(out), "--fast"]) == 0
+    captured = capsys.readouterr()
+    printed = captured.out
+    assert "\r" not in captured.err and "it/s" not in captured.err  # not a terminal: no progress bars
+    summary = json.loads((out / "summary.json").read_text())
+    assert [s["status"] for s in summary["job"]["steps"]] == ["done"] * len(summary["job"]["steps"])
+    for f in summary["files"]:
+        assert (out / f["path"]).is_file(), f["path"]
+    names = {Path(f["path"]).name for f in summary["figures"]}
+    assert names == {"tracks.png", "elbo.png", "field.png", "physics.png", "spread_spill.png",
+                     "spread_outfall.png", "area_probability.png", "skill.png"}
+    # the invented bay has a divergent river mouth: it must not be called divergence-free
+    assert summary["check"]["verdict"]["divergence_free"] is False
+    # forecasts beat persistence on the held-out tracks at the last horizon, and the numbers agree
+    skill = summary["skill"]
+    assert skill["skill"][-1] > skill["baselines"]["persistence"]["skill"][-1]
+    scored = json.loads((out / "skill.json").read_text())
+    np.testing.assert_allclose(scored["skill"], skill["skill"], rtol=1e-12, atol=0)
+    # the digest and the report carry the same key numbers
+    report = (out / "report.html").read_text()
+    k = summary["fit"]["diffusivity_m2_s"]
+    assert f"→ {k:.3g} m²/s" in printed and f"{k:.4g}" in report  # the calibrated K
+    assert str(out / "") in printed or f"files in {out}/" in printed
+    assert "Caution" in printed and "Caution" in report
+
+
+def test_durations_read_naturally():
+    assert [demo.duration(s) for s in (34632.0, 95.0, 1.0, 2 * 86400.0)] == ["9.62 h", "1.58 min", "1 s", "2 d"]
