@@ -138,7 +138,7 @@ def test_cli_fit_reports_the_position_error(run_cli, tank_csv, tmp_path):
 
 
 def test_cli_refuses_a_position_error_larger_than_the_step(run_cli, tank_csv, tmp_path):
-    code, out, err = run_cli("fit", tank_csv, "--out", tmp_path / "m.npz", "--position-error", "10m")
+    code, _, err = run_cli("fit", tank_csv, "--out", tmp_path / "m.npz", "--position-error", "10m")
     assert code == 2
     assert "position error (--position-error) 10 m is larger than the typical step between fixes" in err
     assert not (tmp_path / "m.ckpt.npz").exists() and not (tmp_path / "m.npz").exists()

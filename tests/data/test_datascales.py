@@ -11,8 +11,8 @@ import numpy as np
 import pytest
 
 from driftwise.data import datascales as ds
-from driftwise.errors import InputError
 from driftwise.data.tracks import Tracks
+from driftwise.errors import InputError
 
 
 def radial_tracks(n_tracks, n_fixes, *, step_s, speed_m_s, dim=2, durations=None):

@@ -13,8 +13,8 @@ import numpy as np
 import pytest
 
 from driftwise.data import positionerror as pe
-from driftwise.errors import InputError
 from driftwise.data.tracks import Tracks
+from driftwise.errors import InputError
 
 
 def brownian_tracks(n_tracks, n_fixes, *, step_s, diffusivity_m2_s, sigma_m, seed, dim=2, irregular=False,

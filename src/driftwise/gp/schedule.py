@@ -78,7 +78,7 @@ class Checkpoint:
             raise InputError(f"every_steps must be an integer ≥ 1, got {self.every_steps!r}")
 
     @classmethod
-    def beside(cls, model_path, *, resume: bool = False) -> "Checkpoint":
+    def beside(cls, model_path, *, resume: bool = False) -> Checkpoint:
         """The checkpoint of a fit writing ``MODEL.npz``: ``MODEL.ckpt.npz`` in the same folder."""
         path = Path(model_path)
         stem = path.name[: -len(path.suffix)] if path.suffix else path.name
