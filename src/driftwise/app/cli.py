@@ -26,6 +26,7 @@ from ..data.datascales import resolve_horizons
 from ..data.positionerror import position_error_text
 from ..data.tracks import (TrackError, TrackWarning, fit_shortfall, format_summary, inspect_summary,
                            read_tracks_from_cli)
+from ..data.utctime import release_time_s
 from ..diagnostics.grid import field_grid
 from ..diagnostics.skill import score
 from ..diagnostics.verdict import finer_maps, run_check
@@ -124,6 +125,8 @@ def _add_spread(sub: argparse._SubParsersAction) -> None:
                    "LON,LAT degrees for a model fitted on lon/lat tracks; repeat for more releases")
     p.add_argument("--releases", metavar="FILE", help="CSV of releases: columns x,y[,z] (metres) or lon,lat "
                    "(degrees), optional start_time (seconds or ISO-8601), name, sd_m (release uncertainty, metres)")
+    p.add_argument("--start", metavar="TIME", help="release time of the --release points: ISO-8601 or seconds on the "
+                   "model's time axis (default: its last observation when the tracks had absolute times, else 0)")
     p.add_argument("--horizon", default="2d", help="forecast length with its unit (s, min, h, d; default 2d)")
     p.add_argument("--every", default="1h", help="output interval with its unit (default 1h)")
     p.add_argument("--method", choices=list(METHODS), default=DEFAULT_METHOD,
@@ -182,9 +185,9 @@ def _parse_release(text: str, frame, dim: int):
     return list(frame.from_lonlat([lon], [lat])[0]) + z
 
 
-def _spread_releases(args: argparse.Namespace, frame, dim: int):
+def _spread_releases(args: argparse.Namespace, frame, dim: int, start_s: float = 0.0):
 
-    releases = [Release(_parse_release(text, frame, dim)) for text in args.release]
+    releases = [Release(_parse_release(text, frame, dim), start_time_s=start_s) for text in args.release]
     if args.releases:
         releases += list(read_releases(args.releases, frame=frame, dim=dim))
     if not releases:
@@ -221,7 +224,7 @@ def _run_spread(args: argparse.Namespace) -> int:
         raise InputError("--out .geojson: GeoJSON (RFC 7946) holds lon/lat only, but this model was fitted in a local "
                          "metric frame; write .json, .csv or .nc instead")
     times = _output_times_s(args)
-    releases = _spread_releases(args, model.frame, model.dim)
+    releases = _spread_releases(args, model.frame, model.dim, release_time_s(model.data_summary, args.start))
     forecast = spread_from_field(model, releases, times, **_spread_options(args, model.frame))
     written = [str(write_spread(forecast, out)) for out in args.out]
     if args.json:

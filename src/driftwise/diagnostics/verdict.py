@@ -164,7 +164,9 @@ def _fit_families(train, *, families, fit_options: dict, holdout_obs) -> tuple[d
         field = fit(train, family, **fit_options)
         summary = fit_summary(field)
         held = heldout_log_likelihood(field, holdout_obs)
-        table[family] = {"elbo": float(summary.get("elbo", math.nan)),
+        n_obs = int(field.data_summary.get("n_observations") or 0)
+        table[family] = {"elbo": float(summary.get("elbo", math.nan)), "n_observations": n_obs,
+                         "elbo_per_observation": float(summary.get("elbo_per_observation", math.nan)),
                          "heldout_log_likelihood": held,
                          "heldout_log_likelihood_per_observation": held / max(holdout_obs.n, 1),
                          "hyperparameters": field.hyperparameters}

@@ -56,6 +56,7 @@ from ..data.datascales import check_position_error, data_scales
 from ..data.frame import Frame
 from ..data.observations import MIN_FIT_OBSERVATIONS, velocity_observations
 from ..data.positionerror import estimate_position_error
+from ..data.utctime import UNIX_EPOCH_UTC
 from ..errors import InputError
 from . import field as fld
 from .kernels import BASES, DEFAULT_FAMILY, KERNEL_FAMILIES
@@ -84,6 +85,7 @@ class _Data:
     n_tracks: int
     frame: Any
     fingerprint: str
+    time_is_absolute: bool = False   # Tracks read from ISO-8601 times: seconds since the Unix epoch
 
     @property
     def n(self) -> int:
@@ -108,7 +110,7 @@ def _prepare(data, position_error_m: float) -> _Data:
                          f"of a track), got {batch.position_m.shape[0]}")
 
     frame = getattr(data, "frame", None) or getattr(obs, "frame", None) or Frame()
-    return _Data(obs, batch, n_tracks, frame, _fingerprint(batch))
+    return _Data(obs, batch, n_tracks, frame, _fingerprint(batch), bool(getattr(data, "time_is_absolute", False)))
 
 
 def _position_error(data, position_error_m: float | None, seed: int) -> tuple[float | None, dict[str, Any]]:
@@ -414,6 +416,8 @@ def _data_summary(data: _Data) -> dict[str, Any]:
     if hasattr(obs, "time_s"):
         time = np.asarray(obs.time_s, dtype=np.float64)
         summary["time_span_s"] = [float(time.min()), float(time.max())]
+    if data.time_is_absolute:
+        summary["time_origin_utc"] = UNIX_EPOCH_UTC
     if hasattr(obs, "dt_s"):
         summary["median_dt_s"] = float(np.median(np.asarray(obs.dt_s)))
     return summary
