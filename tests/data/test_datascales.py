@@ -125,3 +125,13 @@ def test_duration_text(seconds, text):
 
 def test_nice_step():
     assert [ds.nice_step(v) for v in (0.015, 2.16, 340.0, 0.0)] == [0.02, 2.0, 500.0, 1.0]
+
+
+def test_resolve_horizons():
+    tracks = radial_tracks(5, 73, step_s=3600.0, speed_m_s=0.2)
+    assert ds.resolve_horizons(None, tracks) == [6 * 3600.0, 12 * 3600.0, 24 * 3600.0]
+    assert ds.resolve_horizons([7200.0], tracks) == [7200.0]
+    with pytest.raises(InputError, match="--horizons: give positive durations"):
+        ds.resolve_horizons([0.0], tracks)
+    with pytest.raises(InputError, match="shorter than the sampling interval"):
+        ds.resolve_horizons([60.0], tracks)

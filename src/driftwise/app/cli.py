@@ -410,9 +410,7 @@ def _read_named_tracks(path: str, max_speed: str):
 def _run_score(args: argparse.Namespace) -> int:
 
 
-    horizons = None if args.horizons is None else parse_durations_s(args.horizons, what="--horizons")
-    if horizons is not None and (not horizons or min(horizons) <= 0):
-        raise InputError(f"--horizons {args.horizons!r}: give positive durations such as 6h,12h,24h")
+    horizons = args.horizons and parse_durations_s(args.horizons, what="--horizons")
     if args.max_starts < 1:
         raise InputError(f"--max-starts must be a positive integer, got {args.max_starts}")
     model = load_model(args.model)

@@ -176,8 +176,10 @@ def check_horizons(horizons_s: Iterable[float], scales: DataScales, *, option: s
 
 
 def resolve_horizons(horizons_s, tracks, *, option: str = "--horizons") -> list[float]:
-    """The given horizons (s) checked against ``tracks`` (:func:`check_horizons`), or, when None,
-    the tracks' own (:attr:`DataScales.horizons_s`)."""
+    """The given horizons (s), positive and checked against ``tracks`` (:func:`check_horizons`), or,
+    when None, the tracks' own (:attr:`DataScales.horizons_s`)."""
+    if horizons_s is not None and (len(horizons_s) == 0 or min(horizons_s) <= 0):
+        raise InputError(f"{option}: give positive durations such as 6h,12h,24h")
     scales = data_scales(tracks)
     chosen = list(scales.horizons_s) if horizons_s is None else [float(h) for h in horizons_s]
     check_horizons(chosen, scales, option=option)
