@@ -134,7 +134,7 @@ def test_the_background_recovers_the_rates_of_a_linear_flow(linear_fit):
 @pytest.mark.slow
 def test_the_helmholtz_parts_carry_the_linear_divergence_and_rotation(linear_fit):
     """Split: the linear divergence belongs to the curl-free part, the rotation to the divergence-free part."""
-    field, tracks = linear_fit
+    field, _ = linear_fit
     pts = np.random.default_rng(6).uniform(-3000.0, 3000.0, (20, 2))
     div = physics.divergence_posterior(field, pts, part="curl_free")
     rot = physics.vorticity_posterior(field, pts, part="divergence_free")

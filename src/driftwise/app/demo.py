@@ -103,6 +103,7 @@ class DemoSettings:
     max_skill_starts: int | None = 720
     calibration_starts: int = 100
     seed: int = 0
+    position_error_m: float = DemoScenario().position_error_m   # the campaign's stated GPS accuracy, as a user gives it
 
     @classmethod
     def fast(cls) -> "DemoSettings":
@@ -245,8 +246,8 @@ def figure_tracks(job: Job) -> None:
 # ----------------------------------------------------------------- 2. fit
 def step_fit(job: Job) -> str:
     s = job.settings
-    field = fit(job.state["fit_tracks"], kernel="helmholtz", inducing=s.inducing, seed=s.seed,
-                schedule=Schedule(steps=s.fit_steps), progress=job.progress)
+    field = fit(job.state["fit_tracks"], kernel="helmholtz", inducing=s.inducing, seed=s.seed, progress=job.progress,
+                position_error_m=s.position_error_m, schedule=Schedule(steps=s.fit_steps))
     path = job.out / "model.npz"
     save_model(field, path)
     job.add_file(path, "the fitted Helmholtz model (npz without pickles + JSON metadata; driftwise.load)")
@@ -359,7 +360,7 @@ def _field(job: Job) -> Any:
 def step_check(job: Job) -> str:
     field, s = _field(job), job.settings
     result = check(job.state["fit_tracks"], model=field, inducing=s.family_inducing, steps=s.family_steps,
-                           seed=s.seed, progress=job.progress)
+                   seed=s.seed, progress=job.progress, position_error_m=s.position_error_m)
     job.state["check"] = result
     job.summary["check"] = _check_summary(result)
 

@@ -44,10 +44,13 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-__all__ = ["BACKGROUNDS", "Background", "TERMS", "coefficient_names", "describe", "family_terms", "features"]
+__all__ = ["BACKGROUNDS", "BACKGROUND_HELP", "TERMS", "Background", "coefficient_names", "describe", "family_terms",
+           "features"]
 
 TERMS = ("uniform", "divergence", "rotation", "strain")
 BACKGROUNDS = ("none", "uniform", "linear")   # the choices of driftwise.fit(background=...)
+BACKGROUND_HELP = ("background flow of the prior, learned with the field: none, uniform (a mean velocity) or linear "
+                   "(a mean velocity plus divergence, rotation and strain about the data's centre; default linear)")
 _FAMILY_TERMS = {
     "divergence-free": ("uniform", "rotation", "strain"),
     "curl-free": ("uniform", "divergence", "strain"),
@@ -86,7 +89,7 @@ class Background:
     tag: str = dataclasses.field(default="background", metadata=_STATIC, repr=False)
 
     @classmethod
-    def create(cls, terms, centre_m, scales) -> "Background":
+    def create(cls, terms, centre_m, scales) -> Background:
         """From term names, the centre (d,) in m and the scale of each term (m/s or 1/s, > 0)."""
         terms = tuple(str(t) for t in terms)
         unknown = [t for t in terms if t not in TERMS]

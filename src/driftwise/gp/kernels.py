@@ -60,7 +60,7 @@ import jax.numpy as jnp
 import numpy as np
 
 from ..errors import InputError
-from .background import BACKGROUNDS, Background, family_terms
+from .background import BACKGROUND_HELP, BACKGROUNDS, Background, family_terms
 
 _STATIC = {"static": True}
 
@@ -77,6 +77,8 @@ def _check_tag(obj, attribute: str) -> None:
 
 
 __all__ = [
+    "BACKGROUNDS",
+    "BACKGROUND_HELP",
     "BASES",
     "KERNEL_FAMILIES",
     "KernelFamily",
