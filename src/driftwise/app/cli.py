@@ -24,8 +24,7 @@ import numpy as np
 
 from ..data.datascales import resolve_horizons
 from ..data.positionerror import position_error_text
-from ..data.tracks import (TrackError, TrackWarning, fit_shortfall, format_summary, inspect_summary,
-                           read_tracks_from_cli)
+from ..data.tracks import TrackError, TrackWarning, fit_shortfall, format_summary, inspect_summary, read_tracks_from_cli
 from ..data.utctime import release_time_s
 from ..diagnostics.grid import field_grid
 from ..diagnostics.skill import score
