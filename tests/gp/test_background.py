@@ -18,7 +18,7 @@ from scipy.spatial import Delaunay
 from scipy.stats import chi2
 
 import driftwise
-from driftwise.data.synthetic import LinearFlow, Mixture, PotentialSources, UniformFlow, simulate_drifters
+from driftwise.data.synthetic import LinearFlow, Mixture, PotentialSources, TaylorGreen, UniformFlow, simulate_drifters
 from driftwise.data.tracks import tracks_from_frame
 from driftwise.diagnostics import physics
 from driftwise.errors import InputError
@@ -200,3 +200,17 @@ def test_a_stream_past_a_source_and_a_sink_is_recovered_with_calibrated_uncertai
     names, coef, coef_cov = field.background_posterior()
     u = dict(zip(names, coef))
     assert abs(u["uniform_x_m_s"] - 0.1) < 3.0 * np.sqrt(coef_cov[0, 0]) + 0.005    # the stream U = 0.1 m/s
+
+
+# ------------------------------------------------------------------ the diffusivity in cellular flow
+@pytest.mark.slow
+def test_the_diffusivity_in_taylor_green_cells_is_recovered_with_the_defaults():
+    """Steady cells u = U sin kx cos ky, v = −U cos kx sin ky (Taylor & Green 1937, Proc. R. Soc. A 158, 499),
+    U = 0.2 m/s, k = π/1 km, plus a random walk of K = 1 m²/s (Einstein 1905: displacement variance 2KΔt per
+    component) and 5 m fix noise; 120 drifters, 10-min fixes for 3 h.  The default fit (background flow, position
+    error estimated from the tracks) must give K within 30 %."""
+    starts = np.random.default_rng(22).uniform(0.0, 2000.0, (120, 2))
+    table = simulate_drifters(TaylorGreen(0.2, 1000.0), starts, duration_s=3 * 3600.0, fix_interval_s=600.0,
+                              diffusivity_m2_s=1.0, position_error_m=5.0, seed=22)
+    field = driftwise.fit(tracks_from_frame(table), progress=False)
+    assert field.diffusivity_m2_s == pytest.approx(1.0, rel=0.30)
