@@ -84,6 +84,7 @@ def test_ornstein_uhlenbeck_transition_density_matches_van_loan(method):
     np.testing.assert_allclose(got, exact, rtol=0, atol=1e-8)   # Van Loan 1978 + scipy.stats
 
 
+@pytest.mark.slow
 def test_ou_gradient_matches_central_differences():
     trans = _ou_transitions(n=6)
     integrator = FixedStepRK4(0.05, 100)
@@ -95,9 +96,9 @@ def test_ou_gradient_matches_central_differences():
                                        jnp.asarray(trans.end_m), jnp.asarray(trans.dt_s), SIGMA_POS**2, 4))
 
     theta = jnp.concatenate([jnp.asarray(A_OU).ravel(), jnp.array([0.5, 0.2, 0.3])])
-    check_grads(total, (theta,), order=1, modes=["rev"], eps=1e-5, atol=1e-6, rtol=1e-6)  # central differences
+    check_grads(jax.jit(total), (theta,), order=1, modes=["rev"], eps=1e-5, atol=1e-6, rtol=1e-6)  # central differences
     # and the gradient is the exact one of the Van Loan density (finite differences of scipy, step 1e-6)
-    grad = np.asarray(jax.grad(total)(theta))
+    grad = np.asarray(jax.jit(jax.grad(total))(theta))
     exact = _van_loan_gradient(trans, np.asarray(theta))
     np.testing.assert_allclose(grad, exact, rtol=1e-4, atol=1e-5)
 
@@ -131,6 +132,7 @@ def _small_vortex_fit():
     return field, transition_set(tracks, position_error_m=10.0)
 
 
+@pytest.mark.slow
 def test_field_objective_gradient_matches_central_differences():
     field, trans = _small_vortex_fit()
     params = field.params
@@ -144,7 +146,7 @@ def test_field_objective_gradient_matches_central_differences():
         return jnp.sum(log_likelihoods(sde, SphericalCubature(), integrator, *rows, 100.0, 8)) - kl_divergence(p)
 
     args = (params.q_mean, params.log_diffusivity_m2_s, params.q_sqrt_raw)
-    check_grads(objective, args, order=1, modes=["rev"], eps=1e-6, atol=1e-5, rtol=1e-5)  # central differences
+    check_grads(jax.jit(objective), args, order=1, modes=["rev"], eps=1e-6, atol=1e-5, rtol=1e-5)  # central differences
 
 
 def test_param_posterior_equals_point_posterior():
