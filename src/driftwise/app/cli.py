@@ -29,12 +29,13 @@ from ..diagnostics.verdict import finer_maps, run_check
 from ..dynamics.calibrate import calibrate
 from ..dynamics.methods import DEFAULT_METHOD, DEFAULT_PARTICLES, METHODS
 from ..dynamics.spread import Release, as_releases, read_polygon, read_releases, spread_from_field
+from ..dynamics.transitionfit import LIKELIHOODS, fit_by_likelihood, transition_checkpoint_path
 from ..errors import InputError
 from ..files import CAUTION, plain
 from ..gp.kernels import DEFAULT_FAMILY, KERNEL_FAMILIES
 from ..gp.modelfile import load_model, save_model
 from ..gp.schedule import Checkpoint
-from ..gp.training import fit, fit_report
+from ..gp.training import fit_report
 from ..products.plots import plot_physics_maps, plot_skill, save_figure
 from ..products.report import complete
 from ..products.writers import (
@@ -263,6 +264,10 @@ def _add_fit(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--max-speed", default="5m/s", help="drop fixes implying a faster speed (default 5m/s)")
     p.add_argument("--max-gap", default=None, help="split a track at gaps longer than this (e.g. 6h; default: never)")
     p.add_argument("--resume", action="store_true", help="continue from the checkpoint MODEL.ckpt.npz if present")
+    p.add_argument("--likelihood", default="auto", choices=list(LIKELIHOODS),
+                   help="velocities: finite-difference velocities between fixes; transitions: then refit through the "
+                   "transition density of consecutive fixes (moments of the flow's SDE); auto (default): transitions "
+                   "when the fixes are coarse for the flow (median dt*|grad u| above 0.5)")
     p.add_argument("--calibrate", action=argparse.BooleanOptionalAction, default=True,
                    help="after the fit, estimate K and tau from the likelihood of observed displacements between "
                    "fixes (lags 1h-12h) on these tracks and store them in the model (default: on)")
@@ -287,8 +292,10 @@ def _run_fit(args: argparse.Namespace) -> int:
     tracks = read_tracks_from_cli(args)
     checkpoint = _checkpoint_path(args.out)
     try:
-        field = fit(tracks, args.kernel, inducing=args.inducing, seed=args.seed, position_error_m=position_error,
-                    checkpoint=Checkpoint(checkpoint, resume=args.resume), progress=not (args.quiet or args.json))
+        field, choice = fit_by_likelihood(tracks, args.kernel, likelihood=args.likelihood, inducing=args.inducing,
+                                          seed=args.seed, position_error_m=position_error,
+                                          checkpoint=Checkpoint(checkpoint, resume=args.resume),
+                                          progress=not (args.quiet or args.json))
     except KeyboardInterrupt:
         print(f"driftwise: fit interrupted; continue with --resume (checkpoint {checkpoint})", file=sys.stderr)
         raise
@@ -297,7 +304,8 @@ def _run_fit(args: argparse.Namespace) -> int:
         field = calibrate(field, tracks)
     written = save_model(field, args.out)
     checkpoint.unlink(missing_ok=True)
-    report = {**fit_report(field), "model": str(written)}
+    transition_checkpoint_path(checkpoint).unlink(missing_ok=True)
+    report = {**fit_report(field), **choice.to_dict(), "model": str(written)}
     if args.calibrate:
         report["calibration"] = field.fit_info.get("calibration")
     if args.json:
@@ -316,7 +324,7 @@ def _format_fit(report: dict[str, Any]) -> str:
     lines += [f"  {name} = {value:.4g}" for name, value in hyper.items()]
     lines += [f"  decorrelation time τ = {report['decorrelation_time_s']:.4g} s "
               f"({report.get('decorrelation_time_source') or 'length scale / RMS speed'})",
-              f"wrote {report['model']}"]
+              f"  likelihood: {report['likelihood_reason']}", f"wrote {report['model']}"]
     return "\n".join(lines)
 
 
