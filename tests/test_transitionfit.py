@@ -12,6 +12,7 @@ Outside references:
 from __future__ import annotations
 
 import dataclasses
+import json
 import math
 
 import numpy as np
@@ -102,3 +103,19 @@ def test_transition_fit_resumes_to_the_same_answer(tmp_path):
                                rtol=1e-10)
     np.testing.assert_allclose(np.asarray(resumed.params.q_mean), np.asarray(whole.params.q_mean), rtol=1e-9, atol=1e-12)
     assert whole.fit_info["likelihood"] == "transitions"
+
+
+def test_cli_reports_the_likelihood_and_the_coarseness(tmp_path, run_cli):
+    path = tmp_path / "vortex.csv"
+    table = simulate_drifters(LambOseenVortex(GAMMA_M2_S, CORE_M), [[1500.0, 0.0], [0.0, 3000.0], [-2500.0, 500.0]],
+                              duration_s=12 * 3600.0, fix_interval_s=3 * 3600.0, diffusivity_m2_s=K_TRUE,
+                              position_error_m=SIGMA_M, seed=8, substeps=180)
+    table.to_csv(path, index=False)
+    code, stdout, err = run_cli("fit", path, "--out", tmp_path / "m.npz", "--inducing", "9", "--no-calibrate",
+                                "--likelihood", "velocities", "--json")
+    assert code == 0, err
+    report = json.loads(stdout)
+    assert report["likelihood"] == "velocities" and report["likelihood_requested"] == "velocities"
+    assert report["coarseness_threshold"] == COARSENESS_THRESHOLD and report["coarseness"] > COARSENESS_THRESHOLD
+    code, stdout, err = run_cli("fit", path, "--out", tmp_path / "m.npz", "--likelihood", "chords")
+    assert code == 2 and "likelihood" in err
