@@ -119,3 +119,30 @@ def test_cli_reports_the_likelihood_and_the_coarseness(tmp_path, run_cli):
     assert report["coarseness_threshold"] == COARSENESS_THRESHOLD and report["coarseness"] > COARSENESS_THRESHOLD
     code, stdout, err = run_cli("fit", path, "--out", tmp_path / "m.npz", "--likelihood", "chords")
     assert code == 2 and "likelihood" in err
+
+
+def _both_fits(fix_interval_s: float):
+    tracks = vortex_tracks(fix_interval_s, n=30)
+    vel = fit(tracks, "divergence-free", inducing=36, position_error_m=SIGMA_M, schedule=Schedule(steps=200),
+              progress=False)
+    schedule = dataclasses.replace(TRANSITION_SCHEDULE, steps=300, batch_size=64, learning_rate=0.03, patience=25)
+    trans = fit_transitions(tracks, vel, position_error_m=SIGMA_M, schedule=schedule, step_s=1800.0, progress=False)
+    return tracks, vel, trans
+
+
+@pytest.mark.slow
+def test_coarse_fixes_in_the_vortex_are_recovered_by_the_transition_fit():
+    tracks, vel, trans = _both_fits(3 * 3600.0)
+    rmse_vel, rmse_trans = rmse_near_data(vel, tracks), rmse_near_data(trans, tracks)
+    # Lamb–Oseen formula (Oseen 1912; Lamb 1932): the straight chords of 3-h fixes smear the vortex
+    assert rmse_trans <= 0.5 * rmse_vel, (rmse_trans, rmse_vel)
+    # K: the velocity fit absorbs the chord error into K (Einstein 1905 variance 2KΔt read as noise)
+    assert abs(trans.diffusivity_m2_s - K_TRUE) < abs(vel.diffusivity_m2_s - K_TRUE)
+    assert trans.diffusivity_m2_s == pytest.approx(K_TRUE, rel=KTOL), trans.diffusivity_m2_s
+
+
+@pytest.mark.slow
+def test_fine_fixes_give_the_same_field_by_both_likelihoods():
+    tracks, vel, trans = _both_fits(1800.0)
+    rmse_vel, rmse_trans = rmse_near_data(vel, tracks), rmse_near_data(trans, tracks)
+    assert rmse_trans == pytest.approx(rmse_vel, rel=0.10), (rmse_trans, rmse_vel)   # Lamb–Oseen formula

@@ -18,7 +18,7 @@ it is the forecast model's own transition likelihood with a KL penalty that keep
 prior where the data say nothing.
 
 Warm start: the velocity fit (:func:`driftwise.gp.training.fit`); its τ = ℓ/U_rms is held fixed.
-Optimiser: Adam (Kingma & Ba 2015, optax) on minibatches of transitions from epoch permutations of
+Optimiser: Adam (Kingma & Ba 2015, optax), its rate decaying tenfold over ``steps``, on minibatches of transitions from epoch permutations of
 ``numpy.random.default_rng([seed, epoch])``, the sum scaled by N/b.  Every ``patience`` steps the
 objective on fixed evaluation rows is checked and the fit stops once it gained less than
 1e-4 × max(|L|, N nats).  Checkpoint/resume and the progress bar as in the velocity fit
@@ -66,6 +66,9 @@ REL_TOL = 1e-4
 EVAL_ROWS = 2048
 RETRIES = 6
 _TRAINABLE = ("kernel", "q_mean", "q_sqrt_raw", "log_diffusivity_m2_s")
+# Adam moves every coordinate by about the learning rate at first; the (M·d)² entries of S's raw factor and the
+# M·d whitened means start at the velocity fit's optimum and would be knocked off it by full-size steps
+LEAF_STEP = {"kernel": 1.0, "log_diffusivity_m2_s": 1.0, "q_mean": 0.3, "q_sqrt_raw": 0.1}
 
 
 @dataclass(frozen=True)
@@ -97,8 +100,15 @@ def objective(params: fld.FieldParams, rows: tuple, n_total, tau_s, position_var
     return n_total / rows[0].shape[0] * jnp.sum(ll) - fld.kl_divergence(params)
 
 
+def _adam_per_leaf(learning_rate) -> optax.GradientTransformation:
+    """Adam with the step of each trainable leaf scaled by :data:`LEAF_STEP`."""
+    factors = optax.stateless(lambda updates, params=None: {k: jax.tree_util.tree_map(lambda u: LEAF_STEP[k] * u, v)
+                                                           for k, v in updates.items()})
+    return optax.chain(optax.adam(learning_rate), factors)
+
+
 def _optimizer() -> optax.GradientTransformation:
-    return optax.inject_hyperparams(optax.adam, hyperparam_dtype=jnp.float64)(learning_rate=0.02)
+    return optax.inject_hyperparams(_adam_per_leaf, hyperparam_dtype=jnp.float64)(learning_rate=0.02)
 
 
 def _all_finite(tree) -> jax.Array:
@@ -163,11 +173,18 @@ def _value(params, problem: _Problem, idx: np.ndarray | None, jitter: float) -> 
     return problem.trans.n / rows.size * total - float(fld.kl_divergence(params))
 
 
-def _advance(state: TrainState, problem: _Problem) -> TrainState:
-    """One accepted step; a non-finite objective or gradient is retried with half the learning rate."""
+def _with_learning_rate(opt_state, learning_rate: float):
+    return opt_state._replace(hyperparams=dict(opt_state.hyperparams,
+                                               learning_rate=jnp.asarray(learning_rate, dtype=jnp.float64)))
+
+
+def _advance(state: TrainState, problem: _Problem, schedule: Schedule) -> TrainState:
+    """One accepted step at the learning rate lr₀ · 10^(−step/steps) (minibatch noise in Adam's steps shrinks
+    with the rate); a non-finite objective or gradient is retried with half of it."""
     cfg, trans = problem.config, problem.trans
     rows = _rows(trans, _batch_indices(trans.n, cfg.batch_size, cfg.seed, state.step))
-    opt_state = state.opt_state
+    decayed = schedule.learning_rate * 10.0 ** (-state.step / max(schedule.steps, 1))
+    opt_state = _with_learning_rate(state.opt_state, decayed)
     for _ in range(RETRIES + 1):
         params, new_opt, value, ok = _step(state.params, opt_state, rows, float(trans.n), problem.tau_s,
                                            trans.position_error_m**2, prop=problem.prop,
@@ -175,8 +192,7 @@ def _advance(state: TrainState, problem: _Problem) -> TrainState:
         if bool(ok):
             return dataclasses.replace(state, params=params, opt_state=new_opt, step=state.step + 1,
                                        history=state.history + (float(value),))
-        lr = float(opt_state.hyperparams["learning_rate"]) / 2.0
-        opt_state = opt_state._replace(hyperparams=dict(opt_state.hyperparams, learning_rate=jnp.asarray(lr)))
+        opt_state = _with_learning_rate(opt_state, float(opt_state.hyperparams["learning_rate"]) / 2.0)
     raise RuntimeError(f"transition fit: the objective or its gradient stayed non-finite at step {state.step} "
                        f"after {RETRIES} retries with smaller steps; check units and the position error")
 
@@ -193,9 +209,12 @@ def _train(state: TrainState, problem: _Problem, schedule: Schedule, checkpoint:
     disable = not (progress and hasattr(sys.stderr, "isatty") and sys.stderr.isatty())
     bar = tqdm(total=schedule.steps, initial=min(state.step, schedule.steps), disable=disable, leave=False,
                desc="driftwise fit (transitions)", unit="step", file=sys.stderr, dynamic_ncols=True)
+    if state.step == 0 and not state.checks:
+        state = dataclasses.replace(state, checks=(_value(state.params, problem, _evaluation_rows(
+            problem.trans.n, problem.config.seed), state.jitter_multiple),))    # the warm start's value
     try:
         while state.step < schedule.steps and not state.converged:
-            state = _advance(state, problem)
+            state = _advance(state, problem, schedule)
             if state.step % schedule.patience == 0:
                 state = _check(state, problem)
             if checkpoint is not None and state.step % checkpoint.every_steps == 0:
@@ -226,8 +245,7 @@ def _config(warm: fld.FlowField, trans: TransitionSet, prop: Propagation, schedu
 def _start(warm: fld.FlowField, problem: _Problem, schedule: Schedule, checkpoint: Checkpoint | None) -> TrainState:
     params = warm.params
     opt_state = _optimizer().init({name: getattr(params, name) for name in _TRAINABLE})
-    hyper = dict(opt_state.hyperparams, learning_rate=jnp.asarray(schedule.learning_rate, dtype=jnp.float64))
-    state = TrainState(params, opt_state._replace(hyperparams=hyper), 0, (), warm.jitter_multiple)
+    state = TrainState(params, _with_learning_rate(opt_state, schedule.learning_rate), 0, (), warm.jitter_multiple)
     if checkpoint is not None and checkpoint.resume and checkpoint.path.exists():
         return load_checkpoint(checkpoint.path, state, problem.config)
     return state
