@@ -2,15 +2,21 @@
 
 from __future__ import annotations
 
+import json
+
+import numpy as np
 import pytest
 
+from driftwise.data.frame import Frame
 from driftwise.errors import InputError
+from driftwise.gp import field as fld
+from driftwise.gp.modelfile import save_model
 from driftwise.units import parse_diffusivity_m2_s, parse_duration_s, parse_durations_s, parse_length_m, parse_speed_m_s
 
 
 @pytest.mark.parametrize(
     ("text", "expected"),
-    [("10m", 10.0), ("2km", 2000.0), ("500", 500.0), ("1.5e3m", 1500.0), (" 25 cm ", 0.25)],
+    [("10m", 10.0), ("2km", 2000.0), ("1.5e3m", 1500.0), (" 25 cm ", 0.25), ("3mm", 0.003)],
 )
 def test_lengths(text, expected):
     assert parse_length_m(text) == pytest.approx(expected, rel=1e-15)
@@ -18,7 +24,7 @@ def test_lengths(text, expected):
 
 @pytest.mark.parametrize(
     ("text", "expected"),
-    [("6h", 21600.0), ("2d", 172800.0), ("10min", 600.0), ("30s", 30.0), ("3600", 3600.0)],
+    [("6h", 21600.0), ("2d", 172800.0), ("10min", 600.0), ("30s", 30.0), ("3600s", 3600.0)],
 )
 def test_durations(text, expected):
     assert parse_duration_s(text) == pytest.approx(expected, rel=1e-15)
@@ -38,3 +44,79 @@ def test_speed_and_diffusivity():
 def test_bad_values_name_the_option(text):
     with pytest.raises(InputError, match="--horizon"):
         parse_duration_s(text, what="--horizon")
+
+
+# ---------------------------------------------------------------- a length or duration needs its unit
+@pytest.mark.parametrize(("parse", "text", "suggested"), [
+    (parse_duration_s, "48", "48s, 48min, 48h or 48d"),
+    (parse_duration_s, " 1.5 ", "1.5s, 1.5min, 1.5h or 1.5d"),
+    (parse_length_m, "500", "500m, 500km, 500cm or 500mm"),
+    (parse_length_m, "-2e3", "-2e3m, -2e3km, -2e3cm or -2e3mm"),
+])
+def test_bare_length_or_duration_is_refused_with_suggestions(parse, text, suggested):
+    with pytest.raises(InputError) as info:
+        parse(text, what="--opt")
+    assert str(info.value) == f"--opt: {text.strip()!r} has no unit; write it with one: {suggested}"
+
+
+def test_bare_number_in_the_named_unit():
+    assert parse_duration_s("48", bare_unit="h") == pytest.approx(172800.0, rel=1e-15)  # 48 × 3600 s
+    assert parse_duration_s("90", bare_unit="s") == pytest.approx(90.0, rel=1e-15)
+    assert parse_length_m("-300", bare_unit="m") == pytest.approx(-300.0, rel=1e-15)
+    assert parse_length_m("2", bare_unit="km") == pytest.approx(2000.0, rel=1e-15)
+    assert parse_length_m("2cm", bare_unit="km") == pytest.approx(0.02, rel=1e-15)  # a written unit wins
+
+
+def test_zero_needs_no_unit_and_lists_refuse_a_bare_entry():
+    assert parse_duration_s("0") == 0.0 and parse_length_m("0.0") == 0.0
+    with pytest.raises(InputError, match="--horizons: '12' has no unit"):
+        parse_durations_s("6h,12", what="--horizons")
+
+
+def test_bare_speed_and_diffusivity_stay_si():
+    assert parse_speed_m_s("2") == pytest.approx(2.0, rel=1e-15)
+    assert parse_diffusivity_m2_s("5") == pytest.approx(5.0, rel=1e-15)
+
+
+# ---------------------------------------------------------------- the command line
+@pytest.fixture(scope="module")
+def small_model(tmp_path_factory):
+    """A saved 2-D Helmholtz model (prior q) over a 5 km square; the forecasts here only check times."""
+    z = np.random.default_rng(0).uniform(0.0, 5000.0, (9, 2))
+    params = fld.init_params("helmholtz", 2, z, velocity_scale_m_s=0.2, length_scale_m=1500.0,
+                             diffusivity_m2_s=3.0, noise_floor_m_s=0.02)
+    field = fld.FlowField.from_params(params, frame=Frame(), decorrelation_time_s=3600.0, position_error_m=10.0,
+                                      data_summary={"n_tracks": 3, "n_observations": 40,
+                                                    "extent_m": {"min": [0, 0], "max": [5000, 5000]}},
+                                      fit_info={"elbo": 1.0})
+    path = tmp_path_factory.mktemp("units") / "m.npz"
+    save_model(field, path)
+    return path
+
+
+def test_cli_horizon_without_unit_is_exit_2(small_model, run_cli):
+    code, out, err = run_cli("spread", small_model, "--release", "100,200", "--horizon", "48")
+    assert (code, out) == (2, "")
+    assert err.strip() == "driftwise: error: --horizon: '48' has no unit; write it with one: 48s, 48min, 48h or 48d"
+
+
+def test_cli_horizon_with_unit_and_bare_release_metres(small_model, run_cli):
+    code, out, _ = run_cli("spread", small_model, "--release", "100,200", "--horizon", "48h", "--every", "24h",
+                           "--json")
+    assert code == 0
+    release = json.loads(out)["releases"][0]
+    assert release["times_s"] == [0.0, 86400.0, 172800.0]  # 24 h = 86 400 s exactly (SI Brochure, table 8)
+    np.testing.assert_allclose(release["start"], [100.0, 200.0], rtol=0, atol=0)  # --release help: bare = metres
+
+
+@pytest.mark.parametrize(("argv", "option"), [
+    (["inspect", "{tracks}", "--max-gap", "6"], "--max-gap"),
+    (["fit", "{tracks}", "--out", "{tmp}/m.npz", "--position-error", "5"], "--position-error"),
+    (["check", "{tracks}", "--position-error", "5"], "--position-error"),
+])
+def test_cli_bare_length_or_duration_options_are_exit_2(write_file, tmp_path, run_cli, argv, option):
+    tracks = write_file("t.csv", "track_id,time,x,y\nA,0,0,0\nA,60,1,0\nA,120,2,0\nA,180,3,0\n")
+    code, out, err = run_cli(*[a.format(tracks=tracks, tmp=tmp_path) for a in argv])
+    assert (code, out) == (2, "")
+    assert f"{option}: " in err and "has no unit" in err and len(err.strip().splitlines()) == 1
+    assert not (tmp_path / "m.npz").exists()

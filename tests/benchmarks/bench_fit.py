@@ -92,7 +92,7 @@ def time_step(q_update, M=256, b=1024, n=20000):
     data = F._prepare(observations(n, 1), SIGMA_POS)
     config = F._check_options("helmholtz", "squared-exponential", M, 0, Schedule(steps=100, batch_size=b, learning_rate=0.05, patience=15, q_update=q_update, natural_step=0.5), SIGMA_POS)
     config = F.dataclasses.replace(config, fingerprint=data.fingerprint)
-    state, z_scale = F._start(data, config, learning_rate=0.05, checkpoint=None, resume=False)
+    state, z_scale = F._start(data, config, learning_rate=0.05, checkpoint=None)
     for _ in range(2):  # compile, warm up
         state = F._advance(state, data, config, z_scale)
     times = []

@@ -22,7 +22,9 @@ from typing import Any, Callable
 
 import numpy as np
 
-from ..data.tracks import format_summary, inspect_summary, read_tracks_from_cli
+from ..data.tracks import (TrackError, TrackWarning, fit_shortfall, format_summary, inspect_summary,
+                           read_tracks_from_cli)
+from ..data.utctime import release_time_s
 from ..diagnostics.grid import field_grid
 from ..diagnostics.skill import score
 from ..diagnostics.verdict import finer_maps, run_check
@@ -80,20 +82,21 @@ def _add_inspect(sub: argparse._SubParsersAction) -> None:
     p = sub.add_parser("inspect", help="summarise a tracks file and its quality-control actions",
                        description="Summarise a tracks file: tracks, fixes, time span, sampling, speeds, frame and QC actions.")
     p.add_argument("tracks", help="CSV, CSV.GZ, Parquet or CF-trajectory NetCDF file of fixes")
-    p.add_argument("--max-speed", default="5m/s", help="drop fixes implying a faster speed (default 5m/s)")
-    p.add_argument("--max-gap", default=None, help="split a track at gaps longer than this (e.g. 6h; default: never)")
+    p.add_argument("--max-speed", default="5m/s", help="drop fixes implying a faster speed (bare: m/s; default 5m/s)")
+    p.add_argument("--max-gap", default=None,
+                   help="split a track at gaps longer than this duration, with its unit (e.g. 6h; default: never)")
     _add_json_flag(p)
     p.set_defaults(run=_run_inspect)
 
 
 def _run_inspect(args: argparse.Namespace) -> int:
-
     tracks = read_tracks_from_cli(args)
     summary = inspect_summary(tracks)
+    if summary.get("fit_warning"):
+        warnings.warn(summary["fit_warning"], TrackWarning, stacklevel=1)
     if args.json:
         print_json(summary)
     else:
-
         print(format_summary(summary))
     return EXIT_OK
 
@@ -116,21 +119,26 @@ def _add_spread(sub: argparse._SubParsersAction) -> None:
     p._negative_number_matcher = re.compile(r"^-\d+$|^-\d*\.\d+$|^-\d*\.?\d*(?:[eE][-+]?\d+)?[a-z]*,")
     p.add_argument("model", help="model file written by `driftwise fit`")
     p.add_argument("--release", action="append", default=[], metavar="X,Y[,Z]",
-                   help="a release point: metres in the model's local frame (units allowed, e.g. 1.2km,-300m), or "
+                   help="a release point: metres in the model's local frame (a bare number is metres; units "
+                   "allowed, e.g. 1.2km,-300m), or "
                    "LON,LAT degrees for a model fitted on lon/lat tracks; repeat for more releases")
     p.add_argument("--releases", metavar="FILE", help="CSV of releases: columns x,y[,z] (metres) or lon,lat "
                    "(degrees), optional start_time (seconds or ISO-8601), name, sd_m (release uncertainty, metres)")
-    p.add_argument("--horizon", default="2d", help="forecast length (default 2d)")
-    p.add_argument("--every", default="1h", help="output interval (default 1h)")
+    p.add_argument("--start", metavar="TIME", help="release time of the --release points: ISO-8601 or seconds on the "
+                   "model's time axis (default: its last observation when the tracks had absolute times, else 0)")
+    p.add_argument("--horizon", default="2d", help="forecast length with its unit (s, min, h, d; default 2d)")
+    p.add_argument("--every", default="1h", help="output interval with its unit (default 1h)")
     p.add_argument("--method", choices=list(METHODS), default=DEFAULT_METHOD,
                    help="; ".join(f"{name}: {spec.help}" for name, spec in METHODS.items())
                    + f" (default {DEFAULT_METHOD})")
     p.add_argument("--particles", type=int, default=DEFAULT_PARTICLES,
                    help=f"ensemble particles (default {DEFAULT_PARTICLES})")
-    p.add_argument("--step", default=None, help="integration step (default 10min for moments, 1min for the ensemble)")
-    p.add_argument("--diffusivity", default=None, help="eddy diffusivity K, e.g. 5m2/s (default: the model's)")
+    p.add_argument("--step", default=None,
+                   help="integration step with its unit (default 10min for moments, 1min for the ensemble)")
+    p.add_argument("--diffusivity", default=None,
+                   help="eddy diffusivity K, e.g. 5m2/s (bare number: m²/s; default: the model's)")
     p.add_argument("--decorrelation-time", default=None,
-                   help="velocity decorrelation time tau, e.g. 6h (default: the model's)")
+                   help="velocity decorrelation time tau with its unit, e.g. 6h (default: the model's)")
     p.add_argument("--seed", type=int, default=0, help="random seed of the ensemble (default 0)")
     p.add_argument("--polygon", metavar="FILE", help="area of interest: GeoJSON Polygon (lon/lat) or CSV of "
                    "vertices (x,y metres or lon,lat degrees)")
@@ -164,9 +172,9 @@ def _parse_release(text: str, frame, dim: int):
         raise InputError(f"--release {text!r}: give {shape} separated by commas")
     if len(parts) != dim:
         raise InputError(f"--release {text!r}: the model is {dim}-D, so give {shape}")
-    z = [parse_length_m(parts[2], what=f"--release {text!r}")] if dim == 3 else []
+    z = [parse_length_m(parts[2], what=f"--release {text!r}", bare_unit="m")] if dim == 3 else []
     if not lonlat:
-        return [parse_length_m(part, what=f"--release {text!r}") for part in parts[:2]] + z
+        return [parse_length_m(part, what=f"--release {text!r}", bare_unit="m") for part in parts[:2]] + z
     try:
         lon, lat = float(parts[0]), float(parts[1])
     except ValueError:
@@ -176,9 +184,9 @@ def _parse_release(text: str, frame, dim: int):
     return list(frame.from_lonlat([lon], [lat])[0]) + z
 
 
-def _spread_releases(args: argparse.Namespace, frame, dim: int):
+def _spread_releases(args: argparse.Namespace, frame, dim: int, start_s: float = 0.0):
 
-    releases = [Release(_parse_release(text, frame, dim)) for text in args.release]
+    releases = [Release(_parse_release(text, frame, dim), start_time_s=start_s) for text in args.release]
     if args.releases:
         releases += list(read_releases(args.releases, frame=frame, dim=dim))
     if not releases:
@@ -215,7 +223,7 @@ def _run_spread(args: argparse.Namespace) -> int:
         raise InputError("--out .geojson: GeoJSON (RFC 7946) holds lon/lat only, but this model was fitted in a local "
                          "metric frame; write .json, .csv or .nc instead")
     times = _output_times_s(args)
-    releases = _spread_releases(args, model.frame, model.dim)
+    releases = _spread_releases(args, model.frame, model.dim, release_time_s(model.data_summary, args.start))
     forecast = spread_from_field(model, releases, times, **_spread_options(args, model.frame))
     written = [str(write_spread(forecast, out)) for out in args.out]
     if args.json:
@@ -260,9 +268,11 @@ def _add_fit(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--inducing", type=int, default=None, metavar="M",
                    help="number of inducing points (default: min(256, observations/32), at least 16)")
     p.add_argument("--seed", type=int, default=0, metavar="S", help="random seed (default 0)")
-    p.add_argument("--position-error", default="10m", help="standard deviation of one fix per axis (default 10m)")
-    p.add_argument("--max-speed", default="5m/s", help="drop fixes implying a faster speed (default 5m/s)")
-    p.add_argument("--max-gap", default=None, help="split a track at gaps longer than this (e.g. 6h; default: never)")
+    p.add_argument("--position-error", default="10m",
+                   help="standard deviation of one fix per axis, with its unit (m, km, cm, mm; default 10m)")
+    p.add_argument("--max-speed", default="5m/s", help="drop fixes implying a faster speed (bare: m/s; default 5m/s)")
+    p.add_argument("--max-gap", default=None,
+                   help="split a track at gaps longer than this duration, with its unit (e.g. 6h; default: never)")
     p.add_argument("--resume", action="store_true", help="continue from the checkpoint MODEL.ckpt.npz if present")
     p.add_argument("--likelihood", default="auto", choices=list(LIKELIHOODS),
                    help="velocities: finite-difference velocities between fixes; transitions: then refit through the "
@@ -283,13 +293,15 @@ def _checkpoint_path(out: str):
 
 
 def _run_fit(args: argparse.Namespace) -> int:
-
     position_error = parse_length_m(args.position_error, what="--position-error")
     if args.inducing is not None and args.inducing < 1:
         raise InputError(f"--inducing must be a positive integer, got {args.inducing}")
     if args.seed < 0:
         raise InputError(f"--seed must be a non-negative integer, got {args.seed}")
     tracks = read_tracks_from_cli(args)
+    shortfall = fit_shortfall(tracks, calibrate=args.calibrate)
+    if shortfall:
+        raise TrackError(tracks.source, shortfall)
     checkpoint = _checkpoint_path(args.out)
     try:
         field, choice = fit_by_likelihood(tracks, args.kernel, likelihood=args.likelihood, inducing=args.inducing,
@@ -381,14 +393,15 @@ def _add_score(sub: argparse._SubParsersAction) -> None:
         "Gaussian log score, next to persistence and no-motion baselines.", epilog=CAUTION)
     p.add_argument("model", help="model file written by `driftwise fit`")
     p.add_argument("holdout", help="tracks file NOT used in the fit (CSV, CSV.GZ, Parquet or CF-trajectory NetCDF)")
-    p.add_argument("--horizons", default="6h,12h,24h", help="comma-separated forecast horizons (default 6h,12h,24h)")
+    p.add_argument("--horizons", default="6h,12h,24h",
+                   help="comma-separated forecast horizons, each with its unit (default 6h,12h,24h)")
     p.add_argument("--method", choices=[name for name, spec in METHODS.items() if not spec.ensemble],
                    default=DEFAULT_METHOD, help=f"moment method of the forecasts (default {DEFAULT_METHOD})")
     p.add_argument("--fit-tracks", default=None, metavar="TRACKS",
                    help="the tracks the model was fitted on: gives the baselines an error variance, so their coverage "
                    "and log score are defined (otherwise shown as —)")
     p.add_argument("--max-starts", type=int, default=2000, help="at most this many forecast starts (default 2000)")
-    p.add_argument("--max-speed", default="5m/s", help="drop fixes implying a faster speed (default 5m/s)")
+    p.add_argument("--max-speed", default="5m/s", help="drop fixes implying a faster speed (bare: m/s; default 5m/s)")
     p.add_argument("--out", default=None, metavar="TABLE.csv", help="write the table as CSV")
     p.add_argument("--figures", default=None, metavar="DIR", help="write skill.png (skill and coverage vs horizon)")
     _add_json_flag(p)
@@ -453,9 +466,11 @@ def _add_check(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--seed", type=int, default=0, metavar="S", help="random seed of the split and fits (default 0)")
     p.add_argument("--inducing", type=int, default=64, metavar="M", help="inducing points per family fit (default 64)")
     p.add_argument("--steps", type=int, default=300, metavar="N", help="optimiser steps per family fit (default 300)")
-    p.add_argument("--position-error", default="10m", help="standard deviation of one fix per axis (default 10m)")
-    p.add_argument("--max-speed", default="5m/s", help="drop fixes implying a faster speed (default 5m/s)")
-    p.add_argument("--max-gap", default=None, help="split a track at gaps longer than this (e.g. 6h; default: never)")
+    p.add_argument("--position-error", default="10m",
+                   help="standard deviation of one fix per axis, with its unit (m, km, cm, mm; default 10m)")
+    p.add_argument("--max-speed", default="5m/s", help="drop fixes implying a faster speed (bare: m/s; default 5m/s)")
+    p.add_argument("--max-gap", default=None,
+                   help="split a track at gaps longer than this duration, with its unit (e.g. 6h; default: never)")
     p.add_argument("--figures", default=None, metavar="DIR", help="write divergence and vorticity maps (PNG) here")
     _add_quiet_flag(p)
     _add_json_flag(p)
@@ -519,7 +534,8 @@ def _add_map(sub: argparse._SubParsersAction) -> None:
         "grid node (.csv).", epilog=CAUTION)
     p.add_argument("model", help="model file written by `driftwise fit`")
     p.add_argument("--out", required=True, metavar="FIELD.nc", help="output file, .nc (NetCDF) or .csv")
-    p.add_argument("--spacing", default=None, help="grid spacing, e.g. 500m (default: about 80 cells across the extent)")
+    p.add_argument("--spacing", default=None,
+                   help="grid spacing with its unit, e.g. 500m (default: about 80 cells across the extent)")
     _add_json_flag(p)
     p.set_defaults(run=_run_map)
 
@@ -552,7 +568,8 @@ def build_parser() -> argparse.ArgumentParser:
         prog="driftwise",
         description="Flow fields with uncertainty from particle trajectories; spread forecasts; "
         "physical-constraint checks; forecast skill. Units are SI (m, s, m/s, m²/s); "
-        "options accept units such as 10m, 6h, 2d.",
+        "options accept units such as 10m, 6h, 2d. A length or duration needs its unit (48 could be seconds or "
+        "hours) unless the option's help says what a bare number means.",
         epilog=CAUTION,
     )
     parser.add_argument("--version", action="version", version=f"driftwise {__version__}")

@@ -66,7 +66,10 @@ from .scenarios import (
     HOUR_S,
     SHELLFISH_BED,
     SHELLFISH_BED_M,
+    area_curves,
+    check_figure_options,
     forecast_scenarios,
+    gaussian_checks,
     outfall_share,
     outfall_table,
     plume_snapshot,
@@ -266,7 +269,7 @@ def step_fit(job: Job) -> str:
 
         n_obs = data.get("n_observations")
         job.add_figure(plot_elbo(np.arange(1, len(history) + 1), np.asarray(history, float), n_observations=n_obs,
-                                 final_elbo=info.get("elbo")),
+                                 final_elbo=info.get("elbo"), converged=info.get("converged")),
                        "elbo.png", f"The evidence lower bound while fitting ({info.get('elbo_history_kind', '')}).",
                        "fit")
     return (f"helmholtz, M = {job.summary['fit']['n_inducing']}, K = {field.diffusivity_m2_s:.3g} m²/s, "
@@ -429,8 +432,9 @@ def step_spread(job: Job) -> str:
             path = write_spread(forecast, job.out / f"spread_{name}{suffix}")
             job.add_file(path, f"{name} forecast: means, covariances, ellipses, P(inside the shellfish bed)")
     share = outfall_share(plume.probability, times, starts)
-    job.state.update(spill=spill, plume=plume, bed=bed, share=share, times=times, starts=starts)
     job.summary["spread"] = [spill_table(spill, s), outfall_table(plume, share, times, starts, s)]
+    checks = gaussian_checks(field, spill, plume, job.summary["spread"])
+    job.state.update(spill=spill, plume=plume, bed=bed, share=share, times=times, starts=starts, checks=checks)
     _spread_figures(job)
     arrival = spill.first_arrival_s[0]
     return (f"spill P(bed) max {spill.probability[0].max():.2f}, first ≥ {s.threshold:g} "
@@ -448,21 +452,21 @@ def _spread_figures(job: Job) -> None:
                                "covariance_m2": f.covs[r]}
     horizon_h = spill.times_s[-1] / HOUR_S
     spill_times = [t * HOUR_S for t in (6, 12, 24, 48) if t <= horizon_h]
+    extra = check_figure_options(job.state["checks"], spill, plume)
     job.add_figure(plot_release_spread([rel(spill, 0, "fuel spill, mean path")], ellipse_times_s=spill_times,
                                        frame=frame, field=background, area_m=bed, area_label=SHELLFISH_BED,
-                                       places=places, title="Fuel spill"),
+                                       places=places, title="Fuel spill", **extra["spill"]),
                    "spread_spill.png", "Fuel spill: mean path with 50 % (shaded) and 95 % (dashed) ellipses; "
                    "grey arrows are the fitted mean flow.", "spread")
     snaps = [plume_snapshot(plume, clock, job.state["starts"]) for clock in snapshot_clocks(plume.times_s)]
     job.add_figure(plot_plume(snaps, frame=frame, field=background, area_m=bed, area_label=SHELLFISH_BED,
-                              places=places, title="Outfall plume (hourly parcels as one mixture)"),
+                              places=places, title="Outfall plume (hourly parcels as one mixture)", **extra["outfall"]),
                    "spread_outfall.png", "Outfall plume at three times after the discharge started: the regions "
                    "holding 50 % (shaded) and 95 % (line) of the discharged water, from the mixture of the hourly "
                    "parcels' Gaussians.", "spread")
-    curves = [{"label": "fuel spill: P(inside)", "times_s": spill.times_s, "probability": spill.probability[0]},
-              {"label": "outfall: expected share inside", "times_s": job.state["times"], "probability": job.state["share"]}]
+    curves = area_curves(spill, job.state["times"], job.state["share"])
     job.add_figure(plot_area_probability(curves, area_label="the shellfish bed", threshold=job.settings.threshold,
-                                         time_label="time since the release / since the outfall started (h)"),
+                                         title=f"Reaching the {SHELLFISH_BED}", **extra["area"]),
                    "area_probability.png", f"Probability of reaching the {SHELLFISH_BED} against time; "
                    "the star marks the first time the threshold is reached.", "spread")
 
@@ -526,7 +530,7 @@ def run_demo(out_dir: str | Path = "driftwise-demo", *, quiet: bool = False, set
     start = time.perf_counter()
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        bar = _bar(len(STEPS), quiet)
+        bar = progress_bar(len(STEPS), quiet)
         for name, section, fn in STEPS:
             bar.set_description(f"driftwise demo: {name}")
             ok = job.run(name, section, fn)
@@ -550,7 +554,8 @@ def _prepare_out(out: Path, figures: Path) -> None:
             raise InputError(f"{folder}: cannot create the output folder ({err.strerror})") from None
 
 
-def _bar(total: int, quiet: bool) -> Any:
+def progress_bar(total: int, quiet: bool) -> Any:
+    """The demo's step bar on stderr (tqdm), shown only on a terminal and without ``--quiet``."""
     disable = quiet or not (hasattr(sys.stderr, "isatty") and sys.stderr.isatty())
     return tqdm(total=total, disable=disable, unit="step", file=sys.stderr, leave=False, dynamic_ncols=True)
 

@@ -20,6 +20,8 @@ from typing import Any
 import numpy as np
 
 from ..data.frame import Frame
+from ..data.utctime import default_start_time_s
+from ..dynamics.adequacy import spread_adequacy
 from ..dynamics.spread import Release, spread_from_field
 from .bay import DemoScenario
 
@@ -63,8 +65,9 @@ def forecast_scenarios(field: Any, settings: Any) -> tuple[Any, Any, np.ndarray,
     harbour, outfall = sites_in_frame(field.frame, [HARBOUR_MOUTH_M, OUTFALL_M])
     times = s.every_s * np.arange(int(round(s.horizon_s / s.every_s)) + 1)
     starts = HOUR_S * np.arange(s.outfall_hours)
-    releases = [Release(harbour, cov0_m2=s.spill_sd_m**2 * np.eye(2), name="fuel spill")]
-    releases += [Release(outfall, start_time_s=t0, cov0_m2=OUTFALL_SD_M**2 * np.eye(2),
+    base = default_start_time_s(getattr(field, "data_summary", None))   # the data's end on an absolute axis
+    releases = [Release(harbour, start_time_s=base, cov0_m2=s.spill_sd_m**2 * np.eye(2), name="fuel spill")]
+    releases += [Release(outfall, start_time_s=base + t0, cov0_m2=OUTFALL_SD_M**2 * np.eye(2),
                          name=f"outfall +{t0 / HOUR_S:g} h") for t0 in starts]
     both = spread_from_field(field, releases, times, polygon_m=sites_in_frame(field.frame, SHELLFISH_BED_M),
                              threshold=s.threshold)
@@ -109,6 +112,7 @@ def plume_snapshot(plume: Any, clock_s: float, starts_s: np.ndarray) -> dict:
     idx = [(r, int(np.argmin(np.abs(times - (clock_s - t0))))) for r, t0 in enumerate(starts_s) if t0 <= clock_s + 1e-9]
     rows, ks = zip(*idx)
     return {"label": f"{clock_s / HOUR_S:g} h after the start ({len(rows)} parcels)",
+            "time_label": f"{clock_s / HOUR_S:g} h",
             "means_m": plume.means[list(rows), list(ks), :2], "covariances_m2": plume.covs[list(rows), list(ks), :2, :2]}
 
 
@@ -165,3 +169,44 @@ def outfall_table(plume: Any, share: np.ndarray, times: np.ndarray, starts: np.n
             "rows": rows, "formats": ["hours", None, "probability", "probability"],
             "notes": ["The share is the mean, over the parcels released so far, of each parcel's probability of "
                       "being inside the bed: the mixture of the parcels' Gaussians."]}
+
+
+def gaussian_checks(field: Any, spill: Any, plume: Any, tables: list[dict], *, particles: int = 1000) -> dict:
+    """Is one Gaussian a fair summary?  The spill and the oldest outfall parcel against a small ensemble at the
+    last output time (:func:`driftwise.dynamics.adequacy.spread_adequacy`): {"spill": …, "outfall": …}.
+
+    Each verdict goes into its report table (``tables``: the spill's, the outfall's): a poor summary as an
+    alert, a fair one as a note, and the numbers under ``gaussian_check``.
+    """
+    checks = {"spill": spread_adequacy(field, spill, 0, particles=particles),
+              "outfall": spread_adequacy(field, plume, 0, particles=particles)}
+    for table, (name, note) in zip(tables, gaussian_check_notes(checks).items()):
+        table.setdefault("alerts" if checks[name].poor else "notes", []).append(note)
+        table["gaussian_check"] = checks[name].to_dict()
+    return checks
+
+
+def gaussian_check_notes(checks: dict) -> dict:
+    """Report text per scenario: the check's sentence, naming which release was checked."""
+    return {"spill": checks["spill"].sentence("the spill"),
+            "outfall": checks["outfall"].sentence("the oldest outfall parcel")}
+
+
+def check_figure_options(checks: dict, spill: Any, plume: Any) -> dict:
+    """Keyword arguments of the spread figures: the release (discharge start) time as ISO-8601 UTC when the
+    model knows its time origin, the checks' boxed notes, and the spill's check particles."""
+    notes, check = gaussian_check_notes(checks), checks["spill"]
+    spill_start, plume_start = ((f.start_times_utc or [None])[0] for f in (spill, plume))
+    return {"spill": {"note": notes["spill"], "particles_m": check.samples_m, "release_time": spill_start,
+                      "particles_label": f"{check.particles} simulated particles at {check.time_s / HOUR_S:g} h "
+                                         "(ensemble check)"},
+            "outfall": {"note": notes["outfall"], "release_time": plume_start},
+            "area": {"release_time": spill_start if spill_start == plume_start else None}}
+
+
+def area_curves(spill: Any, times_s: np.ndarray, share: np.ndarray) -> list[dict]:
+    """The two curves of the area figure, each with its own quantity and clock (so never on one axis)."""
+    return [{"label": "fuel spill", "times_s": spill.times_s, "probability": spill.probability[0],
+             "xlabel": "time since the spill (h)", "ylabel": "probability inside the bed (–)"},
+            {"label": "outfall", "times_s": times_s, "probability": share,
+             "xlabel": "time since the outfall started (h)", "ylabel": "expected share of the water inside (–)"}]

@@ -28,6 +28,13 @@ import numpy as np
 
 from ..errors import InputError
 
+# The fewest velocity observations a fit accepts.  A track of m fixes gives m − 1 observations.
+# Counting argument (necessary, not sufficient): three observations in 2-D carry six velocity
+# components, as many numbers as the default Helmholtz fit learns hyperparameters (two velocity
+# scales, two length scales, K and σ₀); with fewer numbers than hyperparameters the data cannot
+# determine them all.
+MIN_FIT_OBSERVATIONS = 3
+
 
 @dataclass(frozen=True, eq=False)
 class Observations:

@@ -2,15 +2,14 @@
 
 Everything here is about bytes and formats, not about tracks: path checks,
 gzip decompression with a size cap, recognising content that is not CSV,
-the delimiter, chunked CSV reading, Parquet, and NetCDF files that follow the
-CF discrete-sampling-geometry conventions for trajectories (CF Conventions
-1.8+, appendix H.4: contiguous ragged arrays and the orthogonal/incomplete
-multidimensional forms).  :mod:`driftwise.data.tracks` turns the tables into Tracks.
+the delimiter, chunked CSV reading and Parquet (CF trajectory NetCDF files are
+read by :mod:`driftwise.data.trackcf`).  :mod:`driftwise.data.tracks` turns the tables into Tracks.
 """
 
 from __future__ import annotations
 
 import codecs
+import csv
 import gzip
 import io
 import os
@@ -20,13 +19,14 @@ from contextlib import contextmanager
 from pathlib import Path
 from typing import BinaryIO, Iterator
 
-import numpy as np
 import pandas as pd
 
 from ..errors import InputError
 
 SNIFF_BYTES = 64 * 1024
 CSV_CHUNK_ROWS = 200_000
+MAX_COLUMNS = 10_000  # a header with more columns is refused from its first bytes (a tracks table has a handful)
+MAX_HEADER_BYTES = 4 * 2**20  # the header line is read at most this far; 10,000 names fit with room to spare
 MAX_DECOMPRESSED_BYTES = 8 * 2**30  # a .csv.gz that inflates past this is refused (decompression bomb)
 PARQUET_SUFFIXES = (".parquet", ".pq")
 NETCDF_SUFFIXES = (".nc", ".nc4", ".netcdf", ".cdf")
@@ -36,16 +36,21 @@ class TrackError(InputError):
     """A tracks file the user must fix: which file, which row and column, and what is wrong.
 
     ``row`` counts as a spreadsheet shows the table: the header is row 1 and the
-    first data record is row 2 (for Parquet, NetCDF and DataFrames too).
+    first data record is row 2 (for Parquet and DataFrames too).  ``where``
+    replaces the row where rows mean nothing to the user (a NetCDF file's
+    "trajectory index 2, observation index 5").
     """
 
-    def __init__(self, file: str, problem: str, *, row: int | None = None, column: str | None = None):
-        self.file, self.problem, self.row, self.column = str(file), problem, row, column
+    def __init__(self, file: str, problem: str, *, row: int | None = None, column: str | None = None,
+                 where: str | None = None):
+        self.file, self.problem, self.row, self.column, self.where = str(file), problem, row, column, where
         super().__init__(str(self))
 
     def __str__(self) -> str:
         where = self.file
-        if self.row is not None:
+        if self.where is not None:
+            where += f", {self.where}"
+        elif self.row is not None:
             where += f", row {self.row}"
         if self.column is not None:
             where += f", column {self.column!r}"
@@ -148,6 +153,10 @@ def sniff_text(head: bytes, file: str) -> str:
         if head.startswith(magics):
             raise TrackError(file, f"this is not CSV text: it looks like {looks_like}")
     if b"\x00" in head:
+        if not _looks_utf16(head):
+            stray = _stray_nul(head, file)
+            if stray is not None:
+                raise stray
         raise TrackError(file, "this is not CSV text: it looks like "
                          + ("UTF-16 text; save it as UTF-8" if _looks_utf16(head) else "binary data"))
     text = _decode_head(head, file)
@@ -164,6 +173,38 @@ def sniff_text(head: bytes, file: str) -> str:
         raise TrackError(file, f"contains the control character {ord(control.group()):#04x}; it looks like binary "
                          "data, not CSV text", row=row)
     return _delimiter(body.split("\n", 1)[0])
+
+
+_NUL_PROBLEM = ("contains a NUL byte (0x00) in this line; CSV text never holds one (a damaged or partly binary "
+                "file?): remove it or export the table again")
+
+
+def _stray_nul(head: bytes, file: str) -> TrackError | None:
+    """A TrackError naming the line (and column) of the first NUL byte when the rest of ``head`` is plain
+    UTF-8 text (a NUL in one field of a normal CSV); None when the content looks binary."""
+    try:
+        text = codecs.getincrementaldecoder("utf-8")().decode(head.replace(b"\x00", b""), final=False)
+    except UnicodeDecodeError:
+        return None
+    if re.search(r"[\x01-\x08\x0b\x0c\x0e-\x1f\x7f]", text):
+        return None
+    at = head.index(b"\x00")
+    line = head.count(b"\n", 0, at) + 1
+    return TrackError(file, _NUL_PROBLEM, row=line, column=_column_at(head, at, line))
+
+
+def _column_at(head: bytes, at: int, line: int) -> str | None:
+    """The header name of the field holding byte ``at`` of ``head`` (on ``line`` > 1), if it can be told cheaply."""
+    header_end = head.find(b"\n")
+    if line == 1 or header_end < 0:
+        return None
+    header = head[:header_end].rstrip(b"\r").lstrip(b"\xef\xbb\xbf").decode("utf-8", "replace")
+    delimiter = _delimiter(header)
+    names = next(csv.reader([header], delimiter=delimiter), [])
+    start = head.rfind(b"\n", 0, at) + 1
+    prefix = re.sub(r'"[^"]*"', "", head[start:at].replace(b"\x00", b"").decode("utf-8", "replace"))
+    field = prefix.count(delimiter)
+    return names[field] if field < len(names) else None
 
 
 def _looks_utf16(head: bytes) -> bool:
@@ -218,12 +259,85 @@ def read_csv_chunks(path: Path, file: str) -> tuple[str, Iterator[pd.DataFrame]]
     """
     with open_bytes(path) as stream:
         head = stream.read(SNIFF_BYTES)
-    delimiter = sniff_text(head, file)
+        delimiter = sniff_text(head, file)
+        header = _header_line(head, stream, file, delimiter)
+    check_header_names(_header_names(header, delimiter, file), file)
     return delimiter, _chunks(path, file, delimiter)
 
 
+def _header_line(head: bytes, stream: BinaryIO, file: str, delimiter: str) -> bytes:
+    """The first line's bytes (no line end), read at most MAX_HEADER_BYTES far.
+
+    Refuses, before any name is built, a header with more than MAX_COLUMNS
+    columns (delimiters outside quotes + 1) or one longer than the byte cap.
+    """
+    line, end = bytearray(head), head.find(b"\n")
+    while end < 0 and len(line) <= MAX_HEADER_BYTES:
+        block = stream.read(SNIFF_BYTES)
+        if not block:
+            break
+        end = block.find(b"\n")
+        end = end + len(line) if end >= 0 else -1
+        line += block
+    whole = 0 <= end <= MAX_HEADER_BYTES or (end < 0 and len(line) <= MAX_HEADER_BYTES)
+    header = bytes(line[: min(end if end >= 0 else len(line), MAX_HEADER_BYTES)]).rstrip(b"\r")
+    outside = re.sub(rb'"[^"]*"', b"", header) if b'"' in header else header
+    columns = outside.count(delimiter.encode()) + 1
+    if columns > MAX_COLUMNS:
+        count = f"{columns:,} columns" if whole else \
+            f"at least {columns:,} columns in its first {MAX_HEADER_BYTES / 2**20:.3g} MiB"
+        raise TrackError(file, f"the header (line 1) has {count}, more than the {MAX_COLUMNS:,} driftwise reads; "
+                         "a tracks table needs an id, a time and two or three positions", row=1)
+    if not whole:
+        raise TrackError(file, f"the header (line 1) is longer than {MAX_HEADER_BYTES / 2**20:.3g} MiB; is this a "
+                         "tracks table?", row=1)
+    return header
+
+
+def _header_names(header: bytes, delimiter: str, file: str) -> list[str]:
+    """The column names of the header line, as the CSV reader will see them (a UTF-8 BOM dropped)."""
+    try:
+        text = header.decode("utf-8").lstrip("\ufeff")
+    except UnicodeDecodeError as err:
+        raise _not_utf8(file, header, err.start) from None
+    return next(csv.reader([text], delimiter=delimiter, quotechar='"'), [])
+
+
+def check_header_names(names, file: str) -> None:
+    """Refuse a column name given twice (empty names, as after a trailing delimiter, are allowed)."""
+    seen: dict[str, int] = {}
+    for position, name in enumerate(names, start=1):
+        name = str(name)
+        if name.strip() == "":
+            continue
+        if name in seen:
+            raise TrackError(file, f"the column name {name!r} appears twice in the header (columns {seen[name]} "
+                             f"and {position}); rename or remove one", row=1, column=name)
+        seen[name] = position
+
+
+class _NulGuard(io.RawIOBase):
+    """Read-only stream that refuses a NUL byte, naming its line (bytes.find and count: memchr speed)."""
+
+    def __init__(self, inner: BinaryIO, *, file: str):
+        self._inner, self._file, self._lines = inner, file, 0
+
+    def readable(self) -> bool:
+        return True
+
+    def readinto(self, buffer) -> int:
+        data = self._inner.read(len(buffer))
+        at = data.find(b"\x00")
+        if at >= 0:
+            raise TrackError(self._file, _NUL_PROBLEM, row=self._lines + data.count(b"\n", 0, at) + 1)
+        self._lines += data.count(b"\n")
+        buffer[: len(data)] = data
+        return len(data)
+
+
 def _chunks(path: Path, file: str, delimiter: str) -> Iterator[pd.DataFrame]:
-    with open_bytes(path) as stream:
+    with open_bytes(path) as raw:
+        stream = io.BufferedReader(_NulGuard(raw, file=file), buffer_size=1 << 20)
         try:
             yield from pd.read_csv(stream, sep=delimiter, dtype=str, keep_default_na=False, na_values=[],
                                    skip_blank_lines=False, index_col=False, encoding="utf-8-sig", quotechar='"',
@@ -250,96 +364,3 @@ def read_parquet_frame(path: Path, file: str) -> pd.DataFrame:
         return pq.read_table(path).to_pandas()
     except (pa.ArrowException, OSError, ValueError) as err:
         raise TrackError(file, f"is not a readable Parquet file ({err})") from None
-
-
-# ---------------------------------------------------------------- NetCDF (CF trajectories)
-def read_netcdf_frame(path: Path, file: str) -> pd.DataFrame:
-    """A CF trajectory file (featureType = trajectory) as one row per fix.
-
-    Handles the contiguous ragged array (a count variable whose
-    ``sample_dimension`` attribute names the obs dimension) and the
-    orthogonal/incomplete multidimensional forms (variables on (trajectory, obs),
-    time on (obs) or (trajectory, obs); padding rows are dropped).
-    """
-    import xarray as xr
-
-    try:
-        ds = xr.open_dataset(path, decode_timedelta=False)
-    except Exception as err:  # xarray raises many types for unreadable files
-        raise TrackError(file, f"is not a readable NetCDF file ({type(err).__name__}: {err})") from None
-    with ds:
-        feature = str(ds.attrs.get("featureType", "trajectory"))
-        if feature.lower() != "trajectory":
-            raise TrackError(file, f"has featureType {feature!r}; driftwise reads CF trajectory files")
-        ragged = [name for name, v in ds.variables.items() if "sample_dimension" in v.attrs]
-        table = _ragged_table(ds, ragged[0], file) if ragged else _multidim_table(ds, file)
-    return table
-
-
-def _cf_variables(ds) -> dict[str, str]:
-    """Map roles (track_id, time, lon, lat, x, y, z) to variable names by CF attributes, then by name."""
-    roles: dict[str, str] = {}
-    by_standard = {"time": "time", "longitude": "lon", "latitude": "lat", "projection_x_coordinate": "x",
-                   "projection_y_coordinate": "y", "altitude": "z", "height": "z"}
-    for name, var in ds.variables.items():
-        if var.attrs.get("cf_role") == "trajectory_id":
-            roles.setdefault("track_id", name)
-        role = by_standard.get(str(var.attrs.get("standard_name", "")))
-        if role:
-            roles.setdefault(role, name)
-    for role, names in {"time": ("time",), "lon": ("lon", "longitude"), "lat": ("lat", "latitude"),
-                        "x": ("x", "x_m"), "y": ("y", "y_m"), "z": ("z", "z_m")}.items():
-        for name in names:
-            if role not in roles and name in ds.variables:
-                roles[role] = name
-    return roles
-
-
-def _trajectory_ids(ds, roles: dict[str, str], n: int) -> np.ndarray:
-    if "track_id" not in roles:
-        return np.array([str(i) for i in range(n)], dtype=object)
-    values = ds[roles["track_id"]].values
-    if values.dtype.kind == "S":
-        values = np.char.decode(values, "utf-8")
-    if values.ndim == 2 and values.dtype.kind in "SU":  # a char array (trajectory, strlen)
-        values = np.array(["".join(map(str, row)) for row in values])
-    return np.array([str(v).strip() for v in values], dtype=object)
-
-
-def _ragged_table(ds, count_name: str, file: str) -> pd.DataFrame:
-    roles, count_var = _cf_variables(ds), ds[count_name]
-    obs_dim = count_var.attrs["sample_dimension"]
-    counts = np.asarray(count_var.values, dtype=np.int64)
-    if counts.sum() != ds.sizes.get(obs_dim, -1):
-        raise TrackError(file, f"the row sizes in {count_name!r} add up to {counts.sum()} fixes but dimension "
-                         f"{obs_dim!r} has {ds.sizes.get(obs_dim)}")
-    columns = {"track_id": np.repeat(_trajectory_ids(ds, roles, counts.size), counts)}
-    for name, var in ds.variables.items():
-        if var.dims == (obs_dim,) and name != count_name:
-            columns[_role_name(roles, name)] = var.values
-    return pd.DataFrame(columns)
-
-
-def _multidim_table(ds, file: str) -> pd.DataFrame:
-    roles = _cf_variables(ds)
-    position = [roles[r] for r in ("lon", "lat", "x", "y") if r in roles]
-    if not position or ds[position[0]].ndim != 2:
-        raise TrackError(file, "is not a CF trajectory file driftwise understands: no count variable with "
-                         "'sample_dimension' and no two-dimensional (trajectory, obs) positions")
-    shape = ds[position[0]].shape
-    traj_dim, obs_dim = ds[position[0]].dims
-    columns = {"track_id": np.repeat(_trajectory_ids(ds, roles, shape[0]), shape[1])}
-    for name, var in ds.variables.items():
-        if var.dims == (traj_dim, obs_dim) or (name == roles.get("time") and var.dims == (obs_dim,)):
-            columns[_role_name(roles, name)] = np.broadcast_to(var.values, shape).reshape(-1)
-    table = pd.DataFrame(columns)
-    padding = table[[_role_name(roles, p) for p in position]].isna().all(axis=1)
-    return table.loc[~padding.to_numpy()].reset_index(drop=True)
-
-
-def _role_name(roles: dict[str, str], name: str) -> str:
-    """The table column for a NetCDF variable: its role if it has one, else its own name."""
-    for role, var_name in roles.items():
-        if var_name == name and role != "track_id":
-            return role
-    return name

@@ -17,7 +17,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from .trackfile import TrackError
+from .trackfile import TrackError, check_header_names
 from .trackqc import QCAction, plural
 
 ROLE_NAMES = {
@@ -51,9 +51,13 @@ def _key(name: object) -> str:
 
 
 def detect_layout(columns, file: str) -> Layout:
-    """Find the role columns by (case-insensitive) name; a missing role is a TrackError naming what was sought."""
+    """Find the role columns by (case-insensitive) name; a missing role is a TrackError naming what was sought.
+
+    A name given twice, or two spellings of one role name (``x`` and ``X``), is a TrackError naming both.
+    """
     found: dict[str, str] = {}
-    keyed = {_key(c): c for c in reversed(list(columns))}
+    check_header_names(columns, file)
+    keyed = _role_keys(columns, file)
     for role, names in ROLE_NAMES.items():
         match = next((keyed[n] for n in names if n in keyed), None)
         if match is not None:
@@ -72,6 +76,22 @@ def detect_layout(columns, file: str) -> Layout:
     used = {found["track_id"], found["time"], *coords, found.get("z")}
     extras = tuple(str(c) for c in columns if c not in used)
     return Layout(found["track_id"], found["time"], coords, found.get("z"), has_lonlat, extras, notices)
+
+
+_ROLE_KEYS = frozenset(name for names in ROLE_NAMES.values() for name in names)
+
+
+def _role_keys(columns, file: str) -> dict[str, str]:
+    """Normalised name → column; refuses two columns that normalise to the same role name."""
+    keyed: dict[str, tuple[int, str]] = {}
+    for position, column in enumerate(columns, start=1):
+        key = _key(column)
+        if key in keyed and key in _ROLE_KEYS:
+            first, name = keyed[key]
+            raise TrackError(file, f"the columns {name!r} (column {first}) and {str(column)!r} (column {position}) "
+                             f"both name the {key!r} column; rename or remove one", row=1, column=str(column))
+        keyed.setdefault(key, (position, column))
+    return {key: column for key, (_, column) in keyed.items()}
 
 
 def _missing(file: str, role: str, columns) -> TrackError:

@@ -42,8 +42,11 @@ class Cleaned:
 
 def clean(codes: np.ndarray, labels: list[str], time_s: np.ndarray, position_m: np.ndarray, rows: np.ndarray, *,
           file: str, time_column: str, show_time: Callable[[float], str], max_speed_m_s: float | None,
-          max_gap_s: float | None) -> Cleaned:
-    """Sort by (track id, time), refuse duplicated times, drop impossible fixes, split at gaps, drop lone fixes."""
+          max_gap_s: float | None, show_row: Callable[[int], str] | None = None) -> Cleaned:
+    """Sort by (track id, time), refuse duplicated times, drop impossible fixes, split at gaps, drop lone fixes.
+
+    ``show_row`` names a table row in messages where rows mean nothing to the user (NetCDF observations).
+    """
     rank = np.empty(len(labels), dtype=np.int64)
     rank[sorted(range(len(labels)), key=labels.__getitem__)] = np.arange(len(labels))
     labels = sorted(labels)
@@ -51,7 +54,8 @@ def clean(codes: np.ndarray, labels: list[str], time_s: np.ndarray, position_m: 
     actions = [a for a in (_unsorted(track, time_s, file),) if a]
     index = np.lexsort((time_s, track))
     track, time_s = track[index], time_s[index]
-    _refuse_duplicates(track, time_s, rows, index, labels, file=file, column=time_column, show_time=show_time)
+    _refuse_duplicates(track, time_s, rows, index, labels, file=file, column=time_column, show_time=show_time,
+                       show_row=show_row)
     if max_speed_m_s is not None and math.isfinite(max_speed_m_s):
         keep, action = _speed_filter(track, time_s, position_m, index, max_speed_m_s, file)
         index, track, time_s = index[keep], track[keep], time_s[keep]
@@ -83,13 +87,14 @@ def _unsorted(track: np.ndarray, time_s: np.ndarray, file: str) -> QCAction | No
                     f"({plural(count, 'fix')} out of order)", "warning")
 
 
-def _refuse_duplicates(track, time_s, rows, index, labels, *, file, column, show_time) -> None:
+def _refuse_duplicates(track, time_s, rows, index, labels, *, file, column, show_time, show_row) -> None:
     dup = _same_track(track) & (time_s[1:] == time_s[:-1])
     if dup.any():
         i = int(np.argmax(dup))
         first, second = sorted((int(rows[index[i]]), int(rows[index[i + 1]])))
+        both = f"rows {first} and {second}" if show_row is None else f"{show_row(first)} and {show_row(second)}"
         raise TrackError(file, f"track {labels[track[i]]!r} has two fixes at the same time {show_time(time_s[i])} "
-                         f"(rows {first} and {second}); remove one", row=second, column=column)
+                         f"({both}); remove one", row=second, column=column)
 
 
 def _speed_filter(track, time_s, position_m, index, max_speed_m_s, file) -> tuple[np.ndarray, QCAction | None]:
@@ -134,6 +139,24 @@ def _keep_reachable(time_s: np.ndarray, position_m: np.ndarray, max_speed_m_s: f
         if math.dist(points[i], points[anchor]) <= max_speed_m_s * (times[i] - times[anchor]):
             keep[i], anchor = True, i
     return keep
+
+
+def tiny_metre_span(position_m: np.ndarray, time_s: np.ndarray, file: str) -> QCAction | None:
+    """A warning when positions read as metres span less than 1 m over more than a minute.
+
+    The horizontal span is the diagonal of the bounding box of ``position_m[:, :2]`` (n, d) in metres; over
+    a time span (max − min of ``time_s``) above 60 s, anything that moves stays put to within a metre
+    only if the numbers are not metres at all, typically degrees in unlabelled columns.
+    """
+    if position_m.shape[0] < 2:
+        return None
+    span_m = float(np.hypot(*np.ptp(position_m[:, :2], axis=0)))
+    duration_s = float(np.ptp(time_s))
+    if not (span_m < 1.0 and duration_s > 60.0):
+        return None
+    return QCAction("tiny_metre_span", int(position_m.shape[0]), f"{file}: the positions, read as metres, span "
+                    f"only {span_m:.3g} m over {duration_s:.6g} s; if they are longitude/latitude in degrees, name "
+                    "the columns lon/lat (NetCDF: units degrees_east/degrees_north)", "warning")
 
 
 def _split_gaps(track, time_s, labels, max_gap_s, file):

@@ -14,6 +14,12 @@ position   x, y[, z] (or x_m, y_m, z_m) in metres, or lon, lat[, z]
            in degrees (projected, see :mod:`driftwise.data.frame`)
 =========  ===========================================================
 
+In a CF trajectory NetCDF file the positions are found by their attributes
+(standard_name, CF degree units, axis), whatever their names, and fill values
+are dropped with a count (see :mod:`driftwise.data.trackcf`).  Positions read as
+metres that span less than a metre over more than a minute get a warning
+(degrees in columns named x/y, most likely).
+
 Other columns are kept in ``Tracks.extra``.  Problems the user must fix raise
 :class:`TrackError` (file, row, column, problem); quality-control steps that
 change the data (sorting, dropping impossible or lone fixes, splitting at gaps)
@@ -34,14 +40,15 @@ import pandas as pd
 from ..errors import InputError
 from ..units import parse_duration_s, parse_speed_m_s
 from .frame import Frame, frame_for
-from .observations import Observations, velocity_observations
-from .trackfile import TrackError, check_path, file_format, read_csv_chunks, read_netcdf_frame, read_parquet_frame
+from .observations import MIN_FIT_OBSERVATIONS, Observations, velocity_observations
+from .trackcf import read_netcdf_frame
+from .trackfile import TrackError, check_path, file_format, read_csv_chunks, read_parquet_frame
 from .trackparse import TableParser, detect_layout
-from .trackqc import QCAction, clean
+from .trackqc import QCAction, clean, plural, tiny_metre_span
 
 __all__ = ["Tracks", "Frame", "QCAction", "TrackError", "TrackWarning", "TrackNotice", "Observations",
            "read_tracks", "tracks_from_frame", "velocity_observations", "inspect_summary", "format_summary",
-           "read_tracks_from_cli"]
+           "read_tracks_from_cli", "fit_shortfall"]
 
 
 class TrackWarning(UserWarning):
@@ -140,7 +147,10 @@ def read_tracks(path, *, max_speed_m_s: float | None = 5.0, max_gap_s: float | N
     if kind == "parquet":
         return _from_whole(read_parquet_frame(p, file), file, max_speed_m_s, max_gap_s)
     if kind == "netcdf":
-        return _from_whole(read_netcdf_frame(p, file), file, max_speed_m_s, max_gap_s, naive_is_utc=True)
+        cf = read_netcdf_frame(p, file)
+        with cf.naming_observations():
+            return _from_whole(cf.frame, file, max_speed_m_s, max_gap_s, naive_is_utc=True, notices=cf.notices,
+                               show_row=cf.place)
     delimiter, chunks = read_csv_chunks(p, file)
     parser, first_row, notices = None, 2, []
     for chunk in chunks:
@@ -164,15 +174,17 @@ def tracks_from_frame(df: pd.DataFrame, *, source: str = "<dataframe>", max_spee
     return _from_whole(df, source, max_speed_m_s, max_gap_s)
 
 
-def _from_whole(df, file, max_speed_m_s, max_gap_s, *, naive_is_utc: bool = False) -> Tracks:
+def _from_whole(df, file, max_speed_m_s, max_gap_s, *, naive_is_utc: bool = False,
+                notices: tuple[QCAction, ...] = (), show_row=None) -> Tracks:
     if df.shape[1] == 0 and df.shape[0] == 0:
         raise TrackError(file, "the table is empty")
     parser = TableParser(file, detect_layout(df.columns, file), naive_is_utc=naive_is_utc)
     parser.add(df.reset_index(drop=True), 2)
-    return _build(parser, file, max_speed_m_s, max_gap_s, ())
+    return _build(parser, file, max_speed_m_s, max_gap_s, notices, show_row=show_row)
 
 
-def _build(parser: TableParser, file, max_speed_m_s, max_gap_s, notices: tuple[QCAction, ...]) -> Tracks:
+def _build(parser: TableParser, file, max_speed_m_s, max_gap_s, notices: tuple[QCAction, ...], *,
+           show_row=None) -> Tracks:
     table = parser.finish()
     if table.lonlat:
         frame, xy = frame_for(table.coords[:, 0], table.coords[:, 1], source=file)
@@ -182,8 +194,10 @@ def _build(parser: TableParser, file, max_speed_m_s, max_gap_s, notices: tuple[Q
     table.coords = table.z = xy = None  # release the raw coordinates before sorting (large files)
     show = (lambda t: _iso(t)) if table.time_is_absolute else (lambda t: f"{t:g} s")
     cleaned = clean(table.codes, table.labels, table.time_s, position, table.rows, file=file,
-                    time_column=parser.layout.time, show_time=show, max_speed_m_s=max_speed_m_s, max_gap_s=max_gap_s)
-    actions = notices + table.notices + cleaned.actions
+                    time_column=parser.layout.time, show_time=show, max_speed_m_s=max_speed_m_s, max_gap_s=max_gap_s,
+                    show_row=show_row)
+    tiny = None if table.lonlat else tiny_metre_span(position[cleaned.index], table.time_s[cleaned.index], file)
+    actions = notices + table.notices + cleaned.actions + ((tiny,) if tiny else ())
     for action in actions:
         warnings.warn(action.message, TrackWarning if action.level == "warning" else TrackNotice, stacklevel=3)
     idx = cleaned.index
@@ -203,6 +217,25 @@ def read_tracks_from_cli(args) -> Tracks:
         raise InputError(f"--max-gap must be positive, not {args.max_gap!r}")
     return read_tracks(args.tracks, max_speed_m_s=max_speed, max_gap_s=max_gap)
 
+
+def fit_shortfall(tracks: Tracks, *, calibrate: bool = False) -> str | None:
+    """Why a fit cannot start from ``tracks``, or None when it can.
+
+    A fit needs MIN_FIT_OBSERVATIONS velocity observations (see
+    :mod:`driftwise.data.observations`); a track of m fixes gives m − 1.  The
+    cross-validated calibration (``calibrate``) holds whole tracks out, two
+    folds, so it needs at least two tracks.
+    """
+    n_obs = tracks.n_fixes - tracks.n_tracks
+    have = (f"{plural(tracks.n_fixes, 'fix')} in {plural(tracks.n_tracks, 'track')} give "
+            f"{plural(n_obs, 'velocity observation')} (a track of m fixes gives m - 1)")
+    if n_obs < MIN_FIT_OBSERVATIONS:
+        return (f"{have}; fit needs at least {MIN_FIT_OBSERVATIONS} to learn its hyperparameters, e.g. one track "
+                f"of {MIN_FIT_OBSERVATIONS + 1} fixes or {MIN_FIT_OBSERVATIONS} tracks of 2")
+    if calibrate and tracks.n_tracks < 2:
+        return (f"{have}; the calibration of K and tau holds whole tracks out (2 folds), so it needs at least 2 "
+                "tracks: give more tracks, or --no-calibrate")
+    return None
 
 
 # ---------------------------------------------------------------- inspect
@@ -226,6 +259,9 @@ def inspect_summary(tracks: Tracks) -> dict[str, Any]:
         "qc": [{"name": a.name, "count": a.count, "level": a.level, "message": a.message} for a in tracks.qc],
         "extra_columns": sorted(tracks.extra),
     }
+    shortfall = fit_shortfall(tracks)
+    if shortfall:
+        summary["fit_warning"] = f"{tracks.source}: {shortfall}"
     if tracks.time_is_absolute:
         summary["time"].update(start_iso=_iso(start), end_iso=_iso(end))
     if tracks.frame.is_geographic:
@@ -255,6 +291,8 @@ def format_summary(summary: dict[str, Any]) -> str:
         lines.append("  extra        " + ", ".join(summary["extra_columns"]))
     lines.append("  QC           " + ("none needed" if not summary["qc"] else f"{len(summary['qc'])} actions"))
     lines += [f"    - [{a['level']}] {a['message']}" for a in summary["qc"]]
+    if summary.get("fit_warning"):
+        lines.append(f"  fit          warning: {summary['fit_warning']}")
     return "\n".join(lines)
 
 

@@ -22,7 +22,7 @@ false discovery rate", J. R. Stat. Soc. B 57:289–300) at level α; a cell is s
 rejected.  Under the global null every rejection is false, so FDR = family-wise error ≤ α for
 independent or positively regression-dependent p-values (Benjamini & Yekutieli 2001, Ann.
 Stat. 29:1165); two-sided tests of correlated cells are not covered exactly, which is why the
-rule is calibrated on synthetic flows (tests/test_verdict.py).
+rule is calibrated on synthetic flows (tests/diagnostics/test_verdict.py).
 
 The Helmholtz split is here too; the gridded products (``driftwise map``) are in :mod:`driftwise.diagnostics.grid`.
 """

@@ -16,7 +16,7 @@
    (:mod:`driftwise.diagnostics.physics`); ``divergence_free`` is False exactly when some cell is
    significant, and likewise ``curl_free``.  The evidence margin and the variance
    fraction are reported as further reasons but do not change the boolean: only the
-   area test is calibrated (tests/test_verdict.py).
+   area test is calibrated (tests/diagnostics/test_verdict.py).
 
 Plain-words scale for log-score differences Δ (nats): Kass & Raftery (1995, "Bayes
 factors", JASA 90:773, §3.2) grade 2Δ as 0–2 "not worth more than a bare mention",
@@ -46,7 +46,7 @@ __all__ = ["FAMILIES", "CheckMaps", "check", "constraint_tests", "evidence_readi
 FAMILIES = tuple(KERNEL_FAMILIES)
 CAN_DIVERGE = tuple(name for name, spec in KERNEL_FAMILIES.items() if spec.can_diverge)
 CAN_ROTATE = tuple(name for name, spec in KERNEL_FAMILIES.items() if spec.can_rotate)
-SPACING_PER_LENGTH = 1.0 / 3.0   # verdict grid step in kernel length scales (calibrated in tests/test_verdict.py)
+SPACING_PER_LENGTH = 1.0 / 3.0   # verdict grid step in kernel length scales (calibrated in tests/diagnostics/test_verdict.py)
 
 
 # ---------------------------------------------------------------- held-out tracks
@@ -162,7 +162,9 @@ def _fit_families(train, *, families, fit_options: dict, holdout_obs) -> tuple[d
         field = fit(train, family, **fit_options)
         summary = fit_summary(field)
         held = heldout_log_likelihood(field, holdout_obs)
-        table[family] = {"elbo": float(summary.get("elbo", math.nan)),
+        n_obs = int(field.data_summary.get("n_observations") or 0)
+        table[family] = {"elbo": float(summary.get("elbo", math.nan)), "n_observations": n_obs,
+                         "elbo_per_observation": float(summary.get("elbo_per_observation", math.nan)),
                          "heldout_log_likelihood": held,
                          "heldout_log_likelihood_per_observation": held / max(holdout_obs.n, 1),
                          "hyperparameters": field.hyperparameters}
@@ -192,7 +194,7 @@ def verdict_spacing_m(field, position_m, *, min_cells: int = 50, max_cells: int 
 
     Finer grids add tests (the BH cut-off grows only like √(2 ln m)) but sample the peaks of
     |z| better; ℓ/3 gave clearly more power than ℓ/2 or ℓ at no cost in false alarms in the
-    calibration of tests/test_verdict.py."""
+    calibration of tests/diagnostics/test_verdict.py."""
     from scipy.spatial import ConvexHull, QhullError
 
     lengths = [v for k, v in field.hyperparameters.items() if k.endswith("length_scale_m")]

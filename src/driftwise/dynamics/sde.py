@@ -83,7 +83,7 @@ class PointPosterior:
     into one matrix product — the dominant work of a spread forecast.  B keeps
     the conditioning of L_Z^{−T} (U is orthogonal); values equal
     `FlowField.mean_at` / `cov_between(x, x)` to ~1e-12 relative
-    (tests/test_sde.py).
+    (tests/dynamics/test_sde.py).
 
     kernel: the field's matrix kernel; inducing_m: Z (M, d) m; alpha: (M·d,)
     s/m; projection: B (M·d, M·d) s/m; weights: λ (M·d,).

@@ -53,6 +53,7 @@ import pandas as pd
 from scipy.special import owens_t
 from scipy.stats import chi2
 
+from ..data.utctime import iso_utc
 from ..errors import InputError
 from .ensemble import EulerMaruyama, simulate
 from .methods import make_method, method_name
@@ -61,8 +62,6 @@ from .sde import sde_from_field
 
 LEVELS = (0.5, 0.9, 0.95)
 ROUNDING_FLOOR = 1e-14   # polygon probabilities below this are rounding residue (see module doc)
-
-
 
 
 class SupportWarning(UserWarning):
@@ -143,7 +142,8 @@ class Spread:
     ``semi_axes_m (R, T, len(levels), 2)`` (major, minor) and ``orientation_deg (R, T)``
     (major axis, counter-clockwise from local +x/east) of the horizontal ellipses;
     with a polygon: ``polygon_m (k, 2)``, ``probability (R, T)``, and for a threshold
-    ``first_arrival_s`` (per release, seconds since its start, or None).
+    ``first_arrival_s`` (per release, seconds since its start, or None);
+    ``time_origin_utc`` the ISO-8601 UTC instant of ``start_time_s = 0`` when the model knows it.
     """
 
     method: str
@@ -160,11 +160,28 @@ class Spread:
     probability: np.ndarray | None = None
     threshold: float | None = None
     first_arrival_s: tuple[float | None, ...] | None = None
+    time_origin_utc: str | None = None
 
     @property
     def dim(self) -> int:
         """Spatial dimension d."""
         return int(self.means.shape[-1])
+
+    @property
+    def bearing_deg(self) -> np.ndarray:
+        """Compass bearing (R, T) of the ellipses' major axes in [0, 180): see :func:`bearing_deg`."""
+        return bearing_deg(self.orientation_deg, self.means, self.frame)
+
+    @property
+    def start_times_utc(self) -> list[str] | None:
+        """ISO-8601 UTC start of each release, or None when the model has no time origin."""
+        return None if self.time_origin_utc is None else iso_utc(self.time_origin_utc, [r.start_time_s for r in self.releases])
+
+    def times_utc(self, r: int) -> list[str] | None:
+        """ISO-8601 UTC of each output time (T,) of release ``r``, or None without a time origin."""
+        if self.time_origin_utc is None:
+            return None
+        return iso_utc(self.time_origin_utc, self.releases[r].start_time_s + np.asarray(self.times_s))
 
     def ellipses(self, level: float = 0.95, n: int = 72) -> np.ndarray:
         """Ellipse polygons (R, T, n, 2) in metres, counter-clockwise, open rings."""
@@ -173,8 +190,10 @@ class Spread:
 
 def make_spread(method: str, releases: tuple[Release, ...], times_s: np.ndarray, means: np.ndarray,
                 covs: np.ndarray, *, frame: Any = None, polygon_m: Any = None,
-                threshold: float | None = None) -> Spread:
-    """Assemble a :class:`Spread` from propagated moments and compute its products."""
+                threshold: float | None = None, time_origin_utc: str | None = None) -> Spread:
+    """Assemble a :class:`Spread` from propagated moments and compute its products.
+
+    ``time_origin_utc``: ISO-8601 UTC of the model's time zero (tracks with absolute times), else None."""
     means, covs = np.asarray(means, np.float64), np.asarray(covs, np.float64)
     covs = 0.5 * (covs + np.swapaxes(covs, -1, -2))
     axes = np.stack([semi_axes(covs, level) for level in LEVELS], axis=-2)
@@ -182,7 +201,8 @@ def make_spread(method: str, releases: tuple[Release, ...], times_s: np.ndarray,
     if frame is not None and getattr(frame, "kind", "metric") == "lonlat":
         lon, lat = frame.to_lonlat(means[..., :2].reshape(-1, 2))
         lonlat = np.stack([np.asarray(lon), np.asarray(lat)], -1).reshape(means.shape[:-1] + (2,))
-    out = Spread(method, releases, times_s, means, covs, frame, lonlat, LEVELS, axes, orientation_deg(covs))
+    out = Spread(method, releases, times_s, means, covs, frame, lonlat, LEVELS, axes, orientation_deg(covs),
+                 time_origin_utc=time_origin_utc)
     return out if polygon_m is None else with_polygon(out, polygon_m, threshold)
 
 
@@ -214,7 +234,8 @@ def _moments(sde: Any, releases: tuple[Release, ...], times: np.ndarray, method:
 
 
 def spread_releases(sde: Any, releases: Any, times_s: Any, *, method: Any = None, integrator: Any = None,
-           key: Any = None, frame: Any = None, polygon_m: Any = None, threshold: float | None = None) -> Spread:
+           key: Any = None, frame: Any = None, polygon_m: Any = None, threshold: float | None = None,
+           time_origin_utc: str | None = None) -> Spread:
     """Forecast releases through an Itô SDE (driftwise.dynamics.sde.SDE).
 
     ``releases``: Release(s) or start positions (d,)/(R, d) in metres; ``times_s (T,)`` seconds since each
@@ -222,7 +243,8 @@ def spread_releases(sde: Any, releases: Any, times_s: Any, *, method: Any = None
     also Unscented, GaussHermite, Linearize), integrated by ``integrator`` (default RK4(step_s=600)) in one
     batched ``moments.propagate_batch`` call, or ``ensemble.EulerMaruyama(...)`` (then ``key`` is required).
     ``frame`` (tracks.Frame) adds ``mean_lonlat``; ``polygon_m (k, 2)`` adds probabilities and, with a
-    ``threshold``, first arrivals.  The field is steady, so start times only label the outputs.
+    ``threshold``, first arrivals; ``time_origin_utc`` (ISO-8601 UTC of the time axis' zero) adds absolute
+    times to the outputs.  The field is steady, so start times only label the outputs.
     """
 
     method = SphericalCubature() if method is None else method
@@ -231,7 +253,8 @@ def spread_releases(sde: Any, releases: Any, times_s: Any, *, method: Any = None
     means, covs = _moments(sde, rels, times, method, integrator, key)
     if not (np.all(np.isfinite(means)) and np.all(np.isfinite(covs))):
         raise InputError(f"the {name} forecast produced non-finite numbers (the integration diverged); use a smaller step")
-    return make_spread(name, rels, times, means, covs, frame=frame, polygon_m=polygon_m, threshold=threshold)
+    return make_spread(name, rels, times, means, covs, frame=frame, polygon_m=polygon_m, threshold=threshold,
+                       time_origin_utc=time_origin_utc)
 
 
 
@@ -245,7 +268,9 @@ def spread_from_field(field: Any, releases: Any, times_s: Any, *, method: str = 
 
     ``method`` is a name in :data:`driftwise.dynamics.methods.METHODS` ("cubature" default); ``step_s`` the RK4 step (default 600 s) or the
     Euler–Maruyama step (default 60 s) for ``"ensemble"`` with ``particles``; K and τ default to the
-    model's own; ``seed`` seeds the ensemble.  Other arguments as in :func:`spread_releases`.
+    model's own; ``seed`` seeds the ensemble; the model's ``time_origin_utc`` (data summary; absent in
+    model files from before it was recorded) gives the outputs absolute times.  Other arguments as in
+    :func:`spread_releases`.
     """
 
     obj, integrator = make_method(method, particles=particles, step_s=step_s, gauss_hermite_order=gauss_hermite_order)
@@ -259,7 +284,8 @@ def spread_from_field(field: Any, releases: Any, times_s: Any, *, method: str = 
                       "its forecast rests on the prior, not on observed flow", SupportWarning, stacklevel=2)
     sde = sde_from_field(field, diffusivity_m2_s=diffusivity_m2_s, decorrelation_time_s=decorrelation_time_s)
     return spread_releases(sde, rels, times_s, method=obj, integrator=integrator, key=jax.random.key(int(seed)),
-                  frame=getattr(field, "frame", None), polygon_m=polygon_m, threshold=threshold)
+                           frame=getattr(field, "frame", None), polygon_m=polygon_m, threshold=threshold,
+                           time_origin_utc=(getattr(field, "data_summary", None) or {}).get("time_origin_utc"))
 
 
 # ------------------------------------------------------------------ ellipses
@@ -294,6 +320,24 @@ def semi_axes(cov: Any, level: float = 0.95) -> np.ndarray:
 def orientation_deg(cov: Any) -> np.ndarray:
     """Angle (...) in degrees of the major axis, counter-clockwise from +x (east), in (−90, 90]."""
     return np.degrees(_eig2(np.asarray(cov, np.float64)[..., :2, :2])[2])
+
+
+def bearing_deg(angle_ccw_deg: Any, mean: Any, frame: Any = None) -> np.ndarray:
+    """Compass bearing in [0, 180) degrees clockwise from north (an axis: θ ≡ θ + 180°) of axes at
+    ``angle_ccw_deg (...)`` from local +x through points ``mean (..., d)`` m.  Metric frame: 90° − angle
+    (from local +y); lon/lat frame: geodesic azimuth (pyproj.Geod.inv, WGS 84) to the point 1 m along the
+    axis, which removes the AEQD grid convergence off the frame centre (true north)."""
+    angle = np.asarray(angle_ccw_deg, np.float64)
+    if frame is None or getattr(frame, "kind", "metric") != "lonlat":
+        return np.mod(90.0 - angle, 180.0)
+    from pyproj import Geod
+
+    p = np.asarray(mean, np.float64)[..., :2].reshape(-1, 2)
+    step = np.stack([np.cos(np.radians(angle)), np.sin(np.radians(angle))], -1).reshape(-1, 2)
+    lon0, lat0 = frame.to_lonlat(p)
+    lon1, lat1 = frame.to_lonlat(p + step)
+    azimuth, _, _ = Geod(ellps="WGS84").inv(np.asarray(lon0), np.asarray(lat0), np.asarray(lon1), np.asarray(lat1))
+    return np.mod(np.asarray(azimuth), 180.0).reshape(angle.shape)
 
 
 def ellipse(mean: Any, cov: Any, level: float = 0.95, n: int = 72) -> np.ndarray:

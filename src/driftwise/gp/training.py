@@ -53,7 +53,8 @@ from scipy.cluster.vq import kmeans2
 from tqdm.auto import tqdm
 
 from ..data.frame import Frame
-from ..data.observations import velocity_observations
+from ..data.observations import MIN_FIT_OBSERVATIONS, velocity_observations
+from ..data.utctime import UNIX_EPOCH_UTC
 from ..errors import InputError
 from . import field as fld
 from .kernels import BASES, DEFAULT_FAMILY, KERNEL_FAMILIES
@@ -82,6 +83,7 @@ class _Data:
     n_tracks: int
     frame: Any
     fingerprint: str
+    time_is_absolute: bool = False   # Tracks read from ISO-8601 times: seconds since the Unix epoch
 
     @property
     def n(self) -> int:
@@ -101,12 +103,12 @@ def _prepare(data, position_error_m: float) -> _Data:
         raise InputError(f"fit needs driftwise Tracks or Observations, got {type(data).__name__}")
     batch = fld.batch_from_observations(obs)
     _check_finite(batch)
-    if batch.position_m.shape[0] < 3:
-        raise InputError(f"fit needs at least 3 velocity observations (consecutive fixes of a track), "
-                         f"got {batch.position_m.shape[0]}")
+    if batch.position_m.shape[0] < MIN_FIT_OBSERVATIONS:
+        raise InputError(f"fit needs at least {MIN_FIT_OBSERVATIONS} velocity observations (consecutive fixes "
+                         f"of a track), got {batch.position_m.shape[0]}")
 
     frame = getattr(data, "frame", None) or getattr(obs, "frame", None) or Frame()
-    return _Data(obs, batch, n_tracks, frame, _fingerprint(batch))
+    return _Data(obs, batch, n_tracks, frame, _fingerprint(batch), bool(getattr(data, "time_is_absolute", False)))
 
 
 def _check_finite(batch: fld.ObservationBatch) -> None:
@@ -398,6 +400,8 @@ def _data_summary(data: _Data) -> dict[str, Any]:
     if hasattr(obs, "time_s"):
         time = np.asarray(obs.time_s, dtype=np.float64)
         summary["time_span_s"] = [float(time.min()), float(time.max())]
+    if data.time_is_absolute:
+        summary["time_origin_utc"] = UNIX_EPOCH_UTC
     if hasattr(obs, "dt_s"):
         summary["median_dt_s"] = float(np.median(np.asarray(obs.dt_s)))
     return summary

@@ -17,9 +17,26 @@ import numpy as np
 from matplotlib.figure import Figure
 
 WIDTH_IN = 7.2
+LINESTYLES = ("-", "--", "-.", ":")
+MARKERS = ("o", "s", "^", "D", "v", "P")
+GREYS = ("0.0", "0.35", "0.55", "0.2")
 
-__all__ = ["WIDTH_IN", "MapCoords", "new_figure", "map_height_in", "hatch_unsupported", "draw_tracks",
-           "unique_in_order", "draw_places", "draw_polygon", "light_arrows", "grid_corners", "nice_round"]
+__all__ = [
+    "WIDTH_IN",
+    "MapCoords",
+    "draw_places",
+    "draw_polygon",
+    "draw_tracks",
+    "figure_note",
+    "grid_corners",
+    "hatch_unsupported",
+    "light_arrows",
+    "map_height_in",
+    "new_figure",
+    "nice_round",
+    "release_text",
+    "unique_in_order",
+]
 
 
 @dataclass(frozen=True)
@@ -172,9 +189,37 @@ def grid_corners(field: Mapping[str, np.ndarray]) -> np.ndarray:
     return np.array([[x.min(), y.min()], [x.max(), y.max()]])
 
 
-def light_arrows(ax: Any, coords: MapCoords, field: Mapping[str, np.ndarray]) -> None:
+def light_arrows(ax: Any, coords: MapCoords, field: Mapping[str, np.ndarray]) -> float:
+    """The fitted mean flow ``{"x_m", "y_m", "mean_m_s" (ny, nx, 2)}`` as light grey arrows, with a speed key.
+
+    The key (lower left, inside the map) is an arrow of a 1-2-5 speed near the 90th percentile
+    of the drawn speeds; returns that speed (m/s).
+    """
     X, Y = coords.grid(field["x_m"], field["y_m"])
     mean = np.asarray(field["mean_m_s"], float)
     step = max(1, int(round(max(mean.shape[:2]) / 18)))
-    ax.quiver(X[::step, ::step], Y[::step, ::step], mean[::step, ::step, 0], mean[::step, ::step, 1],
-              color="0.65", angles="uv", pivot="middle", width=0.003, zorder=0)
+    u, v = mean[::step, ::step, 0], mean[::step, ::step, 1]
+    q = ax.quiver(X[::step, ::step], Y[::step, ::step], u, v, color="0.55", angles="uv", pivot="middle",
+                  width=0.003, zorder=0)
+    ref = nice_round(float(np.nanpercentile(np.hypot(u, v), 90)))
+    ax.quiverkey(q, 0.05, 0.035, ref, f"{ref:g} m/s mean flow", labelpos="E", coordinates="axes", color="0.3",
+                 fontproperties={"size": "x-small"})
+    return ref
+
+
+def release_text(release_time: str | None, what: str = "release") -> str:
+    """``"release: 2024-06-05T06:00Z"``, or a plain statement that no clock time was given."""
+    if release_time:
+        return f"{what}: {release_time}"
+    return f"{what} time not given: times count from the {what}"
+
+
+def figure_note(fig: Figure, text: str, *, width: int = 110) -> Any:
+    """A boxed note under the axes (a title-only legend, so constrained layout makes room for it)."""
+    import textwrap
+
+    legend = fig.legend(handles=[], title="\n".join(textwrap.wrap(text, width)), loc="outside lower center",
+                        title_fontsize="small", frameon=True, alignment="left")
+    legend.get_frame().set_edgecolor("0.1")
+    legend.get_frame().set_linewidth(1.2)
+    return legend

@@ -69,7 +69,18 @@ figure{margin:1em 0}figure img{max-width:100%;height:auto;border:1px solid #ccc}
 figcaption{font-size:.9em;color:#222;margin-top:.3em}
 .yes{font-weight:bold}.no{font-weight:bold;text-decoration:underline}
 ul.warnings li{font-family:'DejaVu Sans Mono',monospace;font-size:.88em}
-@media print{body{max-width:none}figure{page-break-inside:avoid}}
+.alert{border:2px solid #000;border-left:8px solid #000;background:#fff;padding:.5em .8em;font-weight:bold}
+.table-wrap{overflow-x:auto;max-width:100%}
+@page{size:A4;margin:14mm 12mm}
+@media print{body{max-width:none;margin:0;padding:0;font-size:10pt;line-height:1.3;color:#000}
+h1{font-size:18pt}h2{font-size:14pt;break-after:avoid;page-break-after:avoid;margin-top:1.2em}
+h3{break-after:avoid;page-break-after:avoid}
+figure,.caution,.alert,.missing,pre{break-inside:avoid;page-break-inside:avoid}
+figure img{max-width:100%;max-height:235mm;border:none}
+table{font-size:8.5pt;width:auto;max-width:100%}thead{display:table-header-group}tr{break-inside:avoid}
+.table-wrap{overflow:visible}
+th,.caution{-webkit-print-color-adjust:exact;print-color-adjust:exact}
+ul.warnings li,pre{font-size:8pt}}
 """
 
 
@@ -196,7 +207,7 @@ def grid_table(columns: Sequence[str], rows: Iterable[Sequence[Any]], formats: S
     head = "".join(f"<th>{_e(c)}</th>" for c in columns)
     formats = list(formats) + [None] * (len(columns) - len(formats))
     body = "".join("<tr>" + "".join(_formatted_cell(v, f) for v, f in zip(row, formats)) + "</tr>" for row in rows)
-    return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
+    return f"<div class=\"table-wrap\"><table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table></div>"
 
 
 def _formatted_cell(value: Any, name: str | None) -> str:
@@ -272,7 +283,7 @@ def _verdict_word(value: Any) -> str:
     return '<span class="yes">yes</span>' if value else '<span class="no">no</span>'
 
 
-def _check(check: Mapping[str, Any]) -> str:
+def _check(check: Mapping[str, Any], elbo_note: str = "") -> str:
     parts = []
     verdict = check.get("verdict", {})
     if verdict:
@@ -295,6 +306,7 @@ def _check(check: Mapping[str, Any]) -> str:
         cols = sorted({k for v in families.values() for k, x in v.items() if not isinstance(x, Mapping)})
         parts.append("<h3>Kernel-family evidence</h3>" + grid_table(
             ["family"] + [label_of(c) for c in cols], [[f] + [v.get(c) for c in cols] for f, v in families.items()]))
+        parts.append(elbo_note)
     if check.get("reading"):
         parts.append(f"<p>{_e(check['reading'])}</p>")
     rest = {k: v for k, v in check.items() if k not in ("verdict", "families", "reading", "statistics")}
@@ -312,6 +324,7 @@ def _spread(scenarios: Sequence[Mapping[str, Any]]) -> str:
             parts.append(f"<p>{_e(sc['description'])}</p>")
         if sc.get("method"):
             parts.append(f"<p class=\"meta\">Method: {_e(sc['method'])}</p>")
+        parts += [f'<p class="alert">{_e(a)}</p>' for a in sc.get("alerts", [])]
         if sc.get("columns"):
             parts.append(grid_table(sc["columns"], sc.get("rows", []), sc.get("formats", ())))
         parts += [f"<p>{_e(n)}</p>" for n in sc.get("notes", [])]
@@ -358,6 +371,32 @@ def _warnings(warnings: Sequence[str]) -> str:
     return "<h2>Warnings</h2><ul class=\"warnings\">" + "".join(f"<li>{_e(w)}</li>" for w in warnings) + "</ul>"
 
 
+def elbo_comparison(summary: Mapping[str, Any]) -> str:
+    """Why the check's family ELBOs differ from the fit's: different data.  Both put per observation.
+
+    An ELBO is a lower bound on the log evidence of the data it is computed on (a sum over the
+    observations), so totals on different data sets do not compare; per observation they are on
+    one scale, though the check's families also use their own inducing points and step budget.
+    """
+    fit, families = summary.get("fit") or {}, (summary.get("check") or {}).get("families") or {}
+    n_fit, elbo_fit = fit.get("n_observations"), fit.get("elbo")
+    if not families or not n_fit or elbo_fit is None:
+        return ""
+    counts = {f.get("n_observations") for f in families.values() if f.get("n_observations")}
+    if len(counts) != 1:
+        return ""
+    n_check = counts.pop()
+    per = "; ".join(f"{_e(name)} {fmt(f['elbo'] / n_check)}" for name, f in families.items()
+                    if isinstance(f.get("elbo"), (int, float)))
+    return ("<p><strong>Why these ELBOs differ from the fit's.</strong> The fitted model's ELBO "
+            f"({_e(fmt(elbo_fit))} nats) is a sum over all {_e(fmt(n_fit))} velocity observations of the fit "
+            f"tracks: {_e(fmt(elbo_fit / n_fit))} nats per observation. Each family above was fitted on the "
+            f"check's own training split, {_e(fmt(n_check))} observations (the tracks left after holding some "
+            "out), with the check's own inducing points and step budget, so the totals are sums over different "
+            f"data and do not compare. Per observation: {per} nats. An ELBO only ranks models fitted to the same "
+            "data; across data sets compare the held-out log likelihood per observation.</p>")
+
+
 _RENDER = {"data": _data, "fit": _fit, "check": _check, "spread": _spread, "skill": _skill}
 
 
@@ -367,7 +406,8 @@ def _section(name: str, summary: Mapping[str, Any], base_dir: Path | None) -> st
     if name in missing:
         parts.append(f'<p class="missing">Not produced: {_e(missing[name])}</p>')
     if summary.get(name):
-        parts.append(_RENDER[name](summary[name]))
+        parts.append(_check(summary[name], elbo_comparison(summary)) if name == "check"
+                     else _RENDER[name](summary[name]))
     elif name not in missing:
         return ""
     parts += [_figure_html(f, base_dir) for f in summary.get("figures", []) if f.get("section") == name]

@@ -16,6 +16,7 @@ from typing import Any
 
 import numpy as np
 
+from ..data.utctime import iso_utc
 from ..diagnostics.skill import SCORE_KEYS
 from ..errors import InputError
 from ..files import (
@@ -23,7 +24,8 @@ from ..files import (
     atomic_write_text,
     csv_safe_text,  # a leading = + - @ in a text cell gets a ' (formula injection)
 )
-from ..version import __version__
+from .cfproducts import RESEARCH_CAUTION, crs_attributes, discovery_attributes, spread_dataset
+from .spreadgeojson import spread_geojson
 
 # ---------------------------------------------------------------- spread products (spread.py)
 SPREAD_SUFFIXES = (".json", ".csv", ".nc", ".geojson")
@@ -37,37 +39,51 @@ def _floats(array) -> list:
 
 
 def spread_to_dict(spread) -> dict:
-    """The JSON contract of a Spread: ``method``, ``releases`` (each ``name``, ``start`` (d,) m,
-    ``start_time_s``, ``times_s`` (T,) since the release, ``mean`` (T, d) m, ``covariance`` (T, d, d) m²,
-    ``ellipses`` per level, and ``mean_lonlat``/``start_lonlat`` for a lon/lat model, ``probability_inside``
-    and ``first_arrival_s`` with a polygon)."""
-    lonlat = spread.mean_lonlat is not None
-    releases = []
-    for r, rel in enumerate(spread.releases):
-        entry = {"name": rel.name, "start": _floats(rel.start_m), "start_time_s": rel.start_time_s,
-                 "times_s": _floats(spread.times_s), "mean": _floats(spread.means[r]),
-                 "covariance": _floats(spread.covs[r])}
-        if lonlat:
-            entry["start_lonlat"] = _floats(spread.mean_lonlat[r, 0])
-            entry["mean_lonlat"] = _floats(spread.mean_lonlat[r])
-        entry["ellipses"] = [{"level": level, "semi_major_m": _floats(spread.semi_axes_m[r, :, i, 0]),
-                              "semi_minor_m": _floats(spread.semi_axes_m[r, :, i, 1]),
-                              "orientation_deg": _floats(spread.orientation_deg[r])}
-                             for i, level in enumerate(spread.levels)]
-        if spread.probability is not None:
-            entry["probability_inside"] = _floats(spread.probability[r])
-        if spread.first_arrival_s is not None:
-            entry["first_arrival_s"] = spread.first_arrival_s[r]
-        releases.append(entry)
+    """The JSON contract of a Spread: ``method``, ``time_origin_utc`` (ISO-8601 of the model's time zero, or
+    None), ``releases`` (each ``name``, ``start`` (d,) m, ``start_time_s``, ``times_s`` (T,) since the release,
+    ``mean`` (T, d) m, ``covariance`` (T, d, d) m², ``ellipses`` per level with ``bearing_deg`` (clockwise
+    from north) and ``angle_ccw_from_east_deg``, ``start_time_utc``/``times_utc`` when the time origin is
+    known, ``mean_lonlat``/``start_lonlat`` for a lon/lat model, ``probability_inside`` and
+    ``first_arrival_s`` with a polygon)."""
+    releases = [_release_dict(spread, r) for r in range(len(spread.releases))]
     out = {"method": spread.method, "dimension": spread.dim,
            "frame": spread.frame.to_dict() if spread.frame is not None else None,
+           "time_origin_utc": spread.time_origin_utc,
            "units": {"times_s": "s since the release", "mean": "m (local frame)", "covariance": "m2",
-                     "mean_lonlat": "degrees (lon, lat, WGS84)", "orientation_deg": "degrees counter-clockwise from +x (east)"},
+                     "mean_lonlat": "degrees (lon, lat, WGS84)", "times_utc": "ISO-8601 UTC",
+                     "bearing_deg": "degrees clockwise from north (true north for a lon/lat model, else local +y), "
+                                    "in [0, 180): the major axis has no sense",
+                     "angle_ccw_from_east_deg": "degrees counter-clockwise from local +x (east), in (-90, 90]"},
            "releases": releases}
     if spread.polygon_m is not None:
         out["polygon_m"] = _floats(spread.polygon_m)
         out["threshold"] = spread.threshold
     return out
+
+
+def _release_dict(spread, r: int) -> dict:
+    rel = spread.releases[r]
+    entry = {"name": rel.name, "start": _floats(rel.start_m), "start_time_s": rel.start_time_s,
+             "times_s": _floats(spread.times_s), "mean": _floats(spread.means[r]), "covariance": _floats(spread.covs[r])}
+    if spread.time_origin_utc is not None:
+        entry["start_time_utc"], entry["times_utc"] = spread.start_times_utc[r], spread.times_utc(r)
+    if spread.mean_lonlat is not None:
+        entry["start_lonlat"] = _floats(spread.mean_lonlat[r, 0])
+        entry["mean_lonlat"] = _floats(spread.mean_lonlat[r])
+    bearing, angle = _floats(spread.bearing_deg[r]), _floats(spread.orientation_deg[r])
+    entry["ellipses"] = [{"level": level, "semi_major_m": _floats(spread.semi_axes_m[r, :, i, 0]),
+                          "semi_minor_m": _floats(spread.semi_axes_m[r, :, i, 1]),
+                          "bearing_deg": bearing, "angle_ccw_from_east_deg": angle}
+                         for i, level in enumerate(spread.levels)]
+    if spread.probability is not None:
+        entry["probability_inside"] = _floats(spread.probability[r])
+    if spread.first_arrival_s is not None:
+        arrival = spread.first_arrival_s[r]
+        entry["first_arrival_s"] = arrival
+        if spread.time_origin_utc is not None:
+            entry["first_arrival_utc"] = None if arrival is None else iso_utc(spread.time_origin_utc,
+                                                                              rel.start_time_s + arrival)
+    return entry
 
 
 def write_spread_json(spread, path) -> Path:
@@ -79,116 +95,42 @@ def _spread_rows(spread):
 
     axes_names = "xyz"[: spread.dim]
     pairs = [(i, j) for i in range(spread.dim) for j in range(i, spread.dim)]
-    header = ["release", "start_time_s", "time_s"] + [f"{a}_m" for a in axes_names]
-    header += [f"cov_{axes_names[i]}{axes_names[j]}_m2" for i, j in pairs]
-    header += ["semi_major_50_m", "semi_minor_50_m", "semi_major_95_m", "semi_minor_95_m", "orientation_deg"]
+    absolute = spread.time_origin_utc is not None
+    header = ["release", "start_time_s", "time_s"] + (["start_time_utc", "time_utc"] if absolute else [])
+    header += [f"{a}_m" for a in axes_names] + [f"cov_{axes_names[i]}{axes_names[j]}_m2" for i, j in pairs]
+    header += ["semi_major_50_m", "semi_minor_50_m", "semi_major_95_m", "semi_minor_95_m", "bearing_deg",
+               "angle_ccw_from_east_deg"]
     header += ["lon_deg", "lat_deg"] if spread.mean_lonlat is not None else []
     header += ["probability_inside"] if spread.probability is not None else []
     i50, i95 = spread.levels.index(0.5), spread.levels.index(0.95)
+    bearing = spread.bearing_deg
     yield header
     for r, rel in enumerate(spread.releases):
+        stamps = spread.times_utc(r) if absolute else None
         for t, time_s in enumerate(spread.times_s):
-            row = [csv_safe_text(rel.name), rel.start_time_s, float(time_s)] + list(spread.means[r, t])
-            row += [spread.covs[r, t, i, j] for i, j in pairs]
+            row = [csv_safe_text(rel.name), rel.start_time_s, float(time_s)]
+            row += [spread.start_times_utc[r], stamps[t]] if absolute else []
+            row += list(spread.means[r, t]) + [spread.covs[r, t, i, j] for i, j in pairs]
             row += list(spread.semi_axes_m[r, t, i50]) + list(spread.semi_axes_m[r, t, i95])
-            row += [spread.orientation_deg[r, t]]
+            row += [bearing[r, t], spread.orientation_deg[r, t]]
             row += list(spread.mean_lonlat[r, t]) if spread.mean_lonlat is not None else []
             row += [spread.probability[r, t]] if spread.probability is not None else []
             yield [cell if isinstance(cell, str) else repr(float(cell)) for cell in row]
 
 
 def write_spread_csv(spread, path) -> Path:
-    """One row per release and output time: release, start_time_s, time_s, x_m, y_m[, z_m], the upper
-    covariance entries (m²), semi-axes of the 50 % and 95 % ellipses (m), orientation, lon/lat when known."""
+    """One row per release and output time: release, start_time_s, time_s[, start_time_utc, time_utc (ISO-8601,
+    when the model knows its time origin)], x_m, y_m[, z_m], the upper covariance entries (m²), semi-axes of the
+    50 % and 95 % ellipses (m), bearing_deg (clockwise from north) and angle_ccw_from_east_deg, lon/lat when known."""
     buffer = _io.StringIO()
     csv.writer(buffer, lineterminator="\n").writerows(_spread_rows(spread))
     return atomic_write_text(path, buffer.getvalue())
 
 
-def spread_dataset(spread):
-    """The Spread as an xarray Dataset with CF-1.8 attributes (dims release, time, component, level)."""
-    import xarray as xr
-
-    comp = list("xyz"[: spread.dim])
-    rel_dims, t_dims = ("release",), ("release", "time")
-    data = {
-        "start_time_s": (rel_dims, np.array([r.start_time_s for r in spread.releases]),
-                         {"units": "s", "long_name": "release start time on the model's time axis"}),
-        "start_m": (("release", "component"), np.stack([r.start_m for r in spread.releases]),
-                    {"units": "m", "long_name": "release position in the local frame"}),
-        "mean_m": (t_dims + ("component",), spread.means, {"units": "m", "long_name": "mean position in the local frame"}),
-        "covariance_m2": (t_dims + ("component", "component2"), spread.covs,
-                          {"units": "m2", "long_name": "position covariance"}),
-        "semi_major_m": (t_dims + ("level",), spread.semi_axes_m[..., 0],
-                         {"units": "m", "long_name": "semi-major axis of the horizontal probability ellipse"}),
-        "semi_minor_m": (t_dims + ("level",), spread.semi_axes_m[..., 1],
-                         {"units": "m", "long_name": "semi-minor axis of the horizontal probability ellipse"}),
-        "orientation_deg": (t_dims, spread.orientation_deg,
-                            {"units": "degree", "long_name": "major-axis angle counter-clockwise from local +x (east)"}),
-    }
-    if spread.mean_lonlat is not None:
-        data["lon"] = (t_dims, spread.mean_lonlat[..., 0], {"units": "degrees_east", "standard_name": "longitude",
-                                                            "long_name": "mean longitude"})
-        data["lat"] = (t_dims, spread.mean_lonlat[..., 1], {"units": "degrees_north", "standard_name": "latitude",
-                                                            "long_name": "mean latitude"})
-    if spread.probability is not None:
-        data["probability_inside"] = (t_dims, spread.probability,
-                                      {"units": "1", "long_name": "probability of being inside the polygon"})
-        data["polygon_m"] = (("vertex", "component_xy"), spread.polygon_m, {"units": "m", "long_name": "polygon vertices"})
-    coords = {"release": ("release", np.array([r.name for r in spread.releases], dtype=object),
-                          {"long_name": "release name"}),
-              "time": ("time", np.asarray(spread.times_s), {"units": "s", "long_name": "time since the release"}),
-              "component": ("component", comp), "component2": ("component2", comp),
-              "level": ("level", np.array(spread.levels), {"units": "1", "long_name": "probability level of the ellipse"})}
-    attrs = {"Conventions": "CF-1.8", "title": "driftwise spread forecast", "method": spread.method,
-             "source": "driftwise", "frame": json.dumps(spread.frame.to_dict()) if spread.frame is not None else "",
-             "comment": "Caution: a research forecast; validate locally and defer to the responsible authorities."}
-    return xr.Dataset(data, coords=coords, attrs=attrs)
-
-
 def write_spread_netcdf(spread, path) -> Path:
-    """Write :func:`spread_dataset` as NetCDF-4 (h5netcdf engine), atomically."""
+    """Write :func:`cfproducts.spread_dataset` (a CF trajectory file) as NetCDF-4 (h5netcdf engine), atomically."""
     dataset = spread_dataset(spread)
     return atomic_write(path, lambda tmp: dataset.to_netcdf(tmp, engine="h5netcdf"))
-
-
-def _ccw_ring(lon, lat) -> list:
-    """Closed RFC 7946 exterior ring: counter-clockwise in lon/lat, first point repeated last."""
-    ring = np.stack([lon, lat], -1)
-    x, y = ring[:, 0], ring[:, 1]
-    if np.sum(x * np.roll(y, -1) - np.roll(x, -1) * y) < 0:
-        ring = ring[::-1]
-    ring = np.round(np.concatenate([ring, ring[:1]]), 7)
-    return ring.tolist()
-
-
-def spread_geojson(spread, *, n: int = 72) -> dict:
-    """RFC 7946 FeatureCollection: a Polygon per release, time and level (properties release, time_s,
-    start_time_s, level, semi-axes) and a LineString of each mean path; lon/lat WGS84 only."""
-    if spread.frame is None or getattr(spread.frame, "kind", "metric") != "lonlat":
-        raise InputError("GeoJSON (RFC 7946) holds WGS84 lon/lat only, but this model was fitted in a local "
-                         "metric frame; write .json, .csv or .nc instead")
-    features = []
-    for i, level in enumerate(spread.levels):
-        rings = spread.ellipses(level, n)                                     # (R, T, n, 2) metres
-        lon, lat = spread.frame.to_lonlat(rings.reshape(-1, 2))
-        lon, lat = np.asarray(lon).reshape(rings.shape[:-1]), np.asarray(lat).reshape(rings.shape[:-1])
-        if np.any(np.ptp(lon, axis=-1) > 180.0):
-            raise InputError("GeoJSON: an ellipse crosses the antimeridian, which this writer does not split; "
-                             "write .json, .csv or .nc instead")
-        for r, rel in enumerate(spread.releases):
-            for t, time_s in enumerate(spread.times_s):
-                props = {"release": rel.name, "kind": "ellipse", "time_s": float(time_s), "start_time_s": rel.start_time_s,
-                         "level": level, "semi_major_m": float(spread.semi_axes_m[r, t, i, 0]),
-                         "semi_minor_m": float(spread.semi_axes_m[r, t, i, 1])}
-                features.append({"type": "Feature", "properties": props,
-                                 "geometry": {"type": "Polygon", "coordinates": [_ccw_ring(lon[r, t], lat[r, t])]}})
-    for r, rel in enumerate(spread.releases):
-        path = np.round(spread.mean_lonlat[r], 7).tolist()
-        features.append({"type": "Feature", "properties": {"release": rel.name, "kind": "mean_path",
-                                                           "start_time_s": rel.start_time_s},
-                         "geometry": {"type": "LineString", "coordinates": path}})
-    return {"type": "FeatureCollection", "features": features}
 
 
 def write_spread_geojson(spread, path) -> Path:
@@ -209,9 +151,10 @@ def write_spread(spread, path) -> Path:
 # ---------------------------------------------------------------- gridded field (physics.py, `driftwise map`)
 FIELD_GRID_SUFFIXES = (".nc", ".csv")
 SUPPORT_MEANING = "unsupported supported"
-_GEO_NAMES = {  # CF standard names (CF standard name table, from memory; checked against the table's spelling)
+_GEO_NAMES = {  # CF standard names, checked against the table bundled with compliance-checker (v93); the
+    # table has no divergence of sea-water velocity, so divergence carries a long_name only
     "eastward": "eastward_sea_water_velocity", "northward": "northward_sea_water_velocity",
-    "divergence": "divergence_of_sea_water_velocity", "vorticity": "ocean_relative_vorticity"}
+    "vorticity": "ocean_relative_vorticity"}
 
 
 def _grid_variables(grid) -> list[tuple[str, object, dict]]:
@@ -222,7 +165,7 @@ def _grid_variables(grid) -> list[tuple[str, object, dict]]:
         what = "true-east" if comp == "eastward" else "true-north" if comp == "northward" else f"local-frame {comp}"
         for kind, values in (("", grid.mean_m_s[..., c]), ("_std", grid.std_m_s[..., c])):
             attrs = {"units": "m s-1", "long_name": f"posterior {'standard deviation' if kind else 'mean'} of the "
-                                                     f"{what} velocity component"}
+                                                     f"{what} velocity component", "coverage_content_type": "modelResult"}
             if geo:
                 attrs["standard_name"] = _GEO_NAMES[comp] + (" standard_error" if kind else "")
             out.append((f"{comp}_velocity{kind}_m_s", values, attrs))
@@ -230,58 +173,62 @@ def _grid_variables(grid) -> list[tuple[str, object, dict]]:
                                       ("vorticity", grid.vorticity_s, grid.vorticity_std_s,
                                        "relative vorticity ∂v/∂x − ∂u/∂y")):
         for kind, values in (("", mean), ("_std", std)):
-            attrs = {"units": "s-1", "long_name": f"posterior {'standard deviation' if kind else 'mean'} of the {text}"}
-            if geo:
+            attrs = {"units": "s-1", "long_name": f"posterior {'standard deviation' if kind else 'mean'} of the {text}",
+                     "coverage_content_type": "modelResult"}
+            if geo and quantity in _GEO_NAMES:
                 attrs["standard_name"] = _GEO_NAMES[quantity] + (" standard_error" if kind else "")
             if quantity in grid.reasons:
                 attrs["comment"] = "identically zero: " + grid.reasons[quantity]
             out.append((f"{quantity}{kind}_per_s", values, attrs))
     out.append(("variance_ratio", grid.variance_ratio, {
-        "units": "1", "long_name": "posterior over prior velocity variance, tr(posterior cov)/tr(prior cov)"}))
+        "units": "1", "long_name": "posterior over prior velocity variance, tr(posterior cov)/tr(prior cov)",
+        "coverage_content_type": "qualityInformation"}))
     out.append(("supported", grid.supported.astype("int8"), {
         "long_name": "data support: 1 where the posterior velocity variance is below half the prior variance",
-        "flag_values": np.array([0, 1], dtype="int8"), "flag_meanings": SUPPORT_MEANING}))
+        "flag_values": np.array([0, 1], dtype="int8"), "flag_meanings": SUPPORT_MEANING,
+        "coverage_content_type": "qualityInformation"}))
     return out
 
 
 def field_grid_dataset(grid):
-    """A physics.FieldGrid as an xarray Dataset with CF-1.8 attributes (dims y_m, x_m).
+    """A physics.FieldGrid as an xarray Dataset with CF-1.11 and ACDD-1.3 attributes (dims y_m, x_m).
 
-    Coordinates x_m, y_m (projection_x/y_coordinate, m, increasing); for a lon/lat model also
-    2-D auxiliary lon_deg, lat_deg (named in each variable's ``coordinates`` attribute) and a
-    ``crs`` grid mapping (azimuthal_equidistant on WGS 84; CF-1.8 appendix F, from memory).
+    Coordinates x_m, y_m (projection_x/y_coordinate, m, increasing, no _FillValue); for a lon/lat
+    model also 2-D auxiliary lon_deg, lat_deg (named in each variable's ``coordinates`` attribute)
+    and a ``crs`` grid mapping (azimuthal_equidistant on WGS 84; CF-1.11 appendix F).
     """
     import xarray as xr
 
-
-    dims = ("y_m", "x_m")           # coordinate variables named as their dimensions (CF-1.8 §1.3)
-    coords = {"x_m": ("x_m", np.asarray(grid.x_m, float), {
-                  "standard_name": "projection_x_coordinate", "units": "m", "axis": "X",
-                  "long_name": "x (east) in the model's local metric frame"}),
-              "y_m": ("y_m", np.asarray(grid.y_m, float), {
-                  "standard_name": "projection_y_coordinate", "units": "m", "axis": "Y",
-                  "long_name": "y (north) in the model's local metric frame"})}
+    dims = ("y_m", "x_m")           # coordinate variables named as their dimensions (CF-1.11 §1.3)
+    coords = {axis: (axis, np.asarray(getattr(grid, axis), float), {
+                  "standard_name": f"projection_{axis[0]}_coordinate", "units": "m", "axis": axis[0].upper(),
+                  "long_name": f"{axis[0]} ({'east' if axis[0] == 'x' else 'north'}) in the model's local metric frame",
+                  "coverage_content_type": "coordinate"}) for axis in ("x_m", "y_m")}
     data = {name: (dims, np.asarray(values), attrs) for name, values, attrs in _grid_variables(grid)}
     frame = grid.frame.to_dict() if hasattr(grid.frame, "to_dict") else dict(grid.frame or {})
-    if grid.lon_deg is not None:
-        coords["lon_deg"] = (dims, grid.lon_deg, {"standard_name": "longitude", "units": "degrees_east",
-                                                  "long_name": "longitude (WGS 84)"})
-        coords["lat_deg"] = (dims, grid.lat_deg, {"standard_name": "latitude", "units": "degrees_north",
-                                                  "long_name": "latitude (WGS 84)"})
-        data["crs"] = ((), np.int32(0), {
-            "grid_mapping_name": "azimuthal_equidistant", "longitude_of_projection_origin": frame["lon0_deg"],
-            "latitude_of_projection_origin": frame["lat0_deg"], "false_easting": 0.0, "false_northing": 0.0,
-            "semi_major_axis": 6378137.0, "inverse_flattening": 298.257223563, "proj4_text": frame.get("proj", "")})
+    geo = grid.lon_deg is not None
+    if geo:
+        for name, values, axis in (("lon_deg", grid.lon_deg, "longitude"), ("lat_deg", grid.lat_deg, "latitude")):
+            coords[name] = (dims, values, {"standard_name": axis, "units": f"degrees_{'east' if name[1] == 'o' else 'north'}",
+                                           "long_name": f"{axis} (WGS 84)", "coverage_content_type": "coordinate"})
+        data["crs"] = ((), np.int32(0), crs_attributes(frame))
         for name, _, attrs in _grid_variables(grid):
             data[name][2]["grid_mapping"] = "crs"
-    attrs = {"Conventions": "CF-1.8", "title": "driftwise gridded flow field",
-             "source": f"driftwise {__version__}", "kernel_family": grid.kernel_family,
-             "frame": json.dumps(frame, sort_keys=True),
-             "grid_spacing_m": float(grid.x_m[1] - grid.x_m[0]) if len(grid.x_m) > 1 else 0.0,
-             "comment": "Posterior of a Gaussian-process fit to drifter tracks; derivatives are exact for the GP. "
-                        "Caution: a research product; validate locally and defer to the responsible authorities."}
+    attrs = discovery_attributes(
+        "driftwise gridded flow field",
+        "Posterior of a Gaussian-process fit to drifter tracks on a regular grid: mean velocity and its standard "
+        "deviation, divergence and relative vorticity with their standard deviations (exact GP derivatives), "
+        "and a data-support mask.", "ocean currents, drifter, surface velocity, divergence, vorticity, uncertainty",
+        lonlat=(grid.lon_deg, grid.lat_deg) if geo else None)
+    attrs.update(kernel_family=grid.kernel_family, frame=json.dumps(frame, sort_keys=True),
+                 grid_spacing_m=float(grid.x_m[1] - grid.x_m[0]) if len(grid.x_m) > 1 else 0.0,
+                 comment="Posterior of a Gaussian-process fit to drifter tracks; derivatives are exact for the GP. "
+                         + RESEARCH_CAUTION)
     dataset = xr.Dataset(data, coords=coords, attrs=attrs)
-    if grid.lon_deg is not None:   # name only the auxiliary coordinates (CF-1.8 §5)
+    for name in ("x_m", "y_m", "lon_deg", "lat_deg"):
+        if name in dataset.variables:
+            dataset[name].encoding["_FillValue"] = None        # no _FillValue on coordinates (CF-1.11 §2.5.1)
+    if geo:   # name only the auxiliary coordinates (CF-1.11 §5)
         for name, _, _ in _grid_variables(grid):
             dataset[name].encoding["coordinates"] = "lon_deg lat_deg"
     return dataset

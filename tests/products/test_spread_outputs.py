@@ -84,22 +84,25 @@ def test_csv_round_trip_and_formula_escaping(tmp_path):
 
 
 def test_netcdf_round_trip_with_cf_attributes(tmp_path):
+    # Layout: a CF trajectory file (CF-1.11 §9, appendix H.4.1 multidimensional representation), issue 16.
     spread = _spread(FRAME)
     with xr.open_dataset(write_spread(spread, tmp_path / "s.nc"), engine="h5netcdf") as ds:
-        assert ds.attrs["Conventions"] == "CF-1.8" and ds.attrs["method"] == "cubature"
-        assert ds["mean_m"].dims == ("release", "time", "component")
-        assert ds["covariance_m2"].dims == ("release", "time", "component", "component2")
-        assert ds["mean_m"].attrs["units"] == "m" and ds["covariance_m2"].attrs["units"] == "m2"
-        assert ds["time"].attrs["units"] == "s" and ds["semi_major_m"].attrs["units"] == "m"
+        assert "CF-1.11" in ds.attrs["Conventions"] and ds.attrs["method"] == "cubature"
+        assert "featureType" not in ds.attrs          # no time origin: no CF time, so not a trajectory DSG
+        assert ds["x_m"].dims == ("trajectory", "obs") and ds["cov_xy_m2"].dims == ("trajectory", "obs")
+        assert ds["x_m"].attrs["units"] == "m" and ds["cov_xx_m2"].attrs["units"] == "m2"
+        assert ds["forecast_period"].attrs["units"] == "s" and ds["semi_major_95_m"].attrs["units"] == "m"
         assert ds["lon"].attrs["standard_name"] == "longitude" and ds["lon"].attrs["units"] == "degrees_east"
         assert ds["lat"].attrs["standard_name"] == "latitude" and ds["lat"].attrs["units"] == "degrees_north"
-        np.testing.assert_allclose(ds["mean_m"].values, spread.means, rtol=0, atol=0)
-        np.testing.assert_allclose(ds["covariance_m2"].values, spread.covs, rtol=0, atol=0)
-        np.testing.assert_allclose(ds["time"].values, TIMES, rtol=0, atol=0)
-        np.testing.assert_allclose(ds["semi_minor_m"].sel(level=0.5).values, spread.semi_axes_m[:, :, 0, 1], rtol=0)
+        np.testing.assert_allclose(np.stack([ds["x_m"], ds["y_m"]], -1), spread.means, rtol=0, atol=0)
+        for i, j, name in ((0, 0, "cov_xx_m2"), (0, 1, "cov_xy_m2"), (1, 1, "cov_yy_m2")):
+            np.testing.assert_allclose(ds[name].values, spread.covs[..., i, j], rtol=0, atol=0)
+        np.testing.assert_allclose(ds["forecast_period"].values, TIMES, rtol=0, atol=0)
+        np.testing.assert_allclose(ds["semi_minor_50_m"].values, spread.semi_axes_m[:, :, 0, 1], rtol=0)
         np.testing.assert_allclose(ds["probability_inside"].values, spread.probability, rtol=0, atol=0)
-        assert list(ds["release"].values) == ["=HYPERLINK(x)", "north pier"]
-        np.testing.assert_allclose(ds["mean_m"].sel(release="north pier").values, spread.means[1], rtol=0, atol=0)
+        names = [str(v.decode() if isinstance(v, bytes) else v) for v in ds["release_name"].values]
+        assert names == ["=HYPERLINK(x)", "north pier"]
+        np.testing.assert_allclose(ds["start_time_s"].values, [0.0, 7200.0], rtol=0, atol=0)
         assert Frame.from_dict(json.loads(ds.attrs["frame"])) == FRAME
 
 
@@ -152,5 +155,5 @@ def test_metric_3d_writes_json_csv_netcdf(tmp_path):
     data = json.loads((tmp_path / "s.json").read_text())
     assert np.asarray(data["releases"][0]["covariance"]).shape == (len(TIMES), 3, 3)
     with xr.open_dataset(tmp_path / "s.nc", engine="h5netcdf") as ds:
-        assert list(ds["component"].values) == ["x", "y", "z"] and "lon" not in ds
+        assert {"x_m", "y_m", "z_m", "cov_zz_m2"} <= set(ds.variables) and "lon" not in ds
     assert sorted(p.name for p in tmp_path.iterdir()) == ["s.csv", "s.json", "s.nc"]

@@ -23,7 +23,7 @@ from driftwise.data.synthetic import (
 )
 from driftwise.data.tracks import read_tracks
 
-DEMO = Path(__file__).resolve().parents[1] / "demo_data"
+DEMO = Path(__file__).resolve().parents[2] / "demo_data"
 
 FIELDS = {
     "lamb_oseen": LambOseenVortex(circulation_m2_s=5e3, core_radius_m=800.0, center_m=(300.0, -200.0)),
@@ -211,7 +211,7 @@ def test_demo_data_is_small_clean_and_split_by_track():
     readme = (DEMO / "README.md").read_text()
     scenario = DemoScenario()
     assert "invented" in readme and f"K = {scenario.diffusivity_m2_s:g} m²/s" in readme
-    assert "python -m driftwise.synthetic --out demo_data" in readme
+    assert "python -m driftwise.app.bay --out demo_data" in readme   # the generator moved to app/bay
 
 
 def test_write_demo_data_returns_the_paths(tmp_path):

@@ -8,7 +8,7 @@ from pathlib import Path
 import nbformat
 import pytest
 
-NOTEBOOK = Path(__file__).resolve().parents[1] / "notebooks" / "tutorial.ipynb"
+NOTEBOOK = Path(__file__).resolve().parents[2] / "notebooks" / "tutorial.ipynb"
 
 
 def test_tutorial_is_stored_without_outputs():

@@ -84,7 +84,8 @@ def test_plateau_rule():
 
 
 def test_auto_schedule_uses_all_data_with_exact_q_when_it_fits():
-    config = fitmod._check_options("helmholtz", "squared-exponential", 16, 0, 10, 100, 0.05, 5, "auto", 0.5, 10.0)
+    config = fitmod._check_options("helmholtz", "squared-exponential", 16, 0,
+                                   Schedule(steps=10, batch_size=100, learning_rate=0.05, patience=5), 10.0)
     small, large = fitmod._resolve(config, 1600), fitmod._resolve(config, 1601)   # 16 × batch 100
     assert (small.batch_size, small.q_update, small.subsample) == (1600, "natural", 0)
     assert (large.batch_size, large.q_update, large.subsample) == (1600, "natural", 1600)
@@ -195,13 +196,12 @@ def test_learned_inducing_points_move_and_stay_finite(tracks):
 
 def _loop_parts(tracks, **overrides):
     """The pieces fit() builds before its loop: data, config, initial state, Z scale."""
-    options = dict(kernel="helmholtz", base="squared-exponential", inducing=12, seed=0, steps=10, batch_size=1024,
-                   learning_rate=0.04, patience=5, q_update="adam", natural_step=0.5, position_error_m=5.0)
+    options = dict(steps=10, batch_size=1024, learning_rate=0.04, patience=5, q_update="adam", natural_step=0.5)
     options.update(overrides)
     data = fitmod._prepare(tracks, 5.0)
-    config = fitmod._check_options(*options.values())
+    config = fitmod._check_options("helmholtz", "squared-exponential", 12, 0, Schedule(**options), 5.0)
     config = dataclasses.replace(config, fingerprint=data.fingerprint)
-    state, z_scale = fitmod._start(data, config, learning_rate=options["learning_rate"], checkpoint=None, resume=False)
+    state, z_scale = fitmod._start(data, config, learning_rate=options["learning_rate"], checkpoint=None)
     return data, config, state, z_scale
 
 

@@ -8,8 +8,12 @@ or silence and for the values read.
 
 from __future__ import annotations
 
+import gc
 import gzip
+import json
 import struct
+import time
+import tracemalloc
 import warnings
 import zipfile
 
@@ -18,7 +22,7 @@ import pandas as pd
 import pytest
 
 from driftwise.data import trackfile
-from driftwise.data.tracks import TrackError, TrackNotice, TrackWarning, read_tracks
+from driftwise.data.tracks import TrackError, TrackNotice, TrackWarning, read_tracks, tracks_from_frame
 from driftwise.files import csv_safe_text
 
 H = "track_id,time,x,y\n"
@@ -341,3 +345,122 @@ def test_unknown_extra_columns_are_kept(write_file):
                                                 "A,60,1,0,15.5,late\n"))
     np.testing.assert_array_equal(tracks.extra["temp_c"], [np.nan, 15.5])
     assert tracks.extra["note"].tolist() == ["ok", "late"]
+
+
+# ---------------------------------------------------------------- issue 13: refused fast, in bounded memory
+# Ceilings: wall time generous for a shared 2-core machine; traced memory (tracemalloc: Python and NumPy
+# allocations) 3-5x the peak measured when the refusal was written (numbers beside each test).
+def bounded(call, *, seconds: float, mebibytes: float):
+    """Run ``call()``; assert its wall time and tracemalloc peak stay under the ceilings; return its
+    result, or the TrackError it raised."""
+    gc.collect()
+    tracemalloc.start()
+    start = time.perf_counter()
+    try:
+        outcome = call()
+    except TrackError as err:
+        outcome = err
+    finally:
+        elapsed = time.perf_counter() - start
+        peak = tracemalloc.get_traced_memory()[1]
+        tracemalloc.stop()
+    print(f"{elapsed * 1e3:.1f} ms, peak {peak / 2**20:.3f} MiB")
+    assert elapsed < seconds, f"took {elapsed:.3f} s (ceiling {seconds} s)"
+    assert peak < mebibytes * 2**20, f"traced peak {peak / 2**20:.1f} MiB (ceiling {mebibytes} MiB)"
+    return outcome
+
+
+def _wide_csv(path, n_columns: int):
+    names = ["track_id", "time", "x", "y"] + [f"c{i}" for i in range(n_columns - 4)]
+    with open(path, "w") as out:
+        out.write(",".join(names) + "\n")
+        out.writelines(f"A,{t},1,2" + ",0" * (n_columns - 4) + "\n" for t in (0, 60))
+    return path
+
+
+def test_million_column_header_is_refused_from_line_1(tmp_path, run_cli):
+    path = _wide_csv(tmp_path / "wide.csv", 1_000_000)   # 13.9 MB; was 28 min and 5.6 GB in inspect
+    err = bounded(lambda: read_tracks(path), seconds=1.0, mebibytes=48)   # measured 3.4 ms, 12.7 MiB
+    head = path.read_bytes()[: trackfile.MAX_HEADER_BYTES]
+    counted = head.count(b",") + 1   # commas in the first 4 MiB of the header, + 1
+    assert 500_000 < counted < 1_000_000
+    assert (err.row, err.column) == (1, None)
+    assert f"the header (line 1) has at least {counted:,} columns in its first 4 MiB, more than the 10,000" in str(err)
+    code, out, stderr = run_cli("inspect", path)
+    assert (code, out) == (2, "") and stderr.strip() == f"driftwise: error: {err}"
+
+
+def test_columns_limit_is_exact_and_counted_before_names(tmp_path):
+    trackfile.read_csv_chunks(_wide_csv(tmp_path / "ok.csv", 10_000), "ok.csv")   # accepted (chunks not read)
+    with pytest.raises(TrackError, match=r"row 1: the header \(line 1\) has 10,001 columns, more than the 10,000"):
+        trackfile.read_csv_chunks(_wide_csv(tmp_path / "over.csv", 10_001), "over.csv")
+    # a quoted delimiter is part of a name, not a separator
+    names = ",".join(["track_id", "time", "x", "y"] + [f'"c,{i}"' for i in range(9_996)])
+    (tmp_path / "quoted.csv").write_text(names + "\nA,0,1,2" + ",0" * 9_996 + "\n")
+    trackfile.read_csv_chunks(tmp_path / "quoted.csv", "quoted.csv")
+
+
+def test_endless_header_line_is_refused_at_the_byte_cap(write_file, run_cli, monkeypatch):
+    monkeypatch.setattr(trackfile, "MAX_HEADER_BYTES", 200_000)
+    path = write_file("long.csv", "track_id,time,x," + "y" * 300_000 + "\nA,0,1,2\n")
+    expect_error(path, run_cli, words=["the header (line 1) is longer than 0.191 MiB"], row=1, column=None)
+
+
+def test_duplicate_column_name_is_refused_naming_both_positions(write_file, run_cli):
+    path = write_file("dup.csv", "track_id,time,x,y,x\nA,0,1,2,5\nA,60,2,2,6\n")
+    expect_error(path, run_cli, words=["column name 'x' appears twice in the header (columns 3 and 5)"],
+                 row=1, column="x")
+    bounded(lambda: read_tracks(path), seconds=0.5, mebibytes=0.3)   # measured 0.1 ms, 0.07 MiB
+
+
+def test_two_spellings_of_a_role_column_are_refused(write_file, run_cli):
+    path = write_file("dup.csv", "track_id,Time,x,y,time\nA,0,1,2,5\nA,60,2,2,6\n")
+    expect_error(path, run_cli, words=["'Time' (column 2) and 'time' (column 5) both name the 'time' column"],
+                 row=1, column="time")
+
+
+def test_duplicate_column_in_a_dataframe_is_refused():
+    frame = pd.DataFrame([["A", 0, 1, 2, 5], ["A", 60, 2, 2, 6]], columns=["track_id", "time", "x", "y", "y"])
+    with pytest.raises(TrackError, match=r"<dataframe>, row 1, column 'y': the column name 'y' appears twice"):
+        tracks_from_frame(frame)
+
+
+def test_empty_header_names_are_not_duplicates(write_file):
+    tracks = read_tracks(write_file("t.csv", H.strip() + ",,\nA,0,1,2,,\nA,60,2,2,,\n"))
+    np.testing.assert_array_equal(tracks.position_m, [[1.0, 2.0], [2.0, 2.0]])
+
+
+def test_nul_byte_in_a_field_names_line_and_column(write_file, run_cli):
+    path = write_file("nul.csv", H + "A,0,1,2\nA,60,1\x00,2\n")
+    expect_error(path, run_cli, words=["contains a NUL byte (0x00)"], row=3, column="x")
+    bounded(lambda: read_tracks(path), seconds=0.5, mebibytes=0.3)   # measured 0.1 ms, 0.07 MiB
+
+
+def test_nul_byte_beyond_the_sniffed_head_names_its_line(write_file, run_cli):
+    rows = "".join(f"A,{60 * i},{i},0\n" for i in range(20_000))   # 330 kB, beyond the 64 KiB head
+    path = write_file("late.csv", H + rows + "B\x00,0,1,2\nB,60,1,2\n")   # pandas alone would read 'B'
+    expect_error(path, run_cli, words=["contains a NUL byte (0x00)"], row=20_002, column=None)
+    bounded(lambda: read_tracks(path), seconds=0.5, mebibytes=8)   # measured 1.5 ms, 1.8 MiB
+
+
+def test_two_fixes_inspect_warns_and_fit_refuses_with_the_minimum(write_file, tmp_path, run_cli):
+    path = write_file("two.csv", H + "A,0,0,0\nA,600,100,20\n")
+    import driftwise.gp.training  # noqa: F401  (the numerical stack is imported outside the timed call)
+
+    expected = (f"{path}: 2 fixes in 1 track give 1 velocity observation (a track of m fixes gives m - 1); fit "
+                "needs at least 3 to learn its hyperparameters, e.g. one track of 4 fixes or 3 tracks of 2")
+    with pytest.warns(TrackWarning) as caught:
+        code, out, _ = bounded(lambda: run_cli("inspect", path, "--json"), seconds=1.0, mebibytes=8)  # 17 ms, 1.6 MiB
+    assert code == 0 and json.loads(out)["fit_warning"] == expected
+    assert [str(w.message) for w in caught] == [expected]
+    code, out, err = bounded(lambda: run_cli("fit", path, "--out", tmp_path / "m.npz"), seconds=1.0,
+                             mebibytes=8)   # measured 15 ms, 1.6 MiB
+    assert (code, out) == (2, "") and err.strip().splitlines()[-1] == f"driftwise: error: {expected}"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["two.csv"]   # no model, no checkpoint
+
+
+def test_one_track_is_refused_by_the_calibrated_fit(write_file, tmp_path, run_cli):
+    path = write_file("one.csv", H + "A,0,0,0\nA,600,100,20\nA,1200,180,50\nA,1800,260,90\n")
+    code, _, err = run_cli("fit", path, "--out", tmp_path / "m.npz")
+    assert code == 2
+    assert "give 3 velocity observations" in err and "needs at least 2 tracks" in err and "--no-calibrate" in err

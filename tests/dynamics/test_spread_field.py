@@ -141,7 +141,9 @@ def test_cli_lonlat_model_reports_mean_lonlat_polygon_and_geojson(models, capsys
     assert len(rel["probability_inside"]) == 9 and rel["probability_inside"][0] == 0.0   # starts 7 km away
     assert max(rel["probability_inside"]) > 0.3 and rel["first_arrival_s"] is not None   # carried into the box
     features = json.loads((tmp_path / "s.geojson").read_text())["features"]
-    assert len([f for f in features if f["geometry"]["type"] == "Polygon"]) == 3 * 9
+    # a point release has zero-size ellipses at t = 0: a Point per level, polygons after (issue 16)
+    assert len([f for f in features if f["geometry"]["type"] == "Polygon"]) == 3 * 8
+    assert [f["properties"]["time_s"] for f in features if f["geometry"]["type"] == "Point"] == [0.0] * 3
 
 
 @pytest.mark.parametrize("argv, message", [

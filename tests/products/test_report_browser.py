@@ -247,3 +247,64 @@ def test_a_non_png_figure_is_a_clear_error(tmp_path):
     bad.write_bytes(b"GIF89a...")
     with pytest.raises(InputError, match="is not a PNG"):
         report.render_report({"fit": {"kernel": "x"}, "figures": [{"path": str(bad), "section": "fit"}]})
+
+
+# ----------------------------------------------------------------- ELBOs, alerts, width and print
+def test_check_and_fit_elbos_are_explained_per_observation():
+    summary = {"fit": {"kernel": "helmholtz", "elbo": 8694.95, "n_observations": 2880},
+               "check": {"families": {"helmholtz": {"elbo": 6966.0, "n_observations": 2304},
+                                      "divergence-free": {"elbo": 6900.0, "n_observations": 2304}}}}
+    page = report.render_report(summary)
+    text = " ".join(html.unescape(re.sub(r"<[^>]+>", " ", page)).split())
+    # 8694.95 / 2880 = 3.019 and 6966 / 2304 = 3.023 nats per observation (the arithmetic of the note)
+    assert "8695 nats) is a sum over all 2 880 velocity observations" in text.replace("\u2009", " ")
+    assert "3.019 nats per observation" in text
+    assert "2 304 observations" in text.replace("\u2009", " ")
+    assert "helmholtz 3.023; divergence-free 2.995 nats" in text
+    # without the check's observation counts there is nothing to compare, and no note
+    summary["check"]["families"]["helmholtz"].pop("n_observations")
+    summary["check"]["families"]["divergence-free"].pop("n_observations")
+    assert "Why these ELBOs differ" not in report.render_report(summary)
+
+
+def test_spread_alerts_are_boxed_before_the_table():
+    page = report.render_report({"spread": [{"name": "spill", "alerts": ["poor Gaussian summary: use the ensemble"],
+                                             "columns": ["time (h)"], "rows": [[1.0]], "notes": ["a note"]}]})
+    alert = page.index('<p class="alert">poor Gaussian summary: use the ensemble</p>')
+    assert alert < page.index("<table") < page.index("<p>a note</p>")
+
+
+_WIDTH_PROBE = """<script>
+window.addEventListener('load', function () {
+  var out = document.createElement('pre');
+  out.id = 'driftwise-probe';
+  var right = Array.prototype.map.call(document.querySelectorAll('img, p, h2'), function (el) {
+    return el.getBoundingClientRect().right; });
+  out.textContent = JSON.stringify({scroll: document.documentElement.scrollWidth, inner: window.innerWidth,
+                                    right: Math.max.apply(null, right),
+                                    font: parseFloat(getComputedStyle(document.body).fontSize)});
+  document.body.appendChild(out);
+});
+</script>"""
+
+
+def test_readable_at_1200_px_and_prints_to_pages(rendered, tmp_path):
+    browser = _chromium()
+    page = _probe_copy(rendered["page"]).replace(_PROBE, _WIDTH_PROBE)
+    probe_path = tmp_path / "width.html"
+    probe_path.write_text(page, encoding="utf-8")
+    dom = _run(browser, tmp_path, "--dump-dom", "--window-size=1200,2000", "--virtual-time-budget=5000",
+               probe_path.as_uri()).stdout
+    probe = json.loads(html.unescape("".join(_parse(dom).probe)))
+    # no horizontal scrolling of the page at 1200 px; text, figures and headings inside the window
+    assert probe["inner"] == 1200 and probe["scroll"] <= 1200 and probe["right"] <= 1200
+    assert probe["font"] >= 14  # px: the browser's default body text size, not shrunk
+    # a print stylesheet: page size and margins, no figure or boxed note split across pages
+    assert "@media print" in rendered["page"] and "@page{size:A4" in rendered["page"]
+    assert re.search(r"@media print\{.*figure,[^{]*\{break-inside:avoid", rendered["page"], re.DOTALL)
+    pdf = tmp_path / "report.pdf"
+    _run(browser, tmp_path, f"--print-to-pdf={pdf}", "--no-pdf-header-footer", Path(rendered["shot"]).parent.joinpath(
+        "report.html").as_uri())
+    data = pdf.read_bytes()
+    pages = len(re.findall(rb"/Type\s*/Page(?!s)", data))
+    assert data.startswith(b"%PDF") and 1 <= pages <= 6, pages

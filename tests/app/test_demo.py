@@ -81,10 +81,10 @@ def test_progress_bar_only_on_a_terminal(monkeypatch):
             return True
 
     monkeypatch.setattr("sys.stderr", Terminal())
-    assert not demo._bar(3, quiet=False).disable
-    assert demo._bar(3, quiet=True).disable
+    assert not demo.progress_bar(3, quiet=False).disable
+    assert demo.progress_bar(3, quiet=True).disable
     monkeypatch.setattr("sys.stderr", io.StringIO())  # a pipe or a log file: no bar garbage
-    assert demo._bar(3, quiet=False).disable
+    assert demo.progress_bar(3, quiet=False).disable
 
 
 @pytest.mark.parametrize("command", ["inspect", "fit", "spread", "score", "check", "map", "demo"])
