@@ -31,7 +31,7 @@ from ..diagnostics.verdict import finer_maps, run_check
 from ..dynamics.calibrate import calibrate
 from ..dynamics.methods import DEFAULT_METHOD, DEFAULT_PARTICLES, METHODS
 from ..dynamics.spread import Release, as_releases, read_polygon, read_releases, spread_from_field
-from ..dynamics.transitionfit import LIKELIHOODS, fit_by_likelihood, transition_checkpoint_path
+from ..dynamics.transitionfit import LIKELIHOOD_HELP, LIKELIHOODS, fit_by_likelihood
 from ..errors import InputError
 from ..files import CAUTION, plain
 from ..gp.kernels import DEFAULT_FAMILY, KERNEL_FAMILIES
@@ -274,10 +274,7 @@ def _add_fit(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--max-gap", default=None,
                    help="split a track at gaps longer than this duration, with its unit (e.g. 6h; default: never)")
     p.add_argument("--resume", action="store_true", help="continue from the checkpoint MODEL.ckpt.npz if present")
-    p.add_argument("--likelihood", default="auto", choices=list(LIKELIHOODS),
-                   help="velocities: finite-difference velocities between fixes; transitions: then refit through the "
-                   "transition density of consecutive fixes (moments of the flow's SDE); auto (default): transitions "
-                   "when the fixes are coarse for the flow (median dt*|grad u| above 0.5)")
+    p.add_argument("--likelihood", default="auto", choices=list(LIKELIHOODS), help=LIKELIHOOD_HELP)
     p.add_argument("--calibrate", action=argparse.BooleanOptionalAction, default=True,
                    help="after the fit, estimate K and tau from the likelihood of observed displacements between "
                    "fixes (lags 1h-12h) on these tracks and store them in the model (default: on)")
@@ -287,9 +284,7 @@ def _add_fit(sub: argparse._SubParsersAction) -> None:
 
 
 def _checkpoint_path(out: str):
-    path = Path(out)
-    stem = path.name[: -len(path.suffix)] if path.suffix else path.name
-    return path.with_name(stem + ".ckpt.npz")
+    return Path(out).with_name(Path(out).stem + ".ckpt.npz")   # Path.stem drops the last suffix only
 
 
 def _run_fit(args: argparse.Namespace) -> int:
@@ -304,22 +299,18 @@ def _run_fit(args: argparse.Namespace) -> int:
         raise TrackError(tracks.source, shortfall)
     checkpoint = _checkpoint_path(args.out)
     try:
-        field, choice = fit_by_likelihood(tracks, args.kernel, likelihood=args.likelihood, inducing=args.inducing,
-                                          seed=args.seed, position_error_m=position_error,
-                                          checkpoint=Checkpoint(checkpoint, resume=args.resume),
-                                          progress=not (args.quiet or args.json))
+        field, choice = fit_by_likelihood(tracks, args.kernel, args.likelihood, inducing=args.inducing, seed=args.seed,
+                                          position_error_m=position_error, quiet=args.quiet or args.json,
+                                          checkpoint=Checkpoint(checkpoint, resume=args.resume))
     except KeyboardInterrupt:
         print(f"driftwise: fit interrupted; continue with --resume (checkpoint {checkpoint})", file=sys.stderr)
         raise
     if args.calibrate:
-
         field = calibrate(field, tracks)
     written = save_model(field, args.out)
     checkpoint.unlink(missing_ok=True)
-    transition_checkpoint_path(checkpoint).unlink(missing_ok=True)
     report = {**fit_report(field), **choice.to_dict(), "model": str(written)}
-    if args.calibrate:
-        report["calibration"] = field.fit_info.get("calibration")
+    report.update({"calibration": field.fit_info.get("calibration")} if args.calibrate else {})
     if args.json:
         print_json(report)
     else:

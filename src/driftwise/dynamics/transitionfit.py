@@ -18,8 +18,8 @@ it is the forecast model's own transition likelihood with a KL penalty that keep
 prior where the data say nothing.
 
 Warm start: the velocity fit (:func:`driftwise.gp.training.fit`); its τ = ℓ/U_rms is held fixed.
-Optimiser: Adam (Kingma & Ba 2015, optax), its rate decaying tenfold over ``steps``, on minibatches of transitions from epoch permutations of
-``numpy.random.default_rng([seed, epoch])``, the sum scaled by N/b.  Every ``patience`` steps the
+Optimiser: Adam (Kingma & Ba 2015, optax), its rate decaying tenfold every 400 steps, on minibatches of
+transitions from epoch permutations of ``numpy.random.default_rng([seed, epoch])``, the sum scaled by N/b.  Every ``patience`` steps the
 objective on fixed evaluation rows is checked and the fit stops once it gained less than
 1e-4 × max(|L|, N nats).  Checkpoint/resume and the progress bar as in the velocity fit
 (:mod:`driftwise.gp.schedule`).
@@ -62,13 +62,19 @@ __all__ = ["TRANSITION_SCHEDULE", "COARSENESS_THRESHOLD", "LIKELIHOODS", "Likeli
 TRANSITION_SCHEDULE = Schedule(steps=400, batch_size=256, learning_rate=0.02, patience=20, q_update="adam")
 COARSENESS_THRESHOLD = 0.5   # median Δt‖∇μ‖: finite-difference velocity bias ≈ c²/12 = 2 % (module docstring)
 LIKELIHOODS = ("velocities", "transitions", "auto")
+LIKELIHOOD_HELP = ("velocities: finite-difference velocities between fixes; transitions: then refit through the "
+                   "transition density of consecutive fixes (moments of the flow's SDE); auto (default): transitions "
+                   f"when the fixes are coarse for the flow (median dt*|grad u| above {COARSENESS_THRESHOLD:g})")
 REL_TOL = 1e-4
+DECAY_STEPS = 400          # the learning rate falls tenfold every 400 steps
 EVAL_ROWS = 2048
 RETRIES = 6
 _TRAINABLE = ("kernel", "q_mean", "q_sqrt_raw", "log_diffusivity_m2_s")
-# Adam moves every coordinate by about the learning rate at first; the (M·d)² entries of S's raw factor and the
-# M·d whitened means start at the velocity fit's optimum and would be knocked off it by full-size steps
-LEAF_STEP = {"kernel": 1.0, "log_diffusivity_m2_s": 1.0, "q_mean": 0.3, "q_sqrt_raw": 0.1}
+# Adam moves every coordinate by about the learning rate at first; the M·d whitened means start at the velocity
+# fit's optimum and would be knocked off it by full-size steps.  S keeps the full step: Σ(x) enters the diffusion,
+# and a q that tightens too slowly leaves K too small (3-h vortex fixes: K 0.37 m²/s at a tenth of the step, 0.69 at
+# the full step, truth 1)
+LEAF_STEP = {"kernel": 1.0, "log_diffusivity_m2_s": 1.0, "q_mean": 0.3, "q_sqrt_raw": 1.0}
 
 
 @dataclass(frozen=True)
@@ -179,11 +185,12 @@ def _with_learning_rate(opt_state, learning_rate: float):
 
 
 def _advance(state: TrainState, problem: _Problem, schedule: Schedule) -> TrainState:
-    """One accepted step at the learning rate lr₀ · 10^(−step/steps) (minibatch noise in Adam's steps shrinks
-    with the rate); a non-finite objective or gradient is retried with half of it."""
+    """One accepted step at the learning rate lr₀ · 10^(−step/400) (minibatch noise in Adam's steps shrinks
+    with the rate; independent of ``steps``, so a resumed fit with more steps retraces a longer one); a
+    non-finite objective or gradient is retried with half of it."""
     cfg, trans = problem.config, problem.trans
     rows = _rows(trans, _batch_indices(trans.n, cfg.batch_size, cfg.seed, state.step))
-    decayed = schedule.learning_rate * 10.0 ** (-state.step / max(schedule.steps, 1))
+    decayed = schedule.learning_rate * 10.0 ** (-state.step / DECAY_STEPS)
     opt_state = _with_learning_rate(state.opt_state, decayed)
     for _ in range(RETRIES + 1):
         params, new_opt, value, ok = _step(state.params, opt_state, rows, float(trans.n), problem.tau_s,
@@ -341,12 +348,15 @@ def transition_checkpoint_path(path: Path) -> Path:
     return path.with_name(path.name.removesuffix(".npz") + ".transitions.npz")
 
 
-def fit_by_likelihood(tracks, kernel: str, *, likelihood: str = "auto", inducing: int | None = None, seed: int = 0,
-                      position_error_m: float = 10.0, checkpoint: Checkpoint | None = None, progress: bool = True,
+def fit_by_likelihood(tracks, kernel: str, likelihood: str = "auto", *, inducing: int | None = None, seed: int = 0,
+                      position_error_m: float = 10.0, checkpoint: Checkpoint | None = None, quiet: bool = False,
                       schedule: Schedule = Schedule(), transition_schedule: Schedule = TRANSITION_SCHEDULE,
                       method: str = "cubature") -> tuple[fld.FlowField, LikelihoodChoice]:
     """The velocity fit, then (when ``likelihood`` is "transitions", or "auto" finds the fixes coarse) the
-    transition fit warm-started from it.  Returns (field, :class:`LikelihoodChoice`)."""
+    transition fit warm-started from it.  Returns (field, :class:`LikelihoodChoice`).  ``checkpoint`` is the
+    velocity fit's; the transition stage keeps its own beside it (:func:`transition_checkpoint_path`) and
+    removes it once it has finished."""
+    progress = not quiet
     if likelihood not in LIKELIHOODS:
         raise InputError(f"likelihood: use one of {', '.join(LIKELIHOODS)}, got {likelihood!r}")
     field = fit(tracks, kernel, inducing=inducing, seed=seed, position_error_m=position_error_m, schedule=schedule,
@@ -359,4 +369,6 @@ def fit_by_likelihood(tracks, kernel: str, *, likelihood: str = "auto", inducing
                                                            every_steps=checkpoint.every_steps)
         field = fit_transitions(tracks, field, position_error_m=position_error_m, schedule=transition_schedule,
                                 method=method, seed=seed, checkpoint=stage, progress=progress)
+        if stage is not None:
+            stage.path.unlink(missing_ok=True)
     return field, choice
