@@ -125,7 +125,9 @@ def test_score_cli_json(vortex_case, run_cli):
             assert len(payload[key]) == 3
     assert set(payload["baselines"]) == {"persistence", "no_motion"}
     assert payload["baselines"]["persistence"]["coverage_95"] == [None, None, None]  # no fit tracks: undefined
-    assert payload["horizons_s"] == list(HORIZONS_S)
+    # default horizons from the held-out tracks (driftwise.datascales): 2-day hourly tracks give
+    # D/12, D/6, D/3 = 4, 8, 16 h
+    assert payload["horizons_s"] == [4 * 3600.0, 8 * 3600.0, 16 * 3600.0]
 
 
 def test_score_cli_bad_input(vortex_case, run_cli, tmp_path):
@@ -135,6 +137,8 @@ def test_score_cli_bad_input(vortex_case, run_cli, tmp_path):
     assert code == 2 and "missing.npz" in err
     code, _, err = run_cli("score", vortex_case["model"], vortex_case["held_csv"], "--horizons", "30d")
     assert code == 2 and "long enough" in err
+    code, _, err = run_cli("score", vortex_case["model"], vortex_case["held_csv"], "--horizons", "48s")
+    assert code == 2 and "--horizons: 48 s is shorter than the sampling interval of these data (1 h" in err
 
 
 # ------------------------------------------------------------------ a Gaussian-process draw

@@ -52,7 +52,8 @@ def lamb_oseen_velocity(xy):
 def vortex_tracks(fix_interval_s: float, n: int = 40, hours: float = 24.0):
     rng = np.random.default_rng(5)
     radius, angle = rng.uniform(1000.0, 5000.0, n), rng.uniform(0.0, 2.0 * math.pi, n)
-    table = simulate_drifters(LambOseenVortex(GAMMA_M2_S, CORE_M), np.c_[radius * np.cos(angle), radius * np.sin(angle)],
+    starts = np.c_[radius * np.cos(angle), radius * np.sin(angle)]
+    table = simulate_drifters(LambOseenVortex(GAMMA_M2_S, CORE_M), starts,
                               duration_s=hours * 3600.0, fix_interval_s=fix_interval_s, diffusivity_m2_s=K_TRUE,
                               position_error_m=SIGMA_M, seed=6, substeps=max(10, int(fix_interval_s / 60.0)))
     return tracks_from_frame(table)
@@ -104,7 +105,8 @@ def test_transition_fit_resumes_to_the_same_answer(tmp_path):
     assert resumed.fit_info["transition_steps"] == 6
     np.testing.assert_allclose(resumed.fit_info["transition_history"], whole.fit_info["transition_history"],
                                rtol=1e-10)
-    np.testing.assert_allclose(np.asarray(resumed.params.q_mean), np.asarray(whole.params.q_mean), rtol=1e-9, atol=1e-12)
+    np.testing.assert_allclose(np.asarray(resumed.params.q_mean), np.asarray(whole.params.q_mean),
+                               rtol=1e-9, atol=1e-12)
     assert whole.fit_info["likelihood"] == "transitions"
 
 

@@ -22,8 +22,9 @@ from typing import Any, Callable
 
 import numpy as np
 
-from ..data.tracks import (TrackError, TrackWarning, fit_shortfall, format_summary, inspect_summary,
-                           read_tracks_from_cli)
+from ..data.datascales import resolve_horizons
+from ..data.positionerror import position_error_text
+from ..data.tracks import TrackError, TrackWarning, fit_shortfall, format_summary, inspect_summary, read_tracks_from_cli
 from ..data.utctime import release_time_s
 from ..diagnostics.grid import field_grid
 from ..diagnostics.skill import score
@@ -31,13 +32,12 @@ from ..diagnostics.verdict import finer_maps, run_check
 from ..dynamics.calibrate import calibrate
 from ..dynamics.methods import DEFAULT_METHOD, DEFAULT_PARTICLES, METHODS
 from ..dynamics.spread import Release, as_releases, read_polygon, read_releases, spread_from_field
-from ..dynamics.transitionfit import LIKELIHOOD_HELP, LIKELIHOODS, fit_by_likelihood
+from ..dynamics.transitionfit import LIKELIHOOD_HELP, LIKELIHOODS, fit_by_likelihood, fit_report
 from ..errors import InputError
 from ..files import CAUTION, plain
 from ..gp.kernels import DEFAULT_FAMILY, KERNEL_FAMILIES
 from ..gp.modelfile import load_model, save_model
 from ..gp.schedule import Checkpoint
-from ..gp.training import fit_report
 from ..products.plots import plot_physics_maps, plot_skill, save_figure
 from ..products.report import complete
 from ..products.writers import (
@@ -268,27 +268,23 @@ def _add_fit(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--inducing", type=int, default=None, metavar="M",
                    help="number of inducing points (default: min(256, observations/32), at least 16)")
     p.add_argument("--seed", type=int, default=0, metavar="S", help="random seed (default 0)")
-    p.add_argument("--position-error", default="10m",
-                   help="standard deviation of one fix per axis, with its unit (m, km, cm, mm; default 10m)")
+    p.add_argument("--position-error", default=None, help="standard deviation of one fix per axis, with its unit "
+                   "(m, km, cm, mm; default: estimated from the tracks; refused above the typical step between fixes)")
     p.add_argument("--max-speed", default="5m/s", help="drop fixes implying a faster speed (bare: m/s; default 5m/s)")
     p.add_argument("--max-gap", default=None,
                    help="split a track at gaps longer than this duration, with its unit (e.g. 6h; default: never)")
     p.add_argument("--resume", action="store_true", help="continue from the checkpoint MODEL.ckpt.npz if present")
     p.add_argument("--likelihood", default="auto", choices=list(LIKELIHOODS), help=LIKELIHOOD_HELP)
     p.add_argument("--calibrate", action=argparse.BooleanOptionalAction, default=True,
-                   help="after the fit, estimate K and tau from the likelihood of observed displacements between "
-                   "fixes (lags 1h-12h) on these tracks and store them in the model (default: on)")
+                   help="after the fit, estimate K and tau from the likelihood of displacements between fixes "
+                   "(lags from 2 fixes to a third of the tracks' duration) and store them in the model (default: on)")
     _add_quiet_flag(p)
     _add_json_flag(p)
     p.set_defaults(run=_run_fit)
 
 
-def _checkpoint_path(out: str):
-    return Path(out).with_name(Path(out).stem + ".ckpt.npz")   # Path.stem drops the last suffix only
-
-
 def _run_fit(args: argparse.Namespace) -> int:
-    position_error = parse_length_m(args.position_error, what="--position-error")
+    position_error = args.position_error and parse_length_m(args.position_error, what="--position-error")
     if args.inducing is not None and args.inducing < 1:
         raise InputError(f"--inducing must be a positive integer, got {args.inducing}")
     if args.seed < 0:
@@ -297,20 +293,24 @@ def _run_fit(args: argparse.Namespace) -> int:
     shortfall = fit_shortfall(tracks, calibrate=args.calibrate)
     if shortfall:
         raise TrackError(tracks.source, shortfall)
-    checkpoint = _checkpoint_path(args.out)
+    checkpoint = Checkpoint.beside(args.out, resume=args.resume)
+    existed = checkpoint.path.exists()
     try:
         field, choice = fit_by_likelihood(tracks, args.kernel, args.likelihood, inducing=args.inducing, seed=args.seed,
-                                          position_error_m=position_error, quiet=args.quiet or args.json,
-                                          checkpoint=Checkpoint(checkpoint, resume=args.resume))
+            position_error_m=position_error, checkpoint=checkpoint, quiet=args.quiet or args.json)
     except KeyboardInterrupt:
-        print(f"driftwise: fit interrupted; continue with --resume (checkpoint {checkpoint})", file=sys.stderr)
+        print(f"driftwise: fit interrupted; continue with --resume (checkpoint {checkpoint.path})", file=sys.stderr)
         raise
+    except BaseException:
+        if not existed:   # a checkpoint this run wrote is no use after a failure (one given to --resume is kept)
+            checkpoint.path.unlink(missing_ok=True)
+        raise
+    checkpoint.path.unlink(missing_ok=True)   # the fit is complete: nothing to resume, whatever happens next
     if args.calibrate:
         field = calibrate(field, tracks)
     written = save_model(field, args.out)
-    checkpoint.unlink(missing_ok=True)
-    report = {**fit_report(field), **choice.to_dict(), "model": str(written)}
-    report.update({"calibration": field.fit_info.get("calibration")} if args.calibrate else {})
+    report = {**fit_report(field, choice), "model": str(written)} | (
+        {"calibration": field.fit_info.get("calibration")} if args.calibrate else {})
     if args.json:
         print_json(report)
     else:
@@ -325,6 +325,7 @@ def _format_fit(report: dict[str, Any]) -> str:
              f"  ELBO {report['elbo']:.6g} nats ({report['elbo_per_observation']:.4g} per observation) after "
              f"{report['steps']} steps" + ("" if report["converged"] else " (step limit reached before the plateau)")]
     lines += [f"  {name} = {value:.4g}" for name, value in hyper.items()]
+    lines.append("  " + position_error_text(report))
     lines += [f"  decorrelation time τ = {report['decorrelation_time_s']:.4g} s "
               f"({report.get('decorrelation_time_source') or 'length scale / RMS speed'})",
               f"  likelihood: {report['likelihood_reason']}", f"wrote {report['model']}"]
@@ -384,8 +385,9 @@ def _add_score(sub: argparse._SubParsersAction) -> None:
         "Gaussian log score, next to persistence and no-motion baselines.", epilog=CAUTION)
     p.add_argument("model", help="model file written by `driftwise fit`")
     p.add_argument("holdout", help="tracks file NOT used in the fit (CSV, CSV.GZ, Parquet or CF-trajectory NetCDF)")
-    p.add_argument("--horizons", default="6h,12h,24h",
-                   help="comma-separated forecast horizons, each with its unit (default 6h,12h,24h)")
+    p.add_argument("--horizons", default=None,
+                   help="comma-separated forecast horizons with units, e.g. 6h,12h,24h (default: D/12, D/6, D/3 "
+                   "for the held-out tracks' median duration D; refused below the sampling interval)")
     p.add_argument("--method", choices=[name for name, spec in METHODS.items() if not spec.ensemble],
                    default=DEFAULT_METHOD, help=f"moment method of the forecasts (default {DEFAULT_METHOD})")
     p.add_argument("--fit-tracks", default=None, metavar="TRACKS",
@@ -408,13 +410,12 @@ def _read_named_tracks(path: str, max_speed: str):
 def _run_score(args: argparse.Namespace) -> int:
 
 
-    horizons = parse_durations_s(args.horizons, what="--horizons")
-    if not horizons or min(horizons) <= 0:
-        raise InputError(f"--horizons {args.horizons!r}: give positive durations such as 6h,12h,24h")
+    horizons = args.horizons and parse_durations_s(args.horizons, what="--horizons")
     if args.max_starts < 1:
         raise InputError(f"--max-starts must be a positive integer, got {args.max_starts}")
     model = load_model(args.model)
     holdout = _read_named_tracks(args.holdout, args.max_speed)
+    horizons = resolve_horizons(horizons, holdout, option="--horizons")
     fit_tracks = _read_named_tracks(args.fit_tracks, args.max_speed) if args.fit_tracks else None
     result = score(model, holdout, horizons_s=horizons, method=args.method, max_starts=args.max_starts,
                    fit_tracks=fit_tracks).to_dict()
@@ -457,8 +458,8 @@ def _add_check(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--seed", type=int, default=0, metavar="S", help="random seed of the split and fits (default 0)")
     p.add_argument("--inducing", type=int, default=64, metavar="M", help="inducing points per family fit (default 64)")
     p.add_argument("--steps", type=int, default=300, metavar="N", help="optimiser steps per family fit (default 300)")
-    p.add_argument("--position-error", default="10m",
-                   help="standard deviation of one fix per axis, with its unit (m, km, cm, mm; default 10m)")
+    p.add_argument("--position-error", default=None, help="standard deviation of one fix per axis, with its unit "
+                   "(m, km, cm, mm; default: estimated from the tracks; refused above the typical step between fixes)")
     p.add_argument("--max-speed", default="5m/s", help="drop fixes implying a faster speed (bare: m/s; default 5m/s)")
     p.add_argument("--max-gap", default=None,
                    help="split a track at gaps longer than this duration, with its unit (e.g. 6h; default: never)")
@@ -469,8 +470,7 @@ def _add_check(sub: argparse._SubParsersAction) -> None:
 
 
 def _run_check(args: argparse.Namespace) -> int:
-
-    position_error = parse_length_m(args.position_error, what="--position-error")
+    position_error = args.position_error and parse_length_m(args.position_error, what="--position-error")
     for name, value, low in (("--seed", args.seed, 0), ("--inducing", args.inducing, 1), ("--steps", args.steps, 1)):
         if value < low:
             raise InputError(f"{name} must be an integer ≥ {low}, got {value}")
@@ -497,6 +497,7 @@ def _format_check(s: dict[str, Any]) -> str:
     ev, split, verdict = s["evidence"], s["helmholtz_split"], s["verdict"]
     lines = [f"check: {s['n_tracks']} tracks; {ev['heldout_tracks']} held out ({ev['heldout_observations']} velocity "
              f"observations); tested model: {s['tested_model']}",
+             "  " + position_error_text(s),
              f"  {'family':<16} {'ELBO (nats)':>14} {'held-out log lik. (nats)':>26} {'per obs.':>9}"]
     for name, fam in s["families"].items():
         lines.append(f"  {name:<16} {fam['elbo']:>14.1f} {fam['heldout_log_likelihood']:>26.1f} "

@@ -22,20 +22,15 @@ from __future__ import annotations
 
 import json
 import math
-import os
-import platform
 import sys
 import time
-import traceback
 import warnings
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any, Callable
 
-import jax
 import numpy as np
-from tqdm.auto import tqdm
 
 from ..data.tracks import in_model_frame, inspect_summary, read_tracks
 from ..diagnostics.grid import field_grid
@@ -55,13 +50,13 @@ from ..products.plots import (
     plot_plume,
     plot_release_spread,
     plot_tracks,
-    save_figure,
     skill_figure,
 )
 from ..products.report import digest, write_report
 from ..products.writers import write_field_grid, write_score_csv, write_spread
 from ..version import __version__
 from .bay import DemoScenario, write_demo_data
+from .job import Job, Unavailable, duration, environment, one_line_warnings, progress_bar
 from .scenarios import (
     HOUR_S,
     SHELLFISH_BED,
@@ -103,85 +98,13 @@ class DemoSettings:
     max_skill_starts: int | None = 720
     calibration_starts: int = 100
     seed: int = 0
+    position_error_m: float = DemoScenario().position_error_m   # the campaign's stated GPS accuracy, as a user gives it
 
     @classmethod
     def fast(cls) -> "DemoSettings":
         return cls(inducing=32, fit_steps=40, family_inducing=24, family_steps=30, horizon_s=24 * HOUR_S,
                    every_s=2 * HOUR_S, outfall_hours=6, grid_cells_across=20,
                    skill_horizons_s=(6 * HOUR_S, 12 * HOUR_S), max_skill_starts=60, calibration_starts=50)
-
-
-# ----------------------------------------------------------------- bookkeeping
-class Unavailable(Exception):
-    """A library piece the step needs is not in this installation (reported, never faked)."""
-
-
-@dataclass
-class Job:
-    """What the demo has done so far: steps, products, figures, warnings."""
-
-    out: Path
-    settings: DemoSettings
-    progress: bool
-    figures_dir: Path
-    steps: list[dict] = field(default_factory=list)
-    files: list[dict] = field(default_factory=list)
-    figures: list[dict] = field(default_factory=list)
-    missing: list[dict] = field(default_factory=list)
-    summary: dict = field(default_factory=dict)
-    state: dict = field(default_factory=dict)
-
-    def relative(self, path: Path) -> str:
-        """``path`` relative to the output folder when inside it, else absolute."""
-        path = Path(path).resolve()
-        try:
-            return path.relative_to(self.out.resolve()).as_posix()
-        except ValueError:
-            return str(path)
-
-    def add_file(self, path: Path, description: str) -> None:
-        self.files.append({"path": self.relative(path), "description": description})
-
-    def add_figure(self, fig: Any, name: str, caption: str, section: str) -> None:
-
-        path = save_figure(fig, self.figures_dir / name)
-        self.figures.append({"path": self.relative(path), "caption": caption, "section": section})
-        self.add_file(path, caption)
-
-    def run(self, name: str, section: str, fn: Callable[["Job"], str]) -> bool:
-        """Run one step; record its status and wall time.  Returns True when it completed."""
-        start, cpu = time.perf_counter(), time.process_time()
-        status, detail = "done", ""
-        try:
-            detail = fn(self) or ""
-        except Unavailable as err:
-            status, detail = "not available", one_line(str(err))
-        except InputError as err:
-            status, detail = "failed", one_line(str(err))
-        except Exception as err:  # an internal error: report it in one line, keep the rest of the job going
-            status, detail = "failed", one_line(f"{type(err).__name__}: {err}")
-            self.state.setdefault("tracebacks", []).append(traceback.format_exc())
-        seconds, cpu = time.perf_counter() - start, time.process_time() - cpu
-        self.steps.append({"name": name, "status": status, "seconds": round(seconds, 2),
-                           "cpu_seconds": round(cpu, 2), "detail": detail})
-        if status != "done":
-            self.missing.append({"section": section, "reason": f"the {name} step {status}: {detail}"})
-        return status == "done"
-
-
-def one_line(text: str, limit: int = 300) -> str:
-    """``text`` with its whitespace collapsed onto one line, cut at ``limit`` characters."""
-    text = " ".join(str(text).split())
-    return text if len(text) <= limit else text[: limit - 1] + "…"
-
-
-def duration(seconds: float) -> str:
-    """``34 632`` → ``9.62 h``; ``95`` → ``1.58 min``; ``1.0`` → ``1 s`` (3 significant digits)."""
-    for unit, size in (("d", 86400.0), ("h", HOUR_S), ("min", 60.0)):
-        if abs(seconds) >= size:
-            return f"{seconds / size:.3g} {unit}"
-    return f"{seconds:.3g} s"
-
 
 
 def demo_data_dir(out: Path) -> Path:
@@ -245,8 +168,8 @@ def figure_tracks(job: Job) -> None:
 # ----------------------------------------------------------------- 2. fit
 def step_fit(job: Job) -> str:
     s = job.settings
-    field = fit(job.state["fit_tracks"], kernel="helmholtz", inducing=s.inducing, seed=s.seed,
-                schedule=Schedule(steps=s.fit_steps), progress=job.progress)
+    field = fit(job.state["fit_tracks"], kernel="helmholtz", inducing=s.inducing, seed=s.seed, progress=job.progress,
+                position_error_m=s.position_error_m, schedule=Schedule(steps=s.fit_steps))
     path = job.out / "model.npz"
     save_model(field, path)
     job.add_file(path, "the fitted Helmholtz model (npz without pickles + JSON metadata; driftwise.load)")
@@ -359,7 +282,7 @@ def _field(job: Job) -> Any:
 def step_check(job: Job) -> str:
     field, s = _field(job), job.settings
     result = check(job.state["fit_tracks"], model=field, inducing=s.family_inducing, steps=s.family_steps,
-                           seed=s.seed, progress=job.progress)
+                   seed=s.seed, progress=job.progress, position_error_m=s.position_error_m)
     job.state["check"] = result
     job.summary["check"] = _check_summary(result)
 
@@ -554,19 +477,10 @@ def _prepare_out(out: Path, figures: Path) -> None:
             raise InputError(f"{folder}: cannot create the output folder ({err.strerror})") from None
 
 
-def progress_bar(total: int, quiet: bool) -> Any:
-    """The demo's step bar on stderr (tqdm), shown only on a terminal and without ``--quiet``."""
-    disable = quiet or not (hasattr(sys.stderr, "isatty") and sys.stderr.isatty())
-    return tqdm(total=total, disable=disable, unit="step", file=sys.stderr, leave=False, dynamic_ncols=True)
 
 
-def one_line_warnings(caught: list[warnings.WarningMessage]) -> list[str]:
-    """Each distinct warning once, on one line: ``Category: first line of the message (×n)``."""
-    counts: dict[str, int] = {}
-    for w in caught:
-        text = f"{w.category.__name__}: {str(w.message).strip().splitlines()[0] if str(w.message).strip() else ''}"
-        counts[text] = counts.get(text, 0) + 1
-    return [text if n == 1 else f"{text} (×{n})" for text, n in counts.items()]
+
+
 
 
 def _assemble(job: Job, wall_s: float, warning_lines: list[str], command: str | None) -> dict:
@@ -581,14 +495,12 @@ def _assemble(job: Job, wall_s: float, warning_lines: list[str], command: str | 
         **job.summary,
         "figures": job.figures, "files": job.files, "warnings": warning_lines, "missing": job.missing,
         "settings": plain(job.settings.__dict__),
-        "environment": _environment(),
+        "environment": environment(),
     }
     return plain(summary)
 
 
-def _environment() -> dict:
-    return {"python": platform.python_version(), "platform": platform.platform(), "jax": jax.__version__,
-            "numpy": np.__version__, "cpu_count": os.cpu_count()}
+
 
 
 def _write_outputs(job: Job, summary: dict) -> None:

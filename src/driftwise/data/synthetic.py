@@ -13,10 +13,12 @@ Analytic steady 2-D velocity fields, each a small frozen dataclass with
 - :class:`GaussianGyre` — divergence-free eddy with a Gaussian streamfunction.
 - :class:`PotentialSources` — curl-free v = ∇φ, φ a sum of Gaussian bumps.
 - :class:`Mixture` — (1 − w)·a + w·b of two fields.
+- :class:`ABCFlow` — the 3-D Arnold–Beltrami–Childress flow (Dombre et al. 1986, J. Fluid
+  Mech. 167, 353), ``velocity(xyz) -> (n, 3)``, ``vorticity(xyz) -> (n, 3)`` (= k u: Beltrami).
 
 :func:`simulate_drifters` integrates dx = u(x) dt + √(2K) dW by Euler–Maruyama
 (Kloeden & Platen 1992, Numerical Solution of Stochastic Differential
-Equations, §9.1) and adds GPS noise to the fixes; :func:`random_walk` gives
+Equations, §9.1) in 2-D or 3-D and adds GPS noise to the fixes; :func:`random_walk` gives
 exact Brownian tracks in 2-D or 3-D.  The invented demo bay built from these
 pieces is :mod:`driftwise.app.bay`.
 """
@@ -186,11 +188,42 @@ class Mixture:
         return (1 - self.weight_b) * self.a.vorticity(xy) + self.weight_b * self.b.vorticity(xy)
 
 
+@dataclass(frozen=True)
+class ABCFlow:
+    """Arnold–Beltrami–Childress flow in a box of side L (Dombre et al. 1986, J. Fluid Mech. 167, 353):
+
+        u = U (A sin kz + C cos ky,  B sin kx + A cos kz,  C sin ky + B cos kx),   k = 2π/L,
+
+    steady, divergence-free and Beltrami (∇ × u = k u); chaotic streamlines for A = √3, B = √2,
+    C = 1 (Dombre et al.'s standard case).  ``xyz`` (n, 3) m → (n, 3) m/s.
+    """
+
+    speed_m_s: float = 1.0
+    box_m: float = 2.0 * math.pi
+    a: float = math.sqrt(3.0)
+    b: float = math.sqrt(2.0)
+    c: float = 1.0
+
+    def velocity(self, xyz) -> np.ndarray:
+        p = np.asarray(xyz, dtype=np.float64) * (2.0 * math.pi / self.box_m)
+        x, y, z = p[..., 0], p[..., 1], p[..., 2]
+        u = np.stack([self.a * np.sin(z) + self.c * np.cos(y), self.b * np.sin(x) + self.a * np.cos(z),
+                      self.c * np.sin(y) + self.b * np.cos(x)], axis=-1)
+        return self.speed_m_s * u
+
+    def divergence(self, xyz) -> np.ndarray:
+        return np.zeros(np.asarray(xyz).shape[:-1])
+
+    def vorticity(self, xyz) -> np.ndarray:
+        """∇ × u = k u (1/s × m/s per component), (n, 3)."""
+        return (2.0 * math.pi / self.box_m) * self.velocity(xyz)
+
+
 # ---------------------------------------------------------------- drifters
 def simulate_drifters(field, starts_m, *, duration_s: float, fix_interval_s: float, diffusivity_m2_s: float,
                       position_error_m: float, seed: int, substeps: int = 10, start_times_s=0.0,
                       time_jitter_s: float = 0.0, frame=None, track_prefix: str = "D") -> pd.DataFrame:
-    """Drifters released at ``starts_m`` (k, 2) in ``field``; one row per fix.
+    """Drifters released at ``starts_m`` (k, d), d = 2 or 3, in ``field``; one row per fix.
 
     Between fixes dx = u(x) dt + √(2K) dW is stepped by Euler–Maruyama with
     ``substeps`` equal steps (Kloeden & Platen 1992, eq. 9.1.1; strong order ½,
@@ -198,29 +231,31 @@ def simulate_drifters(field, starts_m, *, duration_s: float, fix_interval_s: flo
     plus whole-second jitter uniform in ±``time_jitter_s`` (j ≥ 1; keep it below
     half the interval).  Each fix gets independent Gaussian error of
     ``position_error_m`` per component.  ``start_times_s``: scalar or (k,).
-    Columns: track_id, time_s, x_m, y_m, and lon, lat when a lon/lat ``frame`` is given.
+    Columns: track_id, time_s, x_m, y_m (z_m in 3-D), and lon, lat when a lon/lat ``frame`` is given.
     """
     rng = np.random.default_rng(seed)
-    x = np.array(starts_m, dtype=np.float64).reshape(-1, 2)
+    starts = np.array(starts_m, dtype=np.float64)
+    dim = starts.shape[-1] if starts.ndim == 2 else 2
+    x = starts.reshape(-1, dim)
     k, m = x.shape[0], int(math.floor(duration_s / fix_interval_s + 1e-9)) + 1
     jitter = np.rint(rng.uniform(-time_jitter_s, time_jitter_s, (k, m))) if time_jitter_s > 0 else np.zeros((k, m))
     jitter[:, 0] = 0.0
     times = np.broadcast_to(np.asarray(start_times_s, float), (k,))[:, None] + fix_interval_s * np.arange(m) + jitter
-    path = np.empty((k, m, 2))
+    path = np.empty((k, m, dim))
     path[:, 0] = x
     for j in range(1, m):
         h = (times[:, j] - times[:, j - 1]) / substeps
         for _ in range(substeps):
-            noise = np.sqrt(2 * diffusivity_m2_s * h)[:, None] * rng.standard_normal((k, 2))
+            noise = np.sqrt(2 * diffusivity_m2_s * h)[:, None] * rng.standard_normal((k, dim))
             x = x + field.velocity(x) * h[:, None] + noise
         path[:, j] = x
     fixes = path + position_error_m * rng.standard_normal(path.shape)
     width = max(3, len(str(k)))
     table = pd.DataFrame({"track_id": np.repeat([f"{track_prefix}{i + 1:0{width}d}" for i in range(k)], m),
-                          "time_s": times.reshape(-1), "x_m": fixes[..., 0].reshape(-1),
-                          "y_m": fixes[..., 1].reshape(-1)})
+                          "time_s": times.reshape(-1)}
+                         | {f"{axis}_m": fixes[..., i].reshape(-1) for i, axis in enumerate("xyz"[:dim])})
     if frame is not None:
-        table["lon"], table["lat"] = frame.to_lonlat(fixes.reshape(-1, 2))
+        table["lon"], table["lat"] = frame.to_lonlat(fixes[..., :2].reshape(-1, 2))
     return table
 
 

@@ -142,21 +142,27 @@ def _keep_reachable(time_s: np.ndarray, position_m: np.ndarray, max_speed_m_s: f
 
 
 def tiny_metre_span(position_m: np.ndarray, time_s: np.ndarray, file: str) -> QCAction | None:
-    """A warning when positions read as metres span less than 1 m over more than a minute.
+    """A warning when positions read as metres span less than 1 m over more than a minute at a crawl.
 
-    The horizontal span is the diagonal of the bounding box of ``position_m[:, :2]`` (n, d) in metres; over
-    a time span (max − min of ``time_s``) above 60 s, anything that moves stays put to within a metre
-    only if the numbers are not metres at all, typically degrees in unlabelled columns.
+    The horizontal span is the diagonal of the bounding box of ``position_m[:, :2]`` (n, d) in metres; the
+    speed is the median of |Δx|/Δt between consecutive rows.  Degrees read as metres give a drifter at
+    0.1–1 m/s a "speed" of 1e-6–1e-5, while particles in a laboratory tank move faster than 1e-4 m/s; so
+    the warning needs a span under 1 m, a duration over 60 s and a median speed under 1e-4 m/s.
     """
     if position_m.shape[0] < 2:
         return None
     span_m = float(np.hypot(*np.ptp(position_m[:, :2], axis=0)))
     duration_s = float(np.ptp(time_s))
-    if not (span_m < 1.0 and duration_s > 60.0):
+    dt = np.diff(time_s)
+    step = np.linalg.norm(np.diff(position_m[:, :2], axis=0), axis=1)
+    moving = dt > 0
+    speed = float(np.median(step[moving] / dt[moving])) if moving.any() else 0.0
+    if not (span_m < 1.0 and duration_s > 60.0 and speed < 1e-4):
         return None
     return QCAction("tiny_metre_span", int(position_m.shape[0]), f"{file}: the positions, read as metres, span "
-                    f"only {span_m:.3g} m over {duration_s:.6g} s; if they are longitude/latitude in degrees, name "
-                    "the columns lon/lat (NetCDF: units degrees_east/degrees_north)", "warning")
+                    f"only {span_m:.3g} m over {duration_s:.6g} s (median speed {speed:.2g} m/s); if they are "
+                    "longitude/latitude in degrees, name the columns lon/lat (NetCDF: units degrees_east/"
+                    "degrees_north)", "warning")
 
 
 def _split_gaps(track, time_s, labels, max_gap_s, file):

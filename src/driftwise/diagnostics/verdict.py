@@ -31,6 +31,8 @@ import math
 
 import numpy as np
 
+from ..data.datascales import check_position_error, data_scales
+from ..data.positionerror import estimate_position_error
 from ..data.tracks import in_model_frame, velocity_observations
 from ..errors import InputError
 from ..gp.field import batch_from_observations, noise_variance_m2_s2
@@ -252,7 +254,7 @@ def finer_maps(maps: CheckMaps, *, factor: int = 3) -> CheckMaps:
 
 
 def check(tracks, *, model=None, holdout_fraction: float = 0.2, seed: int = 0, inducing: int = 64,
-          steps: int = 300, position_error_m: float = 10.0, alpha: float = physics.ALPHA,
+          steps: int = 300, position_error_m: float | None = None, alpha: float = physics.ALPHA,
           progress: bool = False) -> dict:
     """Fit the four families, test the constraints and return the design-sheet dictionary.
 
@@ -263,18 +265,25 @@ def check(tracks, *, model=None, holdout_fraction: float = 0.2, seed: int = 0, i
     ``model``: a fitted FlowField whose posterior is tested instead of the Helmholtz refit
     (a quantity it holds zero by construction is then tested with the Helmholtz refit).
     Families are fitted with ``inducing`` points and at most ``steps`` optimiser steps.
+    ``position_error_m`` None: estimated from the tracks (:mod:`driftwise.data.positionerror`); a given
+    value above the median step between fixes is refused.  The summary records the value and its source.
     """
     return run_check(tracks, model=model, holdout_fraction=holdout_fraction, seed=seed, inducing=inducing,
                      steps=steps, position_error_m=position_error_m, alpha=alpha, progress=progress)[0]
 
 
 def run_check(tracks, *, model=None, holdout_fraction: float = 0.2, seed: int = 0, inducing: int = 64,
-              steps: int = 300, position_error_m: float = 10.0, alpha: float = physics.ALPHA,
+              steps: int = 300, position_error_m: float | None = None, alpha: float = physics.ALPHA,
               progress: bool = False) -> tuple[dict, CheckMaps]:
     """:func:`check` plus the maps for the figures."""
 
     if model is not None:
         tracks = in_model_frame(tracks, model.frame)
+    error_source = "given"
+    if position_error_m is None:
+        position_error_m, error_source = estimate_position_error(tracks, seed=seed).value_m, "estimated"
+    else:
+        check_position_error(position_error_m, data_scales(tracks), option="position error (--position-error)")
     train, held = split_tracks(tracks, holdout_fraction=holdout_fraction, seed=seed)
     every = velocity_observations(tracks, position_error_m=position_error_m)
     held_obs = velocity_observations(held, position_error_m=position_error_m)
@@ -302,5 +311,6 @@ def run_check(tracks, *, model=None, holdout_fraction: float = 0.2, seed: int = 
         "n_tracks": int(tracks.n_tracks), "holdout_track_ids": [str(t) for t in held.unique_ids],
         "seed": seed, "fit_options": {"inducing": inducing, "seed": seed, "position_error_m": position_error_m,
                                        "steps": steps},
+        "position_error_m": float(position_error_m), "position_error_source": error_source,
     }
     return summary, CheckMaps(grid, tests["posteriors"], sig, tests["fields"], tracks.frame, every.position_m)

@@ -43,6 +43,7 @@ import jax.numpy as jnp
 import numpy as np
 from scipy.optimize import minimize
 
+from ..data.datascales import DataScales, data_scales, duration_text
 from ..data.observations import velocity_observations
 from ..data.tracks import Tracks, in_model_frame
 from ..data.windows import forecast_windows
@@ -53,8 +54,10 @@ from ..gp.variational import exact_q
 from .moments import RK4, Linearize, propagate_one, substep_counts
 from .sde import PointPosterior, field_drift, transport_sde, velocity_memory_weight
 
-CALIBRATION_LAGS_S = (3600.0, 3 * 3600.0, 6 * 3600.0, 12 * 3600.0, 24 * 3600.0)
-CALIBRATION_BOUNDS = {"diffusivity_m2_s": (1e-3, 1e4), "decorrelation_time_s": (1.0, 30 * 86400.0)}
+# Lags, bounds and the RK4 step follow the data (driftwise.data.datascales): up to 5 lags from 2 sampling
+# intervals to a third of the median track duration (hourly 3-day tracks: 2, 4, 7, 13, 24 h), K within
+# 1e-5 … 1e3 × step²/Δt, τ within min(1 s, Δt/10) … 30 d, RK4 substeps of the longest lag / 48.
+RK4_STEPS_PER_LONGEST_LAG = 48
 
 
 def _posterior_of(field: Any) -> Any:
@@ -132,12 +135,20 @@ def _tracks_from_observations(obs) -> Any:
                   position_m=pos[order], source="observations")
 
 
-def transitions_from_tracks(tracks_or_observations, *, lags_s=CALIBRATION_LAGS_S, position_error_m: float,
-                            max_starts: int | None = 600, frame: Any = None) -> Transitions:
+def calibration_scales(data: Any) -> DataScales:
+    """The scales (driftwise.data.datascales) of Tracks, or of the fixes behind velocity Observations."""
+    if hasattr(data, "velocity_m_s") and hasattr(data, "dt_s"):
+        data = _tracks_from_observations(data)
+    return data_scales(data)
+
+
+def transitions_from_tracks(tracks_or_observations, *, lags_s, position_error_m: float,
+                            max_starts: int | None = 600, frame: Any = None, floor_m2: float = 0.0) -> Transitions:
     """Every fix after a track's first as a start, with the same track at each lag later.
 
     At most ``max_starts`` starts, evenly spaced over all (deterministic).  Tracks are
     re-projected into ``frame`` (the model's) when given; Observations are turned back into fixes.
+    ``floor_m2`` is added to every observation variance (keeps σ = 0 finite).
     """
 
     data = tracks_or_observations
@@ -146,13 +157,18 @@ def transitions_from_tracks(tracks_or_observations, *, lags_s=CALIBRATION_LAGS_S
     elif frame is not None:
         data = in_model_frame(data, frame)
     lags = np.sort(np.asarray(lags_s, dtype=float))
-    win = forecast_windows(data, lags, step_s=float(lags.max()), max_starts=max_starts)
+    try:
+        win = forecast_windows(data, lags, step_s=float(lags.max()), max_starts=max_starts)
+    except InputError:
+        raise InputError(f"{getattr(data, 'source', 'tracks')}: calibration needs a track observed for "
+                         f"{duration_text(lags.min())} after a fix; no track is; give shorter lags or fit "
+                         "with --no-calibrate") from None
     keep = np.searchsorted(win.times_s, lags)
     valid = win.valid[:, keep]
     pad = (-valid.shape[0]) % 128
     rows = np.r_[np.arange(valid.shape[0]), np.zeros(pad, dtype=int)]
     observed = np.where(valid[..., None], win.observed_m[:, keep], 0.0)[rows]
-    obs_var = (position_error_m**2 * win.obs_var_factor[:, keep] + 1e-6)[rows]
+    obs_var = (position_error_m**2 * win.obs_var_factor[:, keep] + floor_m2)[rows]
     weight = np.concatenate([valid.astype(float), np.zeros((pad, lags.size))])
     return Transitions(win.start_m[rows], np.concatenate([[0.0], lags]), observed, obs_var, weight)
 
@@ -310,20 +326,23 @@ def transition_objective(field: Any, trans: Transitions, sigma: float, method: A
     return fun
 
 
-def calibrate_transport(field: Any, tracks_or_observations, *, lags_s=CALIBRATION_LAGS_S,
+def calibrate_transport(field: Any, tracks_or_observations, *, lags_s=None,
                         position_error_m: float | None = None, method: Any = None, integrator: Any = None,
                         max_starts: int | None = 600, initial: tuple[float, float] | None = None,
                         chunk: int = 4096) -> "Calibration":
     """Estimate the eddy diffusivity K (m²/s) and decorrelation time τ (s) from fit-set transitions.
 
     Maximises the mean transition log likelihood of the section comment above over
-    θ = (log K, log τ) with L-BFGS-B inside ``CALIBRATION_BOUNDS``, from ``initial`` (default:
+    θ = (log K, log τ) with L-BFGS-B inside bounds set by the data's scales (:func:`_bounds`), from
+    ``initial`` (default:
     the field's K and τ, else 1 m²/s and 1 h).  ``field`` is a FlowField or any pytree with
     ``mean_at(x)``/``cov_at(x)`` (e.g. a known analytic field) — or a list of fields with a
     list of track sets of the same length (cross-validation folds: field i forecasts the
     tracks i it was not fitted on; the likelihood is pooled over all folds).  ``method``: a
-    moments strategy, default ``Linearize()`` (the exact fast route); ``integrator`` default
-    RK4 with 30 min steps; ``position_error_m`` defaults to the field's; ``max_starts`` is
+    moments strategy, default ``Linearize()`` (the exact fast route); ``lags_s`` default: the
+    data's (:attr:`driftwise.data.datascales.DataScales.calibration_lags_s`, from the first track set);
+    ``integrator`` default RK4 with steps of the longest lag / 48 (30 min for a 24 h lag);
+    ``position_error_m`` defaults to the field's; ``max_starts`` is
     shared among the folds.  Use the fit set only: calibrating on held-out tracks would leak
     them into the score.  Returns a :class:`Calibration` (K, τ, the optimiser's record, the number of
     transitions and rough log-space standard errors).
@@ -331,15 +350,18 @@ def calibrate_transport(field: Any, tracks_or_observations, *, lags_s=CALIBRATIO
 
 
     fields, datas = _folds(field, tracks_or_observations)
+    scales = calibration_scales(datas[0])
+    lags_s = scales.calibration_lags_s if lags_s is None else lags_s
     method = Linearize() if method is None else method
-    integrator = RK4(step_s=1800.0) if integrator is None else integrator
+    integrator = RK4(step_s=max(lags_s) / RK4_STEPS_PER_LONGEST_LAG) if integrator is None else integrator
     sigma = _calibration_sigma(fields[0], position_error_m)
     per_fold = None if max_starts is None else max(1, int(max_starts) // len(fields))
     transitions = [transitions_from_tracks(data, lags_s=lags_s, position_error_m=sigma, max_starts=per_fold,
-                                           frame=getattr(f, "frame", None)) for f, data in zip(fields, datas)]
+                                           frame=getattr(f, "frame", None), floor_m2=(1e-3 * scales.median_step_m)**2)
+                   for f, data in zip(fields, datas)]
     fun = _pooled([transition_objective(f, t, sigma, method, integrator, chunk) for f, t in zip(fields, transitions)],
                   [float(t.weight.sum()) for t in transitions])
-    bounds = [tuple(np.log(CALIBRATION_BOUNDS[k])) for k in ("diffusivity_m2_s", "decorrelation_time_s")]
+    bounds = _bounds(scales)
     theta0 = np.clip(np.log(_initial_transport(fields[0], initial)), [b[0] for b in bounds], [b[1] for b in bounds])
     result = minimize(fun, theta0, jac=True, method="L-BFGS-B", bounds=bounds,
                       options={"maxiter": 100, "ftol": 1e-12, "gtol": 1e-8})
@@ -353,6 +375,11 @@ def calibrate_transport(field: Any, tracks_or_observations, *, lags_s=CALIBRATIO
         initial=(float(np.exp(theta0[0])), float(np.exp(theta0[1]))), at_bound=_at_bounds(result.x, bounds),
         log_std=_log_std(fun, result.x, int(sum(t.weight.sum() for t in transitions))),
         method=type(method).__name__)
+
+
+def _bounds(scales: DataScales) -> list[tuple[float, float]]:
+    """log-space L-BFGS-B bounds of (K, τ) from the data's scales (driftwise.data.datascales)."""
+    return [tuple(np.log(scales.diffusivity_bounds_m2_s)), tuple(np.log(scales.decorrelation_time_bounds_s))]
 
 
 def _folds(field: Any, data: Any) -> tuple[list[Any], list[Any]]:
@@ -419,11 +446,12 @@ def _calibration_sigma(field: Any, position_error_m: float | None) -> float:
 
 
 def _initial_transport(field: Any, initial: tuple[float, float] | None) -> np.ndarray:
+    """(K, τ) to start from, positive (the caller clips them into the data's bounds)."""
     if initial is not None:
-        return np.maximum(np.asarray(initial, dtype=float), 1e-3)
+        return np.maximum(np.asarray(initial, dtype=float), 1e-300)
     k = getattr(field, "diffusivity_m2_s", None)
     tau = getattr(field, "decorrelation_time_s", None)
-    return np.array([1.0 if k is None else max(float(k), 1e-3), 3600.0 if tau is None else max(float(tau), 1.0)])
+    return np.array([1.0 if k is None else max(float(k), 1e-300), 3600.0 if tau is None else max(float(tau), 1e-300)])
 
 
 def _at_bounds(theta: np.ndarray, bounds) -> dict[str, bool]:
@@ -455,7 +483,7 @@ def _log_std(fun: Callable, theta: np.ndarray, n: int) -> dict[str, float]:
 
 
 def calibrate(field: Any, tracks_or_observations, *, folds: int = 2, refit: Callable[[Any], Any] | None = None,
-              lags_s=CALIBRATION_LAGS_S, max_starts: int | None = 1000, method: Any = None) -> Any:
+              lags_s=None, max_starts: int | None = 1000, method: Any = None) -> Any:
     """The FlowField with K and τ replaced by calibrated values (see :func:`calibrate_transport`).
 
     Give the tracks the field was fitted on.  With ``folds`` ≥ 2 (default 2) the calibration is
@@ -466,9 +494,10 @@ def calibrate(field: Any, tracks_or_observations, *, folds: int = 2, refit: Call
     learnt, so the spread comes out optimistic.  The returned field's ``diffusivity_m2_s`` and
     ``decorrelation_time_s`` (so every forecast and the saved model) use the calibrated values;
     ``fit_info["calibration"]`` keeps the previous ones and the optimiser's record.  The
-    variational posterior itself is unchanged.
+    variational posterior itself is unchanged.  ``lags_s`` default: from the data's sampling interval
+    and track durations (:attr:`driftwise.data.datascales.DataScales.calibration_lags_s`).
     """
-
+    lags_s = calibration_scales(tracks_or_observations).calibration_lags_s if lags_s is None else lags_s
     if folds == 1:
         fields, data = field, tracks_or_observations
     else:

@@ -19,9 +19,9 @@ prior where the data say nothing.
 
 Warm start: the velocity fit (:func:`driftwise.gp.training.fit`); its τ = ℓ/U_rms is held fixed.
 Optimiser: Adam (Kingma & Ba 2015, optax), its rate decaying tenfold every 400 steps, on minibatches of
-transitions from epoch permutations of ``numpy.random.default_rng([seed, epoch])``, the sum scaled by N/b.  Every ``patience`` steps the
-objective on fixed evaluation rows is checked and the fit stops once it gained less than
-1e-4 × max(|L|, N nats).  Checkpoint/resume and the progress bar as in the velocity fit
+transitions from epoch permutations of ``numpy.random.default_rng([seed, epoch])``, the sum scaled by N/b.
+Every ``patience`` steps the objective on fixed evaluation rows is checked and the fit stops once it gained
+less than 1e-4 × max(|L|, N nats).  Checkpoint/resume and the progress bar as in the velocity fit
 (:mod:`driftwise.gp.schedule`).
 
 :func:`choose_likelihood` decides between the two fits from the coarseness of the fixes for the
@@ -52,11 +52,12 @@ from ..errors import InputError
 from ..gp import field as fld
 from ..gp.schedule import Checkpoint, Schedule, TrainConfig, TrainState, load_checkpoint, save_checkpoint
 from ..gp.training import fit
+from ..gp.training import fit_report as velocity_fit_report
 from .methods import METHODS, make_method, method_name
 from .sde import PointPosterior, transport_sde
 from .transitions import FixedStepRK4, ParamPosterior, TransitionSet, log_likelihoods, substeps_for, transition_set
 
-__all__ = ["TRANSITION_SCHEDULE", "COARSENESS_THRESHOLD", "LIKELIHOODS", "LikelihoodChoice", "coarseness",
+__all__ = ["fit_report", "TRANSITION_SCHEDULE", "COARSENESS_THRESHOLD", "LIKELIHOODS", "LikelihoodChoice", "coarseness",
            "choose_likelihood", "fit_transitions", "fit_by_likelihood", "transition_checkpoint_path"]
 
 TRANSITION_SCHEDULE = Schedule(steps=400, batch_size=256, learning_rate=0.02, patience=20, q_update="adam")
@@ -88,8 +89,8 @@ class Propagation:
 
 def _propagation(method: str, trans: TransitionSet, step_s: float, max_substeps: int) -> Propagation:
     if method not in METHODS or METHODS[method].ensemble:
-        raise InputError(f"transition method: use a moment method ({', '.join(n for n, s in METHODS.items() if not s.ensemble)}), "
-                         f"got {method!r}")
+        moment = ", ".join(name for name, spec in METHODS.items() if not spec.ensemble)
+        raise InputError(f"transition method: use a moment method ({moment}), got {method!r}")
     if not (math.isfinite(step_s) and step_s > 0):
         raise InputError(f"step_s must be > 0 seconds, got {step_s!r}")
     strategy, _ = make_method(method)
@@ -349,18 +350,20 @@ def transition_checkpoint_path(path: Path) -> Path:
 
 
 def fit_by_likelihood(tracks, kernel: str, likelihood: str = "auto", *, inducing: int | None = None, seed: int = 0,
-                      position_error_m: float = 10.0, checkpoint: Checkpoint | None = None, quiet: bool = False,
+                      position_error_m: float | None = None, checkpoint: Checkpoint | None = None, quiet: bool = False,
                       schedule: Schedule = Schedule(), transition_schedule: Schedule = TRANSITION_SCHEDULE,
                       method: str = "cubature") -> tuple[fld.FlowField, LikelihoodChoice]:
     """The velocity fit, then (when ``likelihood`` is "transitions", or "auto" finds the fixes coarse) the
     transition fit warm-started from it.  Returns (field, :class:`LikelihoodChoice`).  ``checkpoint`` is the
     velocity fit's; the transition stage keeps its own beside it (:func:`transition_checkpoint_path`) and
-    removes it once it has finished."""
+    removes it once it has finished.  ``position_error_m`` None: the velocity fit's estimate."""
     progress = not quiet
     if likelihood not in LIKELIHOODS:
         raise InputError(f"likelihood: use one of {', '.join(LIKELIHOODS)}, got {likelihood!r}")
     field = fit(tracks, kernel, inducing=inducing, seed=seed, position_error_m=position_error_m, schedule=schedule,
                 checkpoint=checkpoint, progress=progress)
+    if position_error_m is None:      # estimated by the velocity fit
+        position_error_m = field.position_error_m
     trans = transition_set(tracks, position_error_m=position_error_m)
     choice = choose_likelihood(likelihood, field, trans)
     if choice.likelihood == "transitions":
@@ -372,3 +375,12 @@ def fit_by_likelihood(tracks, kernel: str, likelihood: str = "auto", *, inducing
         if stage is not None:
             stage.path.unlink(missing_ok=True)
     return field, choice
+
+
+def fit_report(field: fld.FlowField, choice: LikelihoodChoice) -> dict[str, Any]:
+    """The ``driftwise fit --json`` object: :func:`driftwise.gp.training.fit_report` plus the likelihood used, the
+    coarseness and its threshold (:meth:`LikelihoodChoice.to_dict`) and, after a transition fit, its objective."""
+    info = field.fit_info
+    extra = {key: info[key] for key in ("transition_objective", "transition_steps", "transition_converged",
+                                        "n_transitions", "transition_method") if key in info}
+    return {**velocity_fit_report(field), **choice.to_dict(), **extra}

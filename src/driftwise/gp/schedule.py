@@ -77,6 +77,13 @@ class Checkpoint:
         if not (isinstance(self.every_steps, int) and self.every_steps >= 1):
             raise InputError(f"every_steps must be an integer ≥ 1, got {self.every_steps!r}")
 
+    @classmethod
+    def beside(cls, model_path, *, resume: bool = False) -> Checkpoint:
+        """The checkpoint of a fit writing ``MODEL.npz``: ``MODEL.ckpt.npz`` in the same folder."""
+        path = Path(model_path)
+        stem = path.name[: -len(path.suffix)] if path.suffix else path.name
+        return cls(path.with_name(stem + ".ckpt.npz"), resume=resume)
+
 
 # --------------------------------------------------------------------------- training state
 @dataclasses.dataclass(frozen=True)

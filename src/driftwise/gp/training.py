@@ -52,8 +52,10 @@ import optax
 from scipy.cluster.vq import kmeans2
 from tqdm.auto import tqdm
 
+from ..data.datascales import check_position_error, data_scales
 from ..data.frame import Frame
 from ..data.observations import MIN_FIT_OBSERVATIONS, velocity_observations
+from ..data.positionerror import estimate_position_error
 from ..data.utctime import UNIX_EPOCH_UTC
 from ..errors import InputError
 from . import field as fld
@@ -109,6 +111,19 @@ def _prepare(data, position_error_m: float) -> _Data:
 
     frame = getattr(data, "frame", None) or getattr(obs, "frame", None) or Frame()
     return _Data(obs, batch, n_tracks, frame, _fingerprint(batch), bool(getattr(data, "time_is_absolute", False)))
+
+
+def _position_error(data, position_error_m: float | None, seed: int) -> tuple[float | None, dict[str, Any]]:
+    """σ_pos (m) for the fit and its record.  Tracks: the given value, refused when larger than the
+    data's median step (:func:`driftwise.data.datascales.check_position_error`), or, when None, the
+    estimate of :func:`driftwise.data.positionerror.estimate_position_error`.  Observations carry theirs."""
+    if not hasattr(data, "track_id"):
+        return position_error_m, {"position_error_source": "given"}
+    if position_error_m is not None:
+        check_position_error(position_error_m, data_scales(data), option="position error (--position-error)")
+        return position_error_m, {"position_error_source": "given"}
+    estimate = estimate_position_error(data, seed=seed)
+    return estimate.value_m, {"position_error_source": "estimated", "position_error_estimate": estimate.to_dict()}
 
 
 def _check_finite(batch: fld.ObservationBatch) -> None:
@@ -360,7 +375,8 @@ def _z_scale(params: fld.FieldParams) -> float:
 
 
 # ------------------------------------------------------------------------------ the result
-def _finish(state: TrainState, data: _Data, config: TrainConfig, schedule: Schedule) -> fld.FlowField:
+def _finish(state: TrainState, data: _Data, config: TrainConfig, schedule: Schedule,
+            record: dict[str, Any] | None = None) -> fld.FlowField:
     steps, patience = schedule.steps, schedule.patience
     jitter = state.jitter_multiple
     params = exact_q(state.params, data.batch, jitter_multiple=jitter)
@@ -378,7 +394,7 @@ def _finish(state: TrainState, data: _Data, config: TrainConfig, schedule: Sched
             "learning_rate_final": float(state.opt_state.hyperparams["learning_rate"]),
             "decorrelation_time_source": "length_scale/rms_speed", "rms_speed_m_s": rms_speed,
             "length_scale_m": length,
-            "rms_speed_source": "posterior mean speed at the observation midpoints (RMS)"}
+            "rms_speed_source": "posterior mean speed at the observation midpoints (RMS)"} | (record or {})
     return fld.FlowField.from_params(params, decorrelation_time_s=tau, fit_info=info, **common)
 
 
@@ -440,19 +456,25 @@ def fit_report(field: fld.FlowField) -> dict[str, Any]:
             "elbo_per_observation": info.get("elbo_per_observation"), "hyperparameters": field.hyperparameters,
             "diffusivity_m2_s": field.diffusivity_m2_s, "decorrelation_time_s": field.decorrelation_time_s,
             "decorrelation_time_source": info.get("decorrelation_time_source"), "steps": info.get("steps"),
-            "converged": info.get("converged"), "frame": field.frame_dict}
+            "converged": info.get("converged"), "frame": field.frame_dict,
+            "position_error_m": field.position_error_m,
+            "position_error_source": info.get("position_error_source", "given"),
+            "position_error_estimate": info.get("position_error_estimate")}
 
 
 # ------------------------------------------------------------------------------ the door
 def fit(tracks_or_observations, kernel: str = DEFAULT_FAMILY, *, inducing: int | None = None, seed: int = 0,
-        position_error_m: float = 10.0, base: str = "squared-exponential", schedule: Schedule = Schedule(),
+        position_error_m: float | None = None, base: str = "squared-exponential", schedule: Schedule = Schedule(),
         checkpoint: Checkpoint | None = None, progress: bool = True) -> fld.FlowField:
     """Fit a vector-field GP to drifter tracks (or velocity observations) and return the FlowField.
 
     ``kernel`` a name in :data:`driftwise.gp.kernels.KERNEL_FAMILIES`, ``base`` ∈
     {"squared-exponential", "matern52"}; ``inducing`` M points by k-means (default None:
     min(256, max(16, N/32)) for N velocity observations); ``position_error_m``
-    σ_pos of one fix (m, used when tracks are given).  ``schedule`` (:class:`Schedule`): at most
+    σ_pos of one fix (m, used when tracks are given; None: estimated from the tracks' second
+    differences, :mod:`driftwise.data.positionerror`; a value above the median step between fixes is
+    refused; ``fit_info`` records ``position_error_source``, "given" or "estimated", and the
+    estimate with its standard error).  ``schedule`` (:class:`Schedule`): at most
     ``steps`` optimiser steps, each on all N observations when N ≤ 16 × ``batch_size``; for larger N
     on a fixed seeded subsample of 16 × ``batch_size`` of them (``q_update="auto"``) or on
     minibatches of ``batch_size`` ("adam", "natural").  Every ``patience`` steps the ELBO on fixed
@@ -462,12 +484,14 @@ def fit(tracks_or_observations, kernel: str = DEFAULT_FAMILY, *, inducing: int |
     continues from it and ends where the uninterrupted fit would.
     """
     config = _check_options(kernel, base, inducing, seed, schedule, position_error_m)
+    position_error_m, record = _position_error(tracks_or_observations, position_error_m, int(seed))
     data = _prepare(tracks_or_observations, position_error_m)
-    config = _resolve(config, data.n, fingerprint=data.fingerprint)
+    config = _resolve(config, data.n, fingerprint=data.fingerprint,
+                      position_error_m=float(data.obs.position_error_m))
     train = _subsample(data, config.subsample, config.seed)
     state, z_scale = _start(train, config, learning_rate=schedule.learning_rate, checkpoint=checkpoint)
     state = _train(state, train, config, schedule, z_scale=z_scale, checkpoint=checkpoint, progress=progress)
-    return _finish(state, data, config, schedule)
+    return _finish(state, data, config, schedule, record)
 
 
 def _resolve(config: TrainConfig, n: int, **fields) -> TrainConfig:
@@ -513,8 +537,7 @@ def _check_options(kernel, base, inducing, seed, schedule: Schedule, position_er
         raise InputError(f"inducing must be an integer ≥ 1, got {inducing!r}")
     if not isinstance(seed, (int, np.integer)) or seed < 0:
         raise InputError(f"seed must be a non-negative integer, got {seed!r}")
-    if not (math.isfinite(position_error_m) and position_error_m >= 0):
+    if position_error_m is not None and not (math.isfinite(position_error_m) and position_error_m >= 0):
         raise InputError(f"position error must be a finite number of metres ≥ 0, got {position_error_m!r}")
     return TrainConfig(kernel, base, 0 if inducing is None else int(inducing), int(seed), int(schedule.batch_size),
-                       bool(schedule.learn_inducing), schedule.q_update, float(schedule.natural_step),
-                       float(position_error_m), "")
+                       bool(schedule.learn_inducing), schedule.q_update, float(schedule.natural_step), 0.0, "")
