@@ -32,12 +32,12 @@ from ..diagnostics.verdict import finer_maps, run_check
 from ..dynamics.calibrate import calibrate
 from ..dynamics.methods import DEFAULT_METHOD, DEFAULT_PARTICLES, METHODS
 from ..dynamics.spread import Release, as_releases, read_polygon, read_releases, spread_from_field
+from ..dynamics.transitionfit import LIKELIHOOD_HELP, LIKELIHOODS, fit_by_likelihood, fit_report
 from ..errors import InputError
 from ..files import CAUTION, plain
 from ..gp.kernels import BACKGROUND_HELP, BACKGROUNDS, DEFAULT_FAMILY, KERNEL_FAMILIES
 from ..gp.modelfile import load_model, save_model
 from ..gp.schedule import Checkpoint
-from ..gp.training import fit, fit_report
 from ..products.plots import plot_physics_maps, plot_skill, save_figure
 from ..products.report import complete
 from ..products.writers import (
@@ -275,6 +275,7 @@ def _add_fit(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--max-gap", default=None,
                    help="split a track at gaps longer than this duration, with its unit (e.g. 6h; default: never)")
     p.add_argument("--resume", action="store_true", help="continue from the checkpoint MODEL.ckpt.npz if present")
+    p.add_argument("--likelihood", default="auto", choices=list(LIKELIHOODS), help=LIKELIHOOD_HELP)
     p.add_argument("--calibrate", action=argparse.BooleanOptionalAction, default=True,
                    help="after the fit, estimate K and tau from the likelihood of displacements between fixes "
                    "(lags from 2 fixes to a third of the tracks' duration) and store them in the model (default: on)")
@@ -296,8 +297,9 @@ def _run_fit(args: argparse.Namespace) -> int:
     checkpoint = Checkpoint.beside(args.out, resume=args.resume)
     existed = checkpoint.path.exists()
     try:
-        field = fit(tracks, args.kernel, inducing=args.inducing, seed=args.seed, position_error_m=position_error,
-                    checkpoint=checkpoint, progress=not (args.quiet or args.json), background=args.background)
+        field, choice = fit_by_likelihood(tracks, args.kernel, args.likelihood, inducing=args.inducing, seed=args.seed,
+            position_error_m=position_error, checkpoint=checkpoint, quiet=args.quiet or args.json,
+            background=args.background)
     except KeyboardInterrupt:
         print(f"driftwise: fit interrupted; continue with --resume (checkpoint {checkpoint.path})", file=sys.stderr)
         raise
@@ -309,7 +311,7 @@ def _run_fit(args: argparse.Namespace) -> int:
     if args.calibrate:
         field = calibrate(field, tracks)
     written = save_model(field, args.out)
-    report = {**fit_report(field), "model": str(written)} | (
+    report = {**fit_report(field, choice), "model": str(written)} | (
         {"calibration": field.fit_info.get("calibration")} if args.calibrate else {})
     if args.json:
         print_json(report)
@@ -328,7 +330,7 @@ def _format_fit(report: dict[str, Any]) -> str:
     lines.append("  " + position_error_text(report))
     lines += [f"  decorrelation time τ = {report['decorrelation_time_s']:.4g} s "
               f"({report.get('decorrelation_time_source') or 'length scale / RMS speed'})",
-              f"wrote {report['model']}"]
+              f"  likelihood: {report['likelihood_reason']}", f"wrote {report['model']}"]
     return "\n".join(lines)
 
 
