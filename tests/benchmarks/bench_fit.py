@@ -89,16 +89,16 @@ def step_flops(b, d, M, q_update):
 
 
 def time_step(q_update, M=256, b=1024, n=20000):
-    data = F._prepare(observations(n, 1), SIGMA_POS)
-    config = F._check_options("helmholtz", "squared-exponential", M, 0, Schedule(steps=100, batch_size=b, learning_rate=0.05, patience=15, q_update=q_update, natural_step=0.5), SIGMA_POS)
+    data = F.prepare_data(observations(n, 1), SIGMA_POS)
+    config = F.check_options("helmholtz", "squared-exponential", M, 0, Schedule(steps=100, batch_size=b, learning_rate=0.05, patience=15, q_update=q_update, natural_step=0.5), SIGMA_POS)
     config = F.dataclasses.replace(config, fingerprint=data.fingerprint)
-    state, z_scale = F._start(data, config, learning_rate=0.05, checkpoint=None)
+    state, z_scale = F.start_state(data, config, learning_rate=0.05, checkpoint=None)
     for _ in range(2):  # compile, warm up
-        state = F._advance(state, data, config, z_scale)
+        state = F.advance(state, data, config, z_scale)
     times = []
     for _ in range(9):
         t0 = time.perf_counter()
-        state = F._advance(state, data, config, z_scale)
+        state = F.advance(state, data, config, z_scale)
         jax.block_until_ready(state.params)
         times.append(time.perf_counter() - t0)
     seconds = float(np.median(times))
@@ -248,7 +248,7 @@ def part_exact():
     sv_mean, _ = field.predict(test)
     sv_seconds += time.perf_counter() - t0
     config = TrainConfig("helmholtz", "squared-exponential", 256, 0, 1024, False, "auto", 0.5, SIGMA_POS, "")
-    init = F._initial_params(F._prepare(obs, SIGMA_POS), config)   # the default background, as in the sparse fit
+    init = F._initial_params(F.prepare_data(obs, SIGMA_POS), config)   # the default background, as in the sparse fit
     ex_seconds, ex_mean, ex_steps = exact_gp(obs, init, test)
     sv_rmse, ex_rmse = rmse(sv_mean, test), rmse(ex_mean, test)
     rows.append(("N = 5,000: sparse fit + predict", f"{sv_seconds:.1f} s, RMSE {sv_rmse:.4f} m/s",

@@ -262,7 +262,7 @@ def part_b(args, field, sde: SDE, peak: float) -> list[str]:
     dynamic, static = split_for_jit(sde)
     chunk = min(args.release_chunk, args.releases)
     start = time.perf_counter()
-    compiled = moments._propagate_batch_jit.lower(
+    compiled = moments.propagate_batch_jit.lower(
         dynamic, static, moments.SphericalCubature(), integrator, chunk, means0, covs0, times
     ).compile()
     first = time.perf_counter() - start

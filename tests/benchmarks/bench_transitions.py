@@ -62,9 +62,9 @@ def step_cost(method: str) -> None:
                                       jitter_multiple=warm.jitter_multiple)[2])
     obs = driftwise.velocity_observations(tracks, position_error_m=SIGMA_M)
     batch = fld.batch_from_observations(obs, idx=list(range(b)))
-    names = F._trainable_names("adam", False)
+    names = F.trainable_names("adam", False)
     vopt = F._optimizer().init(F._split(params, names, 1.0))
-    t_vel = _timed(lambda: F._step(params, vopt, batch, float(obs.n), 1.0, 1.0, names=names, q_update="adam",
+    t_vel = _timed(lambda: F.optimiser_step(params, vopt, batch, float(obs.n), 1.0, 1.0, names=names, q_update="adam",
                                    jitter_multiple=warm.jitter_multiple)[2])
     print(f"step cost, M = {params.n_inducing}, batch {b}, {prop.integrator.substeps} RK4 substeps, {method}: "
           f"velocities {t_vel * 1e3:.1f} ms, transitions {t_trans * 1e3:.1f} ms, ratio {t_trans / t_vel:.1f}x")

@@ -160,7 +160,7 @@ def test_hull_grid_membership_matches_polygon_test():
 def test_joint_part_covariance_matches_cov_between():
     field = exact_field("helmholtz", curl_free_velocity_scale_m_s=0.1, curl_free_length_scale_m=1500.0)
     pts = POINTS[:3]
-    cov = np.asarray(P._joint_part_covariance(field, jnp.asarray(pts)))
+    cov = np.asarray(P.joint_part_covariance(field, jnp.asarray(pts)))
     g, d = pts.shape
     for p, part_p in enumerate(P.PARTS):
         for q, part_q in enumerate(P.PARTS):
@@ -178,8 +178,8 @@ def test_split_delta_method_std_matches_monte_carlo():
     grid = P.hull_grid(np.asarray(field.params.inducing_m), n_cells=60)
     split = P.helmholtz_split(field, grid.points_m)
     x = jnp.asarray(grid.points_m)
-    means = np.concatenate([np.asarray(P._part_means(field, x, p)).ravel() for p in P.PARTS])
-    cov = np.asarray(P._joint_part_covariance(field, x))
+    means = np.concatenate([np.asarray(P.part_means(field, x, p)).ravel() for p in P.PARTS])
+    cov = np.asarray(P.joint_part_covariance(field, x))
     vals, vecs = np.linalg.eigh(cov)
     draws = means + np.random.default_rng(5).standard_normal((4000, means.size)) @ (vecs * np.sqrt(np.clip(vals, 0, None))).T
     df, cf = draws.reshape(4000, 2, -1).transpose(1, 0, 2)

@@ -247,7 +247,7 @@ def _dopri_fixed_step_error(n):
     a = jnp.asarray(A_OU)
     y = jnp.asarray(M0)
     for _ in range(n):
-        y, _ = moments._dopri5_step(lambda v: a @ v, y, 4.0 / n)
+        y, _ = moments.dopri5_step(lambda v: a @ v, y, 4.0 / n)
     return float(np.linalg.norm(y - ou_exact(4.0)[0]))
 
 
@@ -306,12 +306,12 @@ def test_no_recompilation_on_second_batch_call():
     times = np.array([0.0, 1.0, 2.0])
     means0, covs0 = np.zeros((4, 2)), np.zeros((4, 2, 2))
     moments.propagate_batch(ou_sde(), means0, covs0, times, chunk=2, integrator=RK4(0.1))
-    before = moments._propagate_batch_jit._cache_size()
+    before = moments.propagate_batch_jit._cache_size()
     # new values everywhere (drift matrix, diffusion, releases, times, step), same shapes and method
     means, _ = moments.propagate_batch(
         ou_sde(a=A_OU.T, lmat=2 * L_OU), means0 + 1.0, covs0 + np.eye(2), times * 3, chunk=2, integrator=RK4(0.05)
     )
-    assert moments._propagate_batch_jit._cache_size() == before
+    assert moments.propagate_batch_jit._cache_size() == before
     exact = ou_exact(6.0, a=A_OU.T, lmat=2 * L_OU, m0=np.ones(2))[0]
     np.testing.assert_allclose(means[0, -1], exact, rtol=1e-6, atol=1e-6)  # RK4 at step 0.05: ~5e-8 error
 

@@ -133,10 +133,10 @@ def test_two_fields_of_equal_shape_share_one_compilation(fitted_field):
     means0 = np.array([[2000.0, 3000.0], [6000.0, 6000.0], [8000.0, 1000.0]])
     covs0 = np.zeros((3, 2, 2))
     first = moments.propagate_batch(sde_from_field(fitted_field), means0, covs0, times, chunk=2)
-    before = moments._propagate_batch_jit._cache_size()
+    before = moments.propagate_batch_jit._cache_size()
     other = make_field(seed=1, length_scale_m=4000.0)
     second = moments.propagate_batch(sde_from_field(other), means0, covs0, times, chunk=2)
-    assert moments._propagate_batch_jit._cache_size() == before
+    assert moments.propagate_batch_jit._cache_size() == before
     assert np.max(np.abs(np.asarray(first[0] - second[0]))) > 1.0  # a different field moves releases differently
 
 

@@ -157,7 +157,7 @@ def test_elbo_at_optimal_q_equals_titsias_collapsed_bound():
     kern, x = params.kernel, jnp.asarray(obs.position_m)
     zz = jnp.asarray(z)
     kzz = np.asarray(_dense(kern, zz, zz))
-    kzz += fld._jitter_m2_s2(kern, zz[0], fld.JITTER_MULTIPLE) * np.eye(2 * N_INDUCING)
+    kzz += fld.jitter_m2_s2(kern, zz[0], fld.JITTER_MULTIPLE) * np.eye(2 * N_INDUCING)
     kxz = np.asarray(_dense(kern, x, zz))
     q_ff = kxz @ np.linalg.solve(kzz, kxz.T)
     noise = np.repeat(r, 2)
@@ -189,7 +189,7 @@ def test_minibatch_elbo_matches_dense_reference():
 
     kern = params.kernel
     kzz = np.asarray(_dense(kern, jnp.asarray(z), jnp.asarray(z)))
-    chol = np.linalg.cholesky(kzz + fld._jitter_m2_s2(kern, jnp.asarray(z[0]), fld.JITTER_MULTIPLE) * np.eye(20))
+    chol = np.linalg.cholesky(kzz + fld.jitter_m2_s2(kern, jnp.asarray(z[0]), fld.JITTER_MULTIPLE) * np.eye(20))
     m = np.asarray(params.q_mean)
     total = 0.0
     for n in idx:
@@ -268,9 +268,9 @@ def test_jit_equals_eager_and_no_recompilation():
         np.testing.assert_allclose(jit_cov, field.cov_between(x, y), rtol=1e-10, atol=1e-16)
     pts = np.random.default_rng(15).uniform(0, 4 * ELL, (50, 2))
     field.predict(pts)
-    compiled = fld._predict_chunk._cache_size()
+    compiled = fld.predict_chunk._cache_size()
     mean, cov = field.predict(pts + 7.0)
-    assert fld._predict_chunk._cache_size() == compiled
+    assert fld.predict_chunk._cache_size() == compiled
     np.testing.assert_allclose(mean, jax.vmap(field.mean_at)(jnp.asarray(pts + 7.0)), rtol=1e-10, atol=1e-14)
 
 

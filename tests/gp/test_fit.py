@@ -75,21 +75,21 @@ def test_chunked_optimal_q_equals_one_batch_closed_form(tracks, monkeypatch):
 
 
 def test_plateau_rule():
-    assert not fitmod._plateau((), 100) and not fitmod._plateau((-50.0,), 100)
-    assert not fitmod._plateau((-500.0, -400.0), 100)       # gained 100 nats > 1e-4 · max(400, 100)
-    assert fitmod._plateau((-500.0, -499.99), 100)          # gained 0.01 < 0.05
-    assert fitmod._plateau((-500.0, -510.0), 100)           # got worse
-    assert fitmod._plateau((10.0, 10.005), 100)             # near-zero ELBO: the floor N · 1e-4 = 0.01 applies
-    assert not fitmod._plateau((10.0, 10.02), 100)
+    assert not fitmod.plateau_reached((), 100) and not fitmod.plateau_reached((-50.0,), 100)
+    assert not fitmod.plateau_reached((-500.0, -400.0), 100)       # gained 100 nats > 1e-4 · max(400, 100)
+    assert fitmod.plateau_reached((-500.0, -499.99), 100)          # gained 0.01 < 0.05
+    assert fitmod.plateau_reached((-500.0, -510.0), 100)           # got worse
+    assert fitmod.plateau_reached((10.0, 10.005), 100)             # near-zero ELBO: the floor N · 1e-4 = 0.01 applies
+    assert not fitmod.plateau_reached((10.0, 10.02), 100)
 
 
 def test_auto_schedule_uses_all_data_with_exact_q_when_it_fits():
-    config = fitmod._check_options("helmholtz", "squared-exponential", 16, 0,
+    config = fitmod.check_options("helmholtz", "squared-exponential", 16, 0,
                                    Schedule(steps=10, batch_size=100, learning_rate=0.05, patience=5), 10.0)
-    small, large = fitmod._resolve(config, 1600), fitmod._resolve(config, 1601)   # 16 × batch 100
+    small, large = fitmod.resolve_rows(config, 1600), fitmod.resolve_rows(config, 1601)   # 16 × batch 100
     assert (small.batch_size, small.q_update, small.subsample) == (1600, "natural", 0)
     assert (large.batch_size, large.q_update, large.subsample) == (1600, "natural", 1600)
-    minibatch = fitmod._resolve(dataclasses.replace(config, q_update="adam"), 1601)
+    minibatch = fitmod.resolve_rows(dataclasses.replace(config, q_update="adam"), 1601)
     assert (minibatch.batch_size, minibatch.q_update, minibatch.subsample) == (100, "adam", 0)
 
 
@@ -99,7 +99,7 @@ def test_large_n_fits_hyperparameters_on_a_subsample_then_q_on_all_data(tracks):
     from driftwise.gp.variational import exact_q, full_elbo
 
     field = driftwise.fit(tracks, schedule=Schedule(steps=8, patience=1000, batch_size=16), **SMALL)
-    data = fitmod._prepare(tracks, SMALL["position_error_m"])
+    data = fitmod.prepare_data(tracks, SMALL["position_error_m"])
     assert data.n == 288 and field.fit_info["hyperparameter_rows"] == 256
     rows = fitmod.subsample_rows(data.n, 256, 0)
     obs = data.obs
@@ -138,17 +138,17 @@ def test_resume_after_interrupt_ends_at_the_same_elbo(tracks, tmp_path, monkeypa
     options = dict(SMALL, schedule=Schedule(steps=16, patience=1000, batch_size=16, q_update=q_update), seed=7)  # 288 > 16 × 16: minibatches
     straight = driftwise.fit(tracks, **options)
     checkpoint = tmp_path / "run.ckpt.npz"
-    real_advance = fitmod._advance
+    real_advance = fitmod.advance
 
     def stop_at_11(state, *args, **kwargs):
         if state.step == 11:
             raise stop
         return real_advance(state, *args, **kwargs)
 
-    monkeypatch.setattr(fitmod, "_advance", stop_at_11)
+    monkeypatch.setattr(fitmod, "advance", stop_at_11)
     with pytest.raises(stop):
         driftwise.fit(tracks, checkpoint=Checkpoint(checkpoint, every_steps=5), **options)
-    monkeypatch.setattr(fitmod, "_advance", real_advance)
+    monkeypatch.setattr(fitmod, "advance", real_advance)
     with np.load(checkpoint, allow_pickle=False) as saved:
         assert json.loads(str(saved["meta"]))["step"] == saved_step
     resumed = driftwise.fit(tracks, checkpoint=Checkpoint(checkpoint, resume=True, every_steps=5), **options)
@@ -198,21 +198,21 @@ def _loop_parts(tracks, **overrides):
     """The pieces fit() builds before its loop: data, config, initial state, Z scale."""
     options = dict(steps=10, batch_size=1024, learning_rate=0.04, patience=5, q_update="adam", natural_step=0.5)
     options.update(overrides)
-    data = fitmod._prepare(tracks, 5.0)
-    config = fitmod._check_options("helmholtz", "squared-exponential", 12, 0, Schedule(**options), 5.0)
+    data = fitmod.prepare_data(tracks, 5.0)
+    config = fitmod.check_options("helmholtz", "squared-exponential", 12, 0, Schedule(**options), 5.0)
     config = dataclasses.replace(config, fingerprint=data.fingerprint)
-    state, z_scale = fitmod._start(data, config, learning_rate=options["learning_rate"], checkpoint=None)
+    state, z_scale = fitmod.start_state(data, config, learning_rate=options["learning_rate"], checkpoint=None)
     return data, config, state, z_scale
 
 
 def test_the_compiled_step_flags_a_non_finite_elbo(tracks):
     data, config, state, z_scale = _loop_parts(tracks)
-    names = fitmod._trainable_names("adam", False)
-    good = fitmod._step(state.params, state.opt_state, data.batch, float(data.n), 1.0, z_scale, names=names,
+    names = fitmod.trainable_names("adam", False)
+    good = fitmod.optimiser_step(state.params, state.opt_state, data.batch, float(data.n), 1.0, z_scale, names=names,
                         q_update="adam", jitter_multiple=fld.JITTER_MULTIPLE)
     assert bool(good[3]) and np.isfinite(float(good[2]))
     broken = dataclasses.replace(state.params, log_noise_floor_m_s=state.params.log_noise_floor_m_s * np.nan)
-    bad = fitmod._step(broken, state.opt_state, data.batch, float(data.n), 1.0, z_scale, names=names,
+    bad = fitmod.optimiser_step(broken, state.opt_state, data.batch, float(data.n), 1.0, z_scale, names=names,
                        q_update="adam", jitter_multiple=fld.JITTER_MULTIPLE)
     assert not bool(bad[3])
 
@@ -228,8 +228,8 @@ def _fake_step(outcomes, seen):
 def test_non_finite_step_is_retried_with_more_jitter_then_a_smaller_step(tracks, monkeypatch):
     data, config, state, z_scale = _loop_parts(tracks)
     seen = []
-    monkeypatch.setattr(fitmod, "_step", _fake_step(lambda n: n > 2, seen))   # two failures, then success
-    new = fitmod._advance(state, data, config, z_scale)
+    monkeypatch.setattr(fitmod, "optimiser_step", _fake_step(lambda n: n > 2, seen))   # two failures, then success
+    new = fitmod.advance(state, data, config, z_scale)
     assert seen == [(1e6, 0.04), (1e8, 0.04), (1e10, 0.02)]
     assert new.step == 1 and new.history == (-1.0,) and new.jitter_multiple == 1e10
     assert float(new.opt_state.hyperparams["learning_rate"]) == pytest.approx(0.02, rel=1e-12, abs=0.0)
@@ -238,9 +238,9 @@ def test_non_finite_step_is_retried_with_more_jitter_then_a_smaller_step(tracks,
 def test_persistent_non_finite_step_raises_a_clear_error(tracks, monkeypatch):
     data, config, state, z_scale = _loop_parts(tracks)
     seen = []
-    monkeypatch.setattr(fitmod, "_step", _fake_step(lambda n: False, seen))
+    monkeypatch.setattr(fitmod, "optimiser_step", _fake_step(lambda n: False, seen))
     with pytest.raises(RuntimeError, match="non-finite at step 0 after 6 retries"):
-        fitmod._advance(state, data, config, z_scale)
+        fitmod.advance(state, data, config, z_scale)
     assert len(seen) == 7 and max(j for j, _ in seen) == fitmod.MAX_JITTER_MULTIPLE
     assert seen[-1][1] == pytest.approx(0.04 / 8, rel=1e-12, abs=0.0)
 

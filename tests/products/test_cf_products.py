@@ -261,11 +261,11 @@ def test_fit_records_the_time_origin_only_for_absolute_times():
     rows += [("b", f"2024-06-03T{h:02d}:00:00Z", -9.0, 44.0 + 0.001 * h) for h in range(6)]
 
     table = pd.DataFrame(rows, columns=["track_id", "time", "lon", "lat"])
-    absolute = fitting._data_summary(fitting._prepare(tracks_from_frame(table), 10.0))
+    absolute = fitting.data_summary(fitting.prepare_data(tracks_from_frame(table), 10.0))
     assert absolute["time_origin_utc"] == "1970-01-01T00:00:00Z"
     assert absolute["time_span_s"][1] == pytest.approx(T0_S - 3600.0 * 7.5, abs=1e-6)   # last midpoint 04:30Z
     relative = table.assign(time=np.tile(3600.0 * np.arange(6), 2))
-    assert "time_origin_utc" not in fitting._data_summary(fitting._prepare(tracks_from_frame(relative), 10.0))
+    assert "time_origin_utc" not in fitting.data_summary(fitting.prepare_data(tracks_from_frame(relative), 10.0))
 
 
 def test_cli_spread_uses_the_model_time_origin_and_old_files_still_load(tmp_path, capsys):

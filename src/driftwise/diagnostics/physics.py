@@ -329,12 +329,13 @@ PARTS = ("divergence_free", "curl_free")
 
 
 @functools.partial(jax.jit, static_argnames=("part",))
-def _part_means(field, points: jax.Array, part: str) -> jax.Array:
+def part_means(field, points: jax.Array, part: str) -> jax.Array:
+    """Posterior means (n, d) m/s of one Helmholtz ``part`` at ``points`` (n, d) m."""
     return jax.vmap(lambda x: field.mean_at(x, part))(points)
 
 
 @jax.jit
-def _joint_part_covariance(field, points: jax.Array) -> jax.Array:
+def joint_part_covariance(field, points: jax.Array) -> jax.Array:
     """Posterior covariance of (v_df(X), v_cf(X)) jointly, (2·G·d, 2·G·d), ordered part, point, component.
 
     The off-diagonal part blocks are the posterior cross-covariance Cov[v_df(x), v_cf(y)] —
@@ -410,8 +411,8 @@ def helmholtz_split(field, points, *, max_points: int = 160) -> HelmholtzSplit:
         raise InputError("the Helmholtz split needs at least one point inside the data hull")
     x = x[np.unique(np.linspace(0, x.shape[0] - 1, min(max_points, x.shape[0])).round().astype(int))]
     xj = jnp.asarray(x)
-    means = np.concatenate([np.asarray(_part_means(field, xj, p)).ravel() for p in PARTS])
-    return _split_from_moments(means, np.asarray(_joint_part_covariance(field, xj)), x.shape[0])
+    means = np.concatenate([np.asarray(part_means(field, xj, p)).ravel() for p in PARTS])
+    return _split_from_moments(means, np.asarray(joint_part_covariance(field, xj)), x.shape[0])
 
 
 # --------------------------------------------------------------------------------------

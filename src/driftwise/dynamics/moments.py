@@ -266,7 +266,7 @@ _DP_B5 = (35 / 384, 0.0, 500 / 1113, 125 / 192, -2187 / 6784, 11 / 84, 0.0)
 _DP_B4 = (5179 / 57600, 0.0, 7571 / 16695, 393 / 640, -92097 / 339200, 187 / 2100, 1 / 40)
 
 
-def _dopri5_step(f: Callable, y: jax.Array, h: jax.Array) -> tuple[jax.Array, jax.Array]:
+def dopri5_step(f: Callable, y: jax.Array, h: jax.Array) -> tuple[jax.Array, jax.Array]:
     """One Dormand–Prince step: (5th-order solution, its 4th-order error estimate)."""
     ks = []
     for row in _DP_A:
@@ -326,7 +326,7 @@ class Dopri5:
             t, y, h, n = state
             last = h >= span - t
             h_try = jnp.where(last, span - t, h)
-            y_new, err = _dopri5_step(f, y, h_try)
+            y_new, err = dopri5_step(f, y, h_try)
             scale = self.atol + self.rtol * jnp.maximum(jnp.abs(y), jnp.abs(y_new))
             err_norm = jnp.sqrt(jnp.mean((err / scale) ** 2))
             accept = err_norm <= 1.0
@@ -367,7 +367,8 @@ def _propagate_jit(dynamic, static, method, integrator, mean0, cov0, times_s):
 
 
 @partial(jax.jit, static_argnames=("static", "method", "chunk"))
-def _propagate_batch_jit(dynamic, static, method, integrator, chunk, means0, covs0, times_s):
+def propagate_batch_jit(dynamic, static, method, integrator, chunk, means0, covs0, times_s):
+    """The compiled batch propagator behind :func:`propagate_batch` (exposed so tests can count compilations)."""
     sde = join_from_jit(dynamic, static)
 
     def one(release):
@@ -453,4 +454,4 @@ def propagate_batch(
     times = validate_times(times_s)
     dynamic, static = split_for_jit(sde)
     chunk = min(chunk, means.shape[0])
-    return _propagate_batch_jit(dynamic, static, method, integrator, chunk, means, covs, times)
+    return propagate_batch_jit(dynamic, static, method, integrator, chunk, means, covs, times)

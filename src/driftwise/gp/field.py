@@ -216,7 +216,7 @@ def batch_from_observations(obs, idx=None) -> ObservationBatch:
 # --------------------------------------------------------------------------------------
 # Shared linear algebra
 # --------------------------------------------------------------------------------------
-def _jitter_m2_s2(kernel: MatrixKernel, point: jax.Array, jitter_multiple: float) -> jax.Array:
+def jitter_m2_s2(kernel: MatrixKernel, point: jax.Array, jitter_multiple: float) -> jax.Array:
     """δ = multiple × eps × per-component prior variance tr K(z, z)/d (m²/s²)."""
     variance = jnp.trace(kernel.block(point, point)) / point.shape[-1]
     return jitter_multiple * jnp.finfo(point.dtype).eps * variance
@@ -227,7 +227,7 @@ def inducing_cholesky(params: FieldParams, *, jitter_multiple: float = JITTER_MU
     """L_Z with L_Z L_Zᵀ = K_ZZ + δI, shape (M·d, M·d), flattened point-major."""
     z = params.inducing_m
     kzz = params.kernel.gram_matrix(z, z)
-    delta = _jitter_m2_s2(params.kernel, z[0], jitter_multiple)
+    delta = jitter_m2_s2(params.kernel, z[0], jitter_multiple)
     return jnp.linalg.cholesky(kzz + delta * jnp.eye(kzz.shape[0], dtype=kzz.dtype))
 
 
@@ -518,7 +518,7 @@ class FlowField:
             block = x[start:start + chunk]
             padded = np.zeros((chunk, self.dim))
             padded[: block.shape[0]] = block
-            mean, cov = _predict_chunk(self, jnp.asarray(padded))
+            mean, cov = predict_chunk(self, jnp.asarray(padded))
             means.append(np.asarray(mean[: block.shape[0]]))
             covs.append(np.asarray(cov[: block.shape[0]]))
         if not means:
@@ -527,7 +527,8 @@ class FlowField:
 
 
 @jax.jit
-def _predict_chunk(field: FlowField, x: jax.Array):
+def predict_chunk(field: FlowField, x: jax.Array):
+    """Posterior mean (n, d) and covariance (n, d, d) of one chunk of points, compiled once per chunk shape."""
     return jax.vmap(field._moments_one)(x)
 
 

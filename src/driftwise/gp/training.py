@@ -93,7 +93,7 @@ class _Data:
         return int(self.batch.position_m.shape[0])
 
 
-def _prepare(data, position_error_m: float) -> _Data:
+def prepare_data(data, position_error_m: float) -> _Data:
     """Tracks → velocity observations (or Observations as given), validated."""
     if hasattr(data, "velocity_m_s") and hasattr(data, "dt_s"):
         obs = data
@@ -212,7 +212,8 @@ def _optimizer() -> optax.GradientTransformation:
     return optax.inject_hyperparams(optax.adam, hyperparam_dtype=jnp.float64)(learning_rate=Schedule().learning_rate)
 
 
-def _trainable_names(q_update: str, learn_inducing: bool) -> tuple[str, ...]:
+def trainable_names(q_update: str, learn_inducing: bool) -> tuple[str, ...]:
+    """The FieldParams leaves Adam moves: the hyperparameters, q too for "adam", Z when learned."""
     names = _HYPER_NAMES + (("q_mean", "q_sqrt_raw") if q_update == "adam" else ())
     return names + (("inducing_m",) if learn_inducing else ())
 
@@ -233,7 +234,7 @@ def _all_finite(tree) -> jax.Array:
 
 
 @jax.jit(static_argnames=("names", "q_update", "jitter_multiple"))
-def _step(params, opt_state, batch, n_total, gamma, z_scale, *, names, q_update, jitter_multiple):
+def optimiser_step(params, opt_state, batch, n_total, gamma, z_scale, *, names, q_update, jitter_multiple):
     """One optimiser step → (params, opt_state, ELBO estimate at the step's start, all finite?)."""
     if q_update == "natural":
         params = natural_step(params, batch, n_total, gamma, jitter_multiple=jitter_multiple)
@@ -275,7 +276,7 @@ def _epoch_permutation(n: int, seed: int, epoch: int) -> np.ndarray:
     return _PERMUTATION_CACHE[key]
 
 
-def _plateau(checks: tuple[float, ...], n_total: int) -> bool:
+def plateau_reached(checks: tuple[float, ...], n_total: int) -> bool:
     """The last check gained < REL_TOL · max(|previous check|, N nats) on the one before."""
     if len(checks) < 2:
         return False
@@ -295,18 +296,18 @@ def _check(state: TrainState, data: _Data, config: TrainConfig) -> TrainState:
     batch = data.batch if idx is None else take(data.batch, idx)
     value = float(fld.elbo(state.params, batch, float(data.n), jitter_multiple=state.jitter_multiple))
     checks = state.checks + (value,)
-    return dataclasses.replace(state, checks=checks, converged=_plateau(checks, data.n))
+    return dataclasses.replace(state, checks=checks, converged=plateau_reached(checks, data.n))
 
 
-def _advance(state: TrainState, data: _Data, config: TrainConfig, z_scale: float) -> TrainState:
+def advance(state: TrainState, data: _Data, config: TrainConfig, z_scale: float) -> TrainState:
     """One accepted step; on a non-finite ELBO/gradient retry with 100× jitter, then also half the step size."""
     idx = _batch_indices(data.n, config.batch_size, config.seed, state.step)
     batch = data.batch if idx is None else take(data.batch, idx)
     gamma = 1.0 if idx is None else config.natural_step
-    names = _trainable_names(config.q_update, config.learn_inducing)
+    names = trainable_names(config.q_update, config.learn_inducing)
     jitter, opt_state = state.jitter_multiple, state.opt_state
     for attempt in range(RETRIES + 1):
-        params, new_opt, value, ok = _step(state.params, opt_state, batch, float(data.n), gamma, z_scale,
+        params, new_opt, value, ok = optimiser_step(state.params, opt_state, batch, float(data.n), gamma, z_scale,
                                            names=names, q_update=config.q_update, jitter_multiple=jitter)
         if bool(ok):
             return dataclasses.replace(state, params=params, opt_state=new_opt, step=state.step + 1,
@@ -333,7 +334,7 @@ def _train(state: TrainState, data: _Data, config: TrainConfig, schedule: Schedu
     bar = _progress(steps, min(state.step, steps), progress)
     try:
         while state.step < steps and not state.converged:
-            state = _advance(state, data, config, z_scale)
+            state = advance(state, data, config, z_scale)
             if state.step % patience == 0:
                 state = _check(state, data, config)
             if checkpoint is not None and state.step % checkpoint.every_steps == 0:
@@ -352,11 +353,11 @@ def _train(state: TrainState, data: _Data, config: TrainConfig, schedule: Schedu
     return state
 
 
-def _start(data: _Data, config: TrainConfig, *, learning_rate: float,
+def start_state(data: _Data, config: TrainConfig, *, learning_rate: float,
            checkpoint: Checkpoint | None) -> tuple[TrainState, float]:
     """The initial state (or the checkpointed one) and the scale of Z's trainable coordinates (m)."""
     params = _initial_params(data, config)
-    names = _trainable_names(config.q_update, config.learn_inducing)
+    names = trainable_names(config.q_update, config.learn_inducing)
     z_scale = _z_scale(params)
     opt_state = _with_learning_rate(_optimizer().init(_split(params, names, z_scale)), learning_rate)
     state = TrainState(params, opt_state, 0, (), fld.JITTER_MULTIPLE)
@@ -389,7 +390,7 @@ def _finish(state: TrainState, data: _Data, config: TrainConfig, schedule: Sched
     elbo = full_elbo(params, data.batch, jitter_multiple=jitter)
     if not math.isfinite(elbo):
         raise RuntimeError("fit: the final ELBO is not finite; refit with fewer inducing points or check the data")
-    common = dict(frame=data.frame, data_summary=_data_summary(data), jitter_multiple=jitter,
+    common = dict(frame=data.frame, data_summary=data_summary(data), jitter_multiple=jitter,
                   position_error_m=float(np.asarray(data.obs.position_error_m).mean()))
     tau, rms_speed, length = _decorrelation_time_s(params, data, jitter)
     info = {"elbo": elbo, "elbo_per_observation": elbo / data.n, "elbo_history": list(state.history),
@@ -412,7 +413,8 @@ def _history_kind(config: TrainConfig, n: int) -> str:
     return "per-step ELBO on all observations, nats"
 
 
-def _data_summary(data: _Data) -> dict[str, Any]:
+def data_summary(data: _Data) -> dict[str, Any]:
+    """What the model file records about its data: counts, extent (m), σ_pos, time span and origin, digest."""
     position = np.asarray(data.batch.position_m)
     obs = data.obs
     summary = {"n_tracks": data.n_tracks, "n_observations": data.n,
@@ -499,18 +501,18 @@ def fit(tracks_or_observations, kernel: str = DEFAULT_FAMILY, *, inducing: int |
     ``checkpoint`` (:class:`Checkpoint`) keeps the resumable state; with ``resume=True`` the fit
     continues from it and ends where the uninterrupted fit would.
     """
-    config = _check_options(kernel, base, inducing, seed, schedule, position_error_m, background)
+    config = check_options(kernel, base, inducing, seed, schedule, position_error_m, background)
     position_error_m, record = _position_error(tracks_or_observations, position_error_m, int(seed))
-    data = _prepare(tracks_or_observations, position_error_m)
-    config = _resolve(config, data.n, fingerprint=data.fingerprint,
+    data = prepare_data(tracks_or_observations, position_error_m)
+    config = resolve_rows(config, data.n, fingerprint=data.fingerprint,
                       position_error_m=float(data.obs.position_error_m))
     train = _subsample(data, config.subsample, config.seed)
-    state, z_scale = _start(train, config, learning_rate=schedule.learning_rate, checkpoint=checkpoint)
+    state, z_scale = start_state(train, config, learning_rate=schedule.learning_rate, checkpoint=checkpoint)
     state = _train(state, train, config, schedule, z_scale=z_scale, checkpoint=checkpoint, progress=progress)
     return _finish(state, data, config, schedule, record)
 
 
-def _resolve(config: TrainConfig, n: int, **fields) -> TrainConfig:
+def resolve_rows(config: TrainConfig, n: int, **fields) -> TrainConfig:
     """Settle the rows each step sees.  N ≤ 16 × batch_size: all of them.  Larger N: with
     ``q_update="auto"`` a fixed subsample of 16 × batch_size rows, all of them every step (exact q);
     with "adam" or "natural", minibatches of batch_size."""
@@ -541,8 +543,9 @@ def default_inducing(n_observations: int) -> int:
     return int(min(MAX_DEFAULT_INDUCING, max(16, n_observations // 32)))
 
 
-def _check_options(kernel, base, inducing, seed, schedule: Schedule, position_error_m,
+def check_options(kernel, base, inducing, seed, schedule: Schedule, position_error_m,
                    background: str = "linear") -> TrainConfig:
+    """Validate fit()'s options (InputError naming the bad one) → the TrainConfig that fixes the path."""
     if background not in BACKGROUNDS:
         raise InputError(f"unknown background {background!r}; choose one of {', '.join(BACKGROUNDS)}")
     if kernel not in KERNEL_FAMILIES:
