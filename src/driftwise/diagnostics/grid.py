@@ -10,8 +10,6 @@ from __future__ import annotations
 import dataclasses
 import math
 
-import jax
-import jax.numpy as jnp
 import numpy as np
 from pyproj import Geod
 
@@ -30,7 +28,7 @@ class FieldGrid:
                           where the velocity is rotated from the frame's axes to true east/north
     mean_m_s, std_m_s     posterior mean and standard deviation of the two components, (n_y, n_x, 2), m/s
     divergence_s, divergence_std_s, vorticity_s, vorticity_std_s   posterior mean and std, s⁻¹
-    variance_ratio        tr Σ_post / tr K_prior (1 = the data taught nothing here)
+    variance_ratio        tr Σ_post / tr K_prior of the stationary part (1 = the data taught nothing here)
     supported             variance_ratio < ``SUPPORT_RATIO`` (the data constrain the field)
     lon_deg, lat_deg      (n_y, n_x) node longitudes/latitudes for a lon/lat frame, else None
     reasons               {"divergence"|"vorticity": why it is zero by construction}
@@ -114,8 +112,7 @@ def field_grid(field, *, spacing_m: float | None = None, cells_across: int = 80,
     gx, gy = np.meshgrid(*axes)
     points = np.column_stack([gx.ravel(), gy.ravel()])
     mean, cov = field.predict(points)
-    prior = np.asarray(jax.vmap(field.prior_variance_at)(jnp.asarray(points)))
-    ratio = np.trace(cov, axis1=1, axis2=2) / np.trace(prior, axis1=1, axis2=2)
+    ratio = field.local_variance_ratio(points)
     frame, lon, lat, components = field.frame, None, None, ("x", "y")
     if getattr(frame, "kind", "metric") == "lonlat":
         jac = east_north_jacobian(frame, points)

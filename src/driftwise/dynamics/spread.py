@@ -547,10 +547,8 @@ SUPPORT_VARIANCE_FRACTION = 0.9
 
 
 def unsupported_releases(field: Any, releases: tuple[Release, ...]) -> list[tuple[Release, float]]:
-    """Releases where the model knows little: posterior velocity variance tr Σ(x) above 90 % of the prior's
-    tr K(x, x) at the start point (the data there barely constrain the field).  Returns (release, fraction)."""
-    starts = np.stack([r.start_m for r in releases])
-    _, post = field.predict(starts)
-    prior = np.asarray(jax.vmap(field.prior_variance_at)(starts))
-    fraction = np.trace(post, axis1=-2, axis2=-1) / np.trace(prior, axis1=-2, axis2=-1)
+    """Releases where the model knows little: posterior velocity variance of the field's stationary part above
+    90 % of its prior at the start point (``FlowField.local_variance_ratio``: the data there barely constrain
+    the field).  Returns (release, fraction)."""
+    fraction = field.local_variance_ratio(np.stack([r.start_m for r in releases]))
     return [(r, float(f)) for r, f in zip(releases, fraction) if f > SUPPORT_VARIANCE_FRACTION]

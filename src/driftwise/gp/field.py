@@ -471,6 +471,29 @@ class FlowField:
         cov = jnp.diag(var) - a @ a.T + a_s @ a_s.T
         return names, np.asarray(a @ self.params.q_mean), np.asarray(0.5 * (cov + cov.T))
 
+    def _local_ratio_one(self, x: jax.Array) -> jax.Array:
+        """tr Σ_loc(x) / tr K_loc(x, x) for the stationary (non-background) part of the prior."""
+        kernel, z = self.params.kernel, self.params.inducing_m
+        blocks = kernel.blocks(x[None, None, :] - z[None, :, :])                       # (1, M, d, d)
+        kxz = blocks.transpose(0, 2, 1, 3).reshape(x.shape[0], -1)
+        a = solve_triangular(self.inducing_chol, kxz.T, lower=True).T
+        a_s = a @ self.params.q_sqrt
+        prior = kernel.blocks(jnp.zeros_like(x))
+        post = prior - a @ a.T + a_s @ a_s.T
+        return jnp.trace(post) / jnp.trace(prior)
+
+    def local_variance_ratio(self, points) -> np.ndarray:
+        """How little the data constrain the field at ``points`` (n, d) m → (n,): tr Σ_loc / tr K_loc, the
+        posterior over the prior velocity variance of the stationary part (1: the data taught nothing there).
+
+        Cov[v_loc(x), v(Z)] = K_loc(x − Z) since the background flow is independent of it, so
+        Σ_loc(x) = K_loc(0) − A Aᵀ + A S Sᵀ Aᵀ with A = K_loc(x, Z) L_Z^{−T}.  The background's linear terms
+        grow without bound away from the data and are well determined by them, so a ratio over the whole
+        prior would call a point far outside the data "supported"; without a background both agree.
+        """
+        x = _check_points(points, self.dim)
+        return np.asarray(_local_ratio_jit(self, jnp.asarray(x)))
+
     def prior_variance_at(self, x: jax.Array) -> jax.Array:
         """Prior covariance K(x, x) at one point, (d, d) in m²/s²."""
         return self.params.kernel.block(x, x)
@@ -509,6 +532,7 @@ def _predict_chunk(field: FlowField, x: jax.Array):
 
 
 _mean_at_jit = jax.jit(FlowField._mean_at, static_argnames=("part",))
+_local_ratio_jit = jax.jit(lambda field, x: jax.vmap(field._local_ratio_one)(x))
 _cov_between_jit = jax.jit(FlowField._cov_between, static_argnames=("part_x", "part_y"))
 
 

@@ -181,7 +181,7 @@ def _grid_variables(grid) -> list[tuple[str, object, dict]]:
                 attrs["comment"] = "identically zero: " + grid.reasons[quantity]
             out.append((f"{quantity}{kind}_per_s", values, attrs))
     out.append(("variance_ratio", grid.variance_ratio, {
-        "units": "1", "long_name": "posterior over prior velocity variance, tr(posterior cov)/tr(prior cov)",
+        "units": "1", "long_name": "posterior over prior velocity variance of the stationary part, tr(posterior cov)/tr(prior cov)",
         "coverage_content_type": "qualityInformation"}))
     out.append(("supported", grid.supported.astype("int8"), {
         "long_name": "data support: 1 where the posterior velocity variance is below half the prior variance",

@@ -1,0 +1,387 @@
+"""Fitting a FlowField through the transition density of consecutive fixes: :func:`fit_transitions`.
+
+Objective (nats), maximised over the variational posterior q(w) = N(m, S Sᵀ), the kernel
+hyperparameters and log K (Titsias 2009; Hensman, Fusi & Lawrence 2013 for the bound):
+
+    L = Σ_k log N(x_{k+1} | m_k, P_k + R) − KL(q ‖ p),     R = σ_pos² I,
+
+where (m_k, P_k) are the Gaussian moments at t_k + Δt_k of the field's Itô SDE started from
+N(x_k, R) (:mod:`driftwise.dynamics.transitions`): drift the posterior mean μ(x), diffusion
+2(K I + τ(1 − e^{−a/τ}) Σ(x)) with Σ the posterior velocity covariance, as in the forecasts.
+
+The approximation: the velocity uncertainty enters each transition through its moments (Σ in the
+diffusion, the Gaussian closure of the moment equations), not as a path-wise sample of the field
+averaged over q; the transition density itself is the Gaussian assumed-density closure
+(Jazwinski 1970, "Stochastic Processes and Filtering Theory"; Maybeck 1982, "Stochastic Models,
+Estimation and Control", vol. 2).  So L is not a strict lower bound on the marginal likelihood;
+it is the forecast model's own transition likelihood with a KL penalty that keeps q near the
+prior where the data say nothing.
+
+Warm start: the velocity fit (:func:`driftwise.gp.training.fit`); its τ = ℓ/U_rms is held fixed.
+Optimiser: Adam (Kingma & Ba 2015, optax), its rate decaying tenfold every 400 steps, on minibatches of
+transitions from epoch permutations of ``numpy.random.default_rng([seed, epoch])``, the sum scaled by N/b.
+Every ``patience`` steps the objective on fixed evaluation rows is checked and the fit stops once it gained
+less than 1e-4 × max(|L|, N nats).  Checkpoint/resume and the progress bar as in the velocity fit
+(:mod:`driftwise.gp.schedule`).
+
+:func:`choose_likelihood` decides between the two fits from the coarseness of the fixes for the
+flow, c = median_k Δt_k ‖∇μ(x_k)‖₂ (spectral norm of the fitted velocity gradient at the start
+fix).  For a linear flow ẋ = J x the finite-difference velocity (x_{k+1} − x_k)/Δt differs from
+the velocity at the segment midpoint by −(JΔt)² J x_k/12 + O((JΔt)³) (Taylor expansion of
+e^{JΔt}), a relative bias of about c²/12: at c = 0.5 that is 2 %, below the few-percent error
+of a good velocity fit; above it the straight-line velocities cut the chord of the path.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import hashlib
+import math
+import sys
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+import optax
+from tqdm.auto import tqdm
+
+from ..errors import InputError
+from ..gp import field as fld
+from ..gp.schedule import Checkpoint, Schedule, TrainConfig, TrainState, load_checkpoint, save_checkpoint
+from ..gp.training import fit
+from ..gp.training import fit_report as velocity_fit_report
+from .methods import METHODS, make_method, method_name
+from .sde import PointPosterior, transport_sde
+from .transitions import FixedStepRK4, ParamPosterior, TransitionSet, log_likelihoods, substeps_for, transition_set
+
+__all__ = ["fit_report", "TRANSITION_SCHEDULE", "COARSENESS_THRESHOLD", "LIKELIHOODS", "LikelihoodChoice", "coarseness",
+           "choose_likelihood", "fit_transitions", "fit_by_likelihood", "transition_checkpoint_path"]
+
+TRANSITION_SCHEDULE = Schedule(steps=400, batch_size=256, learning_rate=0.02, patience=20, q_update="adam")
+COARSENESS_THRESHOLD = 0.5   # median Δt‖∇μ‖: finite-difference velocity bias ≈ c²/12 = 2 % (module docstring)
+LIKELIHOODS = ("velocities", "transitions", "auto")
+LIKELIHOOD_HELP = ("velocities: finite-difference velocities between fixes; transitions: then refit through the "
+                   "transition density of consecutive fixes (moments of the flow's SDE); auto (default): transitions "
+                   f"when the fixes are coarse for the flow (median dt*|grad u| above {COARSENESS_THRESHOLD:g})")
+REL_TOL = 1e-4
+DECAY_STEPS = 400          # the learning rate falls tenfold every 400 steps
+EVAL_ROWS = 2048
+RETRIES = 6
+_TRAINABLE = ("kernel", "q_mean", "q_sqrt_raw", "log_diffusivity_m2_s")
+# Adam moves every coordinate by about the learning rate at first; the M·d whitened means start at the velocity
+# fit's optimum and would be knocked off it by full-size steps.  S keeps the full step: Σ(x) enters the diffusion,
+# and a q that tightens too slowly leaves K too small (3-h vortex fixes: K 0.37 m²/s at a tenth of the step, 0.69 at
+# the full step, truth 1)
+LEAF_STEP = {"kernel": 1.0, "log_diffusivity_m2_s": 1.0, "q_mean": 0.3, "q_sqrt_raw": 1.0}
+
+
+@dataclass(frozen=True)
+class Propagation:
+    """How each transition is propagated: moment method, RK4 step (s), static substep count, vmap chunk."""
+
+    method: Any
+    integrator: FixedStepRK4
+    chunk: int = 256
+
+
+def _propagation(method: str, trans: TransitionSet, step_s: float, max_substeps: int) -> Propagation:
+    if method not in METHODS or METHODS[method].ensemble:
+        moment = ", ".join(name for name, spec in METHODS.items() if not spec.ensemble)
+        raise InputError(f"transition method: use a moment method ({moment}), got {method!r}")
+    if not (math.isfinite(step_s) and step_s > 0):
+        raise InputError(f"step_s must be > 0 seconds, got {step_s!r}")
+    strategy, _ = make_method(method)
+    return Propagation(strategy, FixedStepRK4(float(step_s), substeps_for(trans.dt_s, step_s, max_substeps)))
+
+
+# ---------------------------------------------------------------------------- the objective
+def objective(params: fld.FieldParams, rows: tuple, n_total, tau_s, position_var_m2, *, prop: Propagation,
+              jitter_multiple: float) -> jax.Array:
+    """(N/b) Σ_k log N(x_{k+1} | m_k, P_k + R) − KL(q ‖ p) on the rows (start (b, d), end (b, d), Δt (b,))."""
+    post = ParamPosterior.from_params(params, jitter_multiple=jitter_multiple)
+    sde = transport_sde(post, params.diffusivity_m2_s, tau_s)
+    ll = log_likelihoods(sde, prop.method, prop.integrator, *rows, position_var_m2, prop.chunk)
+    return n_total / rows[0].shape[0] * jnp.sum(ll) - fld.kl_divergence(params)
+
+
+def _adam_per_leaf(learning_rate) -> optax.GradientTransformation:
+    """Adam with the step of each trainable leaf scaled by :data:`LEAF_STEP`."""
+    factors = optax.stateless(lambda updates, params=None: {k: jax.tree_util.tree_map(lambda u: LEAF_STEP[k] * u, v)
+                                                           for k, v in updates.items()})
+    return optax.chain(optax.adam(learning_rate), factors)
+
+
+def _optimizer() -> optax.GradientTransformation:
+    return optax.inject_hyperparams(_adam_per_leaf, hyperparam_dtype=jnp.float64)(learning_rate=0.02)
+
+
+def _all_finite(tree) -> jax.Array:
+    return jnp.all(jnp.array([jnp.all(jnp.isfinite(leaf)) for leaf in jax.tree_util.tree_leaves(tree)]))
+
+
+@jax.jit(static_argnames=("prop", "jitter_multiple"))
+def _step(params, opt_state, rows, n_total, tau_s, var, *, prop, jitter_multiple):
+    """One Adam step on the trainable leaves → (params, opt_state, objective at the start, all finite?)."""
+    def negative(trainable):
+        p = dataclasses.replace(params, **trainable)
+        return -objective(p, rows, n_total, tau_s, var, prop=prop, jitter_multiple=jitter_multiple)
+
+    trainable = {name: getattr(params, name) for name in _TRAINABLE}
+    value, grads = jax.value_and_grad(negative)(trainable)
+    updates, new_state = _optimizer().update(grads, opt_state, trainable)
+    new_params = dataclasses.replace(params, **optax.apply_updates(trainable, updates))
+    return new_params, new_state, -value, jnp.isfinite(value) & _all_finite(grads)
+
+
+@jax.jit(static_argnames=("prop", "jitter_multiple"))
+def _sum_log_likelihood(params, rows, tau_s, var, *, prop, jitter_multiple):
+    post = ParamPosterior.from_params(params, jitter_multiple=jitter_multiple)
+    sde = transport_sde(post, params.diffusivity_m2_s, tau_s)
+    return jnp.sum(log_likelihoods(sde, prop.method, prop.integrator, *rows, var, prop.chunk))
+
+
+# ---------------------------------------------------------------------------- the loop
+@dataclass(frozen=True)
+class _Problem:
+    trans: TransitionSet
+    prop: Propagation
+    tau_s: float
+    config: TrainConfig
+
+
+def _rows(trans: TransitionSet, idx: np.ndarray | None) -> tuple:
+    t = trans if idx is None else trans.take(idx)
+    return jnp.asarray(t.start_m), jnp.asarray(t.end_m), jnp.asarray(t.dt_s)
+
+
+def _batch_indices(n: int, batch_size: int, seed: int, step: int) -> np.ndarray | None:
+    """Slice ``step mod E`` of the permutation of epoch ``step // E`` (None = all rows)."""
+    if batch_size >= n:
+        return None
+    epoch, slot = divmod(step, n // batch_size)
+    order = np.random.default_rng([seed, epoch]).permutation(n)
+    return np.sort(order[slot * batch_size:(slot + 1) * batch_size])
+
+
+def _evaluation_rows(n: int, seed: int) -> np.ndarray | None:
+    return None if n <= EVAL_ROWS else np.sort(np.random.default_rng([seed, 2**31 - 5]).choice(n, EVAL_ROWS, False))
+
+
+def _value(params, problem: _Problem, idx: np.ndarray | None, jitter: float) -> float:
+    """The objective on rows ``idx`` (all when None), the sum scaled by N/b, in chunks of 1024."""
+    rows = np.arange(problem.trans.n) if idx is None else idx
+    var = problem.trans.position_error_m**2
+    total = sum(float(_sum_log_likelihood(params, _rows(problem.trans, rows[i:i + 1024]), problem.tau_s, var,
+                                          prop=problem.prop, jitter_multiple=jitter))
+                for i in range(0, rows.size, 1024))
+    return problem.trans.n / rows.size * total - float(fld.kl_divergence(params))
+
+
+def _with_learning_rate(opt_state, learning_rate: float):
+    return opt_state._replace(hyperparams=dict(opt_state.hyperparams,
+                                               learning_rate=jnp.asarray(learning_rate, dtype=jnp.float64)))
+
+
+def _advance(state: TrainState, problem: _Problem, schedule: Schedule) -> TrainState:
+    """One accepted step at the learning rate lr₀ · 10^(−step/400) (minibatch noise in Adam's steps shrinks
+    with the rate; independent of ``steps``, so a resumed fit with more steps retraces a longer one); a
+    non-finite objective or gradient is retried with half of it."""
+    cfg, trans = problem.config, problem.trans
+    rows = _rows(trans, _batch_indices(trans.n, cfg.batch_size, cfg.seed, state.step))
+    decayed = schedule.learning_rate * 10.0 ** (-state.step / DECAY_STEPS)
+    opt_state = _with_learning_rate(state.opt_state, decayed)
+    for _ in range(RETRIES + 1):
+        params, new_opt, value, ok = _step(state.params, opt_state, rows, float(trans.n), problem.tau_s,
+                                           trans.position_error_m**2, prop=problem.prop,
+                                           jitter_multiple=state.jitter_multiple)
+        if bool(ok):
+            return dataclasses.replace(state, params=params, opt_state=new_opt, step=state.step + 1,
+                                       history=state.history + (float(value),))
+        opt_state = _with_learning_rate(opt_state, float(opt_state.hyperparams["learning_rate"]) / 2.0)
+    raise RuntimeError(f"transition fit: the objective or its gradient stayed non-finite at step {state.step} "
+                       f"after {RETRIES} retries with smaller steps; check units and the position error")
+
+
+def _check(state: TrainState, problem: _Problem) -> TrainState:
+    idx = _evaluation_rows(problem.trans.n, problem.config.seed)
+    checks = state.checks + (_value(state.params, problem, idx, state.jitter_multiple),)
+    plateau = len(checks) >= 2 and checks[-1] - checks[-2] < REL_TOL * max(abs(checks[-2]), float(problem.trans.n))
+    return dataclasses.replace(state, checks=checks, converged=bool(plateau))
+
+
+def _train(state: TrainState, problem: _Problem, schedule: Schedule, checkpoint: Checkpoint | None,
+           progress: bool) -> TrainState:
+    disable = not (progress and hasattr(sys.stderr, "isatty") and sys.stderr.isatty())
+    bar = tqdm(total=schedule.steps, initial=min(state.step, schedule.steps), disable=disable, leave=False,
+               desc="driftwise fit (transitions)", unit="step", file=sys.stderr, dynamic_ncols=True)
+    if state.step == 0 and not state.checks:
+        state = dataclasses.replace(state, checks=(_value(state.params, problem, _evaluation_rows(
+            problem.trans.n, problem.config.seed), state.jitter_multiple),))    # the warm start's value
+    try:
+        while state.step < schedule.steps and not state.converged:
+            state = _advance(state, problem, schedule)
+            if state.step % schedule.patience == 0:
+                state = _check(state, problem)
+            if checkpoint is not None and state.step % checkpoint.every_steps == 0:
+                save_checkpoint(checkpoint.path, state, problem.config)
+            bar.update(1)
+            bar.set_postfix(objective=f"{state.history[-1]:.6g}")
+    except KeyboardInterrupt:
+        if checkpoint is not None:
+            save_checkpoint(checkpoint.path, state, problem.config)
+        raise
+    finally:
+        bar.close()
+    if checkpoint is not None:
+        save_checkpoint(checkpoint.path, state, problem.config)
+    return state
+
+
+def _config(warm: fld.FlowField, trans: TransitionSet, prop: Propagation, schedule: Schedule, seed: int) -> TrainConfig:
+    digest = hashlib.sha256()
+    for array in (trans.start_m, trans.end_m, trans.dt_s, np.asarray(warm.params.q_mean)):
+        digest.update(np.ascontiguousarray(array, dtype=np.float64).tobytes())
+    tag = f"transitions:{method_name(prop.method)}:{prop.integrator.step_s}:{prop.integrator.substeps}:"
+    return TrainConfig(warm.kernel_family, warm.kernel_base, int(warm.params.n_inducing), int(seed),
+                       int(min(schedule.batch_size, trans.n)), False, "adam", float(schedule.natural_step),
+                       float(trans.position_error_m), tag + digest.hexdigest())
+
+
+def _start(warm: fld.FlowField, problem: _Problem, schedule: Schedule, checkpoint: Checkpoint | None) -> TrainState:
+    params = warm.params
+    opt_state = _optimizer().init({name: getattr(params, name) for name in _TRAINABLE})
+    state = TrainState(params, _with_learning_rate(opt_state, schedule.learning_rate), 0, (), warm.jitter_multiple)
+    if checkpoint is not None and checkpoint.resume and checkpoint.path.exists():
+        return load_checkpoint(checkpoint.path, state, problem.config)
+    return state
+
+
+# ---------------------------------------------------------------------------- the door
+def fit_transitions(tracks_or_observations, warm: fld.FlowField, *, position_error_m: float = 10.0,
+                    schedule: Schedule = TRANSITION_SCHEDULE, method: str = "cubature", step_s: float = 900.0,
+                    max_substeps: int = 32, seed: int = 0, checkpoint: Checkpoint | None = None,
+                    progress: bool = True) -> fld.FlowField:
+    """Refit ``warm`` (a velocity fit of the same tracks) by maximising the transition objective L.
+
+    ``method`` a moment method of :data:`driftwise.dynamics.methods.METHODS` (cubature default,
+    "linearize" the cheap option); each transition takes min(``max_substeps``, ⌈Δt/``step_s``⌉) RK4
+    steps.  ``schedule``: at most ``steps`` Adam steps on ``batch_size`` transitions at ``learning_rate``;
+    ``checkpoint`` as in :func:`driftwise.fit`.  Returns a FlowField whose ``fit_info`` records
+    ``likelihood = "transitions"`` and the objective's history.
+    """
+    trans = transition_set(tracks_or_observations, position_error_m=position_error_m)
+    if trans.dim != warm.dim:
+        raise InputError(f"transitions are {trans.dim}-D but the warm-start field is {warm.dim}-D")
+    prop = _propagation(method, trans, step_s, max_substeps)
+    tau = float(warm.decorrelation_time_s or 0.0)
+    problem = _Problem(trans, prop, tau, _config(warm, trans, prop, schedule, seed))
+    state = _train(_start(warm, problem, schedule, checkpoint), problem, schedule, checkpoint, progress)
+    final = _value(state.params, problem, None, state.jitter_multiple)
+    if not math.isfinite(final):
+        raise RuntimeError("transition fit: the final objective is not finite; check the data and position error")
+    info = {**warm.fit_info, "likelihood": "transitions", "transition_objective": final,
+            "transition_objective_per_transition": final / trans.n, "transition_history": list(state.history),
+            "transition_steps": state.step, "transition_converged": state.converged,
+            "transition_checks": list(state.checks), "n_transitions": trans.n,
+            "transition_method": method, "transition_step_s": float(step_s),
+            "transition_substeps": prop.integrator.substeps, "velocity_fit_elbo": warm.fit_info.get("elbo"),
+            "velocity_fit_diffusivity_m2_s": warm.diffusivity_m2_s,
+            "decorrelation_time_source": "velocity fit: length_scale/rms_speed, held fixed in the transition fit"}
+    return fld.FlowField.from_params(state.params, frame=warm.frame_dict, data_summary=warm.data_summary,
+                                     decorrelation_time_s=tau, position_error_m=trans.position_error_m,
+                                     fit_info=info, jitter_multiple=state.jitter_multiple)
+
+
+# ---------------------------------------------------------------------------- which likelihood
+@dataclass(frozen=True)
+class LikelihoodChoice:
+    """The likelihood used (``likelihood``), the one asked for, and the coarseness c against its threshold."""
+
+    likelihood: str
+    requested: str
+    coarseness: float
+    threshold: float
+
+    @property
+    def reason(self) -> str:
+        relation = "above" if self.coarseness > self.threshold else "at or below"
+        how = "asked for" if self.requested != "auto" else "chosen automatically"
+        return (f"{self.likelihood} ({how}): fixes are median Δt·|∇μ| = {self.coarseness:.3g} apart in flow time, "
+                f"{relation} the threshold {self.threshold:g}")
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"likelihood": self.likelihood, "likelihood_requested": self.requested,
+                "coarseness": self.coarseness, "coarseness_threshold": self.threshold,
+                "coarseness_measure": "median over transitions of dt_s * spectral norm of grad(mu) at the start fix",
+                "likelihood_reason": self.reason}
+
+
+@jax.jit
+def _gradient_norms(posterior: PointPosterior, points: jax.Array) -> jax.Array:
+    jac = jax.vmap(jax.jacfwd(posterior.mean_at))(points)          # (n, d, d) 1/s
+    return jnp.linalg.norm(jac, ord=2, axis=(1, 2))
+
+
+def coarseness(field: fld.FlowField, trans: TransitionSet, *, max_rows: int = 4096) -> float:
+    """c = median_k Δt_k ‖∇μ(x_k)‖₂ (dimensionless) over at most ``max_rows`` seeded transitions."""
+    idx = np.arange(trans.n) if trans.n <= max_rows else np.sort(
+        np.random.default_rng(2**31 - 7).choice(trans.n, max_rows, replace=False))
+    norms = np.asarray(_gradient_norms(PointPosterior.from_field(field), jnp.asarray(trans.start_m[idx])))
+    return float(np.median(trans.dt_s[idx] * norms))
+
+
+def choose_likelihood(requested: str, field: fld.FlowField, trans: TransitionSet,
+                      threshold: float = COARSENESS_THRESHOLD) -> LikelihoodChoice:
+    """"auto" → "transitions" when coarseness(field, trans) > threshold, else "velocities"."""
+    if requested not in LIKELIHOODS:
+        raise InputError(f"likelihood: use one of {', '.join(LIKELIHOODS)}, got {requested!r}")
+    c = coarseness(field, trans)
+    used = requested if requested != "auto" else ("transitions" if c > threshold else "velocities")
+    return LikelihoodChoice(used, requested, c, float(threshold))
+
+
+def transition_checkpoint_path(path: Path) -> Path:
+    """Where the transition stage keeps its checkpoint, beside the velocity fit's ``path``."""
+    path = Path(path)
+    return path.with_name(path.name.removesuffix(".npz") + ".transitions.npz")
+
+
+def fit_by_likelihood(tracks, kernel: str, likelihood: str = "auto", *, inducing: int | None = None, seed: int = 0,
+                      position_error_m: float | None = None, checkpoint: Checkpoint | None = None, quiet: bool = False,
+                      schedule: Schedule = Schedule(), transition_schedule: Schedule = TRANSITION_SCHEDULE,
+                      method: str = "cubature", background: str = "linear") -> tuple[fld.FlowField, LikelihoodChoice]:
+    """The velocity fit, then (when ``likelihood`` is "transitions", or "auto" finds the fixes coarse) the
+    transition fit warm-started from it.  Returns (field, :class:`LikelihoodChoice`).  ``checkpoint`` is the
+    velocity fit's; the transition stage keeps its own beside it (:func:`transition_checkpoint_path`) and
+    removes it once it has finished.  ``position_error_m`` None: the velocity fit's estimate; ``background`` as
+    in :func:`driftwise.fit`."""
+    progress = not quiet
+    if likelihood not in LIKELIHOODS:
+        raise InputError(f"likelihood: use one of {', '.join(LIKELIHOODS)}, got {likelihood!r}")
+    field = fit(tracks, kernel, inducing=inducing, seed=seed, position_error_m=position_error_m, schedule=schedule,
+                checkpoint=checkpoint, progress=progress, background=background)
+    if position_error_m is None:      # estimated by the velocity fit
+        position_error_m = field.position_error_m
+    trans = transition_set(tracks, position_error_m=position_error_m)
+    choice = choose_likelihood(likelihood, field, trans)
+    if choice.likelihood == "transitions":
+        stage = None if checkpoint is None else Checkpoint(transition_checkpoint_path(checkpoint.path),
+                                                           resume=checkpoint.resume,
+                                                           every_steps=checkpoint.every_steps)
+        field = fit_transitions(tracks, field, position_error_m=position_error_m, schedule=transition_schedule,
+                                method=method, seed=seed, checkpoint=stage, progress=progress)
+        if stage is not None:
+            stage.path.unlink(missing_ok=True)
+    return field, choice
+
+
+def fit_report(field: fld.FlowField, choice: LikelihoodChoice) -> dict[str, Any]:
+    """The ``driftwise fit --json`` object: :func:`driftwise.gp.training.fit_report` plus the likelihood used, the
+    coarseness and its threshold (:meth:`LikelihoodChoice.to_dict`) and, after a transition fit, its objective."""
+    info = field.fit_info
+    extra = {key: info[key] for key in ("transition_objective", "transition_steps", "transition_converged",
+                                        "n_transitions", "transition_method") if key in info}
+    return {**velocity_fit_report(field), **choice.to_dict(), **extra}

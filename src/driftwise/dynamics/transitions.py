@@ -1,0 +1,234 @@
+"""The transition density of consecutive fixes through the field's Itô SDE.
+
+For consecutive fixes x_k (at t_k) and x_{k+1} (at t_k + Δt_k) of one track, each the true
+position plus N(0, R) error with R = σ_pos² I, the true position at t_k is taken as
+N(x_k, R); its Gaussian moments are propagated over Δt_k through
+
+    dx = μ(x) dt + L(x) dβ,   D = L Lᵀ = 2 (K I + τ (1 − e^{−a/τ}) Σ(x))
+
+(:mod:`driftwise.dynamics.sde`; a the time since t_k) by the assumed-density moment equations
+of :mod:`driftwise.dynamics.moments` (Jazwinski 1970; Maybeck 1982, vol. 2), giving N(m_k, P_k);
+the next fix then has the density
+
+    log p(x_{k+1} | x_k) = log N(x_{k+1} | m_k, P_k + R)                        (nats).
+
+Each transition is integrated by :class:`FixedStepRK4`: a fixed number of RK4 substeps (a
+static ``substeps``), the first n_k = min(substeps, ⌈Δt_k/step_s⌉) of length Δt_k/n_k and the rest of
+length zero (an RK4 step of length 0 returns its state unchanged).  The loop is a fixed-length
+``jax.lax.scan``, so reverse-mode ``jax.grad`` runs through it (moments.RK4 picks its substep
+count from the data in a ``fori_loop``, which reverse mode cannot differentiate).  Irregular
+Δt and gaps are ordinary input: every transition has its own step; a transition longer than
+``substeps × step_s`` takes ``substeps`` longer steps.
+
+Transitions are vmapped in chunks (``jax.lax.map``) and the whole computation is a pure jax
+function of the SDE's parameters.  :class:`ParamPosterior` evaluates a field's posterior from
+its raw parameters differentiably (no eigendecomposition), for the fit through this density
+(:mod:`driftwise.dynamics.transitionfit`).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from dataclasses import dataclass
+from functools import partial
+from typing import Any, Callable
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+from jax.scipy.linalg import solve_triangular
+
+from ..data.observations import velocity_observations
+from ..errors import InputError
+from ..gp.field import FieldParams, inducing_cholesky
+from .moments import SphericalCubature, propagate_one
+from .sde import SDE, join_from_jit, split_for_jit
+
+__all__ = ["TransitionSet", "transition_set", "FixedStepRK4", "ParamPosterior", "log_likelihoods",
+           "transition_log_likelihoods", "gaussian_log_density"]
+
+
+@dataclass(frozen=True, eq=False)
+class TransitionSet:
+    """Consecutive fixes of the same track.
+
+    ``start_m`` (n, d) fix x_k, ``end_m`` (n, d) fix x_{k+1}, ``dt_s`` (n,) Δt_k > 0,
+    ``track_index`` (n,), ``position_error_m`` σ_pos of one fix per component (m).
+    """
+
+    start_m: np.ndarray
+    end_m: np.ndarray
+    dt_s: np.ndarray
+    track_index: np.ndarray
+    position_error_m: float
+
+    @property
+    def n(self) -> int:
+        return int(self.dt_s.shape[0])
+
+    @property
+    def dim(self) -> int:
+        return int(self.start_m.shape[1])
+
+    def take(self, idx: Any) -> "TransitionSet":
+        """The transitions at rows ``idx``."""
+        return dataclasses.replace(self, start_m=self.start_m[idx], end_m=self.end_m[idx], dt_s=self.dt_s[idx],
+                                   track_index=self.track_index[idx])
+
+
+def transition_set(tracks_or_observations: Any, *, position_error_m: float = 10.0) -> TransitionSet:
+    """The transitions of driftwise Tracks (or of velocity Observations, whose pairs of fixes are
+    x_k = mid − v Δt/2, x_{k+1} = mid + v Δt/2).  Raises InputError on non-finite or empty input."""
+    data = tracks_or_observations
+    if hasattr(data, "velocity_m_s") and hasattr(data, "dt_s"):
+        obs = data
+    elif hasattr(data, "track_id") and hasattr(data, "position_m"):
+        obs = velocity_observations(data, position_error_m=position_error_m)
+    else:
+        raise InputError(f"transitions need driftwise Tracks or Observations, got {type(data).__name__}")
+    mid, dt = np.asarray(obs.position_m, float), np.asarray(obs.dt_s, float)
+    half = 0.5 * np.asarray(obs.velocity_m_s, float) * dt[:, None]
+    trans = TransitionSet(mid - half, mid + half, dt, np.asarray(obs.track_index), float(obs.position_error_m))
+    _validate(trans)
+    return trans
+
+
+def _validate(trans: TransitionSet) -> None:
+    if trans.n == 0:
+        raise InputError("transitions: no pair of consecutive fixes in one track")
+    bad = ~(np.isfinite(trans.dt_s) & (trans.dt_s > 0))
+    bad |= ~np.all(np.isfinite(trans.start_m) & np.isfinite(trans.end_m), axis=1)
+    if bad.any():
+        raise InputError(f"transition {int(np.argmax(bad))}: time step must be > 0 and positions finite")
+    if not (np.isfinite(trans.position_error_m) and trans.position_error_m >= 0):
+        raise InputError(f"position error must be a finite number of metres ≥ 0, got {trans.position_error_m!r}")
+
+
+# ---------------------------------------------------------------- fixed-step integrator
+def _rk4(f: Callable, y: jax.Array, h: jax.Array) -> jax.Array:
+    """One classical Runge–Kutta step of y' = f(y) (Kutta 1901); h = 0 returns y exactly."""
+    k1 = f(y)
+    k2 = f(y + 0.5 * h * k1)
+    k3 = f(y + 0.5 * h * k2)
+    k4 = f(y + h * k3)
+    return y + (h / 6.0) * (k1 + 2.0 * k2 + 2.0 * k3 + k4)
+
+
+@partial(jax.tree_util.register_dataclass, data_fields=["step_s"], meta_fields=["substeps"])
+@dataclass(frozen=True)
+class FixedStepRK4:
+    """RK4 with a fixed number of substeps per output interval (reverse-mode differentiable).
+
+    An interval of length Δt uses n = min(``substeps``, ⌈Δt/``step_s``⌉) equal steps of Δt/n and
+    ``substeps`` − n steps of length zero, all inside one fixed-length scan.  Global error O(h⁴).
+    ``step_s`` is traced data, ``substeps`` static (it sets the scan length).
+    """
+
+    step_s: float = 900.0
+    substeps: int = 16
+
+    def integrate(self, f: Callable, y0: jax.Array, times_s: jax.Array) -> jax.Array:
+        """States (T, n) at times_s (T,) for y' = f(y), y(times_s[0]) = y0."""
+        slots = jnp.arange(self.substeps)
+
+        def interval(y, span):
+            count = jnp.clip(jnp.ceil(span / self.step_s * (1.0 - 1e-12)), 1, self.substeps)
+            hs = jnp.where(slots < count, span / count, 0.0)
+            y = jax.lax.scan(lambda state, h: (_rk4(f, state, h), None), y, hs)[0]
+            return y, y
+
+        _, ys = jax.lax.scan(interval, y0, jnp.diff(times_s))
+        return jnp.concatenate([y0[None], ys])
+
+
+def substeps_for(dt_s: np.ndarray, step_s: float, max_substeps: int = 32) -> int:
+    """The static substep count covering the longest Δt at ``step_s`` (at most ``max_substeps``)."""
+    return int(np.clip(np.ceil(np.max(dt_s) / step_s * (1.0 - 1e-12)), 1, max_substeps))
+
+
+# ---------------------------------------------------------------- differentiable posterior
+@jax.tree_util.register_dataclass
+@dataclass(frozen=True)
+class ParamPosterior:
+    """A field's posterior at single points, differentiable in its raw parameters.
+
+    With L_Z the inducing Cholesky factor and q(w) = N(m, S Sᵀ) (Titsias 2009; Hensman et al. 2013):
+        mean(x) = K(x, Z) α,   α = L_Z^{−T} m
+        cov(x)  = K(x, x) − (K(x, Z) W)(K(x, Z) W)ᵀ + (K(x, Z) W S)(K(x, Z) W S)ᵀ,   W = L_Z^{−T}
+    Same values as FlowField.mean_at / cov_between(x, x); unlike PointPosterior (eigh of I − SSᵀ,
+    whose gradient is undefined at repeated eigenvalues, e.g. at the prior) it has finite gradients
+    everywhere.  ``tag`` is static and tells this pytree apart from PointPosterior under jit.
+    """
+
+    kernel: Any
+    inducing_m: jax.Array
+    alpha: jax.Array
+    whiten: jax.Array
+    whiten_sqrt: jax.Array
+    tag: str = dataclasses.field(default="param-posterior", metadata=dict(static=True))
+
+    @classmethod
+    def from_params(cls, params: FieldParams, *, jitter_multiple: float) -> "ParamPosterior":
+        """Build from FieldParams (one Cholesky, one triangular inverse)."""
+        chol = inducing_cholesky(params, jitter_multiple=jitter_multiple)
+        eye = jnp.eye(chol.shape[0], dtype=chol.dtype)
+        whiten = solve_triangular(chol, eye, lower=True).T
+        return cls(params.kernel, params.inducing_m, whiten @ params.q_mean, whiten, whiten @ params.q_sqrt)
+
+    def mean_at(self, x: jax.Array) -> jax.Array:
+        """Posterior mean velocity at x (d,) m → (d,) m/s."""
+        return self.kernel.gram_matrix(x[None, :], self.inducing_m) @ self.alpha
+
+    def cov_at(self, x: jax.Array) -> jax.Array:
+        """Posterior velocity covariance at x (d,) m → (d, d) m²/s², symmetrised."""
+        kxz = self.kernel.gram_matrix(x[None, :], self.inducing_m)
+        a, b = kxz @ self.whiten, kxz @ self.whiten_sqrt
+        cov = self.kernel.block(x, x) - a @ a.T + b @ b.T
+        return 0.5 * (cov + cov.T)
+
+
+# ---------------------------------------------------------------- the likelihood
+def gaussian_log_density(x: jax.Array, mean: jax.Array, cov: jax.Array) -> jax.Array:
+    """log N(x | mean, cov) for one d-vector (nats), by Cholesky."""
+    chol = jnp.linalg.cholesky(0.5 * (cov + cov.T))
+    z = solve_triangular(chol, x - mean, lower=True)
+    return -0.5 * (z @ z + x.shape[-1] * jnp.log(2.0 * jnp.pi)) - jnp.sum(jnp.log(jnp.diagonal(chol)))
+
+
+def log_likelihoods(sde: SDE, method: Any, integrator: Any, start_m: jax.Array, end_m: jax.Array,
+                    dt_s: jax.Array, position_var_m2: jax.Array, chunk: int) -> jax.Array:
+    """log N(x_{k+1} | m_k, P_k + R) per transition, shape (n,) (traceable, differentiable).
+
+    start_m, end_m (n, d) m; dt_s (n,) s; position_var_m2 σ_pos² (m²); ``chunk`` transitions per vmap.
+    """
+    d = start_m.shape[-1]
+    r = position_var_m2 * jnp.eye(d, dtype=start_m.dtype)
+
+    def one(row):
+        x0, x1, dt = row
+        means, covs = propagate_one(sde, method, integrator, x0, r, jnp.stack([jnp.zeros_like(dt), dt]))
+        return gaussian_log_density(x1, means[-1], covs[-1] + r)
+
+    return jax.lax.map(one, (start_m, end_m, dt_s), batch_size=min(int(chunk), start_m.shape[0]))
+
+
+@partial(jax.jit, static_argnames=("static", "method", "chunk"))
+def _log_likelihoods_jit(dynamic, static, method, integrator, start, end, dt, var, chunk):
+    return log_likelihoods(join_from_jit(dynamic, static), method, integrator, start, end, dt, var, chunk)
+
+
+def transition_log_likelihoods(sde: SDE, transitions: TransitionSet, *, method: Any = SphericalCubature(),
+                               integrator: FixedStepRK4 | None = None, step_s: float = 900.0,
+                               chunk: int = 256) -> np.ndarray:
+    """log p(x_{k+1} | x_k) (n,) nats for every transition (module docstring), as numpy.
+
+    ``integrator`` defaults to FixedStepRK4(step_s, substeps covering the longest Δt, at most 32).
+    """
+    _validate(transitions)
+    if integrator is None:
+        integrator = FixedStepRK4(float(step_s), substeps_for(transitions.dt_s, step_s))
+    dynamic, static = split_for_jit(sde)
+    out = _log_likelihoods_jit(dynamic, static, method, integrator, jnp.asarray(transitions.start_m),
+                               jnp.asarray(transitions.end_m), jnp.asarray(transitions.dt_s),
+                               jnp.asarray(transitions.position_error_m**2), int(chunk))
+    return np.asarray(out)

@@ -1,0 +1,101 @@
+"""Benchmark of the fit through the transition density (run by hand:
+``.venv/bin/python tests/benchmarks/bench_transitions.py [--parts step,rmse] [--method cubature]``).
+
+Prints, everything measured in this run (medians of timed repeats after one compiling call):
+
+1. ``step``: the cost of one optimiser step of the transition objective against one step of the velocity
+   ELBO at the same batch b and the same M (Helmholtz kernel, 2-D, M = 64, b = 256, 3-h fixes, RK4 step 900 s,
+   so 12 substeps): seconds per step and the ratio (target of the issue: ≤ 8×);
+2. ``rmse``: the velocity RMSE against the Lamb–Oseen formula (Oseen 1912; Lamb 1932) near the data (grid
+   points within 500 m of a fix) for the velocity fit and the transition fit, fix interval 30 min to 6 h,
+   one table, with the fitted K against the truth 1 m²/s.
+
+Data: 30 drifters for 24 h in a Lamb–Oseen vortex of core radius 2 km and peak swirl 0.4 m/s
+(tests/test_transitionfit.py), K = 1 m²/s, σ_pos = 10 m.
+"""
+
+from __future__ import annotations
+
+import argparse
+import dataclasses
+import statistics
+import sys
+import time
+from pathlib import Path
+
+import jax
+import jax.numpy as jnp
+
+import driftwise  # noqa: F401  (float64)
+from driftwise.dynamics import transitionfit as TF
+from driftwise.dynamics.transitions import transition_set
+from driftwise.gp import field as fld
+from driftwise.gp import training as F
+from driftwise.gp.schedule import Schedule
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "dynamics"))
+from test_transitionfit import SIGMA_M, rmse_near_data, vortex_tracks  # noqa: E402
+
+BATCH, M = 256, 64
+
+
+def _timed(fn, repeats: int = 5) -> float:
+    jax.block_until_ready(fn())                       # compile
+    times = []
+    for _ in range(repeats):
+        start = time.perf_counter()
+        jax.block_until_ready(fn())
+        times.append(time.perf_counter() - start)
+    return statistics.median(times)
+
+
+def step_cost(method: str) -> None:
+    tracks = vortex_tracks(3 * 3600.0, n=40, hours=24.0)
+    warm = F.fit(tracks, inducing=M, position_error_m=SIGMA_M, schedule=Schedule(steps=20), progress=False)
+    trans = transition_set(tracks, position_error_m=SIGMA_M)
+    b = min(BATCH, trans.n)
+    prop = TF._propagation(method, trans, 900.0, 32)
+    rows = TF._rows(trans, jnp.arange(b))
+    params = warm.params
+    opt = TF._optimizer().init({name: getattr(params, name) for name in TF._TRAINABLE})
+    t_trans = _timed(lambda: TF._step(params, opt, rows, float(trans.n), 3000.0, SIGMA_M**2, prop=prop,
+                                      jitter_multiple=warm.jitter_multiple)[2])
+    obs = driftwise.velocity_observations(tracks, position_error_m=SIGMA_M)
+    batch = fld.batch_from_observations(obs, idx=list(range(b)))
+    names = F._trainable_names("adam", False)
+    vopt = F._optimizer().init(F._split(params, names, 1.0))
+    t_vel = _timed(lambda: F._step(params, vopt, batch, float(obs.n), 1.0, 1.0, names=names, q_update="adam",
+                                   jitter_multiple=warm.jitter_multiple)[2])
+    print(f"step cost, M = {params.n_inducing}, batch {b}, {prop.integrator.substeps} RK4 substeps, {method}: "
+          f"velocities {t_vel * 1e3:.1f} ms, transitions {t_trans * 1e3:.1f} ms, ratio {t_trans / t_vel:.1f}x")
+
+
+def rmse_table(method: str, steps: int) -> None:
+    print("fix interval | velocity fit RMSE m/s, K | transition fit RMSE m/s, K | steps, time s")
+    for hours in (0.5, 1.0, 3.0, 6.0):
+        tracks = vortex_tracks(hours * 3600.0, n=30, hours=24.0)
+        vel = F.fit(tracks, inducing=36, position_error_m=SIGMA_M, schedule=Schedule(steps=200), progress=False)
+        start = time.perf_counter()
+        schedule = dataclasses.replace(TF.TRANSITION_SCHEDULE, steps=steps, batch_size=64, learning_rate=0.03)
+        tr = TF.fit_transitions(tracks, vel, position_error_m=SIGMA_M, schedule=schedule, method=method,
+                                step_s=1800.0, progress=False)
+        print(f"{hours:>5.1f} h | {rmse_near_data(vel, tracks):.4f}, {vel.diffusivity_m2_s:.3g} | "
+              f"{rmse_near_data(tr, tracks):.4f}, {tr.diffusivity_m2_s:.3g} | "
+              f"{tr.fit_info['transition_steps']}, {time.perf_counter() - start:.0f}", flush=True)
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser()
+    parser.add_argument("--parts", default="step,rmse")
+    parser.add_argument("--method", default="cubature")
+    parser.add_argument("--steps", type=int, default=300)
+    args = parser.parse_args()
+    parts = args.parts.split(",")
+    if "step" in parts:
+        step_cost(args.method)
+    if "rmse" in parts:
+        rmse_table(args.method, args.steps)
+
+
+if __name__ == "__main__":
+    main()
