@@ -26,7 +26,7 @@ from pathlib import Path
 import jax
 import jax.numpy as jnp
 
-import driftwise  # noqa: F401  (float64)
+import driftwise
 from driftwise.dynamics import transitionfit as TF
 from driftwise.dynamics.transitions import transition_set
 from driftwise.gp import field as fld
@@ -34,7 +34,7 @@ from driftwise.gp import training as F
 from driftwise.gp.schedule import Schedule
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "dynamics"))
-from test_transitionfit import SIGMA_M, rmse_near_data, vortex_tracks  # noqa: E402
+from test_transitionfit import SIGMA_M, rmse_near_data, vortex_tracks
 
 BATCH, M = 256, 64
 
