@@ -35,7 +35,7 @@ from ..dynamics.spread import Release, as_releases, read_polygon, read_releases,
 from ..dynamics.transitionfit import LIKELIHOOD_HELP, LIKELIHOODS, fit_by_likelihood, fit_report
 from ..errors import InputError
 from ..files import CAUTION, plain
-from ..gp.kernels import DEFAULT_FAMILY, KERNEL_FAMILIES
+from ..gp.kernels import BACKGROUND_HELP, BACKGROUNDS, DEFAULT_FAMILY, KERNEL_FAMILIES
 from ..gp.modelfile import load_model, save_model
 from ..gp.schedule import Checkpoint
 from ..products.plots import plot_physics_maps, plot_skill, save_figure
@@ -267,6 +267,7 @@ def _add_fit(sub: argparse._SubParsersAction) -> None:
                    + f" (default {DEFAULT_FAMILY})")
     p.add_argument("--inducing", type=int, default=None, metavar="M",
                    help="number of inducing points (default: min(256, observations/32), at least 16)")
+    p.add_argument("--background", default="linear", choices=list(BACKGROUNDS), help=BACKGROUND_HELP)
     p.add_argument("--seed", type=int, default=0, metavar="S", help="random seed (default 0)")
     p.add_argument("--position-error", default=None, help="standard deviation of one fix per axis, with its unit "
                    "(m, km, cm, mm; default: estimated from the tracks; refused above the typical step between fixes)")
@@ -297,7 +298,8 @@ def _run_fit(args: argparse.Namespace) -> int:
     existed = checkpoint.path.exists()
     try:
         field, choice = fit_by_likelihood(tracks, args.kernel, args.likelihood, inducing=args.inducing, seed=args.seed,
-            position_error_m=position_error, checkpoint=checkpoint, quiet=args.quiet or args.json)
+            position_error_m=position_error, checkpoint=checkpoint, quiet=args.quiet or args.json,
+            background=args.background)
     except KeyboardInterrupt:
         print(f"driftwise: fit interrupted; continue with --resume (checkpoint {checkpoint.path})", file=sys.stderr)
         raise
@@ -408,7 +410,6 @@ def _read_named_tracks(path: str, max_speed: str):
 
 
 def _run_score(args: argparse.Namespace) -> int:
-
 
     horizons = args.horizons and parse_durations_s(args.horizons, what="--horizons")
     if args.max_starts < 1:

@@ -13,6 +13,8 @@ Analytic steady 2-D velocity fields, each a small frozen dataclass with
 - :class:`GaussianGyre` — divergence-free eddy with a Gaussian streamfunction.
 - :class:`PotentialSources` — curl-free v = ∇φ, φ a sum of Gaussian bumps.
 - :class:`Mixture` — (1 − w)·a + w·b of two fields.
+- :class:`LinearFlow` — u = U + G (x − x₀): uniform, divergence, rotation and strain
+  (the linear fit to drifter clusters of Molinari & Kirwan 1975, J. Phys. Oceanogr. 5).
 - :class:`ABCFlow` — the 3-D Arnold–Beltrami–Childress flow (Dombre et al. 1986, J. Fluid
   Mech. 167, 353), ``velocity(xyz) -> (n, 3)``, ``vorticity(xyz) -> (n, 3)`` (= k u: Beltrami).
 
@@ -186,6 +188,37 @@ class Mixture:
 
     def vorticity(self, xy) -> np.ndarray:
         return (1 - self.weight_b) * self.a.vorticity(xy) + self.weight_b * self.b.vorticity(xy)
+
+
+@dataclass(frozen=True)
+class LinearFlow:
+    """u = U + G (x − x₀) with G = ½ [[δ + n, s − ω], [s + ω, δ − n]] (Molinari & Kirwan 1975).
+
+    ``divergence_per_s`` δ = u_x + v_y, ``vorticity_per_s`` ω = v_x − u_y, ``normal_strain_per_s``
+    n = u_x − v_y, ``shear_strain_per_s`` s = v_x + u_y; ``velocity_m_s`` U at ``center_m`` x₀.
+    """
+
+    divergence_per_s: float = 0.0
+    vorticity_per_s: float = 0.0
+    normal_strain_per_s: float = 0.0
+    shear_strain_per_s: float = 0.0
+    velocity_m_s: tuple[float, float] = (0.0, 0.0)
+    center_m: tuple[float, float] = (0.0, 0.0)
+
+    @property
+    def gradient_per_s(self) -> np.ndarray:
+        """G = ∂u_i/∂x_j (2, 2) in 1/s."""
+        d, w, n, s = self.divergence_per_s, self.vorticity_per_s, self.normal_strain_per_s, self.shear_strain_per_s
+        return 0.5 * np.array([[d + n, s - w], [s + w, d - n]])
+
+    def velocity(self, xy) -> np.ndarray:
+        return np.asarray(self.velocity_m_s, float) + (_xy(xy) - np.asarray(self.center_m)) @ self.gradient_per_s.T
+
+    def divergence(self, xy) -> np.ndarray:
+        return np.full(_xy(xy).shape[:-1], float(self.divergence_per_s))
+
+    def vorticity(self, xy) -> np.ndarray:
+        return np.full(_xy(xy).shape[:-1], float(self.vorticity_per_s))
 
 
 @dataclass(frozen=True)

@@ -45,6 +45,7 @@ __all__ = [
     "HelmholtzSplit",
     "HullGrid",
     "Significance",
+    "background_summary",
     "benjamini_hochberg",
     "divergence_posterior",
     "helmholtz_split",
@@ -411,3 +412,23 @@ def helmholtz_split(field, points, *, max_points: int = 160) -> HelmholtzSplit:
     xj = jnp.asarray(x)
     means = np.concatenate([np.asarray(_part_means(field, xj, p)).ravel() for p in PARTS])
     return _split_from_moments(means, np.asarray(_joint_part_covariance(field, xj)), x.shape[0])
+
+
+# --------------------------------------------------------------------------------------
+# The background flow's rates
+# --------------------------------------------------------------------------------------
+def background_summary(field) -> dict:
+    """Posterior of the background flow's coefficients (:mod:`driftwise.gp.background`): per coefficient the
+    mean, standard deviation and z = mean/std, in m/s (uniform velocity) or 1/s (divergence, vorticity, strain).
+
+    In a Helmholtz model the linear divergence belongs to the curl-free part and the uniform velocity, the
+    linear rotation and strain to the divergence-free part, so the split above already counts them there.
+    Empty ``coefficients`` when the model has no background.
+    """
+    names, mean, cov = field.background_posterior()
+    std = np.sqrt(np.clip(np.diag(cov), 0.0, None))
+    coefficients = {name: {"mean": float(m), "std": float(s), "z": float(m / s) if s > 0 else 0.0}
+                    for name, m, s in zip(names, mean, std)}
+    return {"coefficients": coefficients,
+            "definition": "v_b(x) = U + G (x - x0) about the data's centre x0, G = divergence/d I + rotation + "
+                          "strain (Molinari & Kirwan 1975); Gaussian prior, posterior from the fitted model"}

@@ -114,8 +114,9 @@ def evidence_reading(families: dict) -> str:
 
 # ---------------------------------------------------------------- the verdict
 def decide(divergence: physics.Significance, vorticity: physics.Significance, split: physics.HelmholtzSplit | None,
-            families: dict | None) -> dict:
-    """Booleans and reasons.  The booleans follow the BH area test alone (the calibrated rule)."""
+            families: dict | None, background: dict | None = None) -> dict:
+    """Booleans and reasons.  The booleans follow the BH area test alone (the calibrated rule);
+    ``background`` (:func:`physics.background_summary`) adds the linear divergence and rotation as reasons."""
     reasons = {"divergence_free": [_area_reason(divergence, "divergence")],
                "curl_free": [_area_reason(vorticity, "vorticity")]}
     if split is not None and split.reason is None:
@@ -123,6 +124,11 @@ def decide(divergence: physics.Significance, vorticity: physics.Significance, sp
                                  ("curl_free", "divergence-free (rotational)", 1.0 - split.fraction)):
             reasons[key].append(f"the {part} part carries {share:.2f} ± {split.std:.2f} of the velocity variance "
                                 "over the data hull (Helmholtz split)")
+    for key, rate in (("divergence_free", "divergence_per_s"), ("curl_free", "vorticity_per_s")):
+        entry = (background or {}).get("coefficients", {}).get(rate)
+        if entry is not None:
+            reasons[key].append(f"the background's linear {rate[:-6]} is {entry['mean']:.3g} ± {entry['std']:.2g} "
+                                f"s⁻¹ (z = {entry['z']:.1f}) over the data")
     if families:
         reasons["divergence_free"].append(_margin_reason(families, "divergence-free", CAN_DIVERGE, "divergence"))
         reasons["curl_free"].append(_margin_reason(families, "curl-free", CAN_ROTATE, "vorticity"))
@@ -296,6 +302,7 @@ def run_check(tracks, *, model=None, holdout_fraction: float = 0.2, seed: int = 
     grid, sig = tests["grid"], tests["significance"]
     points = grid.points_m
     split = physics.helmholtz_split(helmholtz, points)
+    background = physics.background_summary(helmholtz)
     summary = {
         "families": table,
         "evidence": {"reading": evidence_reading(table), "heldout_tracks": int(held.n_tracks),
@@ -305,7 +312,8 @@ def run_check(tracks, *, model=None, holdout_fraction: float = 0.2, seed: int = 
         "helmholtz_split": split.to_dict(),
         "divergence": sig["divergence"].to_dict(),
         "vorticity": sig["vorticity"].to_dict(),
-        "verdict": decide(sig["divergence"], sig["vorticity"], split, table),
+        "background": background,
+        "verdict": decide(sig["divergence"], sig["vorticity"], split, table, background),
         "tested_model": source,
         "grid": {"n_cells": int(points.shape[0]), "spacing_m": grid.spacing_m},
         "n_tracks": int(tracks.n_tracks), "holdout_track_ids": [str(t) for t in held.unique_ids],

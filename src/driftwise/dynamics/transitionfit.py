@@ -356,16 +356,17 @@ def transition_checkpoint_path(path: Path) -> Path:
 def fit_by_likelihood(tracks, kernel: str, likelihood: str = "auto", *, inducing: int | None = None, seed: int = 0,
                       position_error_m: float | None = None, checkpoint: Checkpoint | None = None, quiet: bool = False,
                       schedule: Schedule = Schedule(), transition_schedule: Schedule = TRANSITION_SCHEDULE,
-                      method: str = "cubature") -> tuple[fld.FlowField, LikelihoodChoice]:
+                      method: str = "cubature", background: str = "linear") -> tuple[fld.FlowField, LikelihoodChoice]:
     """The velocity fit, then (when ``likelihood`` is "transitions", or "auto" finds the fixes coarse) the
     transition fit warm-started from it.  Returns (field, :class:`LikelihoodChoice`).  ``checkpoint`` is the
     velocity fit's; the transition stage keeps its own beside it (:func:`transition_checkpoint_path`) and
-    removes it once it has finished.  ``position_error_m`` None: the velocity fit's estimate."""
+    removes it once it has finished.  ``position_error_m`` None: the velocity fit's estimate; ``background`` as
+    in :func:`driftwise.fit`."""
     progress = not quiet
     if likelihood not in LIKELIHOODS:
         raise InputError(f"likelihood: use one of {', '.join(LIKELIHOODS)}, got {likelihood!r}")
     field = fit(tracks, kernel, inducing=inducing, seed=seed, position_error_m=position_error_m, schedule=schedule,
-                checkpoint=checkpoint, progress=progress)
+                checkpoint=checkpoint, progress=progress, background=background)
     if position_error_m is None:      # estimated by the velocity fit
         position_error_m = field.position_error_m
     trans = transition_set(tracks, position_error_m=position_error_m)

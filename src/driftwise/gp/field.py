@@ -33,6 +33,7 @@ from jax.scipy.linalg import solve_triangular
 
 from ..data.tracks import Frame
 from ..errors import InputError
+from .background import coefficient_names, features
 from .kernels import Helmholtz, MatrixKernel, make_kernel
 
 __all__ = [
@@ -132,9 +133,12 @@ def init_params(
     base: str = "squared-exponential",
     curl_free_velocity_scale_m_s: float | None = None,
     curl_free_length_scale_m: float | None = None,
+    background: str = "none",
+    centre_m=None,
+    background_scales: dict[str, float] | None = None,
 ) -> FieldParams:
-    """Initial parameters: the kernel from :func:`kernels.make_kernel`, Z = ``inducing_m`` (M, d) in m,
-    q(w) = the prior N(0, I), K_diff in m²/s and σ₀ in m/s."""
+    """Initial parameters: the kernel from :func:`kernels.make_kernel` (with the ``background`` flow
+    about ``centre_m``), Z = ``inducing_m`` (M, d) in m, q(w) = the prior N(0, I), K_diff in m²/s and σ₀ in m/s."""
     z = np.asarray(inducing_m, dtype=np.float64)
     if z.ndim != 2 or z.shape[1] != dim or z.shape[0] < 1:
         raise InputError(f"inducing points must have shape (M, {dim}) with M ≥ 1, got {z.shape}")
@@ -143,6 +147,7 @@ def init_params(
     kernel = make_kernel(
         family, dim, velocity_scale_m_s=velocity_scale_m_s, length_scale_m=length_scale_m, base=base,
         curl_free_velocity_scale_m_s=curl_free_velocity_scale_m_s, curl_free_length_scale_m=curl_free_length_scale_m,
+        background=background, centre_m=centre_m, background_scales=background_scales,
     )
     size = z.shape[0] * dim
     return FieldParams(
@@ -442,6 +447,29 @@ class FlowField:
         a_x, a_y = self._a(x, part_x), self._a(y, part_y)
         s = self.params.q_sqrt
         return self._prior_cross(x, y, part_x, part_y) - a_x @ a_y.T + (a_x @ s) @ (a_y @ s).T
+
+    def background_posterior(self) -> tuple[list[str], np.ndarray, np.ndarray]:
+        """Posterior of the background coefficients c (:mod:`driftwise.gp.background`): (names, mean (p,),
+        cov (p, p)) in m/s and 1/s; p = 0 without a background.
+
+        Cov[c, u] = diag(s²) F(Z)ᵀ with u = v(Z), so with A_c = diag(s²) F(Z)ᵀ L_Z^{−T}:
+        mean A_c m and covariance diag(s²) − A_c A_cᵀ + A_c S Sᵀ A_cᵀ (as for the velocity).
+        """
+        names, columns, variances = [], [], []
+        z = self.params.inducing_m
+        for background in self.params.kernel.backgrounds():
+            f, var = features(background, z)                                  # (M, d, p), (p,)
+            names += coefficient_names(background.terms, self.dim)
+            columns.append(f.reshape(-1, f.shape[-1]))
+            variances.append(var)
+        if not names:
+            return [], np.zeros(0), np.zeros((0, 0))
+        var = jnp.concatenate(variances)
+        cross = jnp.concatenate(columns, axis=1) * var                         # Cov[u, c], (M·d, p)
+        a = solve_triangular(self.inducing_chol, cross, lower=True).T           # (p, M·d)
+        a_s = a @ self.params.q_sqrt
+        cov = jnp.diag(var) - a @ a.T + a_s @ a_s.T
+        return names, np.asarray(a @ self.params.q_mean), np.asarray(0.5 * (cov + cov.T))
 
     def prior_variance_at(self, x: jax.Array) -> jax.Array:
         """Prior covariance K(x, x) at one point, (d, d) in m²/s²."""

@@ -60,6 +60,7 @@ import jax.numpy as jnp
 import numpy as np
 
 from ..errors import InputError
+from .background import BACKGROUND_HELP, BACKGROUNDS, Background, family_terms
 
 _STATIC = {"static": True}
 
@@ -76,6 +77,8 @@ def _check_tag(obj, attribute: str) -> None:
 
 
 __all__ = [
+    "BACKGROUNDS",
+    "BACKGROUND_HELP",
     "BASES",
     "KERNEL_FAMILIES",
     "KernelFamily",
@@ -255,13 +258,24 @@ class MatrixKernel:
     def __post_init__(self):
         _check_tag(self, "family")
 
+    def backgrounds(self) -> tuple[Background, ...]:
+        """The background terms of the prior (:mod:`driftwise.gp.background`): () when there are none."""
+        background = getattr(self, "background", None)
+        return () if background is None else (background,)
+
+    def _plus_background(self, k: jax.Array, x: jax.Array, y: jax.Array) -> jax.Array:
+        """k + K_b(x, y): the background depends on x and y, not only on r = x − y (broadcasting)."""
+        for background in self.backgrounds():
+            k = k + background.blocks(x, y)
+        return k
+
     def block(self, x: jax.Array, y: jax.Array) -> jax.Array:
         """Cov[v(x), v(y)] for x, y (d,) in m → (d, d) in m²/s²."""
-        return self.blocks(x - y)
+        return self._plus_background(self.blocks(x - y), x, y)
 
     def gram(self, x: jax.Array, y: jax.Array) -> jax.Array:
         """K(X, Y) blocks: X (n, d), Y (m, d) in m → (n, m, d, d) in m²/s²."""
-        return self.blocks(x[:, None, :] - y[None, :, :])
+        return self._plus_background(self.blocks(x[:, None, :] - y[None, :, :]), x[:, None, :], y[None, :, :])
 
     def gram_matrix(self, x: jax.Array, y: jax.Array) -> jax.Array:
         """K(X, Y) flattened point-major, component-minor: (n·d, m·d) in m²/s²."""
@@ -271,7 +285,7 @@ class MatrixKernel:
 
     def diag_blocks(self, x: jax.Array) -> jax.Array:
         """K(x_i, x_i) for each point: X (n, d) → (n, d, d), O(n d²) work."""
-        return self.blocks(jnp.zeros_like(x))
+        return self._plus_background(self.blocks(jnp.zeros_like(x)), x, x)
 
 
 def _potential_scale(base: Base) -> jax.Array:
@@ -279,10 +293,11 @@ def _potential_scale(base: Base) -> jax.Array:
     return base.length_scale_m**2 / base.curvature
 
 
-def _base_hyperparameters(base: Base, prefix: str = "") -> dict[str, float]:
+def _base_hyperparameters(base: Base, prefix: str = "", background: Background | None = None) -> dict[str, float]:
     return {
         f"{prefix}velocity_scale_m_s": float(base.velocity_scale_m_s),
         f"{prefix}length_scale_m": float(base.length_scale_m),
+        **({} if background is None else background.hyperparameters(prefix)),
     }
 
 
@@ -293,6 +308,7 @@ class CurlFree(MatrixKernel):
 
     base: Base
     family: str = _tag("curl-free")
+    background: Background | None = None
 
     def blocks(self, r: jax.Array) -> jax.Array:
         """K_cf(r) for separations r (..., d) in m → (..., d, d) in m²/s²."""
@@ -300,7 +316,7 @@ class CurlFree(MatrixKernel):
 
     def hyperparameters(self) -> dict[str, float]:
         """Physical hyperparameters, units in the key names."""
-        return _base_hyperparameters(self.base)
+        return _base_hyperparameters(self.base, background=self.background)
 
 
 @jax.tree_util.register_dataclass
@@ -310,6 +326,7 @@ class DivergenceFree(MatrixKernel):
 
     base: Base
     family: str = _tag("divergence-free")
+    background: Background | None = None
 
     def blocks(self, r: jax.Array) -> jax.Array:
         """K_df(r) for separations r (..., d) in m → (..., d, d) in m²/s²."""
@@ -321,7 +338,7 @@ class DivergenceFree(MatrixKernel):
 
     def hyperparameters(self) -> dict[str, float]:
         """Physical hyperparameters, units in the key names."""
-        return _base_hyperparameters(self.base)
+        return _base_hyperparameters(self.base, background=self.background)
 
 
 @jax.tree_util.register_dataclass
@@ -331,6 +348,7 @@ class Independent(MatrixKernel):
 
     base: Base
     family: str = _tag("independent")
+    background: Background | None = None
 
     def blocks(self, r: jax.Array) -> jax.Array:
         """k(r) I for separations r (..., d) in m → (..., d, d) in m²/s²."""
@@ -339,7 +357,7 @@ class Independent(MatrixKernel):
 
     def hyperparameters(self) -> dict[str, float]:
         """Physical hyperparameters, units in the key names."""
-        return _base_hyperparameters(self.base)
+        return _base_hyperparameters(self.base, background=self.background)
 
 
 @jax.tree_util.register_dataclass
@@ -358,6 +376,10 @@ class Helmholtz(MatrixKernel):
         """K_df(r) + K_cf(r) for separations r (..., d) in m → (..., d, d) in m²/s²."""
         return self.divergence_free.blocks(r) + self.curl_free.blocks(r)
 
+    def backgrounds(self) -> tuple[Background, ...]:
+        """Both parts' background terms."""
+        return self.divergence_free.backgrounds() + self.curl_free.backgrounds()
+
     @property
     def parts(self) -> dict[str, MatrixKernel]:
         """{"divergence_free": K_df, "curl_free": K_cf}."""
@@ -366,8 +388,8 @@ class Helmholtz(MatrixKernel):
     def hyperparameters(self) -> dict[str, float]:
         """Physical hyperparameters of both parts, units in the key names."""
         return {
-            **_base_hyperparameters(self.divergence_free.base, "divergence_free_"),
-            **_base_hyperparameters(self.curl_free.base, "curl_free_"),
+            **_base_hyperparameters(self.divergence_free.base, "divergence_free_", self.divergence_free.background),
+            **_base_hyperparameters(self.curl_free.base, "curl_free_", self.curl_free.background),
         }
 
 
@@ -421,13 +443,19 @@ def make_kernel(
     base: str = "squared-exponential",
     curl_free_velocity_scale_m_s: float | None = None,
     curl_free_length_scale_m: float | None = None,
+    background: str = "none",
+    centre_m=None,
+    background_scales: dict[str, float] | None = None,
 ) -> MatrixKernel:
     """A matrix kernel of ``family`` (a key of :data:`KERNEL_FAMILIES`) for d = ``dim`` ∈ {2, 3}.
 
     σ = ``velocity_scale_m_s`` (m/s) is the prior standard deviation of each velocity
     component, ℓ = ``length_scale_m`` (m).  For "helmholtz" these are the
     divergence-free part's; the curl-free part takes ``curl_free_velocity_scale_m_s``
-    and ``curl_free_length_scale_m`` (default: the same values).
+    and ``curl_free_length_scale_m`` (default: the same values).  ``background`` ∈
+    {"none", "uniform", "linear"} adds the background flow of :mod:`driftwise.gp.background`
+    about ``centre_m`` (d,) m, with the terms the family can represent, each term's prior
+    scale from ``background_scales`` ({term: m/s or 1/s}; default 1).
     """
     if family not in KERNEL_FAMILIES:
         raise InputError(f"unknown kernel family {family!r}; choose one of {', '.join(KERNEL_FAMILIES)}")
@@ -435,10 +463,29 @@ def make_kernel(
         raise InputError(f"vector-field kernels need 2 or 3 dimensions, got {dim!r}")
     main = make_base(base, velocity_scale_m_s=velocity_scale_m_s, length_scale_m=length_scale_m)
     if family != "helmholtz":
-        return KERNEL_FAMILIES[family].kind(base=main)
+        return KERNEL_FAMILIES[family].kind(base=main, background=_background(
+            family, background, dim, centre_m, background_scales))
     second = make_base(
         base,
         velocity_scale_m_s=velocity_scale_m_s if curl_free_velocity_scale_m_s is None else curl_free_velocity_scale_m_s,
         length_scale_m=length_scale_m if curl_free_length_scale_m is None else curl_free_length_scale_m,
     )
-    return Helmholtz(divergence_free=DivergenceFree(base=main), curl_free=CurlFree(base=second))
+    parts = {part: _background(f"helmholtz:{part}", background, dim, centre_m, background_scales)
+             for part in ("divergence_free", "curl_free")}
+    return Helmholtz(divergence_free=DivergenceFree(base=main, background=parts["divergence_free"]),
+                     curl_free=CurlFree(base=second, background=parts["curl_free"]))
+
+
+def _background(family: str, background: str, dim: int, centre_m, scales: dict | None) -> Background | None:
+    """The background terms ``family`` gets, or None (no terms)."""
+    if background not in BACKGROUNDS:
+        raise InputError(f"unknown background {background!r}; choose one of {', '.join(BACKGROUNDS)}")
+    terms = family_terms(family, background)
+    if not terms:
+        return None
+    centre = np.zeros(dim) if centre_m is None else np.asarray(centre_m, dtype=np.float64).reshape(-1)
+    if centre.shape != (dim,) or not np.all(np.isfinite(centre)):
+        raise InputError(f"the background centre must be {dim} finite coordinates in metres, got {centre_m!r}")
+    scales = scales or {}
+    values = [_check_positive(f"background {term} scale", scales.get(term, 1.0)) for term in terms]
+    return Background.create(terms, centre, values)

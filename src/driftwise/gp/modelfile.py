@@ -20,6 +20,7 @@ import numpy as np
 from ..errors import InputError
 from ..files import atomic_write
 from ..version import __version__
+from .background import describe as describe_background
 from .field import FlowField, init_params
 
 MODEL_FORMAT = "driftwise-model"
@@ -30,7 +31,14 @@ _KERNEL_STRUCTURE = {
     "curl-free": "K_cf(r) = −(ℓ²/λ) H_k(r)",
     "independent": "K(r) = k(r) I",
 }
-_UNIT_SUFFIXES = (("_m2_s", "m2/s"), ("_m_s", "m/s"), ("_m", "m"), ("_s", "s"))
+_UNIT_SUFFIXES = (("_m2_s", "m2/s"), ("_m_s", "m/s"), ("_per_s", "1/s"), ("_m", "m"), ("_s", "s"))
+
+
+def _structure(field) -> str:
+    text = _KERNEL_STRUCTURE[field.kernel_family]
+    if field.params.kernel.backgrounds():
+        text += "; plus K_b(x, y), a background flow: uniform velocity and linear field about centre_m"
+    return text
 
 
 class ModelFileError(InputError):
@@ -64,8 +72,9 @@ def model_metadata(field, arrays: dict) -> dict:
     return {
         "format": MODEL_FORMAT, "schema_version": MODEL_SCHEMA_VERSION, "driftwise_version": __version__,
         "kernel": {"family": field.kernel_family, "base": field.kernel_base, "dim": field.dim,
-                   "n_inducing": int(field.params.n_inducing), "structure": _KERNEL_STRUCTURE[field.kernel_family],
-                   "parametrisation": "log of each positive hyperparameter; whitened q(w) = N(m, SSᵀ)"},
+                   "n_inducing": int(field.params.n_inducing), "structure": _structure(field),
+                   "parametrisation": "log of each positive hyperparameter; whitened q(w) = N(m, SSᵀ)",
+                   "background": describe_background(field.params.kernel.backgrounds())},
         "hyperparameters": hyper, "hyperparameter_units": {name: _unit_of(name) for name in hyper},
         "decorrelation_time_s": field.decorrelation_time_s, "position_error_m": field.position_error_m,
         "jitter_multiple": field.jitter_multiple, "frame": field.frame_dict, "units": field.units,
@@ -153,9 +162,11 @@ def _params_from_arrays(path: Path, meta: dict, arrays: dict):
 
     kernel = meta.get("kernel")
     try:
+        background = kernel.get("background") or {"choice": "none", "centre_m": None}   # none before the background
         template = init_params(kernel["family"], int(kernel["dim"]), arrays["params.inducing_m"],
-                               velocity_scale_m_s=1.0, length_scale_m=1.0, base=kernel["base"])
-    except (KeyError, TypeError, ValueError) as err:
+                               velocity_scale_m_s=1.0, length_scale_m=1.0, base=kernel["base"],
+                               background=background["choice"], centre_m=background["centre_m"])
+    except (KeyError, TypeError, ValueError, AttributeError, InputError) as err:
         raise ModelFileError(f"{path}: the kernel description {kernel!r} cannot be rebuilt "
                              f"({type(err).__name__}: {err})") from None
     flat, treedef = jax.tree_util.tree_flatten_with_path(template)

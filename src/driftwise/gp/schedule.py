@@ -114,6 +114,7 @@ class TrainConfig:
     position_error_m: float
     fingerprint: str
     subsample: int = 0          # > 0: hyperparameters from this many seeded random rows (q_update="auto", large N)
+    background: str = "linear"  # the background flow of the prior (gp/background.BACKGROUNDS)
 
     def to_json(self) -> str:
         return json.dumps(dataclasses.asdict(self), sort_keys=True)

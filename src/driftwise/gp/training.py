@@ -59,6 +59,7 @@ from ..data.positionerror import estimate_position_error
 from ..data.utctime import UNIX_EPOCH_UTC
 from ..errors import InputError
 from . import field as fld
+from .background import BACKGROUNDS, TERMS
 from .kernels import BASES, DEFAULT_FAMILY, KERNEL_FAMILIES
 from .schedule import Checkpoint, Schedule, TrainConfig, TrainState, load_checkpoint, save_checkpoint
 from .variational import CHUNK, chunks, exact_q, full_elbo, mean_speed_squared, natural_step, natural_step_jit, take
@@ -173,7 +174,8 @@ def initial_hyperparameters(batch: fld.ObservationBatch, inducing_m: np.ndarray)
     σ = RMS velocity component (for Helmholtz split equally between the parts);
     ℓ = max(L/8, 2 h) with L the data extent and h = L/M^{1/d} the inducing spacing;
     K such that 2K/Δt̃ is an eighth of the velocity variance at the median Δt̃;
-    σ₀ = σ/10.
+    σ₀ = σ/10; the background's centre x₀ = the mean observation position, its uniform scale σ and
+    its rate scales 2σ/L (a linear field reaching speed σ at L/2 from the centre).
     """
     position = np.asarray(batch.position_m)
     velocity = np.asarray(batch.velocity_m_s)
@@ -183,15 +185,19 @@ def initial_hyperparameters(batch: fld.ObservationBatch, inducing_m: np.ndarray)
     dt_median = float(np.median(2.0 / np.asarray(batch.random_walk_coefficient_s_inv)))
     return {"velocity_scale_m_s": math.sqrt(var), "length_scale_m": max(extent / 8.0, 2.0 * spacing),
             "diffusivity_m2_s": var * dt_median / 16.0, "noise_floor_m_s": 0.1 * math.sqrt(var),
-            "spacing_m": spacing}
+            "spacing_m": spacing, "centre_m": position.mean(axis=0),
+            "background_scales": {term: math.sqrt(var) * (1.0 if term == "uniform" else 2.0 / extent)
+                                  for term in TERMS}}
 
 
-def _initial_params(data: _Data, family: str, base: str, n_inducing: int, seed: int) -> fld.FieldParams:
-    z = initial_inducing(np.asarray(data.batch.position_m), n_inducing, seed=seed)
+def _initial_params(data: _Data, config: TrainConfig) -> fld.FieldParams:
+    z = initial_inducing(np.asarray(data.batch.position_m), config.n_inducing, seed=config.seed)
     h = initial_hyperparameters(data.batch, z)
-    sigma = h["velocity_scale_m_s"] / (math.sqrt(2.0) if family == "helmholtz" else 1.0)
-    params = fld.init_params(family, z.shape[1], z, velocity_scale_m_s=sigma, length_scale_m=h["length_scale_m"],
-                             diffusivity_m2_s=h["diffusivity_m2_s"], noise_floor_m_s=h["noise_floor_m_s"], base=base)
+    sigma = h["velocity_scale_m_s"] / (math.sqrt(2.0) if config.kernel == "helmholtz" else 1.0)
+    params = fld.init_params(config.kernel, z.shape[1], z, velocity_scale_m_s=sigma,
+                             length_scale_m=h["length_scale_m"], diffusivity_m2_s=h["diffusivity_m2_s"],
+                             noise_floor_m_s=h["noise_floor_m_s"], base=config.base, background=config.background,
+                             centre_m=h["centre_m"], background_scales=h["background_scales"])
     return _strong(params)
 
 
@@ -349,7 +355,7 @@ def _train(state: TrainState, data: _Data, config: TrainConfig, schedule: Schedu
 def _start(data: _Data, config: TrainConfig, *, learning_rate: float,
            checkpoint: Checkpoint | None) -> tuple[TrainState, float]:
     """The initial state (or the checkpointed one) and the scale of Z's trainable coordinates (m)."""
-    params = _initial_params(data, config.kernel, config.base, config.n_inducing, config.seed)
+    params = _initial_params(data, config)
     names = _trainable_names(config.q_update, config.learn_inducing)
     z_scale = _z_scale(params)
     opt_state = _with_learning_rate(_optimizer().init(_split(params, names, z_scale)), learning_rate)
@@ -448,7 +454,8 @@ def fit_summary(field: fld.FlowField) -> dict[str, Any]:
 
 def fit_report(field: fld.FlowField) -> dict[str, Any]:
     """The ``driftwise fit --json`` object: kernel, n_tracks, n_observations, elbo, hyperparameters,
-    diffusivity_m2_s, decorrelation_time_s (and its source), plus steps and convergence."""
+    diffusivity_m2_s, decorrelation_time_s (and its source), steps and convergence, and the background
+    flow's coefficients (posterior mean and s.d.)."""
     info, summary = fit_summary(field), field.data_summary
     return {"kernel": field.kernel_family, "base": field.kernel_base, "dimension": field.dim,
             "n_inducing": int(field.params.n_inducing), "n_tracks": summary.get("n_tracks"),
@@ -459,18 +466,27 @@ def fit_report(field: fld.FlowField) -> dict[str, Any]:
             "converged": info.get("converged"), "frame": field.frame_dict,
             "position_error_m": field.position_error_m,
             "position_error_source": info.get("position_error_source", "given"),
-            "position_error_estimate": info.get("position_error_estimate")}
+            "position_error_estimate": info.get("position_error_estimate"), "background": _background_report(field)}
+
+
+def _background_report(field: fld.FlowField) -> dict[str, dict[str, float]]:
+    """Posterior mean and s.d. of each background coefficient (m/s or 1/s, unit in the name); {} without one."""
+    names, mean, cov = field.background_posterior()
+    std = np.sqrt(np.clip(np.diag(cov), 0.0, None))
+    return {name: {"mean": float(m), "std": float(s)} for name, m, s in zip(names, mean, std)}
 
 
 # ------------------------------------------------------------------------------ the door
 def fit(tracks_or_observations, kernel: str = DEFAULT_FAMILY, *, inducing: int | None = None, seed: int = 0,
         position_error_m: float | None = None, base: str = "squared-exponential", schedule: Schedule = Schedule(),
-        checkpoint: Checkpoint | None = None, progress: bool = True) -> fld.FlowField:
+        checkpoint: Checkpoint | None = None, progress: bool = True, background: str = "linear") -> fld.FlowField:
     """Fit a vector-field GP to drifter tracks (or velocity observations) and return the FlowField.
 
     ``kernel`` a name in :data:`driftwise.gp.kernels.KERNEL_FAMILIES`, ``base`` ∈
-    {"squared-exponential", "matern52"}; ``inducing`` M points by k-means (default None:
-    min(256, max(16, N/32)) for N velocity observations); ``position_error_m``
+    {"squared-exponential", "matern52"}; ``background`` ∈ {"none", "uniform", "linear"} the background flow
+    of the prior (:mod:`driftwise.gp.background`: a uniform velocity, plus a linear field about the data's
+    centre for "linear", each with a Gaussian prior whose scale is learned); ``inducing`` M points by
+    k-means (default None: min(256, max(16, N/32)) for N velocity observations); ``position_error_m``
     σ_pos of one fix (m, used when tracks are given; None: estimated from the tracks' second
     differences, :mod:`driftwise.data.positionerror`; a value above the median step between fixes is
     refused; ``fit_info`` records ``position_error_source``, "given" or "estimated", and the
@@ -483,7 +499,7 @@ def fit(tracks_or_observations, kernel: str = DEFAULT_FAMILY, *, inducing: int |
     ``checkpoint`` (:class:`Checkpoint`) keeps the resumable state; with ``resume=True`` the fit
     continues from it and ends where the uninterrupted fit would.
     """
-    config = _check_options(kernel, base, inducing, seed, schedule, position_error_m)
+    config = _check_options(kernel, base, inducing, seed, schedule, position_error_m, background)
     position_error_m, record = _position_error(tracks_or_observations, position_error_m, int(seed))
     data = _prepare(tracks_or_observations, position_error_m)
     config = _resolve(config, data.n, fingerprint=data.fingerprint,
@@ -525,7 +541,10 @@ def default_inducing(n_observations: int) -> int:
     return int(min(MAX_DEFAULT_INDUCING, max(16, n_observations // 32)))
 
 
-def _check_options(kernel, base, inducing, seed, schedule: Schedule, position_error_m) -> TrainConfig:
+def _check_options(kernel, base, inducing, seed, schedule: Schedule, position_error_m,
+                   background: str = "linear") -> TrainConfig:
+    if background not in BACKGROUNDS:
+        raise InputError(f"unknown background {background!r}; choose one of {', '.join(BACKGROUNDS)}")
     if kernel not in KERNEL_FAMILIES:
         raise InputError(f"unknown kernel {kernel!r}; choose one of {', '.join(KERNEL_FAMILIES)}")
     if base not in BASES:
@@ -540,4 +559,5 @@ def _check_options(kernel, base, inducing, seed, schedule: Schedule, position_er
     if position_error_m is not None and not (math.isfinite(position_error_m) and position_error_m >= 0):
         raise InputError(f"position error must be a finite number of metres ≥ 0, got {position_error_m!r}")
     return TrainConfig(kernel, base, 0 if inducing is None else int(inducing), int(seed), int(schedule.batch_size),
-                       bool(schedule.learn_inducing), schedule.q_update, float(schedule.natural_step), 0.0, "")
+                       bool(schedule.learn_inducing), schedule.q_update, float(schedule.natural_step), 0.0, "",
+                       background=background)

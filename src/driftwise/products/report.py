@@ -49,8 +49,8 @@ from ..version import __version__
 SECTIONS = ("data", "fit", "check", "spread", "skill")
 _TITLES = {"data": "Data and quality control", "fit": "Fitted flow field", "check": "Physical constraints",
            "spread": "Release forecasts", "skill": "Forecast skill on held-out tracks"}
-_SUFFIX_UNITS = (("_m2_s", "m²/s"), ("_m_s", "m/s"), ("_m2", "m²"), ("_s", "s"), ("_m", "m"),
-                 ("_deg", "°"), ("_nats", "nats"), ("_per_s", "s⁻¹"))
+_SUFFIX_UNITS = (("_m2_s", "m²/s"), ("_m_s", "m/s"), ("_m2", "m²"), ("_per_s", "s⁻¹"), ("_s", "s"), ("_m", "m"),
+                 ("_deg", "°"), ("_nats", "nats"))
 _PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 
 _CSS = """
