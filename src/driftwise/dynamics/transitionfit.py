@@ -39,6 +39,7 @@ import hashlib
 import math
 import sys
 from dataclasses import dataclass
+from functools import partial
 from pathlib import Path
 from typing import Any
 
@@ -109,8 +110,11 @@ def objective(params: fld.FieldParams, rows: tuple, n_total, tau_s, position_var
 
 def _adam_per_leaf(learning_rate) -> optax.GradientTransformation:
     """Adam with the step of each trainable leaf scaled by :data:`LEAF_STEP`."""
-    factors = optax.stateless(lambda updates, params=None: {k: jax.tree_util.tree_map(lambda u: LEAF_STEP[k] * u, v)
-                                                           for k, v in updates.items()})
+    def scale(updates, params=None):
+        return {name: jax.tree_util.tree_map(partial(jnp.multiply, LEAF_STEP[name]), leaf)
+                for name, leaf in updates.items()}
+
+    factors = optax.stateless(scale)
     return optax.chain(optax.adam(learning_rate), factors)
 
 
