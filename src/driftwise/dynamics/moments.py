@@ -57,6 +57,7 @@ __all__ = [
     "propagate_batch",
     "propagate_one",
     "substep_counts",
+    "rk4_step",
 ]
 
 _PIVOT_RTOL = 1e-13  # pivots below this fraction of max diag(P) count as zero
@@ -219,8 +220,8 @@ def substep_counts(span_s: jax.Array, step_s: float) -> jax.Array:
     return jnp.maximum(1, jnp.ceil(span_s / step_s * (1.0 - 1e-12))).astype(jnp.int32)
 
 
-def _rk4_step(f: Callable, y: jax.Array, h: jax.Array) -> jax.Array:
-    """One classical Runge–Kutta step of the autonomous ODE y' = f(y) (Kutta 1901)."""
+def rk4_step(f: Callable, y: jax.Array, h: jax.Array) -> jax.Array:
+    """One classical Runge–Kutta step of the autonomous ODE y' = f(y) (Kutta 1901); h = 0 returns y exactly."""
     k1 = f(y)
     k2 = f(y + 0.5 * h * k1)
     k3 = f(y + 0.5 * h * k2)
@@ -245,7 +246,7 @@ class RK4:
 
         def interval(y, span):
             n = substep_counts(span, self.step_s)
-            y = jax.lax.fori_loop(0, n, lambda _, y: _rk4_step(f, y, span / n), y)
+            y = jax.lax.fori_loop(0, n, lambda _, y: rk4_step(f, y, span / n), y)
             return y, y
 
         _, ys = jax.lax.scan(interval, y0, jnp.diff(times_s))

@@ -41,7 +41,7 @@ from jax.scipy.linalg import solve_triangular
 from ..data.observations import velocity_observations
 from ..errors import InputError
 from ..gp.field import FieldParams, inducing_cholesky
-from .moments import SphericalCubature, propagate_one
+from .moments import SphericalCubature, propagate_one, rk4_step
 from .sde import SDE, join_from_jit, split_for_jit
 
 __all__ = ["TransitionSet", "transition_set", "FixedStepRK4", "ParamPosterior", "log_likelihoods",
@@ -105,13 +105,6 @@ def _validate(trans: TransitionSet) -> None:
 
 
 # ---------------------------------------------------------------- fixed-step integrator
-def _rk4(f: Callable, y: jax.Array, h: jax.Array) -> jax.Array:
-    """One classical Runge–Kutta step of y' = f(y) (Kutta 1901); h = 0 returns y exactly."""
-    k1 = f(y)
-    k2 = f(y + 0.5 * h * k1)
-    k3 = f(y + 0.5 * h * k2)
-    k4 = f(y + h * k3)
-    return y + (h / 6.0) * (k1 + 2.0 * k2 + 2.0 * k3 + k4)
 
 
 @partial(jax.tree_util.register_dataclass, data_fields=["step_s"], meta_fields=["substeps"])
@@ -134,7 +127,7 @@ class FixedStepRK4:
         def interval(y, span):
             count = jnp.clip(jnp.ceil(span / self.step_s * (1.0 - 1e-12)), 1, self.substeps)
             hs = jnp.where(slots < count, span / count, 0.0)
-            y = jax.lax.scan(lambda state, h: (_rk4(f, state, h), None), y, hs)[0]
+            y = jax.lax.scan(lambda state, h: (rk4_step(f, state, h), None), y, hs)[0]
             return y, y
 
         _, ys = jax.lax.scan(interval, y0, jnp.diff(times_s))
