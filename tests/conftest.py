@@ -1,8 +1,24 @@
-"""Shared test helpers: write a small file, run the command line."""
+"""Shared test helpers: write a small file, run the command line; compiled programs freed between modules."""
 
 from __future__ import annotations
 
+import gc
+
+import jax
 import pytest
+
+
+@pytest.fixture(autouse=True, scope="module")
+def free_compiled_programs():
+    """Drop jax's compiled programs after each test module.
+
+    Every compiled XLA CPU program keeps memory mappings; the whole suite compiles thousands of them in one
+    process, which reached Linux's default limit of 65,530 mappings per process (vm.max_map_count) and made
+    LLVM crash inside a later compilation.  Clearing the caches per module keeps the count bounded.
+    """
+    yield
+    jax.clear_caches()
+    gc.collect()
 
 
 @pytest.fixture
