@@ -14,7 +14,6 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 import pytest
-from scipy.spatial import Delaunay
 from scipy.stats import chi2
 
 import driftwise
@@ -25,6 +24,7 @@ from driftwise.errors import InputError
 from driftwise.gp.background import coefficient_names, features
 from driftwise.gp.field import init_params
 from driftwise.gp.kernels import KERNEL_FAMILIES, make_kernel
+from geometry import grid_inside_alpha_shape
 
 SCALES = {"uniform": 0.2, "divergence": 1e-4, "rotation": 2e-4, "strain": 3e-4}
 
@@ -143,24 +143,8 @@ def test_the_helmholtz_parts_carry_the_linear_divergence_and_rotation(linear_fit
 
 
 # ------------------------------------------------------------------ a uniform stream past a source and a sink
-def _circumradius_m(tri: Delaunay) -> np.ndarray:
-    a, b, c = (tri.points[tri.simplices[:, i]] for i in range(3))
-    ab, bc, ca = (np.linalg.norm(p - q, axis=1) for p, q in ((a, b), (b, c), (c, a)))
-    area2 = np.abs((b[:, 0] - a[:, 0]) * (c[:, 1] - a[:, 1]) - (b[:, 1] - a[:, 1]) * (c[:, 0] - a[:, 0]))
-    return ab * bc * ca / np.maximum(2.0 * area2, 1e-300)
 
 
-def _near_data(points_m: np.ndarray, alpha_m: float, n: int = 50) -> np.ndarray:
-    """Grid nodes inside the alpha shape of the data (Edelsbrunner, Kirkpatrick & Seidel 1983): Delaunay triangles
-    of circumradius ≤ α (here a quarter of the 4 km feature width)."""
-    lo, hi = points_m.min(axis=0), points_m.max(axis=0)
-    gx, gy = np.meshgrid(np.linspace(lo[0], hi[0], n), np.linspace(lo[1], hi[1], n))
-    grid = np.column_stack([gx.ravel(), gy.ravel()])
-    tri = Delaunay(points_m)
-    simplex = tri.find_simplex(grid)
-    inside = simplex >= 0
-    inside[inside] = _circumradius_m(tri)[simplex[inside]] <= alpha_m
-    return grid[inside]
 
 
 def stream_past_source_and_sink(xy: np.ndarray) -> np.ndarray:
@@ -187,7 +171,7 @@ def test_a_stream_past_a_source_and_a_sink_is_recovered_with_calibrated_uncertai
     tracks = tracks_from_frame(table)
     field = driftwise.fit(tracks, position_error_m=10.0, progress=False)           # the default kernel and background
     positions = np.asarray(driftwise.velocity_observations(tracks, position_error_m=10.0).position_m)
-    grid = _near_data(positions, alpha_m=1000.0)
+    grid = grid_inside_alpha_shape(positions, alpha_m=1000.0)
     true = stream_past_source_and_sink(grid)
     np.testing.assert_allclose(true, flow.velocity(grid), rtol=1e-12, atol=1e-15)   # the simulation drove this flow
     mean, cov = field.predict(grid)

@@ -22,12 +22,12 @@ import math
 import numpy as np
 import pandas as pd
 import pytest
-from scipy.spatial import Delaunay
 from scipy.stats import chi2
 
 import driftwise
 from driftwise.data.synthetic import LambOseenVortex, TaylorGreen, random_walk, simulate_drifters
 from driftwise.data.tracks import tracks_from_frame
+from geometry import grid_inside_alpha_shape
 
 CHI2_95_2DOF = chi2.ppf(0.95, 2)  # 5.991
 ALPHA_M = 250.0  # alpha-shape radius of the data hull (m)
@@ -47,25 +47,12 @@ def taylor_green_velocity(xy, speed_m_s, cell_m):
                      -speed_m_s * np.cos(k * xy[:, 0]) * np.sin(k * xy[:, 1])], axis=1)
 
 
-def _circumradius_m(tri: Delaunay) -> np.ndarray:
-    a, b, c = (tri.points[tri.simplices[:, i]] for i in range(3))
-    ab, bc, ca = (np.linalg.norm(p - q, axis=1) for p, q in ((a, b), (b, c), (c, a)))
-    area2 = np.abs((b[:, 0] - a[:, 0]) * (c[:, 1] - a[:, 1]) - (b[:, 1] - a[:, 1]) * (c[:, 0] - a[:, 0]))
-    return ab * bc * ca / np.maximum(2.0 * area2, 1e-300)
 
 
 def _grid_inside_hull(points_m, alpha_m=ALPHA_M, n=50):
-    """Grid points inside the alpha shape of the data (Edelsbrunner, Kirkpatrick & Seidel 1983): the Delaunay
-    triangles of circumradius ≤ α; α → ∞ gives the convex hull.  It keeps out the wide empty stretches between the
-    few drifters that leave along the Taylor–Green separatrices."""
-    lo, hi = points_m.min(axis=0), points_m.max(axis=0)
-    gx, gy = np.meshgrid(np.linspace(lo[0], hi[0], n), np.linspace(lo[1], hi[1], n))
-    grid = np.column_stack([gx.ravel(), gy.ravel()])
-    tri = Delaunay(points_m)
-    simplex = tri.find_simplex(grid)
-    inside = simplex >= 0
-    inside[inside] = _circumradius_m(tri)[simplex[inside]] <= alpha_m
-    return grid[inside]
+    """Grid points inside the alpha shape of the data (tests/geometry.py); it keeps out the wide empty stretches
+    between the few drifters that leave along the Taylor–Green separatrices."""
+    return grid_inside_alpha_shape(points_m, alpha_m, n)
 
 
 def _scores(field, truth, obs_position_m):
