@@ -11,6 +11,7 @@ from driftwise.data.frame import Frame
 from driftwise.errors import InputError
 from driftwise.gp import field as fld
 from driftwise.gp.modelfile import save_model
+from driftwise import units
 from driftwise.units import parse_diffusivity_m2_s, parse_duration_s, parse_durations_s, parse_length_m, parse_speed_m_s
 
 
@@ -120,3 +121,27 @@ def test_cli_bare_length_or_duration_options_are_exit_2(write_file, tmp_path, ru
     assert (code, out) == (2, "")
     assert f"{option}: " in err and "has no unit" in err and len(err.strip().splitlines()) == 1
     assert not (tmp_path / "m.npz").exists()
+
+
+# Printing in the unit that fits the size (SI prefixes, BIPM SI Brochure 2019, 9th ed., table 7), 3 significant figures.
+@pytest.mark.parametrize("value, text", [
+    (12345.0, "12.3 km"), (999.96, "1 km"), (150.0, "150 m"), (0.5, "500 mm"), (5e-4, "0.5 mm"),
+    (0.0, "0 m"), (-2500.0, "-2.5 km"), (3e6, "3000 km"), (None, "—"),
+])
+def test_format_length_picks_the_unit_that_fits(value, text):
+    assert units.format_length(value) == text
+
+
+@pytest.mark.parametrize("value, text", [
+    (5400.0, "1.5 h"), (0.5, "500 ms"), (172800.0, "2 d"), (86400.0, "24 h"), (59.99, "1 min"),
+    (2e-3, "2 ms"), (0.0, "0 s"), (2.0, "2 s"),
+])
+def test_format_duration_picks_the_unit_that_fits(value, text):
+    assert units.format_duration(value) == text
+
+
+def test_format_speed_and_diffusivity_at_tank_and_ocean_scale():
+    assert units.format_speed(0.25) == "0.25 m/s"
+    assert units.format_speed(0.002) == "2 mm/s"
+    assert units.format_diffusivity(1e-5) == "10 mm²/s"
+    assert units.format_diffusivity(2.3) == "2.3 m²/s"

@@ -9,6 +9,7 @@ number as SI (m/s, m²/s).
 
 from __future__ import annotations
 
+import math
 import re
 
 from .errors import InputError
@@ -72,3 +73,60 @@ def parse_durations_s(text: str, *, what: str = "durations", bare_unit: str | No
 def _example(units: dict[str, float]) -> str:
     return f"10{next(iter(units))}"
 
+
+
+# --------------------------------------------------------------------------------------
+# Printing: a value in the unit that fits its size, three significant figures
+# --------------------------------------------------------------------------------------
+# (unit, size of one unit in SI, smallest SI value printed in it); the last entry takes everything smaller
+_LENGTH_STEPS = (("km", 1000.0, 1000.0), ("m", 1.0, 1.0), ("mm", 1e-3, 1e-5), ("µm", 1e-6, 0.0))
+_DURATION_STEPS = (("d", 86400.0, 2 * 86400.0), ("h", 3600.0, 3600.0), ("min", 60.0, 60.0), ("s", 1.0, 1.0),
+                   ("ms", 1e-3, 1e-3), ("µs", 1e-6, 0.0))
+_SPEED_STEPS = (("m/s", 1.0, 0.01), ("mm/s", 1e-3, 1e-5), ("µm/s", 1e-6, 0.0))
+_DIFFUSIVITY_STEPS = (("m²/s", 1.0, 0.01), ("mm²/s", 1e-6, 1e-8), ("µm²/s", 1e-12, 0.0))
+_ZERO_UNIT = {id(_LENGTH_STEPS): "m", id(_DURATION_STEPS): "s", id(_SPEED_STEPS): "m/s", id(_DIFFUSIVITY_STEPS): "m²/s"}
+
+
+def _fitted(value: float | None, steps: tuple[tuple[str, float, float], ...], digits: int) -> str:
+    """``value`` (SI) in the first unit of ``steps`` whose lower bound it reaches, ``digits`` significant figures.
+
+    The bound is tested on the value after rounding to ``digits`` figures, so 999.96 m prints as '1 km'.
+    """
+    if value is None:
+        return "—"
+    value = float(value)
+    if not math.isfinite(value):
+        return str(value)
+    if value == 0:
+        return f"0 {_ZERO_UNIT[id(steps)]}"
+    size = abs(float(f"{value:.{digits}g}"))
+    unit, scale = next((u, s) for u, s, lower in steps if size >= lower)
+    return f"{_sig(value / scale, digits)} {unit}"
+
+
+def _sig(value: float, digits: int) -> str:
+    """``value`` to ``digits`` significant figures, plain notation below 10⁶ (1234 → '1230', 0.5 → '0.5')."""
+    text = f"{value:.{digits}g}"
+    if "e" in text and abs(value) < 1e6:
+        text = f"{float(text):f}".rstrip("0").rstrip(".")
+    return text
+
+
+def format_length(value_m: float, digits: int = 3) -> str:
+    """A length in m printed in km, m, mm or µm, whichever fits: 12345 → '12.3 km', 0.0005 → '0.5 mm'."""
+    return _fitted(value_m, _LENGTH_STEPS, digits)
+
+
+def format_duration(value_s: float, digits: int = 3) -> str:
+    """A duration in s printed in d, h, min, s or ms, whichever fits: 5400 → '1.5 h', 0.5 → '500 ms'."""
+    return _fitted(value_s, _DURATION_STEPS, digits)
+
+
+def format_speed(value_m_s: float, digits: int = 3) -> str:
+    """A speed in m/s printed in m/s, mm/s or µm/s: 0.0123 → '12.3 mm/s'."""
+    return _fitted(value_m_s, _SPEED_STEPS, digits)
+
+
+def format_diffusivity(value_m2_s: float, digits: int = 3) -> str:
+    """A diffusivity in m²/s printed in m²/s, cm²/s or mm²/s: 1e-5 → '10 mm²/s'."""
+    return _fitted(value_m2_s, _DIFFUSIVITY_STEPS, digits)
