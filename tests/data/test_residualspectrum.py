@@ -107,12 +107,14 @@ def test_m2_at_drifter_noise_is_detected():
     """M2 amplitude 0.03 m/s per component (×0.5–1.5 per track) under 0.05 m/s noise, 20 three-day tracks:
     M2 chosen in at least 95 of 100 seeds, and never more than one of the unseparable M2, S2, N2 (where noise
     makes S2 or N2 explain more, that one stands for the semidiurnal band and M2 is reported ambiguous)."""
-    found, several = 0, 0
+    found, band, several = 0, 0, 0
     for s in range(100):
         evidence = detect_time_structure(*_tracks(1000 + s, tide_m_s=0.03), PERIODS_S)
         found += "M2" in evidence.chosen
+        band += bool({"M2", "S2", "N2"} & set(evidence.chosen))
         several += len({"M2", "S2", "N2"} & set(evidence.chosen)) > 1
-    assert found >= 95, f"M2 detected in {found} of 100 seeds"
+    assert found >= 95, f"M2 detected in {found} of 100 seeds"      # measured: 96
+    assert band >= 99, f"semidiurnal band detected in {band} of 100 seeds"    # measured: 100
     assert several == 0
 
 
