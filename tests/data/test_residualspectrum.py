@@ -172,13 +172,13 @@ def test_evidence_is_json_with_units_in_keys():
 
 
 @pytest.mark.parametrize("bad, match", [
-    (dict(time_s=np.zeros(3)), "must be"),
-    (dict(residual_m_s=np.full((5, 2), np.nan)), "finite"),
-    (dict(periods_s={"M2": -1.0}), "period of M2"),
-    (dict(alpha=1.5), "alpha"),
+    ({"time_s": np.zeros(3)}, "must be"),
+    ({"residual_m_s": np.full((5, 2), np.nan)}, "finite"),
+    ({"periods_s": {"M2": -1.0}}, "period of M2"),
+    ({"alpha": 1.5}, "alpha"),
 ])
 def test_bad_input_is_refused_by_name(bad, match):
-    args = dict(residual_m_s=np.zeros((5, 2)), time_s=np.arange(5.0), track=np.zeros(5), periods_s={"M2": M2_S})
+    args = {"residual_m_s": np.zeros((5, 2)), "time_s": np.arange(5.0), "track": np.zeros(5), "periods_s": {"M2": M2_S}}
     args.update(bad)
     with pytest.raises(InputError, match=match):
         detect_time_structure(args.pop("residual_m_s"), args.pop("time_s"), args.pop("track"),
