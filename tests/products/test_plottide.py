@@ -15,6 +15,7 @@ import pytest
 from matplotlib.collections import LineCollection
 from PIL import Image
 
+from driftwise.data.residualspectrum import Periodogram
 from driftwise.diagnostics.tidalellipse import amplitudes_from_ellipse, tidal_ellipses
 from driftwise.products import plots
 from driftwise.products.plottide import plot_residual_spectrum, plot_tidal_ellipses
@@ -113,26 +114,32 @@ def test_single_point_without_data(tmp_path):
     _check_units_and_save(fig, tmp_path / "single.png")
 
 
+def _gram(periods, variance, threshold=None, residual=0.01):
+    threshold = np.full_like(periods, 3e-5) if threshold is None else threshold
+    return Periodogram(periods, variance, threshold, residual, 0.01)
+
+
 def test_residual_spectrum_figure(tmp_path):
     periods = np.geomspace(3 * 3600.0, 4 * 86400.0, 120)
     before = 0.002 * np.exp(-(np.log(periods / M2_S) / 0.05) ** 2) + 1e-5
     after = np.full_like(periods, 1e-5)
-    fig = plot_residual_spectrum(periods, before, after, constituents={"M2": M2_S, "K1": 23.93447213 * 3600},
-                                 residual_variance_m2_s2=0.01)
+    fig = plot_residual_spectrum(_gram(periods, before), _gram(periods, after),
+                                 constituents={"M2": M2_S, "S2": 12 * 3600.0, "K1": 23.93447213 * 3600})
     ax = fig.axes[0]
     assert ax.get_xlabel() == "period (h)" and ax.get_ylabel() == "variance explained (cm²/s²)"
     assert ax.get_xscale() == "log"
-    peak_h = ax.get_lines()[0].get_xdata()[np.argmax(ax.get_lines()[0].get_ydata())]
-    assert abs(peak_h - 12.42) < 0.5
     np.testing.assert_allclose(ax.get_lines()[0].get_ydata(), before * 1e4, rtol=1e-12)     # m²/s² → cm²/s²
     np.testing.assert_allclose(ax.get_lines()[0].get_xdata(), periods / 3600.0, rtol=1e-12)  # s → h
-    assert [t.get_text() for t in ax.texts] == ["M2", "K1"]
-    assert any("(%)" in a.get_ylabel() for a in fig.axes[0].child_axes)
+    assert [t.get_text() for t in ax.texts] == ["S2 M2", "K1"]       # 12 h and 12.42 h share a label
+    (right,) = ax.child_axes
+    assert right.get_ylabel() == "share of the steady fit's residual variance (%)"
     _check_units_and_save(fig, tmp_path / "spectrum.png")
 
 
 @pytest.mark.parametrize("after", [None, np.array([np.nan])])
 def test_residual_spectrum_one_period(tmp_path, after):
-    fig = plot_residual_spectrum(np.array([M2_S]), np.array([0.03]), after)
+    one = np.array([M2_S])
+    fig = plot_residual_spectrum(_gram(one, np.array([0.03]), np.array([np.nan])),
+                                 None if after is None else _gram(one, after))
     assert fig.axes[0].get_ylabel() == "variance explained (m²/s²)"
     _check_units_and_save(fig, tmp_path / "one.png")

@@ -47,6 +47,7 @@ from ..units import format_duration
 __all__ = [
     "SLOW",
     "ComponentTest",
+    "Periodogram",
     "TemporalEvidence",
     "detect_time_structure",
     "harmonic_coefficients",
@@ -114,6 +115,23 @@ class TemporalEvidence:
                       "n_tracks": self.n_tracks, "typical_track_span_s": self.typical_span_s,
                       "residual_variance_m2_s2": self.residual_variance_m2_s2,
                       "components": {c.name: c.to_dict() for c in self.components}})
+
+
+@dataclass(frozen=True)
+class Periodogram:
+    """:func:`residual_periodogram`: per period (k,) the variance one harmonic explains and the variance it
+    would need to be significant at ``alpha`` at that one period (m²/s², summed over velocity components)."""
+
+    periods_s: np.ndarray
+    variance_m2_s2: np.ndarray
+    threshold_m2_s2: np.ndarray
+    residual_variance_m2_s2: float
+    alpha: float
+
+    def to_dict(self) -> dict[str, Any]:
+        return plain({"periods_s": self.periods_s, "variance_explained_m2_s2": self.variance_m2_s2,
+                      "threshold_m2_s2": self.threshold_m2_s2, "alpha": self.alpha,
+                      "residual_variance_m2_s2": self.residual_variance_m2_s2})
 
 
 @dataclass(frozen=True)
@@ -223,18 +241,32 @@ def _typical_span(blocks: Sequence[_Block]) -> float:
     return float(np.median(spans))
 
 
-def residual_periodogram(residual_m_s: Any, time_s: Any, track: Any, periods_s: Any) -> np.ndarray:
-    """Variance (m²/s², summed over components) one harmonic at each period explains: (k,) for (k,) periods.
+def residual_periodogram(residual_m_s: Any, time_s: Any, track: Any, periods_s: Any, *,
+                         alpha: float = 0.01) -> Periodogram:
+    """Variance (m²/s², summed over components) one harmonic at each of the (k,) periods explains.
 
     (RSS_mean − RSS_mean+harmonic) / n with per-track means and per-track harmonic coefficients: the
-    floating-mean least-squares periodogram (Lomb 1976; Scargle 1982) pooled over tracks.
+    floating-mean least-squares periodogram (Lomb 1976; Scargle 1982) pooled over tracks.  The threshold is
+    the variance whose F-test at that one period has p = ``alpha``: from F = (Δ/q) / ((RSS₀ − Δ)/df₂) = F_α,
+    Δ = F_α q RSS₀ / (df₂ + F_α q), over n (no correction for scanning many periods).
     """
+    if not 0.0 < alpha < 1.0:
+        raise InputError(f"residual spectrum: alpha must lie in (0, 1), got {alpha!r}")
     blocks = _blocks(residual_m_s, time_s, track)
     periods = np.atleast_1d(np.asarray(periods_s, dtype=float))
     _check_periods({f"period {i}": p for i, p in enumerate(periods)})
     n = sum(b.time_s.size for b in blocks)
-    rss0, _ = _rss(blocks, [], 1.0)
-    return np.array([(rss0 - _rss(blocks, [p], 1.0)[0]) / n for p in periods])
+    n_obs = n * blocks[0].residual.shape[1]
+    rss0, p0 = _rss(blocks, [], 1.0)
+    variance, threshold = np.empty(periods.size), np.full(periods.size, np.nan)
+    for k, period in enumerate(periods):
+        rss1, p1 = _rss(blocks, [period], 1.0)
+        variance[k] = (rss0 - rss1) / n
+        q, df2 = p1 - p0, n_obs - p1
+        if q > 0 and df2 > 0:
+            f_alpha = float(stats.f.isf(alpha, q, df2))
+            threshold[k] = f_alpha * q * rss0 / (df2 + f_alpha * q) / n
+    return Periodogram(periods, variance, threshold, rss0 / n, float(alpha))
 
 
 def _check_periods(periods_s: Mapping[str, float]) -> None:

@@ -23,9 +23,11 @@ from matplotlib.collections import LineCollection
 from matplotlib.figure import Figure
 from matplotlib.font_manager import FontProperties
 from matplotlib.lines import Line2D
+from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
 from mpl_toolkits.axes_grid1.anchored_artists import AnchoredSizeBar
 from scipy.spatial import cKDTree
 
+from ..data.residualspectrum import Periodogram
 from ..diagnostics.tidalellipse import TidalEllipses
 from ..units import DURATION_S, format_duration, format_speed
 from .mapaxes import MapCoords, map_height_in, new_figure, nice_round
@@ -125,43 +127,64 @@ def _duration_unit(values_s: np.ndarray) -> tuple[str, float]:
     return (unit, DURATION_S[unit]) if unit in DURATION_S else ("s", 1.0)
 
 
-def plot_residual_spectrum(periods_s: Any, before_m2_s2: Any, after_m2_s2: Any = None, *,
+def _constituent_labels(ax: Any, constituents: Mapping[str, float], size: float) -> None:
+    """Dotted lines at the constituents' periods; names of periods within 10 % of each other share one label."""
+    groups: list[list[tuple[str, float]]] = []
+    for name, period in sorted(constituents.items(), key=lambda item: item[1]):
+        ax.axvline(period / size, color="0.5", linestyle=":", linewidth=0.9)
+        if groups and period < groups[-1][0][1] * 1.10:
+            groups[-1].append((name, period))
+        else:
+            groups.append([(name, period)])
+    for group in groups:
+        where = float(np.exp(np.mean(np.log([p for _, p in group])))) / size
+        ax.annotate(" ".join(name for name, _ in group), (where, 1.0), xycoords=("data", "axes fraction"),
+                    xytext=(0, -3), textcoords="offset points", fontsize="x-small", ha="center", va="top",
+                    bbox={"boxstyle": "round,pad=0.15", "facecolor": "white", "edgecolor": "none", "alpha": 0.85})
+
+
+def plot_residual_spectrum(before: Periodogram, after: Periodogram | None = None, *,
                            constituents: Mapping[str, float] | None = None,
-                           residual_variance_m2_s2: float | None = None,
                            labels: Sequence[str] = ("steady fit", "time-varying fit"),
                            title: str = "Residual spectrum: variance one harmonic explains") -> Figure:
-    """Variance explained (m²/s², summed over velocity components) against period, before and after.
+    """Variance explained (summed over velocity components) against period, before and after a fit.
 
-    ``periods_s`` (k,) s; ``before_m2_s2``, ``after_m2_s2`` (k,) from ``residual_periodogram`` on the two
-    fits' residuals; ``constituents`` {name: period_s} marked by dotted lines; with
-    ``residual_variance_m2_s2`` (the steady fit's) a right axis gives the share of it in %.
+    ``before``/``after`` from :func:`driftwise.data.residualspectrum.residual_periodogram` on the two fits'
+    residuals; the ``before`` fit's one-period significance threshold is drawn thin, ``constituents``
+    {name: period_s} are marked by dotted lines, and a right axis gives the share of the ``before`` fit's
+    residual variance in %.
     """
-    periods = np.atleast_1d(np.asarray(periods_s, dtype=float))
+    periods = np.asarray(before.periods_s, dtype=float)
     order = np.argsort(periods)
     unit, size = _duration_unit(periods)
-    curves = [np.atleast_1d(np.asarray(c, dtype=float)) for c in (before_m2_s2, after_m2_s2) if c is not None]
-    peak = max([float(np.nanmax(c)) for c in curves if np.any(np.isfinite(c))] + [0.0])
+    curves = [(before.variance_m2_s2, labels[0], "-", "0.0")]
+    if after is not None:
+        curves.append((after.variance_m2_s2, labels[1], "--", "#0072b2"))
+    values = np.concatenate([np.asarray(c[0], float) for c in curves] + [before.threshold_m2_s2])
+    peak = float(np.nanmax(values)) if np.any(np.isfinite(values)) else 0.0
     v_unit, v_size = ("cm²/s²", 1e-4) if peak < 1e-2 else ("m²/s²", 1.0)
     fig, (ax,) = new_figure(height_in=3.8)
-    for curve, label, style, colour in zip(curves, labels, ("-", "--"), ("0.0", "#0072b2")):
-        ax.plot(periods[order] / size, curve[order] / v_size, linestyle=style, marker="o" if periods.size < 40
-                else None, markersize=3, color=colour, label=label)
-    for name, period in (constituents or {}).items():
-        ax.axvline(period / size, color="0.5", linestyle=":", linewidth=0.9)
-        ax.annotate(name, (period / size, 1.0), xycoords=("data", "axes fraction"), xytext=(2, -10),
-                    textcoords="offset points", fontsize="x-small", rotation=90, va="top")
+    marker = "o" if periods.size < 40 else None
+    for curve, label, style, colour in curves:
+        ax.plot(periods[order] / size, np.asarray(curve, float)[order] / v_size, linestyle=style, marker=marker,
+                markersize=3, color=colour, label=label)
+    ax.plot(periods[order] / size, before.threshold_m2_s2[order] / v_size, color="0.55", linewidth=0.8,
+            label=f"{100 * before.alpha:g} % significance at one period ({labels[0]})")
+    _constituent_labels(ax, constituents or {}, size)
     marked = np.concatenate([periods, np.asarray(list((constituents or {}).values()), float)]) / size
     if marked.max() > marked.min() * 1.5:
         ax.set_xscale("log")
-    low, high = marked.min(), marked.max()
-    ax.set_xlim(low / 1.15, high * 1.15)
-    ax.set_ylim(bottom=0.0, top=1.08 * peak / v_size if peak > 0 else 1.0)
+        ax.xaxis.set_major_locator(LogLocator(subs=(1.0, 2.0, 5.0)))
+        ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:g}"))
+        ax.xaxis.set_minor_formatter(NullFormatter())
+    ax.set_xlim(marked.min() / 1.15, marked.max() * 1.15)
+    ax.set_ylim(bottom=0.0, top=1.25 * peak / v_size if peak > 0 else 1.0)
     ax.set_xlabel(f"period ({unit})")
     ax.set_ylabel(f"variance explained ({v_unit})")
-    if residual_variance_m2_s2:
-        share = 100.0 * v_size / float(residual_variance_m2_s2)
+    if before.residual_variance_m2_s2 > 0:
+        share = 100.0 * v_size / float(before.residual_variance_m2_s2)
         right = ax.secondary_yaxis("right", functions=(lambda y: y * share, lambda p: p / share))
-        right.set_ylabel("share of the steady fit's residual variance (%)")
-    ax.legend(loc="upper left", fontsize="small")
+        right.set_ylabel(f"share of the {labels[0]}'s residual variance (%)")
+    ax.legend(loc="upper left", bbox_to_anchor=(0.0, 0.9), fontsize="x-small")
     ax.set_title(title, fontsize="medium")
     return fig
