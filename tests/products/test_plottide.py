@@ -10,31 +10,17 @@ from __future__ import annotations
 import re
 
 import numpy as np
-import pyproj
 import pytest
 from matplotlib.collections import LineCollection
 from PIL import Image
 
+from driftwise.data.frame import Frame
 from driftwise.data.residualspectrum import Periodogram
 from driftwise.diagnostics.tidalellipse import amplitudes_from_ellipse, tidal_ellipses
 from driftwise.products import plots
 from driftwise.products.plottide import plot_residual_spectrum, plot_tidal_ellipses
 
 M2_S = 12.4206012 * 3600.0
-
-
-class _LonLatFrame:
-    """A local azimuthal-equidistant frame centred at 4.0° E, 52.0° N (the Frame duck type)."""
-
-    kind = "lonlat"
-
-    def __init__(self):
-        self._tr = pyproj.Transformer.from_crs("+proj=aeqd +lat_0=52 +lon_0=4 +datum=WGS84 +units=m",
-                                               "EPSG:4326", always_xy=True)
-
-    def to_lonlat(self, xy_m):
-        xy_m = np.asarray(xy_m, float)
-        return self._tr.transform(xy_m[:, 0], xy_m[:, 1])
 
 
 def _grid_ellipses(n_side: int = 4, sd: float = 0.01):
@@ -83,7 +69,7 @@ def test_ellipse_grid_metric_and_lonlat(tmp_path):
     gids = {c.get_gid() for c in fig.axes[0].collections}
     assert {"ellipses counter-clockwise", "ellipses clockwise"} <= gids
     _check_units_and_save(fig, tmp_path / "metric.png")
-    fig = plot_tidal_ellipses(centres, e, frame=_LonLatFrame())
+    fig = plot_tidal_ellipses(centres, e, frame=Frame("lonlat", 4.0, 52.0))
     assert fig.axes[0].get_xlabel() == "longitude (° E)"
     _check_units_and_save(fig, tmp_path / "lonlat.png")
 

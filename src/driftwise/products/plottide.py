@@ -115,7 +115,7 @@ def plot_tidal_ellipses(centres_m: Any, ellipses: TidalEllipses, *, constituent:
     coords.decorate(ax)
     ax.autoscale_view()
     _speed_bar(ax, coords, centres[0], scale, nice_round(big))
-    ax.legend(handles=handles, loc="upper right", fontsize="x-small", framealpha=0.9)
+    fig.legend(handles=handles, loc="outside lower center", ncols=len(handles), fontsize="x-small", frameon=False)
     when = f", period {format_duration(period_s)}" if period_s else ""
     ax.set_title(title or f"Tidal current ellipses, {constituent}{when}", fontsize="medium")
     return fig
