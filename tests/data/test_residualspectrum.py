@@ -35,7 +35,7 @@ NOISE_M_S = 0.05      # residual velocity noise per component: turbulence sqrt(2
 
 
 def _tracks(seed: int, *, tide_m_s: float = 0.0, trend_m_s_per_day: float = 0.0, n_tracks: int = 20,
-            days: float = 3.0, periods_s: tuple[float, ...] = (M2_S,)):
+            days: float = 3.0, periods_s: tuple[float, ...] = (M2_S,), noise_m_s: float = NOISE_M_S):
     """Irregularly sampled tracks (40–80 fixes over ``days``, random start) with white noise, a rotating
     tidal residual of amplitude about ``tide_m_s`` per component at each period, random phase per track, and a
     linear trend."""
@@ -45,7 +45,7 @@ def _tracks(seed: int, *, tide_m_s: float = 0.0, trend_m_s_per_day: float = 0.0,
         n = int(rng.integers(40, 80) * days / 3.0)
         start = rng.uniform(0.0, DAY_S)
         t = np.sort(start + rng.uniform(0.0, days * DAY_S, n))
-        r = rng.normal(0.0, NOISE_M_S, (n, 2)) + trend_m_s_per_day * ((t - start) / DAY_S)[:, None]
+        r = rng.normal(0.0, noise_m_s, (n, 2)) + trend_m_s_per_day * ((t - start) / DAY_S)[:, None]
         for period in periods_s:
             omega, phase = 2 * np.pi / period, rng.uniform(0.0, 2 * np.pi, 2)
             amp = tide_m_s * rng.uniform(0.5, 1.5)
@@ -54,6 +54,14 @@ def _tracks(seed: int, *, tide_m_s: float = 0.0, trend_m_s_per_day: float = 0.0,
         time.append(t)
         track.append(np.full(n, f"drifter-{j}"))
     return np.vstack(residual), np.concatenate(time), np.concatenate(track)
+
+
+def _unequal_noise_tracks(seed: int, tide_m_s: float):
+    """As ``_tracks``, with noise s.d. 0.02 or 0.10 m/s per fix at random; returns the weights 1/σ² too."""
+    residual, time, track = _tracks(seed, tide_m_s=tide_m_s, noise_m_s=0.0)
+    rng = np.random.default_rng(seed + 1_000_000)
+    sd = np.where(rng.random(time.size) < 0.5, 0.02, 0.10)
+    return residual + sd[:, None] * rng.standard_normal(residual.shape), time, track, 1.0 / sd**2
 
 
 def test_one_sinusoid_amplitude_and_phase_match_lstsq_and_lombscargle():
@@ -130,6 +138,37 @@ def test_m2_at_drifter_noise_is_detected():
     assert found >= 95, f"M2 detected in {found} of 100 seeds"      # measured: 96
     assert band >= 99, f"semidiurnal band detected in {band} of 100 seeds"    # measured: 100
     assert several == 0
+
+
+def test_weights_scaled_to_mean_one_and_weighted_lstsq():
+    residual, time, track = _tracks(21, tide_m_s=0.03, n_tracks=4)
+    plain_fit = detect_time_structure(residual, time, track, PERIODS_S)
+    same = detect_time_structure(residual, time, track, PERIODS_S, weights=np.full(time.size, 7.0))
+    assert same.to_dict() == plain_fit.to_dict()            # constant weights change nothing (scaled to mean 1)
+    w = np.random.default_rng(0).uniform(0.2, 5.0, time.size)
+    ids, mu, a, b = harmonic_coefficients(residual, time, track, M2_S, weights=w)
+    sel = track == ids[1]
+    omega = 2 * np.pi / M2_S
+    design = np.stack([np.ones(sel.sum()), np.cos(omega * time[sel]), np.sin(omega * time[sel])], axis=1)
+    root = np.sqrt(w[sel])[:, None]
+    ref = np.linalg.lstsq(design * root, residual[sel] * root, rcond=None)[0]     # weighted least squares
+    np.testing.assert_allclose(np.stack([mu[1], a[1], b[1]]), ref, rtol=1e-10, atol=1e-14)
+
+
+@pytest.mark.slow
+def test_weighted_tests_hold_their_level_under_unequal_noise():
+    """Noise s.d. 0.02 or 0.10 m/s per fix (as short and long Δt give), weights 1/σ²: false-positive rate over 200
+    seeds within α + 3 binomial s.e.; and an M2 of 0.02 m/s is found in at least 95 of 100 seeds."""
+    false = 0
+    for s in range(200):
+        residual, time, track, weights = _unequal_noise_tracks(3000 + s, 0.0)
+        false += bool(detect_time_structure(residual, time, track, PERIODS_S, weights=weights).chosen)
+    found = 0
+    for s in range(100):
+        residual, time, track, weights = _unequal_noise_tracks(4000 + s, 0.02)
+        found += "M2" in detect_time_structure(residual, time, track, PERIODS_S, weights=weights).chosen
+    assert found >= 95, found
+    assert false / 200 <= 0.01 + 3 * math.sqrt(0.01 * 0.99 / 200), false
 
 
 def test_steady_plus_trend_chooses_slow():

@@ -23,6 +23,9 @@ least ``slow_min_period_s`` (2 d by default; at least the m = 1 term, i.e. a smo
   are significant; each component's final F compares the selected model with and without it.  Under white
   Gaussian residual noise the F-test is exact; serially correlated noise (a smooth misfit of the steady field)
   makes the low-frequency test anti-conservative, so a "slow" verdict on real data is the weaker evidence.
+* **Weights.**  With ``weights`` w_n ∝ 1/σ_n² (finite-difference velocities are noisier over short Δt) every
+  fit is weighted least squares and RSS a weighted sum; the weights are scaled to mean 1, so RSS/n and the
+  variances reported stay in m²/s².
 * **Resolution.**  A track of span T cannot resolve a period longer than T, nor separate two frequencies closer
   than 1/T (the Rayleigh criterion, T ≥ R / |f₁ − f₂| with R = 1; common practice in tidal analysis: M2 and S2
   need 14.8 d).  T here is the typical track span, the median over fixes of their track's span.  Constituents
@@ -136,16 +139,17 @@ class Periodogram:
 
 @dataclass(frozen=True)
 class _Block:
-    """One track: times (s), its span (s) and its residuals (n_j, d)."""
+    """One track: times (s), its span (s), its residuals (n_j, d) and the square roots of their weights."""
 
     time_s: np.ndarray
     span_s: float
     residual: np.ndarray
+    root_weight: np.ndarray
 
 
 # ----------------------------------------------------------------------------- regression machinery
-def _blocks(residual_m_s: Any, time_s: Any, track: Any) -> list[_Block]:
-    """Split the residuals by track, after checking shapes and finiteness."""
+def _blocks(residual_m_s: Any, time_s: Any, track: Any, weights: Any = None) -> list[_Block]:
+    """Split the residuals by track, after checking shapes and finiteness; weights scaled to mean 1."""
     r = np.asarray(residual_m_s, dtype=float)
     t = np.asarray(time_s, dtype=float)
     ids = np.asarray(track)
@@ -158,12 +162,17 @@ def _blocks(residual_m_s: Any, time_s: Any, track: Any) -> list[_Block]:
         raise InputError("residual spectrum: residuals and times must be finite")
     if r.shape[0] == 0:
         raise InputError("residual spectrum: no residuals given")
+    w = np.ones(r.shape[0]) if weights is None else np.asarray(weights, dtype=float)
+    if w.shape != (r.shape[0],) or not np.all(np.isfinite(w) & (w > 0)):
+        raise InputError(f"residual spectrum: weights must be {r.shape[0]} positive finite numbers "
+                         f"(one per residual), got shape {w.shape}")
+    root = np.sqrt(w / np.mean(w))
     _, inverse = np.unique(ids, return_inverse=True)
     blocks = []
     for j in range(int(inverse.max()) + 1):
         sel = inverse == j
         tj = t[sel]
-        blocks.append(_Block(tj, float(tj.max() - tj.min()), r[sel]))
+        blocks.append(_Block(tj, float(tj.max() - tj.min()), r[sel], root[sel]))
     return blocks
 
 
@@ -184,11 +193,13 @@ def _columns(block: _Block, term: str | float, slow_min_period_s: float) -> np.n
 
 
 def _fit(block: _Block, terms: Sequence[str | float], slow_min_period_s: float) -> tuple[np.ndarray, float, int]:
-    """Least-squares fit of one block on [1, columns of every term]: (coefficients (p, d), RSS, rank)."""
+    """Weighted least-squares fit of one block on [1, columns of every term]: (coefficients (p, d), weighted
+    RSS, rank); rows are scaled by the square roots of their weights."""
     design = np.hstack([np.ones((block.time_s.size, 1))]
-                       + [_columns(block, term, slow_min_period_s) for term in terms])
-    coef, _, rank, _ = np.linalg.lstsq(design, block.residual, rcond=None)
-    return coef, float(np.sum((block.residual - design @ coef) ** 2)), int(rank)
+                       + [_columns(block, term, slow_min_period_s) for term in terms]) * block.root_weight[:, None]
+    target = block.residual * block.root_weight[:, None]
+    coef, _, rank, _ = np.linalg.lstsq(design, target, rcond=None)
+    return coef, float(np.sum((target - design @ coef) ** 2)), int(rank)
 
 
 def _rss(blocks: Sequence[_Block], terms: Sequence[str | float], slow_min_period_s: float) -> tuple[float, int]:
@@ -206,14 +217,15 @@ def _rss(blocks: Sequence[_Block], terms: Sequence[str | float], slow_min_period
     return rss, n_params
 
 
-def harmonic_coefficients(residual_m_s: Any, time_s: Any, track: Any, period_s: float) -> tuple[np.ndarray, ...]:
+def harmonic_coefficients(residual_m_s: Any, time_s: Any, track: Any, period_s: float, *,
+                          weights: Any = None) -> tuple[np.ndarray, ...]:
     """Per-track least-squares fit r(t) = μ + a cos ωt + b sin ωt, ω = 2π/period_s (t on the data's axis).
 
     Returns (track ids (J,), μ (J, d), a (J, d), b (J, d)) in m/s, tracks in sorted id order; the amplitude is
     √(a² + b²) and the phase lag atan2(b, a), so that a cos ωt + b sin ωt = A cos(ωt − phase).
     """
     _check_periods({"period_s": period_s})
-    blocks = _blocks(residual_m_s, time_s, track)
+    blocks = _blocks(residual_m_s, time_s, track, weights)
     coefs = np.stack([_fit(block, [float(period_s)], 1.0)[0] for block in blocks])
     return np.unique(np.asarray(track)), coefs[:, 0], coefs[:, 1], coefs[:, 2]
 
@@ -242,7 +254,7 @@ def _typical_span(blocks: Sequence[_Block]) -> float:
 
 
 def residual_periodogram(residual_m_s: Any, time_s: Any, track: Any, periods_s: Any, *,
-                         alpha: float = 0.01) -> Periodogram:
+                         alpha: float = 0.01, weights: Any = None) -> Periodogram:
     """Variance (m²/s², summed over components) one harmonic at each of the (k,) periods explains.
 
     (RSS_mean − RSS_mean+harmonic) / n with per-track means and per-track harmonic coefficients: the
@@ -252,7 +264,7 @@ def residual_periodogram(residual_m_s: Any, time_s: Any, track: Any, periods_s: 
     """
     if not 0.0 < alpha < 1.0:
         raise InputError(f"residual spectrum: alpha must lie in (0, 1), got {alpha!r}")
-    blocks = _blocks(residual_m_s, time_s, track)
+    blocks = _blocks(residual_m_s, time_s, track, weights)
     periods = np.atleast_1d(np.asarray(periods_s, dtype=float))
     _check_periods({f"period {i}": p for i, p in enumerate(periods)})
     n = sum(b.time_s.size for b in blocks)
@@ -279,17 +291,19 @@ def _check_periods(periods_s: Mapping[str, float]) -> None:
 # ----------------------------------------------------------------------------- the decision
 def detect_time_structure(residual_m_s: Any, time_s: Any, track: Any, periods_s: Mapping[str, float], *,
                           alpha: float = 0.01, slow: bool = True, slow_min_period_s: float = 2 * 86400.0,
-                          rayleigh: float = 1.0) -> TemporalEvidence:
+                          rayleigh: float = 1.0, weights: Any = None) -> TemporalEvidence:
     """Which of the candidate periods (``{name: period_s}``) and the slow part do the residuals support?
 
     ``residual_m_s`` (n, d) m/s, ``time_s`` (n,) s on the data's own axis, ``track`` (n,) track ids.
     Screening for resolution (Rayleigh constant ``rayleigh``), then backward elimination under F-tests with a
     Bonferroni correction at family-wise level ``alpha`` (module docstring).  ``slow=False`` skips the slow part.
+    ``weights`` (n,) ∝ 1 / noise variance of each residual (e.g. 1 / R_n of the fit) make the fits weighted
+    least squares, so the F-tests hold for noise of unequal but known relative variance.
     """
     if not 0.0 < alpha < 1.0:
         raise InputError(f"residual spectrum: alpha must lie in (0, 1), got {alpha!r}")
     _check_periods({SLOW + " minimum period": slow_min_period_s, **periods_s})
-    blocks = _blocks(residual_m_s, time_s, track)
+    blocks = _blocks(residual_m_s, time_s, track, weights)
     n = sum(b.time_s.size for b in blocks)
     n_obs = n * blocks[0].residual.shape[1]
     span = _typical_span(blocks)
