@@ -20,9 +20,18 @@ least ``slow_min_period_s`` (2 d by default; at least the m = 1 term, i.e. a smo
   parameters of the larger model; p-value from ``scipy.stats.f``.  The family of tests is corrected by
   Bonferroni (p × m, m the number of components examined, ambiguous ones included).  Selection is backward
   elimination from the model with every examined component: the least significant is dropped until all left
-  are significant; each component's final F compares the selected model with and without it.  Under white
-  Gaussian residual noise the F-test is exact; serially correlated noise (a smooth misfit of the steady field)
-  makes the low-frequency test anti-conservative, so a "slow" verdict on real data is the weaker evidence.
+  are significant; each component's final F compares the selected model with and without it.
+* **Correlated noise.**  Drifter velocities decorrelate over a Lagrangian time τ of hours, and a steady fit's
+  misfit is smooth along a track; treated as white, such noise makes every low-frequency test wildly
+  anti-conservative.  The tests therefore use generalised least squares under the noise correlation
+  (1 − η) exp(−|Δt|/τ) + η δ: an Ornstein–Uhlenbeck part (Uhlenbeck & Ornstein 1930, Phys. Rev. 36:823) plus a
+  white share η (position error, the random walk).  Each track is whitened by the Cholesky factor of that
+  correlation on its own times (in chunks of ``CHUNK`` fixes), and (τ, η) come from restricted maximum
+  likelihood on a grid under the largest model; white noise (τ = 0) is one of the candidates.  The low-frequency
+  tests are sensitive to τ (the OU spectrum there grows with τ) and REML's τ scatters by tens of per cent, so
+  a component counts only when significant under the best model *and* the ends of the 95 % likelihood
+  interval of τ (its p-value is the largest of the three).  With the noise model known the F-tests are exact;
+  estimated, they are approximate (their level is measured in the tests).  Variances explained are reported from the plain least-squares fits, in m²/s².
 * **Weights.**  With ``weights`` w_n ∝ 1/σ_n² (finite-difference velocities are noisier over short Δt) every
   fit is weighted least squares and RSS a weighted sum; the weights are scaled to mean 1, so RSS/n and the
   variances reported stay in m²/s².
@@ -37,7 +46,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any
 
 import numpy as np
@@ -61,6 +70,8 @@ __all__ = [
 
 SLOW = "slow"
 MAX_SLOW_TERMS = 6
+CHUNK = 64                         # fixes per whitening chunk (correlation across chunk ends is neglected)
+NUGGETS = (0.0, 0.25, 0.5, 0.75)   # white share η of the residual noise variance tried by "auto"
 
 
 @dataclass(frozen=True)
@@ -107,6 +118,8 @@ class TemporalEvidence:
     n_tracks: int
     typical_span_s: float
     residual_variance_m2_s2: float
+    noise_time_scale_s: float
+    noise_nugget_fraction: float
 
     def component(self, name: str) -> ComponentTest:
         return next(c for c in self.components if c.name == name)
@@ -117,6 +130,8 @@ class TemporalEvidence:
                       "correction": f"Bonferroni over {self.n_tests} tests", "n_fixes": self.n_fixes,
                       "n_tracks": self.n_tracks, "typical_track_span_s": self.typical_span_s,
                       "residual_variance_m2_s2": self.residual_variance_m2_s2,
+                      "noise_time_scale_s": self.noise_time_scale_s,
+                      "noise_nugget_fraction": self.noise_nugget_fraction,
                       "components": {c.name: c.to_dict() for c in self.components}})
 
 
@@ -139,12 +154,16 @@ class Periodogram:
 
 @dataclass(frozen=True)
 class _Block:
-    """One track: times (s), its span (s), its residuals (n_j, d) and the square roots of their weights."""
+    """One track: times (s), its span (s), its residuals (n_j, d), the square roots of their weights, and the
+    whitening matrices L⁻¹ (L the Cholesky factor of the noise correlation), one per chunk of at most CHUNK
+    fixes (None: white noise), with log det of that correlation."""
 
     time_s: np.ndarray
     span_s: float
     residual: np.ndarray
     root_weight: np.ndarray
+    whiteners: tuple[np.ndarray, ...] | None = None
+    log_det_corr: float = 0.0
 
 
 # ----------------------------------------------------------------------------- regression machinery
@@ -192,14 +211,100 @@ def _columns(block: _Block, term: str | float, slow_min_period_s: float) -> np.n
     return np.stack([np.cos(omega * t), np.sin(omega * t)], axis=1)
 
 
-def _fit(block: _Block, terms: Sequence[str | float], slow_min_period_s: float) -> tuple[np.ndarray, float, int]:
-    """Weighted least-squares fit of one block on [1, columns of every term]: (coefficients (p, d), weighted
-    RSS, rank); rows are scaled by the square roots of their weights."""
-    design = np.hstack([np.ones((block.time_s.size, 1))]
-                       + [_columns(block, term, slow_min_period_s) for term in terms]) * block.root_weight[:, None]
-    target = block.residual * block.root_weight[:, None]
-    coef, _, rank, _ = np.linalg.lstsq(design, target, rcond=None)
-    return coef, float(np.sum((target - design @ coef) ** 2)), int(rank)
+def _fit(block: _Block, terms: Sequence[str | float], slow_min_period_s: float) -> tuple[np.ndarray, float, int, float]:
+    """Weighted (and whitened) least-squares fit of one block on [1, columns of every term]: coefficients (p, d),
+    RSS, rank and log det of the design's Gram matrix XᵀX over its kept singular values (for REML)."""
+    design = np.hstack([np.ones((block.time_s.size, 1))] + [_columns(block, term, slow_min_period_s) for term in terms])
+    design = _whiten(block, design) * block.root_weight[:, None]
+    target = _whiten(block, block.residual) * block.root_weight[:, None]
+    coef, _, rank, singular = np.linalg.lstsq(design, target, rcond=None)
+    log_gram_det = 2.0 * float(np.sum(np.log(singular[:rank])))
+    return coef, float(np.sum((target - design @ coef) ** 2)), int(rank), log_gram_det
+
+
+def _whiten(block: _Block, x: np.ndarray) -> np.ndarray:
+    """L⁻¹ x per chunk, L the Cholesky factor of the noise correlation: independent unit-variance innovations."""
+    if block.whiteners is None:
+        return x
+    out, start = [], 0
+    for whitener in block.whiteners:
+        stop = start + whitener.shape[0]
+        out.append(whitener @ x[start:stop])
+        start = stop
+    return np.vstack(out)
+
+
+def _with_noise(blocks: Sequence[_Block], time_scale_s: float, nugget: float) -> list[_Block]:
+    """The blocks with whitening for the correlation (1 − η) exp(−|Δt|/τ) + η δ (τ = 0: white noise)."""
+    if time_scale_s <= 0:
+        return [replace(b, whiteners=None, log_det_corr=0.0) for b in blocks]
+    out = []
+    for block in blocks:
+        whiteners, log_det = [], 0.0
+        for start in range(0, block.time_s.size, CHUNK):
+            t = block.time_s[start:start + CHUNK]
+            corr = (1.0 - nugget) * np.exp(-np.abs(t[:, None] - t[None, :]) / time_scale_s)
+            factor = np.linalg.cholesky(corr + (nugget + 1e-9) * np.eye(t.size))
+            whiteners.append(np.linalg.inv(factor))
+            log_det += 2.0 * float(np.sum(np.log(np.diag(factor))))
+        out.append(replace(block, whiteners=tuple(whiteners), log_det_corr=log_det))
+    return out
+
+
+def _restricted_log_likelihood(blocks: Sequence[_Block], terms: Sequence[str | float],
+                               slow_min_period_s: float) -> float:
+    """Restricted (REML) log-likelihood of the noise model, σ² profiled out, up to a constant:
+
+        −((N − p)/2) log RSS − (d/2) log det R − (d/2) Σ_tracks log det(X_wᵀ X_w)
+
+    with R the noise correlation and X_w the whitened design (Patterson & Thompson 1971, "Recovery of
+    inter-block information when block sizes are unequal", Biometrika 58:545; from memory).  Unlike the plain
+    likelihood it is not biased towards short τ by the many per-track coefficients, which soak up
+    low-frequency noise.
+    """
+    d = blocks[0].residual.shape[1]
+    rss, n_params, log_det = 0.0, 0, 0.0
+    for block in blocks:
+        _, rss_j, rank, log_gram = _fit(block, terms, slow_min_period_s)
+        rss, n_params = rss + rss_j, n_params + rank * d
+        log_det += log_gram + block.log_det_corr
+    n_obs = d * sum(b.time_s.size for b in blocks)
+    return -0.5 * (n_obs - n_params) * math.log(max(rss, 1e-300)) - 0.5 * d * log_det
+
+
+def _noise_models(choice: float | str | None, blocks: Sequence[_Block], terms: Sequence[str | float],
+                  slow_min_period_s: float) -> list[tuple[float, float]]:
+    """Noise models (τ s, nugget η) to test under, the best first: white [(0, 0)] for None; [(τ, 0)] for a
+    given τ; for "auto" the restricted maximum-likelihood pair on a grid (white, and 16 τ from 0.1 to 100
+    median sampling intervals × η ∈ {0, 0.25, 0.5, 0.75}, τ then refined to a factor 1.17) under the model
+    with ``terms``, followed by the grid's pairs of least and greatest τ whose restricted log-likelihood lies
+    within χ²₁(0.95)/2 = 1.92 of the best (the ends of a 95 % likelihood interval; Wilks 1938)."""
+    if choice is None:
+        return [(0.0, 0.0)]
+    if choice != "auto":
+        if not (isinstance(choice, (int, float)) and math.isfinite(choice) and choice >= 0):
+            raise InputError(f"residual spectrum: the noise time scale must be 'auto', None or seconds ≥ 0, "
+                             f"got {choice!r}")
+        return [(float(choice), 0.0)]
+    steps = np.concatenate([np.diff(b.time_s) for b in blocks])
+    steps = steps[steps > 0]
+    if steps.size == 0:
+        return [(0.0, 0.0)]
+
+    def score(tau: float, eta: float) -> float:
+        return _restricted_log_likelihood(_with_noise(blocks, tau, eta), terms, slow_min_period_s)
+
+    grid = [(0.0, 0.0)] + [(float(tau), eta) for tau in np.median(steps) * np.geomspace(0.1, 100.0, 16)
+                           for eta in NUGGETS]
+    scores = [score(tau, eta) for tau, eta in grid]
+    best_tau, best_eta = grid[int(np.argmax(scores))]
+    if best_tau > 0:
+        finer = [(best_tau * 10.0 ** (k / 45.0), best_eta) for k in (-2, -1, 1, 2)]
+        grid, scores = grid + finer, scores + [score(tau, eta) for tau, eta in finer]
+    best = int(np.argmax(scores))
+    plausible = [g for g, sc in zip(grid, scores) if sc >= scores[best] - 0.5 * float(stats.chi2.ppf(0.95, 1))]
+    ends = [min(plausible), max(plausible)]
+    return [grid[best]] + [m for m in dict.fromkeys(ends) if m != grid[best]]
 
 
 def _rss(blocks: Sequence[_Block], terms: Sequence[str | float], slow_min_period_s: float) -> tuple[float, int]:
@@ -211,7 +316,7 @@ def _rss(blocks: Sequence[_Block], terms: Sequence[str | float], slow_min_period
     """
     rss, n_params = 0.0, 0
     for block in blocks:
-        _, rss_j, rank = _fit(block, terms, slow_min_period_s)
+        _, rss_j, rank, _ = _fit(block, terms, slow_min_period_s)
         rss += rss_j
         n_params += rank * block.residual.shape[1]
     return rss, n_params
@@ -291,48 +396,64 @@ def _check_periods(periods_s: Mapping[str, float]) -> None:
 # ----------------------------------------------------------------------------- the decision
 def detect_time_structure(residual_m_s: Any, time_s: Any, track: Any, periods_s: Mapping[str, float], *,
                           alpha: float = 0.01, slow: bool = True, slow_min_period_s: float = 2 * 86400.0,
-                          rayleigh: float = 1.0, weights: Any = None) -> TemporalEvidence:
+                          rayleigh: float = 1.0, weights: Any = None,
+                          noise_time_scale_s: float | str | None = "auto") -> TemporalEvidence:
     """Which of the candidate periods (``{name: period_s}``) and the slow part do the residuals support?
 
     ``residual_m_s`` (n, d) m/s, ``time_s`` (n,) s on the data's own axis, ``track`` (n,) track ids.
     Screening for resolution (Rayleigh constant ``rayleigh``), then backward elimination under F-tests with a
     Bonferroni correction at family-wise level ``alpha`` (module docstring).  ``slow=False`` skips the slow part.
     ``weights`` (n,) ∝ 1 / noise variance of each residual (e.g. 1 / R_n of the fit) make the fits weighted
-    least squares, so the F-tests hold for noise of unequal but known relative variance.
+    least squares.  ``noise_time_scale_s``: the residual noise's correlation time τ for the tests ("auto":
+    estimated; None: white; or seconds, e.g. the fit's decorrelation time).
     """
     if not 0.0 < alpha < 1.0:
         raise InputError(f"residual spectrum: alpha must lie in (0, 1), got {alpha!r}")
     _check_periods({SLOW + " minimum period": slow_min_period_s, **periods_s})
     blocks = _blocks(residual_m_s, time_s, track, weights)
     n = sum(b.time_s.size for b in blocks)
-    n_obs = n * blocks[0].residual.shape[1]
     span = _typical_span(blocks)
-    base = _rss(blocks, [], slow_min_period_s)
-    alone = {k: (base[0] - _rss(blocks, [p], slow_min_period_s)[0]) / n for k, p in periods_s.items()}
+    base = _rss(blocks, [], slow_min_period_s)[0]
+    alone = {k: (base - _rss(blocks, [p], slow_min_period_s)[0]) / n for k, p in periods_s.items()}
     screen = _screen(periods_s, alone, span, rayleigh)
     terms: dict[str, str | float] = {k: float(periods_s[k]) for k, (status, _) in screen.items()
                                      if status == "tested"}
     if slow:
         terms[SLOW], screen[SLOW] = SLOW, ("tested", "")
     n_tests = sum(status != "unresolved" for status, _ in screen.values())
-    active = _eliminate(blocks, terms, n_obs, alpha, n_tests, slow_min_period_s)
+    models = _noise_models(noise_time_scale_s, blocks, list(terms.values()), slow_min_period_s)
+    whitened = [_with_noise(blocks, tau, eta) for tau, eta in models]
+    active = _eliminate(whitened, terms, n * blocks[0].residual.shape[1], alpha, n_tests, slow_min_period_s)
     tests = []
     for name, (status, note) in screen.items():
         period = None if name == SLOW else float(periods_s[name])
-        if status != "tested":
-            tests.append(ComponentTest(name, period, status, alone[name], alone[name] * n / base[0], math.nan,
+        if status == "tested":
+            tests.append(_component_test(name, period, note, (blocks, whitened), terms, active, n_tests,
+                                         slow_min_period_s))
+        else:
+            tests.append(ComponentTest(name, period, status, alone[name], alone[name] * n / base, math.nan,
                                        0, 0, math.nan, math.nan, False, note))
-            continue
-        with_k = [terms[k] for k in active] + ([] if name in active else [terms[name]])
-        without_k = [terms[k] for k in active if k != name]
-        small, big = _rss(blocks, without_k, slow_min_period_s), _rss(blocks, with_k, slow_min_period_s)
-        f, df1, df2, p = _f_test(small, big, n_obs)
-        gain = small[0] - big[0]
-        tests.append(ComponentTest(name, period, status, gain / n, gain / base[0] if base[0] > 0 else math.nan,
-                                   f, df1, df2, p, min(1.0, p * n_tests), name in active, note))
     chosen = tuple(t.name for t in tests if t.significant)
     return TemporalEvidence(tuple(tests), chosen, float(alpha), int(n_tests), int(n), len(blocks), span,
-                            base[0] / n)
+                            base / n, *models[0])
+
+
+def _component_test(name: str, period: float | None, note: str,
+                    blocks: tuple[list[_Block], list[list[_Block]]], terms: Mapping[str, str | float],
+                    active: Sequence[str], n_tests: int, slow_min_period_s: float) -> ComponentTest:
+    """The selected model with and without ``name``: variance explained from the plain fits, the F-test from
+    the whitened ones (the largest p over the noise models)."""
+    raw, whitened = blocks
+    with_k = [terms[k] for k in active] + ([] if name in active else [terms[name]])
+    without_k = [terms[k] for k in active if k != name]
+    n = sum(b.time_s.size for b in raw)
+    n_obs = n * raw[0].residual.shape[1]
+    f, df1, df2, p = max((_f_test(_rss(w, without_k, slow_min_period_s), _rss(w, with_k, slow_min_period_s), n_obs)
+                          for w in whitened), key=lambda test: test[3])
+    gain = _rss(raw, without_k, slow_min_period_s)[0] - _rss(raw, with_k, slow_min_period_s)[0]
+    base = _rss(raw, [], slow_min_period_s)[0]
+    return ComponentTest(name, period, "tested", gain / n, gain / base if base > 0 else math.nan, f, df1, df2, p,
+                         min(1.0, p * n_tests), name in active, note)
 
 
 def _screen(periods_s: Mapping[str, float], alone: Mapping[str, float], span_s: float,
@@ -359,16 +480,18 @@ def _screen(periods_s: Mapping[str, float], alone: Mapping[str, float], span_s: 
     return {k: screen[k] for k in periods_s}
 
 
-def _eliminate(blocks: Sequence[_Block], terms: Mapping[str, str | float], n_obs: int, alpha: float,
+def _eliminate(whitened: Sequence[Sequence[_Block]], terms: Mapping[str, str | float], n_obs: int, alpha: float,
                n_tests: int, slow_min_period_s: float) -> list[str]:
-    """Backward elimination: drop the least significant component until every one left has p·n_tests < alpha."""
+    """Backward elimination: drop the least significant component until every one left has p·n_tests < alpha,
+    p the largest over the noise models."""
     active = list(terms)
     while active:
-        full = _rss(blocks, [terms[k] for k in active], slow_min_period_s)
-        p_drop = {}
-        for name in active:
-            small = _rss(blocks, [terms[k] for k in active if k != name], slow_min_period_s)
-            p_drop[name] = _f_test(small, full, n_obs)[3]
+        p_drop = dict.fromkeys(active, 0.0)
+        for blocks in whitened:
+            full = _rss(blocks, [terms[k] for k in active], slow_min_period_s)
+            for name in active:
+                small = _rss(blocks, [terms[k] for k in active if k != name], slow_min_period_s)
+                p_drop[name] = max(p_drop[name], _f_test(small, full, n_obs)[3])
         worst = max(active, key=lambda k: p_drop[k])
         if p_drop[worst] * n_tests < alpha:
             break
