@@ -7,7 +7,7 @@ each track j (a *block*) is fitted by least squares, separately per velocity com
 
 per-track coefficients (tidal currents change in space, and so along a drifter's path), where S is a set of
 candidate constituents with ω_c = 2π / period_c and t on the data's own time axis.  The *slow* terms are
-half-range cosines cos(π m τ), τ = (t − t_start) / span ∈ [0, 1], m = 1 … M_j, with every period 2 span / m at
+half-range cosines cos(π m s), s = (t − t_start) / span ∈ [0, 1], m = 1 … M_j, with every period 2 span / m at
 least ``slow_min_period_s`` (2 d by default; at least the m = 1 term, i.e. a smooth trend per track, always).
 
 * **Spectrum.**  The variance a single harmonic explains, (RSS_mean − RSS_mean+c) / n in m²/s² (summed over
@@ -24,14 +24,15 @@ least ``slow_min_period_s`` (2 d by default; at least the m = 1 term, i.e. a smo
 * **Correlated noise.**  Drifter velocities decorrelate over a Lagrangian time τ of hours, and a steady fit's
   misfit is smooth along a track; treated as white, such noise makes every low-frequency test wildly
   anti-conservative.  The tests therefore use generalised least squares under the noise correlation
-  (1 − η) exp(−|Δt|/τ) + η δ: an Ornstein–Uhlenbeck part (Uhlenbeck & Ornstein 1930, Phys. Rev. 36:823) plus a
-  white share η (position error, the random walk).  Each track is whitened by the Cholesky factor of that
+  (1 − η) exp(−|Δt|/τ) + η δ: an Ornstein–Uhlenbeck part (Uhlenbeck & Ornstein 1930, Phys. Rev. 36:823)
+  plus a white share η (position error, the random walk).  Each track is whitened by the Cholesky factor of that
   correlation on its own times (in chunks of ``CHUNK`` fixes), and (τ, η) come from restricted maximum
   likelihood on a grid under the largest model; white noise (τ = 0) is one of the candidates.  The low-frequency
   tests are sensitive to τ (the OU spectrum there grows with τ) and REML's τ scatters by tens of per cent, so
   a component counts only when significant under the best model *and* the ends of the 95 % likelihood
   interval of τ (its p-value is the largest of the three).  With the noise model known the F-tests are exact;
-  estimated, they are approximate (their level is measured in the tests).  Variances explained are reported from the plain least-squares fits, in m²/s².
+  estimated, they are approximate (their level is measured in the tests).  Variances explained are reported
+  from the plain least-squares fits, in m²/s².  The periodogram's threshold assumes white noise.
 * **Weights.**  With ``weights`` w_n ∝ 1/σ_n² (finite-difference velocities are noisier over short Δt) every
   fit is weighted least squares and RSS a weighted sum; the weights are scaled to mean 1, so RSS/n and the
   variances reported stay in m²/s².
@@ -364,8 +365,9 @@ def residual_periodogram(residual_m_s: Any, time_s: Any, track: Any, periods_s: 
 
     (RSS_mean − RSS_mean+harmonic) / n with per-track means and per-track harmonic coefficients: the
     floating-mean least-squares periodogram (Lomb 1976; Scargle 1982) pooled over tracks.  The threshold is
-    the variance whose F-test at that one period has p = ``alpha``: from F = (Δ/q) / ((RSS₀ − Δ)/df₂) = F_α,
-    Δ = F_α q RSS₀ / (df₂ + F_α q), over n (no correction for scanning many periods).
+    the variance whose F-test at that one period, under white noise, has p = ``alpha``: from
+    F = (Δ/q) / ((RSS₀ − Δ)/df₂) = F_α, Δ = F_α q RSS₀ / (df₂ + F_α q), over n (no correction for scanning
+    many periods).
     """
     if not 0.0 < alpha < 1.0:
         raise InputError(f"residual spectrum: alpha must lie in (0, 1), got {alpha!r}")
