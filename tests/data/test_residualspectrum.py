@@ -134,7 +134,8 @@ def test_periodogram_threshold_holds_its_level():
 
 @pytest.mark.slow
 def test_white_residuals_rarely_choose_a_component():
-    """False-positive rate over 200 seeds at α = 0.01 must stay within α + 3 binomial s.e. = 0.031."""
+    """False-positive rate over 200 seeds at α = 0.01 must stay within α + 3 binomial s.e. = 0.031
+    (measured 2026-12-03: 0 of 200; with the noise taken as white, 2 of 200)."""
     trials, alpha = 200, 0.01
     false = sum(bool(detect_time_structure(*_tracks(100 + s), PERIODS_S, alpha=alpha).chosen)
                 for s in range(trials))
@@ -210,7 +211,7 @@ def test_correlated_plus_white_noise_rarely_chooses_a_component():
     s.e. = 0.049; an M2 of 0.05 m/s per component on top is still found in at least 9 of 10 seeds."""
     false = sum(bool(detect_time_structure(*_ou_noise_tracks(6000 + s, time_scale_s=6 * HOUR_S, white_m_s=0.05),
                                            PERIODS_S).chosen) for s in range(60))
-    assert false / 60 <= 0.01 + 3 * math.sqrt(0.01 * 0.99 / 60), false
+    assert false / 60 <= 0.01 + 3 * math.sqrt(0.01 * 0.99 / 60), false       # measured: 0 of 60
     found = sum("M2" in detect_time_structure(*_ou_noise_tracks(7000 + s, time_scale_s=6 * HOUR_S, white_m_s=0.05,
                                                                 tide_m_s=0.05), PERIODS_S).chosen for s in range(10))
     assert found >= 9, found
