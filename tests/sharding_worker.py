@@ -1,10 +1,11 @@
-"""One process of the sharding tests (tests/dynamics/test_sharding.py): a spread of 64 releases on every
-device of this process, or of all processes joined through the DRIFTWISE_* variables (driftwise.devices).
+"""One process of the sharding tests (tests/dynamics/test_sharding.py): a spread of 64 releases and the
+fit's full-data passes (optimal q, ELBO) on every device of this process, or of all processes joined
+through the DRIFTWISE_* variables (driftwise.devices).
 
     python tests/sharding_worker.py OUT.npz
 
-Process 0 writes the gathered moments (means (64, T, 2), covs (64, T, 2, 2)) to OUT.npz; every process
-also writes its own copy to OUT.npz.<process id> so a test can check that all received the whole result.
+Every process writes what it received (means (64, T, 2), covs (64, T, 2, 2), q_mean, q_sqrt, elbo) to
+OUT.<process id>.npz, so a test can check that all received the whole result.
 """
 
 from __future__ import annotations
@@ -18,6 +19,7 @@ from driftwise import devices
 from driftwise.dynamics import moments
 from driftwise.dynamics.sde import sde_from_field
 from driftwise.gp import field as fieldmod
+from driftwise.gp import variational
 
 RELEASES = 64
 TIMES_S = np.arange(0.0, 7.0) * 3600.0
@@ -46,11 +48,26 @@ def spread_moments(mesh=None) -> tuple[np.ndarray, np.ndarray]:
     return np.asarray(out[0]), np.asarray(out[1])
 
 
+def fit_passes(mesh=None) -> tuple[np.ndarray, np.ndarray, float]:
+    """The full-data passes on 20,000 velocities (3 chunks; seed 2): optimal q's mean and S, and the ELBO."""
+    field = small_field()
+    rng = np.random.default_rng(2)
+    n = 20_000
+    xy = rng.uniform(0.0, 10_000.0, size=(n, 2))
+    batch = fieldmod.ObservationBatch(xy, 0.1 * np.cos(xy / 3000.0) + 0.02 * rng.normal(size=xy.shape),
+                                      np.full(n, 2.0 / 600.0), np.full(n, 2.0 * 5.0**2 / 600.0**2))
+    params = variational.exact_q(field.params, batch, jitter_multiple=field.jitter_multiple, mesh=mesh)
+    elbo = variational.full_elbo(params, batch, jitter_multiple=field.jitter_multiple, mesh=mesh)
+    return np.asarray(params.q_mean), np.asarray(params.q_sqrt), elbo
+
+
 def main(out: str) -> None:
     devices.initialize()
     means, covs = spread_moments()
+    q_mean, q_sqrt, elbo = fit_passes()
     info = np.array([jax.process_count(), jax.device_count()])
-    np.savez(f"{out}.{jax.process_index()}", means=means, covs=covs, info=info)
+    np.savez(f"{out}.{jax.process_index()}", means=means, covs=covs, q_mean=q_mean, q_sqrt=q_sqrt, elbo=elbo,
+             info=info)
 
 
 if __name__ == "__main__":

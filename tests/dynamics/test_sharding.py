@@ -1,9 +1,10 @@
-"""Releases split over devices (jax.sharding) give the one-device results: 4 forced host devices in one
-process, and two processes joined by jax.distributed over 127.0.0.1 with the gloo CPU collectives.
+"""Work split over devices (jax.sharding) gives the one-device results: releases of a spread and the fit's
+full-data passes (optimal q, ELBO) with 4 forced host devices in one process, and with two processes joined
+by jax.distributed over 127.0.0.1 with the gloo CPU collectives.
 
-Reference: the same propagation on one device in this process (moments.propagate_batch with a one-device
-mesh); "identical" means max |Δ| / max |reference| ≤ 1e-12 for the means and the covariances (the issue's
-bound; what changes between the runs is only how XLA groups floating-point work, ~1e-16).
+Reference: the same computation on one device in this process (a one-device mesh); "identical" means
+max |Δ| / max |reference| ≤ 1e-12 for the means, covariances, q's mean and square root and the ELBO
+(the issue's bound; what may change between the runs is only how XLA groups floating-point work).
 """
 
 from __future__ import annotations
@@ -23,7 +24,7 @@ from driftwise import devices
 
 TESTS = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(TESTS))
-from sharding_worker import spread_moments  # noqa: E402
+from sharding_worker import fit_passes, spread_moments  # noqa: E402
 
 WORKER = TESTS / "sharding_worker.py"
 RTOL = 1e-12
@@ -31,8 +32,9 @@ RTOL = 1e-12
 
 @pytest.fixture(scope="module")
 def reference():
-    """The 64-release spread on one device."""
-    return spread_moments(devices.mesh(jax.devices()[:1]))
+    """The 64-release spread and the fit's passes on one device."""
+    one = devices.mesh(jax.devices()[:1])
+    return spread_moments(one) + fit_passes(one)
 
 
 def worker_env(**extra: str) -> dict[str, str]:
@@ -45,7 +47,8 @@ def worker_env(**extra: str) -> dict[str, str]:
 def assert_same(result_path: Path, reference, processes: int, device_count: int) -> None:
     out = np.load(result_path)
     assert out["info"].tolist() == [processes, device_count]
-    for got, want in ((out["means"], reference[0]), (out["covs"], reference[1])):
+    names = ("means", "covs", "q_mean", "q_sqrt", "elbo")
+    for got, want in zip((np.asarray(out[name]) for name in names), map(np.asarray, reference)):
         assert got.shape == want.shape
         assert np.max(np.abs(got - want)) <= RTOL * np.max(np.abs(want))
 
