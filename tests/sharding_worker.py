@@ -16,6 +16,7 @@ import jax
 import numpy as np
 
 from driftwise import devices
+from driftwise.data.frame import Frame
 from driftwise.dynamics import moments
 from driftwise.dynamics.sde import sde_from_field
 from driftwise.gp import field as fieldmod
@@ -26,7 +27,8 @@ TIMES_S = np.arange(0.0, 7.0) * 3600.0
 
 
 def small_field() -> fieldmod.FlowField:
-    """A Helmholtz field, 4 × 4 inducing points over 10 km, q optimal for 150 noisy velocities (seed 0)."""
+    """A Helmholtz field, 4 × 4 inducing points over 10 km, q optimal for 150 noisy velocities (seed 0);
+    metric frame, data extent 0…10 km."""
     grid = np.linspace(0.0, 10_000.0, 4)
     inducing = np.stack(np.meshgrid(grid, grid), axis=-1).reshape(-1, 2)
     params = fieldmod.init_params("helmholtz", 2, inducing, velocity_scale_m_s=0.2, length_scale_m=3000.0,
@@ -36,7 +38,9 @@ def small_field() -> fieldmod.FlowField:
     velocity = 0.1 * np.stack([np.sin(xy[:, 1] / 2000.0), np.cos(xy[:, 0] / 3000.0)], axis=1)
     batch = fieldmod.ObservationBatch(xy, velocity + 0.01 * rng.normal(size=xy.shape),
                                       np.full(150, 2.0 / 600.0), np.full(150, 2.0 * 5.0**2 / 600.0**2))
-    return fieldmod.FlowField.from_params(fieldmod.optimal_q(params, batch), decorrelation_time_s=1800.0)
+    return fieldmod.FlowField.from_params(fieldmod.optimal_q(params, batch), decorrelation_time_s=1800.0,
+                                          frame=Frame(), data_summary={"extent_m": {"min": [0.0, 0.0],
+                                                                                    "max": [10_000.0, 10_000.0]}})
 
 
 def spread_moments(mesh=None) -> tuple[np.ndarray, np.ndarray]:
