@@ -48,6 +48,8 @@ def initialize(environ: Any = None) -> bool:
     address = env.get(ENV_COORDINATOR)
     if not address:
         return False
+    if jax.distributed.is_initialized():
+        return True
     try:
         count, rank = int(env[ENV_NUM_PROCESSES]), int(env[ENV_PROCESS_ID])
     except (KeyError, ValueError):

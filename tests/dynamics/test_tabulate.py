@@ -9,6 +9,7 @@ by FlowField.predict; the bound on a forecast's mean error from a drift error us
 from __future__ import annotations
 
 import dataclasses
+import json
 import sys
 import warnings
 from pathlib import Path
@@ -18,6 +19,7 @@ import jax.numpy as jnp
 import numpy as np
 import pytest
 
+import driftwise
 from driftwise.dynamics import spread as spreadmod
 from driftwise.dynamics import tabulate
 from driftwise.dynamics.sde import PointPosterior
@@ -170,3 +172,20 @@ def test_bad_region_and_options_are_input_errors(field):
         tabulate.tabulate_field(field, LO, HI, tolerance=1e-9, start_nodes=3, max_nodes=10)
     with pytest.raises(InputError, match="posterior"):
         spreadmod.spread_from_field(field, [[1.0, 1.0]], [0.0, 3600.0], posterior="grid")
+
+
+@pytest.mark.slow
+def test_cli_exact_flag_forces_the_direct_path(field, run_cli, tmp_path, monkeypatch):
+    """With the threshold at 1 release-step the default path tabulates; --exact gives the API's exact numbers."""
+    path = tmp_path / "model.npz"
+    driftwise.save(field, path)
+    monkeypatch.setattr(tabulate, "TABLE_RELEASE_STEPS", 1)
+    argv = ["spread", path, "--release", "4000,5000", "--horizon", "3h", "--every", "1h", "--json"]
+    results = {}
+    for name, extra in (("auto", []), ("exact", ["--exact"])):
+        code, out, err = run_cli(*argv, *extra)
+        assert code == 0, err
+        results[name] = np.asarray(json.loads(out)["releases"][0]["mean"])
+    exact = spreadmod.spread_from_field(field, [[4000.0, 5000.0]], np.arange(4.0) * 3600.0, posterior="exact")
+    np.testing.assert_allclose(results["exact"], exact.means[0], rtol=1e-12, atol=1e-9)
+    assert 0.0 < np.max(np.abs(results["auto"] - exact.means[0])) < 1.0      # the table's (small) difference, metres

@@ -47,7 +47,7 @@ from ..errors import InputError
 from .moments import psd_cholesky
 from .sde import SDE, PointPosterior
 
-__all__ = ["TabulatedPosterior", "tabulate_field", "tabulation_errors", "release_steps", "table_region",
+__all__ = ["TabulatedPosterior", "on_table", "tabulate_field", "tabulation_errors", "release_steps", "table_region",
            "tabulated_sde"]
 
 NODE_BLOCK = 256      # nodes per compiled evaluation block while building a table
@@ -262,10 +262,13 @@ def tabulated_sde(field: Any, sde: SDE, starts_m: Any, n_release_steps: int, pos
     if posterior == "exact" or n_release_steps == 0 or (posterior == "auto" and n_release_steps < TABLE_RELEASE_STEPS):
         return None
     lo, hi = table_region(starts_m, (getattr(field, "data_summary", None) or {}).get("extent_m"))
-    table = tabulate_field(field, lo, hi, tolerance=TABLE_TOLERANCE)
-    return dataclasses.replace(sde, drift=_with_posterior(sde.drift, table), diffusion=_with_posterior(sde.diffusion, table))
+    return on_table(sde, tabulate_field(field, lo, hi, tolerance=TABLE_TOLERANCE))
 
 
-def _with_posterior(fn: Any, table: TabulatedPosterior) -> Any:
-    """A field SDE's ``Partial(f, posterior, *rest)`` (sde.field_sde) with the posterior replaced by ``table``."""
-    return jax.tree_util.Partial(fn.func, table, *fn.args[1:])
+def on_table(sde: SDE, table: TabulatedPosterior) -> SDE:
+    """A field SDE (sde.field_sde: drift and diffusion are ``Partial(f, posterior, *rest)``) with its
+    posterior replaced by ``table``; K, τ and the velocity memory stay."""
+    def swap(fn: Any) -> Any:
+        return jax.tree_util.Partial(fn.func, table, *fn.args[1:])
+
+    return dataclasses.replace(sde, drift=swap(sde.drift), diffusion=swap(sde.diffusion))
