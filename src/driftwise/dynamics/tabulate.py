@@ -230,7 +230,8 @@ def tabulate_field(field: Any, region_min_m: Any, region_max_m: Any, *, toleranc
 
 # ------------------------------------------------------------------ when and where spread uses a table
 TABLE_TOLERANCE = 0.05          # mean error (posterior s.d.) and relative covariance error of an automatic table
-TABLE_RELEASE_STEPS = 200_000   # releases × RK4 steps above which a spread tabulates (bench_tabulate.py)
+TABLE_RELEASE_STEPS = 20_000    # releases × RK4 steps from which a spread tabulates: ≈ 1.5 × the measured break-even
+                                # (table build time × exact release-steps/s ≈ 1.3·10⁴, bench_tabulate.py)
 REGION_MARGIN = 0.25            # the grid extends the releases' and data's box by this fraction of its span
 
 
