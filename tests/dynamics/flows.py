@@ -35,6 +35,19 @@ def vortex_drift_np(x):
     return np.stack([u, v], -1)
 
 
+SHEAR_PER_S = np.array([[1.0e-5, 4.0e-5], [-1.0e-5, -1.0e-5]])   # a linear flow: strain, shear and rotation
+
+
+def linear_drift(x):
+    """Uniform stream plus a linear flow A x: x (d,) m → (d,) m/s (jax)."""
+    return jnp.asarray(STREAM_M_S) + jnp.asarray(SHEAR_PER_S) @ x
+
+
+def linear_drift_np(x):
+    """The same drift for positions (n, 2) (numpy)."""
+    return STREAM_M_S + x @ SHEAR_PER_S.T
+
+
 def _stream(x):
     return jnp.asarray(STREAM_M_S) + 0.0 * x
 
@@ -47,6 +60,7 @@ def _no_drift(x):
     return 0.0 * x
 
 
+LINEAR_SDE = SDE(drift=linear_drift, diffusion=_diffusion)
 VORTEX_SDE = SDE(drift=vortex_drift, diffusion=_diffusion)
 STREAM_SDE = SDE(drift=_stream, diffusion=_diffusion)
 DIFFUSION_SDE = SDE(drift=_no_drift, diffusion=_diffusion)
