@@ -11,7 +11,7 @@ import numpy as np
 
 from ..data.utctime import iso_utc, release_time_s
 from ..data.windows import output_times_s
-from ..dynamics.backtrack import Finds, backtrack_from_field, backtrack_memory_bytes, candidate_grid
+from ..dynamics.backtrack import Finds, backtrack_from_field, backtrack_memory_bytes, candidate_grid, needed_ages
 from ..dynamics.methods import DEFAULT_METHOD, METHODS
 from ..errors import InputError
 from ..files import CAUTION
@@ -138,7 +138,7 @@ def run_backtrack(args: argparse.Namespace) -> int:
         raise InputError(f"--spacing must be positive, got {args.spacing!r}")
     lags = _release_times(args, finds)
     n_cells = int(np.ceil((region[2] - region[0]) / spacing)) * int(np.ceil((region[3] - region[1]) / spacing))
-    n_ages = len(np.unique(np.round((finds.time_s[:, None] - lags[None]).ravel(), 6))) + 1
+    n_ages = len(needed_ages(finds, lags))
     need = backtrack_memory_bytes(n_cells, n_ages, len(lags))
     check_memory(need, f"backtrack ({n_cells} candidate points × {len(lags)} candidate times)",
                  "use a coarser --spacing, a smaller --region or fewer candidate times (--every)")

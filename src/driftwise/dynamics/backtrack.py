@@ -36,7 +36,7 @@ from .methods import make_method, method_name
 from .moments import propagate_batch
 
 __all__ = ["Finds", "BacktrackMap", "backtrack", "candidate_grid", "hpd_levels", "backtrack_memory_bytes",
-           "backtrack_from_field"]
+           "backtrack_from_field", "forward_moments", "posterior_map", "needed_ages"]
 
 BATCH = 1024
 
@@ -135,13 +135,12 @@ def hpd_levels(probability: np.ndarray, shares: tuple[float, ...] = (0.5, 0.9)) 
     return [float(values[min(int(np.searchsorted(cum, s)), values.size - 1)]) for s in shares]
 
 
-def _ages(finds: Finds, release_times_s: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Sorted unique ages (A,) from 0 and the index (K, L) of age t_k − t_r in them."""
-    ages = finds.time_s[:, None] - release_times_s[None, :]
+def needed_ages(finds: Finds, release_times_s: Any) -> np.ndarray:
+    """Sorted unique ages (A,) from 0: every t_k − t_r of the finds and candidate release times (s)."""
+    ages = finds.time_s[:, None] - np.atleast_1d(np.asarray(release_times_s, np.float64))[None, :]
     if np.any(ages < 0):
         raise InputError("backtrack: every candidate release time must be at or before every find")
-    grid = np.unique(np.round(np.concatenate([[0.0], ages.ravel()]), 6))
-    return grid, np.searchsorted(grid, np.round(ages, 6))
+    return np.unique(np.round(np.concatenate([[0.0], ages.ravel()]), 6))
 
 
 def _log_likelihood(means: np.ndarray, covs: np.ndarray, finds: Finds, index: np.ndarray) -> np.ndarray:
@@ -157,33 +156,58 @@ def _log_likelihood(means: np.ndarray, covs: np.ndarray, finds: Finds, index: np
     return total
 
 
-def backtrack(sde: Any, finds: Finds, x_m: np.ndarray, y_m: np.ndarray, release_times_s: Any, *,
-              method: str = "cubature", step_s: float | None = None,
-              progress: Callable[[int], None] | None = None, batch: int = BATCH) -> BacktrackMap:
-    """Posterior over release cell (grid ``x_m``, ``y_m``) and time (``release_times_s (L,)``) given ``finds``
-    (module doc).  ``sde``: sde.SDE; ``method``: a moment method of ``methods.METHODS`` with RK4 ``step_s``."""
+def forward_moments(sde: Any, points_m: np.ndarray, ages_s: np.ndarray, *, method: str = "cubature",
+                    step_s: float | None = None, progress: Callable[[int], None] | None = None,
+                    batch: int = BATCH) -> tuple[np.ndarray, np.ndarray]:
+    """Means (C, A, 2) m and covariances (C, A, 2, 2) m² of point releases at ``points_m (C, 2)`` after
+    ``ages_s (A,)`` (from 0, increasing), in batches; ``method`` a moment method of ``methods.METHODS``."""
     obj, integrator = make_method(method, step_s=step_s)
     if integrator is None:
         raise InputError("backtrack: use a moment method (the ensemble cannot give a likelihood per candidate)")
-    lags = np.atleast_1d(np.asarray(release_times_s, np.float64))
-    ages, index = _ages(finds, lags)
-    gx, gy = np.meshgrid(x_m, y_m)
-    points = np.stack([gx, gy], -1).reshape(-1, 2)
-    loglik = np.empty((len(points), len(lags)))
-    for lo in range(0, len(points), batch):
-        starts = points[lo:lo + batch]
-        means, covs = propagate_batch(sde, starts, np.zeros((len(starts), 2, 2)), ages, method=obj,
-                                      integrator=integrator, chunk=min(batch, 256))
-        loglik[lo:lo + batch] = _log_likelihood(np.asarray(means), np.asarray(covs), finds, index)
+    means = np.empty((len(points_m), len(ages_s), 2))
+    covs = np.empty((len(points_m), len(ages_s), 2, 2))
+    for lo in range(0, len(points_m), batch):
+        starts = points_m[lo:lo + batch]
+        m, c = propagate_batch(sde, starts, np.zeros((len(starts), 2, 2)), ages_s, method=obj,
+                               integrator=integrator, chunk=min(batch, 256))
+        means[lo:lo + batch], covs[lo:lo + batch] = np.asarray(m)[..., :2], np.asarray(c)[..., :2, :2]
         if progress is not None:
             progress(len(starts))
+    return means, covs
+
+
+def posterior_map(x_m: np.ndarray, y_m: np.ndarray, release_times_s: Any, finds: Finds, ages_s: np.ndarray,
+                  means: np.ndarray, covs: np.ndarray, method: str = "cubature") -> BacktrackMap:
+    """Normalised posterior over cells × candidate times from :func:`forward_moments` of the grid's cell
+    centres (row-major over y then x) at ``ages_s`` (which must hold every t_k − t_r)."""
+    times = np.atleast_1d(np.asarray(release_times_s, np.float64))
+    ages = finds.time_s[:, None] - times[None, :]
+    if np.any(ages < 0):
+        raise InputError("backtrack: every candidate release time must be at or before every find")
+    index = np.searchsorted(np.round(ages_s, 6), np.round(ages, 6))
+    if np.any(index >= len(ages_s)) or not np.allclose(np.asarray(ages_s)[np.minimum(index, len(ages_s) - 1)], ages):
+        raise InputError("backtrack: the propagated ages do not include every find time minus release time")
+    loglik = _log_likelihood(means, covs, finds, index)
     loglik = np.where(np.isfinite(loglik), loglik, -np.inf)
     norm = logsumexp(loglik)
     if not np.isfinite(norm):
         raise InputError("backtrack: no candidate release explains the find(s); widen --region or --window")
-    prob = np.exp(loglik - norm).T.reshape(len(lags), len(y_m), len(x_m))
-    return BacktrackMap(np.asarray(x_m), np.asarray(y_m), lags, prob, finds, method_name(obj),
+    prob = np.exp(loglik - norm).T.reshape(len(times), len(y_m), len(x_m))
+    return BacktrackMap(np.asarray(x_m), np.asarray(y_m), times, prob, finds, method,
                         float(norm - np.log(loglik.size)))
+
+
+def backtrack(sde: Any, finds: Finds, x_m: np.ndarray, y_m: np.ndarray, release_times_s: Any, *,
+              method: str = "cubature", step_s: float | None = None,
+              progress: Callable[[int], None] | None = None, batch: int = BATCH) -> BacktrackMap:
+    """Posterior over release cell (grid ``x_m``, ``y_m``) and time (``release_times_s (L,)``) given ``finds``
+    (module doc): :func:`forward_moments` of every cell centre to every needed age, then :func:`posterior_map`.
+    ``sde``: sde.SDE; ``method``: a moment method of ``methods.METHODS`` with RK4 ``step_s``."""
+    ages = needed_ages(finds, release_times_s)
+    gx, gy = np.meshgrid(x_m, y_m)
+    points = np.stack([gx, gy], -1).reshape(-1, 2)
+    means, covs = forward_moments(sde, points, ages, method=method, step_s=step_s, progress=progress, batch=batch)
+    return posterior_map(x_m, y_m, release_times_s, finds, ages, means, covs, method_name(make_method(method)[0]))
 
 
 def backtrack_from_field(field: Any, finds: Finds, region_m: Any, spacing_m: float, release_times_s: Any, *,
