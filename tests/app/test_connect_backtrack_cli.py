@@ -64,7 +64,7 @@ def test_connect_json_files_and_cf(models, run_cli, write_file, tmp_path):
     data = json.loads(out)
     assert data["sites"] == ["reef", "bed"] and data["times_s"] == [0.0, 43200.0, 86400.0, 129600.0, 172800.0]
     prob = np.array(data["probability"])
-    assert prob.shape == (2, 2, 5) and np.all((prob >= 0) & (prob <= 1)) and prob[0, 0, 0] > 0.85   # edge blur of 16 cells
+    assert prob.shape == (2, 2, 5) and np.all((prob >= 0) & (prob <= 1)) and prob[0, 0, 0] > 0.85  # 16-cell edge blur
     assert data["times_utc"][0] == "2024-06-03T12:00:00Z" and "Caution" in data["caution"]
     assert all(Path(o).exists() for o in data["outputs"]) and len(data["outputs"]) == 5
     ds = xr.open_dataset(tmp_path / "c.nc")
@@ -127,7 +127,7 @@ def test_backtrack_json_geojson_and_cf(models, run_cli, tmp_path):
 def test_backtrack_several_finds_on_a_metric_model(models, run_cli):
     code, out, err = run_cli("backtrack", models["metric"], "--found", "1km,0.5km", "--found", "2km,1km",
                              "--at", str(T0_S), "--at", str(T0_S + 6 * 3600), "--sd", "300m", "--window", "12h",
-                             "--spacing", "500m", "--json")
+                             "--every", "6h", "--spacing", "500m", "--json")
     assert code == 0, err
     data = json.loads(out)
     assert "position_lonlat" not in data["most_probable"] and "polygon_lonlat" not in data["region_90"]

@@ -6,7 +6,9 @@ NetCDF: dimensions ``source``, ``destination`` (the same sites in the same order
 ``outside_support_share (source, time)``, site names as character labels and every site's vertices
 (``site_vertex_x_m``/``_y_m`` over ``site, vertex``, padded with missing values).  ``time`` is a CF
 time coordinate (``seconds since`` the release instant) when the model knows its time origin, else
-seconds since the release; ``forecast_period`` is given in both cases.
+the time axis is the coordinate variable ``forecast_period`` (seconds since the release) and names the
+dimension instead of ``time`` (no calendar date is invented; CF checkers require a variable named ``time``
+to be a calendar time); ``forecast_period`` is given in both cases.
 
 CSV: one row per (source, destination, time): ``source, destination, time_s[, time_utc], probability[,
 standard_error]``.  Every product carries the caution text.
@@ -81,8 +83,8 @@ def _time_coordinate(result) -> dict[str, tuple]:
     period = ("time",), np.asarray(result.times_s, np.float64), {
         "standard_name": "forecast_period", "units": "s", "long_name": "time since the release",
         "coverage_content_type": "coordinate"}
-    if result.time_origin_utc is None:
-        return {"time": period}
+    if result.time_origin_utc is None:   # no calendar date: the time axis is forecast_period (its own dimension)
+        return {"forecast_period": (("forecast_period",),) + period[1:]}
     units = cf_time_units(result.time_origin_utc)
     return {"time": (("time",), result.start_time_s + np.asarray(result.times_s, np.float64), {
         "standard_name": "time", "units": units, "calendar": "standard", "axis": "T",
@@ -110,11 +112,12 @@ def connect_dataset(result):
     import xarray as xr
 
     data = {**_time_coordinate(result), **_site_variables(result)}
-    data["probability"] = (("source", "destination", "time"), result.probability, {
+    time = "time" if result.time_origin_utc is not None else "forecast_period"
+    data["probability"] = (("source", "destination", time), result.probability, {
         "units": "1", "long_name": "probability that material released uniformly in the source site is inside "
         "the destination site", "coverage_content_type": "modelResult", "coordinates": "source_name destination_name"})
     if result.standard_error is not None:
-        data["probability_standard_error"] = (("source", "destination", "time"), result.standard_error, {
+        data["probability_standard_error"] = (("source", "destination", time), result.standard_error, {
             "units": "1", "long_name": "Monte Carlo standard error of the probability",
             "coverage_content_type": "qualityInformation", "coordinates": "source_name destination_name"})
     data["first_passage_time"] = (("source", "destination"), result.first_passage_s, {
@@ -122,7 +125,7 @@ def connect_dataset(result):
         f"{result.threshold:g} (missing: not within the horizon)", "coverage_content_type": "modelResult",
         "coordinates": "source_name destination_name"})
     if result.outside_support is not None:
-        data["outside_support_share"] = (("source", "time"), result.outside_support, {
+        data["outside_support_share"] = (("source", time), result.outside_support, {
             "units": "1", "long_name": "share of the source's releases whose mean lies outside the model's data "
             "support (posterior over prior velocity variance above 0.9)", "coverage_content_type": "qualityInformation",
             "coordinates": "source_name"})
