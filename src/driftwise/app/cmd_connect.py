@@ -129,18 +129,18 @@ def _format(result: Any, written: list[str]) -> str:
     start = (f" from {iso_utc(result.time_origin_utc, result.start_time_s)}" if result.time_origin_utc else "")
     lines = [f"connect: {len(result.sites)} sites, method {result.method}, {result.per_site} per site, "
              f"{len(result.times_s)} output times to {format_duration(result.times_s[-1])}{start}",
-             f"  probability at {format_duration(result.times_s[-1])} [row: source, column: destination]; "
-             f"first time ≥ {result.threshold:g} in brackets"]
+             "  peak probability over the horizon [row: source, column: destination]; first time ≥ "
+             f"{result.threshold:g} in brackets"]
     width = max(len(n) for n in result.names)
+    peak = result.probability.max(-1)
     for i, name in enumerate(result.names):
         cells = []
         for j in range(len(result.names)):
             first = result.first_passage_s[i, j]
-            cells.append(f"{result.probability[i, j, -1]:.3f}" + ("" if np.isnan(first) else
-                                                                 f" ({format_duration(first)})"))
+            cells.append(f"{peak[i, j]:.3f}" + ("" if np.isnan(first) else f" ({format_duration(first)})"))
         lines.append(f"  {name:<{width}}  " + "  ".join(cells))
     if result.outside_support is not None:
-        worst = int(np.argmax(result.outside_support[:, -1]))
-        lines.append(f"  outside the data support at the end: up to {100 * result.outside_support[worst, -1]:.0f} % "
-                     f"(source {result.names[worst]})")
+        i, t = np.unravel_index(int(np.argmax(result.outside_support)), result.outside_support.shape)
+        lines.append(f"  largest share outside the data support: {100 * result.outside_support[i, t]:.0f} % "
+                     f"(source {result.names[i]}, at {format_duration(result.times_s[t])})")
     return "\n".join(lines + [f"wrote {path}" for path in written] + [CAUTION])

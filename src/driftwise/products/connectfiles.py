@@ -11,7 +11,8 @@ dimension instead of ``time`` (no calendar date is invented; CF checkers require
 to be a calendar time); ``forecast_period`` is given in both cases.
 
 CSV: one row per (source, destination, time): ``source, destination, time_s[, time_utc], probability[,
-standard_error]``.  Every product carries the caution text.
+standard_error]``, a plain table; the JSON, the NetCDF (``caution`` attribute) and the figures carry
+the caution text.
 """
 
 from __future__ import annotations

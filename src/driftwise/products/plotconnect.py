@@ -16,13 +16,13 @@ __all__ = ["plot_connect_matrix", "plot_connect_map", "plot_backtrack"]
 
 
 def plot_connect_matrix(result: Any) -> Figure:
-    """P[source, destination] at the last output time as a shaded matrix, each cell labelled with its value
-    and the first time it reaches the threshold."""
+    """The peak over the horizon of P[source, destination, t] as a shaded matrix, each cell labelled with its
+    value and the first time it reaches the threshold."""
     n = len(result.sites)
     fig, (ax,) = new_figure(height_in=min(8.0, 2.4 + 0.45 * n), width_in=min(9.0, 3.6 + 0.55 * n))
-    final = result.probability[:, :, -1]
+    final = result.probability.max(-1)
     image = ax.imshow(final, vmin=0.0, vmax=max(float(final.max()), 1e-9), cmap="Blues")
-    fig.colorbar(image, ax=ax, label=f"probability at {result.times_s[-1] / 86400:.3g} d")
+    fig.colorbar(image, ax=ax, label=f"peak probability within {result.times_s[-1] / 86400:.3g} d")
     ax.set_xticks(range(n), result.names, rotation=45, ha="right", fontsize="x-small")
     ax.set_yticks(range(n), result.names, fontsize="x-small")
     ax.set_xlabel("destination")
