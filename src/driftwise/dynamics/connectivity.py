@@ -47,6 +47,8 @@ __all__ = ["Connectivity", "connect", "connect_ensemble", "connect_from_field", 
 
 DEFAULT_THRESHOLD = 0.01
 BATCH = 512                       # releases propagated and scored at once (bounds memory)
+ENSEMBLE_BATCH = 4096             # particles simulated at once
+SUPPORT_CHUNK = 2048              # points per data-support evaluation (each holds an (M·d)-wide row)
 _FLOATS_PER_RELEASE_TIME = 6 + 8  # mean, covariance, plus the polygon-mass temporaries per vertex (× k)
 
 
@@ -104,15 +106,14 @@ def field_transport(field: Any, *, posterior: Any = None, diffusivity_m2_s: floa
 
 
 def connect_memory_bytes(n_sites: int, n_times: int, per_site: int, max_vertices: int, *,
-                         ensemble: bool = False, batch: int = BATCH) -> int:
-    """Estimated peak bytes: the (S, S, T) results (a few copies) and one batch's working set.
-
-    Moments: batch × T × (6 + 8 k) float64 (means, covariances, Owen-T temporaries over k vertices).
-    Ensemble: one chunk of ``batch`` particles × T × (2 + S) positions and inside flags, float64.
-    """
+                         ensemble: bool = False) -> int:
+    """Estimated peak bytes beyond the loaded model: the (S, S, T) results (a few copies) and one batch's
+    working set.  Moments: BATCH releases × T × (6 + 8 k) float64 (means, covariances, Owen-T temporaries over
+    k vertices); ensemble: ENSEMBLE_BATCH particles × T × (2 + S) (positions, inside flags); × 3 for copies."""
     results = 4 * n_sites * n_sites * n_times * 8 + n_sites * n_times * 24
     per = (2 + n_sites) if ensemble else (6 + 8 * max_vertices)
-    return int(results + min(batch, n_sites * per_site) * n_times * per * 8 * 3)
+    batch = min(ENSEMBLE_BATCH, per_site) if ensemble else min(BATCH, n_sites * per_site)
+    return int(results + batch * n_times * per * 8 * 3)
 
 
 def _seed_all(sites: tuple[Site, ...], per_site: int, seed: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -128,10 +129,12 @@ def _score_batch(means: np.ndarray, covs: np.ndarray, sites: tuple[Site, ...]) -
 
 
 def _outside(support: Callable | None, means: np.ndarray) -> np.ndarray | None:
+    """1 where the variance ratio at ``means (..., 2)`` exceeds the support fraction, in chunks of SUPPORT_CHUNK."""
     if support is None:
         return None
-    ratio = np.asarray(support(means.reshape(-1, means.shape[-1]))).reshape(means.shape[:-1])
-    return (ratio > SUPPORT_VARIANCE_FRACTION).astype(np.float64)
+    flat = means.reshape(-1, means.shape[-1])
+    ratio = np.concatenate([np.asarray(support(flat[i:i + SUPPORT_CHUNK])) for i in range(0, len(flat), SUPPORT_CHUNK)])
+    return (ratio.reshape(means.shape[:-1]) > SUPPORT_VARIANCE_FRACTION).astype(np.float64)
 
 
 def connect(sde: Any, sites: tuple[Site, ...], times_s: Any, *, per_site: int = 64, method: Any = None,
@@ -192,7 +195,7 @@ def _uniform_in(site: Site, n: int, rng: np.random.Generator) -> np.ndarray:
 def connect_ensemble(sde: Any, sites: tuple[Site, ...], times_s: Any, *, particles: int = 10_000,
                      step_s: float = 60.0, seed: int = 0, threshold: float = DEFAULT_THRESHOLD,
                      support: Callable | None = None, progress: Callable[[int], None] | None = None,
-                     batch: int = 4096) -> Connectivity:
+                     batch: int = ENSEMBLE_BATCH) -> Connectivity:
     """Connectivity by Euler–Maruyama particles starting uniformly in each source site (module doc).
 
     ``particles`` per source site, ``step_s`` the Euler–Maruyama step (s); same seed, same answer."""
