@@ -54,6 +54,7 @@ SITES = ("site,x_m,y_m\nreef,-3000,-1000\nreef,-1500,-1000\nreef,-1500,500\nreef
          "bed,0,-500\nbed,2000,-500\nbed,2000,1500\nbed,0,1500\n")
 
 
+@pytest.mark.slow
 def test_connect_json_files_and_cf(models, run_cli, write_file, tmp_path):
     sites = write_file("sites.csv", SITES)
     outs = [tmp_path / "c.nc", tmp_path / "c.csv", tmp_path / "c.json"]
@@ -80,6 +81,7 @@ def test_connect_json_files_and_cf(models, run_cli, write_file, tmp_path):
     assert rows[0].startswith("source,destination,time_s,time_utc,probability") and len(rows) == 1 + 2 * 2 * 5
 
 
+@pytest.mark.slow
 def test_connect_ensemble_cross_check_and_metric_model(models, run_cli, write_file):
     sites = write_file("sites.csv", SITES)
     code, out, err = run_cli("connect", models["metric"], "--sites", sites, "--horizon", "1d", "--every", "12h",
@@ -96,6 +98,7 @@ def test_connect_ensemble_cross_check_and_metric_model(models, run_cli, write_fi
     assert np.all(np.abs(moments - np.array(data["probability"]))[..., 1:] <= 3 * se[..., 1:] + 0.02)
 
 
+@pytest.mark.slow
 def test_backtrack_json_geojson_and_cf(models, run_cli, tmp_path):
     outs = [tmp_path / "b.nc", tmp_path / "b.geojson", tmp_path / "b.json"]
     code, out, err = run_cli("backtrack", models["lonlat"], "--found=-8.98,44.01", "--at", "2024-06-03T12:00:00Z",
@@ -127,7 +130,7 @@ def test_backtrack_json_geojson_and_cf(models, run_cli, tmp_path):
 def test_backtrack_several_finds_on_a_metric_model(models, run_cli):
     code, out, err = run_cli("backtrack", models["metric"], "--found", "1km,0.5km", "--found", "2km,1km",
                              "--at", str(T0_S), "--at", str(T0_S + 6 * 3600), "--sd", "300m", "--window", "12h",
-                             "--every", "6h", "--spacing", "500m", "--json")
+                             "--every", "6h", "--spacing", "1km", "--json")
     assert code == 0, err
     data = json.loads(out)
     assert "position_lonlat" not in data["most_probable"] and "polygon_lonlat" not in data["region_90"]

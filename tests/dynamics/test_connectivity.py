@@ -128,6 +128,7 @@ def test_vortex_matches_a_random_walk_ensemble_within_the_closure_error():
     assert np.median(diff) < 3e-3
 
 
+@pytest.mark.slow
 def test_our_ensemble_agrees_with_numpy_walkers_and_the_moments():
     """--method ensemble (jax Euler–Maruyama, particles uniform in the site) against the numpy walkers: both
     Monte Carlo, so within 3 combined standard errors (+1e-3 for the different step, 600 s vs 300 s)."""
