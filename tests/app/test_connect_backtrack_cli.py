@@ -127,6 +127,7 @@ def test_backtrack_json_geojson_and_cf(models, run_cli, tmp_path):
     assert (tmp_path / "fig" / "backtrack_map.png").stat().st_size > 10_000
 
 
+@pytest.mark.slow
 def test_backtrack_several_finds_on_a_metric_model(models, run_cli):
     code, out, err = run_cli("backtrack", models["metric"], "--found", "1km,0.5km", "--found", "2km,1km",
                              "--at", str(T0_S), "--at", str(T0_S + 6 * 3600), "--sd", "300m", "--window", "12h",
