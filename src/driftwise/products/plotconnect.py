@@ -34,7 +34,7 @@ def plot_connect_matrix(result: Any) -> Figure:
                 text = f"{final[i, j]:.2g}" + ("" if np.isnan(first) else f"\n{first / 86400:.2g} d")
                 ax.text(j, i, text, ha="center", va="center", fontsize="xx-small",
                         color="white" if final[i, j] > 0.6 * final.max() else "black")
-    ax.set_title(f"Connectivity ({result.method}); cell: probability, first time ≥ {result.threshold:g}",
+    ax.set_title(f"Connectivity ({result.method}): peak probability,\nfirst time ≥ {result.threshold:g}",
                  fontsize="small")
     figure_note(fig, CAUTION, width=int(40 + 6 * n))
     return fig
