@@ -37,7 +37,7 @@ import numpy as np
 from ..errors import InputError
 
 __all__ = ["DataScales", "check_horizons", "check_position_error", "data_scales", "duration_text", "length_text",
-           "resolve_horizons"]
+           "map_spacing_m", "resolve_horizons"]
 
 MAX_LAGS = 5
 MAP_CELLS = 80
@@ -78,8 +78,8 @@ class DataScales:
 
     @property
     def map_spacing_m(self) -> float:
-        """A 1-2-5 step giving about 80 cells over the longest side."""
-        return nice_step(self.longest_side_m / MAP_CELLS)
+        """A 1-2-5 step giving about 80 cells over the longest side (:func:`map_spacing_m`)."""
+        return map_spacing_m(self.longest_side_m)
 
     @property
     def diffusivity_bounds_m2_s(self) -> tuple[float, float]:
@@ -115,6 +115,12 @@ def nice_step(value: float) -> float:
     mantissa = value / 10**exponent
     best = min((1.0, 2.0, 5.0, 10.0), key=lambda m: abs(math.log(mantissa / m)))
     return best * 10**exponent
+
+
+def map_spacing_m(longest_side_m: float) -> float:
+    """The default map step for data spanning ``longest_side_m``: the 1-2-5 number nearest
+    L/80 (a 1 m tank: 1 cm; a 40 km bay: 500 m)."""
+    return nice_step(longest_side_m / MAP_CELLS)
 
 
 # ---------------------------------------------------------------- measuring

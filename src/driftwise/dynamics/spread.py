@@ -43,7 +43,6 @@ from __future__ import annotations
 
 import dataclasses
 import json
-import warnings
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -59,13 +58,10 @@ from .ensemble import EulerMaruyama, simulate
 from .methods import make_method, method_name
 from .moments import RK4, SphericalCubature, propagate_batch
 from .sde import sde_from_field
+from .supportcheck import SupportWarning, path_support, warn_left_support, warn_unsupported_releases  # noqa: F401
 
 LEVELS = (0.5, 0.9, 0.95)
 ROUNDING_FLOOR = 1e-14   # polygon probabilities below this are rounding residue (see module doc)
-
-
-class SupportWarning(UserWarning):
-    """A release starts where the model has (almost) no data."""
 
 
 # ------------------------------------------------------------------ releases
@@ -143,7 +139,9 @@ class Spread:
     (major axis, counter-clockwise from local +x/east) of the horizontal ellipses;
     with a polygon: ``polygon_m (k, 2)``, ``probability (R, T)``, and for a threshold
     ``first_arrival_s`` (per release, seconds since its start, or None);
-    ``time_origin_utc`` the ISO-8601 UTC instant of ``start_time_s = 0`` when the model knows it.
+    ``time_origin_utc`` the ISO-8601 UTC instant of ``start_time_s = 0`` when the model knows it;
+    ``support`` (:class:`~driftwise.dynamics.supportcheck.PathSupport`, forecasts from a fitted field) the
+    variance ratio, distance to the data and ``outside_support`` flag (R, T) along the mean paths.
     """
 
     method: str
@@ -161,6 +159,7 @@ class Spread:
     threshold: float | None = None
     first_arrival_s: tuple[float | None, ...] | None = None
     time_origin_utc: str | None = None
+    support: Any = None      # supportcheck.PathSupport along the mean paths (forecasts from a fitted field)
 
     @property
     def dim(self) -> int:
@@ -278,14 +277,14 @@ def spread_from_field(field: Any, releases: Any, times_s: Any, *, method: str = 
     dim = int(getattr(field, "dim", rels[0].start_m.size))
     if rels[0].start_m.size != dim:
         raise InputError(f"releases have {rels[0].start_m.size} coordinates but the model is {dim}-D")
-    for rel, fraction in unsupported_releases(field, rels):
-        warnings.warn(f"release {rel.name} at {np.round(rel.start_m, 1).tolist()} m is outside the model's data "
-                      f"support (the data leave {100 * fraction:.0f} % of the prior velocity variance there), so "
-                      "its forecast rests on the prior, not on observed flow", SupportWarning, stacklevel=2)
+    warn_unsupported_releases(field, rels)
     sde = sde_from_field(field, diffusivity_m2_s=diffusivity_m2_s, decorrelation_time_s=decorrelation_time_s)
-    return spread_releases(sde, rels, times_s, method=obj, integrator=integrator, key=jax.random.key(int(seed)),
-                           frame=getattr(field, "frame", None), polygon_m=polygon_m, threshold=threshold,
-                           time_origin_utc=(getattr(field, "data_summary", None) or {}).get("time_origin_utc"))
+    out = spread_releases(sde, rels, times_s, method=obj, integrator=integrator, key=jax.random.key(int(seed)),
+                          frame=getattr(field, "frame", None), polygon_m=polygon_m, threshold=threshold,
+                          time_origin_utc=(getattr(field, "data_summary", None) or {}).get("time_origin_utc"))
+    support = path_support(field, out.means)
+    warn_left_support([r.name for r in rels], out.times_s, support)
+    return dataclasses.replace(out, support=support)
 
 
 # ------------------------------------------------------------------ ellipses
@@ -541,14 +540,3 @@ def _first_polygon_ring(data: Any, path: str) -> np.ndarray:
         stack += item.get("features", []) + [item.get("geometry")]
     raise InputError(f"{path}: contains no GeoJSON Polygon")
 
-
-# ------------------------------------------------------------------ data support
-SUPPORT_VARIANCE_FRACTION = 0.9
-
-
-def unsupported_releases(field: Any, releases: tuple[Release, ...]) -> list[tuple[Release, float]]:
-    """Releases where the model knows little: posterior velocity variance of the field's stationary part above
-    90 % of its prior at the start point (``FlowField.local_variance_ratio``: the data there barely constrain
-    the field).  Returns (release, fraction)."""
-    fraction = field.local_variance_ratio(np.stack([r.start_m for r in releases]))
-    return [(r, float(f)) for r, f in zip(releases, fraction) if f > SUPPORT_VARIANCE_FRACTION]
