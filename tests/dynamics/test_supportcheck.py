@@ -146,3 +146,17 @@ def test_score_warns_before_forecasting_starts_outside_the_support():
     # the far track's forecasts (half the pairs) are outside from the start; the near track's leave the box
     # once its mean passes x = 1 km
     assert result["outside_support_fraction"][0] >= 0.5 and result["outside_support_fraction"][1] >= 0.5
+
+
+def test_spread_refuses_a_horizon_shorter_than_the_sampling_interval(tmp_path, run_cli):
+    """The model's fixes came every 10 min (data_summary median_dt_s): a 5 min horizon forecasts nothing observable."""
+    field = stream_field()
+    summary = {**field.data_summary, "median_dt_s": 600.0}
+    model = driftwise.save(F.FlowField.from_params(field.params, frame={"kind": "metric"}, data_summary=summary,
+                                                   decorrelation_time_s=600.0, position_error_m=1.0), tmp_path / "m.npz")
+    code, _, err = run_cli("spread", model, "--release", "500,500", "--horizon", "5min", "--every", "1min")
+    assert code == 2
+    assert "--horizon: 5 min is shorter than the sampling interval of these data (10 min, median)" in err
+    assert err.count("\n") == 1 and "Traceback" not in err
+    code, out, _ = run_cli("spread", model, "--release", "500,500", "--horizon", "10min", "--every", "5min", "--json")
+    assert code == 0 and json.loads(out)["releases"][0]["outside_support"] == [False, False, False]

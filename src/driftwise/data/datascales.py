@@ -37,7 +37,7 @@ import numpy as np
 from ..errors import InputError
 
 __all__ = ["DataScales", "check_horizons", "check_position_error", "data_scales", "duration_text", "length_text",
-           "map_spacing_m", "resolve_horizons"]
+           "check_horizons_s", "map_spacing_m", "resolve_horizons"]
 
 MAX_LAGS = 5
 MAP_CELLS = 80
@@ -173,11 +173,19 @@ def check_position_error(position_error_m: float, scales: DataScales, *, option:
 
 def check_horizons(horizons_s: Iterable[float], scales: DataScales, *, option: str = "--horizons") -> None:
     """Refuse a horizon shorter than the sampling interval (nothing observed to score it against)."""
+    check_horizons_s(horizons_s, scales.sampling_interval_s, option=option)
+
+
+def check_horizons_s(horizons_s: Iterable[float], sampling_interval_s: float | None, *, option: str) -> None:
+    """Refuse a horizon shorter than ``sampling_interval_s`` (the median fix interval of the data, e.g. a
+    model's ``data_summary["median_dt_s"]``); nothing is checked when the interval is unknown."""
+    if not sampling_interval_s:
+        return
     values = [float(h) for h in horizons_s]
-    short = [h for h in values if h < scales.sampling_interval_s * (1 - 1e-9)]
+    short = [h for h in values if h < sampling_interval_s * (1 - 1e-9)]
     if short:
         raise InputError(f"{option}: {duration_text(min(short))} is shorter than the sampling interval of these "
-                         f"data ({duration_text(scales.sampling_interval_s)}, median); a unit may be missing "
+                         f"data ({duration_text(sampling_interval_s)}, median); a unit may be missing "
                          f"(a bare number means seconds)")
 
 
