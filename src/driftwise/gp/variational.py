@@ -63,8 +63,11 @@ def data_precision(params: fld.FieldParams, batch: fld.ObservationBatch, *,
     and Λm = the second.
     """
     chol = fld.inducing_cholesky(params, jitter_multiple=jitter_multiple)
-    kzx = params.kernel.gram_matrix(params.inducing_m, batch.position_m)        # (M·d, b·d)
-    phi_t = solve_triangular(chol, kzx, lower=True)                              # Φᵀ
+    if params.is_time_varying:
+        phi_t = fld.batch_projection(params, chol, batch).reshape(-1, params.q_mean.shape[0]).T
+    else:
+        kzx = params.kernel.gram_matrix(params.inducing_m, batch.position_m)     # (M·d, b·d)
+        phi_t = solve_triangular(chol, kzx, lower=True)                          # Φᵀ
     weight = jnp.repeat(1.0 / fld.noise_variance_m2_s2(params, batch), batch.position_m.shape[1])
     return (phi_t * weight) @ phi_t.T, phi_t @ (weight * batch.velocity_m_s.reshape(-1))
 
@@ -120,8 +123,11 @@ def full_elbo(params: fld.FieldParams, batch: fld.ObservationBatch, *, jitter_mu
 
 
 @jax.jit(static_argnames=("jitter_multiple",))
-def mean_speed_squared(params: fld.FieldParams, x: jax.Array, *, jitter_multiple: float) -> jax.Array:
-    """Σ_n |μ(x_n)|² with μ(x) = K(x, Z) L_Z^{−T} m, the posterior mean (m²/s²)."""
+def mean_speed_squared(params: fld.FieldParams, batch: fld.ObservationBatch, *, jitter_multiple: float) -> jax.Array:
+    """Σ_n |μ(x_n, t_n)|² with μ = K(x, Z) L_Z^{−T} m, the posterior mean at the observations (m²/s²)."""
     chol = fld.inducing_cholesky(params, jitter_multiple=jitter_multiple)
+    if params.is_time_varying:
+        return jnp.sum((fld.batch_projection(params, chol, batch) @ params.q_mean) ** 2)
+    x = batch.position_m
     alpha = solve_triangular(chol.T, params.q_mean, lower=False)
     return jnp.sum((params.kernel.gram_matrix(x, params.inducing_m) @ alpha) ** 2)
