@@ -23,6 +23,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 import pytest
+from sweeps import KERNEL_CASES
 
 import driftwise
 from driftwise.errors import InputError
@@ -30,7 +31,6 @@ from driftwise.gp import field as fld
 from driftwise.gp.constituents import TIDAL_PERIODS_H, angular_frequency_rad_s, inertial_period_s, parse_constituents
 from driftwise.gp.modelfile import load_model, save_model
 from driftwise.gp.temporal import TemporalStart
-from sweeps import KERNEL_CASES
 
 FILES = Path(__file__).resolve().parent / "files"
 OMEGA_M2 = 2.0 * math.pi / (12.4206012 * 3600.0)
