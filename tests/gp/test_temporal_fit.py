@@ -15,12 +15,12 @@ import math
 
 import numpy as np
 import pytest
+from geometry import grid_inside_alpha_shape
 
 import driftwise
 from driftwise.app.cli import main
 from driftwise.data.synthetic import GaussianGyre, PulsingGyre, simulate_drifters
 from driftwise.data.tracks import tracks_from_frame
-from geometry import grid_inside_alpha_shape
 
 OMEGA_M2 = 2.0 * math.pi / (12.4206012 * 3600.0)
 PEAK_M_S, RADIUS_M = 0.3, 1500.0
@@ -68,7 +68,7 @@ def test_a_tidal_gyre_is_recovered_at_every_phase(capsys):
               + ", ".join(f"{e:.4f} m/s ({e / rms_speed:.1%})" for e in errors))
     assert max(errors) < 0.10 * rms_speed
     # the M2 amplitude field: a_M2 = b u_g (in phase with cos ωt), b_M2 = 0, at the gyre's ring r = R
-    mean, cov = field.harmonic_posterior(np.array([RADIUS_M, 0.0]), "M2")
+    mean, _ = field.harmonic_posterior(np.array([RADIUS_M, 0.0]), "M2")
     expected = np.array([0.0, HARMONIC * PEAK_M_S, 0.0, 0.0])
     assert np.all(np.abs(np.asarray(mean) - expected) < 0.1 * PEAK_M_S), np.asarray(mean)
     assert field.is_time_varying and list(field.constituents) == ["M2"]
