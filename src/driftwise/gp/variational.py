@@ -105,8 +105,14 @@ def chunks(n: int) -> list[np.ndarray]:
     return np.array_split(np.arange(n), max(1, math.ceil(n / CHUNK)))
 
 
+def for_model(params: fld.FieldParams, batch: fld.ObservationBatch) -> fld.ObservationBatch:
+    """``batch`` as ``params`` use it: a steady model drops the times, so its compiled programs are the steady ones."""
+    return batch if params.is_time_varying or batch.time_s is None else batch.without_time()
+
+
 def exact_q(params: fld.FieldParams, batch: fld.ObservationBatch, *, jitter_multiple: float) -> fld.FieldParams:
     """The ELBO-optimal q(w) on all of ``batch`` (any size), accumulated over chunks of ≤ 8192 rows."""
+    batch = for_model(params, batch)
     size = params.q_mean.shape[0]
     lam, eta = jnp.eye(size), jnp.zeros(size)
     for idx in chunks(batch.position_m.shape[0]):
@@ -117,6 +123,7 @@ def exact_q(params: fld.FieldParams, batch: fld.ObservationBatch, *, jitter_mult
 
 def full_elbo(params: fld.FieldParams, batch: fld.ObservationBatch, *, jitter_multiple: float) -> float:
     """ELBO over all observations: Σ_n E_q log N(y_n | v(x_n), R_n) − KL(q ‖ p) (nats), chunked."""
+    batch = for_model(params, batch)
     total = sum(float(_chunk_log_likelihood(params, take(batch, idx), jitter_multiple=jitter_multiple))
                 for idx in chunks(batch.position_m.shape[0]))
     return total - float(fld.kl_divergence(params))
