@@ -8,7 +8,10 @@ Prints one table, everything measured in this run (medians):
 2. fit time (to the plateau) and final ELBO for steady, steady + M2, steady + M2 + slow on about 10⁴ velocity
    observations of drifters in a gyre whose strength follows a + b cos ω_M2 t (driftwise.data.synthetic.PulsingGyre).
 
-``--parts step,fits`` picks parts (default both); ``--repeats R`` processes per tree for part 1 (default 3).
+3. (with ``--before``) a SHA-256 of the steady optimiser step's compiled-program text (HLO, source metadata
+   stripped) in each tree: equal digests mean the steady step runs the very same program, whatever the load.
+
+``--parts step,fits,hlo`` picks parts (default all); ``--repeats R`` processes per tree for part 1 (default 3).
 """
 
 from __future__ import annotations
@@ -52,10 +55,42 @@ print(json.dumps({"step_s": (many - one) / 20.0}))
 """
 
 
-def step_seconds(tree: Path) -> float:
+HLO_CODE = r"""
+import hashlib, re, numpy as np
+from types import SimpleNamespace
+from driftwise.gp import training as F
+from driftwise.gp.schedule import Schedule
+rng = np.random.default_rng(0)
+n = 512
+obs = SimpleNamespace(position_m=rng.uniform(0.0, 4000.0, (n, 2)), velocity_m_s=0.1 * rng.standard_normal((n, 2)),
+                      dt_s=np.full(n, 1800.0), time_s=np.arange(n) * 60.0, track_index=np.arange(n) // 64,
+                      position_error_m=5.0)
+config = F.check_options("helmholtz", "squared-exponential", 32, 0, Schedule(), 5.0)
+data = F.prepare_data(obs, 5.0)
+config = F.resolve_rows(config, data.n, fingerprint=data.fingerprint, position_error_m=5.0)
+state, zs = F.start_state(data, config, learning_rate=0.1, checkpoint=None)
+low = F.optimiser_step.lower(state.params, state.opt_state, data.batch, float(data.n), 1.0, zs,
+                             names=F.trainable_names(config.q_update, False), q_update=config.q_update,
+                             jitter_multiple=state.jitter_multiple)
+text = re.sub(r"^HloModule.*$", "", re.sub(r", metadata=[{][^}]*[}]", "", low.as_text(dialect="hlo")), flags=re.M)
+print(hashlib.sha256(text.encode()).hexdigest())
+"""
+
+
+def _run(code: str, tree: Path) -> str:
     env = dict(os.environ, PYTHONPATH=str(tree / "src"))
-    out = subprocess.run([sys.executable, "-c", STEP_CODE], env=env, capture_output=True, text=True, check=True)
-    return json.loads(out.stdout.strip().splitlines()[-1])["step_s"]
+    out = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True, text=True, check=True)
+    return out.stdout.strip().splitlines()[-1]
+
+
+def part_hlo(before: Path) -> list[str]:
+    mine, old = _run(HLO_CODE, HERE), _run(HLO_CODE, before)
+    return [f"| steady step program (HLO sha256), this tree | {mine[:16]}… | |",
+            f"| steady step program (HLO sha256), before | {old[:16]}… | {'identical' if mine == old else 'DIFFERENT'} |"]
+
+
+def step_seconds(tree: Path) -> float:
+    return json.loads(_run(STEP_CODE, tree))["step_s"]
 
 
 def part_step(before: Path | None, repeats: int) -> list[str]:
@@ -96,7 +131,7 @@ def part_fits() -> list[str]:
 
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--parts", default="step,fits")
+    parser.add_argument("--parts", default="step,fits,hlo")
     parser.add_argument("--before", type=Path, default=None, help="source tree to compare the steady step with")
     parser.add_argument("--repeats", type=int, default=3)
     args = parser.parse_args()
@@ -105,6 +140,8 @@ def main() -> None:
         rows += part_step(args.before, args.repeats)
     if "fits" in args.parts:
         rows += part_fits()
+    if "hlo" in args.parts and args.before:
+        rows += part_hlo(args.before)
     print("\n".join(rows))
 
 
