@@ -19,6 +19,7 @@ import warnings
 from pathlib import Path
 from typing import Any, Callable
 
+from .. import devices
 from ..data.positionerror import position_error_text
 from ..data.tracks import TrackError, TrackWarning, fit_shortfall, format_summary, inspect_summary, read_tracks_from_cli
 from ..diagnostics.grid import field_grid
@@ -395,6 +396,7 @@ def main(argv: list[str] | None = None) -> int:
     try:
         parser = build_parser()
         args = parser.parse_args(argv)
+        devices.initialize()      # joins a multi-process run when DRIFTWISE_COORDINATOR is set (README)
         return int(args.run(args) or EXIT_OK)
     except InputError as err:
         print(f"driftwise: error: {err}", file=sys.stderr)
