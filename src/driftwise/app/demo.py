@@ -106,7 +106,7 @@ class DemoSettings:
     connect_per_site: int = 16
     backtrack_window_s: float = 48 * HOUR_S
     backtrack_every_s: float = 6 * HOUR_S
-    backtrack_spacing_m: float = 1000.0
+    backtrack_spacing_m: float = 1250.0
     seed: int = 0
     position_error_m: float = DemoScenario().position_error_m   # the campaign's stated GPS accuracy, as a user gives it
 
@@ -114,7 +114,8 @@ class DemoSettings:
     def fast(cls) -> "DemoSettings":
         return cls(inducing=32, fit_steps=40, family_inducing=24, family_steps=30, horizon_s=24 * HOUR_S,
                    every_s=2 * HOUR_S, outfall_hours=6, grid_cells_across=20,
-                   skill_horizons_s=(6 * HOUR_S, 12 * HOUR_S), max_skill_starts=60, calibration_starts=50)
+                   skill_horizons_s=(6 * HOUR_S, 12 * HOUR_S), max_skill_starts=60, calibration_starts=50,
+                   connect_per_site=8, connect_every_s=6 * HOUR_S, backtrack_spacing_m=2000.0)
 
 
 def demo_data_dir(out: Path) -> Path:

@@ -116,7 +116,9 @@ def step_backtrack(job: Job) -> str:
     finds, truth, true_time = simulated_find(field.frame, default_start_time_s(field.data_summary))
     corners = sites_in_frame(field.frame, BACKTRACK_BOX_M)
     region = (*corners.min(0), *corners.max(0))
-    lags = np.sort(finds.time_s.min() - output_times_s(s.backtrack_window_s, s.backtrack_every_s))
+    # candidate release times every backtrack_every_s from one step before the find back over the window: a
+    # release at the find time itself would only say "it was released where it was found"
+    lags = np.sort(finds.time_s.min() - output_times_s(s.backtrack_window_s, s.backtrack_every_s)[1:])
     result = backtrack_from_field(field, finds, region, s.backtrack_spacing_m, lags, step_s=HOUR_S)
     for suffix in (".nc", ".json") + ((".geojson",) if field.frame.kind == "lonlat" else ()):
         path = write_backtrack(result, job.out / f"backtrack{suffix}")
@@ -165,10 +167,11 @@ def backtrack_table(result: Any, comparison: dict, s: Any) -> dict:
             "description": f"An object lost at a known place drifted for {FIND_AGE_S / HOUR_S:g} h through the "
                            f"invented bay's true flow (with its K) and was found with a {FIND_SD_M:g} m position "
                            f"error. Candidate releases: a {s.backtrack_spacing_m:g} m grid over the bay and every "
-                           f"{s.backtrack_every_s / HOUR_S:g} h over the {s.backtrack_window_s / HOUR_S:g} h before "
-                           "the find, under a uniform prior.",
+                           f"{s.backtrack_every_s / HOUR_S:g} h from {s.backtrack_every_s / HOUR_S:g} h to "
+                           f"{s.backtrack_window_s / HOUR_S:g} h before the find, under a uniform prior.",
             "method": f"{result.method}, {len(result.x_m) * len(result.y_m)} candidate points × "
                       f"{len(result.release_times_s)} candidate times",
             "columns": ["quantity", "back-tracked", "truth of the simulation"], "rows": rows,
+            "truth_comparison": comparison,
             "notes": ["The truth is known only because the find was simulated; a real find has no such check.",
                       CAUTION]}
