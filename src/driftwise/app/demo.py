@@ -442,7 +442,8 @@ STEPS: tuple[tuple[str, str, Callable[[Job], str]], ...] = (
 DESCRIPTION = ("The whole driftwise job on invented data: drifters in Mirren Bay, a fictional coastal bay with a "
                "wind-driven gyre and the outflow of the (equally fictional) Aldous river at Port Aldous. "
                "Fit a flow field with uncertainty, check its physics, forecast a fuel spill and an outfall plume "
-               "reaching a shellfish bed, link three sites, back-track a find, and score forecasts on tracks the fit never saw.")
+               "reaching a shellfish bed, link three sites, back-track a find, and score forecasts on tracks the fit "
+               "never saw.")
 
 
 def run_demo(out_dir: str | Path = "driftwise-demo", *, quiet: bool = False, settings: DemoSettings | None = None,
