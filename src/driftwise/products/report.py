@@ -46,9 +46,10 @@ from ..errors import InputError
 from ..files import CAUTION, atomic_write_text
 from ..version import __version__
 
-SECTIONS = ("data", "fit", "check", "spread", "skill")
+SECTIONS = ("data", "fit", "check", "spread", "connect", "backtrack", "skill")
 _TITLES = {"data": "Data and quality control", "fit": "Fitted flow field", "check": "Physical constraints",
-           "spread": "Release forecasts", "skill": "Forecast skill on held-out tracks"}
+           "spread": "Release forecasts", "connect": "Connectivity between sites",
+           "backtrack": "Back-tracking a find", "skill": "Forecast skill on held-out tracks"}
 _SUFFIX_UNITS = (("_m2_s", "m²/s"), ("_m_s", "m/s"), ("_m2", "m²"), ("_per_s", "s⁻¹"), ("_s", "s"), ("_m", "m"),
                  ("_deg", "°"), ("_nats", "nats"))
 _PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
@@ -397,7 +398,8 @@ def elbo_comparison(summary: Mapping[str, Any]) -> str:
             "data; across data sets compare the held-out log likelihood per observation.</p>")
 
 
-_RENDER = {"data": _data, "fit": _fit, "check": _check, "spread": _spread, "skill": _skill}
+_RENDER = {"data": _data, "fit": _fit, "check": _check, "spread": _spread, "connect": _spread, "backtrack": _spread,
+           "skill": _skill}
 
 
 def _section(name: str, summary: Mapping[str, Any], base_dir: Path | None) -> str:
@@ -456,7 +458,7 @@ def digest(summary: Mapping[str, Any], out: str | os.PathLike) -> str:
 
     steps = {s["name"]: s for s in summary["job"]["steps"]}
     lines = [f"driftwise demo: Mirren Bay (invented data), {summary['job']['wall_time_s']:.0f} s"]
-    for name in ("data", "fit", "calibrate", "map", "check", "spread", "score"):
+    for name in ("data", "fit", "calibrate", "map", "check", "spread", "score", "connect", "backtrack"):
         step = steps.get(name, {"status": "not run", "detail": ""})
         text = step["detail"] if step["status"] == "done" else f"{step['status'].upper()}: {step['detail']}"
         lines.append(f"  {name:<9} {text}")
