@@ -15,12 +15,15 @@ import dataclasses
 import json
 import math
 
+import jax
 import numpy as np
 import pytest
 from scipy.spatial import cKDTree
+from sweeps import KERNEL_CASES
 
 import driftwise  # noqa: F401  (float64)
-from driftwise.data.synthetic import LambOseenVortex, TaylorGreen, simulate_drifters
+from driftwise.data.synthetic import ABCFlow, LambOseenVortex, TaylorGreen, simulate_drifters
+from driftwise.dynamics import transitionfit as TF
 from driftwise.data.tracks import tracks_from_frame
 from driftwise.dynamics.transitionfit import (
     COARSENESS_THRESHOLD,
@@ -155,3 +158,40 @@ def test_fine_fixes_give_the_same_field_by_both_likelihoods():
     tracks, vel, trans = _both_fits(1800.0, 256)
     rmse_vel, rmse_trans = rmse_near_data(vel, tracks), rmse_near_data(trans, tracks)
     assert rmse_trans == pytest.approx(rmse_vel, rel=0.10), (rmse_trans, rmse_vel)   # Lamb–Oseen formula
+
+
+def _small_tracks(dim: int):
+    """Six drifters, 9 h at 3-h fixes: a Lamb–Oseen vortex (2-D) or the ABC flow (3-D, Dombre et al. 1986)."""
+    if dim == 2:
+        return vortex_tracks(3 * 3600.0, n=6, hours=9.0)
+    flow = ABCFlow(speed_m_s=0.1, box_m=20_000.0)
+    starts = np.random.default_rng(3).uniform(0.0, 8000.0, (6, 3))
+    return tracks_from_frame(simulate_drifters(flow, starts, duration_s=9 * 3600.0, fix_interval_s=3 * 3600.0,
+                                               diffusivity_m2_s=K_TRUE, position_error_m=SIGMA_M, seed=7,
+                                               substeps=60))
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("family,base,dim", KERNEL_CASES)
+def test_transition_fit_for_every_kernel_family_in_2d_and_3d(family, base, dim):
+    tracks = _small_tracks(dim)
+    warm = fit(tracks, family, inducing=8, position_error_m=SIGMA_M, base=base, schedule=Schedule(steps=5),
+               progress=False)
+    trans = transition_set(tracks, position_error_m=SIGMA_M)
+    prop = TF._propagation("cubature", trans, TF.step_for_field(warm, trans), 32)
+    rows = TF._rows(trans, None)
+    tau = float(warm.decorrelation_time_s)
+
+    def value(trainable):
+        params = dataclasses.replace(warm.params, **trainable)
+        return TF.objective(params, rows, float(trans.n), tau, SIGMA_M**2, prop=prop,
+                            jitter_multiple=warm.jitter_multiple)
+
+    start, grads = jax.value_and_grad(value)({name: getattr(warm.params, name) for name in TF._TRAINABLE})
+    assert np.isfinite(float(start))
+    assert all(np.all(np.isfinite(np.asarray(leaf))) for leaf in jax.tree_util.tree_leaves(grads))
+    schedule = dataclasses.replace(TRANSITION_SCHEDULE, steps=6, patience=3, batch_size=trans.n)
+    refit = fit_transitions(tracks, warm, position_error_m=SIGMA_M, schedule=schedule, progress=False)
+    checks = refit.fit_info["transition_checks"]          # the warm start's objective first, then every 3 steps
+    assert checks[0] == pytest.approx(float(start), rel=1e-9, abs=1e-6)
+    assert checks[-1] > checks[0] and np.isfinite(refit.diffusivity_m2_s), checks
