@@ -41,7 +41,7 @@ from driftwise.gp import field as fld
 from driftwise.gp import training as F
 from driftwise.gp.schedule import Schedule
 
-sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "dynamics"))
+sys.path[:0] = [str(Path(__file__).resolve().parents[1]), str(Path(__file__).resolve().parents[1] / "dynamics")]
 from test_transitionfit import SIGMA_M, rmse_near_data, vortex_tracks
 
 BATCH, M = 256, 64

@@ -78,9 +78,8 @@ EVAL_ROWS = 2048
 RETRIES = 6
 _TRAINABLE = ("kernel", "q_mean", "q_sqrt_raw", "log_diffusivity_m2_s")
 # Adam moves every coordinate by about the learning rate at first; the M·d whitened means start at the velocity
-# fit's optimum and would be knocked off it by full-size steps.  S keeps the full step: Σ(x) enters the diffusion,
-# and a q that tightens too slowly leaves K too small (3-h vortex fixes: K 0.37 m²/s at a tenth of the step, 0.69 at
-# the full step, truth 1)
+# fit's optimum and would be knocked off it by full-size steps.  S keeps the full step: it has to tighten to what the
+# transitions say (its trace penalty, transitionbound) within the few hundred steps of a fit.
 LEAF_STEP = {"kernel": 1.0, "log_diffusivity_m2_s": 1.0, "q_mean": 0.3, "q_sqrt_raw": 1.0}
 
 
