@@ -33,6 +33,7 @@ from driftwise.dynamics.transitionfit import (
 )
 from driftwise.dynamics.transitions import transition_set
 from driftwise.errors import InputError
+from driftwise.gp.modelfile import load_model
 from driftwise.gp.schedule import Checkpoint, Schedule
 from driftwise.gp.training import fit
 
@@ -125,6 +126,28 @@ def test_cli_reports_the_likelihood_and_the_coarseness(tmp_path, run_cli):
     assert report["coarseness_threshold"] == COARSENESS_THRESHOLD and report["coarseness"] > COARSENESS_THRESHOLD
     code, stdout, err = run_cli("fit", path, "--out", tmp_path / "m.npz", "--likelihood", "chords")
     assert code == 2 and "likelihood" in err
+
+
+@pytest.mark.slow
+def test_cli_transition_fit_keeps_its_k_and_reports_the_calibration_as_a_check(tmp_path, run_cli):
+    path = tmp_path / "vortex.csv"
+    starts = [[1500.0, 0.0], [0.0, 3000.0], [-2500.0, 500.0], [2000.0, -2000.0]]
+    table = simulate_drifters(LambOseenVortex(GAMMA_M2_S, CORE_M), starts, duration_s=12 * 3600.0,
+                              fix_interval_s=3 * 3600.0, diffusivity_m2_s=K_TRUE, position_error_m=SIGMA_M, seed=8,
+                              substeps=180)
+    table.to_csv(path, index=False)
+    code, stdout, err = run_cli("fit", path, "--out", tmp_path / "m.npz", "--inducing", "9", "--likelihood",
+                                "transitions", "--position-error", "10m", "--json")
+    assert code == 0, err
+    report = json.loads(stdout)
+    assert report["likelihood"] == "transitions"
+    check = report["calibration_check"]
+    assert check["diffusivity_m2_s"] > 0 and check["decorrelation_time_s"] > 0
+    model = load_model(tmp_path / "m.npz")
+    # the saved K is the transition fit's own (the calibration's "before" value), not the calibrated one
+    assert model.diffusivity_m2_s == pytest.approx(report["diffusivity_m2_s"], rel=1e-12)
+    assert model.fit_info["calibration"]["diffusivity_m2_s_before"] == pytest.approx(model.diffusivity_m2_s, rel=1e-12)
+    assert model.fit_info["calibration_check"]["diffusivity_m2_s"] == pytest.approx(check["diffusivity_m2_s"])
 
 
 def _both_fits(fix_interval_s: float, batch_size: int):
