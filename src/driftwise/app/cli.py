@@ -39,6 +39,8 @@ from ..products.writers import (
 from ..units import parse_length_m
 from ..version import __version__
 from .cliparts import EXIT_BAD_INPUT, EXIT_INTERNAL, EXIT_OK, UsageParser, add_json_flag, add_quiet_flag, print_json
+from .cmd_backtrack import add_backtrack
+from .cmd_connect import add_connect
 from .cmd_forecast import add_score, add_spread
 from .demo import DemoSettings, run_demo
 
@@ -307,7 +309,7 @@ def _run_map(args: argparse.Namespace) -> int:
 
 
 COMMANDS: list[Callable[[argparse._SubParsersAction], None]] = [
-    _add_inspect, add_spread, _add_fit, _add_demo, add_score, _add_check, _add_map]
+    _add_inspect, add_spread, _add_fit, _add_demo, add_score, _add_check, _add_map, add_connect, add_backtrack]
 
 
 def build_parser() -> argparse.ArgumentParser:
