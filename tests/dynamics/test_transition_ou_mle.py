@@ -82,7 +82,7 @@ def scipy_estimate(trans) -> tuple[np.ndarray, np.ndarray]:
         return _negative_log_likelihood(theta, trans.start_m, trans.end_m)
 
     found = scipy.optimize.minimize(fun, np.r_[np.zeros(4), 0.0], method="Nelder-Mead",
-                                    options=dict(xatol=1e-8, fatol=1e-8, maxiter=20_000, maxfev=20_000))
+                                    options={"xatol": 1e-8, "fatol": 1e-8, "maxiter": 20_000, "maxfev": 20_000})
     found = scipy.optimize.minimize(fun, found.x, method="BFGS")
     return found.x, np.sqrt(np.diag(np.linalg.inv(_hessian(fun, found.x))))
 
