@@ -19,6 +19,7 @@ import warnings
 from pathlib import Path
 from typing import Any, Callable
 
+from .. import devices
 from ..data.positionerror import position_error_text
 from ..data.tracks import TrackError, TrackWarning, fit_shortfall, format_summary, inspect_summary, read_tracks_from_cli
 from ..diagnostics.grid import field_grid
@@ -266,7 +267,7 @@ def _format_check(s: dict[str, Any]) -> str:
         lines.append(f"  {name + ':':<11} significant over {100 * q['significant_area_fraction']:.1f} % of the data hull "
                      f"({q['n_cells']} cells, BH α = {q['alpha']:g}), max |z| = {q['max_abs_z']:.2f}")
     for key, label in (("divergence_free", "divergence-free"), ("curl_free", "curl-free")):
-        lines.append(f"  verdict {label}: {'YES' if verdict[key] else 'NO'}")
+        lines.append(f"  verdict {label}: {verdict['answers'][key].upper()}")
         lines += [f"    - {reason}" for reason in verdict["reasons"][key]]
     lines += [f"  rule: {verdict['rule']}"] + [f"wrote {path}" for path in s.get("figures", [])] + [CAUTION]
     return "\n".join(lines)
@@ -336,6 +337,7 @@ def main(argv: list[str] | None = None) -> int:
     try:
         parser = build_parser()
         args = parser.parse_args(argv)
+        devices.initialize()      # joins a multi-process run when DRIFTWISE_COORDINATOR is set (README)
         return int(args.run(args) or EXIT_OK)
     except InputError as err:
         print(f"driftwise: error: {err}", file=sys.stderr)

@@ -10,7 +10,7 @@ from typing import Any
 
 import numpy as np
 
-from ..data.datascales import resolve_horizons
+from ..data.datascales import check_horizons_s, resolve_horizons
 from ..data.tracks import read_tracks_from_cli
 from ..data.utctime import release_time_s
 from ..diagnostics.skill import score
@@ -68,6 +68,9 @@ def add_spread(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--decorrelation-time", default=None,
                    help="velocity decorrelation time tau with its unit, e.g. 6h (default: the model's)")
     p.add_argument("--seed", type=int, default=0, help="random seed of the ensemble (default 0)")
+    p.add_argument("--exact", action="store_true", help="evaluate the exact posterior at every point; by default "
+                   "many releases x steps use a table of it on a grid (interpolation error <= 5 %% of the posterior "
+                   "s.d.; releases leaving the grid are recomputed exactly)")
     p.add_argument("--polygon", metavar="FILE", help="area of interest: GeoJSON Polygon (lon/lat) or CSV of "
                    "vertices (x,y metres or lon,lat degrees)")
     p.add_argument("--threshold", type=float, default=0.5,
@@ -133,6 +136,7 @@ def _spread_options(args: argparse.Namespace, frame) -> dict[str, Any]:
         raise InputError(f"--step must be positive, got {args.step!r}")
     polygon = read_polygon(args.polygon, frame=frame) if args.polygon else None
     return dict(method=args.method, particles=args.particles, step_s=step, seed=args.seed, polygon_m=polygon,
+                posterior="exact" if args.exact else "auto",
                 threshold=args.threshold if polygon is not None else None,
                 diffusivity_m2_s=parse_diffusivity_m2_s(args.diffusivity, what="--diffusivity")
                 if args.diffusivity else None,
@@ -151,6 +155,7 @@ def _run_spread(args: argparse.Namespace) -> int:
         raise InputError("--out .geojson: GeoJSON (RFC 7946) holds lon/lat only, but this model was fitted in a local "
                          "metric frame; write .json, .csv or .nc instead")
     times = _output_times_s(args)
+    check_horizons_s([times[-1]], model.data_summary.get("median_dt_s"), option="--horizon")
     releases = _spread_releases(args, model.frame, model.dim, release_time_s(model.data_summary, args.start))
     forecast = spread_from_field(model, releases, times, **_spread_options(args, model.frame))
     written = [str(write_spread(forecast, out)) for out in args.out]

@@ -59,13 +59,11 @@ from .ensemble import EulerMaruyama, simulate
 from .methods import make_method, method_name
 from .moments import RK4, SphericalCubature, propagate_batch
 from .sde import sde_from_field
+from .supportcheck import SupportWarning, path_support, warn_left_support, warn_unsupported_releases  # noqa: F401
+from .tabulate import release_steps, tabulated_sde
 
 LEVELS = (0.5, 0.9, 0.95)
 ROUNDING_FLOOR = 1e-14   # polygon probabilities below this are rounding residue (see module doc)
-
-
-class SupportWarning(UserWarning):
-    """A release starts where the model has (almost) no data."""
 
 
 # ------------------------------------------------------------------ releases
@@ -143,7 +141,9 @@ class Spread:
     (major axis, counter-clockwise from local +x/east) of the horizontal ellipses;
     with a polygon: ``polygon_m (k, 2)``, ``probability (R, T)``, and for a threshold
     ``first_arrival_s`` (per release, seconds since its start, or None);
-    ``time_origin_utc`` the ISO-8601 UTC instant of ``start_time_s = 0`` when the model knows it.
+    ``time_origin_utc`` the ISO-8601 UTC instant of ``start_time_s = 0`` when the model knows it;
+    ``support`` (:class:`~driftwise.dynamics.supportcheck.PathSupport`, forecasts from a fitted field) the
+    variance ratio, distance to the data and ``outside_support`` flag (R, T) along the mean paths.
     """
 
     method: str
@@ -161,6 +161,7 @@ class Spread:
     threshold: float | None = None
     first_arrival_s: tuple[float | None, ...] | None = None
     time_origin_utc: str | None = None
+    support: Any = None      # supportcheck.PathSupport along the mean paths (forecasts from a fitted field)
 
     @property
     def dim(self) -> int:
@@ -218,14 +219,22 @@ def with_polygon(spread: Spread, polygon_m: Any, threshold: float | None = None)
 # ------------------------------------------------------------------ propagation
 
 def _moments(sde: Any, releases: tuple[Release, ...], times: np.ndarray, method: Any, integrator: Any,
-             key: Any) -> tuple[np.ndarray, np.ndarray]:
-    """Means (R, T, d) and covariances (R, T, d, d): one propagate_batch call, or one ensemble per release."""
+             key: Any, fallback: Any = None) -> tuple[np.ndarray, np.ndarray]:
+    """Means (R, T, d) and covariances (R, T, d, d): one propagate_batch call (non-finite releases rerun
+    through the ``fallback`` SDE when given), or one ensemble per release."""
 
     means0 = np.stack([r.start_m for r in releases])
     covs0 = np.stack([r.cov0_m2 for r in releases])
     if not isinstance(method, EulerMaruyama):
-        means, covs = propagate_batch(sde, means0, covs0, times, method=method, integrator=integrator or RK4())
-        return np.asarray(means), np.asarray(covs)
+        means, covs = (np.array(a) for a in propagate_batch(sde, means0, covs0, times, method=method,
+                                                             integrator=integrator or RK4()))
+        left = ~(np.isfinite(means).all(axis=(1, 2)) & np.isfinite(covs).all(axis=(1, 2, 3)))
+        if fallback is not None and left.any():     # releases that left a table's grid: exact posterior
+            warnings.warn(f"{int(left.sum())} of {len(releases)} releases left the tabulated region; they were "
+                          "forecast with the exact posterior", stacklevel=3)
+            means[left], covs[left] = propagate_batch(fallback, means0[left], covs0[left], times, method=method,
+                                                      integrator=integrator or RK4())
+        return means, covs
     if key is None:
         raise InputError("the ensemble method needs an explicit random key (key=jax.random.key(seed))")
     results = [simulate(sde, m0, c0, times, method=method, key=k)
@@ -235,7 +244,7 @@ def _moments(sde: Any, releases: tuple[Release, ...], times: np.ndarray, method:
 
 def spread_releases(sde: Any, releases: Any, times_s: Any, *, method: Any = None, integrator: Any = None,
            key: Any = None, frame: Any = None, polygon_m: Any = None, threshold: float | None = None,
-           time_origin_utc: str | None = None) -> Spread:
+           time_origin_utc: str | None = None, fallback_sde: Any = None) -> Spread:
     """Forecast releases through an Itô SDE (driftwise.dynamics.sde.SDE).
 
     ``releases``: Release(s) or start positions (d,)/(R, d) in metres; ``times_s (T,)`` seconds since each
@@ -244,13 +253,15 @@ def spread_releases(sde: Any, releases: Any, times_s: Any, *, method: Any = None
     batched ``moments.propagate_batch`` call, or ``ensemble.EulerMaruyama(...)`` (then ``key`` is required).
     ``frame`` (tracks.Frame) adds ``mean_lonlat``; ``polygon_m (k, 2)`` adds probabilities and, with a
     ``threshold``, first arrivals; ``time_origin_utc`` (ISO-8601 UTC of the time axis' zero) adds absolute
-    times to the outputs.  The field is steady, so start times only label the outputs.
+    times to the outputs.  The field is steady, so start times only label the outputs.  ``fallback_sde``: for
+    moment methods, releases whose moments come out non-finite (e.g. they left a tabulated field's grid) are
+    recomputed through it.
     """
 
     method = SphericalCubature() if method is None else method
     name = method_name(method)
     rels, times = as_releases(releases), check_times(times_s)
-    means, covs = _moments(sde, rels, times, method, integrator, key)
+    means, covs = _moments(sde, rels, times, method, integrator, key, fallback_sde)
     if not (np.all(np.isfinite(means)) and np.all(np.isfinite(covs))):
         raise InputError(f"the {name} forecast produced non-finite numbers (the integration diverged); use a smaller step")
     return make_spread(name, rels, times, means, covs, frame=frame, polygon_m=polygon_m, threshold=threshold,
@@ -263,14 +274,17 @@ def spread_from_field(field: Any, releases: Any, times_s: Any, *, method: str = 
                       particles: int = 10_000, step_s: float | None = None,
                       diffusivity_m2_s: float | None = None, decorrelation_time_s: float | None = None,
                       seed: int = 0, gauss_hermite_order: int = 3, polygon_m: Any = None,
-                      threshold: float | None = None) -> Spread:
+                      threshold: float | None = None, posterior: str = "auto") -> Spread:
     """Forecast releases in a fitted FlowField: SDE μ = posterior mean, D = 2(K I + τ(1 − e^{−a/τ}) Σ) at release age a (sde.sde_from_field).
 
     ``method`` is a name in :data:`driftwise.dynamics.methods.METHODS` ("cubature" default); ``step_s`` the RK4 step (default 600 s) or the
     Euler–Maruyama step (default 60 s) for ``"ensemble"`` with ``particles``; K and τ default to the
     model's own; ``seed`` seeds the ensemble; the model's ``time_origin_utc`` (data summary; absent in
     model files from before it was recorded) gives the outputs absolute times.  Other arguments as in
-    :func:`spread_releases`.
+    :func:`spread_releases`.  ``posterior``: "exact" evaluates the posterior at every point
+    (sde.PointPosterior); "table" interpolates it from a grid (tabulate.tabulate_field over
+    tabulate.table_region, error ≤ tabulate.TABLE_TOLERANCE; releases leaving the grid are rerun exactly); "auto"
+    (default) tabulates for moment methods when releases × RK4 steps ≥ tabulate.TABLE_RELEASE_STEPS.
     """
 
     obj, integrator = make_method(method, particles=particles, step_s=step_s, gauss_hermite_order=gauss_hermite_order)
@@ -278,14 +292,18 @@ def spread_from_field(field: Any, releases: Any, times_s: Any, *, method: str = 
     dim = int(getattr(field, "dim", rels[0].start_m.size))
     if rels[0].start_m.size != dim:
         raise InputError(f"releases have {rels[0].start_m.size} coordinates but the model is {dim}-D")
-    for rel, fraction in unsupported_releases(field, rels):
-        warnings.warn(f"release {rel.name} at {np.round(rel.start_m, 1).tolist()} m is outside the model's data "
-                      f"support (the data leave {100 * fraction:.0f} % of the prior velocity variance there), so "
-                      "its forecast rests on the prior, not on observed flow", SupportWarning, stacklevel=2)
+    warn_unsupported_releases(field, rels)
     sde = sde_from_field(field, diffusivity_m2_s=diffusivity_m2_s, decorrelation_time_s=decorrelation_time_s)
-    return spread_releases(sde, rels, times_s, method=obj, integrator=integrator, key=jax.random.key(int(seed)),
-                           frame=getattr(field, "frame", None), polygon_m=polygon_m, threshold=threshold,
-                           time_origin_utc=(getattr(field, "data_summary", None) or {}).get("time_origin_utc"))
+    steps = 0 if isinstance(obj, EulerMaruyama) else release_steps(len(rels), check_times(times_s), integrator.step_s)
+    table_sde = tabulated_sde(field, sde, np.stack([r.start_m for r in rels]), steps, posterior)
+    summary = getattr(field, "data_summary", None) or {}
+    out = spread_releases(sde if table_sde is None else table_sde, rels, times_s, method=obj, integrator=integrator,
+                          key=jax.random.key(int(seed)), frame=getattr(field, "frame", None), polygon_m=polygon_m,
+                          threshold=threshold, time_origin_utc=summary.get("time_origin_utc"),
+                          fallback_sde=None if table_sde is None else sde)
+    support = path_support(field, out.means)
+    warn_left_support([r.name for r in rels], out.times_s, support)
+    return dataclasses.replace(out, support=support)
 
 
 # ------------------------------------------------------------------ ellipses
@@ -541,14 +559,3 @@ def _first_polygon_ring(data: Any, path: str) -> np.ndarray:
         stack += item.get("features", []) + [item.get("geometry")]
     raise InputError(f"{path}: contains no GeoJSON Polygon")
 
-
-# ------------------------------------------------------------------ data support
-SUPPORT_VARIANCE_FRACTION = 0.9
-
-
-def unsupported_releases(field: Any, releases: tuple[Release, ...]) -> list[tuple[Release, float]]:
-    """Releases where the model knows little: posterior velocity variance of the field's stationary part above
-    90 % of its prior at the start point (``FlowField.local_variance_ratio``: the data there barely constrain
-    the field).  Returns (release, fraction)."""
-    fraction = field.local_variance_ratio(np.stack([r.start_m for r in releases]))
-    return [(r, float(f)) for r, f in zip(releases, fraction) if f > SUPPORT_VARIANCE_FRACTION]
