@@ -17,7 +17,8 @@ Keys read (all optional unless stated)::
                "steps": [{"name", "status" ("done"|"failed"|"not available"), "seconds", "detail"}]}
     data:     {"fit": {key: value}, "heldout": {key: value}, "qc": [{"action", "count", "detail"}]}
     fit:      {"kernel", "n_tracks", "n_observations", "elbo", "hyperparameters": {name_unit: value},
-               "diffusivity_m2_s", "decorrelation_time_s", ...}
+               "diffusivity_m2_s", "decorrelation_time_s", "calibration_check": {"diffusivity_m2_s",
+               "decorrelation_time_s"} (after a transition fit), ...}
     check:    {"families": {family: {"elbo", "heldout_log_likelihood"}}, "divergent_variance_fraction",
                "divergence": {...}, "vorticity": {...},
                "verdict": {"divergence_free": bool, "curl_free": bool, "reasons": [str]}, "reading": str}
@@ -269,11 +270,16 @@ def _data(data: Mapping[str, Any]) -> str:
 
 
 def _fit(fit: Mapping[str, Any]) -> str:
-    top = {k: v for k, v in fit.items() if k not in ("hyperparameters", "notes")}
+    top = {k: v for k, v in fit.items() if k not in ("hyperparameters", "notes", "calibration_check")}
     parts = [key_value_table(top)]
     if fit.get("hyperparameters"):
         parts.append("<h3>Hyperparameters</h3>" + key_value_table(fit["hyperparameters"],
                                                                    header=("hyperparameter", "value")))
+    check = fit.get("calibration_check")
+    if isinstance(check, Mapping):     # a transition fit estimated K itself; the separate calibration is a check
+        names = ("diffusivity_m2_s", "decorrelation_time_s")
+        rows = {"transition fit": {n: fit.get(n) for n in names}, "calibration check": {n: check.get(n) for n in names}}
+        parts.append("<h3>K and τ: transition fit and calibration check</h3>" + key_value_table(rows))
     parts += [f"<p>{_e(n)}</p>" for n in fit.get("notes", [])]
     return "".join(parts)
 
