@@ -190,8 +190,15 @@ def _small_tracks(dim: int):
                                                substeps=60))
 
 
+# One case per family, both dimensions and both bases covered (the full KERNEL_CASES product costs 1–3 min a case
+# at today's transition-step cost, too much for CI; the sweep returns when the step is cheaper — issue 15).
+FAMILY_CASES = [case for case in KERNEL_CASES if case in {
+    ("helmholtz", "squared-exponential", 2), ("divergence-free", "matern52", 3),
+    ("curl-free", "squared-exponential", 3), ("independent", "matern52", 2)}]
+
+
 @pytest.mark.slow
-@pytest.mark.parametrize("family,base,dim", KERNEL_CASES)
+@pytest.mark.parametrize("family,base,dim", FAMILY_CASES)
 def test_transition_fit_for_every_kernel_family_in_2d_and_3d(family, base, dim):
     tracks = _small_tracks(dim)
     warm = fit(tracks, family, inducing=8, position_error_m=SIGMA_M, base=base, schedule=Schedule(steps=5),
