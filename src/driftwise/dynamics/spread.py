@@ -223,13 +223,15 @@ def _moments(sde: Any, releases: tuple[Release, ...], times: np.ndarray, method:
 
     means0 = np.stack([r.start_m for r in releases])
     covs0 = np.stack([r.cov0_m2 for r in releases])
+    starts = np.array([r.start_time_s for r in releases])
     if not isinstance(method, EulerMaruyama):
-        means, covs = propagate_batch(sde, means0, covs0, times, method=method, integrator=integrator or RK4())
+        means, covs = propagate_batch(sde, means0, covs0, times, method=method, integrator=integrator or RK4(),
+                                      start_times_s=starts)
         return np.asarray(means), np.asarray(covs)
     if key is None:
         raise InputError("the ensemble method needs an explicit random key (key=jax.random.key(seed))")
-    results = [simulate(sde, m0, c0, times, method=method, key=k)
-               for m0, c0, k in zip(means0, covs0, jax.random.split(key, len(releases)))]
+    results = [simulate(sde, m0, c0, times, method=method, key=k, start_time_s=t0)
+               for m0, c0, t0, k in zip(means0, covs0, starts, jax.random.split(key, len(releases)))]
     return np.stack([np.asarray(r.mean) for r in results]), np.stack([np.asarray(r.cov) for r in results])
 
 
@@ -244,7 +246,9 @@ def spread_releases(sde: Any, releases: Any, times_s: Any, *, method: Any = None
     batched ``moments.propagate_batch`` call, or ``ensemble.EulerMaruyama(...)`` (then ``key`` is required).
     ``frame`` (tracks.Frame) adds ``mean_lonlat``; ``polygon_m (k, 2)`` adds probabilities and, with a
     ``threshold``, first arrivals; ``time_origin_utc`` (ISO-8601 UTC of the time axis' zero) adds absolute
-    times to the outputs.  The field is steady, so start times only label the outputs.
+    times to the outputs.  Each release starts at its ``start_time_s`` (absolute, the model's time axis):
+    a time-dependent SDE (``sde.with_time``) is integrated from there (t = start + time since release);
+    for a steady SDE the start times only label the outputs.
     """
 
     method = SphericalCubature() if method is None else method
@@ -265,6 +269,7 @@ def spread_from_field(field: Any, releases: Any, times_s: Any, *, method: str = 
                       seed: int = 0, gauss_hermite_order: int = 3, polygon_m: Any = None,
                       threshold: float | None = None) -> Spread:
     """Forecast releases in a fitted FlowField: SDE μ = posterior mean, D = 2(K I + τ(1 − e^{−a/τ}) Σ) at release age a (sde.sde_from_field).
+    A time-varying field (``field.is_time_varying``) gives μ(x, t), Σ(x, t) at absolute time t = release start + age.
 
     ``method`` is a name in :data:`driftwise.dynamics.methods.METHODS` ("cubature" default); ``step_s`` the RK4 step (default 600 s) or the
     Euler–Maruyama step (default 60 s) for ``"ensemble"`` with ``particles``; K and τ default to the
