@@ -42,7 +42,7 @@ def gyre_sde() -> SDE:
                with_age=True)
 
 
-def small_field() -> fieldmod.FlowField:
+def small_field(data_summary: dict | None = None) -> fieldmod.FlowField:
     rng = np.random.default_rng(3)
     xy = rng.uniform(-5000.0, 5000.0, size=(300, 2))
     velocity = np.stack([-xy[:, 1], xy[:, 0]], -1) * 2e-5 + 0.02 * rng.normal(size=xy.shape)
@@ -53,7 +53,7 @@ def small_field() -> fieldmod.FlowField:
     batch = fieldmod.ObservationBatch(jnp.asarray(xy), jnp.asarray(velocity), jnp.full(300, 2.0 / 1800.0),
                                       jnp.full(300, 2.0 * 10.0**2 / 1800.0**2))
     return fieldmod.FlowField.from_params(fieldmod.optimal_q(params, batch), decorrelation_time_s=1800.0,
-                                        frame=Frame())
+                                        frame=Frame(), data_summary=data_summary)
 
 
 STARTS = np.array([[1000.0, -500.0], [-2000.0, 300.0], [400.0, 2500.0]])
