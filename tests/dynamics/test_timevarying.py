@@ -32,6 +32,7 @@ import driftwise  # noqa: F401  (float64)
 from driftwise.data.tracks import Tracks
 from driftwise.data.utctime import UNIX_EPOCH_UTC, release_time_s
 from driftwise.dynamics import ensemble, moments
+from driftwise.dynamics.calibrate import Transitions, transition_objective
 from driftwise.dynamics.methods import method_name
 from driftwise.dynamics.sde import SDE, sde_from_field, velocity_memory_weight
 from driftwise.dynamics.spread import Release, spread_from_field
@@ -251,9 +252,9 @@ def stand_in() -> PeriodicStandIn:
     return PeriodicStandIn(jnp.asarray(A0), jnp.asarray(A1), jnp.asarray(S0), jnp.asarray(OMEGA))
 
 
-def field_rate(start_s, k=0.7):
+def field_rate(start_s, k=0.7, tau=TAU_S):
     """2 (K I + τ(1 − e^{−a/τ}) S0 g(t)) at absolute time t, age a = t − start (m²/s)."""
-    return lambda t: 2.0 * (k * np.eye(2) + float(velocity_memory_weight(TAU_S, t - start_s))
+    return lambda t: 2.0 * (k * np.eye(2) + float(velocity_memory_weight(tau, t - start_s))
                             * S0 * (1.0 + 0.5 * np.sin(OMEGA * t)))
 
 
@@ -273,6 +274,26 @@ def test_spread_from_a_time_varying_field_integrates_from_each_release_start(met
             assert max(_relative_errors(spread.means[r], spread.covs[r], ref_m, ref_p)) < 1e-8
         else:   # sd ~ 100 m at N = 2·10⁴: SE(mean) ~ 1 m; the EM bias at h = 60 s is ~1e-3 of |m| (see above)
             assert np.abs(spread.means[r] - ref_m).max() < 4.0 * np.sqrt(ref_p.max() / 20_000) + 2e-3 * np.abs(ref_m).max()
+
+
+def test_calibration_objective_of_a_time_varying_field_is_the_exact_transition_likelihood():
+    # exact Gaussian transitions (Jazwinski 1970 moments by solve_ivp, scipy.stats.multivariate_normal) from each
+    # start's own time, for K = 0.3 m²/s and τ = 1 h; Linearize is exact for this linear drift: 1e-7 relative
+    sigma, k, tau = 12.0, 0.3, 3600.0
+    starts = np.array([[2000.0, -1000.0], [-500.0, 800.0], [100.0, 1500.0]])
+    t0 = ABSOLUTE_START_S + np.array([0.0, 4.0, 9.0]) * HOURS
+    lags = np.array([0.0, 2.0, 6.0]) * HOURS
+    observed = starts[:, None, :] + np.array([[[80.0, -40.0], [200.0, 150.0]]] * 3)
+    obs_var = np.full((3, 2), 2 * sigma**2)
+    trans = Transitions(starts, lags, observed, obs_var, np.ones((3, 2)), t0)
+    fun = transition_objective(stand_in(), trans, sigma, moments.Linearize(), moments.RK4(60.0), 8)
+    value, grad = fun(np.log([k, tau]))
+    want = []
+    for x0, t, obs in zip(starts, t0, observed):
+        m, p = exact_moments(t, lags, m0=x0, p0=sigma**2 * np.eye(2), rate=field_rate(t, k, tau))
+        want += [multivariate_normal(m[j], p[j] + 2 * sigma**2 * np.eye(2)).logpdf(obs[j - 1]) for j in (1, 2)]
+    np.testing.assert_allclose(value, -np.mean(want), rtol=1e-7)
+    assert np.all(np.isfinite(grad))
 
 
 def test_steady_field_sde_is_unchanged_and_ignores_time():
