@@ -13,7 +13,9 @@ Cases, each once steady and once with a tidal factor (1 + ½ cos ωt, ω of M2) 
   contract (mean_at(x, t_s=t), cov_between(x, x, t_x_s=t, t_y_s=t)) around the same posterior, so the
   two differ only by the time handling (the real time-varying GP costs more per evaluation: that is
   the field's cost, not the propagator's);
-* "analytic": a cheap closed-form gyre, where any per-step overhead of carrying t shows most.
+* "analytic": a cheap closed-form gyre, where the time term's own cost (two cosines per stage at
+  t ≈ 1.7e9 s) is a large part of a step;
+* "carry": the same gyre as a time SDE whose functions ignore t: what carrying t costs the propagators.
 Methods: cubature (moments.propagate_batch, RK4 600 s) and the Euler–Maruyama ensemble (60 s steps).
 Timings are medians over repeats, steady and time-varying run alternately (bench_spread.paired_times);
 the ratio is the median of the paired ratios.
@@ -80,6 +82,14 @@ def _aged_tidal(x, t_s, age_s):
     return _aged(x, age_s) * _tidal(t_s)
 
 
+def _gyre_untimed(x, t_s):
+    return _gyre(x)
+
+
+def _aged_untimed(x, t_s, age_s):
+    return _aged(x, age_s)
+
+
 def sdes(kind: str, steady_only: bool):
     """(steady SDE, time-varying SDE or None) of a case."""
     if kind == "field":
@@ -90,6 +100,8 @@ def sdes(kind: str, steady_only: bool):
         tidal = TidalPosterior(PointPosterior.from_field(flow), float(flow.diffusivity_m2_s), 1800.0)
         return steady, sde_from_field(tidal)
     steady = SDE(_gyre_steady, _aged, with_age=True)
+    if kind == "carry":
+        return steady, None if steady_only else SDE(_gyre_untimed, _aged_untimed, with_age=True, with_time=True)
     return steady, None if steady_only else SDE(_gyre_tidal, _aged_tidal, with_age=True, with_time=True)
 
 
@@ -136,6 +148,7 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true", help="50 releases × 3 h, 500 particles × 1 h, 3 repeats")
     parser.add_argument("--steady-only", action="store_true", help="time the steady SDEs only")
+    parser.add_argument("--cases", default="field,analytic,carry", help="comma-separated cases (default all)")
     args = parser.parse_args()
     args.releases, args.hours, args.particles, args.ensemble_hours, args.repeats = (
         (50, 3, 500, 1, 3) if args.quick else (200, 12, 1000, 2, 5))
@@ -145,7 +158,7 @@ def main() -> None:
           f"on {jax.devices()[0].platform}")
     print("| case     | method   | steady     | with time  | ratio  |")
     print("|----------|----------|------------|------------|--------|")
-    for kind in ("field", "analytic"):
+    for kind in args.cases.split(","):
         print("\n".join(rows(kind, args)), flush=True)
 
 

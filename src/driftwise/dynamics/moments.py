@@ -214,7 +214,8 @@ def moment_rates(method: Method, sde: SDE, mean: jax.Array, cov: jax.Array, age_
     dm/dt = E[μ], dP/dt = C + Cᵀ + sym(E[D]) with C = E[μ(x)(x − m)ᵀ]; the
     result is exactly symmetric.  Units: m/s and m²/s.
     """
-    e_drift, cross, e_diff = method.expectations(sde, mean, cov, age_s, t_s)
+    # a steady SDE calls expectations(sde, m, P, age) exactly as before time existed (custom strategies keep working)
+    e_drift, cross, e_diff = method.expectations(sde, mean, cov, age_s, *((t_s,) if sde.with_time else ()))
     return e_drift, (cross + cross.T) + 0.5 * (e_diff + e_diff.T)
 
 
