@@ -19,6 +19,7 @@ import warnings
 from pathlib import Path
 from typing import Any, Callable
 
+from .. import devices
 from ..data.positionerror import position_error_text
 from ..data.tracks import TrackError, TrackWarning, fit_shortfall, format_summary, inspect_summary, read_tracks_from_cli
 from ..diagnostics.grid import field_grid
@@ -39,6 +40,8 @@ from ..products.writers import (
 from ..units import parse_length_m
 from ..version import __version__
 from .cliparts import EXIT_BAD_INPUT, EXIT_INTERNAL, EXIT_OK, UsageParser, add_json_flag, add_quiet_flag, print_json
+from .cmd_backtrack import add_backtrack
+from .cmd_connect import add_connect
 from .cmd_forecast import add_score, add_spread
 from .demo import DemoSettings, run_demo
 
@@ -303,7 +306,7 @@ def _run_map(args: argparse.Namespace) -> int:
 
 
 COMMANDS: list[Callable[[argparse._SubParsersAction], None]] = [
-    _add_inspect, add_spread, _add_fit, _add_demo, add_score, _add_check, _add_map]
+    _add_inspect, add_spread, _add_fit, _add_demo, add_score, _add_check, _add_map, add_connect, add_backtrack]
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -330,6 +333,7 @@ def main(argv: list[str] | None = None) -> int:
     try:
         parser = build_parser()
         args = parser.parse_args(argv)
+        devices.initialize()      # joins a multi-process run when DRIFTWISE_COORDINATOR is set (README)
         return int(args.run(args) or EXIT_OK)
     except InputError as err:
         print(f"driftwise: error: {err}", file=sys.stderr)

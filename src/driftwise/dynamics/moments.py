@@ -44,7 +44,10 @@ from typing import Any, Callable
 import jax
 import jax.numpy as jnp
 import numpy as np
+from jax.sharding import PartitionSpec
 
+from .. import devices
+from ..devices import AXIS
 from ..errors import InputError
 from .sde import SDE, join_from_jit, split_for_jit
 
@@ -378,9 +381,8 @@ def _propagate_jit(dynamic, static, method, integrator, mean0, cov0, times_s, st
                          0.0 if start_time_s is None else start_time_s)
 
 
-@partial(jax.jit, static_argnames=("static", "method", "chunk"))
-def propagate_batch_jit(dynamic, static, method, integrator, chunk, means0, covs0, times_s, start_times_s=None):
-    """The compiled batch propagator behind :func:`propagate_batch` (exposed so tests can count compilations).
+def _propagate_rows(dynamic, static, method, integrator, chunk, means0, covs0, times_s, start_times_s=None):
+    """Releases (R, d), (R, d, d) in vmapped chunks of ≤ ``chunk``, run one after another (jax.lax.map);
     ``start_times_s`` (R,) absolute start times (s) for a time-dependent SDE, else None."""
     sde = join_from_jit(dynamic, static)
 
@@ -388,7 +390,26 @@ def propagate_batch_jit(dynamic, static, method, integrator, chunk, means0, covs
         start = 0.0 if release[2] is None else release[2]
         return propagate_one(sde, method, integrator, release[0], release[1], times_s, start)
 
-    return jax.lax.map(one, (means0, covs0, start_times_s), batch_size=chunk)
+    return jax.lax.map(one, (means0, covs0, start_times_s), batch_size=min(chunk, means0.shape[0]))
+
+
+@partial(jax.jit, static_argnames=("static", "method", "chunk", "mesh"))
+def propagate_batch_jit(dynamic, static, method, integrator, chunk, means0, covs0, times_s, mesh=None,
+                        start_times_s=None):
+    """The compiled batch propagator behind :func:`propagate_batch` (exposed so tests can count compilations).
+
+    With a ``mesh`` (devices.mesh) the releases (and their start times), row-sharded over its devices
+    (devices.shard_rows), are propagated by each device on its own rows (jax.shard_map); everything else is
+    replicated.
+    """
+    if mesh is None:
+        return _propagate_rows(dynamic, static, method, integrator, chunk, means0, covs0, times_s, start_times_s)
+    spec = PartitionSpec(AXIS)
+    rows = (means0, covs0) + (() if start_times_s is None else (start_times_s,))
+    local = jax.shard_map(lambda d, i, t, *r: _propagate_rows(d, static, method, i, chunk, r[0], r[1], t, *r[2:]),
+                          mesh=mesh, in_specs=(PartitionSpec(), PartitionSpec(), PartitionSpec()) + (spec,) * len(rows),
+                          out_specs=(spec, spec))
+    return local(dynamic, integrator, times_s, *rows)
 
 
 def validate_times(times_s: Any) -> np.ndarray:
@@ -468,6 +489,7 @@ def propagate_batch(
     method: Method = SphericalCubature(),
     integrator: Integrator = RK4(step_s=600.0),
     chunk: int = 256,
+    mesh: Any = None,
     start_times_s: Any = None,
 ) -> tuple[jax.Array, jax.Array]:
     """`propagate` for R releases in one compiled call: (R, T, d) and (R, T, d, d).
@@ -477,8 +499,11 @@ def propagate_batch(
     starts (s), required by a time-dependent SDE; a steady SDE ignores them (they
     only label its outputs).  Releases are vmapped in chunks of `chunk`
     and the chunks run sequentially (jax.lax.map), bounding memory to one
-    chunk's working set.  A second call with the same shapes, method and
-    integrator reuses the compiled code.
+    chunk's working set.  The releases are split over the devices of ``mesh``
+    (default devices.mesh(): every device of every process; each device runs
+    its rows, the result is gathered to every process), with results equal to
+    a one-device run to rounding.  A second call with the same shapes, method,
+    integrator and mesh reuses the compiled code.
     """
     means, covs = validate_release(means0, covs0, "releases")
     if means.ndim != 2 or means.shape[0] == 0:
@@ -488,5 +513,10 @@ def propagate_batch(
     times = validate_times(times_s)
     starts = validate_start_times(sde, start_times_s, means.shape[:1])
     dynamic, static = split_for_jit(sde)
-    chunk = min(chunk, means.shape[0])
-    return propagate_batch_jit(dynamic, static, method, integrator, chunk, means, covs, times, starts)
+    over = devices.mesh() if mesh is None else mesh
+    (means, n), (covs, _) = devices.shard_rows(means, over), devices.shard_rows(covs, over)
+    starts = None if starts is None else devices.shard_rows(starts, over)[0]
+    dynamic, integrator, times = devices.replicate((dynamic, integrator, times), over)
+    out = propagate_batch_jit(dynamic, static, method, integrator, min(chunk, n), means, covs, times, mesh=over,
+                              start_times_s=starts)
+    return tuple(jnp.asarray(devices.gather_rows(a, n)) for a in out)
