@@ -17,7 +17,11 @@ Outside references (each check names its own):
 
 from __future__ import annotations
 
+import os
+import subprocess
+import sys
 from dataclasses import dataclass, field
+from pathlib import Path
 
 import jax
 import jax.numpy as jnp
@@ -137,6 +141,30 @@ def test_time_and_age_together_and_the_batch_propagator(method):
         ref_m, ref_p = exact_moments(start, TIMES, m0=m0, rate=aged_rate(start))
         mean_err, cov_err = _relative_errors(means[r], covs[r], ref_m, ref_p)
         assert mean_err < 1e-8 and cov_err < 1e-8, (r, mean_err, cov_err)
+
+
+_FOUR_DEVICES = """
+import jax, numpy as np
+from test_timevarying import *
+from test_timevarying import _relative_errors
+assert jax.device_count() == 4
+starts = ABSOLUTE_START_S + np.arange(6.0) * 2 * HOURS      # 6 releases on 4 devices: rows are padded
+m0 = np.stack([M0 * (1 + 0.1 * r) for r in range(6)])
+means, covs = moments.propagate_batch(periodic_sde(), m0, np.broadcast_to(P0, (6, 2, 2)), TIMES,
+                                      integrator=moments.RK4(60.0), start_times_s=starts, chunk=2)
+print(max(max(_relative_errors(means[r], covs[r], *exact_moments(starts[r], TIMES, m0=m0[r]))) for r in range(6)))
+"""
+
+
+def test_start_times_are_sharded_with_their_releases_over_four_devices():
+    # Jazwinski 1970 moment equations (solve_ivp, rtol 1e-10) for each release's own start; 1e-8 relative
+    env = {k: v for k, v in os.environ.items() if not k.startswith("DRIFTWISE_")}
+    here = Path(__file__).parent
+    env.update(XLA_FLAGS="--xla_force_host_platform_device_count=4",
+               PYTHONPATH=os.pathsep.join([str(here), str(here.parent), env.get("PYTHONPATH", "")]))
+    run = subprocess.run([sys.executable, "-c", _FOUR_DEVICES], env=env, capture_output=True, text=True, timeout=600)
+    assert run.returncode == 0, run.stderr[-2000:]
+    assert float(run.stdout.strip().splitlines()[-1]) < 1e-8
 
 
 def test_dopri5_carries_the_time_too():

@@ -65,11 +65,13 @@ def _paths(sde: SDE, method: EulerMaruyama, mean0, chol0, times_s, key, start_s=
     absolute start time (s), seen only by a time-dependent SDE."""
     k_init, k_path = jax.random.split(key)
     x0 = mean0 + jax.random.normal(k_init, (method.chunk, mean0.shape[-1])) @ chol0.T
-    return particle_paths(sde, x0, times_s, method.step_s, k_path)
+    return particle_paths(sde, x0, times_s, method.step_s, k_path, start_s)
 
 
-def particle_paths(sde: SDE, x0: jax.Array, times_s: jax.Array, step_s: Any, key: jax.Array) -> jax.Array:
-    """Euler–Maruyama positions (T, n, d) at ``times_s`` (T,) s of particles starting at ``x0`` (n, d) m.
+def particle_paths(sde: SDE, x0: jax.Array, times_s: jax.Array, step_s: Any, key: jax.Array,
+                   start_s: Any = 0.0) -> jax.Array:
+    """Euler–Maruyama positions (T, n, d) at ``times_s`` (T,) s of particles starting at ``x0`` (n, d) m at
+    absolute time ``start_s`` (s; seen only by a time-dependent SDE).
 
     Each output interval is cut into ceil(Δt/step_s) equal steps (traceable; jit at the caller)."""
 
