@@ -28,16 +28,19 @@ from ..dynamics.calibrate import calibrate
 from ..dynamics.transitionfit import LIKELIHOOD_HELP, LIKELIHOODS, fit_by_likelihood, fit_report
 from ..errors import InputError
 from ..files import CAUTION
+from ..gp.constituents import CONSTITUENTS, parse_constituents
 from ..gp.kernels import BACKGROUND_HELP, BACKGROUNDS, DEFAULT_FAMILY, KERNEL_FAMILIES
 from ..gp.modelfile import load_model, save_model
 from ..gp.schedule import Checkpoint
+from ..gp.training import fit as fit_velocities
+from ..gp.training import fit_report as velocity_fit_report
 from ..products.plots import plot_physics_maps, save_figure
 from ..products.report import complete
 from ..products.writers import (
     FIELD_GRID_SUFFIXES,
     write_field_grid,
 )
-from ..units import parse_length_m
+from ..units import format_duration, format_length, format_speed, parse_duration_s, parse_length_m
 from ..version import __version__
 from .cliparts import EXIT_BAD_INPUT, EXIT_INTERNAL, EXIT_OK, UsageParser, add_json_flag, add_quiet_flag, print_json
 from .cmd_backtrack import add_backtrack
@@ -92,6 +95,12 @@ def _add_fit(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--max-speed", default="5m/s", help="drop fixes implying a faster speed (bare: m/s; default 5m/s)")
     p.add_argument("--max-gap", default=None,
                    help="split a track at gaps longer than this duration, with its unit (e.g. 6h; default: never)")
+    p.add_argument("--tides", default="none", metavar="LIST",
+                   help=f"periodic constituents to model, comma-separated from {','.join(CONSTITUENTS)} (inertial: at "
+                   "the latitude of lon/lat tracks), each with its own amplitude fields; or none (default)")
+    p.add_argument("--slow-time-scale", default="none", metavar="auto|none|DURATION",
+                   help="a slowly changing part of the flow with a Matern-3/2 time scale: auto (learned), a duration "
+                   "with its unit (fixed, e.g. 2d) or none (default)")
     p.add_argument("--resume", action="store_true", help="continue from the checkpoint MODEL.ckpt.npz if present")
     p.add_argument("--likelihood", default="auto", choices=list(LIKELIHOODS), help=LIKELIHOOD_HELP)
     p.add_argument("--calibrate", action=argparse.BooleanOptionalAction, default=True,
@@ -108,6 +117,10 @@ def _run_fit(args: argparse.Namespace) -> int:
         raise InputError(f"--inducing must be a positive integer, got {args.inducing}")
     if args.seed < 0:
         raise InputError(f"--seed must be a non-negative integer, got {args.seed}")
+    tides, slow = parse_constituents(args.tides, what="--tides"), _slow_time_scale(args.slow_time_scale)
+    if (tides or slow is not None) and args.likelihood == "transitions":
+        raise InputError("--likelihood transitions needs a steady model; drop --tides/--slow-time-scale or use "
+                         "--likelihood velocities")
     tracks = read_tracks_from_cli(args)
     shortfall = fit_shortfall(tracks, calibrate=args.calibrate)
     if shortfall:
@@ -115,9 +128,7 @@ def _run_fit(args: argparse.Namespace) -> int:
     checkpoint = Checkpoint.beside(args.out, resume=args.resume)
     existed = checkpoint.path.exists()
     try:
-        field, choice = fit_by_likelihood(tracks, args.kernel, args.likelihood, inducing=args.inducing, seed=args.seed,
-            position_error_m=position_error, checkpoint=checkpoint, quiet=args.quiet or args.json,
-            background=args.background)
+        field, choice = _fit_for_cli(args, tracks, tides, slow, position_error, checkpoint)
     except KeyboardInterrupt:
         print(f"driftwise: fit interrupted; continue with --resume (checkpoint {checkpoint.path})", file=sys.stderr)
         raise
@@ -126,16 +137,67 @@ def _run_fit(args: argparse.Namespace) -> int:
             checkpoint.path.unlink(missing_ok=True)
         raise
     checkpoint.path.unlink(missing_ok=True)   # the fit is complete: nothing to resume, whatever happens next
-    if args.calibrate:
+    calibrated = args.calibrate and not field.is_time_varying
+    if calibrated:
         field = calibrate(field, tracks)
     written = save_model(field, args.out)
-    report = {**fit_report(field, choice), "model": str(written)} | (
-        {"calibration": field.fit_info.get("calibration")} if args.calibrate else {})
+    report = {**(fit_report(field, choice) if choice is not None else _time_varying_report(field)),
+              "model": str(written)}
+    if args.calibrate:
+        report["calibration"] = field.fit_info.get("calibration") if calibrated else {
+            "skipped": "K and tau calibration needs a steady model; the fit's own K and tau are kept"}
     if args.json:
         print_json(report)
     else:
         print(_format_fit(report))
     return EXIT_OK
+
+
+def _slow_time_scale(text: str):
+    """--slow-time-scale: "none" → None, "auto" → "auto", else a duration with its unit → seconds."""
+    if text.strip().lower() in ("none", "auto"):
+        return None if text.strip().lower() == "none" else "auto"
+    return parse_duration_s(text, what="--slow-time-scale")
+
+
+def _fit_for_cli(args, tracks, tides, slow, position_error, checkpoint):
+    """(field, likelihood choice): the steady fit through the likelihood choice, a time-varying one from the
+    velocities alone (choice None: the transition likelihood propagates a steady SDE)."""
+    quiet = args.quiet or args.json
+    if not tides and slow is None:
+        return fit_by_likelihood(tracks, args.kernel, args.likelihood, inducing=args.inducing, seed=args.seed,
+                                 position_error_m=position_error, checkpoint=checkpoint, quiet=quiet,
+                                 background=args.background)
+    field = fit_velocities(tracks, args.kernel, inducing=args.inducing, seed=args.seed, position_error_m=position_error,
+                           checkpoint=checkpoint, progress=not quiet, background=args.background, tides=tides,
+                           slow_time_scale_s=slow)
+    return field, None
+
+
+def _time_varying_report(field) -> dict[str, Any]:
+    return {**velocity_fit_report(field), "likelihood": "velocities", "likelihood_requested": "velocities",
+            "likelihood_reason": "velocities: a time-varying model is fitted to the velocities between fixes"}
+
+
+def _format_temporal(temporal: dict[str, Any]) -> list[str]:
+    """Text lines for the time-varying components: per constituent its period and scales; the slow part's."""
+    if temporal.get("components", ["steady"]) == ["steady"]:
+        return []
+    lines = [f"  time-varying components: {', '.join(temporal['components'])} (phase of cos/sin(omega t) on the "
+             "track file's time axis)"]
+    for name, c in temporal["constituents"].items():
+        lines.append(f"  {name}: period {format_duration(c['period_s'])}; " + _scales_text(c["hyperparameters"]))
+    if "slow" in temporal:
+        slow = temporal["slow"]
+        how = "learned" if slow["time_scale_learned"] else "fixed"
+        lines.append(f"  slow: time scale {format_duration(slow['time_scale_s'])} ({how}); "
+                     + _scales_text(slow["hyperparameters"]))
+    return lines
+
+
+def _scales_text(hyper: dict[str, float]) -> str:
+    return ", ".join(f"{name} {format_speed(v) if name.endswith('_m_s') else format_length(v)}"
+                     for name, v in hyper.items())
 
 
 def _format_fit(report: dict[str, Any]) -> str:
@@ -145,6 +207,7 @@ def _format_fit(report: dict[str, Any]) -> str:
              f"  ELBO {report['elbo']:.6g} nats ({report['elbo_per_observation']:.4g} per observation) after "
              f"{report['steps']} steps" + ("" if report["converged"] else " (step limit reached before the plateau)")]
     lines += [f"  {name} = {value:.4g}" for name, value in hyper.items()]
+    lines += _format_temporal(report.get("temporal", {}))
     lines.append("  " + position_error_text(report))
     lines += [f"  decorrelation time τ = {report['decorrelation_time_s']:.4g} s "
               f"({report.get('decorrelation_time_source') or 'length scale / RMS speed'})",
@@ -263,7 +326,7 @@ def _format_check(s: dict[str, Any]) -> str:
         lines.append(f"  {name + ':':<11} significant over {100 * q['significant_area_fraction']:.1f} % of the data hull "
                      f"({q['n_cells']} cells, BH α = {q['alpha']:g}), max |z| = {q['max_abs_z']:.2f}")
     for key, label in (("divergence_free", "divergence-free"), ("curl_free", "curl-free")):
-        lines.append(f"  verdict {label}: {'YES' if verdict[key] else 'NO'}")
+        lines.append(f"  verdict {label}: {verdict['answers'][key].upper()}")
         lines += [f"    - {reason}" for reason in verdict["reasons"][key]]
     lines += [f"  rule: {verdict['rule']}"] + [f"wrote {path}" for path in s.get("figures", [])] + [CAUTION]
     return "\n".join(lines)
