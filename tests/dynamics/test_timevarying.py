@@ -269,7 +269,10 @@ class PeriodicStandIn:
         g = jnp.sqrt((1.0 + 0.5 * jnp.sin(self.omega * t_x_s)) * (1.0 + 0.5 * jnp.sin(self.omega * t_y_s)))
         return self.s0 * g * jnp.exp(-jnp.sum((x - y) ** 2) / (2.0 * 5000.0**2))
 
-    def local_variance_ratio(self, points):
+    def local_variance_ratio(self, points, times_s=None):
+        return np.zeros(len(points))
+
+    def distance_to_data_m(self, points):
         return np.zeros(len(points))
 
 

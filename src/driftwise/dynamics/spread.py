@@ -305,7 +305,8 @@ def spread_from_field(field: Any, releases: Any, times_s: Any, *, method: str = 
                           key=jax.random.key(int(seed)), frame=getattr(field, "frame", None), polygon_m=polygon_m,
                           threshold=threshold, time_origin_utc=summary.get("time_origin_utc"),
                           fallback_sde=None if table_sde is None else sde)
-    support = path_support(field, out.means)
+    support = path_support(field, out.means, np.array([r.start_time_s for r in rels])[:, None] + out.times_s[None, :]
+                           if sde.with_time else None)
     warn_left_support([r.name for r in rels], out.times_s, support)
     return dataclasses.replace(out, support=support)
 
