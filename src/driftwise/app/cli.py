@@ -211,8 +211,12 @@ def _format_fit(report: dict[str, Any]) -> str:
     lines.append("  " + position_error_text(report))
     lines += [f"  decorrelation time τ = {report['decorrelation_time_s']:.4g} s "
               f"({report.get('decorrelation_time_source') or 'length scale / RMS speed'})",
-              f"  likelihood: {report['likelihood_reason']}", f"wrote {report['model']}"]
-    return "\n".join(lines)
+              f"  likelihood: {report['likelihood_reason']}"]
+    if "calibration_check" in report:
+        check = report["calibration_check"]
+        lines.append(f"  calibration check: K = {check['diffusivity_m2_s']:.3g} m²/s, τ = {check['decorrelation_time_s']:.3g}"
+                     f" s (the transition fit's K = {report['diffusivity_m2_s']:.3g} m²/s is kept)")
+    return "\n".join(lines + [f"wrote {report['model']}"])
 
 
 

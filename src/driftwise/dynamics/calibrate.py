@@ -542,6 +542,8 @@ def calibrate(field: Any, tracks_or_observations, *, folds: int = 2, refit: Call
     ``fit_info["calibration"]`` keeps the previous ones and the optimiser's record.  The
     variational posterior itself is unchanged.  ``lags_s`` default: from the data's sampling interval
     and track durations (:attr:`driftwise.data.datascales.DataScales.calibration_lags_s`).
+    After a transition fit (``fit_info["likelihood"] == "transitions"``) K was estimated by the fit's own
+    likelihood: the field keeps its K and τ and the calibrated pair is stored as ``fit_info["calibration_check"]``.
     """
     lags_s = calibration_scales(tracks_or_observations).calibration_lags_s if lags_s is None else lags_s
     if folds == 1:
@@ -561,6 +563,10 @@ def calibrate(field: Any, tracks_or_observations, *, folds: int = 2, refit: Call
         "decorrelation_time_source_before": record.get("decorrelation_time_source")})
     source = "calibrated: transition likelihood on the fit tracks" + (
         f" ({folds}-fold cross-validated by track)" if folds != 1 else " (in sample)")
+    if record.get("likelihood") == "transitions":   # K came from the transition fit's own bound: this is a check
+        record["calibration_check"] = {"diffusivity_m2_s": float(k), "decorrelation_time_s": float(tau),
+                                       "source": source}
+        return dataclasses.replace(field, metadata_json=json.dumps(meta, sort_keys=True))
     record["decorrelation_time_source"] = record["diffusivity_source"] = source
     params = dataclasses.replace(field.params, log_diffusivity_m2_s=jnp.log(jnp.asarray(k, dtype=jnp.float64)))
     return dataclasses.replace(field, params=params, decorrelation_time_s=float(tau),

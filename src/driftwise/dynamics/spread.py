@@ -57,10 +57,10 @@ from ..data.utctime import iso_utc
 from ..errors import InputError
 from .ensemble import EulerMaruyama, simulate
 from .methods import make_method, method_name
-from .moments import RK4, SphericalCubature, propagate_batch
+from .moments import RK4, SphericalCubature
 from .sde import sde_from_field
 from .supportcheck import SupportWarning, path_support, warn_left_support, warn_unsupported_releases  # noqa: F401
-from .tabulate import release_steps, tabulated_sde
+from .tabulate import field_or_table_sde, propagate_with_fallback
 
 LEVELS = (0.5, 0.9, 0.95)
 ROUNDING_FLOOR = 1e-14   # polygon probabilities below this are rounding residue (see module doc)
@@ -298,8 +298,8 @@ def spread_from_field(field: Any, releases: Any, times_s: Any, *, method: str = 
         raise InputError(f"releases have {rels[0].start_m.size} coordinates but the model is {dim}-D")
     warn_unsupported_releases(field, rels)
     sde = sde_from_field(field, diffusivity_m2_s=diffusivity_m2_s, decorrelation_time_s=decorrelation_time_s)
-    steps = 0 if isinstance(obj, EulerMaruyama) else release_steps(len(rels), check_times(times_s), integrator.step_s)
-    table_sde = tabulated_sde(field, sde, np.stack([r.start_m for r in rels]), steps, posterior)
+    table_sde = field_or_table_sde(field, sde, np.stack([r.start_m for r in rels]), len(rels), check_times(times_s),
+                                   None if isinstance(obj, EulerMaruyama) else integrator, posterior)
     summary = getattr(field, "data_summary", None) or {}
     out = spread_releases(sde if table_sde is None else table_sde, rels, times_s, method=obj, integrator=integrator,
                           key=jax.random.key(int(seed)), frame=getattr(field, "frame", None), polygon_m=polygon_m,
