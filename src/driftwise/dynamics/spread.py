@@ -60,7 +60,7 @@ from .methods import make_method, method_name
 from .moments import RK4, SphericalCubature
 from .sde import sde_from_field
 from .supportcheck import SupportWarning, path_support, warn_left_support, warn_unsupported_releases  # noqa: F401
-from .tabulate import field_or_table_sde, propagate_with_fallback
+from .tabulate import field_or_table_sde
 
 LEVELS = (0.5, 0.9, 0.95)
 ROUNDING_FLOOR = 1e-14   # polygon probabilities below this are rounding residue (see module doc)
