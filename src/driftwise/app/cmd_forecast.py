@@ -53,8 +53,10 @@ def add_spread(sub: argparse._SubParsersAction) -> None:
                    "LON,LAT degrees for a model fitted on lon/lat tracks; repeat for more releases")
     p.add_argument("--releases", metavar="FILE", help="CSV of releases: columns x,y[,z] (metres) or lon,lat "
                    "(degrees), optional start_time (seconds or ISO-8601), name, sd_m (release uncertainty, metres)")
-    p.add_argument("--start", metavar="TIME", help="release time of the --release points: ISO-8601 or seconds on the "
-                   "model's time axis (default: its last observation when the tracks had absolute times, else 0)")
+    p.add_argument("--start", metavar="TIME", help="release time of the --release points: ISO-8601 for a model "
+                   "fitted on absolute times, else a duration on the tracks' own time axis with its unit, e.g. 36h "
+                   "(default: the last observation when the tracks had absolute times, else 0); a time-varying "
+                   "model is integrated from there")
     p.add_argument("--horizon", default="2d", help="forecast length with its unit (s, min, h, d; default 2d)")
     p.add_argument("--every", default="1h", help="output interval with its unit (default 1h)")
     p.add_argument("--method", choices=list(METHODS), default=DEFAULT_METHOD,

@@ -261,6 +261,11 @@ def tabulated_sde(field: Any, sde: SDE, starts_m: Any, n_release_steps: int, pos
     that cannot use one, e.g. the ensemble, whose particles would leave any grid one by one)."""
     if posterior not in ("auto", "exact", "table"):
         raise InputError(f"posterior: use 'auto', 'exact' or 'table', got {posterior!r}")
+    if sde.with_time:   # a table holds one steady posterior; a time-varying field is evaluated exactly
+        if posterior == "table":
+            raise InputError("posterior 'table': this model varies in time and a table holds a steady posterior; "
+                             "use the exact posterior")
+        return None
     if posterior == "exact" or n_release_steps == 0 or (posterior == "auto" and n_release_steps < TABLE_RELEASE_STEPS):
         return None
     lo, hi = table_region(starts_m, (getattr(field, "data_summary", None) or {}).get("extent_m"))
