@@ -57,7 +57,7 @@ from ..data.utctime import iso_utc
 from ..errors import InputError
 from .ensemble import EulerMaruyama, simulate
 from .methods import make_method, method_name
-from .moments import RK4, SphericalCubature
+from .moments import RK4, SphericalCubature, propagate_batch
 from .sde import sde_from_field
 from .supportcheck import SupportWarning, path_support, warn_left_support, warn_unsupported_releases  # noqa: F401
 from .tabulate import field_or_table_sde
