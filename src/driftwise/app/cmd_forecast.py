@@ -34,14 +34,14 @@ from .cliparts import EXIT_OK, add_json_flag, add_quiet_flag, print_json
 _MAX_OUTPUT_TIMES = 100_000
 
 
-def add_spread(sub: argparse._SubParsersAction) -> None:
-    p = sub.add_parser(
-        "spread", help="forecast where releases go: mean paths, covariance ellipses, probability of reaching an area",
-        description="Forecast releases through the fitted flow (Itô SDE: drift = posterior mean, diffusion = "
-        "2(K I + tau (1 - exp(-age/tau)) Sigma)) by Gaussian moment matching or an Euler-Maruyama ensemble. Outputs the mean path and "
-        "covariance (metres, local frame; also lon/lat for a lon/lat model) at times since each release, the 50/90/95 % "
-        "ellipses, and with --polygon the probability of being inside it and the first time it reaches --threshold.",
-        epilog=CAUTION)
+def configure_spread(p: argparse.ArgumentParser) -> None:
+    p.description = (
+        "Forecast releases through the fitted flow (Itô SDE: drift = posterior mean, diffusion = "
+        "2(K I + tau (1 - exp(-age/tau)) Sigma)) by Gaussian moment matching or an Euler-Maruyama ensemble. Outputs "
+        "the mean path and covariance (metres, local frame; also lon/lat for a lon/lat model) at times since each "
+        "release, the 50/90/95 % ellipses, and with --polygon the probability of being inside it and the first time "
+        "it reaches --threshold.")
+    p.epilog = CAUTION
     # A western longitude such as "-3.97,47.2" is a value, not an option: widen argparse's
     # negative-number test to comma-separated coordinates (`--release=-3.97,47.2` works anyway).
     p._negative_number_matcher = re.compile(r"^-\d+$|^-\d*\.\d+$|^-\d*\.?\d*(?:[eE][-+]?\d+)?[a-z]*,")
@@ -182,13 +182,13 @@ def _format_spread(forecast, written: list[str]) -> str:
     return "\n".join(lines)
 
 # ---------------------------------------------------------------- score
-def add_score(sub: argparse._SubParsersAction) -> None:
-    p = sub.add_parser(
-        "score", help="score forecasts on held-out tracks: separation, skill, ellipse coverage, baselines",
-        description="Forecast from every fix of tracks the model never saw and compare with where they went, per "
+def configure_score(p: argparse.ArgumentParser) -> None:
+    p.description = (
+        "Forecast from every fix of tracks the model never saw and compare with where they went, per "
         "horizon: median and 90th-percentile separation, Liu-Weisberg (2011) skill (1 perfect, 0 none), the "
         "fraction of observed positions inside the forecast's 50 % and 95 % ellipses (calibration) and the "
-        "Gaussian log score, next to persistence and no-motion baselines.", epilog=CAUTION)
+        "Gaussian log score, next to persistence and no-motion baselines.")
+    p.epilog = CAUTION
     p.add_argument("model", help="model file written by `driftwise fit`")
     p.add_argument("holdout", help="tracks file NOT used in the fit (CSV, CSV.GZ, Parquet or CF-trajectory NetCDF)")
     p.add_argument("--horizons", default=None,

@@ -55,7 +55,7 @@ from typing import Any
 import numpy as np
 
 from ..errors import InputError
-from .datascales import length_text
+from ..units import format_length
 
 __all__ = ["PositionErrorEstimate", "estimate_position_error", "position_error_text"]
 
@@ -318,10 +318,10 @@ def position_error_text(record: dict[str, Any]) -> str:
     ``position_error_estimate`` (:meth:`PositionErrorEstimate.to_dict`):
     ``position error σ = 0.52 mm (estimated ± 0.03 mm from …)`` or ``… (given)``."""
     source, estimate = record["position_error_source"], record.get("position_error_estimate") or {}
-    text = f"position error σ = {length_text(record['position_error_m'])} ({source}"
+    text = f"position error σ = {format_length(record['position_error_m'])} ({source}"
     if source == "estimated" and estimate:
         se = estimate.get("standard_error_m")
-        text += "" if se is None else f" ± {length_text(se)}"
+        text += "" if se is None else f" ± {format_length(se)}"
         text += (f" from the second differences of {estimate.get('n_used')} windows of 6 fixes in "
                  f"{estimate.get('n_tracks')} tracks")
         text += f"; {estimate['note']}" if estimate.get("note") else ""

@@ -1,0 +1,105 @@
+"""``driftwise fit``: fit a flow field with uncertainty to a tracks file and write the model file."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from typing import Any
+
+from ..data.positionerror import position_error_text
+from ..data.tracks import TrackError, fit_shortfall, read_tracks_from_cli
+from ..dynamics.calibrate import calibrate
+from ..dynamics.transitionfit import LIKELIHOOD_HELP, LIKELIHOODS, fit_by_likelihood, fit_report
+from ..errors import InputError
+from ..files import CAUTION
+from ..gp.kernels import BACKGROUND_HELP, BACKGROUNDS, DEFAULT_FAMILY, KERNEL_FAMILIES
+from ..gp.modelfile import save_model
+from ..gp.schedule import Checkpoint
+from ..progress import Stopwatch
+from ..units import format_duration, format_named, parse_length_m
+from .cliparts import EXIT_OK, add_json_flag, add_profile_flag, add_quiet_flag, print_json, profile_text
+
+
+def configure_fit(p: argparse.ArgumentParser) -> None:
+    p.description = ("Fit a vector-field Gaussian process (sparse variational, matrix-valued kernel) to the velocities "
+                     "between consecutive fixes and write the model file. A checkpoint MODEL.ckpt.npz is kept while "
+                     "fitting; --resume continues an interrupted fit from it.")
+    p.epilog = CAUTION
+    p.add_argument("tracks", help="CSV, CSV.GZ, Parquet or CF-trajectory NetCDF file of fixes")
+    p.add_argument("--out", required=True, metavar="MODEL", help="model file to write (.npz)")
+    p.add_argument("--kernel", default=DEFAULT_FAMILY, choices=list(KERNEL_FAMILIES),
+                   help="kernel family: " + "; ".join(f"{name}: {spec.help}" for name, spec in KERNEL_FAMILIES.items())
+                   + f" (default {DEFAULT_FAMILY})")
+    p.add_argument("--inducing", type=int, default=None, metavar="M",
+                   help="number of inducing points (default: min(256, observations/32), at least 16)")
+    p.add_argument("--background", default="linear", choices=list(BACKGROUNDS), help=BACKGROUND_HELP)
+    p.add_argument("--seed", type=int, default=0, metavar="S", help="random seed (default 0)")
+    p.add_argument("--position-error", default=None, help="standard deviation of one fix per axis, with its unit "
+                   "(m, km, cm, mm; default: estimated from the tracks; refused above the typical step between fixes)")
+    p.add_argument("--max-speed", default="5m/s", help="drop fixes implying a faster speed (bare: m/s; default 5m/s)")
+    p.add_argument("--max-gap", default=None,
+                   help="split a track at gaps longer than this duration, with its unit (e.g. 6h; default: never)")
+    p.add_argument("--resume", action="store_true", help="continue from the checkpoint MODEL.ckpt.npz if present")
+    p.add_argument("--likelihood", default="auto", choices=list(LIKELIHOODS), help=LIKELIHOOD_HELP)
+    p.add_argument("--calibrate", action=argparse.BooleanOptionalAction, default=True,
+                   help="after the fit, estimate K and tau from the likelihood of displacements between fixes "
+                   "(lags from 2 fixes to a third of the tracks' duration) and store them in the model (default: on)")
+    add_quiet_flag(p)
+    add_profile_flag(p)
+    add_json_flag(p)
+    p.set_defaults(run=_run_fit)
+
+
+def _run_fit(args: argparse.Namespace) -> int:
+    position_error = args.position_error and parse_length_m(args.position_error, what="--position-error")
+    if args.inducing is not None and args.inducing < 1:
+        raise InputError(f"--inducing must be a positive integer, got {args.inducing}")
+    if args.seed < 0:
+        raise InputError(f"--seed must be a non-negative integer, got {args.seed}")
+    clock = Stopwatch()
+    with clock("read"):
+        tracks = read_tracks_from_cli(args)
+    shortfall = fit_shortfall(tracks, calibrate=args.calibrate)
+    if shortfall:
+        raise TrackError(tracks.source, shortfall)
+    checkpoint = Checkpoint.beside(args.out, resume=args.resume)
+    existed = checkpoint.path.exists()
+    try:
+        field, choice = fit_by_likelihood(tracks, args.kernel, args.likelihood, inducing=args.inducing, seed=args.seed,
+            position_error_m=position_error, checkpoint=checkpoint, quiet=args.quiet or args.json,
+            background=args.background, timing_s=clock.laps)
+    except KeyboardInterrupt:
+        print(f"driftwise: fit interrupted; continue with --resume (checkpoint {checkpoint.path})", file=sys.stderr)
+        raise
+    except BaseException:
+        if not existed:   # a checkpoint this run wrote is no use after a failure (one given to --resume is kept)
+            checkpoint.path.unlink(missing_ok=True)
+        raise
+    checkpoint.path.unlink(missing_ok=True)   # the fit is complete: nothing to resume, whatever happens next
+    if args.calibrate:
+        with clock("calibrate"):
+            field = calibrate(field, tracks)
+    with clock("save"):
+        written = save_model(field, args.out)
+    report = {**fit_report(field, choice), "model": str(written)} | (
+        {"calibration": field.fit_info.get("calibration")} if args.calibrate else {})
+    report["timing_s"] = clock.laps | {"total": sum(clock.laps.values())}
+    if args.json:
+        print_json(report)
+    else:
+        print(format_fit(report) + ("\n" + profile_text(report["timing_s"]) if args.profile else ""))
+    return EXIT_OK
+
+
+def format_fit(report: dict[str, Any]) -> str:
+    """The text ``driftwise fit`` prints: every length, duration, speed and diffusivity in the unit that fits."""
+    lines = [f"fit: {report['kernel']} kernel, {report['n_observations']} velocity observations from "
+             f"{report['n_tracks']} tracks, {report['n_inducing']} inducing points",
+             f"  ELBO {report['elbo']:.6g} nats ({report['elbo_per_observation']:.4g} per observation) after "
+             f"{report['steps']} steps" + ("" if report["converged"] else " (step limit reached before the plateau)")]
+    lines += [f"  {name} = {format_named(name, value)}" for name, value in report["hyperparameters"].items()]
+    lines.append("  " + position_error_text(report))
+    lines += [f"  decorrelation time τ = {format_duration(report['decorrelation_time_s'])} "
+              f"({report.get('decorrelation_time_source') or 'length scale / RMS speed'})",
+              f"  likelihood: {report['likelihood_reason']}", f"wrote {report['model']}"]
+    return "\n".join(lines)
