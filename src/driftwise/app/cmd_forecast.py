@@ -27,7 +27,15 @@ from ..products.writers import (
     write_score_csv,
     write_spread,
 )
-from ..units import parse_diffusivity_m2_s, parse_duration_s, parse_durations_s, parse_length_m
+from ..units import (
+    format_diffusivity,
+    format_duration,
+    format_length,
+    parse_diffusivity_m2_s,
+    parse_duration_s,
+    parse_durations_s,
+    parse_length_m,
+)
 from .cliparts import EXIT_OK, add_json_flag, add_quiet_flag, print_json
 
 # ---------------------------------------------------------------- spread
@@ -162,21 +170,21 @@ def _run_spread(args: argparse.Namespace) -> int:
 
 
 def _format_spread(forecast, written: list[str]) -> str:
-    """A short human summary: per release the final mean, 95 % ellipse and polygon probability."""
-    hours = forecast.times_s[-1] / 3600.0
+    """A short human summary: per release the final mean, 95 % ellipse and polygon probability, every length and
+    duration in the unit that fits its size."""
     lines = [f"spread: {len(forecast.releases)} release(s), method {forecast.method}, "
-             f"{len(forecast.times_s)} output times to {hours:.3g} h"]
+             f"{len(forecast.times_s)} output times to {format_duration(forecast.times_s[-1])}"]
     for r, rel in enumerate(forecast.releases):
         end = forecast.means[r, -1]
         major, minor = forecast.semi_axes_m[r, -1, forecast.levels.index(0.95)]
-        text = f"  {rel.name}: end mean ({', '.join(f'{v:.0f}' for v in end)}) m"
+        text = f"  {rel.name}: end mean ({', '.join(format_length(v) for v in end)})"
         if forecast.mean_lonlat is not None:
             text += " = lon/lat ({:.5f}, {:.5f})".format(*forecast.mean_lonlat[r, -1])
-        text += f"; 95 % ellipse {major:.0f} m x {minor:.0f} m"
+        text += f"; 95 % ellipse {format_length(major)} x {format_length(minor)}"
         if forecast.probability is not None:
             arrival = forecast.first_arrival_s[r]
             text += f"; P(inside) max {forecast.probability[r].max():.3f}, reaches {forecast.threshold:g} " + (
-                "never" if arrival is None else f"at {arrival / 3600.0:.3g} h")
+                "never" if arrival is None else f"at {format_duration(arrival)}")
         lines.append(text)
     lines += [f"wrote {path}" for path in written] + [CAUTION]
     return "\n".join(lines)
@@ -235,8 +243,8 @@ def _run_score(args: argparse.Namespace) -> int:
         print_json({**result, "outputs": written, "caution": CAUTION})
     else:
         print(f"score: {result['n_starts']} forecasts from {result['n_tracks']} held-out tracks, method "
-              f"{result['method']}, K = {result['diffusivity_m2_s']:.3g} m²/s, tau = "
-              + ("—" if result["decorrelation_time_s"] is None else f"{result['decorrelation_time_s']:.4g} s"))
+              f"{result['method']}, K = {format_diffusivity(result['diffusivity_m2_s'])}, tau = "
+              + format_duration(result["decorrelation_time_s"]))
         print(format_score_table(result))
         print("\n".join([f"wrote {path}" for path in written] + [CAUTION]))
     return EXIT_OK

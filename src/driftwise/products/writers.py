@@ -24,6 +24,7 @@ from ..files import (
     atomic_write_text,
     csv_safe_text,  # a leading = + - @ in a text cell gets a ' (formula injection)
 )
+from ..units import format_duration, format_length
 from .cfproducts import RESEARCH_CAUTION, crs_attributes, discovery_attributes, spread_dataset
 from .spreadgeojson import spread_geojson
 
@@ -281,6 +282,11 @@ def _fmt(value: float, spec: str) -> str:
     return "—" if value is None or not np.isfinite(value) else format(value, spec)
 
 
+def _length_cell(value_m: float | None) -> str:
+    """A separation in the unit that fits its size ('12.3 km', '4.1 mm'), '—' when undefined."""
+    return "—" if value_m is None or not np.isfinite(value_m) else format_length(value_m)
+
+
 def _coverage_cell(scores: dict[str, Any], key: str, k: int) -> str:
     """'0.814 ± 0.056' (13 characters), or the value alone when the standard error is undefined."""
     se = scores[f"{key}_se"][k]
@@ -295,11 +301,10 @@ def format_score_table(result: dict[str, Any]) -> str:
             f"{'skill':>6}  {'cov 50%':>13}  {'cov 95%':>13}  {'log score':>9}")
     lines = [head, "-" * len(head)]
     for name, k, s in _rows(result):
-        hours = result["horizons_s"][k] / 3600.0
-        label = f"{hours:g} h" if name == "driftwise" else ""
+        label = format_duration(result["horizons_s"][k]) if name == "driftwise" else ""
         lines.append(
-            f"{label:>8}  {_LABELS[name]:<12}{s['n_pairs'][k]:>6d}  {_fmt(s['separation_m'][k], '9.0f')} m  "
-            f"{_fmt(s['separation_p90_m'][k], '7.0f')} m  {_fmt(s['skill'][k], '6.3f')}  "
+            f"{label:>8}  {_LABELS[name]:<12}{s['n_pairs'][k]:>6d}  {_length_cell(s['separation_m'][k]):>11}  "
+            f"{_length_cell(s['separation_p90_m'][k]):>9}  {_fmt(s['skill'][k], '6.3f')}  "
             f"{_coverage_cell(s, 'coverage_50', k)}  {_coverage_cell(s, 'coverage_95', k)}  "
             f"{_fmt(s['log_score'][k], '9.2f')}")
     lines.append("sep: distance between forecast and observed position; skill: Liu & Weisberg (2011), 1 = perfect, "
