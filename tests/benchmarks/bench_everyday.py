@@ -12,7 +12,7 @@ so the import of the package is part of every time), next to the target of issue
 - ``driftwise check big.csv``                                  target < 60 s
 
 and the 1-minute load average before and after (the machine is shared: a load above the core count
-means the times are inflated).  ``--source DIR`` times another copy of the package (e.g. an older
+means the wall times are inflated; the CPU time, user + system of the process, is less affected).  ``--source DIR`` times another copy of the package (e.g. an older
 commit unpacked with ``git archive``) to give before/after ratios.
 
 Data: drifters in a Lamb–Oseen vortex (Oseen 1912; Γ = 2·10⁴ m²/s, r_c = 3 km) plus a uniform
@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import argparse
 import os
+import resource
 import statistics
 import subprocess
 import sys
@@ -56,15 +57,19 @@ def write_tracks(path: Path, n_tracks: int, n_fixes: int, seed: int) -> None:
                                 diffusivity_m2_s=1.0, position_error_m=10.0, seed=seed + 1).to_csv(path, index=False)
 
 
-def wall_s(args: list[str], env: dict[str, str], repeats: int) -> list[float]:
-    times = []
+def timed(args: list[str], env: dict[str, str], repeats: int) -> tuple[list[float], list[float]]:
+    """(wall seconds, CPU seconds user + system) of ``repeats`` fresh processes running ``driftwise args``."""
+    walls, cpus = [], []
     for _ in range(repeats):
+        before = resource.getrusage(resource.RUSAGE_CHILDREN)
         t0 = time.perf_counter()
         done = subprocess.run([sys.executable, "-c", RUN, *args], env=env, capture_output=True, text=True)
-        times.append(time.perf_counter() - t0)
+        walls.append(time.perf_counter() - t0)
+        after = resource.getrusage(resource.RUSAGE_CHILDREN)
+        cpus.append(after.ru_utime + after.ru_stime - before.ru_utime - before.ru_stime)
         if done.returncode != 0:
             raise SystemExit(f"{' '.join(args)} failed ({done.returncode}): {done.stderr[-2000:]}")
-    return times
+    return walls, cpus
 
 
 def main() -> None:
@@ -85,13 +90,14 @@ def main() -> None:
                     "check": ["check", str(big), "--quiet"]}
         load_before = os.getloadavg()[0]
         print(f"driftwise from {opts.source}; {os.cpu_count()} cores; load (1 min) {load_before:.2f} at start")
-        print(f"{'command':<10} {'median s':>9} {'min s':>7} {'max s':>7} {'runs':>5} {'target s':>9}  ok")
+        print(f"{'command':<10} {'wall median s':>14} {'min s':>7} {'max s':>7} {'CPU median s':>13} {'runs':>5} "
+              f"{'target s':>9}  ok")
         for name in opts.parts.split(","):
             repeats = opts.repeats if name in ("help", "inspect") else opts.heavy_repeats
-            times = wall_s(commands[name], env, repeats)
-            median = statistics.median(times)
-            print(f"{name:<10} {median:>9.2f} {min(times):>7.2f} {max(times):>7.2f} {repeats:>5} "
-                  f"{TARGETS_S[name]:>9.0f}  {'yes' if median < TARGETS_S[name] else 'NO'}", flush=True)
+            walls, cpus = timed(commands[name], env, repeats)
+            median = statistics.median(walls)
+            print(f"{name:<10} {median:>14.2f} {min(walls):>7.2f} {max(walls):>7.2f} {statistics.median(cpus):>13.2f} "
+                  f"{repeats:>5} {TARGETS_S[name]:>9.0f}  {'yes' if median < TARGETS_S[name] else 'NO'}", flush=True)
         print(f"load (1 min) {os.getloadavg()[0]:.2f} at end")
 
 

@@ -23,6 +23,7 @@ from ..products.plots import plot_skill
 from ..products.writers import (
     SPREAD_SUFFIXES,
     format_score_table,
+    monte_carlo_error,
     spread_to_dict,
     write_score_csv,
     write_spread,
@@ -181,6 +182,10 @@ def _format_spread(forecast, written: list[str]) -> str:
         if forecast.mean_lonlat is not None:
             text += " = lon/lat ({:.5f}, {:.5f})".format(*forecast.mean_lonlat[r, -1])
         text += f"; 95 % ellipse {format_length(major)} x {format_length(minor)}"
+        error = monte_carlo_error(forecast, r)
+        if error is not None:
+            text += (f"; Monte Carlo error ({forecast.particles} particles, 1 SE at the end): mean ± "
+                     f"{format_length(error['mean_se_m'])}, variance ± {100 * (error['variance_relative_se'] or 0):.2g} %")
         if forecast.probability is not None:
             arrival = forecast.first_arrival_s[r]
             text += f"; P(inside) max {forecast.probability[r].max():.3f}, reaches {forecast.threshold:g} " + (

@@ -143,7 +143,9 @@ class Spread:
     (major axis, counter-clockwise from local +x/east) of the horizontal ellipses;
     with a polygon: ``polygon_m (k, 2)``, ``probability (R, T)``, and for a threshold
     ``first_arrival_s`` (per release, seconds since its start, or None);
-    ``time_origin_utc`` the ISO-8601 UTC instant of ``start_time_s = 0`` when the model knows it.
+    ``time_origin_utc`` the ISO-8601 UTC instant of ``start_time_s = 0`` when the model knows it;
+    for the ensemble its Monte Carlo standard errors ``mean_se_m (R, T, d)`` and ``cov_se_m2 (R, T, d, d)``
+    (:class:`driftwise.dynamics.ensemble.EnsembleResult`) and its ``particles``, else None.
     """
 
     method: str
@@ -161,6 +163,9 @@ class Spread:
     threshold: float | None = None
     first_arrival_s: tuple[float | None, ...] | None = None
     time_origin_utc: str | None = None
+    mean_se_m: np.ndarray | None = None
+    cov_se_m2: np.ndarray | None = None
+    particles: int | None = None
 
     @property
     def dim(self) -> int:
@@ -218,19 +223,22 @@ def with_polygon(spread: Spread, polygon_m: Any, threshold: float | None = None)
 # ------------------------------------------------------------------ propagation
 
 def _moments(sde: Any, releases: tuple[Release, ...], times: np.ndarray, method: Any, integrator: Any,
-             key: Any) -> tuple[np.ndarray, np.ndarray]:
-    """Means (R, T, d) and covariances (R, T, d, d): one propagate_batch call, or one ensemble per release."""
+             key: Any) -> tuple[np.ndarray, np.ndarray, dict[str, Any]]:
+    """Means (R, T, d) and covariances (R, T, d, d): one propagate_batch call, or one ensemble per release;
+    and for the ensemble its Monte Carlo errors (the :class:`Spread` fields mean_se_m, cov_se_m2, particles)."""
 
     means0 = np.stack([r.start_m for r in releases])
     covs0 = np.stack([r.cov0_m2 for r in releases])
     if not isinstance(method, EulerMaruyama):
         means, covs = propagate_batch(sde, means0, covs0, times, method=method, integrator=integrator or RK4())
-        return np.asarray(means), np.asarray(covs)
+        return np.asarray(means), np.asarray(covs), {}
     if key is None:
         raise InputError("the ensemble method needs an explicit random key (key=jax.random.key(seed))")
     results = [simulate(sde, m0, c0, times, method=method, key=k)
                for m0, c0, k in zip(means0, covs0, jax.random.split(key, len(releases)))]
-    return np.stack([np.asarray(r.mean) for r in results]), np.stack([np.asarray(r.cov) for r in results])
+    errors = {"mean_se_m": np.stack([np.asarray(r.mean_se) for r in results]),
+              "cov_se_m2": np.stack([np.asarray(r.cov_se) for r in results]), "particles": int(method.particles)}
+    return np.stack([np.asarray(r.mean) for r in results]), np.stack([np.asarray(r.cov) for r in results]), errors
 
 
 def spread_releases(sde: Any, releases: Any, times_s: Any, *, method: Any = None, integrator: Any = None,
@@ -250,11 +258,12 @@ def spread_releases(sde: Any, releases: Any, times_s: Any, *, method: Any = None
     method = SphericalCubature() if method is None else method
     name = method_name(method)
     rels, times = as_releases(releases), check_times(times_s)
-    means, covs = _moments(sde, rels, times, method, integrator, key)
+    means, covs, errors = _moments(sde, rels, times, method, integrator, key)
     if not (np.all(np.isfinite(means)) and np.all(np.isfinite(covs))):
         raise InputError(f"the {name} forecast produced non-finite numbers (the integration diverged); use a smaller step")
-    return make_spread(name, rels, times, means, covs, frame=frame, polygon_m=polygon_m, threshold=threshold,
-                       time_origin_utc=time_origin_utc)
+    spread = make_spread(name, rels, times, means, covs, frame=frame, polygon_m=polygon_m, threshold=threshold,
+                         time_origin_utc=time_origin_utc)
+    return dataclasses.replace(spread, **errors)
 
 
 

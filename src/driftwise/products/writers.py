@@ -59,7 +59,24 @@ def spread_to_dict(spread) -> dict:
     if spread.polygon_m is not None:
         out["polygon_m"] = _floats(spread.polygon_m)
         out["threshold"] = spread.threshold
+    if spread.mean_se_m is not None:
+        out["particles"] = spread.particles
+        out["units"] |= {"mean_se_m": "m, Monte Carlo standard error of the mean", "covariance_se_m2":
+                         "m2, Monte Carlo standard error of each covariance entry (fourth sample moment)"}
     return out
+
+
+def monte_carlo_error(spread, r: int) -> dict[str, float] | None:
+    """The ensemble's Monte Carlo error of release ``r`` at the last output time, or None for a moment method:
+    ``mean_se_m`` the largest standard error of a mean coordinate (m) and ``variance_relative_se`` the largest
+    standard error of a variance relative to the variance (SE of var / var; a semi-axis, ∝ √var, has half)."""
+    if spread.mean_se_m is None:
+        return None
+    var = np.diagonal(spread.covs[r, -1])
+    var_se = np.diagonal(spread.cov_se_m2[r, -1])
+    relative = np.where(var > 0, var_se / np.where(var > 0, var, 1.0), np.nan)
+    return {"mean_se_m": float(np.max(spread.mean_se_m[r, -1])),
+            "variance_relative_se": float(np.nanmax(relative)) if np.any(var > 0) else None}
 
 
 def _release_dict(spread, r: int) -> dict:
@@ -76,6 +93,9 @@ def _release_dict(spread, r: int) -> dict:
                           "semi_minor_m": _floats(spread.semi_axes_m[r, :, i, 1]),
                           "bearing_deg": bearing, "angle_ccw_from_east_deg": angle}
                          for i, level in enumerate(spread.levels)]
+    if spread.mean_se_m is not None:
+        entry["mean_se_m"], entry["covariance_se_m2"] = _floats(spread.mean_se_m[r]), _floats(spread.cov_se_m2[r])
+        entry["monte_carlo_error_at_end"] = monte_carlo_error(spread, r)
     if spread.probability is not None:
         entry["probability_inside"] = _floats(spread.probability[r])
     if spread.first_arrival_s is not None:
