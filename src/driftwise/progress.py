@@ -7,8 +7,8 @@ seconds (and none for a loop that ends sooner)::
 
     driftwise fit: step 400/1500, elbo=-1.2e+04, 12 s elapsed, ~33 s left
 
-The time left is the elapsed time scaled by the share of steps still to run (steps of equal cost),
-printed with :func:`driftwise.units.format_duration`.
+The time left is the steps still to run at the rate of the steps since the previous line (so the
+compilation of the first steps does not inflate it), printed with :func:`driftwise.units.format_duration`.
 """
 
 from __future__ import annotations
@@ -40,7 +40,7 @@ class Progress:
         self.bar = tqdm(total=total, initial=initial, disable=not terminal, desc=desc, unit=unit, file=self.stream,
                         leave=False, dynamic_ncols=True) if terminal else None
         self.start = self.last = clock()
-        self.start_n = self.n
+        self.last_n = self.n
 
     def update(self, n: int = 1) -> None:
         self.n += n
@@ -65,9 +65,9 @@ class Progress:
 
     def line(self) -> str:
         """The plain progress line for the present state."""
-        elapsed = self.clock() - self.start
-        done = self.n - self.start_n
-        left = elapsed * (self.total - self.n) / done if done > 0 and self.total >= self.n else None
+        now = self.clock()
+        elapsed, done = now - self.start, self.n - self.last_n
+        left = (now - self.last) * (self.total - self.n) / done if done > 0 and self.total >= self.n else None
         parts = [f"{self.desc}: {self.unit} {self.n}/{self.total}"] + ([self.postfix] if self.postfix else [])
         parts.append(f"{format_duration(round(elapsed, 1))} elapsed")
         if left is not None:
@@ -75,8 +75,8 @@ class Progress:
         return ", ".join(parts)
 
     def _line(self) -> None:
-        self.last = self.clock()
         print(self.line(), file=self.stream, flush=True)
+        self.last, self.last_n = self.clock(), self.n
 
 
 class Stopwatch:

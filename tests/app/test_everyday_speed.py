@@ -83,7 +83,7 @@ def test_progress_prints_a_plain_line_every_few_seconds_when_not_a_terminal():
         bar.set_postfix(elbo=f"{-1000.0 + step:.6g}")
     bar.close()
     lines = stream.getvalue().splitlines()
-    assert len(lines) == 3                       # at 5 s, 10 s and 15 s
+    assert len(lines) == 3                       # at 5 s, 10 s and 15 s; time left at the rate since the last line
     assert lines[0] == "driftwise fit: step 500/1500, elbo=-501, 5 s elapsed, ~10 s left"
     assert lines[1].startswith("driftwise fit: step 1000/1500, elbo=-1, 10 s elapsed, ~5 s left")
 
@@ -98,12 +98,15 @@ def test_progress_is_silent_when_disabled_or_the_loop_is_short():
     assert stream.getvalue() == ""
 
 
-def test_progress_counts_from_a_resumed_step():
+def test_progress_counts_from_a_resumed_step_at_the_recent_rate():
     clock, stream = _Clock(), _Pipe()
     bar = Progress(1000, desc="fit", initial=600, stream=stream, every_s=5.0, clock=clock)
     clock.now = 5.0
-    bar.update(100)                               # 100 steps in 5 s, 300 to go: 15 s left
-    assert stream.getvalue().strip() == "fit: step 700/1000, 5 s elapsed, ~15 s left"
+    bar.update(100)                               # 100 steps in 5 s (a slow first step: compilation), 300 to go
+    clock.now = 10.0
+    bar.update(200)                               # then 200 steps in 5 s: 100 to go at 40 steps/s
+    assert stream.getvalue().splitlines() == ["fit: step 700/1000, 5 s elapsed, ~15 s left",
+                                              "fit: step 900/1000, 10 s elapsed, ~2.5 s left"]
 
 
 def test_stopwatch_adds_up_stages_and_counts_a_failed_one():
