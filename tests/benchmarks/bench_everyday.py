@@ -1,7 +1,7 @@
 """Everyday speed of the command line (run by hand):
 
     PYTHONPATH=src .venv/bin/python tests/benchmarks/bench_everyday.py [--repeats 5] [--heavy-repeats 3]
-                                                                       [--parts help,inspect,fit,check]
+                                                                       [--parts help,inspect,fit,check,ensemble]
 
 Prints one table of wall times, each the median of fresh processes (``python -c 'driftwise.app.cli.main'``,
 so the import of the package is part of every time), next to the target of issue 13:
@@ -10,6 +10,8 @@ so the import of the package is part of every time), next to the target of issue
 - ``driftwise inspect small.csv`` (5 tracks × 20 fixes)        target < 1 s
 - ``driftwise fit big.csv --out m.npz`` (50 tracks × 100 fixes = 5,000 fixes)   target < 30 s
 - ``driftwise check big.csv``                                  target < 60 s
+- ``driftwise spread m.npz --method ensemble`` with 3 releases, ``--horizon 1d`` (default particles and step;
+  the model of the fit part, fitted first when that part is not run)   target < 60 s
 
 and the 1-minute load average before and after (the machine is shared: a load above the core count
 means the wall times are inflated; the CPU time, user + system of the process, is less affected).  ``--source DIR`` times another copy of the package (e.g. an older
@@ -36,7 +38,7 @@ import numpy as np
 from driftwise.data import synthetic
 
 RUN = "import sys; from driftwise.app.cli import main; sys.exit(main(sys.argv[1:]))"
-TARGETS_S = {"help": 1.0, "inspect": 1.0, "fit": 30.0, "check": 60.0}
+TARGETS_S = {"help": 1.0, "inspect": 1.0, "fit": 30.0, "check": 60.0, "ensemble": 60.0}
 
 
 class _Sum:
@@ -75,8 +77,8 @@ def timed(args: list[str], env: dict[str, str], repeats: int) -> tuple[list[floa
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--repeats", type=int, default=5, help="runs of --help and inspect (median)")
-    parser.add_argument("--heavy-repeats", type=int, default=3, help="runs of fit and check (median)")
-    parser.add_argument("--parts", default="help,inspect,fit,check")
+    parser.add_argument("--heavy-repeats", type=int, default=3, help="runs of fit, check and ensemble (median)")
+    parser.add_argument("--parts", default="help,inspect,fit,check,ensemble")
     parser.add_argument("--source", default=str(Path(__file__).resolve().parents[2] / "src"),
                         help="the src folder of the driftwise to time (default this checkout's)")
     opts = parser.parse_args()
@@ -87,12 +89,18 @@ def main() -> None:
         write_tracks(big, 50, 100, seed=2)
         commands = {"help": ["--help"], "inspect": ["inspect", str(small)],
                     "fit": ["fit", str(big), "--out", str(Path(tmp) / "m.npz"), "--quiet"],
-                    "check": ["check", str(big), "--quiet"]}
+                    "check": ["check", str(big), "--quiet"],
+                    "ensemble": ["spread", str(Path(tmp) / "m.npz"), "--method", "ensemble", "--horizon", "1d",
+                                 "--every", "1h", "--quiet"] + [a for xy in ("0,0", "2km,2km", "-3km,1km")
+                                                                  for a in ("--release", xy)]}
         load_before = os.getloadavg()[0]
         print(f"driftwise from {opts.source}; {os.cpu_count()} cores; load (1 min) {load_before:.2f} at start")
         print(f"{'command':<10} {'wall median s':>14} {'min s':>7} {'max s':>7} {'CPU median s':>13} {'runs':>5} "
               f"{'target s':>9}  ok")
-        for name in opts.parts.split(","):
+        parts = opts.parts.split(",")
+        if "ensemble" in parts and "fit" not in parts:
+            timed(commands["fit"], env, 1)
+        for name in parts:
             repeats = opts.repeats if name in ("help", "inspect") else opts.heavy_repeats
             walls, cpus = timed(commands[name], env, repeats)
             median = statistics.median(walls)
