@@ -46,3 +46,16 @@ def test_moment_methods_report_no_monte_carlo_error():
     out = spread_releases(sde, rels, times, method=method, integrator=integrator)
     assert out.mean_se_m is None and out.particles is None and monte_carlo_error(out, 0) is None
     assert "particles" not in spread_to_dict(out) and "mean_se_m" not in spread_to_dict(out)["releases"][0]
+
+
+def test_the_default_ensemble_step_follows_the_flow_time_scale():
+    from types import SimpleNamespace
+
+    from driftwise.dynamics.methods import ENSEMBLE_MAX_STEP_S, default_ensemble_step_s
+
+    tank = SimpleNamespace(fit_info={"length_scale_m": 0.08, "rms_speed_m_s": 2e-3}, decorrelation_time_s=1e3)
+    ocean = SimpleNamespace(fit_info={"length_scale_m": 4000.0, "rms_speed_m_s": 0.14}, decorrelation_time_s=1.0)
+    assert default_ensemble_step_s(tank) == 0.08 / 2e-3 / 20                  # 40 s crossing time → 2 s steps
+    assert default_ensemble_step_s(ocean) == ENSEMBLE_MAX_STEP_S == 300.0     # 8 h crossing time: capped at 5 min
+    assert default_ensemble_step_s(SimpleNamespace(fit_info={}, decorrelation_time_s=600.0)) == 30.0
+    assert default_ensemble_step_s(object()) == ENSEMBLE_MAX_STEP_S

@@ -69,9 +69,10 @@ def configure_spread(p: argparse.ArgumentParser) -> None:
                    help="; ".join(f"{name}: {spec.help}" for name, spec in METHODS.items())
                    + f" (default {DEFAULT_METHOD})")
     p.add_argument("--particles", type=int, default=DEFAULT_PARTICLES,
-                   help=f"ensemble particles (default {DEFAULT_PARTICLES})")
+                   help=f"ensemble particles (default {DEFAULT_PARTICLES}; the Monte Carlo error is reported)")
     p.add_argument("--step", default=None,
-                   help="integration step with its unit (default 10min for moments, 1min for the ensemble)")
+                   help="integration step with its unit (default 10min for moments; for the ensemble 5min, or a "
+                   "20th of the flow's time scale, length scale / RMS speed, when shorter)")
     p.add_argument("--diffusivity", default=None,
                    help="eddy diffusivity K, e.g. 5m2/s (bare number: m²/s; default: the model's)")
     p.add_argument("--decorrelation-time", default=None,

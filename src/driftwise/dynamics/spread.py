@@ -56,7 +56,7 @@ from scipy.stats import chi2
 from ..data.utctime import iso_utc
 from ..errors import InputError
 from .ensemble import EulerMaruyama, simulate
-from .methods import make_method, method_name
+from .methods import DEFAULT_PARTICLES, METHODS, default_ensemble_step_s, make_method, method_name
 from .moments import RK4, SphericalCubature, propagate_batch
 from .sde import sde_from_field
 
@@ -269,19 +269,22 @@ def spread_releases(sde: Any, releases: Any, times_s: Any, *, method: Any = None
 
 
 def spread_from_field(field: Any, releases: Any, times_s: Any, *, method: str = "cubature",
-                      particles: int = 10_000, step_s: float | None = None,
+                      particles: int = DEFAULT_PARTICLES, step_s: float | None = None,
                       diffusivity_m2_s: float | None = None, decorrelation_time_s: float | None = None,
                       seed: int = 0, gauss_hermite_order: int = 3, polygon_m: Any = None,
                       threshold: float | None = None) -> Spread:
     """Forecast releases in a fitted FlowField: SDE μ = posterior mean, D = 2(K I + τ(1 − e^{−a/τ}) Σ) at release age a (sde.sde_from_field).
 
     ``method`` is a name in :data:`driftwise.dynamics.methods.METHODS` ("cubature" default); ``step_s`` the RK4 step (default 600 s) or the
-    Euler–Maruyama step (default 60 s) for ``"ensemble"`` with ``particles``; K and τ default to the
+    Euler–Maruyama step (default :func:`driftwise.dynamics.methods.default_ensemble_step_s`: 5 min, or a 20th of
+    the flow's time scale when shorter) for ``"ensemble"`` with ``particles``; K and τ default to the
     model's own; ``seed`` seeds the ensemble; the model's ``time_origin_utc`` (data summary; absent in
     model files from before it was recorded) gives the outputs absolute times.  Other arguments as in
     :func:`spread_releases`.
     """
 
+    if step_s is None and method in METHODS and METHODS[method].ensemble:
+        step_s = default_ensemble_step_s(field)
     obj, integrator = make_method(method, particles=particles, step_s=step_s, gauss_hermite_order=gauss_hermite_order)
     rels = as_releases(releases)
     dim = int(getattr(field, "dim", rels[0].start_m.size))
