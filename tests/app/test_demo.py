@@ -15,6 +15,7 @@ import pytest
 
 from driftwise.app import demo, scenarios
 from driftwise.app.cli import main
+from driftwise.units import format_diffusivity
 
 
 def _job(tmp_path: Path) -> demo.Job:
@@ -135,10 +136,10 @@ def test_reduced_demo_end_to_end(tmp_path, capsys):
     # the digest and the report carry the same key numbers
     report = (out / "report.html").read_text()
     k = summary["fit"]["diffusivity_m2_s"]
-    assert f"→ {k:.3g} m²/s" in printed and f"{k:.4g}" in report  # the calibrated K
+    assert f"→ {k:.3g} m²/s" in printed and format_diffusivity(k) in report  # the calibrated K (3 figures, unit)
     assert str(out / "") in printed or f"files in {out}/" in printed
     assert "Caution" in printed and "Caution" in report
 
 
 def test_durations_read_naturally():
-    assert [demo.duration(s) for s in (34632.0, 95.0, 1.0, 2 * 86400.0)] == ["9.62 h", "1.58 min", "1 s", "2 d"]
+    assert [demo.format_duration(s) for s in (34632.0, 95.0, 1.0, 2 * 86400.0)] == ["9.62 h", "1.58 min", "1 s", "2 d"]

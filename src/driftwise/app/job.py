@@ -88,12 +88,6 @@ def one_line(text: str, limit: int = 300) -> str:
     return text if len(text) <= limit else text[: limit - 1] + "…"
 
 
-def duration(seconds: float) -> str:
-    """``34 632`` → ``9.62 h``; ``95`` → ``1.58 min``; ``1.0`` → ``1 s`` (3 significant digits)."""
-    for unit, size in (("d", 86400.0), ("h", HOUR_S), ("min", 60.0)):
-        if abs(seconds) >= size:
-            return f"{seconds / size:.3g} {unit}"
-    return f"{seconds:.3g} s"
 
 def progress_bar(total: int, quiet: bool) -> Any:
     """The demo's step progress on stderr (:class:`driftwise.progress.Progress`), none with ``--quiet``."""

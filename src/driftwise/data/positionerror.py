@@ -308,7 +308,7 @@ def _outcome(var_m2: float, se_m2: float, method: str, n_windows: int, n_tracks:
     bound = math.sqrt(max(var_m2, 0.0) + 2.0 * se_m2)
     note = (f"not identifiable: σ² = {var_m2:.3g} ± {se_m2:.3g} m² is not above twice its standard error "
             f"(the random walk or the flow hides the noise at this sampling); using the upper bound "
-            f"{bound:.3g} m")
+            f"{format_length(bound)}")
     return PositionErrorEstimate(bound, se_m2 / (2.0 * bound) if bound > 0 else math.inf, method, n_windows,
                                  False, estimate, n_tracks, note)
 
