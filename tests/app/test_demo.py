@@ -74,7 +74,7 @@ def test_warnings_become_single_lines_with_counts():
                                               "RuntimeWarning: projection stretch 0.2 %"]
 
 
-def test_progress_bar_only_on_a_terminal(monkeypatch):
+def test_progress_bar_only_on_a_terminal_plain_lines_elsewhere(monkeypatch):
     import io
 
     class Terminal(io.StringIO):
@@ -82,10 +82,13 @@ def test_progress_bar_only_on_a_terminal(monkeypatch):
             return True
 
     monkeypatch.setattr("sys.stderr", Terminal())
-    assert not demo.progress_bar(3, quiet=False).disable
-    assert demo.progress_bar(3, quiet=True).disable
-    monkeypatch.setattr("sys.stderr", io.StringIO())  # a pipe or a log file: no bar garbage
-    assert demo.progress_bar(3, quiet=False).disable
+    shown = demo.progress_bar(3, quiet=False)
+    assert shown.bar is not None and not shown.plain
+    quiet = demo.progress_bar(3, quiet=True)
+    assert quiet.bar is None and not quiet.plain
+    monkeypatch.setattr("sys.stderr", io.StringIO())  # a pipe or a log file: no bar garbage, plain lines
+    piped = demo.progress_bar(3, quiet=False)
+    assert piped.bar is None and piped.plain
 
 
 @pytest.mark.parametrize("command", ["inspect", "fit", "spread", "score", "check", "map", "demo"])

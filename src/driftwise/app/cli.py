@@ -45,6 +45,9 @@ COMMANDS: dict[str, Command] = {
     "check": Command("is the flow divergence-free? curl-free? kernel-family evidence and calibrated tests",
                      "cmd_check"),
     "map": Command("export the fitted field on a regular grid (NetCDF with CF attributes, or CSV)", "cmd_check"),
+    "connect": Command("connectivity between sites: the share of each site's material inside each other site",
+                       "cmd_connect"),
+    "backtrack": Command("where and when was something released, given where it was found?", "cmd_backtrack"),
 }
 
 

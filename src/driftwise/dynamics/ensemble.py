@@ -22,7 +22,7 @@ from ..errors import InputError
 from .moments import psd_cholesky, substep_counts, validate_release, validate_times
 from .sde import SDE, join_from_jit, split_for_jit
 
-__all__ = ["EulerMaruyama", "EnsembleResult", "simulate"]
+__all__ = ["EulerMaruyama", "EnsembleResult", "simulate", "particle_paths"]
 
 
 @dataclass(frozen=True)
@@ -62,6 +62,13 @@ def _paths(sde: SDE, method: EulerMaruyama, mean0, chol0, times_s, key) -> jax.A
     """Positions (T, chunk, d) of one chunk of particles at the output times."""
     k_init, k_path = jax.random.split(key)
     x0 = mean0 + jax.random.normal(k_init, (method.chunk, mean0.shape[-1])) @ chol0.T
+    return particle_paths(sde, x0, times_s, method.step_s, k_path)
+
+
+def particle_paths(sde: SDE, x0: jax.Array, times_s: jax.Array, step_s: Any, key: jax.Array) -> jax.Array:
+    """Euler–Maruyama positions (T, n, d) at ``times_s`` (T,) s of particles starting at ``x0`` (n, d) m.
+
+    Each output interval is cut into ceil(Δt/step_s) equal steps (traceable; jit at the caller)."""
 
     def em_step(h, state):
         x, k, age = state  # age: time since the release (s), for a diffusion that depends on it
@@ -71,11 +78,11 @@ def _paths(sde: SDE, method: EulerMaruyama, mean0, chol0, times_s, key) -> jax.A
         return x + h * jax.vmap(sde.drift)(x) + jnp.sqrt(h) * noise, k, age + h
 
     def interval(state, span):
-        n = substep_counts(span, method.step_s)
+        n = substep_counts(span, step_s)
         state = jax.lax.fori_loop(0, n, lambda _, s: em_step(span / n, s), state)
         return state, state[0]
 
-    _, xs = jax.lax.scan(interval, (x0, k_path, jnp.zeros((), dtype=x0.dtype)), jnp.diff(times_s))
+    _, xs = jax.lax.scan(interval, (x0, key, jnp.zeros((), dtype=x0.dtype)), jnp.diff(times_s))
     return jnp.concatenate([x0[None], xs])
 
 
