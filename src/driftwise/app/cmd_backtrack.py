@@ -28,7 +28,8 @@ REGION_PAD = 0.1
 
 
 def configure_backtrack(p: argparse.ArgumentParser) -> None:
-    p.description = ("Propagate point releases forward from a grid of candidate release points over --region and "
+    p.description = (
+        "Propagate point releases forward from a grid of candidate release points over --region and "
         "candidate release times over --window before the (earliest) find, score each by the likelihood of the "
         "find(s) N(found | m, P + sd² I) (several finds of the same release multiply), and normalise under a "
         "uniform prior: a probability map per candidate time and summed, the 50 %/90 % highest-probability "

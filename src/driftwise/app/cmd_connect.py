@@ -29,7 +29,8 @@ DEFAULT_ENSEMBLE_STEP = "10min"
 
 
 def configure_connect(p: argparse.ArgumentParser) -> None:
-    p.description = ("For every source site, seed releases over its area (scrambled Sobol points, each carrying "
+    p.description = (
+        "For every source site, seed releases over its area (scrambled Sobol points, each carrying "
         "its share of the area as covariance A/(12 N) per axis), propagate them through the fitted flow (Gaussian "
         "moments, or Euler-Maruyama particles with --method ensemble) and report P[source, destination, time], "
         "the probability that material released uniformly in the source is inside the destination, the first "
