@@ -92,6 +92,8 @@ def main(argv: list[str] | None = None) -> int:
     try:
         parser = build_parser(argv, every=False)
         args = parser.parse_args(argv)
+        if os.environ.get("DRIFTWISE_COORDINATOR"):   # devices.ENV_COORDINATOR: join a multi-process run (README)
+            importlib.import_module("driftwise.devices").initialize()     # before any jax work; imports jax
         return int(args.run(args) or EXIT_OK)
     except InputError as err:
         print(f"driftwise: error: {err}", file=sys.stderr)

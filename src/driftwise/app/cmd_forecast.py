@@ -78,6 +78,9 @@ def configure_spread(p: argparse.ArgumentParser) -> None:
     p.add_argument("--decorrelation-time", default=None,
                    help="velocity decorrelation time tau with its unit, e.g. 6h (default: the model's)")
     p.add_argument("--seed", type=int, default=0, help="random seed of the ensemble (default 0)")
+    p.add_argument("--exact", action="store_true", help="evaluate the exact posterior at every point; by default "
+                   "many releases x steps use a table of it on a grid (interpolation error <= 5 %% of the posterior "
+                   "s.d.; releases leaving the grid are recomputed exactly)")
     p.add_argument("--polygon", metavar="FILE", help="area of interest: GeoJSON Polygon (lon/lat) or CSV of "
                    "vertices (x,y metres or lon,lat degrees)")
     p.add_argument("--threshold", type=float, default=0.5,
@@ -143,6 +146,7 @@ def _spread_options(args: argparse.Namespace, frame) -> dict[str, Any]:
         raise InputError(f"--step must be positive, got {args.step!r}")
     polygon = read_polygon(args.polygon, frame=frame) if args.polygon else None
     return dict(method=args.method, particles=args.particles, step_s=step, seed=args.seed, polygon_m=polygon,
+                posterior="exact" if args.exact else "auto",
                 threshold=args.threshold if polygon is not None else None,
                 diffusivity_m2_s=parse_diffusivity_m2_s(args.diffusivity, what="--diffusivity")
                 if args.diffusivity else None,

@@ -40,7 +40,10 @@ from typing import Any, Callable
 import jax
 import jax.numpy as jnp
 import numpy as np
+from jax.sharding import PartitionSpec
 
+from .. import devices
+from ..devices import AXIS
 from ..errors import InputError
 from .sde import SDE, join_from_jit, split_for_jit
 
@@ -367,15 +370,30 @@ def _propagate_jit(dynamic, static, method, integrator, mean0, cov0, times_s):
     return propagate_one(join_from_jit(dynamic, static), method, integrator, mean0, cov0, times_s)
 
 
-@partial(jax.jit, static_argnames=("static", "method", "chunk"))
-def propagate_batch_jit(dynamic, static, method, integrator, chunk, means0, covs0, times_s):
-    """The compiled batch propagator behind :func:`propagate_batch` (exposed so tests can count compilations)."""
+def _propagate_rows(dynamic, static, method, integrator, chunk, means0, covs0, times_s):
+    """Releases (R, d), (R, d, d) in vmapped chunks of ≤ ``chunk``, run one after another (jax.lax.map)."""
     sde = join_from_jit(dynamic, static)
 
     def one(release):
         return propagate_one(sde, method, integrator, release[0], release[1], times_s)
 
-    return jax.lax.map(one, (means0, covs0), batch_size=chunk)
+    return jax.lax.map(one, (means0, covs0), batch_size=min(chunk, means0.shape[0]))
+
+
+@partial(jax.jit, static_argnames=("static", "method", "chunk", "mesh"))
+def propagate_batch_jit(dynamic, static, method, integrator, chunk, means0, covs0, times_s, mesh=None):
+    """The compiled batch propagator behind :func:`propagate_batch` (exposed so tests can count compilations).
+
+    With a ``mesh`` (devices.mesh) the releases, row-sharded over its devices (devices.shard_rows), are
+    propagated by each device on its own rows (jax.shard_map); everything else is replicated.
+    """
+    if mesh is None:
+        return _propagate_rows(dynamic, static, method, integrator, chunk, means0, covs0, times_s)
+    spec = PartitionSpec(AXIS)
+    local = jax.shard_map(lambda d, i, m, c, t: _propagate_rows(d, static, method, i, chunk, m, c, t), mesh=mesh,
+                          in_specs=(PartitionSpec(), PartitionSpec(), spec, spec, PartitionSpec()),
+                          out_specs=(spec, spec))
+    return local(dynamic, integrator, means0, covs0, times_s)
 
 
 def validate_times(times_s: Any) -> np.ndarray:
@@ -437,6 +455,7 @@ def propagate_batch(
     method: Method = SphericalCubature(),
     integrator: Integrator = RK4(step_s=600.0),
     chunk: int = 256,
+    mesh: Any = None,
 ) -> tuple[jax.Array, jax.Array]:
     """`propagate` for R releases in one compiled call: (R, T, d) and (R, T, d, d).
 
@@ -444,8 +463,11 @@ def propagate_batch(
     release (shared; a release's own start time only labels its outputs
     because the field is steady).  Releases are vmapped in chunks of `chunk`
     and the chunks run sequentially (jax.lax.map), bounding memory to one
-    chunk's working set.  A second call with the same shapes, method and
-    integrator reuses the compiled code.
+    chunk's working set.  The releases are split over the devices of ``mesh``
+    (default devices.mesh(): every device of every process; each device runs
+    its rows, the result is gathered to every process), with results equal to
+    a one-device run to rounding.  A second call with the same shapes, method,
+    integrator and mesh reuses the compiled code.
     """
     means, covs = validate_release(means0, covs0, "releases")
     if means.ndim != 2 or means.shape[0] == 0:
@@ -454,5 +476,8 @@ def propagate_batch(
         raise InputError(f"chunk must be an integer >= 1, got {chunk!r}.")
     times = validate_times(times_s)
     dynamic, static = split_for_jit(sde)
-    chunk = min(chunk, means.shape[0])
-    return propagate_batch_jit(dynamic, static, method, integrator, chunk, means, covs, times)
+    over = devices.mesh() if mesh is None else mesh
+    (means, n), (covs, _) = devices.shard_rows(means, over), devices.shard_rows(covs, over)
+    dynamic, integrator, times = devices.replicate((dynamic, integrator, times), over)
+    out = propagate_batch_jit(dynamic, static, method, integrator, min(chunk, n), means, covs, times, mesh=over)
+    return tuple(jnp.asarray(devices.gather_rows(a, n)) for a in out)

@@ -59,6 +59,7 @@ from .ensemble import EulerMaruyama, simulate
 from .methods import DEFAULT_PARTICLES, METHODS, default_ensemble_step_s, make_method, method_name
 from .moments import RK4, SphericalCubature, propagate_batch
 from .sde import sde_from_field
+from .tabulate import release_steps, tabulated_sde
 
 LEVELS = (0.5, 0.9, 0.95)
 ROUNDING_FLOOR = 1e-14   # polygon probabilities below this are rounding residue (see module doc)
@@ -223,15 +224,23 @@ def with_polygon(spread: Spread, polygon_m: Any, threshold: float | None = None)
 # ------------------------------------------------------------------ propagation
 
 def _moments(sde: Any, releases: tuple[Release, ...], times: np.ndarray, method: Any, integrator: Any,
-             key: Any) -> tuple[np.ndarray, np.ndarray, dict[str, Any]]:
-    """Means (R, T, d) and covariances (R, T, d, d): one propagate_batch call, or one ensemble per release;
-    and for the ensemble its Monte Carlo errors (the :class:`Spread` fields mean_se_m, cov_se_m2, particles)."""
+             key: Any, fallback: Any = None) -> tuple[np.ndarray, np.ndarray, dict[str, Any]]:
+    """Means (R, T, d) and covariances (R, T, d, d): one propagate_batch call (non-finite releases rerun
+    through the ``fallback`` SDE when given), or one ensemble per release; and for the ensemble its Monte Carlo
+    errors (the :class:`Spread` fields mean_se_m, cov_se_m2, particles)."""
 
     means0 = np.stack([r.start_m for r in releases])
     covs0 = np.stack([r.cov0_m2 for r in releases])
     if not isinstance(method, EulerMaruyama):
-        means, covs = propagate_batch(sde, means0, covs0, times, method=method, integrator=integrator or RK4())
-        return np.asarray(means), np.asarray(covs), {}
+        means, covs = (np.array(a) for a in propagate_batch(sde, means0, covs0, times, method=method,
+                                                             integrator=integrator or RK4()))
+        left = ~(np.isfinite(means).all(axis=(1, 2)) & np.isfinite(covs).all(axis=(1, 2, 3)))
+        if fallback is not None and left.any():     # releases that left a table's grid: exact posterior
+            warnings.warn(f"{int(left.sum())} of {len(releases)} releases left the tabulated region; they were "
+                          "forecast with the exact posterior", stacklevel=3)
+            means[left], covs[left] = propagate_batch(fallback, means0[left], covs0[left], times, method=method,
+                                                      integrator=integrator or RK4())
+        return means, covs, {}
     if key is None:
         raise InputError("the ensemble method needs an explicit random key (key=jax.random.key(seed))")
     results = [simulate(sde, m0, c0, times, method=method, key=k)
@@ -243,7 +252,7 @@ def _moments(sde: Any, releases: tuple[Release, ...], times: np.ndarray, method:
 
 def spread_releases(sde: Any, releases: Any, times_s: Any, *, method: Any = None, integrator: Any = None,
            key: Any = None, frame: Any = None, polygon_m: Any = None, threshold: float | None = None,
-           time_origin_utc: str | None = None) -> Spread:
+           time_origin_utc: str | None = None, fallback_sde: Any = None) -> Spread:
     """Forecast releases through an Itô SDE (driftwise.dynamics.sde.SDE).
 
     ``releases``: Release(s) or start positions (d,)/(R, d) in metres; ``times_s (T,)`` seconds since each
@@ -252,13 +261,15 @@ def spread_releases(sde: Any, releases: Any, times_s: Any, *, method: Any = None
     batched ``moments.propagate_batch`` call, or ``ensemble.EulerMaruyama(...)`` (then ``key`` is required).
     ``frame`` (tracks.Frame) adds ``mean_lonlat``; ``polygon_m (k, 2)`` adds probabilities and, with a
     ``threshold``, first arrivals; ``time_origin_utc`` (ISO-8601 UTC of the time axis' zero) adds absolute
-    times to the outputs.  The field is steady, so start times only label the outputs.
+    times to the outputs.  The field is steady, so start times only label the outputs.  ``fallback_sde``: for
+    moment methods, releases whose moments come out non-finite (e.g. they left a tabulated field's grid) are
+    recomputed through it.
     """
 
     method = SphericalCubature() if method is None else method
     name = method_name(method)
     rels, times = as_releases(releases), check_times(times_s)
-    means, covs, errors = _moments(sde, rels, times, method, integrator, key)
+    means, covs, errors = _moments(sde, rels, times, method, integrator, key, fallback_sde)
     if not (np.all(np.isfinite(means)) and np.all(np.isfinite(covs))):
         raise InputError(f"the {name} forecast produced non-finite numbers (the integration diverged); use a smaller step")
     spread = make_spread(name, rels, times, means, covs, frame=frame, polygon_m=polygon_m, threshold=threshold,
@@ -272,7 +283,7 @@ def spread_from_field(field: Any, releases: Any, times_s: Any, *, method: str = 
                       particles: int = DEFAULT_PARTICLES, step_s: float | None = None,
                       diffusivity_m2_s: float | None = None, decorrelation_time_s: float | None = None,
                       seed: int = 0, gauss_hermite_order: int = 3, polygon_m: Any = None,
-                      threshold: float | None = None) -> Spread:
+                      threshold: float | None = None, posterior: str = "auto") -> Spread:
     """Forecast releases in a fitted FlowField: SDE μ = posterior mean, D = 2(K I + τ(1 − e^{−a/τ}) Σ) at release age a (sde.sde_from_field).
 
     ``method`` is a name in :data:`driftwise.dynamics.methods.METHODS` ("cubature" default); ``step_s`` the RK4 step (default 600 s) or the
@@ -280,7 +291,10 @@ def spread_from_field(field: Any, releases: Any, times_s: Any, *, method: str = 
     the flow's time scale when shorter) for ``"ensemble"`` with ``particles``; K and τ default to the
     model's own; ``seed`` seeds the ensemble; the model's ``time_origin_utc`` (data summary; absent in
     model files from before it was recorded) gives the outputs absolute times.  Other arguments as in
-    :func:`spread_releases`.
+    :func:`spread_releases`.  ``posterior``: "exact" evaluates the posterior at every point
+    (sde.PointPosterior); "table" interpolates it from a grid (tabulate.tabulate_field over
+    tabulate.table_region, error ≤ tabulate.TABLE_TOLERANCE; releases leaving the grid are rerun exactly); "auto"
+    (default) tabulates for moment methods when releases × RK4 steps ≥ tabulate.TABLE_RELEASE_STEPS.
     """
 
     if step_s is None and method in METHODS and METHODS[method].ensemble:
@@ -295,9 +309,14 @@ def spread_from_field(field: Any, releases: Any, times_s: Any, *, method: str = 
                       f"support (the data leave {100 * fraction:.0f} % of the prior velocity variance there), so "
                       "its forecast rests on the prior, not on observed flow", SupportWarning, stacklevel=2)
     sde = sde_from_field(field, diffusivity_m2_s=diffusivity_m2_s, decorrelation_time_s=decorrelation_time_s)
-    return spread_releases(sde, rels, times_s, method=obj, integrator=integrator, key=jax.random.key(int(seed)),
-                           frame=getattr(field, "frame", None), polygon_m=polygon_m, threshold=threshold,
-                           time_origin_utc=(getattr(field, "data_summary", None) or {}).get("time_origin_utc"))
+    steps = 0 if isinstance(obj, EulerMaruyama) else release_steps(len(rels), check_times(times_s), integrator.step_s)
+    table_sde = tabulated_sde(field, sde, np.stack([r.start_m for r in rels]), steps, posterior)
+    summary = getattr(field, "data_summary", None) or {}
+    return spread_releases(sde if table_sde is None else table_sde, rels, times_s, method=obj, integrator=integrator,
+                           key=jax.random.key(int(seed)), frame=getattr(field, "frame", None), polygon_m=polygon_m,
+                           threshold=threshold, time_origin_utc=summary.get("time_origin_utc"),
+                           fallback_sde=None if table_sde is None else sde)
+
 
 
 # ------------------------------------------------------------------ ellipses

@@ -11,7 +11,9 @@ accumulated chunk by chunk for any N (:func:`exact_q`); on a minibatch B scaled 
 N/|B| they give the target of a natural-gradient step θ ← (1 − γ)θ + γθ̂_B (Hensman,
 Fusi & Lawrence 2013, "Gaussian processes for big data", §3; γ = 1 on all data is
 the optimum itself).  All functions are pure and jit-able; shapes use M·d for the
-number of whitened inducing values.
+number of whitened inducing values.  The full-data passes (:func:`exact_q`, :func:`full_elbo`) compute
+their per-chunk statistics on every device of every process (driftwise.devices, jax.shard_map) and sum
+them on the host in chunk order, so the result does not depend on the number of devices.
 """
 
 from __future__ import annotations
@@ -23,10 +25,12 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 from jax.scipy.linalg import solve_triangular
+from jax.sharding import PartitionSpec
 
+from .. import devices
 from . import field as fld
 
-__all__ = ["CHUNK", "data_precision", "exact_q", "full_elbo", "natural_from_q", "natural_step", "q_from_natural"]
+__all__ = ["CHUNK", "chunk_statistics", "data_precision", "exact_q", "full_elbo", "natural_from_q", "natural_step", "q_from_natural"]
 
 CHUNK = 8192  # observations per chunk in the exact passes
 
@@ -55,8 +59,9 @@ def with_q(params: fld.FieldParams, mean: jax.Array, sqrt: jax.Array) -> fld.Fie
 
 
 def data_precision(params: fld.FieldParams, batch: fld.ObservationBatch, *,
-                   jitter_multiple) -> tuple[jax.Array, jax.Array]:
-    """(Σ_n Φ_nᵀ R_n⁻¹ Φ_n, Σ_n Φ_nᵀ R_n⁻¹ y_n) over ``batch``, Φ = K(X, Z) L_Z^{−T} (b·d, M·d).
+                   jitter_multiple, mask=None) -> tuple[jax.Array, jax.Array]:
+    """(Σ_n Φ_nᵀ R_n⁻¹ Φ_n, Σ_n Φ_nᵀ R_n⁻¹ y_n) over ``batch``, Φ = K(X, Z) L_Z^{−T} (b·d, M·d);
+    rows with ``mask`` (b,) 0 are left out (their weight R_n⁻¹ is multiplied by it).
 
     The likelihood's contribution to the natural parameters of q(w) (Titsias 2009, eq. 10 in
     whitened form): the optimal q on these observations alone has Λ = I + the first term
@@ -65,7 +70,8 @@ def data_precision(params: fld.FieldParams, batch: fld.ObservationBatch, *,
     chol = fld.inducing_cholesky(params, jitter_multiple=jitter_multiple)
     kzx = params.kernel.gram_matrix(params.inducing_m, batch.position_m)        # (M·d, b·d)
     phi_t = solve_triangular(chol, kzx, lower=True)                              # Φᵀ
-    weight = jnp.repeat(1.0 / fld.noise_variance_m2_s2(params, batch), batch.position_m.shape[1])
+    weight = 1.0 / fld.noise_variance_m2_s2(params, batch)
+    weight = jnp.repeat(weight if mask is None else weight * mask, batch.position_m.shape[1])
     return (phi_t * weight) @ phi_t.T, phi_t @ (weight * batch.velocity_m_s.reshape(-1))
 
 
@@ -83,13 +89,50 @@ def natural_step(params: fld.FieldParams, batch: fld.ObservationBatch, n_total, 
 
 
 natural_step_jit = jax.jit(natural_step, static_argnames=("jitter_multiple",))
-_chunk_precision = jax.jit(data_precision, static_argnames=("jitter_multiple",))
 
 
-@jax.jit(static_argnames=("jitter_multiple",))
-def _chunk_log_likelihood(params, batch, *, jitter_multiple):
+def _chunk_natural(params: fld.FieldParams, batch: fld.ObservationBatch, mask: jax.Array, jitter_multiple: float):
+    """:func:`data_precision` of one chunk whose rows with ``mask`` 0 (padding) count for nothing."""
+    return data_precision(params, batch, jitter_multiple=jitter_multiple, mask=mask)
+
+
+def _chunk_log_likelihood(params: fld.FieldParams, batch: fld.ObservationBatch, mask: jax.Array,
+                          jitter_multiple: float) -> jax.Array:
+    """Σ_n mask_n E_q log N(y_n | v(x_n), r_n I) over one chunk (nats)."""
     chol = fld.inducing_cholesky(params, jitter_multiple=jitter_multiple)
-    return jnp.sum(fld.expected_log_likelihood(params, batch, chol))
+    return jnp.sum(jnp.where(mask > 0, fld.expected_log_likelihood(params, batch, chol), 0.0))
+
+
+@jax.jit(static_argnames=("statistic", "jitter_multiple", "mesh"))
+def _per_chunk(params, chunked, mask, *, statistic, jitter_multiple, mesh):
+    """``statistic`` of every chunk (C, …), each device computing its own chunks (jax.shard_map)."""
+    def local(p, b, m):
+        return jax.lax.map(lambda bm: statistic(p, bm[0], bm[1], jitter_multiple), (b, m))
+
+    rows = PartitionSpec(devices.AXIS)
+    return jax.shard_map(local, mesh=mesh, in_specs=(PartitionSpec(), rows, rows), out_specs=rows)(params, chunked, mask)
+
+
+def chunk_statistics(statistic, params: fld.FieldParams, batch: fld.ObservationBatch, *,
+                     jitter_multiple: float, mesh=None):
+    """``statistic`` (a per-chunk function above) on every chunk of ``batch``, as numpy arrays (C, …).
+
+    The rows are cut into C = ⌈N / CHUNK⌉ chunks of equal size (the last padded with masked copies of
+    row 0), the chunks are split over the devices of ``mesh`` (default devices.mesh(): all devices of all
+    processes; padded with fully masked chunks to a multiple of its size) and gathered back, so the caller
+    sums them in chunk order: the same sum for any number of devices."""
+    over = devices.mesh() if mesh is None else mesh
+    n = batch.position_m.shape[0]
+    count = max(1, math.ceil(n / CHUNK))
+    size = math.ceil(n / count)
+    total = math.ceil(count / over.size) * over.size
+    idx = np.concatenate([np.arange(n), np.zeros(total * size - n, dtype=int)])
+    mask = (np.arange(total * size) < n).astype(np.float64).reshape(total, size)
+    chunked = jax.tree_util.tree_map(lambda a: devices.shard_rows(np.asarray(a)[idx].reshape((total, size) + a.shape[1:]),
+                                                                   over)[0], batch)
+    out = _per_chunk(devices.replicate(params, over), chunked, devices.shard_rows(mask, over)[0],
+                     statistic=statistic, jitter_multiple=jitter_multiple, mesh=over)
+    return jax.tree_util.tree_map(lambda a: devices.gather_rows(a, count), out)
 
 
 def take(batch: fld.ObservationBatch, idx) -> fld.ObservationBatch:
@@ -102,21 +145,23 @@ def chunks(n: int) -> list[np.ndarray]:
     return np.array_split(np.arange(n), max(1, math.ceil(n / CHUNK)))
 
 
-def exact_q(params: fld.FieldParams, batch: fld.ObservationBatch, *, jitter_multiple: float) -> fld.FieldParams:
-    """The ELBO-optimal q(w) on all of ``batch`` (any size), accumulated over chunks of ≤ 8192 rows."""
-    size = params.q_mean.shape[0]
-    lam, eta = jnp.eye(size), jnp.zeros(size)
-    for idx in chunks(batch.position_m.shape[0]):
-        d_lam, d_eta = _chunk_precision(params, take(batch, idx), jitter_multiple=jitter_multiple)
+def exact_q(params: fld.FieldParams, batch: fld.ObservationBatch, *, jitter_multiple: float,
+            mesh=None) -> fld.FieldParams:
+    """The ELBO-optimal q(w) on all of ``batch`` (any size): Λ = I + Σ_chunks ΦᵀR⁻¹Φ, η = Σ_chunks ΦᵀR⁻¹y
+    (Titsias 2009, eq. 10), the chunks' statistics computed on all devices (:func:`chunk_statistics`)
+    and summed in chunk order."""
+    lam_chunks, eta_chunks = chunk_statistics(_chunk_natural, params, batch, jitter_multiple=jitter_multiple,
+                                              mesh=mesh)
+    lam, eta = np.eye(params.q_mean.shape[0]), np.zeros(params.q_mean.shape[0])
+    for d_lam, d_eta in zip(lam_chunks, eta_chunks):
         lam, eta = lam + d_lam, eta + d_eta
-    return with_q(params, *q_from_natural(lam, eta))
+    return with_q(params, *q_from_natural(jnp.asarray(lam), jnp.asarray(eta)))
 
 
-def full_elbo(params: fld.FieldParams, batch: fld.ObservationBatch, *, jitter_multiple: float) -> float:
-    """ELBO over all observations: Σ_n E_q log N(y_n | v(x_n), R_n) − KL(q ‖ p) (nats), chunked."""
-    total = sum(float(_chunk_log_likelihood(params, take(batch, idx), jitter_multiple=jitter_multiple))
-                for idx in chunks(batch.position_m.shape[0]))
-    return total - float(fld.kl_divergence(params))
+def full_elbo(params: fld.FieldParams, batch: fld.ObservationBatch, *, jitter_multiple: float, mesh=None) -> float:
+    """ELBO over all observations: Σ_n E_q log N(y_n | v(x_n), R_n) − KL(q ‖ p) (nats), chunked over all devices."""
+    per_chunk = chunk_statistics(_chunk_log_likelihood, params, batch, jitter_multiple=jitter_multiple, mesh=mesh)
+    return float(sum(float(v) for v in per_chunk)) - float(fld.kl_divergence(params))
 
 
 @jax.jit(static_argnames=("jitter_multiple",))

@@ -1,0 +1,275 @@
+"""A fitted field's posterior tabulated once on a regular grid and interpolated (many releases).
+
+The exact posterior costs O((M·d)²) per point (sde.PointPosterior); a spread of R releases evaluates it at
+every sigma point of every RK4 stage.  Here the posterior mean μ(x) (d,) m/s and the Cholesky factor C(x)
+of the posterior covariance Σ(x) = C Cᵀ (d, d) m²/s² are evaluated once at the nodes of a regular grid
+and interpolated by **tensor-product cubic Hermite** interpolation (Birkhoff, Schultz & Varga 1968,
+"Piecewise Hermite interpolation in one and two variables"):
+
+    f(x) ≈ Σ_corners Σ_{S ⊆ axes} ∂_S f(node) · Π_{a ∈ S} h_a · Π_a H_{c_a, [a ∈ S]}(t_a),
+
+with t ∈ [0, 1]^d the position inside the cell, h_a the spacing (m) and the 1-D Hermite basis
+H_{0,0} = 2t³ − 3t² + 1, H_{1,0} = 3t² − 2t³ (values) and H_{0,1} = t³ − 2t² + t, H_{1,1} = t³ − t²
+(slopes).  The derivatives ∂_S f at the nodes (all mixed partials, 2^d per channel) are exact, by nested
+``jax.jvp`` through the posterior.  Why cubic Hermite and not bilinear: the moment equations use the drift's
+gradient (Linearize's Jacobian; cubature's differences across √P), and bilinear interpolation has a
+piecewise-constant, O(h) gradient, while this interpolant is C¹ with value error O(h⁴) and gradient
+error O(h³), so a coarse grid (a few nodes per length scale) suffices.  Why the Cholesky factor: C is
+interpolated and Σ = C Cᵀ formed after, so the tabulated covariance is positive semi-definite at every x
+by construction (no eigenvalue clipping); C is smooth wherever Σ is positive definite.
+
+Accuracy is measured, not assumed: :func:`tabulate_field` evaluates the exact posterior at random
+off-grid points and refines the grid (n → 2n − 1 nodes per axis) until
+
+    mean error  max ‖C⁻¹ (μ_table − μ)‖          (in posterior standard deviations)  ≤ tolerance,
+    cov error   max ‖Σ_table − Σ‖_F / ‖Σ‖_F                                        ≤ tolerance,
+
+and records both measured maxima in the table.  Outside the grid the table returns NaN (and ``inside``
+says so): it never extrapolates; :func:`driftwise.dynamics.spread.spread_from_field` reruns releases
+that left the grid with the exact posterior.  The field is steady; a time-varying field would add a
+time axis to the grid (a later step).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import itertools
+from dataclasses import dataclass
+from dataclasses import field as _dataclass_field
+from functools import partial
+from typing import Any
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from ..errors import InputError
+from .moments import psd_cholesky
+from .sde import SDE, PointPosterior
+
+__all__ = ["TabulatedPosterior", "on_table", "tabulate_field", "tabulation_errors", "release_steps", "table_region",
+           "tabulated_sde"]
+
+NODE_BLOCK = 256      # nodes per compiled evaluation block while building a table
+CHECK_POINTS = 2000   # random off-grid points on which the error is measured
+MAX_NODES = 400_000   # refinement stops here (a 2-D 632² or 3-D 73³ grid)
+
+
+def _kinds(d: int) -> list[tuple[int, ...]]:
+    """The 2^d derivative kinds (k_0, …, k_{d−1}) ∈ {0, 1}^d in C order: k_a = 1 means ∂/∂x_a."""
+    return list(itertools.product((0, 1), repeat=d))
+
+
+def _hermite_basis(t: jax.Array) -> jax.Array:
+    """(2, 2) cubic Hermite basis at t ∈ [0, 1]: [corner c, kind k] (k = 0 value, k = 1 unit-cell slope)."""
+    t2, t3 = t * t, t * t * t
+    return jnp.array([[2 * t3 - 3 * t2 + 1, t3 - 2 * t2 + t], [3 * t2 - 2 * t3, t3 - t2]])
+
+
+@jax.tree_util.register_dataclass
+@dataclass(frozen=True)
+class TabulatedPosterior:
+    """Posterior mean and covariance interpolated from a grid; same interface as sde.PointPosterior.
+
+    origin_m (d,) m: the grid's lowest corner; spacing_m (d,) m; values (n_0, …, n_{d−1}, 2^d, C):
+    per node the channels f = (μ (d,) m/s, lower triangle of C (d(d+1)/2,) m/s) and their mixed
+    partials ∂_S f · Π_{a∈S} h_a (same units) for the kinds of :func:`_kinds`; mean_error (s.d.) and
+    cov_error (relative) are the maxima measured on random off-grid points when the table was built.
+    ``dim`` is static (and tells this class's treedef apart from PointPosterior's).
+    """
+
+    origin_m: jax.Array
+    spacing_m: jax.Array
+    values: jax.Array
+    mean_error: jax.Array
+    cov_error: jax.Array
+    dim: int = _dataclass_field(metadata=dict(static=True))
+
+    @property
+    def shape(self) -> tuple[int, ...]:
+        """Nodes per axis."""
+        return tuple(self.values.shape[: self.dim])
+
+    @property
+    def region_max_m(self) -> jax.Array:
+        """The grid's highest corner (d,) m."""
+        return self.origin_m + self.spacing_m * (jnp.asarray(self.shape) - 1)
+
+    def inside(self, x: jax.Array) -> jax.Array:
+        """True where x (d,) m lies on the grid (boundary included)."""
+        u = (x - self.origin_m) / self.spacing_m
+        return jnp.all((u >= 0) & (u <= jnp.asarray(self.shape) - 1))
+
+    def channels_at(self, x: jax.Array) -> jax.Array:
+        """Interpolated channels (C,) at x (d,) m (module docstring's formula); NaN off the grid."""
+        d, n = self.dim, jnp.asarray(self.shape)
+        u = (x - self.origin_m) / self.spacing_m
+        cell = jnp.clip(jnp.floor(u), 0, n - 2).astype(jnp.int32)
+        basis = [_hermite_basis(u[a] - cell[a]) for a in range(d)]             # each (2 corners, 2 kinds)
+        weight = basis[0]
+        for b in basis[1:]:
+            weight = weight[..., None, None] * b                                 # (c0, k0, c1, k1, …)
+        order = list(range(0, 2 * d, 2)) + list(range(1, 2 * d, 2))
+        weight = jnp.transpose(weight, order).reshape(-1)                         # (corners · kinds,)
+        start = tuple(cell) + (jnp.int32(0), jnp.int32(0))
+        block = jax.lax.dynamic_slice(self.values, start, (2,) * d + self.values.shape[d:])
+        out = weight @ block.reshape(weight.shape[0], -1)
+        return jnp.where(self.inside(x), out, jnp.nan)
+
+    def mean_at(self, x: jax.Array) -> jax.Array:
+        """Posterior mean velocity at x (d,) m → (d,) m/s (NaN off the grid)."""
+        return self.channels_at(x)[: self.dim]
+
+    def cov_at(self, x: jax.Array) -> jax.Array:
+        """Posterior velocity covariance at x (d,) m → (d, d) m²/s², C Cᵀ (PSD; NaN off the grid)."""
+        d = self.dim
+        rows, cols = np.tril_indices(d)
+        chol = jnp.zeros((d, d), self.values.dtype).at[rows, cols].set(self.channels_at(x)[d:])
+        return chol @ chol.T
+
+
+def _channels(posterior: PointPosterior, x: jax.Array) -> jax.Array:
+    """f(x) = (μ(x), tril C(x)) with Σ = C Cᵀ (moments.psd_cholesky), shape (d + d(d+1)/2,)."""
+    rows, cols = np.tril_indices(x.shape[-1])
+    return jnp.concatenate([posterior.mean_at(x), psd_cholesky(posterior.cov_at(x))[rows, cols]])
+
+
+def _node_values(posterior: PointPosterior, spacing_m: jax.Array, x: jax.Array) -> jax.Array:
+    """(2^d, C): ∂_S f(x) · Π_{a∈S} h_a for every kind S of :func:`_kinds`, by nested forward-mode derivatives.
+
+    Differentiating the stack [f, ∂f, …] along one axis at a time (last axis first) doubles it per axis
+    and leaves it in the C order of :func:`_kinds`; one pass shares all primal work (about 2^d × f's cost).
+    """
+    d = x.shape[-1]
+    fn = lambda y: _channels(posterior, y)[None]  # noqa: E731
+    for a in reversed(range(d)):
+        step = jnp.zeros(d, x.dtype).at[a].set(spacing_m[a])
+        fn = partial(lambda g, v, y: jnp.concatenate(jax.jvp(g, (y,), (v,))), fn, step)
+    return fn(x)
+
+
+@jax.jit
+def _node_block(posterior: PointPosterior, spacing_m: jax.Array, nodes_m: jax.Array) -> jax.Array:
+    return jax.vmap(partial(_node_values, posterior, spacing_m))(nodes_m)
+
+
+@jax.jit
+def _exact_moments(posterior: PointPosterior, points_m: jax.Array) -> tuple[jax.Array, jax.Array]:
+    return jax.vmap(posterior.mean_at)(points_m), jax.vmap(posterior.cov_at)(points_m)
+
+
+@jax.jit
+def _table_moments(table: TabulatedPosterior, points_m: jax.Array) -> tuple[jax.Array, jax.Array]:
+    return jax.vmap(table.mean_at)(points_m), jax.vmap(table.cov_at)(points_m)
+
+
+def _build(posterior: PointPosterior, lo: np.ndarray, hi: np.ndarray, n: int) -> TabulatedPosterior:
+    """The table on n nodes per axis over [lo, hi] (errors still unmeasured: NaN)."""
+    d = lo.size
+    axes = [np.linspace(lo[a], hi[a], n) for a in range(d)]
+    nodes = np.stack(np.meshgrid(*axes, indexing="ij"), -1).reshape(-1, d)
+    pad = (-len(nodes)) % NODE_BLOCK
+    padded = np.concatenate([nodes, np.repeat(nodes[-1:], pad, 0)])
+    spacing = jnp.asarray((hi - lo) / (n - 1))
+    blocks = [_node_block(posterior, spacing, jnp.asarray(padded[i:i + NODE_BLOCK]))
+              for i in range(0, len(padded), NODE_BLOCK)]
+    values = jnp.concatenate(blocks)[: len(nodes)]
+    values = values.reshape((n,) * d + values.shape[1:])
+    nan = jnp.asarray(np.nan)
+    return TabulatedPosterior(jnp.asarray(lo), spacing, values, nan, nan, d)
+
+
+def tabulation_errors(table: TabulatedPosterior, posterior: PointPosterior, points_m: Any) -> tuple[np.ndarray, np.ndarray]:
+    """Per point (n,): mean error ‖C⁻¹(μ_table − μ)‖ in posterior s.d. and cov error ‖Σ_table − Σ‖_F/‖Σ‖_F."""
+    points = jnp.asarray(points_m, jnp.float64)
+    mean, cov = _exact_moments(posterior, points)
+    mean_t, cov_t = _table_moments(table, points)
+    chol = np.linalg.cholesky(np.asarray(cov) + 1e-300 * np.eye(points.shape[-1]))
+    white = np.linalg.solve(chol, (np.asarray(mean_t) - np.asarray(mean))[..., None])[..., 0]
+    cov_rel = np.linalg.norm(np.asarray(cov_t) - np.asarray(cov), axis=(-2, -1)) / np.linalg.norm(np.asarray(cov), axis=(-2, -1))
+    return np.linalg.norm(white, axis=-1), cov_rel
+
+
+def _check_region(region_min_m: Any, region_max_m: Any, dim: int) -> tuple[np.ndarray, np.ndarray]:
+    lo, hi = np.asarray(region_min_m, np.float64).ravel(), np.asarray(region_max_m, np.float64).ravel()
+    if lo.size != dim or hi.size != dim or not (np.all(np.isfinite(lo)) and np.all(np.isfinite(hi))):
+        raise InputError(f"tabulate: region_min_m and region_max_m must be {dim} finite numbers (metres) each")
+    if np.any(hi <= lo):
+        raise InputError(f"tabulate: region_max_m {hi.tolist()} must exceed region_min_m {lo.tolist()} on every axis")
+    return lo, hi
+
+
+def tabulate_field(field: Any, region_min_m: Any, region_max_m: Any, *, tolerance: float = 0.05,
+                   start_nodes: int = 9, max_nodes: int = MAX_NODES, seed: int = 0) -> TabulatedPosterior:
+    """Tabulate ``field``'s posterior (a FlowField or a PointPosterior) on [region_min_m, region_max_m] (d,) m.
+
+    Starts with ``start_nodes`` per axis and refines (n → 2n − 1) until the mean error (posterior s.d.)
+    and the covariance error (relative, Frobenius) measured on ``CHECK_POINTS`` uniform random points
+    (seeded by ``seed``) are both ≤ ``tolerance``.  Raises InputError when that needs more than
+    ``max_nodes`` nodes.  The returned table carries the measured maxima (``mean_error``, ``cov_error``).
+    """
+    posterior = field if isinstance(field, PointPosterior) else PointPosterior.from_field(field)
+    dim = int(posterior.inducing_m.shape[-1])
+    lo, hi = _check_region(region_min_m, region_max_m, dim)
+    if not (0.0 < float(tolerance) < 1.0):
+        raise InputError(f"tabulate: tolerance must be in (0, 1), got {tolerance!r}")
+    points = lo + (hi - lo) * np.random.default_rng(seed).uniform(size=(CHECK_POINTS, dim))
+    n = max(2, int(start_nodes))
+    while True:
+        table = _build(posterior, lo, hi, n)
+        mean_err, cov_err = (float(np.max(e)) for e in tabulation_errors(table, posterior, points))
+        if mean_err <= tolerance and cov_err <= tolerance:
+            return TabulatedPosterior(table.origin_m, table.spacing_m, table.values, jnp.asarray(mean_err),
+                                      jnp.asarray(cov_err), dim)
+        if (2 * n - 1) ** dim > max_nodes:
+            raise InputError(f"tabulate: {n}^{dim} nodes leave a mean error of {mean_err:.3g} s.d. and a covariance "
+                             f"error of {cov_err:.3g} (tolerance {tolerance}); refining needs more than {max_nodes} "
+                             "nodes: shrink the region or use the exact posterior")
+        n = 2 * n - 1
+
+
+# ------------------------------------------------------------------ when and where spread uses a table
+TABLE_TOLERANCE = 0.05          # mean error (posterior s.d.) and relative covariance error of an automatic table
+TABLE_RELEASE_STEPS = 20_000    # releases × RK4 steps from which a spread tabulates: ≈ 1.5 × the measured break-even
+                                # (table build time × exact release-steps/s ≈ 1.3·10⁴, bench_tabulate.py)
+REGION_MARGIN = 0.25            # the grid extends the releases' and data's box by this fraction of its span
+
+
+def release_steps(n_releases: int, times_s: Any, step_s: float) -> int:
+    """R × the number of RK4 steps of a forecast to ``times_s[-1]`` s at ``step_s`` s (moments.substep_counts)."""
+    spans = np.diff(np.asarray(times_s, np.float64))
+    return int(n_releases) * int(np.sum(np.maximum(1, np.ceil(spans / float(step_s) * (1.0 - 1e-12)))))
+
+
+def table_region(starts_m: Any, extent_m: dict | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """Grid box (lo, hi) (d,) m: the box of the release starts and the data extent (a model's
+    ``data_summary["extent_m"]``, if known), widened by REGION_MARGIN of its span on each side (at least 1 m)."""
+    starts = np.atleast_2d(np.asarray(starts_m, np.float64))
+    lo, hi = starts.min(axis=0), starts.max(axis=0)
+    if extent_m:
+        lo = np.minimum(lo, np.asarray(extent_m["min"], np.float64)[: lo.size])
+        hi = np.maximum(hi, np.asarray(extent_m["max"], np.float64)[: hi.size])
+    margin = np.maximum(REGION_MARGIN * np.max(hi - lo), 1.0)
+    return lo - margin, hi + margin
+
+
+def tabulated_sde(field: Any, sde: SDE, starts_m: Any, n_release_steps: int, posterior: str = "auto") -> SDE | None:
+    """The field SDE ``sde`` (sde.sde_from_field) on a table of ``field`` over table_region(starts_m, data
+    extent) with error ≤ TABLE_TOLERANCE, or None for the exact posterior.  ``posterior``: "exact" → None;
+    "table" → a table; "auto" → a table when ``n_release_steps`` ≥ TABLE_RELEASE_STEPS (0 means: a method
+    that cannot use one, e.g. the ensemble, whose particles would leave any grid one by one)."""
+    if posterior not in ("auto", "exact", "table"):
+        raise InputError(f"posterior: use 'auto', 'exact' or 'table', got {posterior!r}")
+    if posterior == "exact" or n_release_steps == 0 or (posterior == "auto" and n_release_steps < TABLE_RELEASE_STEPS):
+        return None
+    lo, hi = table_region(starts_m, (getattr(field, "data_summary", None) or {}).get("extent_m"))
+    return on_table(sde, tabulate_field(field, lo, hi, tolerance=TABLE_TOLERANCE))
+
+
+def on_table(sde: SDE, table: TabulatedPosterior) -> SDE:
+    """A field SDE (sde.field_sde: drift and diffusion are ``Partial(f, posterior, *rest)``) with its
+    posterior replaced by ``table``; K, τ and the velocity memory stay."""
+    def swap(fn: Any) -> Any:
+        return jax.tree_util.Partial(fn.func, table, *fn.args[1:])
+
+    return dataclasses.replace(sde, drift=swap(sde.drift), diffusion=swap(sde.diffusion))

@@ -1,0 +1,191 @@
+"""The tabulated posterior (dynamics/tabulate.py) against the exact one, and forecasts with it.
+
+Outside references: the tensor-product cubic Hermite interpolant reproduces bicubic polynomials exactly
+and its error falls as h⁴ (Birkhoff, Schultz & Varga 1968, "Piecewise Hermite interpolation in one and two
+variables", Numer. Math. 11); the exact posterior is the sparse GP's predictive (Titsias 2009), evaluated
+by FlowField.predict; the bound on a forecast's mean error from a drift error uses Gronwall's inequality.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import sys
+import warnings
+from pathlib import Path
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+import pytest
+
+import driftwise
+from driftwise.dynamics import spread as spreadmod
+from driftwise.dynamics import tabulate
+from driftwise.dynamics.sde import PointPosterior
+from driftwise.errors import InputError
+from driftwise.gp import field as fieldmod
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+from sharding_worker import small_field  # noqa: E402
+
+TOL = 0.05   # the stated tolerance: mean error in posterior s.d., covariance error relative (Frobenius)
+LO, HI = np.array([-2000.0, -2000.0]), np.array([12_000.0, 12_000.0])
+
+
+@pytest.fixture(scope="module")
+def field():
+    return small_field()
+
+
+@pytest.fixture(scope="module")
+def table(field):
+    return tabulate.tabulate_field(field, LO, HI, tolerance=TOL)
+
+
+@jax.tree_util.register_dataclass
+@dataclasses.dataclass(frozen=True)
+class PolynomialPosterior:
+    """A stand-in posterior with mean (p(x), q(x)) bicubic polynomials and Σ = C Cᵀ with C linear in x."""
+
+    scale: jax.Array
+
+    def mean_at(self, x):
+        u, v = x / self.scale
+        return jnp.array([1 + u - 2 * v + u * v + u**3 * v**2 - v**3, u**2 * v**3 + 2 * u**3 - u * v])
+
+    def cov_at(self, x):
+        u, v = x / self.scale
+        c = jnp.array([[2.0 + u, 0.0], [0.5 * v, 1.5 - 0.3 * u]])
+        return c @ c.T
+
+
+def test_hermite_table_reproduces_bicubic_polynomials_exactly():
+    """Bicubic polynomials lie in the interpolant's space (Birkhoff et al. 1968): error at rounding level."""
+    post = PolynomialPosterior(jnp.asarray(1000.0))
+    table = tabulate._build(post, np.zeros(2), np.array([1000.0, 1000.0]), 5)
+    x = jnp.asarray(np.random.default_rng(3).uniform(0.0, 1000.0, size=(200, 2)))
+    np.testing.assert_allclose(jax.vmap(table.mean_at)(x), jax.vmap(post.mean_at)(x), rtol=0, atol=1e-12)
+    np.testing.assert_allclose(jax.vmap(table.cov_at)(x), jax.vmap(post.cov_at)(x), rtol=0, atol=1e-12)
+
+
+def test_error_falls_as_the_fourth_power_of_the_spacing(field):
+    """Halving h divides the cubic Hermite error by 2⁴ = 16 (Birkhoff et al. 1968); measured ratio 10–24."""
+    post = PointPosterior.from_field(field)
+    points = LO + (HI - LO) * np.random.default_rng(4).uniform(size=(1500, 2))
+    errors = [np.max(tabulate.tabulation_errors(tabulate._build(post, LO, HI, n), post, points)[0]) for n in (9, 17)]
+    assert 10.0 < errors[0] / errors[1] < 24.0
+
+
+def test_table_matches_the_exact_posterior_on_fresh_random_points(field, table):
+    """Measured on 3000 new random points against FlowField.predict (the exact predictive, Titsias 2009)."""
+    points = LO + (HI - LO) * np.random.default_rng(11).uniform(size=(3000, 2))
+    mean, cov = field.predict(points)
+    mean_t = jax.vmap(table.mean_at)(jnp.asarray(points))
+    cov_t = jax.vmap(table.cov_at)(jnp.asarray(points))
+    white = np.linalg.solve(np.linalg.cholesky(cov), (np.asarray(mean_t) - mean)[..., None])[..., 0]
+    assert np.max(np.linalg.norm(white, axis=-1)) <= TOL
+    rel = np.linalg.norm(np.asarray(cov_t) - cov, axis=(1, 2)) / np.linalg.norm(cov, axis=(1, 2))
+    assert np.max(rel) <= TOL
+    assert float(table.mean_error) <= TOL and float(table.cov_error) <= TOL       # recorded by the builder
+    assert np.min(np.linalg.eigvalsh(np.asarray(cov_t))) >= 0.0                  # C Cᵀ: PSD by construction
+
+
+@pytest.mark.slow
+def test_three_dimensional_table_meets_the_tolerance():
+    grid = np.linspace(0.0, 4000.0, 3)
+    z = np.stack(np.meshgrid(grid, grid, grid, indexing="ij"), -1).reshape(-1, 3)
+    params = fieldmod.init_params("helmholtz", 3, z, velocity_scale_m_s=0.1, length_scale_m=2000.0,
+                                  diffusivity_m2_s=1.0)
+    rng = np.random.default_rng(5)
+    xyz = rng.uniform(0.0, 4000.0, size=(200, 3))
+    batch = fieldmod.ObservationBatch(xyz, 0.05 * np.sin(xyz / 1500.0) + 0.005 * rng.normal(size=xyz.shape),
+                                      np.full(200, 2.0 / 600.0), np.full(200, 2.0 * 5.0**2 / 600.0**2))
+    field3 = fieldmod.FlowField.from_params(fieldmod.optimal_q(params, batch))
+    table = tabulate.tabulate_field(field3, [-500.0] * 3, [4500.0] * 3, tolerance=TOL)
+    points = rng.uniform(-500.0, 4500.0, size=(1000, 3))
+    mean_err, cov_err = tabulate.tabulation_errors(table, PointPosterior.from_field(field3), points)
+    assert np.max(mean_err) <= TOL and np.max(cov_err) <= TOL
+
+
+def test_off_the_grid_is_a_flag_never_an_extrapolation(table):
+    outside = jnp.array([HI[0] + 1.0, 5000.0])
+    assert not bool(table.inside(outside)) and bool(table.inside(jnp.asarray(HI)))
+    assert np.all(np.isnan(np.asarray(table.mean_at(outside)))) and np.all(np.isnan(np.asarray(table.cov_at(outside))))
+
+
+def drift_lipschitz(field, points) -> float:
+    """max ‖∂μ/∂x‖₂ (1/s) of the exact posterior mean over ``points``."""
+    post = PointPosterior.from_field(field)
+    jac = jax.vmap(jax.jacfwd(post.mean_at))(jnp.asarray(points))
+    return float(np.max(np.linalg.norm(np.asarray(jac), ord=2, axis=(1, 2))))
+
+
+@pytest.mark.slow
+def test_forecast_with_the_table_agrees_with_the_exact_forecast(field, table):
+    """Propagated tolerance: a drift error |δμ| ≤ ε σ_max (ε the table's measured mean error, σ_max the largest
+    posterior velocity s.d.) moves the mean ODE's solution by at most ε σ_max (e^{Lt} − 1)/L (Gronwall;
+    L = max ‖∂μ/∂x‖ over the region); divided by the forecast's smallest s.d. √λ_min(P(t)) that is the bound
+    asserted on the whitened mean difference at every output time, alongside the stated tolerance itself.
+    The covariances must agree within the tolerance (D's error ≤ ε relative; the gradient error is O(h³))."""
+    starts = np.random.default_rng(8).uniform(1000.0, 9000.0, size=(24, 2))
+    times = np.arange(0.0, 13.0) * 3600.0
+    exact = spreadmod.spread_from_field(field, starts, times, posterior="exact")
+    tab = spreadmod.spread_from_field(field, starts, times, posterior="table")
+    points = LO + (HI - LO) * np.random.default_rng(9).uniform(size=(2000, 2))
+    lipschitz = drift_lipschitz(field, points)
+    sigma_max = np.sqrt(np.max(np.linalg.eigvalsh(field.predict(points)[1])))
+    eps = max(float(table.mean_error), 1e-12)
+    t = times[1:]
+    bound = eps * sigma_max * np.expm1(lipschitz * t) / lipschitz / np.sqrt(np.linalg.eigvalsh(exact.covs[:, 1:])[..., 0])
+    diff = (tab.means - exact.means)[:, 1:, :, None]
+    white = np.linalg.norm(np.linalg.solve(np.linalg.cholesky(exact.covs[:, 1:]), diff)[..., 0], axis=-1)
+    assert np.all(white <= bound) and np.max(white) <= TOL
+    rel = np.linalg.norm(tab.covs[:, 1:] - exact.covs[:, 1:], axis=(-2, -1)) / np.linalg.norm(exact.covs[:, 1:], axis=(-2, -1))
+    assert np.max(rel) <= TOL
+
+
+@pytest.mark.slow
+def test_auto_choice_and_the_exact_rerun_off_the_grid(field, monkeypatch):
+    starts = np.array([[5000.0, 5000.0], [8000.0, 5000.0]])
+    times = np.arange(0.0, 4.0) * 3600.0
+    exact = spreadmod.spread_from_field(field, starts, times, posterior="exact")
+    monkeypatch.setattr(tabulate, "REGION_MARGIN", 0.0)   # box = data extent ∪ starts: the far start on its edge
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        monkeypatch.setattr(tabulate, "TABLE_RELEASE_STEPS", 1)    # auto → table
+        auto = spreadmod.spread_from_field(field, np.array([[5000.0, 5000.0], [25_000.0, 5000.0]]), times)
+    assert any("1 of 2 releases left the tabulated region" in str(w.message) for w in caught)
+    far = spreadmod.spread_from_field(field, [[25_000.0, 5000.0]], times, posterior="exact")
+    np.testing.assert_allclose(auto.means[1], far.means[0], rtol=1e-12, atol=0)  # rerun exactly, same numbers
+    monkeypatch.setattr(tabulate, "TABLE_RELEASE_STEPS", 10**9)    # auto → exact
+    again = spreadmod.spread_from_field(field, starts, times)
+    np.testing.assert_array_equal(again.means, exact.means)
+
+
+def test_bad_region_and_options_are_input_errors(field):
+    with pytest.raises(InputError, match="region_max_m"):
+        tabulate.tabulate_field(field, [0.0, 0.0], [0.0, 10.0])
+    with pytest.raises(InputError, match="2 finite numbers"):
+        tabulate.tabulate_field(field, [0.0], [1.0])
+    with pytest.raises(InputError, match="more than 10 nodes"):
+        tabulate.tabulate_field(field, LO, HI, tolerance=1e-9, start_nodes=3, max_nodes=10)
+    with pytest.raises(InputError, match="posterior"):
+        spreadmod.spread_from_field(field, [[1.0, 1.0]], [0.0, 3600.0], posterior="grid")
+
+
+@pytest.mark.slow
+def test_cli_exact_flag_forces_the_direct_path(field, run_cli, tmp_path, monkeypatch):
+    """With the threshold at 1 release-step the default path tabulates; --exact gives the API's exact numbers."""
+    path = tmp_path / "model.npz"
+    driftwise.save(field, path)
+    monkeypatch.setattr(tabulate, "TABLE_RELEASE_STEPS", 1)
+    argv = ["spread", path, "--release", "4000,5000", "--horizon", "3h", "--every", "1h", "--json"]
+    results = {}
+    for name, extra in (("auto", []), ("exact", ["--exact"])):
+        code, out, err = run_cli(*argv, *extra)
+        assert code == 0, err
+        results[name] = np.asarray(json.loads(out)["releases"][0]["mean"])
+    exact = spreadmod.spread_from_field(field, [[4000.0, 5000.0]], np.arange(4.0) * 3600.0, posterior="exact")
+    np.testing.assert_allclose(results["exact"], exact.means[0], rtol=1e-12, atol=1e-9)
+    assert 0.0 < np.max(np.abs(results["auto"] - exact.means[0])) < 1.0      # the table's (small) difference, metres
