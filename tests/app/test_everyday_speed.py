@@ -124,6 +124,7 @@ def test_stopwatch_adds_up_stages_and_counts_a_failed_one():
     assert "read" in text and "750 ms" in text and "27.3 %" in text and "2.75 s" in text
 
 
+@pytest.mark.slow
 def test_fit_json_has_a_timing_table(run_cli, tmp_path):
     path = tmp_path / "walk.csv"
     synthetic.random_walk(4, 30, fix_interval_s=600.0, diffusivity_m2_s=1.0, seed=1,

@@ -22,6 +22,8 @@ import pytest
 
 from driftwise.data import synthetic
 
+pytestmark = pytest.mark.slow   # fits at two scales and a tank check: minutes on a shared 2-core machine
+
 # a printed value that hides a small number behind zeros, in any unit
 HIDDEN_ZERO = re.compile(r"(?<![\d.])0\.0+ (?:km|h|m)\b|\((?:0, )+0\) m|(?<![\d.])0 m x 0 m|0\.000\d+ h")
 
