@@ -237,6 +237,60 @@ def test_verdict_booleans_follow_the_area_test():
     assert "Benjamini-Hochberg" in out["rule"]
 
 
+def test_a_swamped_split_makes_both_answers_undetermined():
+    """The issue's tank case: nothing significant and a divergent share of 0.509 ± 9875.948 (the 95 % interval,
+    ± 1.96 s.d. of a normal, covers both ≤ 0.1 and ≥ 0.5 for either share) → undetermined, never yes and yes."""
+    nothing = P.Significance(np.zeros(5, dtype=bool), math.inf, 0.8, 0.05)
+    thin = P.HelmholtzSplit(0.509, 9875.948, (0.0, 1.0), 40)
+    out = V.decide(nothing, nothing, thin, None)
+    assert out["divergence_free"] is None and out["curl_free"] is None
+    assert out["answers"] == {"divergence_free": "undetermined", "curl_free": "undetermined"}
+    assert out["reasons"]["divergence_free"][0].startswith("undetermined: no cell is significant, but the divergent "
+                                                           "share of the velocity variance is 0.509 ± 9.88e+03")
+    assert "rotational share" in out["reasons"]["curl_free"][0] and "undetermined" in out["rule"]
+    # a significant cell is a "no" whatever the split
+    some = P.Significance(np.array([True, False]), 3.0, 4.0, 0.05)
+    assert V.decide(some, nothing, thin, None)["answers"] == {"divergence_free": "no", "curl_free": "undetermined"}
+
+
+@pytest.mark.parametrize(("fraction", "std", "answers"), [
+    (0.02, 0.03, ("yes", "yes")),               # 95 %: −0.04…0.08 and 0.92…1.04: both known (a uniform stream)
+    (0.05, 0.25, ("undetermined", "yes")),      # divergent −0.44…0.54: both none and half; rotational 0.46…1.44
+    (0.50, 0.10, ("yes", "yes")),               # 0.30…0.70 starts above 0.1: neither share can be ~0 — the area
+                                                #   test alone speaks (its calibration, test_verdict_calibration)
+    (0.95, 0.30, ("yes", "undetermined")),     # divergent 0.36…1.54 never ~0; rotational −0.54…0.64 both
+    (math.nan, math.nan, ("undetermined", "undetermined")),   # zero posterior mean: no split at all
+])
+def test_undetermined_rule_boundaries(fraction, std, answers):
+    """Rule 4 of driftwise.diagnostics.verdict: a "yes" is undetermined when share ± 1.959964 s.d. (the 97.5 %
+    normal quantile, scipy.stats.norm.ppf(0.975)) reaches both ≤ 0.1 and ≥ 0.5."""
+    nothing = P.Significance(np.zeros(5, dtype=bool), math.inf, 0.8, 0.05)
+    reason = None if math.isfinite(fraction) else "the posterior mean velocity is zero on the hull"
+    split = P.HelmholtzSplit(fraction, std, (0.0, 1.0), 40, reason)
+    out = V.decide(nothing, nothing, split, None)
+    assert (out["answers"]["divergence_free"], out["answers"]["curl_free"]) == answers
+    assert out["divergence_free"] is {"yes": True, "undetermined": None}[answers[0]]
+    # a split fixed by a constrained model (reason set, finite share) never makes a verdict undetermined
+    fixed = P.HelmholtzSplit(0.0, 0.0, (0.0, 0.0), 0, "divergence-free by construction")
+    assert V.decide(nothing, nothing, fixed, None)["answers"]["curl_free"] == "yes"
+
+
+def test_identical_elbos_mean_the_families_cannot_be_told_apart():
+    same = {name: {"elbo": -12345.6 + 0.3 * i, "heldout_log_likelihood": -3000.0 + 0.1 * i}
+            for i, name in enumerate(V.FAMILIES)}
+    found = V.families_distinguishable(same)
+    assert found["distinguishable"] is False
+    assert found["elbo_spread_nats"] == pytest.approx(0.9) and found["tolerance_nats"] == 1.0
+    assert V.evidence_reading(same).startswith("The data cannot tell the families apart: their ELBOs agree within "
+                                               "0.9 nats (tolerance 1 nats)")
+    # relative tolerance 1e-6 for large ELBOs: 5 nats apart at 1e7 nats is within it
+    big = {name: {"elbo": 1e7 + 5.0 * i, "heldout_log_likelihood": 0.0} for i, name in enumerate(V.FAMILIES[:2])}
+    assert V.families_distinguishable(big)["distinguishable"] is False
+    apart = dict(same, independent={"elbo": -12300.0, "heldout_log_likelihood": -2990.0})
+    assert V.families_distinguishable(apart)["distinguishable"] is True
+    assert "cannot tell" not in V.evidence_reading(apart)
+
+
 def test_tracks_are_moved_into_the_model_frame():
     from driftwise.data.frame import Frame
     from driftwise.data.tracks import in_model_frame

@@ -31,6 +31,7 @@ from driftwise.data.tracks import read_tracks, tracks_from_frame
 from driftwise.data.utctime import UNIX_EPOCH_UTC, iso_utc, seconds_since_origin
 from driftwise.diagnostics.grid import field_grid
 from driftwise.dynamics.spread import Release, as_releases, bearing_deg, make_spread
+from driftwise.dynamics.supportcheck import PathSupport
 from driftwise.gp import field as F
 from driftwise.gp import training as fitting
 from driftwise.gp.modelfile import load_model, save_model
@@ -59,8 +60,10 @@ def _spread(frame=FRAME, dim=2, origin=UNIX_EPOCH_UTC, polygon=True):
     covs[1] += 25.0 * np.eye(dim)
     if dim == 3:
         covs[..., 2, 2] += 0.01 * TIMES
-    return make_spread("cubature", rels, TIMES, means, covs, frame=frame, polygon_m=BOX if polygon else None,
-                       threshold=0.3 if polygon else None, time_origin_utc=origin)
+    spread = make_spread("cubature", rels, TIMES, means, covs, frame=frame, polygon_m=BOX if polygon else None,
+                         threshold=0.3 if polygon else None, time_origin_utc=origin)
+    ratio = np.stack([np.linspace(0.2, 1.0, len(TIMES)), np.full(len(TIMES), 0.95)])   # leaves / never in support
+    return dataclasses.replace(spread, support=PathSupport(ratio, 1e4 * ratio, np.logical_or.accumulate(ratio > 0.9, 1)))
 
 
 def _bay_field(frame, summary_extra=None):

@@ -93,7 +93,7 @@ def format_check(s: dict[str, Any]) -> str:
         lines.append(f"  {name + ':':<11} significant over {100 * q['significant_area_fraction']:.1f} % of the data hull "
                      f"({q['n_cells']} cells{spacing}, BH α = {q['alpha']:g}), max |z| = {q['max_abs_z']:.2f}")
     for key, label in (("divergence_free", "divergence-free"), ("curl_free", "curl-free")):
-        lines.append(f"  verdict {label}: {'YES' if verdict[key] else 'NO'}")
+        lines.append(f"  verdict {label}: {verdict['answers'][key].upper()}")
         lines += [f"    - {reason}" for reason in verdict["reasons"][key]]
     lines += [f"  rule: {verdict['rule']}"] + [f"wrote {path}" for path in s.get("figures", [])] + [CAUTION]
     return "\n".join(lines)

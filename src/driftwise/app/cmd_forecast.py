@@ -10,7 +10,7 @@ from typing import Any
 
 import numpy as np
 
-from ..data.datascales import resolve_horizons
+from ..data.datascales import check_horizons_s, resolve_horizons
 from ..data.tracks import read_tracks_from_cli
 from ..data.utctime import release_time_s
 from ..diagnostics.skill import score
@@ -165,6 +165,7 @@ def _run_spread(args: argparse.Namespace) -> int:
         raise InputError("--out .geojson: GeoJSON (RFC 7946) holds lon/lat only, but this model was fitted in a local "
                          "metric frame; write .json, .csv or .nc instead")
     times = _output_times_s(args)
+    check_horizons_s([times[-1]], model.data_summary.get("median_dt_s"), option="--horizon")
     releases = _spread_releases(args, model.frame, model.dim, release_time_s(model.data_summary, args.start))
     forecast = spread_from_field(model, releases, times, **_spread_options(args, model.frame))
     written = [str(write_spread(forecast, out)) for out in args.out]

@@ -292,8 +292,8 @@ def step_check(job: Job) -> str:
     job.add_file(path, "kernel-family evidence, divergence/vorticity tests, Helmholtz split and the verdict")
     v = result["verdict"]
     split = result.get("helmholtz_split", {})
-    return (f"divergence-free: {'yes' if v['divergence_free'] else 'no'}, curl-free: "
-            f"{'yes' if v['curl_free'] else 'no'}; divergent share {result['divergent_variance_fraction']:.2f}"
+    return (f"divergence-free: {v['answers']['divergence_free']}, curl-free: "
+            f"{v['answers']['curl_free']}; divergent share {result['divergent_variance_fraction']:.2f}"
             + (f" ± {split['std']:.2f}" if split.get("std") is not None else ""))
 
 

@@ -37,7 +37,8 @@ import numpy as np
 from ..errors import InputError
 from ..units import format_duration, format_length
 
-__all__ = ["DataScales", "check_horizons", "check_position_error", "data_scales", "resolve_horizons"]
+__all__ = ["DataScales", "check_horizons", "check_horizons_s", "check_position_error", "data_scales", "map_spacing_m",
+           "resolve_horizons"]
 
 MAX_LAGS = 5
 MAP_CELLS = 80
@@ -78,8 +79,8 @@ class DataScales:
 
     @property
     def map_spacing_m(self) -> float:
-        """A 1-2-5 step giving about 80 cells over the longest side."""
-        return nice_step(self.longest_side_m / MAP_CELLS)
+        """A 1-2-5 step giving about 80 cells over the longest side (:func:`map_spacing_m`)."""
+        return map_spacing_m(self.longest_side_m)
 
     @property
     def diffusivity_bounds_m2_s(self) -> tuple[float, float]:
@@ -115,6 +116,12 @@ def nice_step(value: float) -> float:
     mantissa = value / 10**exponent
     best = min((1.0, 2.0, 5.0, 10.0), key=lambda m: abs(math.log(mantissa / m)))
     return best * 10**exponent
+
+
+def map_spacing_m(longest_side_m: float) -> float:
+    """The default map step for data spanning ``longest_side_m``: the 1-2-5 number nearest
+    L/80 (a 1 m tank: 1 cm; a 40 km bay: 500 m)."""
+    return nice_step(longest_side_m / MAP_CELLS)
 
 
 # ---------------------------------------------------------------- measuring
@@ -167,11 +174,19 @@ def check_position_error(position_error_m: float, scales: DataScales, *, option:
 
 def check_horizons(horizons_s: Iterable[float], scales: DataScales, *, option: str = "--horizons") -> None:
     """Refuse a horizon shorter than the sampling interval (nothing observed to score it against)."""
+    check_horizons_s(horizons_s, scales.sampling_interval_s, option=option)
+
+
+def check_horizons_s(horizons_s: Iterable[float], sampling_interval_s: float | None, *, option: str) -> None:
+    """Refuse a horizon shorter than ``sampling_interval_s`` (the median fix interval of the data, e.g. a
+    model's ``data_summary["median_dt_s"]``); nothing is checked when the interval is unknown."""
+    if not sampling_interval_s:
+        return
     values = [float(h) for h in horizons_s]
-    short = [h for h in values if h < scales.sampling_interval_s * (1 - 1e-9)]
+    short = [h for h in values if h < sampling_interval_s * (1 - 1e-9)]
     if short:
         raise InputError(f"{option}: {format_duration(min(short))} is shorter than the sampling interval of these "
-                         f"data ({format_duration(scales.sampling_interval_s)}, median); a unit may be missing "
+                         f"data ({format_duration(sampling_interval_s)}, median); a unit may be missing "
                          f"(a bare number means seconds)")
 
 

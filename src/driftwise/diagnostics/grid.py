@@ -9,10 +9,13 @@ from __future__ import annotations
 
 import dataclasses
 import math
+import warnings
 
 import numpy as np
 from pyproj import Geod
 
+from ..data.datascales import MAP_CELLS, map_spacing_m
+from ..dynamics.supportcheck import SUPPORT_VARIANCE_FRACTION, SupportWarning
 from ..errors import InputError
 from ..units import format_length
 from .physics import SUPPORT_RATIO, divergence_posterior, vorticity_posterior
@@ -33,6 +36,7 @@ class FieldGrid:
     supported             variance_ratio < ``SUPPORT_RATIO`` (the data constrain the field)
     lon_deg, lat_deg      (n_y, n_x) node longitudes/latitudes for a lon/lat frame, else None
     reasons               {"divergence"|"vorticity": why it is zero by construction}
+    distance_to_data_m    distance from each node to the nearest fitted observation, m
     """
 
     x_m: np.ndarray
@@ -51,13 +55,7 @@ class FieldGrid:
     reasons: dict
     frame: object
     kernel_family: str
-
-
-def _nice_step(value: float) -> float:
-    """1, 2 or 5 × a power of ten, the largest not above ``value``."""
-    exponent = math.floor(math.log10(value))
-    lead = value / 10.0**exponent
-    return max(m for m in (1.0, 2.0, 5.0) if m <= lead) * 10.0**exponent
+    distance_to_data_m: np.ndarray | None = None
 
 
 def field_extent_m(field) -> tuple[np.ndarray, np.ndarray]:
@@ -87,12 +85,15 @@ def east_north_jacobian(frame, points_m: np.ndarray, *, step_m: float = 1.0) -> 
     return jac
 
 
-def field_grid(field, *, spacing_m: float | None = None, cells_across: int = 80,
+def field_grid(field, *, spacing_m: float | None = None, cells_across: int = MAP_CELLS,
                max_nodes: int = 250_000) -> FieldGrid:
     """Sample a 2-D field on a grid over its extent (:func:`field_extent_m`).
 
-    ``spacing_m`` defaults to a 1-2-5 step giving about ``cells_across`` cells over the
-    longer side; nodes are multiples of the spacing.  Mean and covariance from
+    ``spacing_m`` defaults to the data's own map step (:func:`driftwise.data.datascales.map_spacing_m`:
+    the 1-2-5 number nearest the longer side / ``cells_across``, so a 1 m tank gets 1 cm and a 40 km
+    bay 500 m); nodes are multiples of the spacing.  Before the derivative posteriors (the costly part)
+    a :class:`SupportWarning` says how many nodes lie outside the data support (variance ratio > 0.9)
+    and how far the farthest is from the data (``distance_to_data_m``, also kept per node).  Mean and covariance from
     ``field.predict`` (rotated to east/north, mean J m and covariance J Σ Jᵀ, for a lon/lat
     frame); divergence and vorticity from :func:`divergence_posterior` /
     :func:`vorticity_posterior` (exact GP derivatives in the frame's metres).
@@ -101,7 +102,7 @@ def field_grid(field, *, spacing_m: float | None = None, cells_across: int = 80,
         raise InputError(f"gridded export supports 2-D fields; this model is {field.dim}-D")
     lo, hi = field_extent_m(field)
     if spacing_m is None:
-        spacing_m = _nice_step(max(float(np.max(hi - lo)), 1e-9) / cells_across)
+        spacing_m = map_spacing_m(max(float(np.max(hi - lo)), 1e-9) * MAP_CELLS / cells_across)
     if not (math.isfinite(spacing_m) and spacing_m > 0.0):
         raise InputError(f"--spacing must be a positive distance, got {spacing_m!r} m")
     counts = [math.ceil(hi[a] / spacing_m) - math.floor(lo[a] / spacing_m) + 1 for a in range(2)]
@@ -114,7 +115,8 @@ def field_grid(field, *, spacing_m: float | None = None, cells_across: int = 80,
     gx, gy = np.meshgrid(*axes)
     points = np.column_stack([gx.ravel(), gy.ravel()])
     mean, cov = field.predict(points)
-    ratio = field.local_variance_ratio(points)
+    ratio, distance = field.local_variance_ratio(points), field.distance_to_data_m(points)
+    _warn_outside(ratio, distance)
     frame, lon, lat, components = field.frame, None, None, ("x", "y")
     if getattr(frame, "kind", "metric") == "lonlat":
         jac = east_north_jacobian(frame, points)
@@ -126,4 +128,15 @@ def field_grid(field, *, spacing_m: float | None = None, cells_across: int = 80,
     return FieldGrid(axes[0], axes[1], components, mean.reshape(*shape, 2), std.reshape(*shape, 2),
                      div.mean.reshape(shape), div.std.reshape(shape), vort.mean.reshape(shape),
                      vort.std.reshape(shape), ratio.reshape(shape), (ratio < SUPPORT_RATIO).reshape(shape),
-                     lon, lat, {p.quantity: p.reason for p in (div, vort) if p.reason}, frame, field.kernel_family)
+                     lon, lat, {p.quantity: p.reason for p in (div, vort) if p.reason}, frame, field.kernel_family,
+                     distance.reshape(shape))
+
+
+def _warn_outside(ratio: np.ndarray, distance_m: np.ndarray) -> None:
+    outside = ratio > SUPPORT_VARIANCE_FRACTION
+    if outside.any():
+        warnings.warn(f"{int(outside.sum())} of {outside.size} grid nodes ({100 * outside.mean():.0f} %) lie outside "
+                      f"the model's data support (the data leave over {100 * SUPPORT_VARIANCE_FRACTION:.0f} % of the "
+                      f"prior velocity variance there), up to {format_length(float(distance_m[outside].max()))} from "
+                      "the nearest data: their values are the prior's; the variables variance_ratio, supported and "
+                      "distance_to_data_m mark them", SupportWarning, stacklevel=3)

@@ -30,6 +30,7 @@ looks at the held-out data.  Without ``fit_tracks`` their coverage and log score
 from __future__ import annotations
 
 import dataclasses
+import warnings
 from typing import Any
 
 import numpy as np
@@ -40,6 +41,8 @@ from ..data.windows import Windows, forecast_windows
 from ..dynamics.methods import make_method
 from ..dynamics.moments import propagate_batch
 from ..dynamics.sde import sde_from_field
+from ..dynamics.supportcheck import SUPPORT_VARIANCE_FRACTION, SupportWarning, path_support
+from ..units import format_length
 from ..errors import InputError
 
 DEFAULT_HORIZONS_S = (6 * 3600.0, 12 * 3600.0, 24 * 3600.0)
@@ -177,6 +180,7 @@ class ScoreResult:
     diffusivity_m2_s: float
     decorrelation_time_s: float | None
     notes: tuple[str, ...]
+    outside_support_fraction: tuple[float, ...] = ()
 
     def to_dict(self) -> dict[str, Any]:
         """The ``driftwise score --json`` object: the score keys at the top level, ``baselines`` beside them."""
@@ -184,7 +188,7 @@ class ScoreResult:
                 "baselines": self.baselines, "n_starts": self.n_starts, "n_tracks": self.n_tracks,
                 "output_step_s": self.output_step_s, "position_error_m": self.position_error_m,
                 "diffusivity_m2_s": self.diffusivity_m2_s, "decorrelation_time_s": self.decorrelation_time_s,
-                "notes": list(self.notes)}
+                "outside_support_fraction": list(self.outside_support_fraction), "notes": list(self.notes)}
 
 
 # ------------------------------------------------------------------ summaries
@@ -295,7 +299,9 @@ def score(field, holdout_tracks, *, horizons_s=DEFAULT_HORIZONS_S, method: str =
     holdout_tracks = in_model_frame(holdout_tracks, frame)
     fit_tracks = None if fit_tracks is None else in_model_frame(fit_tracks, frame)
     win = forecast_windows(holdout_tracks, horizons, step_s=step_s, max_starts=max_starts)
+    _warn_unsupported_starts(field, win.start_m)
     means, covs = forecast_moments(field, win, method=method, position_error_m=sigma, step_s=integration_step_s)
+    outside = _outside_support_fraction(field, win, means, horizons)
     variance = None if fit_tracks is None else baseline_error_variance_m2(fit_tracks, horizons, max_starts=max_starts)
     tau = field.decorrelation_time_s
     return ScoreResult(
@@ -304,7 +310,32 @@ def score(field, holdout_tracks, *, horizons_s=DEFAULT_HORIZONS_S, method: str =
         baselines=baseline_scores(win, horizons, variance), n_starts=int(win.start_m.shape[0]),
         n_tracks=int(np.unique(win.track_index).size), output_step_s=float(win.times_s[0]),
         position_error_m=float(sigma), diffusivity_m2_s=float(field.diffusivity_m2_s),
-        decorrelation_time_s=None if tau is None else float(tau), notes=tuple(_notes(variance is not None)))
+        decorrelation_time_s=None if tau is None else float(tau), notes=tuple(_notes(variance is not None)),
+        outside_support_fraction=outside)
+
+
+def _warn_unsupported_starts(field, start_m: np.ndarray) -> None:
+    """Before any forecast runs: a SupportWarning when forecast starts lie outside the model's data support."""
+    ratio, distance = field.local_variance_ratio(start_m), field.distance_to_data_m(start_m)
+    outside = ratio > SUPPORT_VARIANCE_FRACTION
+    if outside.any():
+        warnings.warn(f"score: {int(outside.sum())} of {outside.size} forecast starts lie outside the model's data "
+                      f"support, up to {format_length(float(distance[outside].max()))} from the nearest data (the "
+                      f"data leave over {100 * SUPPORT_VARIANCE_FRACTION:.0f} % of the prior velocity variance "
+                      "there): their forecasts extrapolate the prior; outside_support_fraction gives their share "
+                      "per horizon", SupportWarning, stacklevel=3)
+
+
+def _outside_support_fraction(field, win: Windows, means: np.ndarray, horizons: np.ndarray) -> tuple[float, ...]:
+    """Per horizon, the share of scored pairs whose forecast mean left the data support by then
+    (:func:`driftwise.dynamics.supportcheck.path_support`, start included)."""
+    path = np.concatenate([win.start_m[:, None], means], axis=1)
+    outside = path_support(field, path).outside_support[:, 1:]
+    shares = []
+    for k in np.searchsorted(win.times_s, horizons):
+        valid = win.valid[:, k]
+        shares.append(float(outside[valid, k].mean()) if valid.any() else float("nan"))
+    return tuple(shares)
 
 
 def _notes(baseline_spread: bool) -> list[str]:

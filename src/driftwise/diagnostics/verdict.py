@@ -14,9 +14,20 @@
    (for a quantity that model holds zero by construction, the Helmholtz one).  Divergence and vorticity
    posteriors on a grid inside the data hull are tested with Benjamini–Hochberg
    (:mod:`driftwise.diagnostics.physics`); ``divergence_free`` is False exactly when some cell is
-   significant, and likewise ``curl_free``.  The evidence margin and the variance
-   fraction are reported as further reasons but do not change the boolean: only the
-   area test is calibrated (tests/diagnostics/test_verdict.py).
+   significant, and likewise ``curl_free``.  The evidence margin is reported as a further
+   reason but does not change the answer: only the area test is calibrated
+   (tests/diagnostics/test_verdict.py).
+4. A "yes" (no significant cell) is only as good as the data behind it.  It becomes
+   **undetermined** (``None`` in JSON, ``answers`` "undetermined") when the Helmholtz split's
+   uncertainty swamps its estimate: the 95 % interval F ± 1.96 s of the share that the "yes"
+   denies — the divergent share F for divergence-free, the rotational share 1 − F for curl-free,
+   s the delta-method s.d. — reaches both ≤ 0.1 ("almost none") and ≥ 0.5 ("the larger part").
+   With thin or very noisy data both shares have huge intervals, so the verdict can no longer be
+   "divergence-free and curl-free" at once for lack of evidence; a "no" (a significant cell)
+   stands whatever the split.
+5. The families are "indistinguishable" (``families_distinguishable`` false, and the reading
+   says the data cannot tell them apart) when all their ELBOs agree within
+   max(1 nat, 1e-6 × |ELBO|): 1 nat is below the smallest Kass–Raftery grade (2Δ < 2).
 
 Plain-words scale for log-score differences Δ (nats): Kass & Raftery (1995, "Bayes
 factors", JASA 90:773, §3.2) grade 2Δ as 0–2 "not worth more than a bare mention",
@@ -43,13 +54,17 @@ from ..gp.variational import exact_q
 from ..progress import Stopwatch
 from . import physics
 
-__all__ = ["FAMILIES", "CheckMaps", "check", "constraint_tests", "evidence_reading", "finer_maps",
+__all__ = ["FAMILIES", "CheckMaps", "check", "constraint_tests", "evidence_reading", "families_distinguishable",
+           "finer_maps",
            "heldout_log_likelihood", "run_check", "split_tracks", "decide", "verdict_spacing_m"]
 
 FAMILIES = tuple(KERNEL_FAMILIES)
 CAN_DIVERGE = tuple(name for name, spec in KERNEL_FAMILIES.items() if spec.can_diverge)
 CAN_ROTATE = tuple(name for name, spec in KERNEL_FAMILIES.items() if spec.can_rotate)
 SPACING_PER_LENGTH = 1.0 / 3.0   # verdict grid step in kernel length scales (calibrated in tests/diagnostics/test_verdict.py)
+SHARE_NONE, SHARE_MOST = 0.1, 0.5   # "almost none" and "the larger part" of the velocity variance (rule 4 above)
+Z_95 = 1.959964                     # two-sided 95 % normal quantile (scipy.stats.norm.ppf(0.975))
+ELBO_TOLERANCE_NATS, ELBO_TOLERANCE_RELATIVE = 1.0, 1e-6   # families indistinguishable within this (rule 5)
 
 
 # ---------------------------------------------------------------- held-out tracks
@@ -96,8 +111,27 @@ def _grade(delta_nats: float) -> str:
             else "very strong")
 
 
+def families_distinguishable(families: dict) -> dict:
+    """Whether the ELBOs of the fitted families differ at all (rule 5 of the module docstring).
+
+    Returns {"distinguishable": bool, "elbo_spread_nats": max − min ELBO, "tolerance_nats":
+    max(1 nat, 1e-6 × the largest |ELBO|)}; fewer than two finite ELBOs count as distinguishable
+    (nothing to compare)."""
+    elbos = [entry["elbo"] for entry in families.values() if math.isfinite(entry["elbo"])]
+    if len(elbos) < 2:
+        return {"distinguishable": True, "elbo_spread_nats": None, "tolerance_nats": ELBO_TOLERANCE_NATS}
+    spread = max(elbos) - min(elbos)
+    tolerance = max(ELBO_TOLERANCE_NATS, ELBO_TOLERANCE_RELATIVE * max(abs(e) for e in elbos))
+    return {"distinguishable": bool(spread >= tolerance), "elbo_spread_nats": spread, "tolerance_nats": tolerance}
+
+
 def evidence_reading(families: dict) -> str:
     """A plain-words reading of the held-out log likelihoods (and ELBOs) of the fitted families."""
+    same = families_distinguishable(families)
+    if not same["distinguishable"]:
+        return (f"The data cannot tell the families apart: their ELBOs agree within "
+                f"{same['elbo_spread_nats']:.3g} nats (tolerance {same['tolerance_nats']:.3g} nats), so the family "
+                "table is no evidence for any of them (too few or too noisy tracks for the flow's structure to show).")
     scores = {name: entry["heldout_log_likelihood"] for name, entry in families.items()
               if math.isfinite(entry["heldout_log_likelihood"])}
     if not scores:
@@ -133,11 +167,44 @@ def decide(divergence: physics.Significance, vorticity: physics.Significance, sp
     if families:
         reasons["divergence_free"].append(_margin_reason(families, "divergence-free", CAN_DIVERGE, "divergence"))
         reasons["curl_free"].append(_margin_reason(families, "curl-free", CAN_ROTATE, "vorticity"))
-    return {"divergence_free": not divergence.any_significant, "curl_free": not vorticity.any_significant,
-            "reasons": reasons,
+    answers = {}
+    for key, sig, share in (("divergence_free", divergence, _share(split, "divergent")),
+                            ("curl_free", vorticity, _share(split, "rotational"))):
+        open_question = None if sig.any_significant else _swamped(*(share or ()))
+        answers[key] = "no" if sig.any_significant else "undetermined" if open_question else "yes"
+        if open_question:
+            reasons[key].insert(0, open_question)
+    return {**{key: {"yes": True, "no": False}.get(answer) for key, answer in answers.items()},
+            "answers": answers, "reasons": reasons,
             "rule": f"not divergence-free (curl-free) when the Benjamini-Hochberg procedure at level "
                     f"{divergence.alpha:g} rejects 'divergence (vorticity) = 0' in at least one grid cell "
-                    "inside the data hull"}
+                    f"inside the data hull; otherwise yes, unless the 95 % interval of the divergent "
+                    f"(rotational) share of the velocity variance reaches both ≤ {SHARE_NONE:g} and "
+                    f"≥ {SHARE_MOST:g}: then undetermined (the data cannot say)"}
+
+
+def _share(split: physics.HelmholtzSplit | None, which: str) -> tuple[str, float, float] | None:
+    """(name, estimate, s.d.) of the divergent share F or the rotational share 1 − F; None when the
+    split is fixed by the model (a constrained family: nothing to weigh)."""
+    if split is None or (split.reason is not None and math.isfinite(split.fraction)):
+        return None
+    value = split.fraction if which == "divergent" else 1.0 - split.fraction
+    return which, value, split.std
+
+
+def _swamped(which: str | None = None, value: float = math.nan, std: float = math.nan) -> str | None:
+    """Why a "yes" is undetermined (rule 4 of the module docstring), or None when the share is known well enough."""
+    if which is None:
+        return None
+    if not (math.isfinite(value) and math.isfinite(std)):
+        return (f"undetermined: no cell is significant, but the {which} share of the velocity variance is "
+                "undefined (the posterior mean flow is zero over the hull), so the data show nothing either way")
+    low, high = value - Z_95 * std, value + Z_95 * std
+    if low > SHARE_NONE or high < SHARE_MOST:
+        return None
+    return (f"undetermined: no cell is significant, but the {which} share of the velocity variance is "
+            f"{value:.3g} ± {std:.3g} (95 % interval {low:.3g} to {high:.3g}), which allows both almost none "
+            f"(≤ {SHARE_NONE:g}) and half or more (≥ {SHARE_MOST:g}) of the flow: the data are too thin to say")
 
 
 def _area_reason(sig: physics.Significance, name: str) -> str:
@@ -307,9 +374,10 @@ def run_check(tracks, *, model=None, holdout_fraction: float = 0.2, seed: int = 
         points = grid.points_m
         split = physics.helmholtz_split(helmholtz, points)
     background = physics.background_summary(helmholtz)
+    same = families_distinguishable(table)
     summary = {
-        "families": table,
-        "evidence": {"reading": evidence_reading(table), "heldout_tracks": int(held.n_tracks),
+        "families": table, "families_distinguishable": same["distinguishable"],
+        "evidence": {"reading": evidence_reading(table), "heldout_tracks": int(held.n_tracks), **same,
                      "heldout_observations": int(held_obs.n),
                      "measure": "sum over held-out velocity observations of log N(y | m, Σ + r I), nats"},
         "divergent_variance_fraction": split.fraction,

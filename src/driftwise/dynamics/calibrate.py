@@ -364,8 +364,7 @@ def calibrate_transport(field: Any, tracks_or_observations, *, lags_s=None,
                   [float(t.weight.sum()) for t in transitions])
     bounds = _bounds(scales)
     theta0 = np.clip(np.log(_initial_transport(fields[0], initial)), [b[0] for b in bounds], [b[1] for b in bounds])
-    result = minimize(fun, theta0, jac=True, method="L-BFGS-B", bounds=bounds,
-                      options={"maxiter": 100, "ftol": 1e-12, "gtol": 1e-8})
+    result = _minimise(fun, theta0, bounds)
     k, tau = (float(v) for v in np.exp(result.x))
     return Calibration(
         diffusivity_m2_s=k, decorrelation_time_s=tau, mean_log_likelihood=-float(result.fun),
@@ -374,8 +373,33 @@ def calibrate_transport(field: Any, tracks_or_observations, *, lags_s=None,
         lags_s=tuple(float(v) for v in transitions[0].times_s[1:]), position_error_m=sigma,
         converged=bool(result.success), iterations=int(result.nit), message=str(result.message),
         initial=(float(np.exp(theta0[0])), float(np.exp(theta0[1]))), at_bound=_at_bounds(result.x, bounds),
-        log_std=_log_std(fun, result.x, int(sum(t.weight.sum() for t in transitions))),
+        log_std=_log_std(fun, result.x, int(sum(t.weight.sum() for t in transitions)), bounds),
         method=type(method).__name__)
+
+
+GRID_POINTS = 7   # per parameter, in log space, for the fallback start of :func:`_minimise`
+
+
+def _minimise(fun: Callable, theta0: np.ndarray, bounds) -> Any:
+    """L-BFGS-B from ``theta0``; when it stops abnormally (a line search that found no decrease, typically where
+    the likelihood turns non-finite) or ends at a non-finite value, start again from the best finite point of a
+    7 × 7 grid over the log-space bounds and keep the better optimum.  A non-finite value at a trial point is
+    reported to the optimiser as +1e300 with a zero gradient, so its line search backs off instead of failing."""
+    def safe(theta):
+        value, grad = fun(theta)
+        if not (np.isfinite(value) and np.all(np.isfinite(grad))):
+            return 1e300, np.zeros_like(np.asarray(theta, dtype=float))
+        return value, grad
+
+    options = {"maxiter": 100, "ftol": 1e-12, "gtol": 1e-8}
+    result = minimize(safe, theta0, jac=True, method="L-BFGS-B", bounds=bounds, options=options)
+    if result.success and result.fun < 1e300:
+        return result
+    axes = [np.linspace(lo, hi, GRID_POINTS) for lo, hi in bounds]
+    starts = np.stack(np.meshgrid(*axes), -1).reshape(-1, 2)
+    values = np.array([safe(theta)[0] for theta in starts])
+    retry = minimize(safe, starts[int(np.argmin(values))], jac=True, method="L-BFGS-B", bounds=bounds, options=options)
+    return retry if retry.fun <= result.fun else result
 
 
 def _bounds(scales: DataScales) -> list[tuple[float, float]]:
@@ -460,18 +484,25 @@ def _at_bounds(theta: np.ndarray, bounds) -> dict[str, bool]:
     return {n: bool(min(abs(t - lo), abs(t - hi)) < 1e-6) for n, t, (lo, hi) in zip(names, theta, bounds)}
 
 
-def _log_std(fun: Callable, theta: np.ndarray, n: int) -> dict[str, float]:
+def _log_std(fun: Callable, theta: np.ndarray, n: int, bounds=None) -> dict[str, float]:
     """Rough standard errors of log K and log τ from the curvature of the total negative log likelihood.
 
-    Hessian by central differences of the exact gradient; √diag of its inverse, or, when the
-    Hessian is (nearly) singular, 1/√H_ii for the identified parameter and inf for the other.
+    Hessian by differences of the exact gradient over a 1e-3 step, kept inside ``bounds`` (one-sided at a
+    bound); √diag of its inverse, or, when the Hessian is (nearly) singular, 1/√H_ii for the identified
+    parameter and inf for the other; inf for both when a gradient there is not finite.
     """
     step = 1e-3
+    lows, highs = (np.array([b[0] for b in bounds]), np.array([b[1] for b in bounds])) if bounds else (None, None)
     hess = np.empty((2, 2))
     for j in range(2):
         e = np.zeros(2)
         e[j] = step
-        hess[:, j] = (fun(theta + e)[1] - fun(theta - e)[1]) / (2 * step)
+        up, down = theta + e, theta - e
+        if bounds:
+            up, down = np.minimum(up, highs), np.maximum(down, lows)
+        hess[:, j] = (fun(up)[1] - fun(down)[1]) / max(up[j] - down[j], 1e-12)
+    if not np.all(np.isfinite(hess)):
+        return {"log_diffusivity": float("inf"), "log_decorrelation_time": float("inf")}
     hess = n * 0.5 * (hess + hess.T)
     diag = np.diag(hess)
     det = np.linalg.det(hess)

@@ -11,7 +11,7 @@ the exact Gaussian polygon mass of ``spread.probability_inside`` (Owen's T decom
 releases: the material of site i is the equal-weight Gaussian mixture of its releases.  The first time
 P[i, j, t] reaches a threshold is read off the output times.  The share that has left the model's support
 at t is the share of releases whose mean lies where the data leave more than 90 % of the prior velocity
-variance (``FlowField.local_variance_ratio``; ``spread.SUPPORT_VARIANCE_FRACTION``).
+variance (``FlowField.local_variance_ratio``; ``supportcheck.SUPPORT_VARIANCE_FRACTION``).
 
 Ensemble method (``--method ensemble``, the Monte Carlo cross-check).  Particles start uniformly inside each
 source site (rejection from a seeded uniform draw), follow the same SDE by Euler–Maruyama
@@ -40,7 +40,8 @@ from .methods import make_method, method_name
 from .moments import propagate_batch
 from .sde import PointPosterior, join_from_jit, split_for_jit, transport_sde
 from .sites import Site, cell_covariance_m2, inside_polygon, seed_site
-from .spread import SUPPORT_VARIANCE_FRACTION, check_times, probability_inside
+from .spread import check_times, probability_inside
+from .supportcheck import SUPPORT_VARIANCE_FRACTION
 
 __all__ = ["Connectivity", "connect", "connect_ensemble", "connect_from_field", "field_transport",
            "first_passage_s", "connect_memory_bytes"]

@@ -59,14 +59,11 @@ from .ensemble import EulerMaruyama, simulate
 from .methods import DEFAULT_PARTICLES, METHODS, default_ensemble_step_s, make_method, method_name
 from .moments import RK4, SphericalCubature, propagate_batch
 from .sde import sde_from_field
+from .supportcheck import SupportWarning, path_support, warn_left_support, warn_unsupported_releases  # noqa: F401
 from .tabulate import release_steps, tabulated_sde
 
 LEVELS = (0.5, 0.9, 0.95)
 ROUNDING_FLOOR = 1e-14   # polygon probabilities below this are rounding residue (see module doc)
-
-
-class SupportWarning(UserWarning):
-    """A release starts where the model has (almost) no data."""
 
 
 # ------------------------------------------------------------------ releases
@@ -146,7 +143,9 @@ class Spread:
     ``first_arrival_s`` (per release, seconds since its start, or None);
     ``time_origin_utc`` the ISO-8601 UTC instant of ``start_time_s = 0`` when the model knows it;
     for the ensemble its Monte Carlo standard errors ``mean_se_m (R, T, d)`` and ``cov_se_m2 (R, T, d, d)``
-    (:class:`driftwise.dynamics.ensemble.EnsembleResult`) and its ``particles``, else None.
+    (:class:`driftwise.dynamics.ensemble.EnsembleResult`) and its ``particles``, else None;
+    ``support`` (:class:`~driftwise.dynamics.supportcheck.PathSupport`, forecasts from a fitted field) the
+    variance ratio, distance to the data and ``outside_support`` flag (R, T) along the mean paths.
     """
 
     method: str
@@ -167,6 +166,7 @@ class Spread:
     mean_se_m: np.ndarray | None = None
     cov_se_m2: np.ndarray | None = None
     particles: int | None = None
+    support: Any = None      # supportcheck.PathSupport along the mean paths (forecasts from a fitted field)
 
     @property
     def dim(self) -> int:
@@ -304,19 +304,18 @@ def spread_from_field(field: Any, releases: Any, times_s: Any, *, method: str = 
     dim = int(getattr(field, "dim", rels[0].start_m.size))
     if rels[0].start_m.size != dim:
         raise InputError(f"releases have {rels[0].start_m.size} coordinates but the model is {dim}-D")
-    for rel, fraction in unsupported_releases(field, rels):
-        warnings.warn(f"release {rel.name} at {np.round(rel.start_m, 1).tolist()} m is outside the model's data "
-                      f"support (the data leave {100 * fraction:.0f} % of the prior velocity variance there), so "
-                      "its forecast rests on the prior, not on observed flow", SupportWarning, stacklevel=2)
+    warn_unsupported_releases(field, rels)
     sde = sde_from_field(field, diffusivity_m2_s=diffusivity_m2_s, decorrelation_time_s=decorrelation_time_s)
     steps = 0 if isinstance(obj, EulerMaruyama) else release_steps(len(rels), check_times(times_s), integrator.step_s)
     table_sde = tabulated_sde(field, sde, np.stack([r.start_m for r in rels]), steps, posterior)
     summary = getattr(field, "data_summary", None) or {}
-    return spread_releases(sde if table_sde is None else table_sde, rels, times_s, method=obj, integrator=integrator,
-                           key=jax.random.key(int(seed)), frame=getattr(field, "frame", None), polygon_m=polygon_m,
-                           threshold=threshold, time_origin_utc=summary.get("time_origin_utc"),
-                           fallback_sde=None if table_sde is None else sde)
-
+    out = spread_releases(sde if table_sde is None else table_sde, rels, times_s, method=obj, integrator=integrator,
+                          key=jax.random.key(int(seed)), frame=getattr(field, "frame", None), polygon_m=polygon_m,
+                          threshold=threshold, time_origin_utc=summary.get("time_origin_utc"),
+                          fallback_sde=None if table_sde is None else sde)
+    support = path_support(field, out.means)
+    warn_left_support([r.name for r in rels], out.times_s, support)
+    return dataclasses.replace(out, support=support)
 
 
 # ------------------------------------------------------------------ ellipses
@@ -572,14 +571,3 @@ def _first_polygon_ring(data: Any, path: str) -> np.ndarray:
         stack += item.get("features", []) + [item.get("geometry")]
     raise InputError(f"{path}: contains no GeoJSON Polygon")
 
-
-# ------------------------------------------------------------------ data support
-SUPPORT_VARIANCE_FRACTION = 0.9
-
-
-def unsupported_releases(field: Any, releases: tuple[Release, ...]) -> list[tuple[Release, float]]:
-    """Releases where the model knows little: posterior velocity variance of the field's stationary part above
-    90 % of its prior at the start point (``FlowField.local_variance_ratio``: the data there barely constrain
-    the field).  Returns (release, fraction)."""
-    fraction = field.local_variance_ratio(np.stack([r.start_m for r in releases]))
-    return [(r, float(f)) for r, f in zip(releases, fraction) if f > SUPPORT_VARIANCE_FRACTION]

@@ -32,6 +32,7 @@ import numpy as np
 from jax.scipy.linalg import solve_triangular
 
 from ..data.observations import Observations
+from ..data.support import distance_to_data_m
 from ..data.tracks import Frame
 from ..errors import InputError
 from .background import coefficient_names, features
@@ -498,7 +499,16 @@ class FlowField:
         prior would call a point far outside the data "supported"; without a background both agree.
         """
         x = _check_points(points, self.dim)
-        return np.asarray(_local_ratio_jit(self, jnp.asarray(x)))
+        parts = [np.asarray(_local_ratio_jit(self, jnp.asarray(x[i:i + PREDICT_CHUNK])))
+                 for i in range(0, x.shape[0], PREDICT_CHUNK)]
+        return np.concatenate(parts) if parts else np.zeros(0)
+
+    def distance_to_data_m(self, points) -> np.ndarray:
+        """Distance (n,) m from ``points`` (n, d) m to the nearest observation the field was fitted to, exact
+        within the thinned record's ``tolerance_m`` (:mod:`driftwise.data.support`); for a model saved
+        before that record was kept, to the nearest inducing point."""
+        support = self.data_summary.get("support") or {"points_m": np.asarray(self.params.inducing_m).tolist()}
+        return distance_to_data_m(support, _check_points(points, self.dim))
 
     def prior_variance_at(self, x: jax.Array) -> jax.Array:
         """Prior covariance K(x, x) at one point, (d, d) in m²/s²."""

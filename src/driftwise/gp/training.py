@@ -54,6 +54,7 @@ from ..data.datascales import check_position_error, data_scales
 from ..data.frame import Frame
 from ..data.observations import MIN_FIT_OBSERVATIONS, velocity_observations
 from ..data.positionerror import estimate_position_error
+from ..data.support import support_record
 from ..data.utctime import UNIX_EPOCH_UTC
 from ..errors import InputError
 from ..progress import Progress, Stopwatch
@@ -407,13 +408,14 @@ def _history_kind(config: TrainConfig, n: int) -> str:
 
 
 def data_summary(data: _Data) -> dict[str, Any]:
-    """What the model file records about its data: counts, extent (m), σ_pos, time span and origin, digest."""
+    """What the model file records about its data: counts, extent (m), σ_pos, time span and origin, digest,
+    and a thinned copy of the observation positions (:mod:`driftwise.data.support`)."""
     position = np.asarray(data.batch.position_m)
     obs = data.obs
     summary = {"n_tracks": data.n_tracks, "n_observations": data.n,
                "extent_m": {"min": position.min(axis=0).tolist(), "max": position.max(axis=0).tolist()},
                "position_error_m": float(np.asarray(obs.position_error_m).mean()),
-               "observations_sha256": data.fingerprint}
+               "observations_sha256": data.fingerprint, "support": support_record(position)}
     if hasattr(obs, "time_s"):
         time = np.asarray(obs.time_s, dtype=np.float64)
         summary["time_span_s"] = [float(time.min()), float(time.max())]

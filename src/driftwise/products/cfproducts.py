@@ -152,6 +152,25 @@ def _polygon_variables(spread, coords: str) -> dict[str, tuple]:
     return out
 
 
+def _support_variables(spread, coords: str) -> dict[str, tuple]:
+    """outside_support (a flag, CF-1.11 §3.5), variance_ratio and distance_to_data_m along the mean paths."""
+    if spread.support is None:
+        return {}
+    flag = _var(("trajectory", "obs"), spread.support.outside_support.astype("int8"), None,
+                "1 from the first output time at which the mean position lies outside the model's data support "
+                "(posterior over prior velocity variance above 0.9): from there on the forecast rests partly on "
+                "the prior", coordinates=coords, flag_values=np.array([0, 1], dtype="int8"),
+                flag_meanings="inside_support outside_support")
+    flag[2]["coverage_content_type"] = "qualityInformation"
+    return {"outside_support": flag,
+            "variance_ratio": _var(("trajectory", "obs"), spread.support.variance_ratio, "1",
+                                   "posterior over prior velocity variance of the stationary part at the mean "
+                                   "position (1: the data taught nothing there)", coordinates=coords),
+            "distance_to_data_m": _var(("trajectory", "obs"), spread.support.distance_to_data_m, "m",
+                                       "distance from the mean position to the nearest fitted observation",
+                                       coordinates=coords)}
+
+
 def spread_dataset(spread):
     """The Spread as an xarray Dataset: a CF-1.11 trajectory DSG file (see the module doc)."""
     import xarray as xr
@@ -163,7 +182,8 @@ def spread_dataset(spread):
     data["release_name"] = (("trajectory",), names, {"long_name": "release name"})
     if spread.time_origin_utc is not None:   # the trajectory identifier of the DSG file (CF-1.11 §9.5)
         data["release_name"][2]["cf_role"] = "trajectory_id"
-    for part in (_position_variables, _covariance_variables, _ellipse_variables, _polygon_variables):
+    for part in (_position_variables, _covariance_variables, _ellipse_variables, _polygon_variables,
+                 _support_variables):
         data.update(part(spread, coords))
     if lonlat:
         data["crs"] = ((), np.int32(0), crs_attributes(spread.frame.to_dict()))

@@ -280,7 +280,7 @@ def _fit(fit: Mapping[str, Any]) -> str:
 
 def _verdict_word(value: Any) -> str:
     if value is None:
-        return "<span>not decided</span>"
+        return "<span>undetermined</span>"
     return '<span class="yes">yes</span>' if value else '<span class="no">no</span>'
 
 

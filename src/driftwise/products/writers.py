@@ -54,7 +54,12 @@ def spread_to_dict(spread) -> dict:
                      "mean_lonlat": "degrees (lon, lat, WGS84)", "times_utc": "ISO-8601 UTC",
                      "bearing_deg": "degrees clockwise from north (true north for a lon/lat model, else local +y), "
                                     "in [0, 180): the major axis has no sense",
-                     "angle_ccw_from_east_deg": "degrees counter-clockwise from local +x (east), in (-90, 90]"},
+                     "angle_ccw_from_east_deg": "degrees counter-clockwise from local +x (east), in (-90, 90]",
+                     "outside_support": "true from the first output time at which the mean lies outside the data "
+                                        "support (variance_ratio > 0.9): from there on the forecast rests partly "
+                                        "on the prior",
+                     "variance_ratio": "posterior over prior velocity variance at the mean (1: no data there)",
+                     "distance_to_data_m": "m from the mean to the nearest fitted observation"},
            "releases": releases}
     if spread.polygon_m is not None:
         out["polygon_m"] = _floats(spread.polygon_m)
@@ -98,6 +103,10 @@ def _release_dict(spread, r: int) -> dict:
         entry["monte_carlo_error_at_end"] = monte_carlo_error(spread, r)
     if spread.probability is not None:
         entry["probability_inside"] = _floats(spread.probability[r])
+    if spread.support is not None:
+        entry["outside_support"] = [bool(v) for v in spread.support.outside_support[r]]
+        entry["variance_ratio"] = _floats(spread.support.variance_ratio[r])
+        entry["distance_to_data_m"] = _floats(spread.support.distance_to_data_m[r])
     if spread.first_arrival_s is not None:
         arrival = spread.first_arrival_s[r]
         entry["first_arrival_s"] = arrival
@@ -123,6 +132,7 @@ def _spread_rows(spread):
                "angle_ccw_from_east_deg"]
     header += ["lon_deg", "lat_deg"] if spread.mean_lonlat is not None else []
     header += ["probability_inside"] if spread.probability is not None else []
+    header += ["outside_support", "variance_ratio", "distance_to_data_m"] if spread.support is not None else []
     i50, i95 = spread.levels.index(0.5), spread.levels.index(0.95)
     bearing = spread.bearing_deg
     yield header
@@ -136,13 +146,17 @@ def _spread_rows(spread):
             row += [bearing[r, t], spread.orientation_deg[r, t]]
             row += list(spread.mean_lonlat[r, t]) if spread.mean_lonlat is not None else []
             row += [spread.probability[r, t]] if spread.probability is not None else []
+            if spread.support is not None:
+                row += [str(int(spread.support.outside_support[r, t])), spread.support.variance_ratio[r, t],
+                        spread.support.distance_to_data_m[r, t]]
             yield [cell if isinstance(cell, str) else repr(float(cell)) for cell in row]
 
 
 def write_spread_csv(spread, path) -> Path:
     """One row per release and output time: release, start_time_s, time_s[, start_time_utc, time_utc (ISO-8601,
     when the model knows its time origin)], x_m, y_m[, z_m], the upper covariance entries (m²), semi-axes of the
-    50 % and 95 % ellipses (m), bearing_deg (clockwise from north) and angle_ccw_from_east_deg, lon/lat when known."""
+    50 % and 95 % ellipses (m), bearing_deg (clockwise from north) and angle_ccw_from_east_deg, lon/lat when known,
+    and for a forecast from a fitted field outside_support (0/1), variance_ratio and distance_to_data_m."""
     buffer = _io.StringIO()
     csv.writer(buffer, lineterminator="\n").writerows(_spread_rows(spread))
     return atomic_write_text(path, buffer.getvalue())
@@ -208,6 +222,10 @@ def _grid_variables(grid) -> list[tuple[str, object, dict]]:
         "long_name": "data support: 1 where the posterior velocity variance is below half the prior variance",
         "flag_values": np.array([0, 1], dtype="int8"), "flag_meanings": SUPPORT_MEANING,
         "coverage_content_type": "qualityInformation"}))
+    if grid.distance_to_data_m is not None:
+        out.append(("distance_to_data_m", grid.distance_to_data_m, {
+            "units": "m", "long_name": "distance from the node to the nearest fitted observation",
+            "coverage_content_type": "qualityInformation"}))
     return out
 
 
@@ -332,6 +350,11 @@ def format_score_table(result: dict[str, Any]) -> str:
                  "(ideal 0.50/0.95), ± its standard error with the starts clustered by track; "
                  "log score: mean Gaussian log density, nats (higher is better).")
     lines.extend(result.get("notes", []))
+    outside = result.get("outside_support_fraction") or []
+    if any(share and share > 0 for share in outside):
+        lines.append("outside the data support (the forecast extrapolates the prior): " + ", ".join(
+            f"{100 * share:.0f} % of the forecasts at {format_duration(h)}"
+            for h, share in zip(result["horizons_s"], outside)))
     return "\n".join(lines)
 
 

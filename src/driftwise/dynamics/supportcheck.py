@@ -1,0 +1,87 @@
+"""Forecasts against the data's support: warn before running, mark outputs beyond it.
+
+A point is **outside the data support** when the data leave more than ``SUPPORT_VARIANCE_FRACTION``
+(90 %) of the prior velocity variance of the field's stationary part there
+(``FlowField.local_variance_ratio`` > 0.9): the flow used there is the prior's (zero mean plus the
+background's linear terms), extrapolated, not observed.  Each warning also says how far the point is
+from the nearest data (``FlowField.distance_to_data_m``, :mod:`driftwise.data.support`), in the unit
+that fits (:func:`driftwise.units.format_length`).
+
+For a forecast, ``outside_support[r, t]`` is True from the first output time at which the mean
+position of release r lies outside the support: everything after that point has left the observed
+flow at least once, so it rests partly on the prior even if the path comes back.
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from ..units import format_duration, format_length
+
+__all__ = ["SUPPORT_VARIANCE_FRACTION", "PathSupport", "SupportWarning", "path_support", "point_support_text",
+           "unsupported_releases", "warn_left_support", "warn_unsupported_releases"]
+
+SUPPORT_VARIANCE_FRACTION = 0.9
+
+
+class SupportWarning(UserWarning):
+    """A release, a forecast or a grid lies where the model has (almost) no data."""
+
+
+def point_support_text(distance_m: float, ratio: float) -> str:
+    """'4.2 km from the nearest data; the data leave 100 % of the prior velocity variance there'."""
+    return (f"{format_length(float(distance_m))} from the nearest data; the data leave {100 * float(ratio):.0f} % "
+            "of the prior velocity variance there")
+
+
+def unsupported_releases(field: Any, releases) -> list[tuple[Any, float, float]]:
+    """(release, variance ratio, distance to the data in m) for every release whose start lies outside
+    the data support (module docstring)."""
+    starts = np.stack([r.start_m for r in releases])
+    ratio = field.local_variance_ratio(starts)
+    distance = field.distance_to_data_m(starts)
+    return [(r, float(f), float(d)) for r, f, d in zip(releases, ratio, distance) if f > SUPPORT_VARIANCE_FRACTION]
+
+
+def warn_unsupported_releases(field: Any, releases) -> None:
+    """One SupportWarning per release that starts outside the data support — before anything runs."""
+    for rel, ratio, distance in unsupported_releases(field, releases):
+        where = ", ".join(format_length(v) for v in rel.start_m)
+        warnings.warn(f"release {rel.name} at ({where}) is outside the model's data support "
+                      f"({point_support_text(distance, ratio)}), so its forecast extrapolates the prior, not observed "
+                      "flow; its outputs are marked outside_support", SupportWarning, stacklevel=3)
+
+
+@dataclass(frozen=True)
+class PathSupport:
+    """Support along forecast mean paths, (R, T) each: ``variance_ratio``, ``distance_to_data_m`` (m) and
+    ``outside_support`` (True from the first time the mean lies outside the support)."""
+
+    variance_ratio: np.ndarray
+    distance_to_data_m: np.ndarray
+    outside_support: np.ndarray
+
+
+def path_support(field: Any, means_m) -> PathSupport:
+    """:class:`PathSupport` of mean paths ``means_m`` (R, T, d) in metres."""
+    means = np.asarray(means_m, dtype=np.float64)
+    points = means.reshape(-1, means.shape[-1])
+    ratio = np.asarray(field.local_variance_ratio(points)).reshape(means.shape[:-1])
+    distance = np.asarray(field.distance_to_data_m(points)).reshape(means.shape[:-1])
+    outside = np.logical_or.accumulate(ratio > SUPPORT_VARIANCE_FRACTION, axis=1)
+    return PathSupport(ratio, distance, outside)
+
+
+def warn_left_support(names, times_s, support: PathSupport) -> None:
+    """A SupportWarning for each release whose mean path *leaves* the support during the forecast."""
+    for r, name in enumerate(names):
+        row = support.outside_support[r]
+        if row.any() and not row[0]:
+            t = int(np.argmax(row))
+            warnings.warn(f"release {name}: the mean path leaves the model's data support after "
+                          f"{format_duration(float(times_s[t]))} ({point_support_text(support.distance_to_data_m[r, t], support.variance_ratio[r, t])}); "
+                          "outputs from then on are marked outside_support", SupportWarning, stacklevel=3)
