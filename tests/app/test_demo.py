@@ -128,7 +128,9 @@ def test_reduced_demo_end_to_end(tmp_path, capsys):
         assert (out / f["path"]).is_file(), f["path"]
     names = {Path(f["path"]).name for f in summary["figures"]}
     assert names == {"tracks.png", "elbo.png", "field.png", "physics.png", "spread_spill.png",
-                     "spread_outfall.png", "area_probability.png", "skill.png"}
+                     "spread_outfall.png", "area_probability.png", "skill.png", "connect_matrix.png",
+                     "connect_map.png", "backtrack_map.png"}
+    _check_connect_and_backtrack(out, summary)
     # the invented bay has a divergent river mouth: it must not be called divergence-free
     assert summary["check"]["verdict"]["divergence_free"] is False
     # forecasts beat persistence on the held-out tracks at the last horizon, and the numbers agree
@@ -142,6 +144,36 @@ def test_reduced_demo_end_to_end(tmp_path, capsys):
     assert f"→ {k:.3g} m²/s" in printed and format_diffusivity(k) in report  # the calibrated K (3 figures, unit)
     assert str(out / "") in printed or f"files in {out}/" in printed
     assert "Caution" in printed and "Caution" in report
+
+
+def _check_connect_and_backtrack(out: Path, summary: dict) -> None:
+    """The demo's connectivity and back-tracking steps ran and their files hold sane numbers."""
+    steps = {s["name"]: s["status"] for s in summary["job"]["steps"]}
+    assert steps["connect"] == "done" and steps["backtrack"] == "done"
+    for name in ("connect.nc", "connect.csv", "connect.json", "backtrack.nc", "backtrack.json"):
+        assert (out / name).is_file(), name
+    conn = json.loads((out / "connect.json").read_text())
+    p = np.asarray(conn["probability"], float)  # [source][destination][time]
+    assert p.shape == (3, 3, len(conn["times_s"])) and "research tool" in conn["caution"]
+    assert np.all((p >= 0.0) & (p <= 1.0))
+    # the three sites do not overlap, so the masses inside them are of disjoint events and add up to at most 1
+    # (Kolmogorov 1933, additivity); Owen's-T polygon masses are exact to ~1e-15 per edge, so 1e-9 is ample
+    assert np.all(p.sum(axis=1) <= 1.0 + 1e-9)
+    # at the release nearly all of a site's material is inside it (only the Gaussian tails of edge releases
+    # spill over); a loose floor, 0.5, that a misplaced site (in another frame) would fail
+    assert np.all(np.diagonal(p[:, :, 0]) > 0.5)
+    back = json.loads((out / "backtrack.json").read_text())
+    by_time = np.array([item["probability"] for item in back["probability_by_time"]])
+    np.testing.assert_allclose(by_time.sum(), 1.0, rtol=0, atol=1e-9)  # a normalised posterior
+    assert back["region_90"]["area_m2"] >= back["region_50"]["area_m2"] > 0
+    truth = summary["backtrack"][0]["truth_comparison"]
+    best = back["most_probable"]["position_m"]
+    np.testing.assert_allclose(truth["distance_m"], np.hypot(best[0] - truth["truth_m"][0],
+                                                             best[1] - truth["truth_m"][1]), rtol=1e-9, atol=0)
+    assert truth["truth_inside_90"] or not truth["truth_inside_50"]  # the 50 % region lies inside the 90 % one
+    report = (out / "report.html").read_text()
+    assert "Connectivity between sites" in report and "Back-tracking a find" in report
+    assert f"{truth['distance_m'] / 1000:.2f}" in report
 
 
 def test_durations_read_naturally():

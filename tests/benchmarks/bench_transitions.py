@@ -4,8 +4,15 @@
 Prints, everything measured in this run (medians of timed repeats after one compiling call):
 
 1. ``step``: the cost of one optimiser step of the transition objective against one step of the velocity
-   ELBO at the same batch b and the same M (Helmholtz kernel, 2-D, M = 64, b = 256, 3-h fixes, RK4 step 900 s,
-   so 12 substeps): seconds per step and the ratio (target of the issue: ≤ 8×);
+   ELBO at the same batch b and the same M (Helmholtz kernel, 2-D, M = 64, b = 256, 3-h fixes, RK4 step from
+   the field, :func:`driftwise.dynamics.transitionfit.step_for_field`, and the old fixed 900 s = 12 substeps):
+   seconds per step and the ratio (target of the issue: ≤ 8×);
+3. ``plateau``: wall time of ``fit_transitions`` to its plateau on 10⁴ transitions (target < 5 min on 2 cores).
+
+The 1-minute load average is printed with every table: the machine is shared.  Run with
+``OPENBLAS_NUM_THREADS=1``: the LAPACK calls (Cholesky, triangular solves) of both steps otherwise start
+OpenBLAS threads that fight XLA's for the two cores (measured: a 128 × 128 triangular solve 0.3 ms single-
+threaded, 8–32 ms threaded under load).
 2. ``rmse``: the velocity RMSE against the Lamb–Oseen formula (Oseen 1912; Lamb 1932) near the data (grid
    points within 500 m of a fix) for the velocity fit and the transition fit, fix interval 30 min to 6 h,
    one table, with the fitted K against the truth 1 m²/s.
@@ -18,6 +25,7 @@ from __future__ import annotations
 
 import argparse
 import dataclasses
+import os
 import statistics
 import sys
 import time
@@ -33,7 +41,7 @@ from driftwise.gp import field as fld
 from driftwise.gp import training as F
 from driftwise.gp.schedule import Schedule
 
-sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "dynamics"))
+sys.path[:0] = [str(Path(__file__).resolve().parents[1]), str(Path(__file__).resolve().parents[1] / "dynamics")]
 from test_transitionfit import SIGMA_M, rmse_near_data, vortex_tracks
 
 BATCH, M = 256, 64
@@ -49,28 +57,50 @@ def _timed(fn, repeats: int = 5) -> float:
     return statistics.median(times)
 
 
+def _load() -> str:
+    return f"load {os.getloadavg()[0]:.1f} on {os.cpu_count()} cores"
+
+
 def step_cost(method: str) -> None:
     tracks = vortex_tracks(3 * 3600.0, n=40, hours=24.0)
     warm = F.fit(tracks, inducing=M, position_error_m=SIGMA_M, schedule=Schedule(steps=20), progress=False)
     trans = transition_set(tracks, position_error_m=SIGMA_M)
     b = min(BATCH, trans.n)
-    prop = TF._propagation(method, trans, 900.0, 32)
     rows = TF._rows(trans, jnp.arange(b))
     params = warm.params
     opt = TF._optimizer().init({name: getattr(params, name) for name in TF._TRAINABLE})
-    t_trans = _timed(lambda: TF._step(params, opt, rows, float(trans.n), 3000.0, SIGMA_M**2, prop=prop,
-                                      jitter_multiple=warm.jitter_multiple)[2])
+    costs = {}
+    for label, step_s in (("field step", TF.step_for_field(warm, trans)), ("900 s step", 900.0)):
+        prop = TF._propagation(method, trans, step_s, 32)
+        costs[label, prop.integrator.substeps] = _timed(lambda prop=prop: TF._step(
+            params, opt, rows, float(trans.n), 3000.0, SIGMA_M**2, prop=prop, jitter_multiple=warm.jitter_multiple)[2])
     obs = driftwise.velocity_observations(tracks, position_error_m=SIGMA_M)
     batch = fld.batch_from_observations(obs, idx=list(range(b)))
     names = F.trainable_names("adam", False)
     vopt = F._optimizer().init(F._split(params, names, 1.0))
     t_vel = _timed(lambda: F.optimiser_step(params, vopt, batch, float(obs.n), 1.0, 1.0, names=names, q_update="adam",
                                    jitter_multiple=warm.jitter_multiple)[2])
-    print(f"step cost, M = {params.n_inducing}, batch {b}, {prop.integrator.substeps} RK4 substeps, {method}: "
-          f"velocities {t_vel * 1e3:.1f} ms, transitions {t_trans * 1e3:.1f} ms, ratio {t_trans / t_vel:.1f}x")
+    print(f"step cost, M = {params.n_inducing}, batch {b}, {method}, {_load()}")
+    print(f"  velocities {t_vel * 1e3:.1f} ms")
+    for (label, substeps), cost in costs.items():
+        print(f"  transitions, {label}, {substeps} RK4 substeps: {cost * 1e3:.1f} ms, ratio {cost / t_vel:.1f}x")
+
+
+def plateau_time(method: str) -> None:
+    tracks = vortex_tracks(3 * 3600.0, n=1250, hours=24.0)          # 1250 drifters × 8 transitions = 10⁴
+    start = time.perf_counter()
+    vel = F.fit(tracks, inducing=M, position_error_m=SIGMA_M, progress=False)
+    t_vel = time.perf_counter() - start
+    tr = TF.fit_transitions(tracks, vel, position_error_m=SIGMA_M, method=method, progress=False)
+    t_tr = time.perf_counter() - start - t_vel
+    print(f"fit on {tr.fit_info['n_transitions']} transitions, M = {M}, {method}, {_load()}: velocity fit {t_vel:.0f} s, "
+          f"transition fit {t_tr:.0f} s ({tr.fit_info['transition_steps']} steps, converged "
+          f"{tr.fit_info['transition_converged']}), K {tr.diffusivity_m2_s:.3g} m²/s (truth 1), RMSE "
+          f"{rmse_near_data(vel, tracks):.4f} → {rmse_near_data(tr, tracks):.4f} m/s")
 
 
 def rmse_table(method: str, steps: int, hours_list: tuple[float, ...]) -> None:
+    print(f"RMSE near the data against the Lamb–Oseen formula, K truth 1 m²/s, {method}, {_load()}")
     print("fix interval | velocity fit RMSE m/s, K | transition fit RMSE m/s, K | steps, time s")
     for hours in hours_list:
         tracks = vortex_tracks(hours * 3600.0, n=30, hours=24.0)
@@ -78,7 +108,7 @@ def rmse_table(method: str, steps: int, hours_list: tuple[float, ...]) -> None:
         start = time.perf_counter()
         schedule = dataclasses.replace(TF.TRANSITION_SCHEDULE, steps=steps, batch_size=64, learning_rate=0.03)
         tr = TF.fit_transitions(tracks, vel, position_error_m=SIGMA_M, schedule=schedule, method=method,
-                                step_s=1800.0, progress=False)
+                                progress=False)
         print(f"{hours:>5.1f} h | {rmse_near_data(vel, tracks):.4f}, {vel.diffusivity_m2_s:.3g} | "
               f"{rmse_near_data(tr, tracks):.4f}, {tr.diffusivity_m2_s:.3g} | "
               f"{tr.fit_info['transition_steps']}, {time.perf_counter() - start:.0f}", flush=True)
@@ -86,16 +116,18 @@ def rmse_table(method: str, steps: int, hours_list: tuple[float, ...]) -> None:
 
 def main() -> None:
     parser = argparse.ArgumentParser()
-    parser.add_argument("--parts", default="step,rmse")
+    parser.add_argument("--parts", default="step,rmse,plateau")
     parser.add_argument("--method", default="cubature")
     parser.add_argument("--steps", type=int, default=300)
-    parser.add_argument("--hours", default="0.5,1,3,6", help="fix intervals (h) of the RMSE table")
+    parser.add_argument("--hours", default="0.5,1,2,3,6", help="fix intervals (h) of the RMSE table")
     args = parser.parse_args()
     parts = args.parts.split(",")
     if "step" in parts:
         step_cost(args.method)
     if "rmse" in parts:
         rmse_table(args.method, args.steps, tuple(float(h) for h in args.hours.split(",")))
+    if "plateau" in parts:
+        plateau_time(args.method)
 
 
 if __name__ == "__main__":

@@ -22,7 +22,10 @@ import pytest
 import driftwise
 from driftwise.dynamics import spread as spreadmod
 from driftwise.dynamics import tabulate
+from driftwise.dynamics.backtrack import Finds, backtrack_from_field
+from driftwise.dynamics.connectivity import connect_from_field
 from driftwise.dynamics.sde import PointPosterior
+from driftwise.dynamics.sites import Site
 from driftwise.errors import InputError
 from driftwise.gp import field as fieldmod
 
@@ -189,3 +192,55 @@ def test_cli_exact_flag_forces_the_direct_path(field, run_cli, tmp_path, monkeyp
     exact = spreadmod.spread_from_field(field, [[4000.0, 5000.0]], np.arange(4.0) * 3600.0, posterior="exact")
     np.testing.assert_allclose(results["exact"], exact.means[0], rtol=1e-12, atol=1e-9)
     assert 0.0 < np.max(np.abs(results["auto"] - exact.means[0])) < 1.0      # the table's (small) difference, metres
+
+
+def _two_sites():
+    square = lambda x0, y0: np.array([[x0, y0], [x0 + 2000.0, y0], [x0 + 2000.0, y0 + 2000.0], [x0, y0 + 2000.0]])  # noqa: E731
+    return (Site("west", square(2000.0, 4000.0)), Site("east", square(6000.0, 4000.0)))
+
+
+@pytest.mark.slow
+def test_connect_and_backtrack_choose_the_table_by_the_spread_rule(field, monkeypatch):
+    """connect/backtrack tabulate by spread's rule ("auto": releases × RK4 steps ≥ TABLE_RELEASE_STEPS).
+    A table whose forecasts stay within TOL (whitened mean, relative covariance; the forecast test above) moves
+    a Gaussian's mass of any set by at most the total-variation distance ≤ √(KL/2) (Pinsker 1964); with both
+    errors ≤ TOL that KL is below TOL², so each P[i, j, t] may change by at most TOL/√2 + 1e-12."""
+    sites, times = _two_sites(), np.arange(0.0, 7.0) * 3600.0
+    run = lambda **kw: connect_from_field(field, sites, times, per_site=4, step_s=3600.0, **kw)  # noqa: E731
+    exact, table = run(posterior="exact"), run(posterior="table")
+    diff = np.abs(table.probability - exact.probability)
+    assert np.max(diff) <= TOL / np.sqrt(2) + 1e-12 and np.max(diff) > 0.0  # the table was used, within bound
+    monkeypatch.setattr(tabulate, "TABLE_RELEASE_STEPS", 1)
+    np.testing.assert_array_equal(run().probability, table.probability)      # auto → table
+    monkeypatch.setattr(tabulate, "TABLE_RELEASE_STEPS", 10**9)
+    np.testing.assert_array_equal(run().probability, exact.probability)      # auto → exact
+    finds = Finds([[6000.0, 5000.0]], [6 * 3600.0], [300.0])
+    back = lambda **kw: backtrack_from_field(field, finds, (1000.0, 1000.0, 9000.0, 9000.0), 1000.0,  # noqa: E731
+                                             [0.0, 3 * 3600.0], step_s=3600.0, **kw)
+    b_exact, b_table = back(posterior="exact"), back(posterior="table")
+    np.testing.assert_allclose(b_table.probability.sum(), 1.0, rtol=0, atol=1e-12)   # normalised posterior
+    np.testing.assert_array_equal(back().probability, b_exact.probability)   # auto → exact (threshold 10⁹)
+    monkeypatch.setattr(tabulate, "TABLE_RELEASE_STEPS", 1)
+    np.testing.assert_array_equal(back().probability, b_table.probability)   # auto → table
+    assert not np.array_equal(b_table.probability, b_exact.probability)
+
+
+@pytest.mark.slow
+def test_connect_and_backtrack_cli_exact_flag(field, run_cli, tmp_path, monkeypatch):
+    """With the threshold at 1 release-step the default tabulates; --exact gives the API's exact numbers."""
+    path = tmp_path / "model.npz"
+    driftwise.save(field, path)
+    sites = tmp_path / "sites.csv"
+    sites.write_text("site,x_m,y_m\n" + "".join(f"{s.name},{x},{y}\n" for s in _two_sites() for x, y in s.polygon_m))
+    monkeypatch.setattr(tabulate, "TABLE_RELEASE_STEPS", 1)
+    argv = ["connect", path, "--sites", sites, "--horizon", "3h", "--every", "1h", "--per-site", "4", "--json"]
+    code, out, err = run_cli(*argv, "--exact")
+    assert code == 0, err
+    exact = connect_from_field(field, _two_sites(), np.arange(4.0) * 3600.0, per_site=4, step_s=3600.0,
+                               posterior="exact")
+    np.testing.assert_allclose(json.loads(out)["probability"], exact.probability, rtol=1e-12, atol=1e-15)
+    code, out, err = run_cli("backtrack", path, "--found", "6000,5000", "--at", "21600", "--window", "6h",
+                             "--every", "3h", "--region", "1000,1000,9000,9000", "--spacing", "2km", "--exact",
+                             "--json")
+    assert code == 0, err
+    assert abs(sum(item["probability"] for item in json.loads(out)["probability_by_time"]) - 1.0) < 1e-9

@@ -15,12 +15,15 @@ import dataclasses
 import json
 import math
 
+import jax
 import numpy as np
 import pytest
 from scipy.spatial import cKDTree
+from sweeps import KERNEL_CASES
 
 import driftwise  # noqa: F401  (float64)
-from driftwise.data.synthetic import LambOseenVortex, TaylorGreen, simulate_drifters
+from driftwise.data.synthetic import ABCFlow, LambOseenVortex, TaylorGreen, simulate_drifters
+from driftwise.dynamics import transitionfit as TF
 from driftwise.data.tracks import tracks_from_frame
 from driftwise.dynamics.transitionfit import (
     COARSENESS_THRESHOLD,
@@ -30,6 +33,7 @@ from driftwise.dynamics.transitionfit import (
 )
 from driftwise.dynamics.transitions import transition_set
 from driftwise.errors import InputError
+from driftwise.gp.modelfile import load_model
 from driftwise.gp.schedule import Checkpoint, Schedule
 from driftwise.gp.training import fit
 
@@ -37,9 +41,7 @@ CORE_M = 2000.0
 GAMMA_M2_S = 0.4 * 2.0 * math.pi * CORE_M / 0.6382   # peak swirl 0.4 m/s
 K_TRUE = 1.0                                           # m²/s
 SIGMA_M = 10.0
-# The issue asks for K within 30 % at 3-h fixes; this fit gives 0.52 m²/s (truth 1): Σ(x) of q, in the diffusion,
-# takes part of the observed spread.  Checked here: K within a factor of two and far nearer than the velocity fit's.
-K_FACTOR = 2.0
+K_RTOL = 0.30          # K within 30 % of the truth (measured at 3-h fixes: 1.065 m²/s)
 
 
 def lamb_oseen_velocity(xy):
@@ -126,6 +128,28 @@ def test_cli_reports_the_likelihood_and_the_coarseness(tmp_path, run_cli):
     assert code == 2 and "likelihood" in err
 
 
+@pytest.mark.slow
+def test_cli_transition_fit_keeps_its_k_and_reports_the_calibration_as_a_check(tmp_path, run_cli):
+    path = tmp_path / "vortex.csv"
+    starts = [[1500.0, 0.0], [0.0, 3000.0], [-2500.0, 500.0], [2000.0, -2000.0]]
+    table = simulate_drifters(LambOseenVortex(GAMMA_M2_S, CORE_M), starts, duration_s=12 * 3600.0,
+                              fix_interval_s=3 * 3600.0, diffusivity_m2_s=K_TRUE, position_error_m=SIGMA_M, seed=8,
+                              substeps=180)
+    table.to_csv(path, index=False)
+    code, stdout, err = run_cli("fit", path, "--out", tmp_path / "m.npz", "--inducing", "9", "--likelihood",
+                                "transitions", "--position-error", "10m", "--json")
+    assert code == 0, err
+    report = json.loads(stdout)
+    assert report["likelihood"] == "transitions"
+    check = report["calibration_check"]
+    assert check["diffusivity_m2_s"] > 0 and check["decorrelation_time_s"] > 0
+    model = load_model(tmp_path / "m.npz")
+    # the saved K is the transition fit's own (the calibration's "before" value), not the calibrated one
+    assert model.diffusivity_m2_s == pytest.approx(report["diffusivity_m2_s"], rel=1e-12)
+    assert model.fit_info["calibration"]["diffusivity_m2_s_before"] == pytest.approx(model.diffusivity_m2_s, rel=1e-12)
+    assert model.fit_info["calibration_check"]["diffusivity_m2_s"] == pytest.approx(check["diffusivity_m2_s"])
+
+
 def _both_fits(fix_interval_s: float, batch_size: int):
     tracks = vortex_tracks(fix_interval_s, n=30)
     vel = fit(tracks, "divergence-free", inducing=36, position_error_m=SIGMA_M, schedule=Schedule(steps=200),
@@ -144,10 +168,8 @@ def test_coarse_fixes_in_the_vortex_are_recovered_by_the_transition_fit():
     assert rmse_trans <= 0.5 * rmse_vel, (rmse_trans, rmse_vel)
     # K: the velocity fit absorbs the chord error into K (Einstein 1905 variance 2KΔt read as noise)
     assert abs(trans.diffusivity_m2_s - K_TRUE) < abs(vel.diffusivity_m2_s - K_TRUE)
-    if not K_TRUE / K_FACTOR < trans.diffusivity_m2_s < K_TRUE * K_FACTOR:
-        # Known and open (issue 15): at 3-h fixes part of the spread goes to the τΣ(x) term, K comes out low
-        # (0.49 m²/s against 1 on this seed).  Reported as an expected failure, not as a pass.
-        pytest.xfail(f"K at 3-h fixes {trans.diffusivity_m2_s:.3g} m²/s against {K_TRUE:g} (target within 30 %)")
+    # Einstein (1905) variance 2KΔt of the simulated random walk: K is recovered by the transition bound
+    assert trans.diffusivity_m2_s == pytest.approx(K_TRUE, rel=K_RTOL), trans.diffusivity_m2_s
 
 
 @pytest.mark.slow
@@ -155,3 +177,47 @@ def test_fine_fixes_give_the_same_field_by_both_likelihoods():
     tracks, vel, trans = _both_fits(1800.0, 256)
     rmse_vel, rmse_trans = rmse_near_data(vel, tracks), rmse_near_data(trans, tracks)
     assert rmse_trans == pytest.approx(rmse_vel, rel=0.10), (rmse_trans, rmse_vel)   # Lamb–Oseen formula
+
+
+def _small_tracks(dim: int):
+    """Six drifters, 9 h at 3-h fixes: a Lamb–Oseen vortex (2-D) or the ABC flow (3-D, Dombre et al. 1986)."""
+    if dim == 2:
+        return vortex_tracks(3 * 3600.0, n=6, hours=9.0)
+    flow = ABCFlow(speed_m_s=0.1, box_m=20_000.0)
+    starts = np.random.default_rng(3).uniform(0.0, 8000.0, (6, 3))
+    return tracks_from_frame(simulate_drifters(flow, starts, duration_s=9 * 3600.0, fix_interval_s=3 * 3600.0,
+                                               diffusivity_m2_s=K_TRUE, position_error_m=SIGMA_M, seed=7,
+                                               substeps=60))
+
+
+# One case per family, both dimensions and both bases covered (the full KERNEL_CASES product costs 1–3 min a case
+# at today's transition-step cost, too much for CI; the sweep returns when the step is cheaper — issue 15).
+FAMILY_CASES = [case for case in KERNEL_CASES if case in {
+    ("helmholtz", "squared-exponential", 2), ("divergence-free", "matern52", 3),
+    ("curl-free", "squared-exponential", 3), ("independent", "matern52", 2)}]
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("family,base,dim", FAMILY_CASES)
+def test_transition_fit_for_every_kernel_family_in_2d_and_3d(family, base, dim):
+    tracks = _small_tracks(dim)
+    warm = fit(tracks, family, inducing=8, position_error_m=SIGMA_M, base=base, schedule=Schedule(steps=5),
+               progress=False)
+    trans = transition_set(tracks, position_error_m=SIGMA_M)
+    prop = TF._propagation("cubature", trans, TF.step_for_field(warm, trans), 32)
+    rows = TF._rows(trans, None)
+    tau = float(warm.decorrelation_time_s)
+
+    def value(trainable):
+        params = dataclasses.replace(warm.params, **trainable)
+        return TF.objective(params, rows, float(trans.n), tau, SIGMA_M**2, prop=prop,
+                            jitter_multiple=warm.jitter_multiple)
+
+    start, grads = jax.value_and_grad(value)({name: getattr(warm.params, name) for name in TF._TRAINABLE})
+    assert np.isfinite(float(start))
+    assert all(np.all(np.isfinite(np.asarray(leaf))) for leaf in jax.tree_util.tree_leaves(grads))
+    schedule = dataclasses.replace(TRANSITION_SCHEDULE, steps=6, patience=3, batch_size=trans.n)
+    refit = fit_transitions(tracks, warm, position_error_m=SIGMA_M, schedule=schedule, progress=False)
+    checks = refit.fit_info["transition_checks"]          # the warm start's objective first, then every 3 steps
+    assert checks[0] == pytest.approx(float(start), rel=1e-9, abs=1e-6)
+    assert checks[-1] > checks[0] and np.isfinite(refit.diffusivity_m2_s), checks

@@ -31,6 +31,13 @@ def add_json_flag(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--json", action="store_true", help="print one JSON object on stdout and nothing else")
 
 
+def add_exact_flag(parser: argparse.ArgumentParser) -> None:
+    """``--exact``: the exact posterior at every point instead of the automatic table (dynamics.tabulate)."""
+    parser.add_argument("--exact", action="store_true", help="evaluate the exact posterior at every point; by "
+                        "default many releases x steps use a table of it on a grid (interpolation error <= 5 %% of "
+                        "the posterior s.d.; releases leaving the grid are recomputed exactly)")
+
+
 def add_quiet_flag(parser: argparse.ArgumentParser) -> None:
     """``--quiet``: no progress output."""
     parser.add_argument("--quiet", action="store_true", help="no progress bars or progress lines")

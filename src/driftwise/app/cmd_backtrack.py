@@ -13,6 +13,7 @@ from ..data.utctime import iso_utc, release_time_s
 from ..data.windows import output_times_s
 from ..dynamics.backtrack import Finds, backtrack_from_field, backtrack_memory_bytes, candidate_grid, needed_ages
 from ..dynamics.methods import DEFAULT_METHOD, METHODS
+from ..dynamics.tabulate import posterior_choice
 from ..errors import InputError
 from ..files import CAUTION
 from ..gp.modelfile import load_model
@@ -20,7 +21,7 @@ from ..products.backtrackfiles import BACKTRACK_SUFFIXES, backtrack_to_dict, wri
 from ..products.plotconnect import plot_backtrack
 from ..products.plots import save_figure
 from ..units import format_duration, format_length, parse_duration_s, parse_length_m
-from .cliparts import EXIT_OK, add_json_flag, add_quiet_flag, print_json
+from .cliparts import EXIT_OK, add_exact_flag, add_json_flag, add_quiet_flag, print_json
 from .resources import bar, check_memory, say
 
 DEFAULT_CELLS = 4096
@@ -58,6 +59,7 @@ def configure_backtrack(p: argparse.ArgumentParser) -> None:
     p.add_argument("--out", action="append", default=[], metavar="FILE",
                    help="write the result: .nc (CF maps), .geojson (regions; lon/lat models) or .json; repeatable")
     p.add_argument("--figures", metavar="DIR", help="write backtrack_map.png here")
+    add_exact_flag(p)
     add_json_flag(p)
     add_quiet_flag(p)
     p.set_defaults(run=run_backtrack)
@@ -149,6 +151,7 @@ def run_backtrack(args: argparse.Namespace) -> int:
     progress = bar(len(x) * len(y), quiet, "driftwise backtrack", "candidate")
     try:
         result = backtrack_from_field(model, finds, region, spacing, lags, method=args.method, step_s=step,
+                                      posterior=posterior_choice(args.exact),
                                       progress=progress.update)
     finally:
         progress.close()

@@ -13,6 +13,7 @@ from ..data.windows import output_times_s
 from ..dynamics.connectivity import DEFAULT_THRESHOLD, connect_from_field, connect_memory_bytes
 from ..dynamics.methods import DEFAULT_METHOD, METHODS
 from ..dynamics.sites import read_sites
+from ..dynamics.tabulate import posterior_choice
 from ..errors import InputError
 from ..files import CAUTION
 from ..gp.modelfile import load_model
@@ -20,7 +21,7 @@ from ..products.connectfiles import CONNECT_SUFFIXES, connect_to_dict, write_con
 from ..products.plotconnect import plot_connect_map, plot_connect_matrix
 from ..products.plots import save_figure
 from ..units import format_duration, parse_duration_s
-from .cliparts import EXIT_OK, add_json_flag, add_quiet_flag, print_json
+from .cliparts import EXIT_OK, add_exact_flag, add_json_flag, add_quiet_flag, print_json
 from .resources import bar, check_memory, say
 
 MAX_OUTPUT_TIMES = 100_000
@@ -57,6 +58,7 @@ def configure_connect(p: argparse.ArgumentParser) -> None:
     p.add_argument("--out", action="append", default=[], metavar="FILE",
                    help="write the matrix: .nc (CF NetCDF), .csv or .json; repeatable")
     p.add_argument("--figures", metavar="DIR", help="write connect_matrix.png and connect_map.png here")
+    add_exact_flag(p)
     add_json_flag(p)
     add_quiet_flag(p)
     p.set_defaults(run=run_connect)
@@ -111,6 +113,7 @@ def run_connect(args: argparse.Namespace) -> int:
         result = connect_from_field(model, sites, times, method=args.method, per_site=args.per_site,
                                     particles=args.particles, step_s=step, seed=args.seed, threshold=args.threshold,
                                     start_time_s=release_time_s(model.data_summary, args.start),
+                                    posterior=posterior_choice(args.exact),
                                     progress=progress.update)
     finally:
         progress.close()

@@ -16,6 +16,7 @@ from ..data.utctime import release_time_s
 from ..diagnostics.skill import score
 from ..dynamics.methods import DEFAULT_METHOD, DEFAULT_PARTICLES, METHODS
 from ..dynamics.spread import Release, as_releases, read_polygon, read_releases, spread_from_field
+from ..dynamics.tabulate import posterior_choice
 from ..errors import InputError
 from ..files import CAUTION
 from ..gp.modelfile import load_model
@@ -37,7 +38,7 @@ from ..units import (
     parse_durations_s,
     parse_length_m,
 )
-from .cliparts import EXIT_OK, add_json_flag, add_quiet_flag, print_json
+from .cliparts import EXIT_OK, add_exact_flag, add_json_flag, add_quiet_flag, print_json
 
 # ---------------------------------------------------------------- spread
 _MAX_OUTPUT_TIMES = 100_000
@@ -61,8 +62,10 @@ def configure_spread(p: argparse.ArgumentParser) -> None:
                    "LON,LAT degrees for a model fitted on lon/lat tracks; repeat for more releases")
     p.add_argument("--releases", metavar="FILE", help="CSV of releases: columns x,y[,z] (metres) or lon,lat "
                    "(degrees), optional start_time (seconds or ISO-8601), name, sd_m (release uncertainty, metres)")
-    p.add_argument("--start", metavar="TIME", help="release time of the --release points: ISO-8601 or seconds on the "
-                   "model's time axis (default: its last observation when the tracks had absolute times, else 0)")
+    p.add_argument("--start", metavar="TIME", help="release time of the --release points: ISO-8601 for a model "
+                   "fitted on absolute times, else a duration on the tracks' own time axis with its unit, e.g. 36h "
+                   "(default: the last observation when the tracks had absolute times, else 0); a time-varying "
+                   "model is integrated from there")
     p.add_argument("--horizon", default="2d", help="forecast length with its unit (s, min, h, d; default 2d)")
     p.add_argument("--every", default="1h", help="output interval with its unit (default 1h)")
     p.add_argument("--method", choices=list(METHODS), default=DEFAULT_METHOD,
@@ -78,9 +81,7 @@ def configure_spread(p: argparse.ArgumentParser) -> None:
     p.add_argument("--decorrelation-time", default=None,
                    help="velocity decorrelation time tau with its unit, e.g. 6h (default: the model's)")
     p.add_argument("--seed", type=int, default=0, help="random seed of the ensemble (default 0)")
-    p.add_argument("--exact", action="store_true", help="evaluate the exact posterior at every point; by default "
-                   "many releases x steps use a table of it on a grid (interpolation error <= 5 %% of the posterior "
-                   "s.d.; releases leaving the grid are recomputed exactly)")
+    add_exact_flag(p)
     p.add_argument("--polygon", metavar="FILE", help="area of interest: GeoJSON Polygon (lon/lat) or CSV of "
                    "vertices (x,y metres or lon,lat degrees)")
     p.add_argument("--threshold", type=float, default=0.5,
@@ -146,7 +147,7 @@ def _spread_options(args: argparse.Namespace, frame) -> dict[str, Any]:
         raise InputError(f"--step must be positive, got {args.step!r}")
     polygon = read_polygon(args.polygon, frame=frame) if args.polygon else None
     return dict(method=args.method, particles=args.particles, step_s=step, seed=args.seed, polygon_m=polygon,
-                posterior="exact" if args.exact else "auto",
+                posterior=posterior_choice(args.exact),
                 threshold=args.threshold if polygon is not None else None,
                 diffusivity_m2_s=parse_diffusivity_m2_s(args.diffusivity, what="--diffusivity")
                 if args.diffusivity else None,

@@ -12,6 +12,8 @@ Steps, each timed and recorded in ``summary.json`` and the report:
    and a continuous outfall modelled as hourly releases, each with the probability of
    reaching the (invented) Aldous Flats shellfish bed;
 6. **score** — skill and calibration on the held-out tracks, against baselines;
+7. **connect** / **backtrack** — connectivity between three invented sites over three days and the
+   back-tracking of a simulated find, set against its truth (:mod:`driftwise.app.demoanswers`);
 
 then the figures, ``report.html`` and ``summary.json``, and a short digest on stdout.
 A step whose library piece is missing or fails is recorded as such and the rest runs on:
@@ -57,7 +59,9 @@ from ..products.writers import write_field_grid, write_score_csv, write_spread
 from ..units import format_duration
 from ..version import __version__
 from .bay import DemoScenario, write_demo_data
+from .demoanswers import step_backtrack, step_connect
 from .job import Job, Unavailable, environment, one_line_warnings, progress_bar
+from .job import fitted_field as _field
 from .scenarios import (
     HOUR_S,
     SHELLFISH_BED,
@@ -98,6 +102,12 @@ class DemoSettings:
     skill_horizons_s: tuple[float, ...] = (6 * HOUR_S, 12 * HOUR_S, 24 * HOUR_S)
     max_skill_starts: int | None = 720
     calibration_starts: int = 100
+    connect_horizon_s: float = 72 * HOUR_S
+    connect_every_s: float = 3 * HOUR_S
+    connect_per_site: int = 16
+    backtrack_window_s: float = 48 * HOUR_S
+    backtrack_every_s: float = 6 * HOUR_S
+    backtrack_spacing_m: float = 1250.0
     seed: int = 0
     position_error_m: float = DemoScenario().position_error_m   # the campaign's stated GPS accuracy, as a user gives it
 
@@ -105,7 +115,8 @@ class DemoSettings:
     def fast(cls) -> "DemoSettings":
         return cls(inducing=32, fit_steps=40, family_inducing=24, family_steps=30, horizon_s=24 * HOUR_S,
                    every_s=2 * HOUR_S, outfall_hours=6, grid_cells_across=20,
-                   skill_horizons_s=(6 * HOUR_S, 12 * HOUR_S), max_skill_starts=60, calibration_starts=50)
+                   skill_horizons_s=(6 * HOUR_S, 12 * HOUR_S), max_skill_starts=60, calibration_starts=50,
+                   connect_per_site=8, connect_every_s=6 * HOUR_S, backtrack_spacing_m=2000.0)
 
 
 def demo_data_dir(out: Path) -> Path:
@@ -273,12 +284,6 @@ def _write_map(job: Job, grid: Any) -> str:
     return ", ".join(names)
 
 
-def _field(job: Job) -> Any:
-    if "field" not in job.state:
-        raise Unavailable("needs the fitted field, which the fit step did not produce")
-    return job.state["field"]
-
-
 # ----------------------------------------------------------------- 4. check
 def step_check(job: Job) -> str:
     field, s = _field(job), job.settings
@@ -431,12 +436,15 @@ STEPS: tuple[tuple[str, str, Callable[[Job], str]], ...] = (
     ("physics figure", "check", figure_physics),
     ("spread", "spread", step_spread),
     ("score", "skill", step_score),
+    ("connect", "connect", step_connect),
+    ("backtrack", "backtrack", step_backtrack),
 )
 
 DESCRIPTION = ("The whole driftwise job on invented data: drifters in Mirren Bay, a fictional coastal bay with a "
                "wind-driven gyre and the outflow of the (equally fictional) Aldous river at Port Aldous. "
                "Fit a flow field with uncertainty, check its physics, forecast a fuel spill and an outfall plume "
-               "reaching a shellfish bed, and score forecasts on tracks the fit never saw.")
+               "reaching a shellfish bed, link three sites, back-track a find, and score forecasts on tracks the fit "
+               "never saw.")
 
 
 def run_demo(out_dir: str | Path = "driftwise-demo", *, quiet: bool = False, settings: DemoSettings | None = None,

@@ -82,6 +82,13 @@ class Job:
         return status == "done"
 
 
+def fitted_field(job: Job) -> Any:
+    """The field the fit step left in ``job.state``; Unavailable when it did not produce one."""
+    if "field" not in job.state:
+        raise Unavailable("needs the fitted field, which the fit step did not produce")
+    return job.state["field"]
+
+
 def one_line(text: str, limit: int = 300) -> str:
     """``text`` with its whitespace collapsed onto one line, cut at ``limit`` characters."""
     text = " ".join(str(text).split())

@@ -15,6 +15,8 @@ Analytic steady 2-D velocity fields, each a small frozen dataclass with
 - :class:`Mixture` — (1 − w)·a + w·b of two fields.
 - :class:`LinearFlow` — u = U + G (x − x₀): uniform, divergence, rotation and strain
   (the linear fit to drifter clusters of Molinari & Kirwan 1975, J. Phys. Oceanogr. 5).
+- :class:`PulsingGyre` — a :class:`GaussianGyre` whose strength follows a + b cos ω t (a tidal gyre; it
+  reverses for part of each cycle when |b| > |a|), ``velocity_at(xy, t_s)``: time-dependent.
 - :class:`ABCFlow` — the 3-D Arnold–Beltrami–Childress flow (Dombre et al. 1986, J. Fluid
   Mech. 167, 353), ``velocity(xyz) -> (n, 3)``, ``vorticity(xyz) -> (n, 3)`` (= k u: Beltrami).
 
@@ -222,6 +224,37 @@ class LinearFlow:
 
 
 @dataclass(frozen=True)
+class PulsingGyre:
+    """v(x, t) = (a + b cos ω t) u_g(x), u_g a :class:`GaussianGyre`: steady part a u_g, a harmonic of
+    amplitude fields (b u_g, 0) in phase with cos ω t (t in s on the tracks' time axis); divergence-free.
+
+    ``steady_factor`` a, ``harmonic_factor`` b, ``omega_rad_s`` ω.
+    """
+
+    gyre: GaussianGyre
+    steady_factor: float
+    harmonic_factor: float
+    omega_rad_s: float
+
+    def strength(self, t_s) -> np.ndarray:
+        """a + b cos ω t."""
+        return self.steady_factor + self.harmonic_factor * np.cos(self.omega_rad_s * np.asarray(t_s, float))
+
+    def velocity_at(self, xy, t_s) -> np.ndarray:
+        """(n, 2) m/s at positions (n, 2) m and times (n,) or scalar s."""
+        factor = np.broadcast_to(self.strength(t_s), _xy(xy).shape[:-1])
+        return factor[..., None] * self.gyre.velocity(xy)
+
+    def divergence(self, xy) -> np.ndarray:
+        return np.zeros(_xy(xy).shape[:-1])
+
+
+def _velocity(field, x: np.ndarray, t_s: np.ndarray) -> np.ndarray:
+    """u(x, t) of a time-dependent field (``velocity_at``), else the steady u(x)."""
+    return field.velocity_at(x, t_s) if hasattr(field, "velocity_at") else field.velocity(x)
+
+
+@dataclass(frozen=True)
 class ABCFlow:
     """Arnold–Beltrami–Childress flow in a box of side L (Dombre et al. 1986, J. Fluid Mech. 167, 353):
 
@@ -258,7 +291,7 @@ def simulate_drifters(field, starts_m, *, duration_s: float, fix_interval_s: flo
                       time_jitter_s: float = 0.0, frame=None, track_prefix: str = "D") -> pd.DataFrame:
     """Drifters released at ``starts_m`` (k, d), d = 2 or 3, in ``field``; one row per fix.
 
-    Between fixes dx = u(x) dt + √(2K) dW is stepped by Euler–Maruyama with
+    Between fixes dx = u(x, t) dt + √(2K) dW (u(x) for a steady field) is stepped by Euler–Maruyama with
     ``substeps`` equal steps (Kloeden & Platen 1992, eq. 9.1.1; strong order ½,
     order 1 when K = 0).  Fix j of a track is at start + j·``fix_interval_s``
     plus whole-second jitter uniform in ±``time_jitter_s`` (j ≥ 1; keep it below
@@ -278,9 +311,9 @@ def simulate_drifters(field, starts_m, *, duration_s: float, fix_interval_s: flo
     path[:, 0] = x
     for j in range(1, m):
         h = (times[:, j] - times[:, j - 1]) / substeps
-        for _ in range(substeps):
+        for i in range(substeps):
             noise = np.sqrt(2 * diffusivity_m2_s * h)[:, None] * rng.standard_normal((k, dim))
-            x = x + field.velocity(x) * h[:, None] + noise
+            x = x + _velocity(field, x, times[:, j - 1] + i * h) * h[:, None] + noise
         path[:, j] = x
     fixes = path + position_error_m * rng.standard_normal(path.shape)
     width = max(3, len(str(k)))

@@ -13,6 +13,7 @@ from typing import Any
 import numpy as np
 
 from ..errors import InputError
+from ..units import parse_duration_s
 
 UNIX_EPOCH_UTC = "1970-01-01T00:00:00Z"
 
@@ -75,20 +76,27 @@ def seconds_since_origin(origin_utc: str, text: str) -> float | None:
 
 
 def release_time_s(data_summary: dict | None, text: str | None, *, what: str = "--start") -> float:
-    """A release time given as ``text`` (seconds on the model's time axis, or ISO-8601 when the model knows
-    its time origin) → seconds on that axis; None → :func:`default_start_time_s`.  Bad text: InputError."""
+    """A release time given as ``text`` → seconds on the model's time axis; None → :func:`default_start_time_s`.
+
+    On an absolute axis (the model knows its time origin): an ISO-8601 time (a zone offset is converted; no
+    zone = UTC) or a bare number of seconds on the axis.  On a relative axis: a duration with its unit on the
+    tracks' own axis (``36h``, ``90min``; a bare number is seconds).  Bad text: InputError naming ``what``."""
     summary = data_summary or {}
     if text is None:
         return default_start_time_s(summary)
+    origin = summary.get("time_origin_utc")
+    if origin is None:
+        try:
+            return parse_duration_s(text, what=what, bare_unit="s")
+        except InputError:
+            raise InputError(f"{what} {text!r}: this model was fitted on relative times (no calendar date), so give "
+                             "the release time on its time axis as a duration with a unit, e.g. 36h or 5400s") from None
     try:
         return float(text)
     except ValueError:
         pass
-    origin = summary.get("time_origin_utc")
-    if origin is None:
-        raise InputError(f"{what} {text!r}: this model was fitted on relative times (no calendar date), "
-                         "so give the release time in seconds on its time axis")
     seconds = seconds_since_origin(origin, text)
     if seconds is None:
-        raise InputError(f"{what} {text!r}: not a number of seconds or an ISO-8601 time")
+        raise InputError(f"{what} {text!r}: this model's time axis is absolute (UTC), so give an ISO-8601 time, "
+                         "e.g. 2024-06-03T12:00Z (or seconds since 1970-01-01T00:00Z)")
     return seconds

@@ -26,7 +26,8 @@ class Windows:
     the start; ``times_s`` (T,); ``observed_m`` (R, T, d) interpolated track (NaN where not
     covered); ``length_m`` (R, T) observed track length from the start; ``valid`` (R, T);
     ``obs_var_factor`` (R, T) the interpolated fix's error variance in units of σ_pos²
-    ((1 − w)² + w² for weight w between the two bracketing fixes); ``track_index`` (R,).
+    ((1 − w)² + w² for weight w between the two bracketing fixes); ``track_index`` (R,);
+    ``start_time_s`` (R,) the start fixes' own times (s, the tracks' time axis).
     """
 
     start_m: np.ndarray
@@ -37,6 +38,7 @@ class Windows:
     valid: np.ndarray
     obs_var_factor: np.ndarray
     track_index: np.ndarray
+    start_time_s: np.ndarray
 
 
 def output_times_s(horizon_s: float, every_s: float, *, include=()) -> np.ndarray:
@@ -77,7 +79,7 @@ def _track_windows(t: np.ndarray, x: np.ndarray, rel_times: np.ndarray, first_ho
     observed[~valid] = np.nan
     length[~valid] = np.nan
     velocity = (x[starts] - x[starts - 1]) / (t[starts] - t[starts - 1])[:, None]
-    return x[starts], velocity, observed, length, valid, (1.0 - w) ** 2 + w ** 2
+    return x[starts], velocity, observed, length, valid, (1.0 - w) ** 2 + w ** 2, t[starts]
 
 
 def forecast_windows(tracks, horizons_s, *, step_s: float | None = None,
@@ -111,8 +113,8 @@ def forecast_windows(tracks, horizons_s, *, step_s: float | None = None,
     arrays = [np.concatenate(col) for col in zip(*parts)]
     track_index = np.concatenate(index)
     keep = evenly_spaced(track_index.size, max_starts)
-    start, vel, obs, length, valid, factor = (a[keep] for a in arrays)
-    return Windows(start, vel, rel, obs, length, valid, factor, track_index[keep])
+    start, vel, obs, length, valid, factor, t0 = (a[keep] for a in arrays)
+    return Windows(start, vel, rel, obs, length, valid, factor, track_index[keep], t0)
 
 
 def _subsample(n: int, max_n: int | None) -> np.ndarray:

@@ -253,7 +253,8 @@ def forecast_moments(field, win: Windows, *, method: str = "cubature", position_
                      step_s: float | None = 1800.0) -> tuple[np.ndarray, np.ndarray]:
     """Forecast means (R, T, d) and covariances (R, T, d, d) from every start in ONE batched call.
 
-    Each start is the fix itself with the fix's error as release uncertainty, N(x_start, σ² I);
+    Each start is the fix itself with the fix's error as release uncertainty, N(x_start, σ² I),
+    released at the fix's own time (``win.start_time_s``: a time-varying field is integrated from there);
     the SDE is the field's (μ = posterior mean, D = 2(K I + τ(1 − e^{−a/τ}) Σ)), propagated by
     ``moments.propagate_batch`` with the named moment ``method`` and RK4 steps of at most
     ``step_s`` (s; 30 min is ample for flows whose Lagrangian time scale is hours).
@@ -267,7 +268,7 @@ def forecast_moments(field, win: Windows, *, method: str = "cubature", position_
     covs0 = np.broadcast_to(position_error_m**2 * np.eye(dim), (win.start_m.shape[0], dim, dim))
     times = np.concatenate([[0.0], win.times_s])
     means, covs = propagate_batch(sde_from_field(field), win.start_m, covs0, times, method=obj,
-                                  integrator=integrator)
+                                  integrator=integrator, start_times_s=win.start_time_s)
     means, covs = np.asarray(means)[:, 1:], np.asarray(covs)[:, 1:]
     if not (np.all(np.isfinite(means)) and np.all(np.isfinite(covs))):
         raise InputError(f"score: the {method} forecast produced non-finite numbers; use a smaller step")

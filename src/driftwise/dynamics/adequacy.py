@@ -115,21 +115,24 @@ def hellinger_gaussian(mean1: Any, cov1: Any, mean2: Any, cov2: Any) -> float:
 
 
 def gaussian_adequacy(sde: Any, mean0_m: Any, cov0_m2: Any, times_s: Any, mean_m: Any, cov_m2: Any, *,
-                      key: jax.Array, particles: int = 1000, step_s: float = 300.0) -> GaussianAdequacy:
+                      key: jax.Array, particles: int = 1000, step_s: float = 300.0,
+                      start_time_s: float | None = None) -> GaussianAdequacy:
     """Compare the Gaussian N(``mean_m``, ``cov_m2``) at ``times_s[-1]`` with an ensemble of the same SDE.
 
     ``sde`` (:class:`driftwise.dynamics.sde.SDE`), the release N(``mean0_m`` (d,) m, ``cov0_m2`` (d, d) m²),
     ``times_s`` (T,) s since the release from 0 (the ensemble reports at these times; only the last
     is used), the Gaussian summary at the last time ``mean_m`` (d,) m, ``cov_m2`` (d, d) m²
     (e.g. the cubature forecast).  ``particles`` Euler–Maruyama paths with step ≤ ``step_s`` s
-    (weak order 1; Kloeden & Platen 1992), seeded by ``key``.  Horizontal components only.
+    (weak order 1; Kloeden & Platen 1992), seeded by ``key``; ``start_time_s`` the release's absolute start
+    (s; needed by a time-dependent SDE).  Horizontal components only.
     """
     mean_m, cov_m2 = np.asarray(mean_m, float), np.asarray(cov_m2, float)
     if mean_m.ndim != 1 or mean_m.size < 2 or cov_m2.shape != (mean_m.size, mean_m.size):
         raise InputError(f"gaussian_adequacy: mean_m (d,) and cov_m2 (d, d) with d >= 2 expected, "
                          f"got {mean_m.shape} and {cov_m2.shape}")
     method = EulerMaruyama(particles=int(particles), step_s=float(step_s), chunk=min(int(particles), 4096))
-    result = simulate(sde, mean0_m, cov0_m2, times_s, method=method, key=key, keep_samples=True)
+    result = simulate(sde, mean0_m, cov0_m2, times_s, method=method, key=key, keep_samples=True,
+                      start_time_s=start_time_s)
     samples = np.asarray(result.samples)[:, :2]
     ens_mean, ens_cov = np.asarray(result.mean)[-1, :2], np.asarray(result.cov)[-1, :2, :2]
     m, p = mean_m[:2], cov_m2[:2, :2]
@@ -154,4 +157,4 @@ def spread_adequacy(field: Any, forecast: Any, release: int = 0, *, particles: i
     rel = forecast.releases[release]
     return gaussian_adequacy(sde_from_field(field), rel.start_m, rel.cov0_m2, forecast.times_s,
                              forecast.means[release, -1], forecast.covs[release, -1], key=jax.random.key(seed),
-                             particles=particles, step_s=step_s)
+                             particles=particles, step_s=step_s, start_time_s=rel.start_time_s)

@@ -33,7 +33,7 @@ from scipy.special import logsumexp
 from ..errors import InputError
 from .connectivity import field_transport
 from .methods import make_method, method_name
-from .moments import propagate_batch
+from .tabulate import field_or_table_sde, propagate_with_fallback
 
 __all__ = ["Finds", "BacktrackMap", "backtrack", "candidate_grid", "hpd_levels", "backtrack_memory_bytes",
            "backtrack_from_field", "forward_moments", "posterior_map", "needed_ages"]
@@ -158,9 +158,10 @@ def _log_likelihood(means: np.ndarray, covs: np.ndarray, finds: Finds, index: np
 
 def forward_moments(sde: Any, points_m: np.ndarray, ages_s: np.ndarray, *, method: str = "cubature",
                     step_s: float | None = None, progress: Callable[[int], None] | None = None,
-                    batch: int = BATCH) -> tuple[np.ndarray, np.ndarray]:
+                    batch: int = BATCH, fallback_sde: Any = None) -> tuple[np.ndarray, np.ndarray]:
     """Means (C, A, 2) m and covariances (C, A, 2, 2) m² of point releases at ``points_m (C, 2)`` after
-    ``ages_s (A,)`` (from 0, increasing), in batches; ``method`` a moment method of ``methods.METHODS``."""
+    ``ages_s (A,)`` (from 0, increasing), in batches; ``method`` a moment method of ``methods.METHODS``;
+    ``fallback_sde``: candidates that leave a tabulated field's grid are recomputed through it."""
     obj, integrator = make_method(method, step_s=step_s)
     if integrator is None:
         raise InputError("backtrack: use a moment method (the ensemble cannot give a likelihood per candidate)")
@@ -168,8 +169,8 @@ def forward_moments(sde: Any, points_m: np.ndarray, ages_s: np.ndarray, *, metho
     covs = np.empty((len(points_m), len(ages_s), 2, 2))
     for lo in range(0, len(points_m), batch):
         starts = points_m[lo:lo + batch]
-        m, c = propagate_batch(sde, starts, np.zeros((len(starts), 2, 2)), ages_s, method=obj,
-                               integrator=integrator, chunk=min(batch, 256))
+        m, c = propagate_with_fallback(sde, fallback_sde, starts, np.zeros((len(starts), 2, 2)), ages_s, method=obj,
+                                       integrator=integrator, chunk=min(batch, 256))
         means[lo:lo + batch], covs[lo:lo + batch] = np.asarray(m)[..., :2], np.asarray(c)[..., :2, :2]
         if progress is not None:
             progress(len(starts))
@@ -199,28 +200,37 @@ def posterior_map(x_m: np.ndarray, y_m: np.ndarray, release_times_s: Any, finds:
 
 def backtrack(sde: Any, finds: Finds, x_m: np.ndarray, y_m: np.ndarray, release_times_s: Any, *,
               method: str = "cubature", step_s: float | None = None,
-              progress: Callable[[int], None] | None = None, batch: int = BATCH) -> BacktrackMap:
+              progress: Callable[[int], None] | None = None, batch: int = BATCH,
+              fallback_sde: Any = None) -> BacktrackMap:
     """Posterior over release cell (grid ``x_m``, ``y_m``) and time (``release_times_s (L,)``) given ``finds``
     (module doc): :func:`forward_moments` of every cell centre to every needed age, then :func:`posterior_map`.
-    ``sde``: sde.SDE; ``method``: a moment method of ``methods.METHODS`` with RK4 ``step_s``."""
+    ``sde``: sde.SDE; ``method``: a moment method of ``methods.METHODS`` with RK4 ``step_s``; ``fallback_sde`` as in
+    :func:`forward_moments`."""
     ages = needed_ages(finds, release_times_s)
     gx, gy = np.meshgrid(x_m, y_m)
     points = np.stack([gx, gy], -1).reshape(-1, 2)
-    means, covs = forward_moments(sde, points, ages, method=method, step_s=step_s, progress=progress, batch=batch)
+    means, covs = forward_moments(sde, points, ages, method=method, step_s=step_s, progress=progress, batch=batch,
+                                  fallback_sde=fallback_sde)
     return posterior_map(x_m, y_m, release_times_s, finds, ages, means, covs, method_name(make_method(method)[0]))
 
 
 def backtrack_from_field(field: Any, finds: Finds, region_m: Any, spacing_m: float, release_times_s: Any, *,
-                         method: str = "cubature", step_s: float | None = None, posterior: Any = None,
+                         method: str = "cubature", step_s: float | None = None, posterior: str = "auto",
                          diffusivity_m2_s: float | None = None, decorrelation_time_s: float | None = None,
                          progress: Callable[[int], None] | None = None) -> BacktrackMap:
-    """:func:`backtrack` in a fitted FlowField: the SDE of ``connectivity.field_transport`` through ``posterior``
-    (default the exact ``PointPosterior``), candidates on a ``spacing_m`` grid over ``region_m = (x0, y0, x1, y1)``."""
+    """:func:`backtrack` in a fitted FlowField: the SDE of ``connectivity.field_transport`` through the exact
+    posterior or a table of it (``posterior`` "auto" | "exact" | "table", the rule of ``spread.spread_from_field``:
+    "auto" tabulates when candidates × RK4 steps ≥ ``tabulate.TABLE_RELEASE_STEPS``, over the region and the data
+    extent), candidates on a ``spacing_m`` grid over ``region_m = (x0, y0, x1, y1)``."""
     if int(getattr(field, "dim", 2)) != 2:
         raise InputError("backtrack: the model must be 2-D")
-    sde = field_transport(field, posterior=posterior, diffusivity_m2_s=diffusivity_m2_s,
-                          decorrelation_time_s=decorrelation_time_s)
+    sde = field_transport(field, diffusivity_m2_s=diffusivity_m2_s, decorrelation_time_s=decorrelation_time_s)
     x, y = candidate_grid(region_m, spacing_m)
-    result = backtrack(sde, finds, x, y, release_times_s, method=method, step_s=step_s, progress=progress)
+    x0, y0, x1, y1 = (float(v) for v in region_m)
+    rk4 = make_method(method, step_s=step_s)[1]
+    table_sde = field_or_table_sde(field, sde, [[x0, y0], [x1, y1]], len(x) * len(y),
+                                   needed_ages(finds, release_times_s), rk4, posterior)
+    result = backtrack(sde if table_sde is None else table_sde, finds, x, y, release_times_s, method=method,
+                       step_s=step_s, progress=progress, fallback_sde=None if table_sde is None else sde)
     origin = (getattr(field, "data_summary", None) or {}).get("time_origin_utc")
     return dataclasses.replace(result, frame=field.frame, time_origin_utc=origin)

@@ -26,6 +26,9 @@ inside bounds and the exact gradient of a jitted jax objective.  Two routes:
   reverse mode cannot differentiate; with two parameters forward mode is as cheap).
   Exact for that method but costly for a large field (each evaluation is a full forecast).
 
+A time-varying field (``is_time_varying``) takes route 2 with its time SDE (sde.timed_field_sde),
+each start forecast from its own fix time: route 1's stage values would depend on each start's time.
+
 K and τ are told apart by how the spread grows with lag (K: linear; the velocity-error
 term: quadratic for lags ≪ τ, linear beyond) and by the spatial variation of Σ(x).
 """
@@ -53,7 +56,7 @@ from ..gp.field import batch_from_observations
 from ..gp.variational import exact_q
 from ..units import format_duration
 from .moments import RK4, Linearize, propagate_one, substep_counts
-from .sde import PointPosterior, field_drift, transport_sde, velocity_memory_weight
+from .sde import PointPosterior, field_drift, timed_field_sde, transport_sde, velocity_memory_weight
 
 # Lags, bounds and the RK4 step follow the data (driftwise.data.datascales): up to 5 lags from 2 sampling
 # intervals to a third of the median track duration (hourly 3-day tracks: 2, 4, 7, 13, 24 h), K within
@@ -62,8 +65,9 @@ RK4_STEPS_PER_LONGEST_LAG = 48
 
 
 def _posterior_of(field: Any) -> Any:
-    """The single-point posterior (pytree with mean_at, cov_at) of a FlowField, or the object itself."""
-    if hasattr(field, "cov_at") and hasattr(field, "mean_at"):
+    """The single-point posterior (pytree with mean_at, cov_at) of a FlowField, or the object itself (also a
+    time-varying field, evaluated through its own mean_at(x, t_s=…) and cov_between)."""
+    if getattr(field, "is_time_varying", False) or (hasattr(field, "cov_at") and hasattr(field, "mean_at")):
         return field
     return PointPosterior.from_field(field)
 
@@ -111,7 +115,8 @@ class Transitions:
     ``start_m`` (R, d) start fixes, ``times_s`` (1 + L,) = (0, lags), ``observed_m`` (R, L, d)
     the track at t_start + lag (linear interpolation between fixes), ``obs_var_m2`` (R, L) its
     error variance per component, ``weight`` (R, L) 1 where observed, 0 elsewhere and for the
-    padding rows (R is padded to a multiple of 128 so similar calls share one compilation).
+    padding rows (R is padded to a multiple of 128 so similar calls share one compilation);
+    ``start_time_s`` (R,) the start fixes' own times (s).
     """
 
     start_m: np.ndarray
@@ -119,6 +124,7 @@ class Transitions:
     observed_m: np.ndarray
     obs_var_m2: np.ndarray
     weight: np.ndarray
+    start_time_s: np.ndarray | None = None
 
 
 def _tracks_from_observations(obs) -> Any:
@@ -171,7 +177,8 @@ def transitions_from_tracks(tracks_or_observations, *, lags_s, position_error_m:
     observed = np.where(valid[..., None], win.observed_m[:, keep], 0.0)[rows]
     obs_var = (position_error_m**2 * win.obs_var_factor[:, keep] + floor_m2)[rows]
     weight = np.concatenate([valid.astype(float), np.zeros((pad, lags.size))])
-    return Transitions(win.start_m[rows], np.concatenate([[0.0], lags]), observed, obs_var, weight)
+    return Transitions(win.start_m[rows], np.concatenate([[0.0], lags]), observed, obs_var, weight,
+                       win.start_time_s[rows])
 
 
 def _mean_log_likelihood(means, covs, observed, obs_var, weight):
@@ -270,26 +277,32 @@ def _path_value_and_grad(theta, means, jac, sigma, hs, ages, cov0, out_index, ob
 
 # ----- route 2: any moment method, forward-mode gradient through the propagator
 def _propagated_log_likelihood(theta, posterior, method, integrator, chunk, means0, covs0, times_s,
-                               observed, obs_var, weight):
-
-    sde = transport_sde(posterior, jnp.exp(theta[0]), jnp.exp(theta[1]))
+                               observed, obs_var, weight, starts_s=None):
+    """Mean log likelihood through the propagator; a time-varying field (``starts_s`` (R,) given) uses its
+    time SDE from each start's own time."""
+    if starts_s is None:
+        sde = transport_sde(posterior, jnp.exp(theta[0]), jnp.exp(theta[1]))
+    else:
+        sde = timed_field_sde(posterior, jnp.exp(theta[0]), jnp.exp(theta[1]), True)
 
     def one(release):
-        return propagate_one(sde, method, integrator, release[0], release[1], times_s)
+        return propagate_one(sde, method, integrator, release[0], release[1], times_s,
+                             0.0 if release[2] is None else release[2])
 
     if chunk >= means0.shape[0]:
-        means, covs = jax.vmap(one)((means0, covs0))
+        means, covs = jax.vmap(one)((means0, covs0, starts_s))
     else:
-        means, covs = jax.lax.map(one, (means0, covs0), batch_size=chunk)
+        means, covs = jax.lax.map(one, (means0, covs0, starts_s), batch_size=chunk)
     return _mean_log_likelihood(means[:, 1:], covs[:, 1:], observed, obs_var, weight)
 
 
 @functools.partial(jax.jit, static_argnames=("method", "chunk"))
-def propagated_value_and_grad(theta, posterior, method, integrator, chunk, means0, covs0, times_s, observed, obs_var, weight):
+def propagated_value_and_grad(theta, posterior, method, integrator, chunk, means0, covs0, times_s, observed, obs_var,
+                              weight, starts_s=None):
     """(−mean log likelihood, gradient) with the propagator inside (jax.jacfwd)."""
     def f(th):
         value = -_propagated_log_likelihood(th, posterior, method, integrator, chunk, means0, covs0, times_s,
-                                            observed, obs_var, weight)
+                                            observed, obs_var, weight, starts_s)
         return value, value
 
     grad, value = jax.jacfwd(f, has_aux=True)(theta)
@@ -302,7 +315,8 @@ def transition_objective(field: Any, trans: Transitions, sigma: float, method: A
     posterior = _posterior_of(field)
     data = (jnp.asarray(trans.observed_m), jnp.asarray(trans.obs_var_m2), jnp.asarray(trans.weight))
     r, d = trans.start_m.shape
-    if isinstance(method, Linearize) and isinstance(integrator, RK4):
+    timed = bool(getattr(posterior, "is_time_varying", False))
+    if isinstance(method, Linearize) and isinstance(integrator, RK4) and not timed:
         hs, ages, out_index = rk4_substeps(trans.times_s, float(integrator.step_s))
         hs_j = jnp.asarray(hs)
         means, jac, sig = _linearized_path_jit(posterior, jnp.asarray(trans.start_m), hs_j, chunk=min(r, 256))
@@ -316,9 +330,10 @@ def transition_objective(field: Any, trans: Transitions, sigma: float, method: A
         covs0 = jnp.asarray(np.broadcast_to(sigma**2 * np.eye(d), (r, d, d)))
         args = (posterior, method, integrator, int(min(chunk, r)), jnp.asarray(trans.start_m), covs0,
                 jnp.asarray(trans.times_s))
+        starts = jnp.asarray(trans.start_time_s) if timed else None
 
         def evaluate(theta):
-            return propagated_value_and_grad(jnp.asarray(theta), *args, *data)
+            return propagated_value_and_grad(jnp.asarray(theta), *args, *data, starts)
 
     def fun(theta):
         value, grad = evaluate(theta)
@@ -528,6 +543,8 @@ def calibrate(field: Any, tracks_or_observations, *, folds: int = 2, refit: Call
     ``fit_info["calibration"]`` keeps the previous ones and the optimiser's record.  The
     variational posterior itself is unchanged.  ``lags_s`` default: from the data's sampling interval
     and track durations (:attr:`driftwise.data.datascales.DataScales.calibration_lags_s`).
+    After a transition fit (``fit_info["likelihood"] == "transitions"``) K was estimated by the fit's own
+    likelihood: the field keeps its K and τ and the calibrated pair is stored as ``fit_info["calibration_check"]``.
     """
     lags_s = calibration_scales(tracks_or_observations).calibration_lags_s if lags_s is None else lags_s
     if folds == 1:
@@ -547,6 +564,10 @@ def calibrate(field: Any, tracks_or_observations, *, folds: int = 2, refit: Call
         "decorrelation_time_source_before": record.get("decorrelation_time_source")})
     source = "calibrated: transition likelihood on the fit tracks" + (
         f" ({folds}-fold cross-validated by track)" if folds != 1 else " (in sample)")
+    if record.get("likelihood") == "transitions":   # K came from the transition fit's own bound: this is a check
+        record["calibration_check"] = {"diffusivity_m2_s": float(k), "decorrelation_time_s": float(tau),
+                                       "source": source}
+        return dataclasses.replace(field, metadata_json=json.dumps(meta, sort_keys=True))
     record["decorrelation_time_source"] = record["diffusivity_source"] = source
     params = dataclasses.replace(field.params, log_diffusivity_m2_s=jnp.log(jnp.asarray(k, dtype=jnp.float64)))
     return dataclasses.replace(field, params=params, decorrelation_time_s=float(tau),

@@ -37,11 +37,11 @@ import numpy as np
 from ..errors import InputError
 from .ensemble import particle_paths
 from .methods import make_method, method_name
-from .moments import propagate_batch
 from .sde import PointPosterior, join_from_jit, split_for_jit, transport_sde
 from .sites import Site, cell_covariance_m2, inside_polygon, seed_site
 from .spread import check_times, probability_inside
 from .supportcheck import SUPPORT_VARIANCE_FRACTION
+from .tabulate import field_or_table_sde, propagate_with_fallback
 
 __all__ = ["Connectivity", "connect", "connect_ensemble", "connect_from_field", "field_transport",
            "first_passage_s", "connect_memory_bytes"]
@@ -141,11 +141,12 @@ def _outside(support: Callable | None, means: np.ndarray) -> np.ndarray | None:
 def connect(sde: Any, sites: tuple[Site, ...], times_s: Any, *, per_site: int = 64, method: Any = None,
             integrator: Any = None, seed: int = 0, threshold: float = DEFAULT_THRESHOLD,
             support: Callable | None = None, progress: Callable[[int], None] | None = None,
-            batch: int = BATCH) -> Connectivity:
+            batch: int = BATCH, fallback_sde: Any = None) -> Connectivity:
     """Connectivity by moment propagation (module doc).  ``sde``: sde.SDE; ``sites``: Site tuple;
     ``times_s (T,)`` s since the release, from 0; ``method`` a moments strategy (default cubature) with
     ``integrator`` (default RK4(600 s)); ``support``: points (n, 2) m → variance ratio (n,) or None;
-    ``progress(n)`` is called after each batch with the releases done."""
+    ``progress(n)`` is called after each batch with the releases done; ``fallback_sde``: releases whose moments
+    come out non-finite (they left a tabulated field's grid) are recomputed through it."""
     obj, default_rk4 = make_method("cubature")
     method = obj if method is None else method
     times = check_times(times_s)
@@ -156,9 +157,8 @@ def connect(sde: Any, sites: tuple[Site, ...], times_s: Any, *, per_site: int = 
     centroid = np.zeros((n_sites, n_times, 2))
     for lo in range(0, len(points), batch):
         sl = slice(lo, lo + batch)
-        means, covs = propagate_batch(sde, points[sl], covs0[sl], times, method=method,
-                                      integrator=integrator or default_rk4, chunk=min(batch, 256))
-        means, covs = np.asarray(means), np.asarray(covs)
+        means, covs = propagate_with_fallback(sde, fallback_sde, points[sl], covs0[sl], times, method=method,
+                                              integrator=integrator or default_rk4, chunk=min(batch, 256))
         if not (np.all(np.isfinite(means)) and np.all(np.isfinite(covs))):
             raise InputError("the connectivity forecast produced non-finite numbers (the integration diverged); "
                              "use a smaller --step")
@@ -230,23 +230,28 @@ def connect_ensemble(sde: Any, sites: tuple[Site, ...], times_s: Any, *, particl
 
 def connect_from_field(field: Any, sites: tuple[Site, ...], times_s: Any, *, method: str = "cubature",
                        per_site: int = 64, particles: int = 10_000, step_s: float | None = None, seed: int = 0,
-                       threshold: float = DEFAULT_THRESHOLD, start_time_s: float = 0.0, posterior: Any = None,
+                       threshold: float = DEFAULT_THRESHOLD, start_time_s: float = 0.0, posterior: str = "auto",
                        diffusivity_m2_s: float | None = None, decorrelation_time_s: float | None = None,
                        progress: Callable[[int], None] | None = None) -> Connectivity:
-    """Connectivity between ``sites`` in a fitted FlowField: the SDE of :func:`field_transport` through
-    ``posterior`` (default exact), ``method`` a name of ``methods.METHODS`` (``"ensemble"``: particles per
-    site), ``step_s`` the RK4 or Euler–Maruyama step (s); adds the data-support share, the frame and the
+    """Connectivity between ``sites`` in a fitted FlowField: the SDE of :func:`field_transport`, through the
+    exact posterior or a table of it (``posterior`` "auto" | "exact" | "table", the rule of
+    ``spread.spread_from_field``: "auto" tabulates moment methods when releases × RK4 steps ≥
+    ``tabulate.TABLE_RELEASE_STEPS``, over the sites' vertices and the data extent), ``method`` a name of
+    ``methods.METHODS`` (``"ensemble"``: particles per site), ``step_s`` the RK4 or Euler–Maruyama step (s); adds the data-support share, the frame and the
     absolute time origin of the model."""
     if int(getattr(field, "dim", 2)) != 2:
         raise InputError("connect: sites are horizontal polygons; the model must be 2-D")
     obj, integrator = make_method(method, particles=particles, step_s=step_s)
-    sde = field_transport(field, posterior=posterior, diffusivity_m2_s=diffusivity_m2_s,
-                          decorrelation_time_s=decorrelation_time_s)
+    sde = field_transport(field, diffusivity_m2_s=diffusivity_m2_s, decorrelation_time_s=decorrelation_time_s)
+    corners = np.concatenate([s.polygon_m for s in sites])
+    table_sde = field_or_table_sde(field, sde, corners, len(sites) * per_site, check_times(times_s), integrator,
+                                   posterior)
     common = dict(seed=seed, threshold=threshold, support=field.local_variance_ratio, progress=progress)
     if integrator is None:
         result = connect_ensemble(sde, sites, times_s, particles=obj.particles, step_s=obj.step_s, **common)
     else:
-        result = connect(sde, sites, times_s, per_site=per_site, method=obj, integrator=integrator, **common)
+        result = connect(sde if table_sde is None else table_sde, sites, times_s, per_site=per_site, method=obj,
+                         integrator=integrator, fallback_sde=None if table_sde is None else sde, **common)
     origin = (getattr(field, "data_summary", None) or {}).get("time_origin_utc")
     return _with_context(result, field.frame, origin, start_time_s)
 

@@ -7,6 +7,8 @@ N(mean0, cov0) and are simulated in chunks; each chunk adds its shifted power
 sums up to fourth order to float64 accumulators, so memory is bounded by one
 chunk whatever the particle count, and the sample mean, covariance and their
 Monte Carlo standard errors follow exactly from the sums (no second pass).
+For a time-dependent SDE (``SDE.with_time``) each step evaluates μ and L at the
+step's start time t_k = start + age (the Itô left point).
 """
 
 from __future__ import annotations
@@ -19,7 +21,7 @@ import jax
 import jax.numpy as jnp
 
 from ..errors import InputError
-from .moments import psd_cholesky, substep_counts, validate_release, validate_times
+from .moments import psd_cholesky, substep_counts, validate_release, validate_start_times, validate_times
 from .sde import SDE, join_from_jit, split_for_jit
 
 __all__ = ["EulerMaruyama", "EnsembleResult", "simulate", "particle_paths"]
@@ -58,24 +60,27 @@ class EnsembleResult:
     particles: int = field(default=0, metadata=dict(static=True))
 
 
-def _paths(sde: SDE, method: EulerMaruyama, mean0, chol0, times_s, key) -> jax.Array:
-    """Positions (T, chunk, d) of one chunk of particles at the output times."""
+def _paths(sde: SDE, method: EulerMaruyama, mean0, chol0, times_s, key, start_s=0.0) -> jax.Array:
+    """Positions (T, chunk, d) of one chunk of particles at the output times; ``start_s`` the release's
+    absolute start time (s), seen only by a time-dependent SDE."""
     k_init, k_path = jax.random.split(key)
     x0 = mean0 + jax.random.normal(k_init, (method.chunk, mean0.shape[-1])) @ chol0.T
-    return particle_paths(sde, x0, times_s, method.step_s, k_path)
+    return particle_paths(sde, x0, times_s, method.step_s, k_path, start_s)
 
 
-def particle_paths(sde: SDE, x0: jax.Array, times_s: jax.Array, step_s: Any, key: jax.Array) -> jax.Array:
-    """Euler–Maruyama positions (T, n, d) at ``times_s`` (T,) s of particles starting at ``x0`` (n, d) m.
+def particle_paths(sde: SDE, x0: jax.Array, times_s: jax.Array, step_s: Any, key: jax.Array,
+                   start_s: Any = 0.0) -> jax.Array:
+    """Euler–Maruyama positions (T, n, d) at ``times_s`` (T,) s of particles starting at ``x0`` (n, d) m at
+    absolute time ``start_s`` (s; seen only by a time-dependent SDE).
 
     Each output interval is cut into ceil(Δt/step_s) equal steps (traceable; jit at the caller)."""
 
     def em_step(h, state):
         x, k, age = state  # age: time since the release (s), for a diffusion that depends on it
         k, sub = jax.random.split(k)
-        chol = jax.vmap(lambda z: psd_cholesky(sde.rate(z, age)))(x)
+        chol = jax.vmap(lambda z: psd_cholesky(sde.rate(z, age, start_s + age)))(x)
         noise = jnp.einsum("nij,nj->ni", chol, jax.random.normal(sub, x.shape))
-        return x + h * jax.vmap(sde.drift)(x) + jnp.sqrt(h) * noise, k, age + h
+        return x + h * jax.vmap(lambda z: sde.drift_at(z, start_s + age))(x) + jnp.sqrt(h) * noise, k, age + h
 
     def interval(state, span):
         n = substep_counts(span, step_s)
@@ -110,16 +115,17 @@ def _moments_from_sums(sums: jax.Array, shift: jax.Array):
 
 
 @partial(jax.jit, static_argnames=("static", "method", "keep_samples"))
-def _simulate_jit(dynamic, static, method, keep_samples, mean0, cov0, times_s, key):
+def _simulate_jit(dynamic, static, method, keep_samples, mean0, cov0, times_s, key, start_s=None):
     sde = join_from_jit(dynamic, static)
+    start_s = 0.0 if start_s is None else start_s
     chol0 = psd_cholesky(cov0)
     n_chunks = -(-method.particles // method.chunk)
     keys = jax.random.split(key, n_chunks)
-    first = _paths(sde, method, mean0, chol0, times_s, keys[0])
+    first = _paths(sde, method, mean0, chol0, times_s, keys[0], start_s)
     shift = jnp.mean(first, axis=1)  # a nearby centre keeps the power sums well conditioned
 
     def add_chunk(sums, i):
-        xs = jax.lax.cond(i == 0, lambda: first, lambda: _paths(sde, method, mean0, chol0, times_s, keys[i]))
+        xs = jax.lax.cond(i == 0, lambda: first, lambda: _paths(sde, method, mean0, chol0, times_s, keys[i], start_s))
         valid = i * method.chunk + jnp.arange(method.chunk) < method.particles
         return sums + _power_sums(xs, shift, valid), xs[-1] if keep_samples else None
 
@@ -152,16 +158,20 @@ def simulate(
     method: EulerMaruyama = EulerMaruyama(),
     key: jax.Array,
     keep_samples: bool = False,
+    start_time_s: float | None = None,
 ) -> EnsembleResult:
     """Euler–Maruyama ensemble of one release: sample moments at times_s (T,).
 
     mean0 (d,) m, cov0 (d, d) m² (initial positions ~ N(mean0, cov0); zeros for
     a point release); times_s seconds since the release, from 0, increasing;
-    key a jax.random key (required, keyword-only).  With keep_samples the
-    final-time positions (N, d) are returned too.  Raises InputError on bad input.
+    key a jax.random key (required, keyword-only); ``start_time_s`` the release's
+    absolute start (s; required by a time-dependent SDE, ignored by a steady one).
+    With keep_samples the final-time positions (N, d) are returned too.  Raises
+    InputError on bad input.
     """
     mean, cov = validate_release(mean0, cov0, "release")
     times = validate_times(times_s)
+    start = validate_start_times(sde, start_time_s, ())
     method = _validate_method(method)
     dynamic, static = split_for_jit(sde)
-    return _simulate_jit(dynamic, static, method, bool(keep_samples), mean, cov, times, key)
+    return _simulate_jit(dynamic, static, method, bool(keep_samples), mean, cov, times, key, start)

@@ -26,8 +26,12 @@ The ODE is integrated by `RK4(step_s)` (fixed step, classical order 4) or
 `Dopri5(rtol, atol)` (Dormand & Prince 1980 embedded 5(4) pair, adaptive),
 both landing exactly on the requested output times.  `propagate` handles one
 release; `propagate_batch` maps it over thousands of releases in one compiled
-call.  The field is steady, so a release's start time only labels its outputs:
-times here are seconds since the release (starting at 0).
+call.  Output times are seconds since the release (starting at 0).  A steady SDE
+ignores the release's start time (it only labels the outputs); for a time-dependent
+SDE (``SDE.with_time``) the absolute time t = start + age rides along in the ODE state
+as the age a with da/dt = 1, so every Runge–Kutta stage sees its own time (t, t + h/2,
+t + h for RK4): the moment equations above with μ(x, t) and D(x, t) are then
+integrated exactly as a non-autonomous ODE.
 """
 
 from __future__ import annotations
@@ -91,12 +95,13 @@ def psd_cholesky(cov: jax.Array) -> jax.Array:
 # ----------------------------------------------------------------- strategies
 
 
-def _cubature_expectations(sde: SDE, mean, cov, age_s, points, weights):
-    """(E[μ], E[μ(x)(x − m)ᵀ], E[D]) by the rule Σ_i w_i f(m + √P ξ_i); age_s: time since release (s)."""
+def _cubature_expectations(sde: SDE, mean, cov, age_s, t_s, points, weights):
+    """(E[μ], E[μ(x)(x − m)ᵀ], E[D]) by the rule Σ_i w_i f(m + √P ξ_i); age_s: time since release (s),
+    t_s: absolute time (s; used only by a time-dependent SDE)."""
     dx = jnp.asarray(points) @ psd_cholesky(cov).T  # (n, d)
     w = jnp.asarray(weights)
-    drift = jax.vmap(sde.drift)(mean + dx)  # (n, d)
-    diffusion = jax.vmap(lambda x: sde.rate(x, age_s))(mean + dx)  # (n, d, d)
+    drift = jax.vmap(lambda x: sde.drift_at(x, t_s))(mean + dx)  # (n, d)
+    diffusion = jax.vmap(lambda x: sde.rate(x, age_s, t_s))(mean + dx)  # (n, d, d)
     return w @ drift, (drift * w[:, None]).T @ dx, jnp.tensordot(w, diffusion, axes=1)
 
 
@@ -109,9 +114,9 @@ class Linearize:
     constant diffusion; one drift Jacobian per evaluation.
     """
 
-    def expectations(self, sde: SDE, mean: jax.Array, cov: jax.Array, age_s=0.0):
-        jac = jax.jacfwd(sde.drift)(mean)
-        return sde.drift(mean), jac @ cov, sde.rate(mean, age_s)
+    def expectations(self, sde: SDE, mean: jax.Array, cov: jax.Array, age_s=0.0, t_s=0.0):
+        jac = jax.jacfwd(lambda x: sde.drift_at(x, t_s))(mean)
+        return sde.drift_at(mean, t_s), jac @ cov, sde.rate(mean, age_s, t_s)
 
 
 @dataclass(frozen=True)
@@ -146,8 +151,8 @@ class Unscented:
         weights[0] = lam / (d + lam)
         return points, weights
 
-    def expectations(self, sde: SDE, mean: jax.Array, cov: jax.Array, age_s=0.0):
-        return _cubature_expectations(sde, mean, cov, age_s, *self.points_and_weights(mean.shape[-1]))
+    def expectations(self, sde: SDE, mean: jax.Array, cov: jax.Array, age_s=0.0, t_s=0.0):
+        return _cubature_expectations(sde, mean, cov, age_s, t_s, *self.points_and_weights(mean.shape[-1]))
 
 
 @dataclass(frozen=True)
@@ -163,8 +168,8 @@ class SphericalCubature:
         axes = np.sqrt(d) * np.eye(d)
         return np.concatenate([axes, -axes]), np.full(2 * d, 0.5 / d)
 
-    def expectations(self, sde: SDE, mean: jax.Array, cov: jax.Array, age_s=0.0):
-        return _cubature_expectations(sde, mean, cov, age_s, *self.points_and_weights(mean.shape[-1]))
+    def expectations(self, sde: SDE, mean: jax.Array, cov: jax.Array, age_s=0.0, t_s=0.0):
+        return _cubature_expectations(sde, mean, cov, age_s, t_s, *self.points_and_weights(mean.shape[-1]))
 
 
 def hermite_nodes_weights(order: int) -> tuple[np.ndarray, np.ndarray]:
@@ -198,20 +203,22 @@ class GaussHermite:
         points = np.array(list(itertools.product(nodes, repeat=d)))
         return points, np.prod(np.array(list(itertools.product(weights, repeat=d))), axis=1)
 
-    def expectations(self, sde: SDE, mean: jax.Array, cov: jax.Array, age_s=0.0):
-        return _cubature_expectations(sde, mean, cov, age_s, *self.points_and_weights(mean.shape[-1]))
+    def expectations(self, sde: SDE, mean: jax.Array, cov: jax.Array, age_s=0.0, t_s=0.0):
+        return _cubature_expectations(sde, mean, cov, age_s, t_s, *self.points_and_weights(mean.shape[-1]))
 
 
 Method = Linearize | Unscented | SphericalCubature | GaussHermite
 
 
-def moment_rates(method: Method, sde: SDE, mean: jax.Array, cov: jax.Array, age_s=0.0):
-    """(dm/dt (d,), dP/dt (d, d)) of the Gaussian moment ODE at (m, P), ``age_s`` s after the release.
+def moment_rates(method: Method, sde: SDE, mean: jax.Array, cov: jax.Array, age_s=0.0, t_s=0.0):
+    """(dm/dt (d,), dP/dt (d, d)) of the Gaussian moment ODE at (m, P), ``age_s`` s after the release
+    and at absolute time ``t_s`` (s; seen only by a time-dependent SDE).
 
     dm/dt = E[μ], dP/dt = C + Cᵀ + sym(E[D]) with C = E[μ(x)(x − m)ᵀ]; the
     result is exactly symmetric.  Units: m/s and m²/s.
     """
-    e_drift, cross, e_diff = method.expectations(sde, mean, cov, age_s)
+    # a steady SDE calls expectations(sde, m, P, age) exactly as before time existed (custom strategies keep working)
+    e_drift, cross, e_diff = method.expectations(sde, mean, cov, age_s, *((t_s,) if sde.with_time else ()))
     return e_drift, (cross + cross.T) + 0.5 * (e_diff + e_diff.T)
 
 
@@ -350,14 +357,17 @@ Integrator = RK4 | Dopri5
 # ------------------------------------------------------------------ propagate
 
 
-def propagate_one(sde: SDE, method: Method, integrator: Integrator, mean0, cov0, times_s):
-    """Means (T, d) and covariances (T, d, d) of one release (traceable)."""
+def propagate_one(sde: SDE, method: Method, integrator: Integrator, mean0, cov0, times_s, start_time_s=0.0):
+    """Means (T, d) and covariances (T, d, d) of one release (traceable); ``start_time_s`` is the release's
+    absolute start time (s), seen only by a time-dependent SDE (t = start + age)."""
     d = mean0.shape[-1]
     n = d + d * d
-    age = [jnp.zeros(1, dtype=mean0.dtype)] if sde.with_age else []  # time since release rides along: d(age)/dt = 1
+    clock = sde.with_age or sde.with_time
+    age = [jnp.zeros(1, dtype=mean0.dtype)] if clock else []  # time since release rides along: d(age)/dt = 1
 
     def f(y):
-        dm, dp = moment_rates(method, sde, y[:d], y[d:n].reshape(d, d), y[n] if sde.with_age else 0.0)
+        a = y[n] if clock else 0.0
+        dm, dp = moment_rates(method, sde, y[:d], y[d:n].reshape(d, d), a, start_time_s + a)
         return jnp.concatenate([dm, dp.ravel()] + [jnp.ones_like(a) for a in age])
 
     y0 = jnp.concatenate([mean0, (0.5 * (cov0 + cov0.T)).ravel()] + age)
@@ -366,34 +376,40 @@ def propagate_one(sde: SDE, method: Method, integrator: Integrator, mean0, cov0,
 
 
 @partial(jax.jit, static_argnames=("static", "method"))
-def _propagate_jit(dynamic, static, method, integrator, mean0, cov0, times_s):
-    return propagate_one(join_from_jit(dynamic, static), method, integrator, mean0, cov0, times_s)
+def _propagate_jit(dynamic, static, method, integrator, mean0, cov0, times_s, start_time_s=None):
+    return propagate_one(join_from_jit(dynamic, static), method, integrator, mean0, cov0, times_s,
+                         0.0 if start_time_s is None else start_time_s)
 
 
-def _propagate_rows(dynamic, static, method, integrator, chunk, means0, covs0, times_s):
-    """Releases (R, d), (R, d, d) in vmapped chunks of ≤ ``chunk``, run one after another (jax.lax.map)."""
+def _propagate_rows(dynamic, static, method, integrator, chunk, means0, covs0, times_s, start_times_s=None):
+    """Releases (R, d), (R, d, d) in vmapped chunks of ≤ ``chunk``, run one after another (jax.lax.map);
+    ``start_times_s`` (R,) absolute start times (s) for a time-dependent SDE, else None."""
     sde = join_from_jit(dynamic, static)
 
     def one(release):
-        return propagate_one(sde, method, integrator, release[0], release[1], times_s)
+        start = 0.0 if release[2] is None else release[2]
+        return propagate_one(sde, method, integrator, release[0], release[1], times_s, start)
 
-    return jax.lax.map(one, (means0, covs0), batch_size=min(chunk, means0.shape[0]))
+    return jax.lax.map(one, (means0, covs0, start_times_s), batch_size=min(chunk, means0.shape[0]))
 
 
 @partial(jax.jit, static_argnames=("static", "method", "chunk", "mesh"))
-def propagate_batch_jit(dynamic, static, method, integrator, chunk, means0, covs0, times_s, mesh=None):
+def propagate_batch_jit(dynamic, static, method, integrator, chunk, means0, covs0, times_s, mesh=None,
+                        start_times_s=None):
     """The compiled batch propagator behind :func:`propagate_batch` (exposed so tests can count compilations).
 
-    With a ``mesh`` (devices.mesh) the releases, row-sharded over its devices (devices.shard_rows), are
-    propagated by each device on its own rows (jax.shard_map); everything else is replicated.
+    With a ``mesh`` (devices.mesh) the releases (and their start times), row-sharded over its devices
+    (devices.shard_rows), are propagated by each device on its own rows (jax.shard_map); everything else is
+    replicated.
     """
     if mesh is None:
-        return _propagate_rows(dynamic, static, method, integrator, chunk, means0, covs0, times_s)
+        return _propagate_rows(dynamic, static, method, integrator, chunk, means0, covs0, times_s, start_times_s)
     spec = PartitionSpec(AXIS)
-    local = jax.shard_map(lambda d, i, m, c, t: _propagate_rows(d, static, method, i, chunk, m, c, t), mesh=mesh,
-                          in_specs=(PartitionSpec(), PartitionSpec(), spec, spec, PartitionSpec()),
+    rows = (means0, covs0) + (() if start_times_s is None else (start_times_s,))
+    local = jax.shard_map(lambda d, i, t, *r: _propagate_rows(d, static, method, i, chunk, r[0], r[1], t, *r[2:]),
+                          mesh=mesh, in_specs=(PartitionSpec(), PartitionSpec(), PartitionSpec()) + (spec,) * len(rows),
                           out_specs=(spec, spec))
-    return local(dynamic, integrator, means0, covs0, times_s)
+    return local(dynamic, integrator, times_s, *rows)
 
 
 def validate_times(times_s: Any) -> np.ndarray:
@@ -404,6 +420,20 @@ def validate_times(times_s: Any) -> np.ndarray:
     if times[0] != 0.0 or np.any(np.diff(times) <= 0):
         raise InputError("times_s must start at 0 (the release) and increase strictly.")
     return times
+
+
+def validate_start_times(sde: SDE, start_times_s: Any, shape: tuple[int, ...]) -> np.ndarray | None:
+    """Absolute release start times (s) of ``shape`` for a time-dependent SDE (finite), None for a steady one
+    (which ignores them).  A time-dependent SDE without start times is an InputError."""
+    if not sde.with_time:
+        return None
+    if start_times_s is None:
+        raise InputError("this SDE depends on absolute time (a time-varying flow): give the releases' start times "
+                         "(start_time_s, seconds on the model's time axis)")
+    starts = np.broadcast_to(np.asarray(start_times_s, dtype=float), shape)
+    if not np.all(np.isfinite(starts)):
+        raise InputError("start_time_s: release start times must be finite seconds")
+    return np.array(starts)
 
 
 def validate_release(mean0: Any, cov0: Any, what: str) -> tuple[np.ndarray, np.ndarray]:
@@ -431,19 +461,23 @@ def propagate(
     *,
     method: Method = SphericalCubature(),
     integrator: Integrator = RK4(step_s=600.0),
+    start_time_s: float | None = None,
 ) -> tuple[jax.Array, jax.Array]:
     """Gaussian moments of one release: means (T, d) m and covariances (T, d, d) m².
 
     mean0 (d,) m and cov0 (d, d) m² describe the release (cov0 = 0 for a point
     release); times_s (T,) are seconds since the release, starting at 0 and
-    strictly increasing.  Solves the moment ODE of the module docstring with
+    strictly increasing; ``start_time_s`` the release's absolute start (s on the
+    model's time axis; required by a time-dependent SDE, ignored by a steady one).
+    Solves the moment ODE of the module docstring with
     `method` for the expectations and `integrator` in time; compiled once per
     (SDE structure, method, integrator, shapes).  Raises InputError on bad input.
     """
     mean, cov = validate_release(mean0, cov0, "release")
     times = validate_times(times_s)
+    start = validate_start_times(sde, start_time_s, ())
     dynamic, static = split_for_jit(sde)
-    return _propagate_jit(dynamic, static, method, integrator, mean, cov, times)
+    return _propagate_jit(dynamic, static, method, integrator, mean, cov, times, start)
 
 
 def propagate_batch(
@@ -456,12 +490,14 @@ def propagate_batch(
     integrator: Integrator = RK4(step_s=600.0),
     chunk: int = 256,
     mesh: Any = None,
+    start_times_s: Any = None,
 ) -> tuple[jax.Array, jax.Array]:
     """`propagate` for R releases in one compiled call: (R, T, d) and (R, T, d, d).
 
     means0 (R, d) m, covs0 (R, d, d) m², times_s (T,) seconds since each
-    release (shared; a release's own start time only labels its outputs
-    because the field is steady).  Releases are vmapped in chunks of `chunk`
+    release (shared); ``start_times_s`` (R,) (or one number) the releases' absolute
+    starts (s), required by a time-dependent SDE; a steady SDE ignores them (they
+    only label its outputs).  Releases are vmapped in chunks of `chunk`
     and the chunks run sequentially (jax.lax.map), bounding memory to one
     chunk's working set.  The releases are split over the devices of ``mesh``
     (default devices.mesh(): every device of every process; each device runs
@@ -475,9 +511,12 @@ def propagate_batch(
     if not (isinstance(chunk, int) and chunk >= 1):
         raise InputError(f"chunk must be an integer >= 1, got {chunk!r}.")
     times = validate_times(times_s)
+    starts = validate_start_times(sde, start_times_s, means.shape[:1])
     dynamic, static = split_for_jit(sde)
     over = devices.mesh() if mesh is None else mesh
     (means, n), (covs, _) = devices.shard_rows(means, over), devices.shard_rows(covs, over)
+    starts = None if starts is None else devices.shard_rows(starts, over)[0]
     dynamic, integrator, times = devices.replicate((dynamic, integrator, times), over)
-    out = propagate_batch_jit(dynamic, static, method, integrator, min(chunk, n), means, covs, times, mesh=over)
+    out = propagate_batch_jit(dynamic, static, method, integrator, min(chunk, n), means, covs, times, mesh=over,
+                              start_times_s=starts)
     return tuple(jnp.asarray(devices.gather_rows(a, n)) for a in out)

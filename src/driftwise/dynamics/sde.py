@@ -19,6 +19,16 @@ its square root.
 `SDE` also takes plain user callables, so the propagators (`moments`,
 `ensemble`) can be used and tested on analytic SDEs.  `sde_from_field` takes K
 and τ from the field or from the caller; `dynamics.calibrate` estimates them.
+
+Time-varying flows.  With ``with_time`` the SDE is dx = μ(x, t) dt + L(x, t) dβ in ABSOLUTE time t
+(seconds on the model's time axis: the track file's own seconds, or seconds since
+1970-01-01T00:00Z for ISO times); the propagators carry t = release start time + age through
+every integrator stage.  A field with ``is_time_varying`` gives μ(x, t) = field.mean_at(x, t_s=t)
+and D(x, t, a) = 2 (K I + τ (1 − e^{−a/τ}) Σ(x, t)) with Σ(x, t) = field.cov_between(x, x,
+t_x_s=t, t_y_s=t).  Past the end of the data nothing changes here: the field itself continues
+its harmonic parts with their fitted amplitudes and lets its slow part relax to the prior, so Σ,
+and with it the forecast's spread, grows there.  A steady SDE (``with_time`` False) never sees t:
+its code path and compiled programs are those of a steady forecast.
 """
 
 from __future__ import annotations
@@ -34,7 +44,7 @@ import numpy as np
 from ..errors import InputError
 
 __all__ = ["SDE", "PointPosterior", "sde_from_field", "split_for_jit", "join_from_jit", "field_drift",
-           "field_sde", "velocity_memory_weight", "transport_sde"]
+           "field_sde", "velocity_memory_weight", "transport_sde", "timed_field_sde"]
 
 
 @jax.tree_util.register_dataclass
@@ -49,6 +59,9 @@ class SDE:
 
     with_age:  when True, diffusion is called as diffusion(x, age_s) with the
                time since the release (s); the propagators carry that age.
+    with_time: when True, the SDE depends on absolute time t (s, the model's time
+               axis): drift(x, t_s) and diffusion(x, t_s) (diffusion(x, t_s, age_s)
+               with with_age); the propagators pass t = release start + age.
 
     Both are pytree fields: pass `jax.tree_util.Partial(fn, params...)` to keep
     parameters as traced data (changing them does not recompile the
@@ -58,11 +71,17 @@ class SDE:
     drift: Callable[[jax.Array], jax.Array]
     diffusion: Callable[..., jax.Array]
     with_age: bool = _dataclass_field(default=False, metadata=dict(static=True))
+    with_time: bool = _dataclass_field(default=False, metadata=dict(static=True))
 
-    def rate(self, x: jax.Array, age_s: jax.Array) -> jax.Array:
-        """D at x (d,) for a particle released ``age_s`` seconds ago: ``diffusion(x, age_s)`` when
-        ``with_age`` (a diffusion that depends on the time since release), else ``diffusion(x)``."""
-        return self.diffusion(x, age_s) if self.with_age else self.diffusion(x)
+    def drift_at(self, x: jax.Array, t_s: Any = 0.0) -> jax.Array:
+        """μ at x (d,) and absolute time ``t_s`` (s): ``drift(x, t_s)`` when ``with_time``, else ``drift(x)``."""
+        return self.drift(x, t_s) if self.with_time else self.drift(x)
+
+    def rate(self, x: jax.Array, age_s: Any, t_s: Any = 0.0) -> jax.Array:
+        """D at x (d,) for a particle released ``age_s`` seconds ago, at absolute time ``t_s`` (s): the
+        diffusion called with (x[, t_s][, age_s]) as ``with_time`` and ``with_age`` say."""
+        args = ((t_s,) if self.with_time else ()) + ((age_s,) if self.with_age else ())
+        return self.diffusion(x, *args)
 
 
 @jax.tree_util.register_dataclass
@@ -125,13 +144,17 @@ def field_drift(posterior: PointPosterior, x: jax.Array) -> jax.Array:
     return posterior.mean_at(x)
 
 
+def _rate_from_cov(sigma: jax.Array, diffusivity_m2_s: jax.Array, weight_s: jax.Array) -> jax.Array:
+    """2 (K I + w Σ) (m²/s) for a velocity covariance Σ (d, d) m²/s², K m²/s and weight w s."""
+    eye = jnp.eye(sigma.shape[-1], dtype=sigma.dtype)
+    return 2.0 * (diffusivity_m2_s * eye + weight_s * sigma)
+
+
 def _field_diffusion(
     posterior: PointPosterior, diffusivity_m2_s: jax.Array, decorrelation_time_s: jax.Array, x: jax.Array
 ) -> jax.Array:
     """D(x) = 2 (K I + τ Σ(x)), Σ(x) the posterior velocity covariance; x (d,) -> (d, d) m²/s."""
-    sigma = posterior.cov_at(x)
-    eye = jnp.eye(x.shape[-1], dtype=sigma.dtype)
-    return 2.0 * (diffusivity_m2_s * eye + decorrelation_time_s * sigma)
+    return _rate_from_cov(posterior.cov_at(x), diffusivity_m2_s, decorrelation_time_s)
 
 
 def velocity_memory_weight(decorrelation_time_s: jax.Array, age_s: jax.Array) -> jax.Array:
@@ -155,6 +178,34 @@ def field_sde(posterior: Any, diffusivity_m2_s: jax.Array, decorrelation_time_s:
     return SDE(drift=jax.tree_util.Partial(field_drift, posterior),
                diffusion=jax.tree_util.Partial(diffusion, posterior, diffusivity_m2_s, decorrelation_time_s),
                with_age=bool(velocity_memory))
+
+
+def _timed_drift(field: Any, x: jax.Array, t_s: jax.Array) -> jax.Array:
+    """μ(x, t) = field.mean_at(x, t_s=t): x (d,) m at absolute time t (s) -> (d,) m/s."""
+    return field.mean_at(x, t_s=t_s)
+
+
+def _timed_diffusion(field: Any, diffusivity_m2_s: jax.Array, weight_s: jax.Array, x: jax.Array,
+                     t_s: jax.Array) -> jax.Array:
+    """D(x, t) = 2 (K I + w Σ(x, t)), Σ(x, t) = field.cov_between(x, x, t_x_s=t, t_y_s=t); -> (d, d) m²/s."""
+    sigma = field.cov_between(x, x, t_x_s=t_s, t_y_s=t_s)
+    return _rate_from_cov(0.5 * (sigma + sigma.T), diffusivity_m2_s, weight_s)
+
+
+def _timed_diffusion_with_age(field: Any, diffusivity_m2_s: jax.Array, decorrelation_time_s: jax.Array,
+                              x: jax.Array, t_s: jax.Array, age_s: jax.Array) -> jax.Array:
+    """D(x, t, a) = 2 (K I + τ (1 − e^{−a/τ}) Σ(x, t)) at release age a (s) -> (d, d) m²/s."""
+    return _timed_diffusion(field, diffusivity_m2_s, velocity_memory_weight(decorrelation_time_s, age_s), x, t_s)
+
+
+def timed_field_sde(field: Any, diffusivity_m2_s: jax.Array, decorrelation_time_s: jax.Array,
+                    velocity_memory: bool) -> SDE:
+    """The SDE of a time-varying field (``with_time``): drift field.mean_at(x, t_s=t), diffusion as
+    :func:`_timed_diffusion_with_age` (or its Markov limit).  The field is held as pytree data."""
+    diffusion = _timed_diffusion_with_age if velocity_memory else _timed_diffusion
+    return SDE(drift=jax.tree_util.Partial(_timed_drift, field),
+               diffusion=jax.tree_util.Partial(diffusion, field, diffusivity_m2_s, decorrelation_time_s),
+               with_age=bool(velocity_memory), with_time=True)
 
 
 def _check_nonnegative(value: Any, name: str) -> jax.Array:
@@ -189,12 +240,17 @@ def sde_from_field(
     projection, same values as field.mean_at / field.cov_between) and held as
     pytree data inside `jax.tree_util.Partial`, so two fields of the same
     shapes share one compiled propagator.
+    A field with ``is_time_varying`` True gives the time SDE of the module docstring
+    (:func:`timed_field_sde`, ``with_time``): μ(x, t) = field.mean_at(x, t_s=t) and
+    Σ(x, t) = field.cov_between(x, x, t_x_s=t, t_y_s=t), evaluated by the field itself.
     Raises InputError if K or τ is negative or not finite.
     """
     k = field.diffusivity_m2_s if diffusivity_m2_s is None else diffusivity_m2_s
     tau = field.decorrelation_time_s if decorrelation_time_s is None else decorrelation_time_s
     k = _check_nonnegative(k, "diffusivity_m2_s")
     tau = _check_nonnegative(0.0 if tau is None else tau, "decorrelation_time_s")
+    if getattr(field, "is_time_varying", False):
+        return timed_field_sde(field, k, tau, bool(velocity_memory))
     return field_sde(PointPosterior.from_field(field), k, tau, bool(velocity_memory))
 
 

@@ -60,7 +60,7 @@ from .methods import DEFAULT_PARTICLES, METHODS, default_ensemble_step_s, make_m
 from .moments import RK4, SphericalCubature, propagate_batch
 from .sde import sde_from_field
 from .supportcheck import SupportWarning, path_support, warn_left_support, warn_unsupported_releases  # noqa: F401
-from .tabulate import release_steps, tabulated_sde
+from .tabulate import field_or_table_sde
 
 LEVELS = (0.5, 0.9, 0.95)
 ROUNDING_FLOOR = 1e-14   # polygon probabilities below this are rounding residue (see module doc)
@@ -231,20 +231,21 @@ def _moments(sde: Any, releases: tuple[Release, ...], times: np.ndarray, method:
 
     means0 = np.stack([r.start_m for r in releases])
     covs0 = np.stack([r.cov0_m2 for r in releases])
+    starts = np.array([r.start_time_s for r in releases])
     if not isinstance(method, EulerMaruyama):
         means, covs = (np.array(a) for a in propagate_batch(sde, means0, covs0, times, method=method,
-                                                             integrator=integrator or RK4()))
+                                                             integrator=integrator or RK4(), start_times_s=starts))
         left = ~(np.isfinite(means).all(axis=(1, 2)) & np.isfinite(covs).all(axis=(1, 2, 3)))
         if fallback is not None and left.any():     # releases that left a table's grid: exact posterior
             warnings.warn(f"{int(left.sum())} of {len(releases)} releases left the tabulated region; they were "
                           "forecast with the exact posterior", stacklevel=3)
             means[left], covs[left] = propagate_batch(fallback, means0[left], covs0[left], times, method=method,
-                                                      integrator=integrator or RK4())
+                                                      integrator=integrator or RK4(), start_times_s=starts[left])
         return means, covs, {}
     if key is None:
         raise InputError("the ensemble method needs an explicit random key (key=jax.random.key(seed))")
-    results = [simulate(sde, m0, c0, times, method=method, key=k)
-               for m0, c0, k in zip(means0, covs0, jax.random.split(key, len(releases)))]
+    results = [simulate(sde, m0, c0, times, method=method, key=k, start_time_s=t0)
+               for m0, c0, t0, k in zip(means0, covs0, starts, jax.random.split(key, len(releases)))]
     errors = {"mean_se_m": np.stack([np.asarray(r.mean_se) for r in results]),
               "cov_se_m2": np.stack([np.asarray(r.cov_se) for r in results]), "particles": int(method.particles)}
     return np.stack([np.asarray(r.mean) for r in results]), np.stack([np.asarray(r.cov) for r in results]), errors
@@ -261,7 +262,9 @@ def spread_releases(sde: Any, releases: Any, times_s: Any, *, method: Any = None
     batched ``moments.propagate_batch`` call, or ``ensemble.EulerMaruyama(...)`` (then ``key`` is required).
     ``frame`` (tracks.Frame) adds ``mean_lonlat``; ``polygon_m (k, 2)`` adds probabilities and, with a
     ``threshold``, first arrivals; ``time_origin_utc`` (ISO-8601 UTC of the time axis' zero) adds absolute
-    times to the outputs.  The field is steady, so start times only label the outputs.  ``fallback_sde``: for
+    times to the outputs.  Each release starts at its ``start_time_s`` (absolute, the model's time axis):
+    a time-dependent SDE (``sde.with_time``) is integrated from there (t = start + time since release);
+    for a steady SDE the start times only label the outputs.  ``fallback_sde``: for
     moment methods, releases whose moments come out non-finite (e.g. they left a tabulated field's grid) are
     recomputed through it.
     """
@@ -285,6 +288,7 @@ def spread_from_field(field: Any, releases: Any, times_s: Any, *, method: str = 
                       seed: int = 0, gauss_hermite_order: int = 3, polygon_m: Any = None,
                       threshold: float | None = None, posterior: str = "auto") -> Spread:
     """Forecast releases in a fitted FlowField: SDE μ = posterior mean, D = 2(K I + τ(1 − e^{−a/τ}) Σ) at release age a (sde.sde_from_field).
+    A time-varying field (``field.is_time_varying``) gives μ(x, t), Σ(x, t) at absolute time t = release start + age.
 
     ``method`` is a name in :data:`driftwise.dynamics.methods.METHODS` ("cubature" default); ``step_s`` the RK4 step (default 600 s) or the
     Euler–Maruyama step (default :func:`driftwise.dynamics.methods.default_ensemble_step_s`: 5 min, or a 20th of
@@ -306,14 +310,15 @@ def spread_from_field(field: Any, releases: Any, times_s: Any, *, method: str = 
         raise InputError(f"releases have {rels[0].start_m.size} coordinates but the model is {dim}-D")
     warn_unsupported_releases(field, rels)
     sde = sde_from_field(field, diffusivity_m2_s=diffusivity_m2_s, decorrelation_time_s=decorrelation_time_s)
-    steps = 0 if isinstance(obj, EulerMaruyama) else release_steps(len(rels), check_times(times_s), integrator.step_s)
-    table_sde = tabulated_sde(field, sde, np.stack([r.start_m for r in rels]), steps, posterior)
+    table_sde = field_or_table_sde(field, sde, np.stack([r.start_m for r in rels]), len(rels), check_times(times_s),
+                                   None if isinstance(obj, EulerMaruyama) else integrator, posterior)
     summary = getattr(field, "data_summary", None) or {}
     out = spread_releases(sde if table_sde is None else table_sde, rels, times_s, method=obj, integrator=integrator,
                           key=jax.random.key(int(seed)), frame=getattr(field, "frame", None), polygon_m=polygon_m,
                           threshold=threshold, time_origin_utc=summary.get("time_origin_utc"),
                           fallback_sde=None if table_sde is None else sde)
-    support = path_support(field, out.means)
+    support = path_support(field, out.means, np.array([r.start_time_s for r in rels])[:, None] + out.times_s[None, :]
+                           if sde.with_time else None)
     warn_left_support([r.name for r in rels], out.times_s, support)
     return dataclasses.replace(out, support=support)
 

@@ -42,7 +42,8 @@ def unsupported_releases(field: Any, releases) -> list[tuple[Any, float, float]]
     """(release, variance ratio, distance to the data in m) for every release whose start lies outside
     the data support (module docstring)."""
     starts = np.stack([r.start_m for r in releases])
-    ratio = field.local_variance_ratio(starts)
+    times = np.array([r.start_time_s for r in releases]) if getattr(field, "is_time_varying", False) else None
+    ratio = field.local_variance_ratio(starts) if times is None else field.local_variance_ratio(starts, times)
     distance = field.distance_to_data_m(starts)
     return [(r, float(f), float(d)) for r, f, d in zip(releases, ratio, distance) if f > SUPPORT_VARIANCE_FRACTION]
 
@@ -66,11 +67,14 @@ class PathSupport:
     outside_support: np.ndarray
 
 
-def path_support(field: Any, means_m) -> PathSupport:
-    """:class:`PathSupport` of mean paths ``means_m`` (R, T, d) in metres."""
+def path_support(field: Any, means_m, times_s=None) -> PathSupport:
+    """:class:`PathSupport` of mean paths ``means_m`` (R, T, d) in metres; ``times_s`` (R, T) their absolute
+    times (s), needed by a time-varying field."""
     means = np.asarray(means_m, dtype=np.float64)
     points = means.reshape(-1, means.shape[-1])
-    ratio = np.asarray(field.local_variance_ratio(points)).reshape(means.shape[:-1])
+    ratio = (field.local_variance_ratio(points) if times_s is None
+             else field.local_variance_ratio(points, np.asarray(times_s, dtype=np.float64).ravel()))
+    ratio = np.asarray(ratio).reshape(means.shape[:-1])
     distance = np.asarray(field.distance_to_data_m(points)).reshape(means.shape[:-1])
     outside = np.logical_or.accumulate(ratio > SUPPORT_VARIANCE_FRACTION, axis=1)
     return PathSupport(ratio, distance, outside)

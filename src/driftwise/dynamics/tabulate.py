@@ -34,6 +34,7 @@ from __future__ import annotations
 
 import dataclasses
 import itertools
+import warnings
 from dataclasses import dataclass
 from dataclasses import field as _dataclass_field
 from functools import partial
@@ -44,7 +45,7 @@ import jax.numpy as jnp
 import numpy as np
 
 from ..errors import InputError
-from .moments import psd_cholesky
+from .moments import propagate_batch, psd_cholesky
 from .sde import SDE, PointPosterior
 
 __all__ = ["TabulatedPosterior", "on_table", "tabulate_field", "tabulation_errors", "release_steps", "table_region",
@@ -260,6 +261,11 @@ def tabulated_sde(field: Any, sde: SDE, starts_m: Any, n_release_steps: int, pos
     that cannot use one, e.g. the ensemble, whose particles would leave any grid one by one)."""
     if posterior not in ("auto", "exact", "table"):
         raise InputError(f"posterior: use 'auto', 'exact' or 'table', got {posterior!r}")
+    if sde.with_time:   # a table holds one steady posterior; a time-varying field is evaluated exactly
+        if posterior == "table":
+            raise InputError("posterior 'table': this model varies in time and a table holds a steady posterior; "
+                             "use the exact posterior")
+        return None
     if posterior == "exact" or n_release_steps == 0 or (posterior == "auto" and n_release_steps < TABLE_RELEASE_STEPS):
         return None
     lo, hi = table_region(starts_m, (getattr(field, "data_summary", None) or {}).get("extent_m"))
@@ -273,3 +279,33 @@ def on_table(sde: SDE, table: TabulatedPosterior) -> SDE:
         return jax.tree_util.Partial(fn.func, table, *fn.args[1:])
 
     return dataclasses.replace(sde, drift=swap(sde.drift), diffusion=swap(sde.diffusion))
+
+
+def posterior_choice(exact: bool) -> str:
+    """The ``posterior`` argument of a command with an ``--exact`` flag: "exact", else "auto"."""
+    return "exact" if exact else "auto"
+
+
+def field_or_table_sde(field: Any, sde: SDE, starts_m: Any, n_releases: int, times_s: Any, integrator: Any,
+                       posterior: str = "auto") -> SDE | None:
+    """:func:`tabulated_sde` for ``n_releases`` moment releases to ``times_s`` with ``integrator`` (RK4; None
+    for the ensemble, which never tabulates): the table SDE, or None for the exact posterior."""
+    steps = 0 if integrator is None else release_steps(n_releases, times_s, integrator.step_s)
+    return tabulated_sde(field, sde, starts_m, steps, posterior)
+
+
+def propagate_with_fallback(sde: SDE, fallback: SDE | None, means0: Any, covs0: Any, times_s: Any, *, method: Any,
+                            integrator: Any, chunk: int = 256) -> tuple[np.ndarray, np.ndarray]:
+    """``moments.propagate_batch`` through ``sde``; releases whose moments come out non-finite (they left a
+    table's grid) are recomputed through ``fallback`` (the exact field SDE) with a warning saying how many."""
+    means0, covs0 = np.asarray(means0, np.float64), np.asarray(covs0, np.float64)
+    means, covs = (np.array(a) for a in propagate_batch(sde, means0, covs0, times_s, method=method,
+                                                         integrator=integrator, chunk=chunk))
+    left = ~(np.isfinite(means).reshape(len(means), -1).all(1) & np.isfinite(covs).reshape(len(covs), -1).all(1))
+    if fallback is not None and left.any():
+        warnings.warn(f"{int(left.sum())} of {len(means0)} releases left the tabulated region; they were "
+                      "forecast with the exact posterior", stacklevel=3)
+        m, c = propagate_batch(fallback, means0[left], covs0[left], times_s, method=method, integrator=integrator,
+                               chunk=chunk)
+        means[left], covs[left] = np.asarray(m), np.asarray(c)
+    return means, covs

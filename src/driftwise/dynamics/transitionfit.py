@@ -3,21 +3,23 @@
 Objective (nats), maximised over the variational posterior q(w) = N(m, S Sᵀ), the kernel
 hyperparameters and log K (Titsias 2009; Hensman, Fusi & Lawrence 2013 for the bound):
 
-    L = Σ_k log N(x_{k+1} | m_k, P_k + R) − KL(q ‖ p),     R = σ_pos² I,
+    L = Σ_k [log N(x_{k+1} | m_k, P_k + R) − ½ tr((P_k + R)⁻¹ V_k)] − KL(q ‖ p),     R = σ_pos² I,
 
-where (m_k, P_k) are the Gaussian moments at t_k + Δt_k of the field's Itô SDE started from
-N(x_k, R) (:mod:`driftwise.dynamics.transitions`): drift the posterior mean μ(x), diffusion
-2(K I + τ(1 − e^{−a/τ}) Σ(x)) with Σ the posterior velocity covariance, as in the forecasts.
+the expected transition log density under q (:mod:`driftwise.dynamics.transitionbound`): (m_k, P_k)
+are the Gaussian moments at t_k + Δt_k of dx = μ(x) dt + √(2K) dβ started from N(x_k, R), μ the
+posterior mean, and V_k the covariance of the end mean that the posterior velocity error Σ(x) with
+decorrelation time τ causes (the term the forecast SDE adds to its diffusion as 2τ(1 − e^{−a/τ})Σ).
 
-The approximation: the velocity uncertainty enters each transition through its moments (Σ in the
-diffusion, the Gaussian closure of the moment equations), not as a path-wise sample of the field
-averaged over q; the transition density itself is the Gaussian assumed-density closure
-(Jazwinski 1970, "Stochastic Processes and Filtering Theory"; Maybeck 1982, "Stochastic Models,
-Estimation and Control", vol. 2).  So L is not a strict lower bound on the marginal likelihood;
-it is the forecast model's own transition likelihood with a KL penalty that keeps q near the
-prior where the data say nothing.
+The approximation: the Gaussian assumed-density closure of the moment equations (Jazwinski 1970,
+"Stochastic Processes and Filtering Theory"; Maybeck 1982, "Stochastic Models, Estimation and
+Control", vol. 2) and the end mean linear in the field error; within those, L is the variational
+bound of the velocity fit with transitions in place of finite-difference velocities.  The velocity
+uncertainty is a trace penalty, not added variance: scored by the forecast's predictive density
+N(m_k, P_k + V_k + R) instead, V took the place of the random walk and K came out at half the truth
+(Lamb–Oseen vortex, 3-h fixes; tests/dynamics/test_transitionfit.py).
 
-Warm start: the velocity fit (:func:`driftwise.gp.training.fit`); its τ = ℓ/U_rms is held fixed.
+Warm start: the velocity fit (:func:`driftwise.gp.training.fit`); its τ = ℓ/U_rms is held fixed (τ only
+sets V, the penalty, which a free τ would shrink to nothing: it describes q, it is not a parameter of the data).
 Optimiser: Adam (Kingma & Ba 2015, optax), its rate decaying tenfold every 400 steps, on minibatches of
 transitions from epoch permutations of ``numpy.random.default_rng([seed, epoch])``, the sum scaled by N/b.
 Every ``patience`` steps the objective on fixed evaluation rows is checked and the fit stops once it gained
@@ -54,8 +56,9 @@ from ..gp.training import fit
 from ..gp.training import fit_report as velocity_fit_report
 from ..progress import Progress, Stopwatch
 from .methods import METHODS, make_method, method_name
-from .sde import PointPosterior, transport_sde
-from .transitions import FixedStepRK4, ParamPosterior, TransitionSet, log_likelihoods, substeps_for, transition_set
+from .sde import PointPosterior
+from .transitionbound import expected_log_likelihoods
+from .transitions import FixedStepRK4, ParamPosterior, TransitionSet, substeps_for, transition_set
 
 __all__ = ["fit_report", "TRANSITION_SCHEDULE", "COARSENESS_THRESHOLD", "LIKELIHOODS", "LikelihoodChoice", "coarseness",
            "choose_likelihood", "fit_transitions", "fit_by_likelihood", "transition_checkpoint_path"]
@@ -66,15 +69,16 @@ LIKELIHOODS = ("velocities", "transitions", "auto")
 LIKELIHOOD_HELP = ("velocities: finite-difference velocities between fixes; transitions: then refit through the "
                    "transition density of consecutive fixes (moments of the flow's SDE); auto (default): transitions "
                    f"when the fixes are coarse for the flow (median dt*|grad u| above {COARSENESS_THRESHOLD:g})")
+TURN_PER_STEP = 0.5        # rad of flow rotation per RK4 step (step_for_field)
+MIN_STEP_S, MAX_STEP_S = 60.0, 3600.0
 REL_TOL = 1e-4
 DECAY_STEPS = 400          # the learning rate falls tenfold every 400 steps
 EVAL_ROWS = 2048
 RETRIES = 6
 _TRAINABLE = ("kernel", "q_mean", "q_sqrt_raw", "log_diffusivity_m2_s")
 # Adam moves every coordinate by about the learning rate at first; the M·d whitened means start at the velocity
-# fit's optimum and would be knocked off it by full-size steps.  S keeps the full step: Σ(x) enters the diffusion,
-# and a q that tightens too slowly leaves K too small (3-h vortex fixes: K 0.37 m²/s at a tenth of the step, 0.69 at
-# the full step, truth 1)
+# fit's optimum and would be knocked off it by full-size steps.  S keeps the full step: it has to tighten to what the
+# transitions say (its trace penalty, transitionbound) within the few hundred steps of a fit.
 LEAF_STEP = {"kernel": 1.0, "log_diffusivity_m2_s": 1.0, "q_mean": 0.3, "q_sqrt_raw": 1.0}
 
 
@@ -85,6 +89,23 @@ class Propagation:
     method: Any
     integrator: FixedStepRK4
     chunk: int = 256
+
+
+def step_for_field(field: fld.FlowField, trans: TransitionSet, *, max_rows: int = 4096) -> float:
+    """The RK4 step (s) that turns the flow by at most :data:`TURN_PER_STEP` rad: 0.5 / (95th percentile of
+    ‖∇μ(x_k)‖₂ over the start fixes), within [:data:`MIN_STEP_S`, :data:`MAX_STEP_S`].
+
+    RK4 on a rotation of rate ω has a phase error of (ωh)⁵/120 per step (the series of e^{iωh} against
+    the scheme's polynomial; Kutta 1901): 2.6e-4 rad at ωh = 0.5, a few metres over a turn of a 2-km eddy.
+    """
+    norms = np.asarray(_gradient_norms(PointPosterior.from_field(field), jnp.asarray(trans.start_m[
+        _sample_rows(trans.n, max_rows)])))
+    rate = float(np.percentile(norms, 95))
+    return float(np.clip(TURN_PER_STEP / rate if rate > 0 else MAX_STEP_S, MIN_STEP_S, MAX_STEP_S))
+
+
+def _sample_rows(n: int, max_rows: int) -> np.ndarray:
+    return np.arange(n) if n <= max_rows else np.sort(np.random.default_rng(2**31 - 7).choice(n, max_rows, False))
 
 
 def _propagation(method: str, trans: TransitionSet, step_s: float, max_substeps: int) -> Propagation:
@@ -102,8 +123,8 @@ def objective(params: fld.FieldParams, rows: tuple, n_total, tau_s, position_var
               jitter_multiple: float) -> jax.Array:
     """(N/b) Σ_k log N(x_{k+1} | m_k, P_k + R) − KL(q ‖ p) on the rows (start (b, d), end (b, d), Δt (b,))."""
     post = ParamPosterior.from_params(params, jitter_multiple=jitter_multiple)
-    sde = transport_sde(post, params.diffusivity_m2_s, tau_s)
-    ll = log_likelihoods(sde, prop.method, prop.integrator, *rows, position_var_m2, prop.chunk)
+    ll = expected_log_likelihoods(post, params.diffusivity_m2_s, tau_s, prop.method, prop.integrator, *rows,
+                                  position_var_m2, prop.chunk)
     return n_total / rows[0].shape[0] * jnp.sum(ll) - fld.kl_divergence(params)
 
 
@@ -142,8 +163,8 @@ def _step(params, opt_state, rows, n_total, tau_s, var, *, prop, jitter_multiple
 @jax.jit(static_argnames=("prop", "jitter_multiple"))
 def _sum_log_likelihood(params, rows, tau_s, var, *, prop, jitter_multiple):
     post = ParamPosterior.from_params(params, jitter_multiple=jitter_multiple)
-    sde = transport_sde(post, params.diffusivity_m2_s, tau_s)
-    return jnp.sum(log_likelihoods(sde, prop.method, prop.integrator, *rows, var, prop.chunk))
+    return jnp.sum(expected_log_likelihoods(post, params.diffusivity_m2_s, tau_s, prop.method, prop.integrator,
+                                            *rows, var, prop.chunk))
 
 
 # ---------------------------------------------------------------------------- the loop
@@ -263,20 +284,21 @@ def _start(warm: fld.FlowField, problem: _Problem, schedule: Schedule, checkpoin
 
 # ---------------------------------------------------------------------------- the door
 def fit_transitions(tracks_or_observations, warm: fld.FlowField, *, position_error_m: float = 10.0,
-                    schedule: Schedule = TRANSITION_SCHEDULE, method: str = "cubature", step_s: float = 900.0,
+                    schedule: Schedule = TRANSITION_SCHEDULE, method: str = "cubature", step_s: float | None = None,
                     max_substeps: int = 32, seed: int = 0, checkpoint: Checkpoint | None = None,
                     progress: bool = True) -> fld.FlowField:
     """Refit ``warm`` (a velocity fit of the same tracks) by maximising the transition objective L.
 
     ``method`` a moment method of :data:`driftwise.dynamics.methods.METHODS` (cubature default,
-    "linearize" the cheap option); each transition takes min(``max_substeps``, ⌈Δt/``step_s``⌉) RK4
-    steps.  ``schedule``: at most ``steps`` Adam steps on ``batch_size`` transitions at ``learning_rate``;
+    "linearize" the cheap option); each transition takes min(``max_substeps``, ⌈Δt/``step_s``⌉) RK4 steps,
+    ``step_s`` None: from the warm field's velocity gradients (:func:`step_for_field`).  ``schedule``: at most ``steps`` Adam steps on ``batch_size`` transitions at ``learning_rate``;
     ``checkpoint`` as in :func:`driftwise.fit`.  Returns a FlowField whose ``fit_info`` records
     ``likelihood = "transitions"`` and the objective's history.
     """
     trans = transition_set(tracks_or_observations, position_error_m=position_error_m)
     if trans.dim != warm.dim:
         raise InputError(f"transitions are {trans.dim}-D but the warm-start field is {warm.dim}-D")
+    step_s = step_for_field(warm, trans) if step_s is None else step_s
     prop = _propagation(method, trans, step_s, max_substeps)
     tau = float(warm.decorrelation_time_s or 0.0)
     problem = _Problem(trans, prop, tau, _config(warm, trans, prop, schedule, seed))
@@ -329,8 +351,7 @@ def _gradient_norms(posterior: PointPosterior, points: jax.Array) -> jax.Array:
 
 def coarseness(field: fld.FlowField, trans: TransitionSet, *, max_rows: int = 4096) -> float:
     """c = median_k Δt_k ‖∇μ(x_k)‖₂ (dimensionless) over at most ``max_rows`` seeded transitions."""
-    idx = np.arange(trans.n) if trans.n <= max_rows else np.sort(
-        np.random.default_rng(2**31 - 7).choice(trans.n, max_rows, replace=False))
+    idx = _sample_rows(trans.n, max_rows)
     norms = np.asarray(_gradient_norms(PointPosterior.from_field(field), jnp.asarray(trans.start_m[idx])))
     return float(np.median(trans.dt_s[idx] * norms))
 
@@ -384,8 +405,9 @@ def fit_by_likelihood(tracks, kernel: str, likelihood: str = "auto", *, inducing
 
 def fit_report(field: fld.FlowField, choice: LikelihoodChoice) -> dict[str, Any]:
     """The ``driftwise fit --json`` object: :func:`driftwise.gp.training.fit_report` plus the likelihood used, the
-    coarseness and its threshold (:meth:`LikelihoodChoice.to_dict`) and, after a transition fit, its objective."""
+    coarseness and its threshold (:meth:`LikelihoodChoice.to_dict`) and, after a transition fit, its objective and
+    (when calibrated) ``calibration_check``: K and τ of the separate calibration beside the fit's own K."""
     info = field.fit_info
     extra = {key: info[key] for key in ("transition_objective", "transition_steps", "transition_converged",
-                                        "n_transitions", "transition_method") if key in info}
+                                        "n_transitions", "transition_method", "calibration_check") if key in info}
     return {**velocity_fit_report(field), **choice.to_dict(), **extra}

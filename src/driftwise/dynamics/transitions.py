@@ -8,6 +8,8 @@ N(x_k, R); its Gaussian moments are propagated over Δt_k through
 
 (:mod:`driftwise.dynamics.sde`; a the time since t_k) by the assumed-density moment equations
 of :mod:`driftwise.dynamics.moments` (Jazwinski 1970; Maybeck 1982, vol. 2), giving N(m_k, P_k);
+for a time-dependent SDE (a time-varying flow) each transition is integrated from its own fix's
+absolute time t_k (μ(x, t), D(x, t) with t = t_k + a);
 the next fix then has the density
 
     log p(x_{k+1} | x_k) = log N(x_{k+1} | m_k, P_k + R)                        (nats).
@@ -53,7 +55,9 @@ class TransitionSet:
     """Consecutive fixes of the same track.
 
     ``start_m`` (n, d) fix x_k, ``end_m`` (n, d) fix x_{k+1}, ``dt_s`` (n,) Δt_k > 0,
-    ``track_index`` (n,), ``position_error_m`` σ_pos of one fix per component (m).
+    ``track_index`` (n,), ``position_error_m`` σ_pos of one fix per component (m),
+    ``start_time_s`` (n,) t_k, the absolute time of fix x_k (s, the model's time axis; None when unknown,
+    which only a steady SDE accepts).
     """
 
     start_m: np.ndarray
@@ -61,6 +65,7 @@ class TransitionSet:
     dt_s: np.ndarray
     track_index: np.ndarray
     position_error_m: float
+    start_time_s: np.ndarray | None = None
 
     @property
     def n(self) -> int:
@@ -73,12 +78,14 @@ class TransitionSet:
     def take(self, idx: Any) -> "TransitionSet":
         """The transitions at rows ``idx``."""
         return dataclasses.replace(self, start_m=self.start_m[idx], end_m=self.end_m[idx], dt_s=self.dt_s[idx],
-                                   track_index=self.track_index[idx])
+                                   track_index=self.track_index[idx],
+                                   start_time_s=None if self.start_time_s is None else self.start_time_s[idx])
 
 
 def transition_set(tracks_or_observations: Any, *, position_error_m: float = 10.0) -> TransitionSet:
     """The transitions of driftwise Tracks (or of velocity Observations, whose pairs of fixes are
-    x_k = mid − v Δt/2, x_{k+1} = mid + v Δt/2).  Raises InputError on non-finite or empty input."""
+    x_k = mid − v Δt/2 at t_k = t_mid − Δt/2, x_{k+1} = mid + v Δt/2).  Raises InputError on non-finite or
+    empty input."""
     data = tracks_or_observations
     if hasattr(data, "velocity_m_s") and hasattr(data, "dt_s"):
         obs = data
@@ -88,7 +95,8 @@ def transition_set(tracks_or_observations: Any, *, position_error_m: float = 10.
         raise InputError(f"transitions need driftwise Tracks or Observations, got {type(data).__name__}")
     mid, dt = np.asarray(obs.position_m, float), np.asarray(obs.dt_s, float)
     half = 0.5 * np.asarray(obs.velocity_m_s, float) * dt[:, None]
-    trans = TransitionSet(mid - half, mid + half, dt, np.asarray(obs.track_index), float(obs.position_error_m))
+    trans = TransitionSet(mid - half, mid + half, dt, np.asarray(obs.track_index), float(obs.position_error_m),
+                          np.asarray(obs.time_s, float) - 0.5 * dt)
     _validate(trans)
     return trans
 
@@ -100,6 +108,9 @@ def _validate(trans: TransitionSet) -> None:
     bad |= ~np.all(np.isfinite(trans.start_m) & np.isfinite(trans.end_m), axis=1)
     if bad.any():
         raise InputError(f"transition {int(np.argmax(bad))}: time step must be > 0 and positions finite")
+    if trans.start_time_s is not None and not (np.shape(trans.start_time_s) == trans.dt_s.shape
+                                                and np.all(np.isfinite(trans.start_time_s))):
+        raise InputError("transitions: start_time_s must be one finite time (s) per transition")
     if not (np.isfinite(trans.position_error_m) and trans.position_error_m >= 0):
         raise InputError(f"position error must be a finite number of metres ≥ 0, got {trans.position_error_m!r}")
 
@@ -189,25 +200,27 @@ def gaussian_log_density(x: jax.Array, mean: jax.Array, cov: jax.Array) -> jax.A
 
 
 def log_likelihoods(sde: SDE, method: Any, integrator: Any, start_m: jax.Array, end_m: jax.Array,
-                    dt_s: jax.Array, position_var_m2: jax.Array, chunk: int) -> jax.Array:
+                    dt_s: jax.Array, position_var_m2: jax.Array, chunk: int, start_time_s: Any = None) -> jax.Array:
     """log N(x_{k+1} | m_k, P_k + R) per transition, shape (n,) (traceable, differentiable).
 
-    start_m, end_m (n, d) m; dt_s (n,) s; position_var_m2 σ_pos² (m²); ``chunk`` transitions per vmap.
+    start_m, end_m (n, d) m; dt_s (n,) s; position_var_m2 σ_pos² (m²); ``chunk`` transitions per vmap;
+    ``start_time_s`` (n,) the fixes' absolute times t_k (s) for a time-dependent SDE, else None.
     """
     d = start_m.shape[-1]
     r = position_var_m2 * jnp.eye(d, dtype=start_m.dtype)
 
     def one(row):
-        x0, x1, dt = row
-        means, covs = propagate_one(sde, method, integrator, x0, r, jnp.stack([jnp.zeros_like(dt), dt]))
+        x0, x1, dt, t0 = row
+        means, covs = propagate_one(sde, method, integrator, x0, r, jnp.stack([jnp.zeros_like(dt), dt]),
+                                    0.0 if t0 is None else t0)
         return gaussian_log_density(x1, means[-1], covs[-1] + r)
 
-    return jax.lax.map(one, (start_m, end_m, dt_s), batch_size=min(int(chunk), start_m.shape[0]))
+    return jax.lax.map(one, (start_m, end_m, dt_s, start_time_s), batch_size=min(int(chunk), start_m.shape[0]))
 
 
 @partial(jax.jit, static_argnames=("static", "method", "chunk"))
-def _log_likelihoods_jit(dynamic, static, method, integrator, start, end, dt, var, chunk):
-    return log_likelihoods(join_from_jit(dynamic, static), method, integrator, start, end, dt, var, chunk)
+def _log_likelihoods_jit(dynamic, static, method, integrator, start, end, dt, var, chunk, t0=None):
+    return log_likelihoods(join_from_jit(dynamic, static), method, integrator, start, end, dt, var, chunk, t0)
 
 
 def transition_log_likelihoods(sde: SDE, transitions: TransitionSet, *, method: Any = SphericalCubature(),
@@ -216,12 +229,16 @@ def transition_log_likelihoods(sde: SDE, transitions: TransitionSet, *, method: 
     """log p(x_{k+1} | x_k) (n,) nats for every transition (module docstring), as numpy.
 
     ``integrator`` defaults to FixedStepRK4(step_s, substeps covering the longest Δt, at most 32).
+    A time-dependent SDE starts each transition at its fix's own time ``transitions.start_time_s``.
     """
     _validate(transitions)
     if integrator is None:
         integrator = FixedStepRK4(float(step_s), substeps_for(transitions.dt_s, step_s))
+    if sde.with_time and transitions.start_time_s is None:
+        raise InputError("transitions: a time-varying flow needs the fixes' times (start_time_s)")
+    t0 = jnp.asarray(transitions.start_time_s) if sde.with_time else None
     dynamic, static = split_for_jit(sde)
     out = _log_likelihoods_jit(dynamic, static, method, integrator, jnp.asarray(transitions.start_m),
                                jnp.asarray(transitions.end_m), jnp.asarray(transitions.dt_s),
-                               jnp.asarray(transitions.position_error_m**2), int(chunk))
+                               jnp.asarray(transitions.position_error_m**2), int(chunk), t0)
     return np.asarray(out)

@@ -15,6 +15,10 @@ processes"; Hensman, Fusi & Lawrence 2013, "Gaussian processes for big data"):
 * ELBO = (N/b) Σ_n E_q log N(y_n | v(x_n), r_n I) − KL(q(w) ‖ N(0, I)), with
   E_q log N = −(d/2) log(2π r_n) − (|y_n − μ_n|² + tr Σ_n) / (2 r_n).
 
+Time-varying fields (:mod:`driftwise.gp.temporal`) use the same machinery with inter-domain inducing
+features: the kernel is a ``TemporalKernel``, inputs are (x, t), K_ZZ is block-diagonal (one Cholesky factor
+per block, ``inducing_chol`` a tuple) and every formula above holds with A the block-whitened projection.
+
 Jitter δ = ``jitter_multiple`` × eps(float64) × (per-component prior variance); the
 default multiple 1e6 gives δ ≈ 2.2e-10 σ².  Everything is float64 and jit-able.
 """
@@ -36,7 +40,10 @@ from ..data.support import distance_to_data_m
 from ..data.tracks import Frame
 from ..errors import InputError
 from .background import coefficient_names, features
-from .kernels import Helmholtz, MatrixKernel, make_kernel
+from .batch import ObservationBatch, batch_from_observations, noise_variance_m2_s2
+from .kernels import Helmholtz, MatrixKernel, jitter_m2_s2
+from .params import FieldParams, init_params, q_sqrt_raw_from
+from .temporal import TemporalKernel, part_names, part_needs_time
 
 __all__ = [
     "JITTER_MULTIPLE",
@@ -49,6 +56,7 @@ __all__ = [
     "expected_log_likelihood",
     "inducing_cholesky",
     "init_params",
+    "jitter_m2_s2",
     "kl_divergence",
     "noise_variance_m2_s2",
     "optimal_q",
@@ -67,172 +75,15 @@ jax.tree_util.register_dataclass(
 
 
 # --------------------------------------------------------------------------------------
-# Parameters
-# --------------------------------------------------------------------------------------
-@jax.tree_util.register_dataclass
-@dataclasses.dataclass(frozen=True)
-class FieldParams:
-    """Everything the fit optimises (all leaves float64 arrays).
-
-    kernel                 matrix-kernel pytree (log hyperparameters inside)
-    inducing_m             Z, (M, d) in m
-    q_mean                 m, (M·d,) whitened mean
-    q_sqrt_raw             (M·d, M·d); S = tril(raw, −1) + diag(exp(diag raw))
-    log_diffusivity_m2_s   log K_diff (m²/s), eddy diffusivity of the random-walk term
-    log_noise_floor_m_s    log σ₀ (m/s), velocity-noise floor
-    """
-
-    kernel: MatrixKernel
-    inducing_m: jax.Array
-    q_mean: jax.Array
-    q_sqrt_raw: jax.Array
-    log_diffusivity_m2_s: jax.Array
-    log_noise_floor_m_s: jax.Array
-
-    @property
-    def dim(self) -> int:
-        """d, the number of space dimensions."""
-        return self.inducing_m.shape[-1]
-
-    @property
-    def n_inducing(self) -> int:
-        """M, the number of inducing points."""
-        return self.inducing_m.shape[0]
-
-    @property
-    def q_sqrt(self) -> jax.Array:
-        """S (M·d, M·d), lower triangular with positive diagonal."""
-        raw = self.q_sqrt_raw
-        return jnp.tril(raw, -1) + jnp.diag(jnp.exp(jnp.diag(raw)))
-
-    @property
-    def diffusivity_m2_s(self) -> jax.Array:
-        """K_diff (m²/s)."""
-        return jnp.exp(self.log_diffusivity_m2_s)
-
-    @property
-    def noise_floor_m_s(self) -> jax.Array:
-        """σ₀ (m/s)."""
-        return jnp.exp(self.log_noise_floor_m_s)
-
-
-def q_sqrt_raw_from(q_sqrt: jax.Array) -> jax.Array:
-    """Inverse of :attr:`FieldParams.q_sqrt`: raw storage for a lower-triangular S with positive diagonal."""
-    return jnp.tril(q_sqrt, -1) + jnp.diag(jnp.log(jnp.diag(q_sqrt)))
-
-
-def _positive(name: str, value: float) -> float:
-    number = float(value)
-    if not np.isfinite(number) or number <= 0.0:
-        raise InputError(f"{name} must be a positive finite number in SI units, got {value!r}")
-    return number
-
-
-def init_params(
-    family: str,
-    dim: int,
-    inducing_m,
-    *,
-    velocity_scale_m_s: float,
-    length_scale_m: float,
-    diffusivity_m2_s: float = 1.0,
-    noise_floor_m_s: float = 0.01,
-    base: str = "squared-exponential",
-    curl_free_velocity_scale_m_s: float | None = None,
-    curl_free_length_scale_m: float | None = None,
-    background: str = "none",
-    centre_m=None,
-    background_scales: dict[str, float] | None = None,
-) -> FieldParams:
-    """Initial parameters: the kernel from :func:`kernels.make_kernel` (with the ``background`` flow
-    about ``centre_m``), Z = ``inducing_m`` (M, d) in m, q(w) = the prior N(0, I), K_diff in m²/s and σ₀ in m/s."""
-    z = np.asarray(inducing_m, dtype=np.float64)
-    if z.ndim != 2 or z.shape[1] != dim or z.shape[0] < 1:
-        raise InputError(f"inducing points must have shape (M, {dim}) with M ≥ 1, got {z.shape}")
-    if not np.all(np.isfinite(z)):
-        raise InputError("inducing points contain NaN or infinite coordinates")
-    kernel = make_kernel(
-        family, dim, velocity_scale_m_s=velocity_scale_m_s, length_scale_m=length_scale_m, base=base,
-        curl_free_velocity_scale_m_s=curl_free_velocity_scale_m_s, curl_free_length_scale_m=curl_free_length_scale_m,
-        background=background, centre_m=centre_m, background_scales=background_scales,
-    )
-    size = z.shape[0] * dim
-    return FieldParams(
-        kernel=kernel,
-        inducing_m=jnp.asarray(z),
-        q_mean=jnp.zeros(size),
-        q_sqrt_raw=jnp.zeros((size, size)),
-        log_diffusivity_m2_s=jnp.log(_positive("diffusivity_m2_s", diffusivity_m2_s)),
-        log_noise_floor_m_s=jnp.log(_positive("noise_floor_m_s", noise_floor_m_s)),
-    )
-
-
-# --------------------------------------------------------------------------------------
-# Observations
-# --------------------------------------------------------------------------------------
-@jax.tree_util.register_dataclass
-@dataclasses.dataclass(frozen=True)
-class ObservationBatch:
-    """A minibatch of b velocity observations.
-
-    position_m                      (b, d) segment midpoints, m
-    velocity_m_s                    (b, d) finite-difference velocities, m/s
-    random_walk_coefficient_s_inv   (b,)   2/Δt, 1/s  (multiplies K_diff)
-    position_noise_var_m2_s2        (b,)   2σ_pos²/Δt², m²/s²
-    """
-
-    position_m: jax.Array
-    velocity_m_s: jax.Array
-    random_walk_coefficient_s_inv: jax.Array
-    position_noise_var_m2_s2: jax.Array
-
-    @property
-    def size(self) -> int:
-        """b."""
-        return self.position_m.shape[0]
-
-
-def _noise_coefficients(obs) -> tuple[np.ndarray, np.ndarray]:
-    """(2/Δt, 2σ_pos²/Δt²) per observation from ``dt_s`` and ``position_error_m`` (validated here)."""
-    dt = np.asarray(obs.dt_s, dtype=np.float64)
-    bad = ~(np.isfinite(dt) & (dt > 0.0))
-    if np.any(bad):
-        raise InputError(f"observation {int(np.argmax(bad))}: time step dt_s must be positive, got {dt[bad][0]!r}")
-    sigma = np.broadcast_to(np.asarray(obs.position_error_m, dtype=np.float64), dt.shape)
-    if np.any(~np.isfinite(sigma) | (sigma < 0.0)):
-        raise InputError("position_error_m must be a non-negative finite distance in metres")
-    return 2.0 / dt, 2.0 * sigma**2 / dt**2
-
-
-def batch_from_observations(obs, idx=None) -> ObservationBatch:
-    """An :class:`ObservationBatch` from a ``tracks.Observations`` (all rows, or rows ``idx``)."""
-    position = np.asarray(obs.position_m, dtype=np.float64)
-    velocity = np.asarray(obs.velocity_m_s, dtype=np.float64)
-    if position.ndim != 2 or velocity.shape != position.shape:
-        raise InputError(f"observations need position_m and velocity_m_s of equal shape (n, d), got "
-                         f"{position.shape} and {velocity.shape}")
-    walk, pos_noise = _noise_coefficients(obs)
-    if walk.shape != (position.shape[0],) or pos_noise.shape != walk.shape:
-        raise InputError(f"observations: dt_s must have shape ({position.shape[0]},), got {walk.shape}")
-    if idx is not None:
-        idx = np.asarray(idx)
-        position, velocity, walk, pos_noise = position[idx], velocity[idx], walk[idx], pos_noise[idx]
-    return ObservationBatch(jnp.asarray(position), jnp.asarray(velocity), jnp.asarray(walk), jnp.asarray(pos_noise))
-
-
-# --------------------------------------------------------------------------------------
 # Shared linear algebra
 # --------------------------------------------------------------------------------------
-def jitter_m2_s2(kernel: MatrixKernel, point: jax.Array, jitter_multiple: float) -> jax.Array:
-    """δ = multiple × eps × per-component prior variance tr K(z, z)/d (m²/s²)."""
-    variance = jnp.trace(kernel.block(point, point)) / point.shape[-1]
-    return jitter_multiple * jnp.finfo(point.dtype).eps * variance
-
-
 @functools.partial(jax.jit, static_argnames=("jitter_multiple",))
 def inducing_cholesky(params: FieldParams, *, jitter_multiple: float = JITTER_MULTIPLE) -> jax.Array:
-    """L_Z with L_Z L_Zᵀ = K_ZZ + δI, shape (M·d, M·d), flattened point-major."""
+    """L_Z with L_Z L_Zᵀ = K_ZZ + δI, shape (M·d, M·d), flattened point-major (a time-varying kernel: the
+    tuple of its block-diagonal factors, :meth:`TemporalKernel.cholesky_blocks`)."""
     z = params.inducing_m
+    if params.is_time_varying:
+        return params.kernel.cholesky_blocks(z, params.slow_inducing_m, params.slow_inducing_time_s, jitter_multiple)
     kzz = params.kernel.gram_matrix(z, z)
     delta = jitter_m2_s2(params.kernel, z[0], jitter_multiple)
     return jnp.linalg.cholesky(kzz + delta * jnp.eye(kzz.shape[0], dtype=kzz.dtype))
@@ -244,10 +95,28 @@ def _projection(kernel: MatrixKernel, inducing: jax.Array, chol: jax.Array, x: j
     return solve_triangular(chol, kxz.T, lower=True).T
 
 
-def noise_variance_m2_s2(params: FieldParams, batch: ObservationBatch) -> jax.Array:
-    """r_n = K_diff · 2/Δt_n + 2σ_pos²/Δt_n² + σ₀², shape (b,), m²/s²."""
-    return (params.diffusivity_m2_s * batch.random_walk_coefficient_s_inv
-            + batch.position_noise_var_m2_s2 + params.noise_floor_m_s**2)
+def relative_time_s(kernel: TemporalKernel, time_s, what: str = "this time-varying model") -> jax.Array:
+    """t − t₀ (s) for times on the track file's axis; InputError when they are missing."""
+    if time_s is None:
+        raise InputError(f"{what} changes in time: give the times (seconds on the track file's time axis; "
+                         "ISO-8601 times as seconds since 1970-01-01T00:00Z)")
+    return jnp.asarray(time_s, dtype=jnp.float64) - kernel.time_origin_s
+
+
+def batch_projection(params: FieldParams, chol, batch: ObservationBatch) -> jax.Array:
+    """A_n = Cov[v(x_n, t_n), u] whitened, for every observation: (b, d, F)."""
+    if params.is_time_varying:
+        t = relative_time_s(params.kernel, batch.time_s, "a time-varying model's observations")
+        return params.kernel.projection(chol, params.inducing_m, params.slow_inducing_m, params.slow_inducing_time_s,
+                                        batch.position_m, t)
+    return jax.vmap(lambda x: _projection(params.kernel, params.inducing_m, chol, x))(batch.position_m)
+
+
+def _prior_trace(params: FieldParams, batch: ObservationBatch) -> jax.Array:
+    """tr K at each observation's own input, (b,) m²/s²."""
+    if params.is_time_varying:
+        return params.kernel.prior_trace(batch.position_m, relative_time_s(params.kernel, batch.time_s))
+    return jnp.trace(params.kernel.diag_blocks(batch.position_m), axis1=1, axis2=2)
 
 
 # --------------------------------------------------------------------------------------
@@ -255,10 +124,10 @@ def noise_variance_m2_s2(params: FieldParams, batch: ObservationBatch) -> jax.Ar
 # --------------------------------------------------------------------------------------
 def expected_log_likelihood(params: FieldParams, batch: ObservationBatch, chol: jax.Array) -> jax.Array:
     """E_q log N(y_n | v(x_n), r_n I) per observation, shape (b,) (Hensman et al. 2013, eq. 7 in closed form)."""
-    a = jax.vmap(lambda x: _projection(params.kernel, params.inducing_m, chol, x))(batch.position_m)
+    a = batch_projection(params, chol, batch)
     mean = a @ params.q_mean                                       # (b, d)
     a_s = a @ params.q_sqrt                                        # (b, d, M·d)
-    prior_trace = jnp.trace(params.kernel.diag_blocks(batch.position_m), axis1=1, axis2=2)
+    prior_trace = _prior_trace(params, batch)
     var_trace = prior_trace - jnp.sum(a * a, axis=(1, 2)) + jnp.sum(a_s * a_s, axis=(1, 2))
     r = noise_variance_m2_s2(params, batch)
     resid = jnp.sum((batch.velocity_m_s - mean) ** 2, axis=1)
@@ -297,7 +166,7 @@ def optimal_q(params: FieldParams, batch: ObservationBatch, *, n_total: int | No
     S = (JUJ)^{−T} is lower triangular without ever inverting P densely.
     """
     chol = inducing_cholesky(params, jitter_multiple=jitter_multiple)
-    phi = jax.vmap(lambda x: _projection(params.kernel, params.inducing_m, chol, x))(batch.position_m)
+    phi = batch_projection(params, chol, batch)
     b, d, size = phi.shape
     phi = phi.reshape(b * d, size)
     scale = 1.0 if n_total is None else n_total / b
@@ -327,7 +196,7 @@ class FlowField:
     """
 
     params: FieldParams
-    inducing_chol: jax.Array
+    inducing_chol: jax.Array | tuple
     jitter_multiple: float = dataclasses.field(default=JITTER_MULTIPLE, metadata=_STATIC)
     decorrelation_time_s: float | None = dataclasses.field(default=None, metadata=_STATIC)
     position_error_m: float | None = dataclasses.field(default=None, metadata=_STATIC)
@@ -370,7 +239,29 @@ class FlowField:
     def kernel_base(self) -> str:
         """Name of the scalar base ("squared-exponential" or "matern52")."""
         kernel = self.params.kernel
+        kernel = kernel.steady if isinstance(kernel, TemporalKernel) else kernel
         return (kernel.divergence_free.base if isinstance(kernel, Helmholtz) else kernel.base).name
+
+    @property
+    def is_time_varying(self) -> bool:
+        """True for a time-varying field (tides, inertial or slow parts): then times are needed."""
+        return self.params.is_time_varying
+
+    @property
+    def time_origin_s(self) -> float | None:
+        """t₀ (s on the track file's axis) of a time-varying field; None for a steady one."""
+        return self.params.kernel.time_origin_s if self.is_time_varying else None
+
+    @property
+    def constituents(self) -> dict[str, float]:
+        """{constituent name: angular frequency ω (rad/s)} of a time-varying field ({} when steady)."""
+        kernel = self.params.kernel
+        return dict(zip(kernel.constituents, kernel.omegas_rad_s)) if self.is_time_varying else {}
+
+    @property
+    def part_names(self) -> tuple[str, ...]:
+        """The parts :meth:`mean_at` and :meth:`cov_between` accept besides None (:mod:`driftwise.gp.temporal`)."""
+        return part_names(self.params.kernel)
 
     @property
     def frame_dict(self) -> dict[str, Any]:
@@ -415,6 +306,11 @@ class FlowField:
                 "noise_floor_m_s": self.noise_floor_m_s}
 
     # ----- single-point jax functions ----------------------------------------------------
+    def _check_part(self, part: str | None) -> None:
+        if part is not None and part not in self.part_names:
+            raise InputError(f"unknown part {part!r} for this {self.kernel_family} model; choose one of "
+                             f"{', '.join(self.part_names) or 'none (it has no parts)'}")
+
     def _part_kernel(self, part: str | None) -> MatrixKernel:
         kernel = self.params.kernel
         if part is None:
@@ -434,16 +330,61 @@ class FlowField:
     def _a(self, x: jax.Array, part: str | None) -> jax.Array:
         return _projection(self._part_kernel(part), self.params.inducing_m, self.inducing_chol, x)
 
-    def mean_at(self, x: jax.Array, part: str | None = None) -> jax.Array:
-        """Posterior mean velocity at one point x (d,) in m → (d,) m/s: K_a(x, Z) L_Z^{−T} m (jitted)."""
+    def _time(self, t_s, part: str | None) -> jax.Array:
+        """t − t₀ for a part of a time-varying field (0 for the parts that do not depend on t)."""
+        self._check_part(part)
+        if t_s is None and not part_needs_time(part):
+            return jnp.zeros(())
+        return relative_time_s(self.params.kernel, t_s, f"this time-varying model (part {part!r})")
+
+    def mean_at(self, x: jax.Array, part: str | None = None, *, t_s=None) -> jax.Array:
+        """Posterior mean velocity at one point x (d,) in m (and time ``t_s``, s on the track file's axis, for a
+        time-varying field; a steady one ignores it) → (d,) m/s: A_part(x, t) m (jitted)."""
+        if self.is_time_varying:
+            return _temporal_mean_jit(self, x, self._time(t_s, part), part)
         self._part_kernel(part)  # validate before tracing
         return _mean_at_jit(self, x, part)
 
     def cov_between(self, x: jax.Array, y: jax.Array, part_x: str | None = None,
-                    part_y: str | None = None) -> jax.Array:
-        """Posterior Cov[v_a(x), v_b(y)] (d, d) in m²/s²: K_a δ_ab − A_a A_bᵀ + A_a S Sᵀ A_bᵀ (jitted)."""
+                    part_y: str | None = None, *, t_x_s=None, t_y_s=None) -> jax.Array:
+        """Posterior Cov[v_a(x, t_x), v_b(y, t_y)] (d, d) in m²/s²: K_ab − A_a A_bᵀ + A_a S Sᵀ A_bᵀ (jitted);
+        times in s on the track file's axis, needed by a time-varying field and ignored by a steady one."""
+        if self.is_time_varying:
+            return _temporal_cov_jit(self, x, self._time(t_x_s, part_x), y, self._time(t_y_s, part_y),
+                                     part_x, part_y)
         self._part_kernel(part_x), self._part_kernel(part_y)
         return _cov_between_jit(self, x, y, part_x, part_y)
+
+    def _temporal_a(self, x: jax.Array, t_rel: jax.Array, part: str | None) -> jax.Array:
+        """A_part(x, t) (d, F) of a time-varying field at one point."""
+        params = self.params
+        return params.kernel.projection(self.inducing_chol, params.inducing_m, params.slow_inducing_m,
+                                        params.slow_inducing_time_s, x[None, :], t_rel[None], part)[0]
+
+    def _temporal_mean(self, x, t_rel, part) -> jax.Array:
+        return self._temporal_a(x, t_rel, part) @ self.params.q_mean
+
+    def _temporal_cov(self, x, t_x, y, t_y, part_x, part_y) -> jax.Array:
+        a_x, a_y = self._temporal_a(x, t_x, part_x), self._temporal_a(y, t_y, part_y)
+        s = self.params.q_sqrt
+        prior = self.params.kernel.prior_cross(part_x, x, t_x, part_y, y, t_y)
+        return prior - a_x @ a_y.T + (a_x @ s) @ (a_y @ s).T
+
+    def harmonic_posterior(self, x: jax.Array, constituent: str) -> tuple[jax.Array, jax.Array]:
+        """Joint posterior of the amplitude fields (a_c(x), b_c(x)) of ``constituent`` at one point x (d,) m:
+        mean (2d,) m/s = [a_c; b_c] and covariance (2d, 2d) m²/s² (a_c and b_c are correlated a posteriori).
+        v_c(x, t) = a_c cos ω_c t + b_c sin ω_c t, t on the track file's axis (jax-transformable)."""
+        if constituent not in self.constituents:
+            raise InputError(f"this model has no constituent {constituent!r}; it has "
+                             f"{', '.join(self.constituents) or 'none (it is steady)'}")
+        return _harmonic_jit(self, x, constituent)
+
+    def _harmonic(self, x, constituent):
+        zero, parts = jnp.zeros(()), (f"{constituent}_cos", f"{constituent}_sin")
+        a = jnp.concatenate([self._temporal_a(x, zero, part) for part in parts])
+        prior = jax.scipy.linalg.block_diag(*[self.params.kernel.prior_cross(p, x, zero, p, x, zero) for p in parts])
+        a_s = a @ self.params.q_sqrt
+        return a @ self.params.q_mean, prior - a @ a.T + a_s @ a_s.T
 
     def _mean_at(self, x: jax.Array, part: str | None) -> jax.Array:
         kxz = self._part_kernel(part).gram_matrix(x[None, :], self.params.inducing_m)
@@ -473,7 +414,9 @@ class FlowField:
             return [], np.zeros(0), np.zeros((0, 0))
         var = jnp.concatenate(variances)
         cross = jnp.concatenate(columns, axis=1) * var                         # Cov[u, c], (M·d, p)
-        a = solve_triangular(self.inducing_chol, cross, lower=True).T           # (p, M·d)
+        chol = self.inducing_chol[0] if self.is_time_varying else self.inducing_chol   # the steady block comes first
+        a = solve_triangular(chol, cross, lower=True).T                         # (p, M·d)
+        a = jnp.pad(a, ((0, 0), (0, self.params.q_mean.shape[0] - a.shape[1])))
         a_s = a @ self.params.q_sqrt
         cov = jnp.diag(var) - a @ a.T + a_s @ a_s.T
         return names, np.asarray(a @ self.params.q_mean), np.asarray(0.5 * (cov + cov.T))
@@ -489,7 +432,16 @@ class FlowField:
         post = prior - a @ a.T + a_s @ a_s.T
         return jnp.trace(post) / jnp.trace(prior)
 
-    def local_variance_ratio(self, points) -> np.ndarray:
+    def _temporal_local_ratio_one(self, x: jax.Array, t_rel: jax.Array) -> jax.Array:
+        """As :meth:`_local_ratio_one` at (x, t) for a time-varying field (every part but the background)."""
+        params, local = self.params, self.params.kernel.without_background()
+        a = local.projection(self.inducing_chol, params.inducing_m, params.slow_inducing_m,
+                             params.slow_inducing_time_s, x[None, :], t_rel[None])[0]
+        a_s = a @ params.q_sqrt
+        prior = local.prior_cross(None, x, t_rel, None, x, t_rel)
+        return jnp.trace(prior - a @ a.T + a_s @ a_s.T) / jnp.trace(prior)
+
+    def local_variance_ratio(self, points, times_s=None) -> np.ndarray:
         """How little the data constrain the field at ``points`` (n, d) m → (n,): tr Σ_loc / tr K_loc, the
         posterior over the prior velocity variance of the stationary part (1: the data taught nothing there).
 
@@ -497,10 +449,17 @@ class FlowField:
         Σ_loc(x) = K_loc(0) − A Aᵀ + A S Sᵀ Aᵀ with A = K_loc(x, Z) L_Z^{−T}.  The background's linear terms
         grow without bound away from the data and are well determined by them, so a ratio over the whole
         prior would call a point far outside the data "supported"; without a background both agree.
+        A time-varying field needs ``times_s`` (scalar or (n,), s on the track file's axis).
         """
         x = _check_points(points, self.dim)
-        parts = [np.asarray(_local_ratio_jit(self, jnp.asarray(x[i:i + PREDICT_CHUNK])))
-                 for i in range(0, x.shape[0], PREDICT_CHUNK)]
+        if self.is_time_varying:
+            t = _check_times(self, times_s, x.shape[0])
+            parts = [np.asarray(_temporal_local_ratio_jit(self, jnp.asarray(x[i:i + PREDICT_CHUNK]),
+                                                          jnp.asarray(t[i:i + PREDICT_CHUNK])))
+                     for i in range(0, x.shape[0], PREDICT_CHUNK)]
+        else:
+            parts = [np.asarray(_local_ratio_jit(self, jnp.asarray(x[i:i + PREDICT_CHUNK])))
+                     for i in range(0, x.shape[0], PREDICT_CHUNK)]
         return np.concatenate(parts) if parts else np.zeros(0)
 
     def distance_to_data_m(self, points) -> np.ndarray:
@@ -511,7 +470,10 @@ class FlowField:
         return distance_to_data_m(support, _check_points(points, self.dim))
 
     def prior_variance_at(self, x: jax.Array) -> jax.Array:
-        """Prior covariance K(x, x) at one point, (d, d) in m²/s²."""
+        """Prior covariance K(x, x) at one point, (d, d) in m²/s² (the same at every time)."""
+        if self.is_time_varying:
+            zero = jnp.zeros(())
+            return self.params.kernel.prior_cross(None, x, zero, None, x, zero)
         return self.params.kernel.block(x, x)
 
     def _moments_one(self, x: jax.Array) -> tuple[jax.Array, jax.Array]:
@@ -519,27 +481,39 @@ class FlowField:
         a_s = a @ self.params.q_sqrt
         return a @ self.params.q_mean, self.params.kernel.block(x, x) - a @ a.T + a_s @ a_s.T
 
+    def _temporal_moments_one(self, x: jax.Array, t_rel: jax.Array) -> tuple[jax.Array, jax.Array]:
+        return self._temporal_mean(x, t_rel, None), self._temporal_cov(x, t_rel, x, t_rel, None, None)
+
     # ----- batch prediction ------------------------------------------------------------
-    def predict(self, points) -> tuple[np.ndarray, np.ndarray]:
+    def predict(self, points, times_s=None) -> tuple[np.ndarray, np.ndarray]:
         """Posterior mean (n, d) m/s and covariance (n, d, d) m²/s² at ``points`` (n, d) in m, as numpy.
 
-        Runs a jitted ``vmap`` over chunks of at most 4096 points (padded to a power of
-        two, so few compilations and bounded memory).
+        ``times_s`` (scalar or (n,), s on the track file's axis; ISO times as seconds since
+        1970-01-01T00:00Z): needed by a time-varying field, ignored by a steady one.  Runs a jitted ``vmap``
+        over chunks of at most 4096 points (padded to a power of two, so few compilations and bounded memory).
         """
         x = _check_points(points, self.dim)
-        n = x.shape[0]
-        chunk = min(PREDICT_CHUNK, 1 << max(n - 1, 0).bit_length())
-        means, covs = [], []
-        for start in range(0, n, chunk):
-            block = x[start:start + chunk]
-            padded = np.zeros((chunk, self.dim))
-            padded[: block.shape[0]] = block
-            mean, cov = predict_chunk(self, jnp.asarray(padded))
-            means.append(np.asarray(mean[: block.shape[0]]))
-            covs.append(np.asarray(cov[: block.shape[0]]))
-        if not means:
-            return np.zeros((0, self.dim)), np.zeros((0, self.dim, self.dim))
-        return np.concatenate(means), np.concatenate(covs)
+        if self.is_time_varying:
+            t = _check_times(self, times_s, x.shape[0])
+            return _chunked(lambda xs, ts: predict_chunk_t(self, xs, ts), x, t, self.dim)
+        return _chunked(lambda xs, _: predict_chunk(self, xs), x, np.zeros(x.shape[0]), self.dim)
+
+
+def _chunked(run, x: np.ndarray, t: np.ndarray, dim: int) -> tuple[np.ndarray, np.ndarray]:
+    """``run(points, times)`` over chunks of ≤ 4096 rows padded to a power of two, concatenated as numpy."""
+    n = x.shape[0]
+    chunk = min(PREDICT_CHUNK, 1 << max(n - 1, 0).bit_length())
+    means, covs = [], []
+    for start in range(0, n, chunk):
+        rows = min(chunk, n - start)
+        padded, padded_t = np.zeros((chunk, dim)), np.zeros(chunk)
+        padded[:rows], padded_t[:rows] = x[start:start + rows], t[start:start + rows]
+        mean, cov = run(jnp.asarray(padded), jnp.asarray(padded_t))
+        means.append(np.asarray(mean[:rows]))
+        covs.append(np.asarray(cov[:rows]))
+    if not means:
+        return np.zeros((0, dim)), np.zeros((0, dim, dim))
+    return np.concatenate(means), np.concatenate(covs)
 
 
 @jax.jit
@@ -548,9 +522,33 @@ def predict_chunk(field: FlowField, x: jax.Array):
     return jax.vmap(field._moments_one)(x)
 
 
+@jax.jit
+def predict_chunk_t(field: FlowField, x: jax.Array, t_rel: jax.Array):
+    """As :func:`predict_chunk` for a time-varying field at times t − t₀ (n,) s."""
+    return jax.vmap(field._temporal_moments_one)(x, t_rel)
+
+
 _mean_at_jit = jax.jit(FlowField._mean_at, static_argnames=("part",))
 _local_ratio_jit = jax.jit(lambda field, x: jax.vmap(field._local_ratio_one)(x))
 _cov_between_jit = jax.jit(FlowField._cov_between, static_argnames=("part_x", "part_y"))
+_temporal_mean_jit = jax.jit(FlowField._temporal_mean, static_argnames=("part",))
+_temporal_cov_jit = jax.jit(FlowField._temporal_cov, static_argnames=("part_x", "part_y"))
+_temporal_local_ratio_jit = jax.jit(lambda field, x, t: jax.vmap(field._temporal_local_ratio_one)(x, t))
+_harmonic_jit = jax.jit(FlowField._harmonic, static_argnames=("constituent",))
+
+
+def _check_times(field: FlowField, times_s, n: int) -> np.ndarray:
+    """t − t₀ (n,) s from ``times_s`` (scalar or (n,), s on the track file's axis); InputError naming the problem."""
+    if times_s is None:
+        relative_time_s(field.params.kernel, None)
+    t = np.asarray(times_s, dtype=np.float64)
+    if t.ndim == 0:
+        t = np.full(n, float(t))
+    if t.shape != (n,):
+        raise InputError(f"times_s must be one time or one per point ({n}), got shape {t.shape}")
+    if not np.all(np.isfinite(t)):
+        raise InputError(f"times_s row {int(np.argmax(~np.isfinite(t)))} is NaN or infinite")
+    return t - field.time_origin_s
 
 
 def _check_points(points, dim: int) -> np.ndarray:

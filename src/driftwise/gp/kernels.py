@@ -90,6 +90,7 @@ __all__ = [
     "Matern52",
     "MatrixKernel",
     "SquaredExponential",
+    "jitter_m2_s2",
     "make_base",
     "make_kernel",
 ]
@@ -286,6 +287,12 @@ class MatrixKernel:
     def diag_blocks(self, x: jax.Array) -> jax.Array:
         """K(x_i, x_i) for each point: X (n, d) → (n, d, d), O(n d²) work."""
         return self._plus_background(self.blocks(jnp.zeros_like(x)), x, x)
+
+
+def jitter_m2_s2(kernel: MatrixKernel, point: jax.Array, jitter_multiple: float) -> jax.Array:
+    """δ = multiple × eps × per-component prior variance tr K(z, z)/d (m²/s²), added to K_ZZ before factoring."""
+    variance = jnp.trace(kernel.block(point, point)) / point.shape[-1]
+    return jitter_multiple * jnp.finfo(point.dtype).eps * variance
 
 
 def _potential_scale(base: Base) -> jax.Array:

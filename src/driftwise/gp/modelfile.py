@@ -4,6 +4,12 @@
 Members: every array leaf of the field's parameters as ``params.<path>`` and ``metadata``, a 0-d
 unicode array holding JSON (schema version, kernel, hyperparameters with units, frame, data summary,
 fit record, driftwise version, SHA-256 of the arrays).  ``driftwise.save`` / ``driftwise.load``.
+
+Steady fields are written as schema version 1, exactly as before.  Time-varying fields
+(:mod:`driftwise.gp.temporal`) are schema version 2: the same members plus the slow part's inducing
+arrays, and ``kernel.temporal`` in the metadata (constituents, ω_c, periods, time origin t₀ in s on the
+track file's axis, the phase reference, whether there is a slow part and whether its time scale was
+learned).  A reader of version 1 refuses them with a clear message instead of misreading them.
 """
 
 from __future__ import annotations
@@ -22,9 +28,12 @@ from ..files import atomic_write
 from ..version import __version__
 from .background import describe as describe_background
 from .field import FlowField, init_params
+from .temporal import TemporalStart
 
 MODEL_FORMAT = "driftwise-model"
-MODEL_SCHEMA_VERSION = 1
+MODEL_SCHEMA_VERSION = 1            # steady fields
+TEMPORAL_SCHEMA_VERSION = 2         # time-varying fields
+READABLE_SCHEMA_VERSIONS = (MODEL_SCHEMA_VERSION, TEMPORAL_SCHEMA_VERSION)
 _KERNEL_STRUCTURE = {
     "helmholtz": "K = K_df(σ₁, ℓ₁) + K_cf(σ₂, ℓ₂): independent divergence-free and curl-free parts",
     "divergence-free": "K_df(r) = ℓ²/(λ(d−1)) (H_k(r) − tr H_k(r) I)",
@@ -38,6 +47,9 @@ def _structure(field) -> str:
     text = _KERNEL_STRUCTURE[field.kernel_family]
     if field.params.kernel.backgrounds():
         text += "; plus K_b(x, y), a background flow: uniform velocity and linear field about centre_m"
+    if field.is_time_varying:
+        text = (f"steady part: {text}; plus per constituent c: K_c(x - x') cos(omega_c (t - t')) (amplitude fields "
+                "a_c, b_c of the same family); plus the slow part K_s(x - x') k_T(t - t') (Matern-3/2 in t) if present")
     return text
 
 
@@ -69,12 +81,16 @@ def model_metadata(field, arrays: dict) -> dict:
     """The JSON metadata of a model file (schema version 1)."""
 
     hyper = field.hyperparameters
+    kernel = {"family": field.kernel_family, "base": field.kernel_base, "dim": field.dim,
+              "n_inducing": int(field.params.n_inducing), "structure": _structure(field),
+              "parametrisation": "log of each positive hyperparameter; whitened q(w) = N(m, SSᵀ)",
+              "background": describe_background(field.params.kernel.backgrounds())}
+    if field.is_time_varying:
+        kernel["temporal"] = field.params.kernel.describe()
     return {
-        "format": MODEL_FORMAT, "schema_version": MODEL_SCHEMA_VERSION, "driftwise_version": __version__,
-        "kernel": {"family": field.kernel_family, "base": field.kernel_base, "dim": field.dim,
-                   "n_inducing": int(field.params.n_inducing), "structure": _structure(field),
-                   "parametrisation": "log of each positive hyperparameter; whitened q(w) = N(m, SSᵀ)",
-                   "background": describe_background(field.params.kernel.backgrounds())},
+        "format": MODEL_FORMAT, "driftwise_version": __version__,
+        "schema_version": TEMPORAL_SCHEMA_VERSION if field.is_time_varying else MODEL_SCHEMA_VERSION,
+        "kernel": kernel,
         "hyperparameters": hyper, "hyperparameter_units": {name: _unit_of(name) for name in hyper},
         "decorrelation_time_s": field.decorrelation_time_s, "position_error_m": field.position_error_m,
         "jitter_multiple": field.jitter_multiple, "frame": field.frame_dict, "units": field.units,
@@ -139,9 +155,10 @@ def _read_model_file(path: Path) -> tuple[dict, dict]:
     if not isinstance(meta, dict) or meta.get("format") != MODEL_FORMAT:
         raise ModelFileError(f"{path}: an npz archive that is not a driftwise model (no '{MODEL_FORMAT}' marker)")
     version = meta.get("schema_version")
-    if version != MODEL_SCHEMA_VERSION:
-        raise ModelFileError(f"{path}: model schema version {version!r}, but this driftwise reads version "
-                             f"{MODEL_SCHEMA_VERSION}; refit the model or use the matching driftwise release")
+    if version not in READABLE_SCHEMA_VERSIONS:
+        raise ModelFileError(f"{path}: model schema version {version!r}, but this driftwise reads versions "
+                             f"{', '.join(map(str, READABLE_SCHEMA_VERSIONS))}; refit the model or use the matching "
+                             "driftwise release")
     _check_model_arrays(path, meta, members)
     return meta, members
 
@@ -163,9 +180,13 @@ def _params_from_arrays(path: Path, meta: dict, arrays: dict):
     kernel = meta.get("kernel")
     try:
         background = kernel.get("background") or {"choice": "none", "centre_m": None}   # none before the background
+        temporal = kernel.get("temporal")
+        if temporal is not None:
+            temporal = TemporalStart.from_description(temporal, arrays.get("params.slow_inducing_m"),
+                                                      arrays.get("params.slow_inducing_time_s"))
         template = init_params(kernel["family"], int(kernel["dim"]), arrays["params.inducing_m"],
                                velocity_scale_m_s=1.0, length_scale_m=1.0, base=kernel["base"],
-                               background=background["choice"], centre_m=background["centre_m"])
+                               background=background["choice"], centre_m=background["centre_m"], temporal=temporal)
     except (KeyError, TypeError, ValueError, AttributeError, InputError) as err:
         raise ModelFileError(f"{path}: the kernel description {kernel!r} cannot be rebuilt "
                              f"({type(err).__name__}: {err})") from None

@@ -115,9 +115,14 @@ class TrainConfig:
     fingerprint: str
     subsample: int = 0          # > 0: hyperparameters from this many seeded random rows (q_update="auto", large N)
     background: str = "linear"  # the background flow of the prior (gp/background.BACKGROUNDS)
+    temporal: str = ""          # the time-varying parts (gp/temporalfit.TemporalChoice JSON); "" for a steady fit
 
     def to_json(self) -> str:
-        return json.dumps(dataclasses.asdict(self), sort_keys=True)
+        """Canonical JSON; a steady fit's omits ``temporal`` so its checkpoints read as before."""
+        fields = dataclasses.asdict(self)
+        if not fields["temporal"]:
+            del fields["temporal"]
+        return json.dumps(fields, sort_keys=True)
 
 
 def _flat(prefix: str, tree) -> dict[str, np.ndarray]:

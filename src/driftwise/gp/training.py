@@ -40,6 +40,7 @@ from __future__ import annotations
 
 import dataclasses
 import hashlib
+import json
 import math
 import warnings
 from typing import Any
@@ -48,7 +49,6 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 import optax
-from scipy.cluster.vq import kmeans2
 
 from ..data.datascales import check_position_error, data_scales
 from ..data.frame import Frame
@@ -59,9 +59,12 @@ from ..data.utctime import UNIX_EPOCH_UTC
 from ..errors import InputError
 from ..progress import Progress, Stopwatch
 from . import field as fld
-from .background import BACKGROUNDS, TERMS
+from .background import BACKGROUNDS
 from .kernels import BASES, DEFAULT_FAMILY, KERNEL_FAMILIES
 from .schedule import Checkpoint, Schedule, TrainConfig, TrainState, load_checkpoint, save_checkpoint
+from .initial import extent_m as _extent_m
+from .initial import initial_hyperparameters, initial_inducing
+from .temporalfit import MAX_TEMPORAL_INDUCING, temporal_choice, temporal_report, temporal_start
 from .variational import CHUNK, chunks, exact_q, full_elbo, mean_speed_squared, natural_step, natural_step_jit, take
 
 __all__ = ["Schedule", "Checkpoint", "fit", "fit_report", "fit_summary"]
@@ -70,7 +73,6 @@ FULL_BATCH_FACTOR = 16    # all observations in every step when N ≤ 16 × batc
 MAX_DEFAULT_INDUCING = 256
 REL_TOL = 1e-4            # plateau: ELBO gain between checks below this fraction of max(|ELBO|, N nats)
 INIT_SUBSAMPLE = 16384    # observations used for the initial q
-KMEANS_SUBSAMPLE = 20000  # observations used for k-means
 RETRIES = 6               # non-finite step: attempts with more jitter / a smaller step
 MAX_JITTER_MULTIPLE = 1e12  # δ ≤ 1e12 · eps · σ² ≈ 2e-4 σ²
 _HYPER_NAMES = ("kernel", "log_diffusivity_m2_s", "log_noise_floor_m_s")
@@ -93,8 +95,9 @@ class _Data:
         return int(self.batch.position_m.shape[0])
 
 
-def prepare_data(data, position_error_m: float) -> _Data:
-    """Tracks → velocity observations (or Observations as given), validated."""
+def prepare_data(data, position_error_m: float, *, with_time: bool = False) -> _Data:
+    """Tracks → velocity observations (or Observations as given), validated; the midpoint times kept in the
+    batch for a time-varying fit (``with_time``), dropped for a steady one."""
     if hasattr(data, "velocity_m_s") and hasattr(data, "dt_s"):
         obs = data
         n_tracks = int(np.unique(np.asarray(obs.track_index)).size) if hasattr(obs, "track_index") else 0
@@ -105,6 +108,9 @@ def prepare_data(data, position_error_m: float) -> _Data:
     else:
         raise InputError(f"fit needs driftwise Tracks or Observations, got {type(data).__name__}")
     batch = fld.batch_from_observations(obs)
+    if with_time and batch.time_s is None:
+        raise InputError("a time-varying fit needs the observations' times (time_s)")
+    batch = batch if with_time else batch.without_time()
     _check_finite(batch)
     if batch.position_m.shape[0] < MIN_FIT_OBSERVATIONS:
         raise InputError(f"fit needs at least {MIN_FIT_OBSERVATIONS} velocity observations (consecutive fixes "
@@ -128,7 +134,9 @@ def _position_error(data, position_error_m: float | None, seed: int) -> tuple[fl
 
 
 def _check_finite(batch: fld.ObservationBatch) -> None:
-    for name in ("position_m", "velocity_m_s", "random_walk_coefficient_s_inv", "position_noise_var_m2_s2"):
+    for name in ("position_m", "velocity_m_s", "random_walk_coefficient_s_inv", "position_noise_var_m2_s2", "time_s"):
+        if getattr(batch, name) is None:
+            continue
         values = np.asarray(getattr(batch, name))
         bad = ~np.isfinite(values.reshape(values.shape[0], -1)).all(axis=1)
         if bad.any():
@@ -143,61 +151,17 @@ def _fingerprint(batch: fld.ObservationBatch) -> str:
 
 
 # ----------------------------------------------------------------------------- initial state
-def _extent_m(position: np.ndarray) -> float:
-    """L = (Π ptp_i)^{1/d}, a typical size of the sampled region (m), floored at 1 m."""
-    span = np.maximum(np.ptp(position, axis=0), 1e-3 * max(float(np.ptp(position)), 1.0))
-    return max(float(np.exp(np.mean(np.log(span)))), 1.0)
-
-
-def initial_inducing(position_m: np.ndarray, n_inducing: int, *, seed: int) -> np.ndarray:
-    """Z (M, d) m: k-means centres (k-means++ start, scipy ``kmeans2``) of the observation midpoints.
-
-    Uses a seeded subsample of at most 20 000 points; coincident centres are merged,
-    so M can come out smaller when the data hold fewer distinct places.
-    """
-    rng = np.random.default_rng(seed)
-    points = np.unique(np.asarray(position_m, dtype=np.float64), axis=0)
-    if points.shape[0] > KMEANS_SUBSAMPLE:
-        points = points[np.sort(rng.choice(points.shape[0], KMEANS_SUBSAMPLE, replace=False))]
-    if n_inducing >= points.shape[0]:
-        return points
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        centres, _ = kmeans2(points, n_inducing, iter=20, minit="++", rng=rng)
-    tol = 1e-6 * _extent_m(points)
-    return np.unique(np.round(centres / tol) * tol, axis=0)
-
-
-def initial_hyperparameters(batch: fld.ObservationBatch, inducing_m: np.ndarray) -> dict[str, float]:
-    """Data-driven starting values (m, m/s, m²/s).
-
-    σ = RMS velocity component (for Helmholtz split equally between the parts);
-    ℓ = max(L/8, 2 h) with L the data extent and h = L/M^{1/d} the inducing spacing;
-    K such that 2K/Δt̃ is an eighth of the velocity variance at the median Δt̃;
-    σ₀ = σ/10; the background's centre x₀ = the mean observation position, its uniform scale σ and
-    its rate scales 2σ/L (a linear field reaching speed σ at L/2 from the centre).
-    """
-    position = np.asarray(batch.position_m)
-    velocity = np.asarray(batch.velocity_m_s)
-    extent = _extent_m(position)
-    spacing = extent / inducing_m.shape[0] ** (1.0 / position.shape[1])
-    var = max(float(np.mean(velocity**2)), 1e-12)
-    dt_median = float(np.median(2.0 / np.asarray(batch.random_walk_coefficient_s_inv)))
-    return {"velocity_scale_m_s": math.sqrt(var), "length_scale_m": max(extent / 8.0, 2.0 * spacing),
-            "diffusivity_m2_s": var * dt_median / 16.0, "noise_floor_m_s": 0.1 * math.sqrt(var),
-            "spacing_m": spacing, "centre_m": position.mean(axis=0),
-            "background_scales": {term: math.sqrt(var) * (1.0 if term == "uniform" else 2.0 / extent)
-                                  for term in TERMS}}
-
-
 def _initial_params(data: _Data, config: TrainConfig) -> fld.FieldParams:
     z = initial_inducing(np.asarray(data.batch.position_m), config.n_inducing, seed=config.seed)
     h = initial_hyperparameters(data.batch, z)
     sigma = h["velocity_scale_m_s"] / (math.sqrt(2.0) if config.kernel == "helmholtz" else 1.0)
+    temporal = None if not config.temporal else temporal_start(
+        config.temporal, data.batch, data.frame, n_inducing=z.shape[0], length_scale_m=h["length_scale_m"],
+        velocity_scale_m_s=sigma, seed=config.seed)
     params = fld.init_params(config.kernel, z.shape[1], z, velocity_scale_m_s=sigma,
                              length_scale_m=h["length_scale_m"], diffusivity_m2_s=h["diffusivity_m2_s"],
                              noise_floor_m_s=h["noise_floor_m_s"], base=config.base, background=config.background,
-                             centre_m=h["centre_m"], background_scales=h["background_scales"])
+                             centre_m=h["centre_m"], background_scales=h["background_scales"], temporal=temporal)
     return _strong(params)
 
 
@@ -437,7 +401,7 @@ def length_scale_m(kernel) -> float:
 
 def _decorrelation_time_s(params: fld.FieldParams, data: _Data, jitter: float) -> tuple[float, float, float]:
     """τ = ℓ / U_rms (s), U_rms the RMS posterior-mean speed at the observation midpoints (Taylor 1921)."""
-    total = sum(float(mean_speed_squared(params, take(data.batch, idx).position_m, jitter_multiple=jitter))
+    total = sum(float(mean_speed_squared(params, take(data.batch, idx), jitter_multiple=jitter))
                 for idx in chunks(data.n))
     rms = math.sqrt(total / data.n)
     length = length_scale_m(params.kernel)
@@ -463,7 +427,8 @@ def fit_report(field: fld.FlowField) -> dict[str, Any]:
             "converged": info.get("converged"), "frame": field.frame_dict,
             "position_error_m": field.position_error_m,
             "position_error_source": info.get("position_error_source", "given"),
-            "position_error_estimate": info.get("position_error_estimate"), "background": _background_report(field)}
+            "position_error_estimate": info.get("position_error_estimate"), "background": _background_report(field),
+            "temporal": temporal_report(field.params.kernel)}
 
 
 def _background_report(field: fld.FlowField) -> dict[str, dict[str, float]]:
@@ -477,8 +442,16 @@ def _background_report(field: fld.FlowField) -> dict[str, dict[str, float]]:
 def fit(tracks_or_observations, kernel: str = DEFAULT_FAMILY, *, inducing: int | None = None, seed: int = 0,
         position_error_m: float | None = None, base: str = "squared-exponential", schedule: Schedule = Schedule(),
         checkpoint: Checkpoint | None = None, progress: bool = True, background: str = "linear",
-        timing_s: dict[str, float] | None = None) -> fld.FlowField:
+        tides=(), slow_time_scale_s=None, timing_s: dict[str, float] | None = None) -> fld.FlowField:
     """Fit a vector-field GP to drifter tracks (or velocity observations) and return the FlowField.
+
+    Time-varying flows (:mod:`driftwise.gp.temporal`): ``tides`` names constituents of
+    :data:`driftwise.gp.constituents.CONSTITUENTS` ("M2", "S2", "N2", "K1", "O1", "inertial"; a tuple or a comma
+    list; () or "none": no harmonics), each adding amplitude fields a_c, b_c; ``slow_time_scale_s`` None (no
+    slow part), "auto" (a slow part whose Matérn-3/2 time scale is learned from max(span/4, twice the longest
+    period, 1 day)) or a number of seconds (the slow part with that time scale, fixed).  Then M (``inducing``)
+    spatial points serve the steady and every harmonic part (default min(48, the steady default)) and the slow
+    part gets M space–time points; the observations' midpoint times are used; the field needs times to predict.
 
     ``kernel`` a name in :data:`driftwise.gp.kernels.KERNEL_FAMILIES`, ``base`` ∈
     {"squared-exponential", "matern52"}; ``background`` ∈ {"none", "uniform", "linear"} the background flow
@@ -500,10 +473,11 @@ def fit(tracks_or_observations, kernel: str = DEFAULT_FAMILY, *, inducing: int |
     """
     clock = Stopwatch(timing_s)
     config = check_options(kernel, base, inducing, seed, schedule, position_error_m, background)
+    config = dataclasses.replace(config, temporal=temporal_choice(tides, slow_time_scale_s).to_json())
     with clock("estimate_position_error"):
         position_error_m, record = _position_error(tracks_or_observations, position_error_m, int(seed))
     with clock("prepare"):
-        data = prepare_data(tracks_or_observations, position_error_m)
+        data = prepare_data(tracks_or_observations, position_error_m, with_time=bool(config.temporal))
         config = resolve_rows(config, data.n, fingerprint=data.fingerprint,
                               position_error_m=float(data.obs.position_error_m))
         train = _subsample(data, config.subsample, config.seed)
@@ -520,7 +494,7 @@ def resolve_rows(config: TrainConfig, n: int, **fields) -> TrainConfig:
     with "adam" or "natural", minibatches of batch_size."""
     limit = FULL_BATCH_FACTOR * config.batch_size
     full = n <= limit
-    inducing = config.n_inducing or default_inducing(n)
+    inducing = config.n_inducing or default_inducing(n, time_varying=bool(config.temporal))
     if config.q_update == "auto":
         return dataclasses.replace(config, batch_size=min(n, limit), q_update="natural", n_inducing=inducing,
                                    subsample=0 if full else limit, **fields)
@@ -539,10 +513,12 @@ def _subsample(data: _Data, rows: int, seed: int) -> _Data:
     return dataclasses.replace(data, batch=take(data.batch, subsample_rows(data.n, rows, seed)))
 
 
-def default_inducing(n_observations: int) -> int:
+def default_inducing(n_observations: int, *, time_varying: bool = False) -> int:
     """M = min(256, max(16, N/32)): beyond about one inducing point per 32 velocity observations
-    the bound barely rises on the demo bay (DEVELOPERS.md, "Benchmark record") while a step costs ∝ M²."""
-    return int(min(MAX_DEFAULT_INDUCING, max(16, n_observations // 32)))
+    the bound barely rises on the demo bay (DEVELOPERS.md, "Benchmark record") while a step costs ∝ M².
+    A time-varying fit has (1 + 2C) M + M_s features, so its spatial M is capped at 48."""
+    cap = MAX_TEMPORAL_INDUCING if time_varying else MAX_DEFAULT_INDUCING
+    return int(min(cap, max(16, n_observations // 32)))
 
 
 def check_options(kernel, base, inducing, seed, schedule: Schedule, position_error_m,

@@ -68,8 +68,11 @@ def data_precision(params: fld.FieldParams, batch: fld.ObservationBatch, *,
     and Λm = the second.
     """
     chol = fld.inducing_cholesky(params, jitter_multiple=jitter_multiple)
-    kzx = params.kernel.gram_matrix(params.inducing_m, batch.position_m)        # (M·d, b·d)
-    phi_t = solve_triangular(chol, kzx, lower=True)                              # Φᵀ
+    if params.is_time_varying:
+        phi_t = fld.batch_projection(params, chol, batch).reshape(-1, params.q_mean.shape[0]).T
+    else:
+        kzx = params.kernel.gram_matrix(params.inducing_m, batch.position_m)     # (M·d, b·d)
+        phi_t = solve_triangular(chol, kzx, lower=True)                          # Φᵀ
     weight = 1.0 / fld.noise_variance_m2_s2(params, batch)
     weight = jnp.repeat(weight if mask is None else weight * mask, batch.position_m.shape[1])
     return (phi_t * weight) @ phi_t.T, phi_t @ (weight * batch.velocity_m_s.reshape(-1))
@@ -145,13 +148,18 @@ def chunks(n: int) -> list[np.ndarray]:
     return np.array_split(np.arange(n), max(1, math.ceil(n / CHUNK)))
 
 
+def for_model(params: fld.FieldParams, batch: fld.ObservationBatch) -> fld.ObservationBatch:
+    """``batch`` as ``params`` use it: a steady model drops the times, so its compiled programs are the steady ones."""
+    return batch if params.is_time_varying or batch.time_s is None else batch.without_time()
+
+
 def exact_q(params: fld.FieldParams, batch: fld.ObservationBatch, *, jitter_multiple: float,
             mesh=None) -> fld.FieldParams:
     """The ELBO-optimal q(w) on all of ``batch`` (any size): Λ = I + Σ_chunks ΦᵀR⁻¹Φ, η = Σ_chunks ΦᵀR⁻¹y
     (Titsias 2009, eq. 10), the chunks' statistics computed on all devices (:func:`chunk_statistics`)
     and summed in chunk order."""
-    lam_chunks, eta_chunks = chunk_statistics(_chunk_natural, params, batch, jitter_multiple=jitter_multiple,
-                                              mesh=mesh)
+    lam_chunks, eta_chunks = chunk_statistics(_chunk_natural, params, for_model(params, batch),
+                                              jitter_multiple=jitter_multiple, mesh=mesh)
     lam, eta = np.eye(params.q_mean.shape[0]), np.zeros(params.q_mean.shape[0])
     for d_lam, d_eta in zip(lam_chunks, eta_chunks):
         lam, eta = lam + d_lam, eta + d_eta
@@ -160,13 +168,17 @@ def exact_q(params: fld.FieldParams, batch: fld.ObservationBatch, *, jitter_mult
 
 def full_elbo(params: fld.FieldParams, batch: fld.ObservationBatch, *, jitter_multiple: float, mesh=None) -> float:
     """ELBO over all observations: Σ_n E_q log N(y_n | v(x_n), R_n) − KL(q ‖ p) (nats), chunked over all devices."""
-    per_chunk = chunk_statistics(_chunk_log_likelihood, params, batch, jitter_multiple=jitter_multiple, mesh=mesh)
+    per_chunk = chunk_statistics(_chunk_log_likelihood, params, for_model(params, batch),
+                                 jitter_multiple=jitter_multiple, mesh=mesh)
     return float(sum(float(v) for v in per_chunk)) - float(fld.kl_divergence(params))
 
 
 @jax.jit(static_argnames=("jitter_multiple",))
-def mean_speed_squared(params: fld.FieldParams, x: jax.Array, *, jitter_multiple: float) -> jax.Array:
-    """Σ_n |μ(x_n)|² with μ(x) = K(x, Z) L_Z^{−T} m, the posterior mean (m²/s²)."""
+def mean_speed_squared(params: fld.FieldParams, batch: fld.ObservationBatch, *, jitter_multiple: float) -> jax.Array:
+    """Σ_n |μ(x_n, t_n)|² with μ = K(x, Z) L_Z^{−T} m, the posterior mean at the observations (m²/s²)."""
     chol = fld.inducing_cholesky(params, jitter_multiple=jitter_multiple)
+    if params.is_time_varying:
+        return jnp.sum((fld.batch_projection(params, chol, batch) @ params.q_mean) ** 2)
+    x = batch.position_m
     alpha = solve_triangular(chol.T, params.q_mean, lower=False)
     return jnp.sum((params.kernel.gram_matrix(x, params.inducing_m) @ alpha) ** 2)

@@ -59,9 +59,9 @@ def plot_connect_map(result: Any) -> Figure:
     return fig
 
 
-def plot_backtrack(result: Any) -> Figure:
+def plot_backtrack(result: Any, truth_m: Any = None) -> Figure:
     """Release-point probability (all candidate times) with the 50/90 % regions, the finds and the most
-    probable release point."""
+    probable release point; ``truth_m (2,)``: the true release point of a simulated find, when known."""
     coords = MapCoords.from_frame(result.frame, np.array([[result.x_m[0], result.y_m[0]]]))
     X, Y = coords.grid(result.x_m, result.y_m)
     fig, (ax,) = new_figure(height_in=map_height_in(coords, X, Y, 1, extra_in=1.4))
@@ -79,6 +79,10 @@ def plot_backtrack(result: Any) -> Figure:
     bx, by = coords.xy(np.array([[x, y]]))
     when = iso_utc(result.time_origin_utc, t) if result.time_origin_utc else f"t = {t:.6g} s"
     ax.plot(bx, by, "X", color="black", markersize=8, label=f"most probable release ({when})")
+    if truth_m is not None:
+        tx, ty = coords.xy(np.asarray(truth_m, float).reshape(1, 2))
+        ax.plot(tx, ty, "o", markerfacecolor="none", markeredgecolor="tab:green", markersize=9,
+                markeredgewidth=1.5, label="true release (simulation)")
     coords.decorate(ax)
     ax.legend(fontsize="xx-small", loc="best")
     ax.set_title("Where was it released? (uniform prior over region and window)", fontsize="small")

@@ -17,7 +17,8 @@ Keys read (all optional unless stated)::
                "steps": [{"name", "status" ("done"|"failed"|"not available"), "seconds", "detail"}]}
     data:     {"fit": {key: value}, "heldout": {key: value}, "qc": [{"action", "count", "detail"}]}
     fit:      {"kernel", "n_tracks", "n_observations", "elbo", "hyperparameters": {name_unit: value},
-               "diffusivity_m2_s", "decorrelation_time_s", ...}
+               "diffusivity_m2_s", "decorrelation_time_s", "calibration_check": {"diffusivity_m2_s",
+               "decorrelation_time_s"} (after a transition fit), ...}
     check:    {"families": {family: {"elbo", "heldout_log_likelihood"}}, "divergent_variance_fraction",
                "divergence": {...}, "vorticity": {...},
                "verdict": {"divergence_free": bool, "curl_free": bool, "reasons": [str]}, "reading": str}
@@ -47,9 +48,10 @@ from ..files import CAUTION, atomic_write_text
 from ..units import FORMAT_BY_UNIT
 from ..version import __version__
 
-SECTIONS = ("data", "fit", "check", "spread", "skill")
+SECTIONS = ("data", "fit", "check", "spread", "connect", "backtrack", "skill")
 _TITLES = {"data": "Data and quality control", "fit": "Fitted flow field", "check": "Physical constraints",
-           "spread": "Release forecasts", "skill": "Forecast skill on held-out tracks"}
+           "spread": "Release forecasts", "connect": "Connectivity between sites",
+           "backtrack": "Back-tracking a find", "skill": "Forecast skill on held-out tracks"}
 _SUFFIX_UNITS = (("_m2_s", "m²/s"), ("_m_s", "m/s"), ("_m2", "m²"), ("_per_s", "s⁻¹"), ("_s", "s"), ("_m", "m"),
                  ("_deg", "°"), ("_nats", "nats"))
 _PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
@@ -269,11 +271,16 @@ def _data(data: Mapping[str, Any]) -> str:
 
 
 def _fit(fit: Mapping[str, Any]) -> str:
-    top = {k: v for k, v in fit.items() if k not in ("hyperparameters", "notes")}
+    top = {k: v for k, v in fit.items() if k not in ("hyperparameters", "notes", "calibration_check")}
     parts = [key_value_table(top)]
     if fit.get("hyperparameters"):
         parts.append("<h3>Hyperparameters</h3>" + key_value_table(fit["hyperparameters"],
                                                                    header=("hyperparameter", "value")))
+    check = fit.get("calibration_check")
+    if isinstance(check, Mapping):     # a transition fit estimated K itself; the separate calibration is a check
+        names = ("diffusivity_m2_s", "decorrelation_time_s")
+        rows = {"transition fit": {n: fit.get(n) for n in names}, "calibration check": {n: check.get(n) for n in names}}
+        parts.append("<h3>K and τ: transition fit and calibration check</h3>" + key_value_table(rows))
     parts += [f"<p>{_e(n)}</p>" for n in fit.get("notes", [])]
     return "".join(parts)
 
@@ -398,7 +405,8 @@ def elbo_comparison(summary: Mapping[str, Any]) -> str:
             "data; across data sets compare the held-out log likelihood per observation.</p>")
 
 
-_RENDER = {"data": _data, "fit": _fit, "check": _check, "spread": _spread, "skill": _skill}
+_RENDER = {"data": _data, "fit": _fit, "check": _check, "spread": _spread, "connect": _spread, "backtrack": _spread,
+           "skill": _skill}
 
 
 def _section(name: str, summary: Mapping[str, Any], base_dir: Path | None) -> str:
@@ -457,7 +465,7 @@ def digest(summary: Mapping[str, Any], out: str | os.PathLike) -> str:
 
     steps = {s["name"]: s for s in summary["job"]["steps"]}
     lines = [f"driftwise demo: Mirren Bay (invented data), {summary['job']['wall_time_s']:.0f} s"]
-    for name in ("data", "fit", "calibrate", "map", "check", "spread", "score"):
+    for name in ("data", "fit", "calibrate", "map", "check", "spread", "score", "connect", "backtrack"):
         step = steps.get(name, {"status": "not run", "detail": ""})
         text = step["detail"] if step["status"] == "done" else f"{step['status'].upper()}: {step['detail']}"
         lines.append(f"  {name:<9} {text}")
