@@ -143,5 +143,6 @@ def test_format_duration_picks_the_unit_that_fits(value, text):
 def test_format_speed_and_diffusivity_at_tank_and_ocean_scale():
     assert units.format_speed(0.25) == "0.25 m/s"
     assert units.format_speed(0.002) == "2 mm/s"
+    assert units.format_speed(0.0123) == "12.3 mm/s"     # below 0.1 m/s in mm/s (a tank's speeds)
     assert units.format_diffusivity(1e-5) == "10 mm²/s"
     assert units.format_diffusivity(2.3) == "2.3 m²/s"

@@ -7,22 +7,50 @@ vorticity constraints, and score forecasts against held-out tracks.
 The package is built in layers whose imports point down only (DEVELOPERS.md draws them):
 ``errors``/``units``/``files``/``version`` (ground floor) < ``data`` < ``gp`` < ``dynamics``
 < ``diagnostics`` < ``products`` < ``app``.  The names below are the public API.
+
+Importing the package is light: the public names are loaded on first use (PEP 562 module
+``__getattr__``), so ``driftwise --help`` and ``driftwise inspect`` never load jax.  The GP linear
+algebra needs float64, so 64-bit jax is switched on here before jax is first imported (the
+``JAX_ENABLE_X64`` variable jax reads at import), or at once when jax is already loaded.
 """
 
 from __future__ import annotations
 
-import jax
+import importlib
+import os
+import sys
+from typing import Any
 
-jax.config.update("jax_enable_x64", True)
+from .errors import InputError
+from .version import __version__
 
-from .data.tracks import Frame, Observations, TrackError, Tracks, read_tracks, velocity_observations  # noqa: E402
-from .errors import InputError  # noqa: E402
-from .gp.field import FlowField  # noqa: E402
-from .gp.modelfile import load_model as load  # noqa: E402
-from .gp.modelfile import save_model as save
-from .gp.training import fit  # noqa: E402
-from .version import __version__  # noqa: E402
+if "jax" in sys.modules:
+    sys.modules["jax"].config.update("jax_enable_x64", True)
+else:
+    os.environ["JAX_ENABLE_X64"] = "True"
+
+# public name -> (module, attribute)
+_LAZY = {"read_tracks": ("driftwise.data.tracks", "read_tracks"), "Tracks": ("driftwise.data.tracks", "Tracks"),
+         "Frame": ("driftwise.data.tracks", "Frame"), "TrackError": ("driftwise.data.tracks", "TrackError"),
+         "velocity_observations": ("driftwise.data.tracks", "velocity_observations"),
+         "Observations": ("driftwise.data.tracks", "Observations"),
+         "fit": ("driftwise.gp.training", "fit"), "save": ("driftwise.gp.modelfile", "save_model"),
+         "load": ("driftwise.gp.modelfile", "load_model"), "FlowField": ("driftwise.gp.field", "FlowField")}
 
 __all__ = ["InputError", "__version__",
            "read_tracks", "Tracks", "Frame", "TrackError", "velocity_observations", "Observations",
            "fit", "save", "load", "FlowField"]
+
+
+def __getattr__(name: str) -> Any:
+    """Load a public name on first use and keep it (PEP 562)."""
+    if name not in _LAZY:
+        raise AttributeError(f"module 'driftwise' has no attribute {name!r}")
+    module, attribute = _LAZY[name]
+    value = getattr(importlib.import_module(module), attribute)
+    globals()[name] = value
+    return value
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(__all__))

@@ -82,7 +82,7 @@ def _example(units: dict[str, float]) -> str:
 _LENGTH_STEPS = (("km", 1000.0, 1000.0), ("m", 1.0, 1.0), ("mm", 1e-3, 1e-5), ("µm", 1e-6, 0.0))
 _DURATION_STEPS = (("d", 86400.0, 2 * 86400.0), ("h", 3600.0, 3600.0), ("min", 60.0, 60.0), ("s", 1.0, 1.0),
                    ("ms", 1e-3, 1e-3), ("µs", 1e-6, 0.0))
-_SPEED_STEPS = (("m/s", 1.0, 0.01), ("mm/s", 1e-3, 1e-5), ("µm/s", 1e-6, 0.0))
+_SPEED_STEPS = (("m/s", 1.0, 0.1), ("mm/s", 1e-3, 1e-5), ("µm/s", 1e-6, 0.0))
 _DIFFUSIVITY_STEPS = (("m²/s", 1.0, 0.01), ("mm²/s", 1e-6, 1e-8), ("µm²/s", 1e-12, 0.0))
 _ZERO_UNIT = {id(_LENGTH_STEPS): "m", id(_DURATION_STEPS): "s", id(_SPEED_STEPS): "m/s", id(_DIFFUSIVITY_STEPS): "m²/s"}
 
@@ -128,5 +128,20 @@ def format_speed(value_m_s: float, digits: int = 3) -> str:
 
 
 def format_diffusivity(value_m2_s: float, digits: int = 3) -> str:
-    """A diffusivity in m²/s printed in m²/s, cm²/s or mm²/s: 1e-5 → '10 mm²/s'."""
+    """A diffusivity in m²/s printed in m²/s, mm²/s or µm²/s: 1e-5 → '10 mm²/s'."""
     return _fitted(value_m2_s, _DIFFUSIVITY_STEPS, digits)
+
+
+FORMAT_BY_UNIT = {"m": format_length, "s": format_duration, "m/s": format_speed, "m²/s": format_diffusivity}
+_FORMAT_BY_SUFFIX = (("_m2_s", format_diffusivity), ("_m_s", format_speed), ("_s", format_duration),
+                     ("_m", format_length))
+
+
+def format_named(name: str, value: float, digits: int = 3) -> str:
+    """``value`` printed by the unit its ``name`` ends in (``_m``, ``_s``, ``_m_s``, ``_m2_s``), in the unit that
+    fits its size: ``format_named("length_scale_m", 1234.0)`` → '1.23 km'.  Other names: ``digits`` significant
+    figures and no unit (``_per_s``, ``_m2`` and the like are not lengths or durations)."""
+    for suffix, formatter in _FORMAT_BY_SUFFIX:
+        if name.endswith(suffix) and not name.endswith(("_per_s", "_per_m")):
+            return formatter(value, digits)
+    return "—" if value is None else _sig(float(value), digits)

@@ -15,6 +15,7 @@ import pytest
 
 from driftwise.app import demo, scenarios
 from driftwise.app.cli import main
+from driftwise.units import format_diffusivity
 
 
 def _job(tmp_path: Path) -> demo.Job:
@@ -73,7 +74,7 @@ def test_warnings_become_single_lines_with_counts():
                                               "RuntimeWarning: projection stretch 0.2 %"]
 
 
-def test_progress_bar_only_on_a_terminal(monkeypatch):
+def test_progress_bar_only_on_a_terminal_plain_lines_elsewhere(monkeypatch):
     import io
 
     class Terminal(io.StringIO):
@@ -81,10 +82,13 @@ def test_progress_bar_only_on_a_terminal(monkeypatch):
             return True
 
     monkeypatch.setattr("sys.stderr", Terminal())
-    assert not demo.progress_bar(3, quiet=False).disable
-    assert demo.progress_bar(3, quiet=True).disable
-    monkeypatch.setattr("sys.stderr", io.StringIO())  # a pipe or a log file: no bar garbage
-    assert demo.progress_bar(3, quiet=False).disable
+    shown = demo.progress_bar(3, quiet=False)
+    assert shown.bar is not None and not shown.plain
+    quiet = demo.progress_bar(3, quiet=True)
+    assert quiet.bar is None and not quiet.plain
+    monkeypatch.setattr("sys.stderr", io.StringIO())  # a pipe or a log file: no bar garbage, plain lines
+    piped = demo.progress_bar(3, quiet=False)
+    assert piped.bar is None and piped.plain
 
 
 @pytest.mark.parametrize("command", ["inspect", "fit", "spread", "score", "check", "map", "demo"])
@@ -137,7 +141,7 @@ def test_reduced_demo_end_to_end(tmp_path, capsys):
     # the digest and the report carry the same key numbers
     report = (out / "report.html").read_text()
     k = summary["fit"]["diffusivity_m2_s"]
-    assert f"→ {k:.3g} m²/s" in printed and f"{k:.4g}" in report  # the calibrated K
+    assert f"→ {k:.3g} m²/s" in printed and format_diffusivity(k) in report  # the calibrated K (3 figures, unit)
     assert str(out / "") in printed or f"files in {out}/" in printed
     assert "Caution" in printed and "Caution" in report
 
@@ -173,4 +177,4 @@ def _check_connect_and_backtrack(out: Path, summary: dict) -> None:
 
 
 def test_durations_read_naturally():
-    assert [demo.duration(s) for s in (34632.0, 95.0, 1.0, 2 * 86400.0)] == ["9.62 h", "1.58 min", "1 s", "2 d"]
+    assert [demo.format_duration(s) for s in (34632.0, 95.0, 1.0, 2 * 86400.0)] == ["9.62 h", "1.58 min", "1 s", "2 d"]

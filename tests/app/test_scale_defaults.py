@@ -18,7 +18,7 @@ import jax.numpy as jnp
 import numpy as np
 import pytest
 
-from driftwise.app import cli
+from driftwise.app import cmd_fit
 from driftwise.data import datascales, synthetic
 from driftwise.data.tracks import Tracks, tracks_from_frame
 from driftwise.dynamics import calibrate as cal
@@ -148,7 +148,7 @@ def test_cli_leaves_no_checkpoint_when_calibration_fails(run_cli, tank_csv, tmp_
     def fail(field, tracks, **_):
         raise InputError("calibration failed on purpose")
 
-    monkeypatch.setattr(cli, "calibrate", fail)
+    monkeypatch.setattr(cmd_fit, "calibrate", fail)
     code, _, err = run_cli("fit", tank_csv, "--out", tmp_path / "m.npz", "--kernel", "independent",
                            "--inducing", "8")
     assert code == 2 and "calibration failed on purpose" in err

@@ -111,16 +111,6 @@ def test_horizon_shorter_than_sampling_is_refused(ocean, tank):
     ds.check_horizons([1800.0], ocean)
 
 
-@pytest.mark.parametrize(("metres", "text"), [(5e-4, "0.5 mm"), (0.0123, "12.3 mm"), (3.0, "3 m"),
-                                              (1234.0, "1.23 km")])
-def test_length_text(metres, text):
-    assert ds.length_text(metres) == text
-
-
-@pytest.mark.parametrize(("seconds", "text"), [(0.004, "4 ms"), (0.5, "500 ms"), (48.0, "48 s"),
-                                               (5400.0, "1.5 h"), (90.0, "1.5 min"), (172800.0, "2 d")])
-def test_duration_text(seconds, text):
-    assert ds.duration_text(seconds) == text
 
 
 def test_nice_step():

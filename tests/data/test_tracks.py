@@ -383,7 +383,7 @@ def test_inspect_summary_numbers(write_file):
     assert summary["frame"] == {"kind": "metric"} and summary["extra_columns"] == ["temp"]
     assert summary["extent_m"] == {"x": [0.0, 30.0], "y": [0.0, 40.0]}
     text = format_summary(summary)
-    assert "2 tracks, 5 fixes" in text and "median 100 s" in text and "QC           none needed" in text
+    assert "2 tracks, 5 fixes" in text and "median 1.67 min" in text and "QC           none needed" in text
 
 
 def test_cli_inspect_demo_json(run_cli):

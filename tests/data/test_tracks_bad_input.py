@@ -445,7 +445,7 @@ def test_nul_byte_beyond_the_sniffed_head_names_its_line(write_file, run_cli):
 
 def test_two_fixes_inspect_warns_and_fit_refuses_with_the_minimum(write_file, tmp_path, run_cli):
     path = write_file("two.csv", H + "A,0,0,0\nA,600,100,20\n")
-    import driftwise.gp.training  # noqa: F401  (the numerical stack is imported outside the timed call)
+    import driftwise.app.cmd_fit  # noqa: F401  (the fit command and its numerical stack imported outside the timed call)
 
     expected = (f"{path}: 2 fixes in 1 track give 1 velocity observation (a track of m fixes gives m - 1); fit "
                 "needs at least 3 to learn its hyperparameters, e.g. one track of 4 fixes or 3 tracks of 2")

@@ -200,7 +200,7 @@ def test_every_image_decoded_in_the_browser(rendered):
 
 def test_key_numbers_in_the_rendered_text(rendered):
     text = " ".join(rendered["probe"]["text"].split())  # also turns the thin spaces of 3 457 into spaces
-    for needle in ("11.83", "5400 (1.5 h)", "0.2468", "4150", "0.712", "0.634", "0.551", "0.93",
+    for needle in ("11.8 m²/s", "1.5 h", "0.247 m/s", "4.15 km", "0.712", "0.634", "0.551", "0.93",
                    "0.271", "3 457", "< 0.001", "36", "helmholtz", "Fuel spill at the harbour mouth",
                    "the divergent part holds 0.183 of the velocity variance",
                    "a naive ISO time was taken as UTC", "driftwise demo --out /tmp/demo-out",
@@ -228,7 +228,14 @@ def test_units_follow_the_key_names():
     assert report.label_of("velocity_scale_m_s") == "velocity scale (m/s)"
     assert report.label_of("length_scale_m") == "length scale (m)"
     assert report.label_of("decorrelation_time_s") == "decorrelation time (s)"
-    assert report.fmt(86400.0, "s") == "86\u2009400 (24 h)"
+    assert report.label_of("length_scale_m", with_unit=False) == "length scale"     # the value carries it
+    # lengths, durations, speeds, diffusivities in the unit that fits (driftwise.units; 3 significant figures)
+    assert report.fmt(86400.0, "s") == "24 h"
+    assert report.fmt(5e-4, "m") == "0.5 mm" and report.fmt(12345.0, "m") == "12.3 km"
+    assert report.fmt(0.002, "m/s") == "2 mm/s" and report.fmt(1e-5, "m²/s") == "10 mm²/s"
+    page = report.key_value_table({"length_scale_m": 0.0123, "fit": {"decorrelation_time_s": 5400.0}})
+    assert ">length scale</th><td class=\"num\">12.3 mm</td>" in page
+    assert ">fit / decorrelation time</th><td class=\"num\">1.5 h</td>" in page and "0.0123" not in page
     assert report.fmt(0.000123456) == "0.0001235"
     assert report.fmt(float("nan")) == "—" and report.fmt(None) == "—" and report.fmt(True) == "yes"
 

@@ -1,5 +1,5 @@
 """What every command of the ``driftwise`` command line shares: exit codes, the one-line usage error,
-the ``--json`` and ``--quiet`` flags and the JSON printer."""
+the ``--json``, ``--quiet`` and ``--profile`` flags and the JSON printer."""
 
 from __future__ import annotations
 
@@ -9,6 +9,7 @@ from typing import Any
 
 from ..errors import InputError
 from ..files import plain
+from ..units import format_duration
 
 EXIT_OK, EXIT_INTERNAL, EXIT_BAD_INPUT = 0, 1, 2
 
@@ -39,5 +40,19 @@ def add_exact_flag(parser: argparse.ArgumentParser) -> None:
 
 def add_quiet_flag(parser: argparse.ArgumentParser) -> None:
     """``--quiet``: no progress output."""
-    parser.add_argument("--quiet", action="store_true", help="no progress bars")
+    parser.add_argument("--quiet", action="store_true", help="no progress bars or progress lines")
 
+
+
+def add_profile_flag(parser: argparse.ArgumentParser) -> None:
+    """``--profile``: print where the time went (the ``timing_s`` table of the JSON output)."""
+    parser.add_argument("--profile", action="store_true",
+                        help="print the wall time of each stage (always in the --json output as timing_s)")
+
+
+def profile_text(timing_s: dict[str, float]) -> str:
+    """The ``timing_s`` table as text, one stage a line with its share of the total."""
+    total = timing_s.get("total") or sum(timing_s.values())
+    lines = ["time (wall):"] + [f"  {name:<24} {format_duration(seconds):>9}  {100 * seconds / total:5.1f} %"
+                                for name, seconds in timing_s.items() if name != "total"]
+    return "\n".join(lines + [f"  {'total':<24} {format_duration(total):>9}"])

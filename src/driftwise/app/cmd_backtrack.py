@@ -28,14 +28,14 @@ DEFAULT_CELLS = 4096
 REGION_PAD = 0.1
 
 
-def add_backtrack(sub: argparse._SubParsersAction) -> None:
-    p = sub.add_parser(
-        "backtrack", help="where and when was something released, given where it was found?",
-        description="Propagate point releases forward from a grid of candidate release points over --region and "
+def configure_backtrack(p: argparse.ArgumentParser) -> None:
+    p.description = (
+        "Propagate point releases forward from a grid of candidate release points over --region and "
         "candidate release times over --window before the (earliest) find, score each by the likelihood of the "
         "find(s) N(found | m, P + sd² I) (several finds of the same release multiply), and normalise under a "
         "uniform prior: a probability map per candidate time and summed, the 50 %/90 % highest-probability "
-        "regions and the most probable release point and time.", epilog=CAUTION)
+        "regions and the most probable release point and time.")
+    p.epilog = CAUTION
     p._negative_number_matcher = re.compile(r"^-\d+$|^-\d*\.\d+$|^-\d*\.?\d*(?:[eE][-+]?\d+)?[a-z]*,")
     p.add_argument("model", help="model file written by `driftwise fit`")
     p.add_argument("--found", action="append", required=True, metavar="X,Y",

@@ -29,16 +29,16 @@ DEFAULT_MOMENT_STEP = "1h"
 DEFAULT_ENSEMBLE_STEP = "10min"
 
 
-def add_connect(sub: argparse._SubParsersAction) -> None:
-    p = sub.add_parser(
-        "connect", help="connectivity between sites: the share of each site's material inside each other site",
-        description="For every source site, seed releases over its area (scrambled Sobol points, each carrying "
+def configure_connect(p: argparse.ArgumentParser) -> None:
+    p.description = (
+        "For every source site, seed releases over its area (scrambled Sobol points, each carrying "
         "its share of the area as covariance A/(12 N) per axis), propagate them through the fitted flow (Gaussian "
         "moments, or Euler-Maruyama particles with --method ensemble) and report P[source, destination, time], "
         "the probability that material released uniformly in the source is inside the destination, the first "
         "time each reaches --threshold, and the share outside the model's data support. SITES: GeoJSON polygons "
         "(lon/lat; a lon/lat model) or a CSV with columns site, x_m, y_m (vertices in metres, local frame, in "
-        "order along each site's boundary).", epilog=CAUTION)
+        "order along each site's boundary).")
+    p.epilog = CAUTION
     p.add_argument("model", help="model file written by `driftwise fit`")
     p.add_argument("--sites", required=True, metavar="SITES", help="GeoJSON (lon/lat polygons with a 'name' "
                    "property) or CSV (columns site, x_m, y_m)")

@@ -24,25 +24,34 @@ from ..products.plots import plot_skill
 from ..products.writers import (
     SPREAD_SUFFIXES,
     format_score_table,
+    monte_carlo_error,
     spread_to_dict,
     write_score_csv,
     write_spread,
 )
-from ..units import parse_diffusivity_m2_s, parse_duration_s, parse_durations_s, parse_length_m
+from ..units import (
+    format_diffusivity,
+    format_duration,
+    format_length,
+    parse_diffusivity_m2_s,
+    parse_duration_s,
+    parse_durations_s,
+    parse_length_m,
+)
 from .cliparts import EXIT_OK, add_exact_flag, add_json_flag, add_quiet_flag, print_json
 
 # ---------------------------------------------------------------- spread
 _MAX_OUTPUT_TIMES = 100_000
 
 
-def add_spread(sub: argparse._SubParsersAction) -> None:
-    p = sub.add_parser(
-        "spread", help="forecast where releases go: mean paths, covariance ellipses, probability of reaching an area",
-        description="Forecast releases through the fitted flow (Itô SDE: drift = posterior mean, diffusion = "
-        "2(K I + tau (1 - exp(-age/tau)) Sigma)) by Gaussian moment matching or an Euler-Maruyama ensemble. Outputs the mean path and "
-        "covariance (metres, local frame; also lon/lat for a lon/lat model) at times since each release, the 50/90/95 % "
-        "ellipses, and with --polygon the probability of being inside it and the first time it reaches --threshold.",
-        epilog=CAUTION)
+def configure_spread(p: argparse.ArgumentParser) -> None:
+    p.description = (
+        "Forecast releases through the fitted flow (Itô SDE: drift = posterior mean, diffusion = "
+        "2(K I + tau (1 - exp(-age/tau)) Sigma)) by Gaussian moment matching or an Euler-Maruyama ensemble. Outputs "
+        "the mean path and covariance (metres, local frame; also lon/lat for a lon/lat model) at times since each "
+        "release, the 50/90/95 % ellipses, and with --polygon the probability of being inside it and the first time "
+        "it reaches --threshold.")
+    p.epilog = CAUTION
     # A western longitude such as "-3.97,47.2" is a value, not an option: widen argparse's
     # negative-number test to comma-separated coordinates (`--release=-3.97,47.2` works anyway).
     p._negative_number_matcher = re.compile(r"^-\d+$|^-\d*\.\d+$|^-\d*\.?\d*(?:[eE][-+]?\d+)?[a-z]*,")
@@ -63,9 +72,10 @@ def add_spread(sub: argparse._SubParsersAction) -> None:
                    help="; ".join(f"{name}: {spec.help}" for name, spec in METHODS.items())
                    + f" (default {DEFAULT_METHOD})")
     p.add_argument("--particles", type=int, default=DEFAULT_PARTICLES,
-                   help=f"ensemble particles (default {DEFAULT_PARTICLES})")
+                   help=f"ensemble particles (default {DEFAULT_PARTICLES}; the Monte Carlo error is reported)")
     p.add_argument("--step", default=None,
-                   help="integration step with its unit (default 10min for moments, 1min for the ensemble)")
+                   help="integration step with its unit (default 10min for moments; for the ensemble 5min, or a "
+                   "20th of the flow's time scale, length scale / RMS speed, when shorter)")
     p.add_argument("--diffusivity", default=None,
                    help="eddy diffusivity K, e.g. 5m2/s (bare number: m²/s; default: the model's)")
     p.add_argument("--decorrelation-time", default=None,
@@ -168,33 +178,37 @@ def _run_spread(args: argparse.Namespace) -> int:
 
 
 def _format_spread(forecast, written: list[str]) -> str:
-    """A short human summary: per release the final mean, 95 % ellipse and polygon probability."""
-    hours = forecast.times_s[-1] / 3600.0
+    """A short human summary: per release the final mean, 95 % ellipse and polygon probability, every length and
+    duration in the unit that fits its size."""
     lines = [f"spread: {len(forecast.releases)} release(s), method {forecast.method}, "
-             f"{len(forecast.times_s)} output times to {hours:.3g} h"]
+             f"{len(forecast.times_s)} output times to {format_duration(forecast.times_s[-1])}"]
     for r, rel in enumerate(forecast.releases):
         end = forecast.means[r, -1]
         major, minor = forecast.semi_axes_m[r, -1, forecast.levels.index(0.95)]
-        text = f"  {rel.name}: end mean ({', '.join(f'{v:.0f}' for v in end)}) m"
+        text = f"  {rel.name}: end mean ({', '.join(format_length(v) for v in end)})"
         if forecast.mean_lonlat is not None:
             text += " = lon/lat ({:.5f}, {:.5f})".format(*forecast.mean_lonlat[r, -1])
-        text += f"; 95 % ellipse {major:.0f} m x {minor:.0f} m"
+        text += f"; 95 % ellipse {format_length(major)} x {format_length(minor)}"
+        error = monte_carlo_error(forecast, r)
+        if error is not None:
+            text += (f"; Monte Carlo error ({forecast.particles} particles, 1 SE at the end): mean ± "
+                     f"{format_length(error['mean_se_m'])}, variance ± {100 * (error['variance_relative_se'] or 0):.2g} %")
         if forecast.probability is not None:
             arrival = forecast.first_arrival_s[r]
             text += f"; P(inside) max {forecast.probability[r].max():.3f}, reaches {forecast.threshold:g} " + (
-                "never" if arrival is None else f"at {arrival / 3600.0:.3g} h")
+                "never" if arrival is None else f"at {format_duration(arrival)}")
         lines.append(text)
     lines += [f"wrote {path}" for path in written] + [CAUTION]
     return "\n".join(lines)
 
 # ---------------------------------------------------------------- score
-def add_score(sub: argparse._SubParsersAction) -> None:
-    p = sub.add_parser(
-        "score", help="score forecasts on held-out tracks: separation, skill, ellipse coverage, baselines",
-        description="Forecast from every fix of tracks the model never saw and compare with where they went, per "
+def configure_score(p: argparse.ArgumentParser) -> None:
+    p.description = (
+        "Forecast from every fix of tracks the model never saw and compare with where they went, per "
         "horizon: median and 90th-percentile separation, Liu-Weisberg (2011) skill (1 perfect, 0 none), the "
         "fraction of observed positions inside the forecast's 50 % and 95 % ellipses (calibration) and the "
-        "Gaussian log score, next to persistence and no-motion baselines.", epilog=CAUTION)
+        "Gaussian log score, next to persistence and no-motion baselines.")
+    p.epilog = CAUTION
     p.add_argument("model", help="model file written by `driftwise fit`")
     p.add_argument("holdout", help="tracks file NOT used in the fit (CSV, CSV.GZ, Parquet or CF-trajectory NetCDF)")
     p.add_argument("--horizons", default=None,
@@ -241,8 +255,8 @@ def _run_score(args: argparse.Namespace) -> int:
         print_json({**result, "outputs": written, "caution": CAUTION})
     else:
         print(f"score: {result['n_starts']} forecasts from {result['n_tracks']} held-out tracks, method "
-              f"{result['method']}, K = {result['diffusivity_m2_s']:.3g} m²/s, tau = "
-              + ("—" if result["decorrelation_time_s"] is None else f"{result['decorrelation_time_s']:.4g} s"))
+              f"{result['method']}, K = {format_diffusivity(result['diffusivity_m2_s'])}, tau = "
+              + format_duration(result["decorrelation_time_s"]))
         print(format_score_table(result))
         print("\n".join([f"wrote {path}" for path in written] + [CAUTION]))
     return EXIT_OK

@@ -56,10 +56,11 @@ from ..products.plots import (
 )
 from ..products.report import digest, write_report
 from ..products.writers import write_field_grid, write_score_csv, write_spread
+from ..units import format_duration
 from ..version import __version__
 from .bay import DemoScenario, write_demo_data
 from .demoanswers import step_backtrack, step_connect
-from .job import Job, Unavailable, duration, environment, one_line_warnings, progress_bar
+from .job import Job, Unavailable, environment, one_line_warnings, progress_bar
 from .job import fitted_field as _field
 from .scenarios import (
     HOUR_S,
@@ -207,7 +208,7 @@ def step_fit(job: Job) -> str:
                        "elbo.png", f"The evidence lower bound while fitting ({info.get('elbo_history_kind', '')}).",
                        "fit")
     return (f"helmholtz, M = {job.summary['fit']['n_inducing']}, K = {field.diffusivity_m2_s:.3g} m²/s, "
-            f"τ = {duration(field.decorrelation_time_s)}, {info.get('steps')} steps")
+            f"τ = {format_duration(field.decorrelation_time_s)}, {info.get('steps')} steps")
 
 
 def _group_hyperparameters(h: dict[str, float]) -> dict[str, Any]:
@@ -241,7 +242,7 @@ def step_calibrate(job: Job) -> str:
     truth = _true_diffusivity_m2_s()
     fit["notes"] = [f"K and τ were calibrated by maximising the likelihood of {record.get('n_transitions', 'the')} "
                     "observed displacements between fixes of the fit tracks under the moment-propagated Gaussian "
-                    f"transition (before: K = {before[0]:.3g} m²/s, τ = {duration(before[1])} from the "
+                    f"transition (before: K = {before[0]:.3g} m²/s, τ = {format_duration(before[1])} from the "
                     "length scale over the RMS speed, Taylor 1921)."]
     if truth > 0:
         fit["notes"].append(f"The invented data were simulated with K = {truth:g} m²/s (demo_data/README.md), "
@@ -252,7 +253,7 @@ def step_calibrate(job: Job) -> str:
                             "the fitted velocity acts as if frozen along each path (its spread grows as Σt², "
                             "Taylor 1921), so a longer τ would fit as well.")
     return (f"K {before[0]:.3g} → {field.diffusivity_m2_s:.3g} m²/s, "
-            f"τ {duration(before[1])} → {duration(field.decorrelation_time_s)}"
+            f"τ {format_duration(before[1])} → {format_duration(field.decorrelation_time_s)}"
             + (" (upper bound: velocity error frozen over the lags)" if tau_at_bound else ""))
 
 

@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import os
 import platform
-import sys
 import time
 import traceback
 import warnings
@@ -18,10 +17,10 @@ from typing import Any, Callable
 
 import jax
 import numpy as np
-from tqdm.auto import tqdm
 
 from ..errors import InputError
 from ..products.plots import save_figure
+from ..progress import Progress
 
 HOUR_S = 3600.0
 
@@ -96,17 +95,10 @@ def one_line(text: str, limit: int = 300) -> str:
     return text if len(text) <= limit else text[: limit - 1] + "…"
 
 
-def duration(seconds: float) -> str:
-    """``34 632`` → ``9.62 h``; ``95`` → ``1.58 min``; ``1.0`` → ``1 s`` (3 significant digits)."""
-    for unit, size in (("d", 86400.0), ("h", HOUR_S), ("min", 60.0)):
-        if abs(seconds) >= size:
-            return f"{seconds / size:.3g} {unit}"
-    return f"{seconds:.3g} s"
 
 def progress_bar(total: int, quiet: bool) -> Any:
-    """The demo's step bar on stderr (tqdm), shown only on a terminal and without ``--quiet``."""
-    disable = quiet or not (hasattr(sys.stderr, "isatty") and sys.stderr.isatty())
-    return tqdm(total=total, disable=disable, unit="step", file=sys.stderr, leave=False, dynamic_ncols=True)
+    """The demo's step progress on stderr (:class:`driftwise.progress.Progress`), none with ``--quiet``."""
+    return Progress(total, enabled=not quiet, desc="driftwise demo")
 
 
 def one_line_warnings(caught: list[warnings.WarningMessage]) -> list[str]:

@@ -3,8 +3,8 @@
 Memory: the request's estimated peak (from the library's ``*_memory_bytes``) is compared with the memory the
 system reports available (``MemAvailable`` of /proc/meminfo on Linux, else the free physical pages of
 ``os.sysconf``); a request above it stops with exit 2 before anything large is allocated.
-Progress: tqdm on stderr with the rate and the estimated remaining time, shown only on a terminal and never
-with ``--quiet`` or ``--json``.
+Progress: :class:`driftwise.progress.Progress` on stderr with the estimated remaining time (a bar on a terminal,
+a plain line every few seconds in a pipe or a log), never with ``--quiet`` or ``--json``.
 """
 
 from __future__ import annotations
@@ -14,7 +14,7 @@ import sys
 from typing import Any
 
 from ..errors import InputError
-from .job import progress_bar
+from ..progress import Progress
 
 MEMORY_HEADROOM = 0.8   # use at most this share of the available memory
 
@@ -47,11 +47,8 @@ def check_memory(need_bytes: int, what: str, advice: str) -> None:
 
 
 def bar(total: int, quiet: bool, description: str, unit: str) -> Any:
-    """The demo's tqdm bar (stderr, terminal only) with a description and unit; it shows the remaining time."""
-    progress = progress_bar(total, quiet)
-    progress.set_description(description)
-    progress.unit = unit
-    return progress
+    """Progress on stderr (:class:`driftwise.progress.Progress`) with a description and unit; none when quiet."""
+    return Progress(total, enabled=not quiet, desc=description, unit=unit)
 
 
 def say(text: str, quiet: bool) -> None:

@@ -35,9 +35,10 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..errors import InputError
+from ..units import format_duration, format_length
 
-__all__ = ["DataScales", "check_horizons", "check_position_error", "data_scales", "duration_text", "length_text",
-           "check_horizons_s", "map_spacing_m", "resolve_horizons"]
+__all__ = ["DataScales", "check_horizons", "check_horizons_s", "check_position_error", "data_scales", "map_spacing_m",
+           "resolve_horizons"]
 
 MAX_LAGS = 5
 MAP_CELLS = 80
@@ -166,8 +167,8 @@ def check_position_error(position_error_m: float, scales: DataScales, *, option:
     """Refuse a position error larger than the median step between fixes: such noise would dominate
     every velocity, so it is almost certainly a unit slip (e.g. 10 m for a tank measured in mm)."""
     if position_error_m > scales.median_step_m:
-        raise InputError(f"{option} {length_text(position_error_m)} is larger than the typical step between "
-                         f"fixes of these data ({length_text(scales.median_step_m)}, median); give the "
+        raise InputError(f"{option} {format_length(position_error_m)} is larger than the typical step between "
+                         f"fixes of these data ({format_length(scales.median_step_m)}, median); give the "
                          f"standard deviation of one fix per axis, or leave it out to estimate it from the tracks")
 
 
@@ -184,8 +185,8 @@ def check_horizons_s(horizons_s: Iterable[float], sampling_interval_s: float | N
     values = [float(h) for h in horizons_s]
     short = [h for h in values if h < sampling_interval_s * (1 - 1e-9)]
     if short:
-        raise InputError(f"{option}: {duration_text(min(short))} is shorter than the sampling interval of these "
-                         f"data ({duration_text(sampling_interval_s)}, median); a unit may be missing "
+        raise InputError(f"{option}: {format_duration(min(short))} is shorter than the sampling interval of these "
+                         f"data ({format_duration(sampling_interval_s)}, median); a unit may be missing "
                          f"(a bare number means seconds)")
 
 
@@ -198,20 +199,3 @@ def resolve_horizons(horizons_s, tracks, *, option: str = "--horizons") -> list[
     chosen = list(scales.horizons_s) if horizons_s is None else [float(h) for h in horizons_s]
     check_horizons(chosen, scales, option=option)
     return chosen
-
-
-# ---------------------------------------------------------------- text
-def length_text(metres: float) -> str:
-    """Three significant figures in mm, m or km (``0.0005`` → ``0.5 mm``)."""
-    size = abs(metres)
-    unit, scale = ("km", 1e3) if size >= 1e3 else ("m", 1.0) if size >= 1.0 else ("mm", 1e-3)
-    return f"{metres / scale:.3g} {unit}"
-
-
-def duration_text(seconds: float) -> str:
-    """Three significant figures in ms, s, min, h or d (``5400`` → ``1.5 h``)."""
-    size = abs(seconds)
-    for unit, scale in (("d", 86400.0), ("h", 3600.0), ("min", 60.0), ("s", 1.0)):
-        if size >= scale:
-            return f"{seconds / scale:.3g} {unit}"
-    return f"{seconds * 1e3:.3g} ms"

@@ -23,7 +23,6 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-import jax
 import numpy as np
 
 from ..errors import InputError
@@ -43,7 +42,8 @@ class Observations:
     Shapes: ``position_m`` (n, d) segment midpoints, ``velocity_m_s`` (n, d),
     ``dt_s`` (n,) segment durations, ``time_s`` (n,) midpoint times,
     ``track_index`` (n,) the index of the track in ``Tracks.unique_ids``;
-    ``position_error_m`` σ_pos, the standard deviation of each fix per component.
+    ``position_error_m`` σ_pos, the standard deviation of each fix per component.  A jax pytree
+    (registered in :mod:`driftwise.gp.field`, so that reading tracks does not import jax).
     """
 
     position_m: np.ndarray
@@ -78,10 +78,6 @@ class Observations:
         """
         return self.random_walk_coefficient_s_inv * diffusivity_m2_s + self.position_noise_var_m2_s2 + floor_m2_s2
 
-
-jax.tree_util.register_dataclass(
-    Observations, data_fields=["position_m", "velocity_m_s", "dt_s", "time_s", "track_index"],
-    meta_fields=["position_error_m"])
 
 
 def velocity_observations(tracks, *, position_error_m: float = 10.0) -> Observations:

@@ -55,7 +55,7 @@ from typing import Any
 import numpy as np
 
 from ..errors import InputError
-from .datascales import length_text
+from ..units import format_length
 
 __all__ = ["PositionErrorEstimate", "estimate_position_error", "position_error_text"]
 
@@ -308,7 +308,7 @@ def _outcome(var_m2: float, se_m2: float, method: str, n_windows: int, n_tracks:
     bound = math.sqrt(max(var_m2, 0.0) + 2.0 * se_m2)
     note = (f"not identifiable: σ² = {var_m2:.3g} ± {se_m2:.3g} m² is not above twice its standard error "
             f"(the random walk or the flow hides the noise at this sampling); using the upper bound "
-            f"{bound:.3g} m")
+            f"{format_length(bound)}")
     return PositionErrorEstimate(bound, se_m2 / (2.0 * bound) if bound > 0 else math.inf, method, n_windows,
                                  False, estimate, n_tracks, note)
 
@@ -318,10 +318,10 @@ def position_error_text(record: dict[str, Any]) -> str:
     ``position_error_estimate`` (:meth:`PositionErrorEstimate.to_dict`):
     ``position error σ = 0.52 mm (estimated ± 0.03 mm from …)`` or ``… (given)``."""
     source, estimate = record["position_error_source"], record.get("position_error_estimate") or {}
-    text = f"position error σ = {length_text(record['position_error_m'])} ({source}"
+    text = f"position error σ = {format_length(record['position_error_m'])} ({source}"
     if source == "estimated" and estimate:
         se = estimate.get("standard_error_m")
-        text += "" if se is None else f" ± {length_text(se)}"
+        text += "" if se is None else f" ± {format_length(se)}"
         text += (f" from the second differences of {estimate.get('n_used')} windows of 6 fixes in "
                  f"{estimate.get('n_tracks')} tracks")
         text += f"; {estimate['note']}" if estimate.get("note") else ""

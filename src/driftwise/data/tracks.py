@@ -38,7 +38,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import InputError
-from ..units import parse_duration_s, parse_speed_m_s
+from ..units import format_duration, format_length, format_speed, parse_duration_s, parse_speed_m_s
 from .frame import Frame, frame_for
 from .observations import MIN_FIT_OBSERVATIONS, Observations, velocity_observations
 from .trackcf import read_netcdf_frame
@@ -274,17 +274,20 @@ def inspect_summary(tracks: Tracks) -> dict[str, Any]:
 def format_summary(summary: dict[str, Any]) -> str:
     """The summary as a few lines of text for a terminal."""
     t, dt, v = summary["time"], summary["sampling_interval_s"], summary["speed_m_s"]
-    when = f"{t['start_iso']} to {t['end_iso']}" if t["absolute"] else f"{t['start_s']:g} s to {t['end_s']:g} s"
+    when = (f"{t['start_iso']} to {t['end_iso']}" if t["absolute"]
+            else f"{format_duration(t['start_s'])} to {format_duration(t['end_s'])}")
     fpt = summary["fixes_per_track"]
     lines = [
         f"{summary['source']}: {summary['n_tracks']} track{'s' * (summary['n_tracks'] != 1)}, "
         f"{summary['n_fixes']} fixes, {summary['dim']}-D positions",
         f"  fixes/track  median {fpt['median']:g} (min {fpt['min']}, max {fpt['max']})",
-        f"  time         {when} ({_duration(t['span_s'])})",
-        f"  sampling     median {dt['median']:.4g} s (min {dt['min']:.4g} s, max {dt['max']:.4g} s)",
-        f"  speed        p5 {v['p5']:.3g}, p50 {v['p50']:.3g}, p95 {v['p95']:.3g}, max {v['max']:.3g} m/s",
-        "  extent       " + ", ".join(f"{k} {lo / 1000:.2f}…{hi / 1000:.2f} km" for k, (lo, hi) in
-                                     summary["extent_m"].items()),
+        f"  time         {when} ({format_duration(t['span_s'])})",
+        f"  sampling     median {format_duration(dt['median'])} (min {format_duration(dt['min'])}, "
+        f"max {format_duration(dt['max'])})",
+        f"  speed        p5 {format_speed(v['p5'])}, p50 {format_speed(v['p50'])}, p95 {format_speed(v['p95'])}, "
+        f"max {format_speed(v['max'])}",
+        "  extent       " + ", ".join(f"{k} {format_length(lo)} … {format_length(hi)} ({format_length(hi - lo)} wide)"
+                                     for k, (lo, hi) in summary["extent_m"].items()),
         "  frame        " + _frame_text(summary),
     ]
     if summary["extra_columns"]:
@@ -313,13 +316,6 @@ def _deg(value: float, hemispheres: str) -> str:
 def _stats(values: np.ndarray, names: tuple[str, ...]) -> dict[str, float]:
     funcs = {"median": np.median, "min": np.min, "max": np.max}
     return {name: float(funcs[name](values)) for name in names}
-
-
-def _duration(seconds: float) -> str:
-    for unit, size in (("d", 86400.0), ("h", 3600.0), ("min", 60.0)):
-        if seconds >= size:
-            return f"{seconds / size:.3g} {unit}"
-    return f"{seconds:.3g} s"
 
 
 def _iso(seconds: float) -> str:

@@ -12,6 +12,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..errors import InputError
+from ..units import format_duration
 
 __all__ = ["Windows", "output_times_s", "forecast_windows", "evenly_spaced", "track_slices"]
 
@@ -108,7 +109,7 @@ def forecast_windows(tracks, horizons_s, *, step_s: float | None = None,
                 index.append(np.full(win[0].shape[0], k))
     if not parts:
         raise InputError(f"{tracks.source}: no held-out track is long enough to score a "
-                         f"{horizons.min() / 3600:g} h forecast (needs two fixes before and coverage after)")
+                         f"{format_duration(horizons.min())} forecast (needs two fixes before and coverage after)")
     arrays = [np.concatenate(col) for col in zip(*parts)]
     track_index = np.concatenate(index)
     keep = evenly_spaced(track_index.size, max_starts)

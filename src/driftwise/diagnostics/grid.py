@@ -107,7 +107,8 @@ def field_grid(field, *, spacing_m: float | None = None, cells_across: int = MAP
         raise InputError(f"--spacing must be a positive distance, got {spacing_m!r} m")
     counts = [math.ceil(hi[a] / spacing_m) - math.floor(lo[a] / spacing_m) + 1 for a in range(2)]
     if counts[0] * counts[1] > max_nodes:
-        raise InputError(f"a {spacing_m:g} m grid over the model's {hi[0] - lo[0]:.0f} m × {hi[1] - lo[1]:.0f} m "
+        raise InputError(f"a {format_length(spacing_m)} grid over the model's {format_length(hi[0] - lo[0])} × "
+                         f"{format_length(hi[1] - lo[1])} "
                          f"extent has {counts[0] * counts[1]} nodes (limit {max_nodes}); choose a larger --spacing")
     axes = [(math.floor(lo[a] / spacing_m) + np.arange(counts[a])) * spacing_m for a in range(2)]
     shape = (axes[1].size, axes[0].size)

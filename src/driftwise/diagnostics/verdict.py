@@ -51,6 +51,7 @@ from ..gp.kernels import KERNEL_FAMILIES
 from ..gp.schedule import Schedule
 from ..gp.training import fit, fit_summary
 from ..gp.variational import exact_q
+from ..progress import Stopwatch
 from . import physics
 
 __all__ = ["FAMILIES", "CheckMaps", "check", "constraint_tests", "evidence_reading", "families_distinguishable",
@@ -347,14 +348,15 @@ def check(tracks, *, model=None, holdout_fraction: float = 0.2, seed: int = 0, i
 
 def run_check(tracks, *, model=None, holdout_fraction: float = 0.2, seed: int = 0, inducing: int = 64,
               steps: int = 300, position_error_m: float | None = None, alpha: float = physics.ALPHA,
-              progress: bool = False) -> tuple[dict, CheckMaps]:
-    """:func:`check` plus the maps for the figures."""
-
+              progress: bool = False, timing_s: dict[str, float] | None = None) -> tuple[dict, CheckMaps]:
+    """:func:`check` plus the maps for the figures; ``timing_s`` receives the stages' wall seconds."""
+    clock = Stopwatch(timing_s)
     if model is not None:
         tracks = in_model_frame(tracks, model.frame)
     error_source = "given"
     if position_error_m is None:
-        position_error_m, error_source = estimate_position_error(tracks, seed=seed).value_m, "estimated"
+        with clock("estimate_position_error"):
+            position_error_m, error_source = estimate_position_error(tracks, seed=seed).value_m, "estimated"
     else:
         check_position_error(position_error_m, data_scales(tracks), option="position error (--position-error)")
     train, held = split_tracks(tracks, holdout_fraction=holdout_fraction, seed=seed)
@@ -362,13 +364,15 @@ def run_check(tracks, *, model=None, holdout_fraction: float = 0.2, seed: int = 
     held_obs = velocity_observations(held, position_error_m=position_error_m)
     options = {"inducing": inducing, "seed": seed, "position_error_m": position_error_m,
                "schedule": Schedule(steps=steps), "progress": progress}
-    fields, table = _fit_families(train, families=FAMILIES, fit_options=options, holdout_obs=held_obs)
-    tested, source = _physics_model(model, fields["helmholtz"], every)
-    helmholtz = tested if tested.kernel_family == "helmholtz" else _condition_on(fields["helmholtz"], every)
-    tests = constraint_tests(tested, every.position_m, alpha=alpha, fallback=helmholtz)
-    grid, sig = tests["grid"], tests["significance"]
-    points = grid.points_m
-    split = physics.helmholtz_split(helmholtz, points)
+    with clock("fit_families"):
+        fields, table = _fit_families(train, families=FAMILIES, fit_options=options, holdout_obs=held_obs)
+    with clock("constraint_tests"):
+        tested, source = _physics_model(model, fields["helmholtz"], every)
+        helmholtz = tested if tested.kernel_family == "helmholtz" else _condition_on(fields["helmholtz"], every)
+        tests = constraint_tests(tested, every.position_m, alpha=alpha, fallback=helmholtz)
+        grid, sig = tests["grid"], tests["significance"]
+        points = grid.points_m
+        split = physics.helmholtz_split(helmholtz, points)
     background = physics.background_summary(helmholtz)
     same = families_distinguishable(table)
     summary = {

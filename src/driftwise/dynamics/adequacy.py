@@ -37,6 +37,7 @@ import jax
 import numpy as np
 
 from ..errors import InputError
+from ..units import format_duration
 from .ensemble import EulerMaruyama, simulate
 from .sde import sde_from_field
 
@@ -79,8 +80,7 @@ class GaussianAdequacy:
         """One line for a figure or report: what the ellipses hold, and what to do when that is poor.
 
         ``what`` names the release checked (e.g. "the oldest parcel"), else "this release"."""
-        hours = f"{self.time_s / 3600.0:g} h"
-        held = (f"at {hours} the 95 % ellipse holds {100 * self.inside_95:.0f} % and the 50 % ellipse "
+        held = (f"at {format_duration(self.time_s)} the 95 % ellipse holds {100 * self.inside_95:.0f} % and the 50 % ellipse "
                 f"{100 * self.inside_50:.0f} % of {self.particles} simulated particles")
         subject = what or "this release"
         if not self.poor:

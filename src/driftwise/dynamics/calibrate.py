@@ -46,7 +46,7 @@ import jax.numpy as jnp
 import numpy as np
 from scipy.optimize import minimize
 
-from ..data.datascales import DataScales, data_scales, duration_text
+from ..data.datascales import DataScales, data_scales
 from ..data.observations import velocity_observations
 from ..data.tracks import Tracks, in_model_frame
 from ..data.windows import forecast_windows
@@ -54,6 +54,7 @@ from ..errors import InputError
 from ..files import plain
 from ..gp.field import batch_from_observations
 from ..gp.variational import exact_q
+from ..units import format_duration
 from .moments import RK4, Linearize, propagate_one, substep_counts
 from .sde import PointPosterior, field_drift, timed_field_sde, transport_sde, velocity_memory_weight
 
@@ -167,7 +168,7 @@ def transitions_from_tracks(tracks_or_observations, *, lags_s, position_error_m:
         win = forecast_windows(data, lags, step_s=float(lags.max()), max_starts=max_starts)
     except InputError:
         raise InputError(f"{getattr(data, 'source', 'tracks')}: calibration needs a track observed for "
-                         f"{duration_text(lags.min())} after a fix; no track is; give shorter lags or fit "
+                         f"{format_duration(lags.min())} after a fix; no track is; give shorter lags or fit "
                          "with --no-calibrate") from None
     keep = np.searchsorted(win.times_s, lags)
     valid = win.valid[:, keep]

@@ -56,7 +56,7 @@ from scipy.stats import chi2
 from ..data.utctime import iso_utc
 from ..errors import InputError
 from .ensemble import EulerMaruyama, simulate
-from .methods import make_method, method_name
+from .methods import DEFAULT_PARTICLES, METHODS, default_ensemble_step_s, make_method, method_name
 from .moments import RK4, SphericalCubature, propagate_batch
 from .sde import sde_from_field
 from .supportcheck import SupportWarning, path_support, warn_left_support, warn_unsupported_releases  # noqa: F401
@@ -142,6 +142,8 @@ class Spread:
     with a polygon: ``polygon_m (k, 2)``, ``probability (R, T)``, and for a threshold
     ``first_arrival_s`` (per release, seconds since its start, or None);
     ``time_origin_utc`` the ISO-8601 UTC instant of ``start_time_s = 0`` when the model knows it;
+    for the ensemble its Monte Carlo standard errors ``mean_se_m (R, T, d)`` and ``cov_se_m2 (R, T, d, d)``
+    (:class:`driftwise.dynamics.ensemble.EnsembleResult`) and its ``particles``, else None;
     ``support`` (:class:`~driftwise.dynamics.supportcheck.PathSupport`, forecasts from a fitted field) the
     variance ratio, distance to the data and ``outside_support`` flag (R, T) along the mean paths.
     """
@@ -161,6 +163,9 @@ class Spread:
     threshold: float | None = None
     first_arrival_s: tuple[float | None, ...] | None = None
     time_origin_utc: str | None = None
+    mean_se_m: np.ndarray | None = None
+    cov_se_m2: np.ndarray | None = None
+    particles: int | None = None
     support: Any = None      # supportcheck.PathSupport along the mean paths (forecasts from a fitted field)
 
     @property
@@ -219,9 +224,10 @@ def with_polygon(spread: Spread, polygon_m: Any, threshold: float | None = None)
 # ------------------------------------------------------------------ propagation
 
 def _moments(sde: Any, releases: tuple[Release, ...], times: np.ndarray, method: Any, integrator: Any,
-             key: Any, fallback: Any = None) -> tuple[np.ndarray, np.ndarray]:
+             key: Any, fallback: Any = None) -> tuple[np.ndarray, np.ndarray, dict[str, Any]]:
     """Means (R, T, d) and covariances (R, T, d, d): one propagate_batch call (non-finite releases rerun
-    through the ``fallback`` SDE when given), or one ensemble per release."""
+    through the ``fallback`` SDE when given), or one ensemble per release; and for the ensemble its Monte Carlo
+    errors (the :class:`Spread` fields mean_se_m, cov_se_m2, particles)."""
 
     means0 = np.stack([r.start_m for r in releases])
     covs0 = np.stack([r.cov0_m2 for r in releases])
@@ -235,12 +241,14 @@ def _moments(sde: Any, releases: tuple[Release, ...], times: np.ndarray, method:
                           "forecast with the exact posterior", stacklevel=3)
             means[left], covs[left] = propagate_batch(fallback, means0[left], covs0[left], times, method=method,
                                                       integrator=integrator or RK4(), start_times_s=starts[left])
-        return means, covs
+        return means, covs, {}
     if key is None:
         raise InputError("the ensemble method needs an explicit random key (key=jax.random.key(seed))")
     results = [simulate(sde, m0, c0, times, method=method, key=k, start_time_s=t0)
                for m0, c0, t0, k in zip(means0, covs0, starts, jax.random.split(key, len(releases)))]
-    return np.stack([np.asarray(r.mean) for r in results]), np.stack([np.asarray(r.cov) for r in results])
+    errors = {"mean_se_m": np.stack([np.asarray(r.mean_se) for r in results]),
+              "cov_se_m2": np.stack([np.asarray(r.cov_se) for r in results]), "particles": int(method.particles)}
+    return np.stack([np.asarray(r.mean) for r in results]), np.stack([np.asarray(r.cov) for r in results]), errors
 
 
 def spread_releases(sde: Any, releases: Any, times_s: Any, *, method: Any = None, integrator: Any = None,
@@ -264,17 +272,18 @@ def spread_releases(sde: Any, releases: Any, times_s: Any, *, method: Any = None
     method = SphericalCubature() if method is None else method
     name = method_name(method)
     rels, times = as_releases(releases), check_times(times_s)
-    means, covs = _moments(sde, rels, times, method, integrator, key, fallback_sde)
+    means, covs, errors = _moments(sde, rels, times, method, integrator, key, fallback_sde)
     if not (np.all(np.isfinite(means)) and np.all(np.isfinite(covs))):
         raise InputError(f"the {name} forecast produced non-finite numbers (the integration diverged); use a smaller step")
-    return make_spread(name, rels, times, means, covs, frame=frame, polygon_m=polygon_m, threshold=threshold,
-                       time_origin_utc=time_origin_utc)
+    spread = make_spread(name, rels, times, means, covs, frame=frame, polygon_m=polygon_m, threshold=threshold,
+                         time_origin_utc=time_origin_utc)
+    return dataclasses.replace(spread, **errors)
 
 
 
 
 def spread_from_field(field: Any, releases: Any, times_s: Any, *, method: str = "cubature",
-                      particles: int = 10_000, step_s: float | None = None,
+                      particles: int = DEFAULT_PARTICLES, step_s: float | None = None,
                       diffusivity_m2_s: float | None = None, decorrelation_time_s: float | None = None,
                       seed: int = 0, gauss_hermite_order: int = 3, polygon_m: Any = None,
                       threshold: float | None = None, posterior: str = "auto") -> Spread:
@@ -282,7 +291,8 @@ def spread_from_field(field: Any, releases: Any, times_s: Any, *, method: str = 
     A time-varying field (``field.is_time_varying``) gives μ(x, t), Σ(x, t) at absolute time t = release start + age.
 
     ``method`` is a name in :data:`driftwise.dynamics.methods.METHODS` ("cubature" default); ``step_s`` the RK4 step (default 600 s) or the
-    Euler–Maruyama step (default 60 s) for ``"ensemble"`` with ``particles``; K and τ default to the
+    Euler–Maruyama step (default :func:`driftwise.dynamics.methods.default_ensemble_step_s`: 5 min, or a 20th of
+    the flow's time scale when shorter) for ``"ensemble"`` with ``particles``; K and τ default to the
     model's own; ``seed`` seeds the ensemble; the model's ``time_origin_utc`` (data summary; absent in
     model files from before it was recorded) gives the outputs absolute times.  Other arguments as in
     :func:`spread_releases`.  ``posterior``: "exact" evaluates the posterior at every point
@@ -291,6 +301,8 @@ def spread_from_field(field: Any, releases: Any, times_s: Any, *, method: str = 
     (default) tabulates for moment methods when releases × RK4 steps ≥ tabulate.TABLE_RELEASE_STEPS.
     """
 
+    if step_s is None and method in METHODS and METHODS[method].ensemble:
+        step_s = default_ensemble_step_s(field)
     obj, integrator = make_method(method, particles=particles, step_s=step_s, gauss_hermite_order=gauss_hermite_order)
     rels = as_releases(releases)
     dim = int(getattr(field, "dim", rels[0].start_m.size))

@@ -39,7 +39,6 @@ from __future__ import annotations
 import dataclasses
 import hashlib
 import math
-import sys
 from dataclasses import dataclass
 from functools import partial
 from pathlib import Path
@@ -49,13 +48,13 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 import optax
-from tqdm.auto import tqdm
 
 from ..errors import InputError
 from ..gp import field as fld
 from ..gp.schedule import Checkpoint, Schedule, TrainConfig, TrainState, load_checkpoint, save_checkpoint
 from ..gp.training import fit
 from ..gp.training import fit_report as velocity_fit_report
+from ..progress import Progress, Stopwatch
 from .methods import METHODS, make_method, method_name
 from .sde import PointPosterior
 from .transitionbound import expected_log_likelihoods
@@ -239,9 +238,8 @@ def _check(state: TrainState, problem: _Problem) -> TrainState:
 
 def _train(state: TrainState, problem: _Problem, schedule: Schedule, checkpoint: Checkpoint | None,
            progress: bool) -> TrainState:
-    disable = not (progress and hasattr(sys.stderr, "isatty") and sys.stderr.isatty())
-    bar = tqdm(total=schedule.steps, initial=min(state.step, schedule.steps), disable=disable, leave=False,
-               desc="driftwise fit (transitions)", unit="step", file=sys.stderr, dynamic_ncols=True)
+    bar = Progress(schedule.steps, initial=min(state.step, schedule.steps), enabled=progress,
+                   desc="driftwise fit (transitions)")
     if state.step == 0 and not state.checks:
         state = dataclasses.replace(state, checks=(_value(state.params, problem, _evaluation_rows(
             problem.trans.n, problem.config.seed), state.jitter_multiple),))    # the warm start's value
@@ -377,17 +375,18 @@ def transition_checkpoint_path(path: Path) -> Path:
 def fit_by_likelihood(tracks, kernel: str, likelihood: str = "auto", *, inducing: int | None = None, seed: int = 0,
                       position_error_m: float | None = None, checkpoint: Checkpoint | None = None, quiet: bool = False,
                       schedule: Schedule = Schedule(), transition_schedule: Schedule = TRANSITION_SCHEDULE,
-                      method: str = "cubature", background: str = "linear") -> tuple[fld.FlowField, LikelihoodChoice]:
+                      method: str = "cubature", background: str = "linear",
+                      timing_s: dict[str, float] | None = None) -> tuple[fld.FlowField, LikelihoodChoice]:
     """The velocity fit, then (when ``likelihood`` is "transitions", or "auto" finds the fixes coarse) the
     transition fit warm-started from it.  Returns (field, :class:`LikelihoodChoice`).  ``checkpoint`` is the
     velocity fit's; the transition stage keeps its own beside it (:func:`transition_checkpoint_path`) and
     removes it once it has finished.  ``position_error_m`` None: the velocity fit's estimate; ``background`` as
-    in :func:`driftwise.fit`."""
-    progress = not quiet
+    in :func:`driftwise.fit`; ``timing_s`` receives the stages' wall seconds (:class:`driftwise.progress.Stopwatch`)."""
+    progress, clock = not quiet, Stopwatch(timing_s)
     if likelihood not in LIKELIHOODS:
         raise InputError(f"likelihood: use one of {', '.join(LIKELIHOODS)}, got {likelihood!r}")
     field = fit(tracks, kernel, inducing=inducing, seed=seed, position_error_m=position_error_m, schedule=schedule,
-                checkpoint=checkpoint, progress=progress, background=background)
+                checkpoint=checkpoint, progress=progress, background=background, timing_s=clock.laps)
     if position_error_m is None:      # estimated by the velocity fit
         position_error_m = field.position_error_m
     trans = transition_set(tracks, position_error_m=position_error_m)
@@ -396,8 +395,9 @@ def fit_by_likelihood(tracks, kernel: str, likelihood: str = "auto", *, inducing
         stage = None if checkpoint is None else Checkpoint(transition_checkpoint_path(checkpoint.path),
                                                            resume=checkpoint.resume,
                                                            every_steps=checkpoint.every_steps)
-        field = fit_transitions(tracks, field, position_error_m=position_error_m, schedule=transition_schedule,
-                                method=method, seed=seed, checkpoint=stage, progress=progress)
+        with clock("transition_fit"):
+            field = fit_transitions(tracks, field, position_error_m=position_error_m, schedule=transition_schedule,
+                                    method=method, seed=seed, checkpoint=stage, progress=progress)
         if stage is not None:
             stage.path.unlink(missing_ok=True)
     return field, choice

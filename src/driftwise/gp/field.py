@@ -35,6 +35,7 @@ import jax.numpy as jnp
 import numpy as np
 from jax.scipy.linalg import solve_triangular
 
+from ..data.observations import Observations
 from ..data.support import distance_to_data_m
 from ..data.tracks import Frame
 from ..errors import InputError
@@ -66,6 +67,11 @@ JITTER_MULTIPLE = 1.0e6
 PARTS = (None, "divergence_free", "curl_free")
 PREDICT_CHUNK = 4096
 _STATIC = {"static": True}
+
+# The data layer does not import jax (``driftwise inspect`` stays light); its observations become a pytree here.
+jax.tree_util.register_dataclass(
+    Observations, data_fields=["position_m", "velocity_m_s", "dt_s", "time_s", "track_index"],
+    meta_fields=["position_error_m"])
 
 
 # --------------------------------------------------------------------------------------

@@ -42,7 +42,6 @@ import dataclasses
 import hashlib
 import json
 import math
-import sys
 import warnings
 from typing import Any
 
@@ -50,7 +49,6 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 import optax
-from tqdm.auto import tqdm
 
 from ..data.datascales import check_position_error, data_scales
 from ..data.frame import Frame
@@ -59,6 +57,7 @@ from ..data.positionerror import estimate_position_error
 from ..data.support import support_record
 from ..data.utctime import UNIX_EPOCH_UTC
 from ..errors import InputError
+from ..progress import Progress, Stopwatch
 from . import field as fld
 from .background import BACKGROUNDS
 from .kernels import BASES, DEFAULT_FAMILY, KERNEL_FAMILIES
@@ -287,16 +286,10 @@ def advance(state: TrainState, data: _Data, config: TrainConfig, z_scale: float)
 
 
 # ------------------------------------------------------------------------------ the loop
-def _progress(total: int, initial: int, enabled: bool):
-    disable = not (enabled and hasattr(sys.stderr, "isatty") and sys.stderr.isatty())
-    return tqdm(total=total, initial=initial, disable=disable, desc="driftwise fit", unit="step",
-                file=sys.stderr, leave=False, dynamic_ncols=True)
-
-
 def _train(state: TrainState, data: _Data, config: TrainConfig, schedule: Schedule, *, z_scale: float,
            checkpoint: Checkpoint | None, progress: bool) -> TrainState:
     steps, patience = schedule.steps, schedule.patience
-    bar = _progress(steps, min(state.step, steps), progress)
+    bar = Progress(steps, initial=min(state.step, steps), enabled=progress, desc="driftwise fit")
     try:
         while state.step < steps and not state.converged:
             state = advance(state, data, config, z_scale)
@@ -449,7 +442,7 @@ def _background_report(field: fld.FlowField) -> dict[str, dict[str, float]]:
 def fit(tracks_or_observations, kernel: str = DEFAULT_FAMILY, *, inducing: int | None = None, seed: int = 0,
         position_error_m: float | None = None, base: str = "squared-exponential", schedule: Schedule = Schedule(),
         checkpoint: Checkpoint | None = None, progress: bool = True, background: str = "linear",
-        tides=(), slow_time_scale_s=None) -> fld.FlowField:
+        tides=(), slow_time_scale_s=None, timing_s: dict[str, float] | None = None) -> fld.FlowField:
     """Fit a vector-field GP to drifter tracks (or velocity observations) and return the FlowField.
 
     Time-varying flows (:mod:`driftwise.gp.temporal`): ``tides`` names constituents of
@@ -475,18 +468,24 @@ def fit(tracks_or_observations, kernel: str = DEFAULT_FAMILY, *, inducing: int |
     evaluation rows (all, or 8192 when there are more) is checked, and the fit stops once it gained
     less than 1e-4 × max(|ELBO|, N nats) since the previous check; q is then made optimal on all N.
     ``checkpoint`` (:class:`Checkpoint`) keeps the resumable state; with ``resume=True`` the fit
-    continues from it and ends where the uninterrupted fit would.
+    continues from it and ends where the uninterrupted fit would.  ``timing_s``: a dict that receives the wall
+    seconds of the stages (estimate_position_error, prepare, optimise, finish), for ``--profile``.
     """
+    clock = Stopwatch(timing_s)
     config = check_options(kernel, base, inducing, seed, schedule, position_error_m, background)
     config = dataclasses.replace(config, temporal=temporal_choice(tides, slow_time_scale_s).to_json())
-    position_error_m, record = _position_error(tracks_or_observations, position_error_m, int(seed))
-    data = prepare_data(tracks_or_observations, position_error_m, with_time=bool(config.temporal))
-    config = resolve_rows(config, data.n, fingerprint=data.fingerprint,
-                      position_error_m=float(data.obs.position_error_m))
-    train = _subsample(data, config.subsample, config.seed)
-    state, z_scale = start_state(train, config, learning_rate=schedule.learning_rate, checkpoint=checkpoint)
-    state = _train(state, train, config, schedule, z_scale=z_scale, checkpoint=checkpoint, progress=progress)
-    return _finish(state, data, config, schedule, record)
+    with clock("estimate_position_error"):
+        position_error_m, record = _position_error(tracks_or_observations, position_error_m, int(seed))
+    with clock("prepare"):
+        data = prepare_data(tracks_or_observations, position_error_m, with_time=bool(config.temporal))
+        config = resolve_rows(config, data.n, fingerprint=data.fingerprint,
+                              position_error_m=float(data.obs.position_error_m))
+        train = _subsample(data, config.subsample, config.seed)
+        state, z_scale = start_state(train, config, learning_rate=schedule.learning_rate, checkpoint=checkpoint)
+    with clock("optimise"):
+        state = _train(state, train, config, schedule, z_scale=z_scale, checkpoint=checkpoint, progress=progress)
+    with clock("finish"):
+        return _finish(state, data, config, schedule, record)
 
 
 def resolve_rows(config: TrainConfig, n: int, **fields) -> TrainConfig:

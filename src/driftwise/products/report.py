@@ -45,6 +45,7 @@ from typing import Any, Iterable, Mapping, Sequence
 
 from ..errors import InputError
 from ..files import CAUTION, atomic_write_text
+from ..units import FORMAT_BY_UNIT
 from ..version import __version__
 
 SECTIONS = ("data", "fit", "check", "spread", "connect", "backtrack", "skill")
@@ -106,8 +107,9 @@ _SPECIAL_LABELS = {"elbo": "ELBO (nats)", "elbo_per_observation": "ELBO per obse
                    "divergent_variance_fraction": "divergent share of the velocity variance (–)"}
 
 
-def label_of(name: str) -> str:
-    """``velocity_scale_m_s`` → ``velocity scale (m/s)``."""
+def label_of(name: str, *, with_unit: bool = True) -> str:
+    """``velocity_scale_m_s`` → ``velocity scale (m/s)``.  ``with_unit=False`` leaves out a unit that
+    :func:`fmt` prints beside the value (m, s, m/s, m²/s): ``velocity scale``."""
     if name in _SPECIAL_LABELS:
         return _SPECIAL_LABELS[name]
     unit = unit_of(name)
@@ -117,44 +119,40 @@ def label_of(name: str) -> str:
             base = name[: -len(suffix)]
             break
     text = base.replace("_", " ").strip()
-    return f"{text} ({unit})" if unit else text
+    return f"{text} ({unit})" if unit and (with_unit or unit not in FORMAT_BY_UNIT) else text
 
 
 def fmt(value: Any, unit: str = "") -> str:
     """A value as shown in a table: 4 significant digits, yes/no, '—' for missing.
 
-    Large numbers are written out with thin-space groups (86 400, not 8.64e+04);
-    a duration in seconds (``unit="s"``) of an hour or more also shows hours or days.
+    A length, duration, speed or diffusivity (``unit`` "m", "s", "m/s" or "m²/s") is printed with its unit,
+    in the one that fits its size, to 3 significant figures (:data:`driftwise.units.FORMAT_BY_UNIT`:
+    '12.3 km', '0.5 mm', '1.5 h').  Other large numbers are written out with thin-space groups (86 400,
+    not 8.64e+04).
     """
     if value is None:
         return "—"
     if isinstance(value, bool):
         return "yes" if value else "no"
+    if isinstance(value, (int, float)) and unit in FORMAT_BY_UNIT:
+        return FORMAT_BY_UNIT[unit](value) if math.isfinite(value) else "—"
     if isinstance(value, int):
-        return f"{value:,}".replace(",", "\u2009") + _duration_hint(value, unit)
+        return f"{value:,}".replace(",", "\u2009")
     if isinstance(value, float):
         if not math.isfinite(value):
             return "—"
         if value == 0:
             return "0"
         if 1e4 <= abs(value) < 1e12:
-            return f"{round(value):,}".replace(",", "\u2009") + _duration_hint(value, unit)
-        return f"{value:.4g}" + _duration_hint(value, unit)
+            return f"{round(value):,}".replace(",", "\u2009")
+        return f"{value:.4g}"
     if isinstance(value, (list, tuple)):
         if len(value) <= 6 and all(isinstance(v, (int, float, bool)) or v is None for v in value):
             return ", ".join(fmt(v) for v in value)
         return f"{len(value)} values"
     if isinstance(value, Mapping):
-        return "; ".join(f"{label_of(str(k))}: {fmt(v)}" for k, v in value.items())
+        return "; ".join(f"{label_of(str(k), with_unit=False)}: {fmt(v, unit_of(str(k)))}" for k, v in value.items())
     return str(value)
-
-
-def _duration_hint(seconds: float, unit: str) -> str:
-    if unit != "s" or abs(seconds) < 3600:
-        return ""
-    if abs(seconds) < 2 * 86400:
-        return f" ({seconds / 3600:.3g} h)"
-    return f" ({seconds / 86400:.3g} d)"
 
 
 def _e(value: Any) -> str:
@@ -180,14 +178,17 @@ def _flatten(mapping: Mapping[str, Any], prefix: str = "") -> list[tuple[str, An
 
 def key_value_table(mapping: Mapping[str, Any], *, header: tuple[str, str] = ("quantity", "value")) -> str:
     """A two-column table; nested dicts are flattened as ``outer / inner``; units from the key names."""
-    body = "".join(f"<tr><th scope=\"row\">{_e(_label_path(k))}</th>{_cell(v, unit_of(k))}</tr>"
+    body = "".join(f"<tr><th scope=\"row\">{_e(_label_path(k, unit_of(k)))}</th>{_cell(v, unit_of(k))}</tr>"
                    for k, v in _flatten(mapping))
     return f"<table><thead><tr><th>{_e(header[0])}</th><th>{_e(header[1])}</th></tr></thead>" \
            f"<tbody>{body}</tbody></table>"
 
 
-def _label_path(name: str) -> str:
-    return " / ".join(label_of(part) for part in name.split(" / "))
+def _label_path(name: str, unit: str = "") -> str:
+    """``outer / inner`` labels; the unit is left to the value when :func:`fmt` prints it there."""
+    parts = name.split(" / ")
+    return " / ".join(label_of(part, with_unit=i < len(parts) - 1 or unit not in FORMAT_BY_UNIT)
+                      for i, part in enumerate(parts))
 
 
 def fmt_probability(p: Any) -> str:
@@ -250,7 +251,7 @@ def _job(summary: Mapping[str, Any]) -> str:
                 for s in steps]
         parts.append(grid_table(["step", "status", "wall time (s)", "CPU time (s)", "detail"], rows))
     if job.get("wall_time_s") is not None:
-        parts.append(f"<p>Total wall time: {_e(fmt(float(job['wall_time_s'])))} s.</p>")
+        parts.append(f"<p>Total wall time: {_e(fmt(float(job['wall_time_s']), 's'))}.</p>")
     return "".join(parts)
 
 

@@ -24,7 +24,7 @@ from ..files import (
     atomic_write_text,
     csv_safe_text,  # a leading = + - @ in a text cell gets a ' (formula injection)
 )
-from ..units import format_duration
+from ..units import format_duration, format_length
 from .cfproducts import RESEARCH_CAUTION, crs_attributes, discovery_attributes, spread_dataset
 from .spreadgeojson import spread_geojson
 
@@ -64,7 +64,24 @@ def spread_to_dict(spread) -> dict:
     if spread.polygon_m is not None:
         out["polygon_m"] = _floats(spread.polygon_m)
         out["threshold"] = spread.threshold
+    if spread.mean_se_m is not None:
+        out["particles"] = spread.particles
+        out["units"] |= {"mean_se_m": "m, Monte Carlo standard error of the mean", "covariance_se_m2":
+                         "m2, Monte Carlo standard error of each covariance entry (fourth sample moment)"}
     return out
+
+
+def monte_carlo_error(spread, r: int) -> dict[str, float] | None:
+    """The ensemble's Monte Carlo error of release ``r`` at the last output time, or None for a moment method:
+    ``mean_se_m`` the largest standard error of a mean coordinate (m) and ``variance_relative_se`` the largest
+    standard error of a variance relative to the variance (SE of var / var; a semi-axis, ∝ √var, has half)."""
+    if spread.mean_se_m is None:
+        return None
+    var = np.diagonal(spread.covs[r, -1])
+    var_se = np.diagonal(spread.cov_se_m2[r, -1])
+    relative = np.where(var > 0, var_se / np.where(var > 0, var, 1.0), np.nan)
+    return {"mean_se_m": float(np.max(spread.mean_se_m[r, -1])),
+            "variance_relative_se": float(np.nanmax(relative)) if np.any(var > 0) else None}
 
 
 def _release_dict(spread, r: int) -> dict:
@@ -81,6 +98,9 @@ def _release_dict(spread, r: int) -> dict:
                           "semi_minor_m": _floats(spread.semi_axes_m[r, :, i, 1]),
                           "bearing_deg": bearing, "angle_ccw_from_east_deg": angle}
                          for i, level in enumerate(spread.levels)]
+    if spread.mean_se_m is not None:
+        entry["mean_se_m"], entry["covariance_se_m2"] = _floats(spread.mean_se_m[r]), _floats(spread.cov_se_m2[r])
+        entry["monte_carlo_error_at_end"] = monte_carlo_error(spread, r)
     if spread.probability is not None:
         entry["probability_inside"] = _floats(spread.probability[r])
     if spread.support is not None:
@@ -300,6 +320,11 @@ def _fmt(value: float, spec: str) -> str:
     return "—" if value is None or not np.isfinite(value) else format(value, spec)
 
 
+def _length_cell(value_m: float | None) -> str:
+    """A separation in the unit that fits its size ('12.3 km', '4.1 mm'), '—' when undefined."""
+    return "—" if value_m is None or not np.isfinite(value_m) else format_length(value_m)
+
+
 def _coverage_cell(scores: dict[str, Any], key: str, k: int) -> str:
     """'0.814 ± 0.056' (13 characters), or the value alone when the standard error is undefined."""
     se = scores[f"{key}_se"][k]
@@ -314,11 +339,10 @@ def format_score_table(result: dict[str, Any]) -> str:
             f"{'skill':>6}  {'cov 50%':>13}  {'cov 95%':>13}  {'log score':>9}")
     lines = [head, "-" * len(head)]
     for name, k, s in _rows(result):
-        hours = result["horizons_s"][k] / 3600.0
-        label = f"{hours:g} h" if name == "driftwise" else ""
+        label = format_duration(result["horizons_s"][k]) if name == "driftwise" else ""
         lines.append(
-            f"{label:>8}  {_LABELS[name]:<12}{s['n_pairs'][k]:>6d}  {_fmt(s['separation_m'][k], '9.0f')} m  "
-            f"{_fmt(s['separation_p90_m'][k], '7.0f')} m  {_fmt(s['skill'][k], '6.3f')}  "
+            f"{label:>8}  {_LABELS[name]:<12}{s['n_pairs'][k]:>6d}  {_length_cell(s['separation_m'][k]):>11}  "
+            f"{_length_cell(s['separation_p90_m'][k]):>9}  {_fmt(s['skill'][k], '6.3f')}  "
             f"{_coverage_cell(s, 'coverage_50', k)}  {_coverage_cell(s, 'coverage_95', k)}  "
             f"{_fmt(s['log_score'][k], '9.2f')}")
     lines.append("sep: distance between forecast and observed position; skill: Liu & Weisberg (2011), 1 = perfect, "

@@ -1,0 +1,134 @@
+"""``driftwise check`` (is the flow divergence-free? curl-free?) and ``driftwise map`` (the field on a grid)."""
+
+from __future__ import annotations
+
+import argparse
+from pathlib import Path
+from typing import Any
+
+from ..data.positionerror import position_error_text
+from ..data.tracks import read_tracks_from_cli
+from ..diagnostics.grid import field_grid
+from ..diagnostics.verdict import finer_maps, run_check
+from ..errors import InputError
+from ..files import CAUTION
+from ..gp.modelfile import load_model
+from ..products.plots import plot_physics_maps, save_figure
+from ..products.writers import FIELD_GRID_SUFFIXES, write_field_grid
+from ..progress import Stopwatch
+from ..units import format_length, parse_length_m
+from .cliparts import EXIT_OK, add_json_flag, add_profile_flag, add_quiet_flag, print_json, profile_text
+
+
+def configure_check(p: argparse.ArgumentParser) -> None:
+    p.description = (
+        "Fit the four kernel families (helmholtz, divergence-free, curl-free, independent) to the "
+        "tracks with identical settings and compare their ELBO and the log likelihood of held-out tracks (whole "
+        "tracks are held out). Then test divergence and vorticity on a grid inside the data hull: posterior "
+        "z-scores of the Helmholtz model (its hyperparameters from the training tracks, conditioned on all "
+        "tracks), Benjamini-Hochberg correction at 5 %. Reports the divergent share of the velocity variance "
+        "and a verdict with its reasons.")
+    p.epilog = CAUTION
+    p.add_argument("tracks", help="CSV, CSV.GZ, Parquet or CF-trajectory NetCDF file of fixes")
+    p.add_argument("--model", default=None, metavar="MODEL",
+                   help="test this fitted model's posterior instead of the Helmholtz refit (families are still fitted)")
+    p.add_argument("--holdout-fraction", type=float, default=0.2, metavar="F",
+                   help="share of the tracks held out for the family comparison (default 0.2)")
+    p.add_argument("--seed", type=int, default=0, metavar="S", help="random seed of the split and fits (default 0)")
+    p.add_argument("--inducing", type=int, default=64, metavar="M", help="inducing points per family fit (default 64)")
+    p.add_argument("--steps", type=int, default=300, metavar="N", help="optimiser steps per family fit (default 300)")
+    p.add_argument("--position-error", default=None, help="standard deviation of one fix per axis, with its unit "
+                   "(m, km, cm, mm; default: estimated from the tracks; refused above the typical step between fixes)")
+    p.add_argument("--max-speed", default="5m/s", help="drop fixes implying a faster speed (bare: m/s; default 5m/s)")
+    p.add_argument("--max-gap", default=None,
+                   help="split a track at gaps longer than this duration, with its unit (e.g. 6h; default: never)")
+    p.add_argument("--figures", default=None, metavar="DIR", help="write divergence and vorticity maps (PNG) here")
+    add_quiet_flag(p)
+    add_profile_flag(p)
+    add_json_flag(p)
+    p.set_defaults(run=_run_check)
+
+
+def _run_check(args: argparse.Namespace) -> int:
+    position_error = args.position_error and parse_length_m(args.position_error, what="--position-error")
+    for name, value, low in (("--seed", args.seed, 0), ("--inducing", args.inducing, 1), ("--steps", args.steps, 1)):
+        if value < low:
+            raise InputError(f"{name} must be an integer ≥ {low}, got {value}")
+    clock = Stopwatch()
+    with clock("read"):
+        model = None if args.model is None else load_model(args.model)
+        tracks = read_tracks_from_cli(args)
+    summary, maps = run_check(tracks, model=model, holdout_fraction=args.holdout_fraction, seed=args.seed,
+                              inducing=args.inducing, steps=args.steps, position_error_m=position_error,
+                              progress=not (args.quiet or args.json), timing_s=clock.laps)
+    if args.figures is not None and tracks.dim == 2:
+        with clock("figures"):
+            figure = plot_physics_maps(finer_maps(maps))
+            summary["figures"] = [str(save_figure(figure, Path(args.figures) / "physics_maps.png"))]
+    summary["timing_s"] = clock.laps | {"total": sum(clock.laps.values())}
+    if args.json:
+        print_json(summary)
+    else:
+        print(format_check(summary) + ("\n" + profile_text(summary["timing_s"]) if args.profile else ""))
+    return EXIT_OK
+
+
+def format_check(s: dict[str, Any]) -> str:
+    """The text ``driftwise check`` prints."""
+    ev, split, verdict = s["evidence"], s["helmholtz_split"], s["verdict"]
+    lines = [f"check: {s['n_tracks']} tracks; {ev['heldout_tracks']} held out ({ev['heldout_observations']} velocity "
+             f"observations); tested model: {s['tested_model']}",
+             "  " + position_error_text(s),
+             f"  {'family':<16} {'ELBO (nats)':>14} {'held-out log lik. (nats)':>26} {'per obs.':>9}"]
+    for name, fam in s["families"].items():
+        lines.append(f"  {name:<16} {fam['elbo']:>14.1f} {fam['heldout_log_likelihood']:>26.1f} "
+                     f"{fam['heldout_log_likelihood_per_observation']:>9.3f}")
+    lines += [f"  {ev['reading']}",
+              f"  divergent share of the velocity variance: {split['divergent_variance_fraction']:.3f} ± "
+              f"{split['std']:.3f} (delta method; 90 % {split['interval_90'][0]:.3f}–{split['interval_90'][1]:.3f})"]
+    grid_spacing = (s.get("grid") or {}).get("spacing_m")
+    spacing = "" if grid_spacing is None else f" every {format_length(grid_spacing)}"
+    for name in ("divergence", "vorticity"):
+        q = s[name]
+        lines.append(f"  {name + ':':<11} significant over {100 * q['significant_area_fraction']:.1f} % of the data hull "
+                     f"({q['n_cells']} cells{spacing}, BH α = {q['alpha']:g}), max |z| = {q['max_abs_z']:.2f}")
+    for key, label in (("divergence_free", "divergence-free"), ("curl_free", "curl-free")):
+        lines.append(f"  verdict {label}: {verdict['answers'][key].upper()}")
+        lines += [f"    - {reason}" for reason in verdict["reasons"][key]]
+    lines += [f"  rule: {verdict['rule']}"] + [f"wrote {path}" for path in s.get("figures", [])] + [CAUTION]
+    return "\n".join(lines)
+
+
+def configure_map(p: argparse.ArgumentParser) -> None:
+    p.description = (
+        "Sample a 2-D model on a regular grid over its data extent: posterior mean velocity and its "
+        "standard deviation (east/north for a lon/lat model), divergence and vorticity with their standard "
+        "deviations (exact GP derivatives), and a data-support mask (where the posterior variance stays near "
+        "the prior, the data say little). Writes NetCDF-4 with CF-1.8 attributes (.nc) or one CSV row per "
+        "grid node (.csv).")
+    p.epilog = CAUTION
+    p.add_argument("model", help="model file written by `driftwise fit`")
+    p.add_argument("--out", required=True, metavar="FIELD.nc", help="output file, .nc (NetCDF) or .csv")
+    p.add_argument("--spacing", default=None,
+                   help="grid spacing with its unit, e.g. 500m (default: about 80 cells across the extent)")
+    add_json_flag(p)
+    p.set_defaults(run=_run_map)
+
+
+def _run_map(args: argparse.Namespace) -> int:
+    if Path(args.out).suffix.lower() not in FIELD_GRID_SUFFIXES:
+        raise InputError(f"--out {args.out}: unknown gridded-field format; use a name ending in "
+                         f"{' or '.join(FIELD_GRID_SUFFIXES)}")
+    spacing = parse_length_m(args.spacing, what="--spacing") if args.spacing is not None else None
+    grid = field_grid(load_model(args.model), spacing_m=spacing)
+    written = write_field_grid(grid, args.out)
+    report = {"out": str(written), "shape": list(grid.supported.shape), "spacing_m": float(grid.x_m[1] - grid.x_m[0])
+              if grid.x_m.size > 1 else None, "x_range_m": [float(grid.x_m[0]), float(grid.x_m[-1])],
+              "y_range_m": [float(grid.y_m[0]), float(grid.y_m[-1])], "components": list(grid.components),
+              "supported_fraction": float(grid.supported.mean()), "zero_by_construction": grid.reasons}
+    if args.json:
+        print_json(report)
+    else:
+        print(f"map: {report['shape'][1]} × {report['shape'][0]} nodes every {format_length(report['spacing_m'])}; "
+              f"data support over {100 * report['supported_fraction']:.0f} % of the grid\nwrote {written}\n{CAUTION}")
+    return EXIT_OK
