@@ -43,7 +43,6 @@ from __future__ import annotations
 
 import dataclasses
 import json
-import warnings
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -57,10 +56,10 @@ from ..data.utctime import iso_utc
 from ..errors import InputError
 from .ensemble import EulerMaruyama, simulate
 from .methods import DEFAULT_PARTICLES, METHODS, default_ensemble_step_s, make_method, method_name
-from .moments import RK4, SphericalCubature, propagate_batch
+from .moments import RK4, SphericalCubature
 from .sde import sde_from_field
 from .supportcheck import SupportWarning, path_support, warn_left_support, warn_unsupported_releases  # noqa: F401
-from .tabulate import field_or_table_sde
+from .tabulate import field_or_table_sde, propagate_with_fallback
 
 LEVELS = (0.5, 0.9, 0.95)
 ROUNDING_FLOOR = 1e-14   # polygon probabilities below this are rounding residue (see module doc)
@@ -233,14 +232,8 @@ def _moments(sde: Any, releases: tuple[Release, ...], times: np.ndarray, method:
     covs0 = np.stack([r.cov0_m2 for r in releases])
     starts = np.array([r.start_time_s for r in releases])
     if not isinstance(method, EulerMaruyama):
-        means, covs = (np.array(a) for a in propagate_batch(sde, means0, covs0, times, method=method,
-                                                             integrator=integrator or RK4(), start_times_s=starts))
-        left = ~(np.isfinite(means).all(axis=(1, 2)) & np.isfinite(covs).all(axis=(1, 2, 3)))
-        if fallback is not None and left.any():     # releases that left a table's grid: exact posterior
-            warnings.warn(f"{int(left.sum())} of {len(releases)} releases left the tabulated region; they were "
-                          "forecast with the exact posterior", stacklevel=3)
-            means[left], covs[left] = propagate_batch(fallback, means0[left], covs0[left], times, method=method,
-                                                      integrator=integrator or RK4(), start_times_s=starts[left])
+        means, covs = propagate_with_fallback(sde, fallback, means0, covs0, times, method=method,
+                                              integrator=integrator or RK4(), start_times_s=starts)
         return means, covs, {}
     if key is None:
         raise InputError("the ensemble method needs an explicit random key (key=jax.random.key(seed))")
@@ -311,7 +304,8 @@ def spread_from_field(field: Any, releases: Any, times_s: Any, *, method: str = 
     warn_unsupported_releases(field, rels)
     sde = sde_from_field(field, diffusivity_m2_s=diffusivity_m2_s, decorrelation_time_s=decorrelation_time_s)
     table_sde = field_or_table_sde(field, sde, np.stack([r.start_m for r in rels]), len(rels), check_times(times_s),
-                                   None if isinstance(obj, EulerMaruyama) else integrator, posterior)
+                                   None if isinstance(obj, EulerMaruyama) else integrator, posterior,
+                                   [r.start_time_s for r in rels])
     summary = getattr(field, "data_summary", None) or {}
     out = spread_releases(sde if table_sde is None else table_sde, rels, times_s, method=obj, integrator=integrator,
                           key=jax.random.key(int(seed)), frame=getattr(field, "frame", None), polygon_m=polygon_m,

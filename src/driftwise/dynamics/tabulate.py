@@ -54,6 +54,7 @@ __all__ = ["TabulatedPosterior", "on_table", "tabulate_field", "tabulation_error
 NODE_BLOCK = 256      # nodes per compiled evaluation block while building a table
 CHECK_POINTS = 2000   # random off-grid points on which the error is measured
 MAX_NODES = 400_000   # refinement stops here (a 2-D 632² or 3-D 73³ grid)
+SMALL_CHANNELS = 3    # mean channels up to which the covariance factor is moments.psd_cholesky (a velocity)
 
 
 def _kinds(d: int) -> list[tuple[int, ...]]:
@@ -130,9 +131,15 @@ class TabulatedPosterior:
 
 
 def _channels(posterior: PointPosterior, x: jax.Array) -> jax.Array:
-    """f(x) = (μ(x), tril C(x)) with Σ = C Cᵀ (moments.psd_cholesky), shape (d + d(d+1)/2,)."""
-    rows, cols = np.tril_indices(x.shape[-1])
-    return jnp.concatenate([posterior.mean_at(x), psd_cholesky(posterior.cov_at(x))[rows, cols]])
+    """f(x) = (μ(x), tril C(x)) with Σ = C Cᵀ (moments.psd_cholesky), shape (k + k(k+1)/2,) for a mean of k
+    channels (k = d for a velocity; k·d for the stacked parts of a time-varying field, whose joint posterior
+    covariance is positive definite: jnp.linalg.cholesky, as psd_cholesky is unrolled for small k and compiles
+    slowly beyond)."""
+    mean = posterior.mean_at(x)
+    k = mean.shape[-1]
+    rows, cols = np.tril_indices(k)
+    chol = psd_cholesky(posterior.cov_at(x)) if k <= SMALL_CHANNELS else jnp.linalg.cholesky(posterior.cov_at(x))
+    return jnp.concatenate([mean, chol[rows, cols]])
 
 
 def _node_values(posterior: PointPosterior, spacing_m: jax.Array, x: jax.Array) -> jax.Array:
@@ -183,11 +190,16 @@ def _build(posterior: PointPosterior, lo: np.ndarray, hi: np.ndarray, n: int) ->
 def tabulation_errors(table: TabulatedPosterior, posterior: PointPosterior, points_m: Any) -> tuple[np.ndarray, np.ndarray]:
     """Per point (n,): mean error ‖C⁻¹(μ_table − μ)‖ in posterior s.d. and cov error ‖Σ_table − Σ‖_F/‖Σ‖_F."""
     points = jnp.asarray(points_m, jnp.float64)
-    mean, cov = _exact_moments(posterior, points)
-    mean_t, cov_t = _table_moments(table, points)
-    chol = np.linalg.cholesky(np.asarray(cov) + 1e-300 * np.eye(points.shape[-1]))
-    white = np.linalg.solve(chol, (np.asarray(mean_t) - np.asarray(mean))[..., None])[..., 0]
-    cov_rel = np.linalg.norm(np.asarray(cov_t) - np.asarray(cov), axis=(-2, -1)) / np.linalg.norm(np.asarray(cov), axis=(-2, -1))
+    return moment_errors(*_exact_moments(posterior, points), *_table_moments(table, points))
+
+
+def moment_errors(mean: Any, cov: Any, mean_t: Any, cov_t: Any) -> tuple[np.ndarray, np.ndarray]:
+    """Per point (n,): ‖C⁻¹(mean_t − mean)‖ with C Cᵀ = cov (posterior s.d.) and ‖cov_t − cov‖_F / ‖cov‖_F, for
+    exact moments mean (n, d), cov (n, d, d) and their tabulated values mean_t, cov_t."""
+    mean, cov, mean_t, cov_t = (np.asarray(a, np.float64) for a in (mean, cov, mean_t, cov_t))
+    chol = np.linalg.cholesky(cov + 1e-300 * np.eye(mean.shape[-1]))
+    white = np.linalg.solve(chol, (mean_t - mean)[..., None])[..., 0]
+    cov_rel = np.linalg.norm(cov_t - cov, axis=(-2, -1)) / np.linalg.norm(cov, axis=(-2, -1))
     return np.linalg.norm(white, axis=-1), cov_rel
 
 
@@ -212,21 +224,140 @@ def tabulate_field(field: Any, region_min_m: Any, region_max_m: Any, *, toleranc
     posterior = field if isinstance(field, PointPosterior) else PointPosterior.from_field(field)
     dim = int(posterior.inducing_m.shape[-1])
     lo, hi = _check_region(region_min_m, region_max_m, dim)
+    points = lo + (hi - lo) * np.random.default_rng(seed).uniform(size=(CHECK_POINTS, dim))
+    table, mean_err, cov_err = refine(lambda n: _build(posterior, lo, hi, n),
+                                      lambda t: tabulation_errors(t, posterior, points), dim, tolerance,
+                                      start_nodes, max_nodes)
+    return dataclasses.replace(table, mean_error=jnp.asarray(mean_err), cov_error=jnp.asarray(cov_err))
+
+
+def refine(build: Any, measure: Any, dim: int, tolerance: float, start_nodes: int, max_nodes: int) -> tuple[Any, float, float]:
+    """(table, max mean error, max cov error): ``build(n)`` on n = start_nodes, 2n − 1, … nodes per axis until
+    both maxima of ``measure(table)`` (per-point errors, :func:`moment_errors`) are ≤ ``tolerance``; InputError
+    when refining further would need more than ``max_nodes`` nodes."""
     if not (0.0 < float(tolerance) < 1.0):
         raise InputError(f"tabulate: tolerance must be in (0, 1), got {tolerance!r}")
-    points = lo + (hi - lo) * np.random.default_rng(seed).uniform(size=(CHECK_POINTS, dim))
     n = max(2, int(start_nodes))
     while True:
-        table = _build(posterior, lo, hi, n)
-        mean_err, cov_err = (float(np.max(e)) for e in tabulation_errors(table, posterior, points))
+        table = build(n)
+        mean_err, cov_err = (float(np.max(e)) for e in measure(table))
         if mean_err <= tolerance and cov_err <= tolerance:
-            return TabulatedPosterior(table.origin_m, table.spacing_m, table.values, jnp.asarray(mean_err),
-                                      jnp.asarray(cov_err), dim)
+            return table, mean_err, cov_err
         if (2 * n - 1) ** dim > max_nodes:
             raise InputError(f"tabulate: {n}^{dim} nodes leave a mean error of {mean_err:.3g} s.d. and a covariance "
                              f"error of {cov_err:.3g} (tolerance {tolerance}); refining needs more than {max_nodes} "
                              "nodes: shrink the region or use the exact posterior")
         n = 2 * n - 1
+
+
+# ------------------------------------------------------------------ time-varying fields
+@jax.tree_util.register_dataclass
+@dataclass(frozen=True)
+class PartsPosterior:
+    """The joint posterior of a time-varying field's stacked time-free parts P(x) = [v̄; a_1; b_1; …; a_C; b_C]
+    (FlowField.parts_posterior), as a posterior :func:`_build` can tabulate: mean (k·d,) m/s, cov (k·d, k·d)."""
+
+    field: Any
+    parts: tuple[str, ...] = _dataclass_field(metadata=dict(static=True))
+
+    def mean_at(self, x: jax.Array) -> jax.Array:
+        return self.field.parts_posterior(x, self.parts)[0]
+
+    def cov_at(self, x: jax.Array) -> jax.Array:
+        return self.field.parts_posterior(x, self.parts)[1]
+
+
+@jax.tree_util.register_dataclass
+@dataclass(frozen=True)
+class TimedTable:
+    """A harmonic time-varying field's posterior, tabulated once in space and combined analytically in time.
+
+    v(x, t) = W(t) P(x), W(t) = [1, cos θ_1, sin θ_1, …, cos θ_C, sin θ_C] ⊗ I_d with θ_c = ω_c (t − t₀) + φ_c
+    (gp.temporal), so exactly
+
+        μ(x, t) = W(t) μ_P(x),    Σ(x, t) = W(t) Σ_P(x) W(t)ᵀ = (W(t) L_P(x)) (W(t) L_P(x))ᵀ,
+
+    with μ_P, L_P (Σ_P = L_P L_Pᵀ, the parts' joint posterior: they are correlated a posteriori through the
+    shared data) interpolated from ``grid`` (its channels: μ_P (k·d,), tril L_P); Σ(x, t) is PSD at every (x, t)
+    by construction.  The only approximation is the spatial interpolation; the grid's mean_error/cov_error are
+    the maxima measured against the exact posterior at random (x, t).  Same interface as the field for the SDE
+    (sde.timed_field_sde): ``mean_at(x, t_s=t)`` and ``cov_between(x, x, t_x_s=t, t_y_s=t')``.
+    """
+
+    grid: TabulatedPosterior
+    omegas_rad_s: tuple[float, ...] = _dataclass_field(metadata=dict(static=True))
+    phases_rad: tuple[float, ...] = _dataclass_field(metadata=dict(static=True))
+    time_origin_s: float = _dataclass_field(metadata=dict(static=True))
+
+    @property
+    def dim(self) -> int:
+        return self.grid.dim
+
+    def inside(self, x: jax.Array) -> jax.Array:
+        return self.grid.inside(x)
+
+    def _factors(self, x: jax.Array, t_s: Any) -> tuple[jax.Array, jax.Array]:
+        """(μ(x, t) (d,), W(t) L_P(x) (d, k·d)); NaN off the grid."""
+        d, rel = self.dim, jnp.asarray(t_s, jnp.float64) - self.time_origin_s
+        theta = [w * rel + p for w, p in zip(self.omegas_rad_s, self.phases_rad)]
+        weights = jnp.stack([jnp.ones_like(rel)] + [f(a) for a in theta for f in (jnp.cos, jnp.sin)])
+        big = jnp.kron(weights[None, :], jnp.eye(d, dtype=jnp.float64))                  # W(t) (d, k·d)
+        channels = self.grid.channels_at(x)
+        size = big.shape[1]
+        rows, cols = np.tril_indices(size)
+        chol = jnp.zeros((size, size), channels.dtype).at[rows, cols].set(channels[size:])
+        return big @ channels[:size], big @ chol
+
+    def mean_at(self, x: jax.Array, *, t_s: Any) -> jax.Array:
+        """μ(x, t) (d,) m/s at x (d,) m and absolute time t_s (s on the model's axis); NaN off the grid."""
+        return self._factors(x, t_s)[0]
+
+    def cov_between(self, x: jax.Array, y: jax.Array, *, t_x_s: Any, t_y_s: Any) -> jax.Array:
+        """Cov[v(x, t_x), v(x, t_y)] = W(t_x) Σ_P(x) W(t_y)ᵀ (d, d) m²/s²: one point only (NaN where y ≠ x or
+        off the grid; the table holds each point's own joint covariance, not cross-covariances in space)."""
+        fx, fy = self._factors(x, t_x_s)[1], self._factors(x, t_y_s)[1]
+        return jnp.where(jnp.all(x == y), fx @ fy.T, jnp.nan)
+
+
+@jax.jit
+def _timed_table_moments(table: TimedTable, points_m: jax.Array, times_s: jax.Array) -> tuple[jax.Array, jax.Array]:
+    def one(x: jax.Array, t: jax.Array) -> tuple[jax.Array, jax.Array]:
+        return table.mean_at(x, t_s=t), table.cov_between(x, x, t_x_s=t, t_y_s=t)
+    return jax.vmap(one)(points_m, times_s)
+
+
+def timed_tabulation_errors(table: TimedTable, field: Any, points_m: Any, times_s: Any) -> tuple[np.ndarray, np.ndarray]:
+    """Per point (n,): :func:`moment_errors` of the table against the exact posterior field.predict at (x, t)."""
+    points, times = np.asarray(points_m, np.float64), np.asarray(times_s, np.float64)
+    return moment_errors(*field.predict(points, times), *_timed_table_moments(table, jnp.asarray(points),
+                                                                               jnp.asarray(times)))
+
+
+def tabulate_timed_field(field: Any, region_min_m: Any, region_max_m: Any, time_min_s: float, time_max_s: float, *,
+                         tolerance: float = 0.05, start_nodes: int = 9, max_nodes: int = MAX_NODES,
+                         seed: int = 0) -> TimedTable:
+    """Tabulate a time-varying FlowField with a steady part and harmonics (no slow part) on [region_min_m,
+    region_max_m] (d,) m, refined as :func:`tabulate_field` until the errors measured at ``CHECK_POINTS`` random
+    (x, t), t uniform in [time_min_s, time_max_s] (s on the model's axis), are ≤ ``tolerance``.  A slow part
+    s(x, t) is not periodic and is not tabulated: InputError (forecast such a model with the exact posterior)."""
+    kernel = field.params.kernel
+    if kernel.has_slow:
+        raise InputError("tabulate: this model has a slow part s(x, t), which a table does not hold (it is not "
+                         "periodic in time); use the exact posterior")
+    dim = int(field.dim)
+    lo, hi = _check_region(region_min_m, region_max_m, dim)
+    if not (np.isfinite(time_min_s) and np.isfinite(time_max_s) and time_max_s >= time_min_s):
+        raise InputError(f"tabulate: the time range [{time_min_s!r}, {time_max_s!r}] s must be finite and ordered")
+    parts = PartsPosterior(field, ("steady",) + tuple(f"{c}_{k}" for c in kernel.constituents for k in ("cos", "sin")))
+    rng = np.random.default_rng(seed)
+    points = lo + (hi - lo) * rng.uniform(size=(CHECK_POINTS, dim))
+    times = time_min_s + (time_max_s - time_min_s) * rng.uniform(size=CHECK_POINTS)
+    build = lambda n: TimedTable(_build(parts, lo, hi, n), tuple(kernel.omegas_rad_s),  # noqa: E731
+                                 tuple(kernel.phases_rad), float(kernel.time_origin_s))
+    table, mean_err, cov_err = refine(build, lambda t: timed_tabulation_errors(t, field, points, times), dim,
+                                      tolerance, start_nodes, max_nodes)
+    grid = dataclasses.replace(table.grid, mean_error=jnp.asarray(mean_err), cov_error=jnp.asarray(cov_err))
+    return dataclasses.replace(table, grid=grid)
 
 
 # ------------------------------------------------------------------ when and where spread uses a table
@@ -254,27 +385,36 @@ def table_region(starts_m: Any, extent_m: dict | None = None) -> tuple[np.ndarra
     return lo - margin, hi + margin
 
 
-def tabulated_sde(field: Any, sde: SDE, starts_m: Any, n_release_steps: int, posterior: str = "auto") -> SDE | None:
+def tabulated_sde(field: Any, sde: SDE, starts_m: Any, n_release_steps: int, posterior: str = "auto",
+                  start_times_s: Any = None, span_s: float = 0.0) -> SDE | None:
     """The field SDE ``sde`` (sde.sde_from_field) on a table of ``field`` over table_region(starts_m, data
     extent) with error ≤ TABLE_TOLERANCE, or None for the exact posterior.  ``posterior``: "exact" → None;
     "table" → a table; "auto" → a table when ``n_release_steps`` ≥ TABLE_RELEASE_STEPS (0 means: a method
-    that cannot use one, e.g. the ensemble, whose particles would leave any grid one by one)."""
+    that cannot use one, e.g. the ensemble, whose particles would leave any grid one by one).  A time-varying
+    field (``sde.with_time``) gets a :class:`TimedTable` checked at times from the earliest of
+    ``start_times_s`` (s on the model's axis; default its time origin) to the latest plus ``span_s`` (s); one
+    with a slow part is always forecast exactly ("auto" → None, "table" → InputError)."""
     if posterior not in ("auto", "exact", "table"):
         raise InputError(f"posterior: use 'auto', 'exact' or 'table', got {posterior!r}")
-    if sde.with_time:   # a table holds one steady posterior; a time-varying field is evaluated exactly
-        if posterior == "table":
-            raise InputError("posterior 'table': this model varies in time and a table holds a steady posterior; "
-                             "use the exact posterior")
-        return None
     if posterior == "exact" or n_release_steps == 0 or (posterior == "auto" and n_release_steps < TABLE_RELEASE_STEPS):
         return None
+    if sde.with_time and field.params.kernel.has_slow:
+        if posterior == "table":
+            raise InputError("posterior 'table': this model has a slow part s(x, t), which a table does not hold "
+                             "(it is not periodic in time); use the exact posterior")
+        return None
     lo, hi = table_region(starts_m, (getattr(field, "data_summary", None) or {}).get("extent_m"))
-    return on_table(sde, tabulate_field(field, lo, hi, tolerance=TABLE_TOLERANCE))
+    if not sde.with_time:
+        return on_table(sde, tabulate_field(field, lo, hi, tolerance=TABLE_TOLERANCE))
+    starts = np.atleast_1d(np.asarray(field.time_origin_s if start_times_s is None else start_times_s, np.float64))
+    return on_table(sde, tabulate_timed_field(field, lo, hi, float(starts.min()), float(starts.max()) + float(span_s),
+                                              tolerance=TABLE_TOLERANCE))
 
 
-def on_table(sde: SDE, table: TabulatedPosterior) -> SDE:
-    """A field SDE (sde.field_sde: drift and diffusion are ``Partial(f, posterior, *rest)``) with its
-    posterior replaced by ``table``; K, τ and the velocity memory stay."""
+def on_table(sde: SDE, table: TabulatedPosterior | TimedTable) -> SDE:
+    """A field SDE (sde.field_sde, or sde.timed_field_sde with a TimedTable: drift and diffusion are
+    ``Partial(f, posterior or field, *rest)``) with its posterior replaced by ``table``; K, τ and the velocity
+    memory stay."""
     def swap(fn: Any) -> Any:
         return jax.tree_util.Partial(fn.func, table, *fn.args[1:])
 
@@ -287,25 +427,29 @@ def posterior_choice(exact: bool) -> str:
 
 
 def field_or_table_sde(field: Any, sde: SDE, starts_m: Any, n_releases: int, times_s: Any, integrator: Any,
-                       posterior: str = "auto") -> SDE | None:
-    """:func:`tabulated_sde` for ``n_releases`` moment releases to ``times_s`` with ``integrator`` (RK4; None
-    for the ensemble, which never tabulates): the table SDE, or None for the exact posterior."""
+                       posterior: str = "auto", start_times_s: Any = None) -> SDE | None:
+    """:func:`tabulated_sde` for ``n_releases`` moment releases to ``times_s`` (s since each release) with
+    ``integrator`` (RK4; None for the ensemble, which never tabulates), starting at ``start_times_s`` (s on the
+    model's axis; used by a time-varying field): the table SDE, or None for the exact posterior."""
     steps = 0 if integrator is None else release_steps(n_releases, times_s, integrator.step_s)
-    return tabulated_sde(field, sde, starts_m, steps, posterior)
+    return tabulated_sde(field, sde, starts_m, steps, posterior, start_times_s, float(np.max(times_s)))
 
 
 def propagate_with_fallback(sde: SDE, fallback: SDE | None, means0: Any, covs0: Any, times_s: Any, *, method: Any,
-                            integrator: Any, chunk: int = 256) -> tuple[np.ndarray, np.ndarray]:
-    """``moments.propagate_batch`` through ``sde``; releases whose moments come out non-finite (they left a
-    table's grid) are recomputed through ``fallback`` (the exact field SDE) with a warning saying how many."""
+                            integrator: Any, chunk: int = 256, start_times_s: Any = None) -> tuple[np.ndarray, np.ndarray]:
+    """``moments.propagate_batch`` through ``sde`` from ``start_times_s`` (R,) (or one number; s on the model's
+    axis, for a time-dependent SDE); releases whose moments come out non-finite (they left a table's grid) are
+    recomputed through ``fallback`` (the exact field SDE) from their own start times, with a warning saying how
+    many."""
     means0, covs0 = np.asarray(means0, np.float64), np.asarray(covs0, np.float64)
+    starts = None if start_times_s is None else np.broadcast_to(np.asarray(start_times_s, np.float64), means0.shape[:1])
     means, covs = (np.array(a) for a in propagate_batch(sde, means0, covs0, times_s, method=method,
-                                                         integrator=integrator, chunk=chunk))
+                                                         integrator=integrator, chunk=chunk, start_times_s=starts))
     left = ~(np.isfinite(means).reshape(len(means), -1).all(1) & np.isfinite(covs).reshape(len(covs), -1).all(1))
     if fallback is not None and left.any():
         warnings.warn(f"{int(left.sum())} of {len(means0)} releases left the tabulated region; they were "
                       "forecast with the exact posterior", stacklevel=3)
         m, c = propagate_batch(fallback, means0[left], covs0[left], times_s, method=method, integrator=integrator,
-                               chunk=chunk)
+                               chunk=chunk, start_times_s=None if starts is None else starts[left])
         means[left], covs[left] = np.asarray(m), np.asarray(c)
     return means, covs

@@ -377,10 +377,17 @@ class FlowField:
         if constituent not in self.constituents:
             raise InputError(f"this model has no constituent {constituent!r}; it has "
                              f"{', '.join(self.constituents) or 'none (it is steady)'}")
-        return _harmonic_jit(self, x, constituent)
+        return _parts_jit(self, x, (f"{constituent}_cos", f"{constituent}_sin"))
 
-    def _harmonic(self, x, constituent):
-        zero, parts = jnp.zeros(()), (f"{constituent}_cos", f"{constituent}_sin")
+    def parts_posterior(self, x: jax.Array, parts: tuple[str, ...]) -> tuple[jax.Array, jax.Array]:
+        """Joint posterior of the stacked time-free parts P = [p_1(x); …; p_k(x)] ("steady", "<c>_cos",
+        "<c>_sin") at one point x (d,) m: mean (k·d,) m/s and covariance (k·d, k·d) m²/s²,
+        K_P − A_P A_Pᵀ + A_P S Sᵀ A_Pᵀ with K_P block-diagonal (the parts are independent a priori, correlated
+        a posteriori through the data).  jax-transformable; the parts are static."""
+        return _parts_jit(self, x, tuple(parts))
+
+    def _parts(self, x, parts):
+        zero = jnp.zeros(())
         a = jnp.concatenate([self._temporal_a(x, zero, part) for part in parts])
         prior = jax.scipy.linalg.block_diag(*[self.params.kernel.prior_cross(p, x, zero, p, x, zero) for p in parts])
         a_s = a @ self.params.q_sqrt
@@ -534,7 +541,7 @@ _cov_between_jit = jax.jit(FlowField._cov_between, static_argnames=("part_x", "p
 _temporal_mean_jit = jax.jit(FlowField._temporal_mean, static_argnames=("part",))
 _temporal_cov_jit = jax.jit(FlowField._temporal_cov, static_argnames=("part_x", "part_y"))
 _temporal_local_ratio_jit = jax.jit(lambda field, x, t: jax.vmap(field._temporal_local_ratio_one)(x, t))
-_harmonic_jit = jax.jit(FlowField._harmonic, static_argnames=("constituent",))
+_parts_jit = jax.jit(FlowField._parts, static_argnames=("parts",))
 
 
 def _check_times(field: FlowField, times_s, n: int) -> np.ndarray:
