@@ -48,8 +48,9 @@ from ..errors import InputError
 from .moments import propagate_batch, psd_cholesky
 from .sde import SDE, PointPosterior
 
-__all__ = ["TabulatedPosterior", "on_table", "tabulate_field", "tabulation_errors", "release_steps", "table_region",
-           "tabulated_sde"]
+__all__ = ["PartsPosterior", "TabulatedPosterior", "TimedTable", "field_or_table_sde", "moment_errors", "on_table",
+           "posterior_choice", "propagate_with_fallback", "refine", "release_steps", "table_region", "tabulate_field",
+           "tabulate_timed_field", "tabulated_sde", "tabulation_errors", "timed_tabulation_errors"]
 
 NODE_BLOCK = 256      # nodes per compiled evaluation block while building a table
 CHECK_POINTS = 2000   # random off-grid points on which the error is measured
@@ -187,7 +188,8 @@ def _build(posterior: PointPosterior, lo: np.ndarray, hi: np.ndarray, n: int) ->
     return TabulatedPosterior(jnp.asarray(lo), spacing, values, nan, nan, d)
 
 
-def tabulation_errors(table: TabulatedPosterior, posterior: PointPosterior, points_m: Any) -> tuple[np.ndarray, np.ndarray]:
+def tabulation_errors(table: TabulatedPosterior, posterior: PointPosterior,
+                      points_m: Any) -> tuple[np.ndarray, np.ndarray]:
     """Per point (n,): mean error ‖C⁻¹(μ_table − μ)‖ in posterior s.d. and cov error ‖Σ_table − Σ‖_F/‖Σ‖_F."""
     points = jnp.asarray(points_m, jnp.float64)
     return moment_errors(*_exact_moments(posterior, points), *_table_moments(table, points))
@@ -231,7 +233,8 @@ def tabulate_field(field: Any, region_min_m: Any, region_max_m: Any, *, toleranc
     return dataclasses.replace(table, mean_error=jnp.asarray(mean_err), cov_error=jnp.asarray(cov_err))
 
 
-def refine(build: Any, measure: Any, dim: int, tolerance: float, start_nodes: int, max_nodes: int) -> tuple[Any, float, float]:
+def refine(build: Any, measure: Any, dim: int, tolerance: float, start_nodes: int,
+           max_nodes: int) -> tuple[Any, float, float]:
     """(table, max mean error, max cov error): ``build(n)`` on n = start_nodes, 2n − 1, … nodes per axis until
     both maxima of ``measure(table)`` (per-point errors, :func:`moment_errors`) are ≤ ``tolerance``; InputError
     when refining further would need more than ``max_nodes`` nodes."""
@@ -258,7 +261,7 @@ class PartsPosterior:
     (FlowField.parts_posterior), as a posterior :func:`_build` can tabulate: mean (k·d,) m/s, cov (k·d, k·d)."""
 
     field: Any
-    parts: tuple[str, ...] = _dataclass_field(metadata=dict(static=True))
+    parts: tuple[str, ...] = _dataclass_field(metadata={"static": True})
 
     def mean_at(self, x: jax.Array) -> jax.Array:
         return self.field.parts_posterior(x, self.parts)[0]
@@ -285,9 +288,9 @@ class TimedTable:
     """
 
     grid: TabulatedPosterior
-    omegas_rad_s: tuple[float, ...] = _dataclass_field(metadata=dict(static=True))
-    phases_rad: tuple[float, ...] = _dataclass_field(metadata=dict(static=True))
-    time_origin_s: float = _dataclass_field(metadata=dict(static=True))
+    omegas_rad_s: tuple[float, ...] = _dataclass_field(metadata={"static": True})
+    phases_rad: tuple[float, ...] = _dataclass_field(metadata={"static": True})
+    time_origin_s: float = _dataclass_field(metadata={"static": True})
 
     @property
     def dim(self) -> int:
@@ -326,7 +329,8 @@ def _timed_table_moments(table: TimedTable, points_m: jax.Array, times_s: jax.Ar
     return jax.vmap(one)(points_m, times_s)
 
 
-def timed_tabulation_errors(table: TimedTable, field: Any, points_m: Any, times_s: Any) -> tuple[np.ndarray, np.ndarray]:
+def timed_tabulation_errors(table: TimedTable, field: Any, points_m: Any,
+                            times_s: Any) -> tuple[np.ndarray, np.ndarray]:
     """Per point (n,): :func:`moment_errors` of the table against the exact posterior field.predict at (x, t)."""
     points, times = np.asarray(points_m, np.float64), np.asarray(times_s, np.float64)
     return moment_errors(*field.predict(points, times), *_timed_table_moments(table, jnp.asarray(points),
@@ -352,7 +356,7 @@ def tabulate_timed_field(field: Any, region_min_m: Any, region_max_m: Any, time_
     rng = np.random.default_rng(seed)
     points = lo + (hi - lo) * rng.uniform(size=(CHECK_POINTS, dim))
     times = time_min_s + (time_max_s - time_min_s) * rng.uniform(size=CHECK_POINTS)
-    build = lambda n: TimedTable(_build(parts, lo, hi, n), tuple(kernel.omegas_rad_s),  # noqa: E731
+    build = lambda n: TimedTable(_build(parts, lo, hi, n), tuple(kernel.omegas_rad_s),
                                  tuple(kernel.phases_rad), float(kernel.time_origin_s))
     table, mean_err, cov_err = refine(build, lambda t: timed_tabulation_errors(t, field, points, times), dim,
                                       tolerance, start_nodes, max_nodes)
@@ -436,7 +440,8 @@ def field_or_table_sde(field: Any, sde: SDE, starts_m: Any, n_releases: int, tim
 
 
 def propagate_with_fallback(sde: SDE, fallback: SDE | None, means0: Any, covs0: Any, times_s: Any, *, method: Any,
-                            integrator: Any, chunk: int = 256, start_times_s: Any = None) -> tuple[np.ndarray, np.ndarray]:
+                            integrator: Any, chunk: int = 256,
+                            start_times_s: Any = None) -> tuple[np.ndarray, np.ndarray]:
     """``moments.propagate_batch`` through ``sde`` from ``start_times_s`` (R,) (or one number; s on the model's
     axis, for a time-dependent SDE); releases whose moments come out non-finite (they left a table's grid) are
     recomputed through ``fallback`` (the exact field SDE) from their own start times, with a warning saying how

@@ -1,0 +1,170 @@
+"""The tabulated posterior of a time-varying field (tabulate.TimedTable) against the exact one, and forecasts.
+
+Outside references: the time combination is exact because the field is linear in its parts,
+v(x, t) = W(t) P(x) with W(t) = [1, cos θ_c, sin θ_c, …] ⊗ I, so Cov[v(x, t)] = W(t) Cov[P(x)] W(t)ᵀ for any
+joint covariance of the parts (linear transformation of a Gaussian vector; e.g. Anderson 2003, An Introduction
+to Multivariate Statistical Analysis, Theorem 2.4.1, from memory); the spatial interpolant is tensor-product
+cubic Hermite, exact at the nodes, with error O(h⁴) (Birkhoff, Schultz & Varga 1968, Numer. Math. 11;
+de Boor 1978, A Practical Guide to Splines, ch. IV, from memory); the exact posterior is the sparse GP's
+predictive (Titsias 2009) evaluated by FlowField.predict; the forecast bound uses Gronwall's inequality
+(as tests/dynamics/test_tabulate.py).
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+import pytest
+
+from driftwise.data.tracks import Frame
+from driftwise.dynamics import spread as spreadmod
+from driftwise.dynamics import tabulate
+from driftwise.dynamics.moments import RK4, SphericalCubature, propagate_batch
+from driftwise.dynamics.sde import sde_from_field
+from driftwise.errors import InputError
+from driftwise.gp import field as fieldmod
+from driftwise.gp.temporal import TemporalStart
+
+TOL = 0.05                                   # mean error in posterior s.d.; covariance error relative (Frobenius)
+OMEGA_M2 = 2.0 * math.pi / (12.4206012 * 3600.0)   # M2 and K1 periods (Doodson 1921 tables, from memory)
+OMEGA_K1 = 2.0 * math.pi / (23.93447213 * 3600.0)
+T0 = 1.7e9                                   # time origin, s since 1970 (like an ISO-timed track file)
+LO, HI = np.array([-2000.0, -2000.0]), np.array([12_000.0, 12_000.0])
+SPAN_S = 2 * 86400.0
+
+
+def tidal_field(slow: bool = False) -> fieldmod.FlowField:
+    """A Helmholtz field with M2 and K1 parts (and optionally a slow part) on 4 × 4 inducing points over 10 km,
+    q optimal for 300 noisy velocities over 3 days with a tidal signal (seed 0)."""
+    grid = np.linspace(0.0, 10_000.0, 4)
+    z = np.stack(np.meshgrid(grid, grid), -1).reshape(-1, 2)
+    extra = {"slow": True, "slow_inducing_m": z[:4], "slow_inducing_time_s": np.array([0.0, 3e4, 6e4, 9e4]),
+             "slow_time_scale_s": 86400.0, "slow_velocity_scale_m_s": 0.05} if slow else {}
+    start = TemporalStart(("M2", "K1"), (OMEGA_M2, OMEGA_K1), T0, harmonic_velocity_scale_m_s=0.15, **extra)
+    params = fieldmod.init_params("helmholtz", 2, z, velocity_scale_m_s=0.2, length_scale_m=3000.0,
+                                  curl_free_velocity_scale_m_s=0.1, diffusivity_m2_s=2.5, temporal=start)
+    rng = np.random.default_rng(0)
+    xy, t = rng.uniform(0.0, 10_000.0, (300, 2)), T0 + rng.uniform(0.0, 3 * 86400.0, 300)
+    v = 0.1 * np.stack([np.sin(xy[:, 1] / 2000.0), np.cos(xy[:, 0] / 3000.0)], 1)
+    v += 0.12 * np.cos(OMEGA_M2 * t)[:, None] * np.stack([np.cos(xy[:, 0] / 4000.0), np.sin(xy[:, 1] / 5000.0)], 1)
+    v += 0.05 * np.sin(OMEGA_K1 * t)[:, None]
+    batch = fieldmod.ObservationBatch(xy, v + 0.01 * rng.normal(size=xy.shape), np.full(300, 2.0 / 600.0),
+                                      np.full(300, 2.0 * 5.0**2 / 600.0**2), t)
+    return fieldmod.FlowField.from_params(fieldmod.optimal_q(params, batch), decorrelation_time_s=1800.0,
+                                          frame=Frame(), data_summary={"extent_m": {"min": [0.0, 0.0],
+                                                                                    "max": [10_000.0, 10_000.0]}})
+
+
+@pytest.fixture(scope="module")
+def field():
+    return tidal_field()
+
+
+@pytest.fixture(scope="module")
+def table(field):
+    return tabulate.tabulate_timed_field(field, LO, HI, T0, T0 + SPAN_S, tolerance=TOL)
+
+
+def _table_moments(table, points, times):
+    return (np.asarray(a) for a in tabulate._timed_table_moments(table, jnp.asarray(points), jnp.asarray(times)))
+
+
+def test_time_combination_is_exact_at_the_nodes(field, table):
+    """At grid nodes the Hermite interpolant returns the node values, so the table equals the exact posterior
+    up to rounding at every time: W(t) μ_P and W(t) Σ_P W(t)ᵀ are exact (linearity, module docstring)."""
+    rng = np.random.default_rng(5)
+    idx = rng.integers(0, table.grid.shape[0], size=(40, 2))
+    nodes = np.asarray(table.grid.origin_m) + idx * np.asarray(table.grid.spacing_m)
+    times = T0 + rng.uniform(-5 * 86400.0, 10 * 86400.0, 40)       # also far outside the checked span
+    mean, cov = field.predict(nodes, times)
+    mean_t, cov_t = _table_moments(table, nodes, times)
+    np.testing.assert_allclose(mean_t, mean, rtol=0, atol=1e-10 * np.max(np.abs(mean)))
+    np.testing.assert_allclose(cov_t, cov, rtol=0, atol=1e-10 * np.max(np.abs(cov)))
+
+
+def test_timed_table_meets_the_tolerance_on_fresh_random_points(field, table):
+    """Measured on 1500 fresh random (x, t) (not those the refinement used): both errors ≤ the tolerance, and
+    the tabulated covariance is positive semi-definite everywhere (Σ = (W L)(W L)ᵀ)."""
+    rng = np.random.default_rng(11)
+    points, times = LO + (HI - LO) * rng.uniform(size=(1500, 2)), T0 + SPAN_S * rng.uniform(size=1500)
+    mean_err, cov_err = tabulate.timed_tabulation_errors(table, field, points, times)
+    print(f"timed table {table.grid.shape}: fresh max mean error {mean_err.max():.3g} s.d., cov error "
+          f"{cov_err.max():.3g}; at build {float(table.grid.mean_error):.3g}, {float(table.grid.cov_error):.3g}")
+    assert mean_err.max() <= TOL and cov_err.max() <= TOL
+    assert float(table.grid.mean_error) <= TOL and float(table.grid.cov_error) <= TOL
+    _, cov_t = _table_moments(table, points, times)
+    eig = np.linalg.eigvalsh(cov_t)
+    assert np.all(eig[:, 0] >= -1e-12 * eig[:, -1])
+    off = np.asarray(table.mean_at(jnp.asarray(HI + 1.0), t_s=T0))
+    assert not table.inside(jnp.asarray(HI + 1.0)) and np.all(np.isnan(off))      # off the grid: a flag (NaN)
+
+
+def _lipschitz_and_sigma(field, points, times) -> tuple[float, float]:
+    """max ‖∂μ/∂x‖₂ (1/s) and the largest posterior velocity s.d. (m/s) of the exact posterior at (x, t)."""
+    jac = [np.asarray(jax.jacfwd(lambda y, s=t: field.mean_at(y, t_s=s))(jnp.asarray(x))) for x, t in
+           zip(points, times)]
+    sigma = np.sqrt(np.max(np.linalg.eigvalsh(field.predict(points, times)[1])))
+    return float(np.max(np.linalg.norm(np.stack(jac), ord=2, axis=(1, 2)))), float(sigma)
+
+
+@pytest.mark.slow
+def test_timed_forecast_with_the_table_agrees_with_the_exact_forecast(field, table, monkeypatch):
+    """Releases starting at different times: the table forecast (the tolerance's own table, forced) against
+    the exact one.  Bound as the steady test: drift error ≤ ε σ_max moves the mean by ≤ ε σ_max (e^{Lt} − 1)/L
+    (Gronwall), asserted whitened by the forecast's smallest s.d., and the stated tolerance itself."""
+    rng = np.random.default_rng(8)
+    starts = [spreadmod.Release(x, start_time_s=T0 + s) for x, s in
+              zip(rng.uniform(1000.0, 9000.0, (12, 2)), rng.uniform(0.0, 86400.0, 12))]
+    times = np.arange(0.0, 7.0) * 3600.0
+    exact = spreadmod.spread_from_field(field, starts, times, posterior="exact")
+    monkeypatch.setattr(tabulate, "tabulate_timed_field", lambda *a, **k: table)   # the module's own table
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")                  # every release stays on the grid: no exact rerun
+        tab = spreadmod.spread_from_field(field, starts, times, posterior="table")
+    pts = LO + (HI - LO) * rng.uniform(size=(200, 2))
+    lipschitz, sigma_max = _lipschitz_and_sigma(field, pts, T0 + SPAN_S * rng.uniform(size=200))
+    eps, t = max(float(table.grid.mean_error), 1e-12), times[1:]
+    bound = eps * sigma_max * np.expm1(lipschitz * t) / lipschitz / np.sqrt(np.linalg.eigvalsh(exact.covs[:, 1:])[..., 0])
+    diff = (tab.means - exact.means)[:, 1:, :, None]
+    white = np.linalg.norm(np.linalg.solve(np.linalg.cholesky(exact.covs[:, 1:]), diff)[..., 0], axis=-1)
+    rel = np.linalg.norm(tab.covs[:, 1:] - exact.covs[:, 1:], axis=(-2, -1)) / np.linalg.norm(exact.covs[:, 1:],
+                                                                                             axis=(-2, -1))
+    print(f"timed forecast: max whitened mean difference {white.max():.3g} s.d. (bound min {bound.min():.3g}), "
+          f"max relative cov difference {rel.max():.3g}")
+    assert np.all(white <= bound) and white.max() <= TOL and rel.max() <= TOL
+
+
+def test_fallback_reruns_releases_off_the_grid_exactly_from_their_start_times(field):
+    """One path for every command: a release starting off a small table's grid is recomputed through the exact
+    SDE from its own start time (bit-for-bit the exact run), the others stay on the table."""
+    sde = sde_from_field(field)
+    small = tabulate.tabulate_timed_field(field, [2000.0, 2000.0], [8000.0, 8000.0], T0, T0 + 86400.0, tolerance=0.2)
+    means0 = np.array([[5000.0, 5000.0], [20_000.0, 5000.0], [30_000.0, 9000.0]])
+    covs0 = np.broadcast_to(np.eye(2) * 100.0**2, (3, 2, 2)).copy()
+    starts, times = T0 + np.array([0.0, 7200.0, 50_000.0]), np.arange(0.0, 4.0) * 1800.0
+    kw = {"method": SphericalCubature(), "integrator": RK4(step_s=600.0)}
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        means, covs = tabulate.propagate_with_fallback(tabulate.on_table(sde, small), sde, means0, covs0, times,
+                                                       start_times_s=starts, **kw)
+    assert any("2 of 3 releases left the tabulated region" in str(w.message) for w in caught)
+    ref_m, ref_c = propagate_batch(sde, means0[1:], covs0[1:], times, start_times_s=starts[1:], **kw)
+    np.testing.assert_array_equal(means[1:], np.asarray(ref_m))
+    np.testing.assert_array_equal(covs[1:], np.asarray(ref_c))
+    assert np.all(np.isfinite(means[0]))
+
+
+def test_a_slow_part_is_forecast_exactly():
+    """The slow part s(x, t) is not periodic: no table holds it, so "auto" gives the exact posterior (None) and
+    "table" or a direct tabulation is an InputError naming the reason."""
+    slow = tidal_field(slow=True)
+    sde = sde_from_field(slow)
+    assert tabulate.tabulated_sde(slow, sde, [[0.0, 0.0]], 10**9, "auto", [T0], 3600.0) is None
+    with pytest.raises(InputError, match="slow part"):
+        tabulate.tabulated_sde(slow, sde, [[0.0, 0.0]], 10**9, "table", [T0], 3600.0)
+    with pytest.raises(InputError, match="slow part"):
+        tabulate.tabulate_timed_field(slow, LO, HI, T0, T0 + 3600.0)
