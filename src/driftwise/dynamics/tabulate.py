@@ -25,9 +25,17 @@ off-grid points and refines the grid (n → 2n − 1 nodes per axis) until
     cov error   max ‖Σ_table − Σ‖_F / ‖Σ‖_F                                        ≤ tolerance,
 
 and records both measured maxima in the table.  Outside the grid the table returns NaN (and ``inside``
-says so): it never extrapolates; :func:`driftwise.dynamics.spread.spread_from_field` reruns releases
-that left the grid with the exact posterior.  The field is steady; a time-varying field would add a
-time axis to the grid (a later step).
+says so): it never extrapolates; :func:`propagate_with_fallback` (every command's one path) reruns releases
+that left the grid with the exact posterior, from their own start times.
+
+Time-varying fields (gp.temporal) v(x, t) = v̄(x) + Σ_c [a_c(x) cos θ_c + b_c(x) sin θ_c] are linear in the
+stacked time-free parts P(x) = [v̄; a_1; b_1; …]: v = W(t) P with W(t) = [1, cos θ_1, sin θ_1, …] ⊗ I_d.  So
+:class:`TimedTable` tabulates P's joint posterior once (mean and Cholesky factor, the parts being correlated a
+posteriori) and forms μ(x, t) = W μ_P, Σ(x, t) = (W L_P)(W L_P)ᵀ exactly in time (PSD by construction); only
+the spatial interpolation errs, measured at random (x, t).  A slow part s(x, t) (Matérn-3/2 in time, not
+periodic) is not tabulated: such a model is forecast with the exact posterior.  The cubic Hermite error bound
+(value O(h⁴), slope O(h³)): Birkhoff, Schultz & Varga 1968; de Boor 1978, A Practical Guide to Splines (from
+memory).
 """
 
 from __future__ import annotations
