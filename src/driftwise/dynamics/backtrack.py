@@ -224,6 +224,9 @@ def backtrack_from_field(field: Any, finds: Finds, region_m: Any, spacing_m: flo
     extent), candidates on a ``spacing_m`` grid over ``region_m = (x0, y0, x1, y1)``."""
     if int(getattr(field, "dim", 2)) != 2:
         raise InputError("backtrack: the model must be 2-D")
+    if getattr(field, "is_time_varying", False):
+        raise InputError("backtrack: this model varies in time and back-tracking takes a steady model (it propagates "
+                         "each candidate once for every release time); fit without tides or a slow part")
     sde = field_transport(field, diffusivity_m2_s=diffusivity_m2_s, decorrelation_time_s=decorrelation_time_s)
     x, y = candidate_grid(region_m, spacing_m)
     x0, y0, x1, y1 = (float(v) for v in region_m)

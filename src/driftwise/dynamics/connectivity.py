@@ -37,7 +37,7 @@ import numpy as np
 from ..errors import InputError
 from .ensemble import particle_paths
 from .methods import make_method, method_name
-from .sde import PointPosterior, join_from_jit, split_for_jit, transport_sde
+from .sde import PointPosterior, join_from_jit, sde_from_field, split_for_jit, transport_sde
 from .sites import Site, cell_covariance_m2, inside_polygon, seed_site
 from .spread import check_times, probability_inside
 from .supportcheck import SUPPORT_VARIANCE_FRACTION
@@ -93,7 +93,8 @@ def first_passage_s(times_s: np.ndarray, probability: np.ndarray, threshold: flo
 
 def field_transport(field: Any, *, posterior: Any = None, diffusivity_m2_s: float | None = None,
                     decorrelation_time_s: float | None = None) -> Any:
-    """The field's SDE (sde.field_sde) through ``posterior`` (default ``PointPosterior.from_field(field)``).
+    """The field's SDE (sde.field_sde) through ``posterior`` (default ``PointPosterior.from_field(field)``); a
+    time-varying field gives its time SDE (sde.sde_from_field, ``with_time``).
 
     K (m²/s) and τ (s) default to the field's own (τ = 0 when uncalibrated); negative or non-finite: InputError.
     """
@@ -102,6 +103,8 @@ def field_transport(field: Any, *, posterior: Any = None, diffusivity_m2_s: floa
     for name, value in (("diffusivity", k), ("decorrelation time", 0.0 if tau is None else tau)):
         if not (np.isfinite(float(value)) and float(value) >= 0):
             raise InputError(f"the {name} must be a finite number >= 0, got {value!r}")
+    if posterior is None and getattr(field, "is_time_varying", False):
+        return sde_from_field(field, diffusivity_m2_s=k, decorrelation_time_s=0.0 if tau is None else tau)
     posterior = PointPosterior.from_field(field) if posterior is None else posterior
     return transport_sde(posterior, float(k), 0.0 if tau is None else float(tau))
 
@@ -129,22 +132,26 @@ def _score_batch(means: np.ndarray, covs: np.ndarray, sites: tuple[Site, ...]) -
     return np.stack([probability_inside(means, covs, s.polygon_m) for s in sites], axis=1)
 
 
-def _outside(support: Callable | None, means: np.ndarray) -> np.ndarray | None:
-    """1 where the variance ratio at ``means (..., 2)`` exceeds the support fraction, in chunks of SUPPORT_CHUNK."""
+def _outside(support: Callable | None, means: np.ndarray, times_s: np.ndarray) -> np.ndarray | None:
+    """1 where the variance ratio at ``means (B, T, 2)`` at absolute ``times_s (T,)`` s exceeds the support fraction,
+    in chunks of SUPPORT_CHUNK."""
     if support is None:
         return None
     flat = means.reshape(-1, means.shape[-1])
-    ratio = np.concatenate([np.asarray(support(flat[i:i + SUPPORT_CHUNK])) for i in range(0, len(flat), SUPPORT_CHUNK)])
+    when = np.broadcast_to(np.asarray(times_s, np.float64), means.shape[:-1]).reshape(-1)
+    ratio = np.concatenate([np.asarray(support(flat[i:i + SUPPORT_CHUNK], when[i:i + SUPPORT_CHUNK]))
+                            for i in range(0, len(flat), SUPPORT_CHUNK)])
     return (ratio.reshape(means.shape[:-1]) > SUPPORT_VARIANCE_FRACTION).astype(np.float64)
 
 
 def connect(sde: Any, sites: tuple[Site, ...], times_s: Any, *, per_site: int = 64, method: Any = None,
             integrator: Any = None, seed: int = 0, threshold: float = DEFAULT_THRESHOLD,
             support: Callable | None = None, progress: Callable[[int], None] | None = None,
-            batch: int = BATCH, fallback_sde: Any = None) -> Connectivity:
+            batch: int = BATCH, fallback_sde: Any = None, start_time_s: float = 0.0) -> Connectivity:
     """Connectivity by moment propagation (module doc).  ``sde``: sde.SDE; ``sites``: Site tuple;
-    ``times_s (T,)`` s since the release, from 0; ``method`` a moments strategy (default cubature) with
-    ``integrator`` (default RK4(600 s)); ``support``: points (n, 2) m → variance ratio (n,) or None;
+    ``times_s (T,)`` s since the release at ``start_time_s`` (s on the model's axis; seen by a time-dependent
+    SDE), from 0; ``method`` a moments strategy (default cubature) with ``integrator`` (default RK4(600 s));
+    ``support``: (points (n, 2) m, absolute times (n,) s) → variance ratio (n,) or None;
     ``progress(n)`` is called after each batch with the releases done; ``fallback_sde``: releases whose moments
     come out non-finite (they left a tabulated field's grid) are recomputed through it."""
     obj, default_rk4 = make_method("cubature")
@@ -158,13 +165,14 @@ def connect(sde: Any, sites: tuple[Site, ...], times_s: Any, *, per_site: int = 
     for lo in range(0, len(points), batch):
         sl = slice(lo, lo + batch)
         means, covs = propagate_with_fallback(sde, fallback_sde, points[sl], covs0[sl], times, method=method,
-                                              integrator=integrator or default_rk4, chunk=min(batch, 256))
+                                              integrator=integrator or default_rk4, chunk=min(batch, 256),
+                                              start_times_s=start_time_s)
         if not (np.all(np.isfinite(means)) and np.all(np.isfinite(covs))):
             raise InputError("the connectivity forecast produced non-finite numbers (the integration diverged); "
                              "use a smaller --step")
         np.add.at(total, source[sl], _score_batch(means, covs, sites))
         np.add.at(centroid, source[sl], means[..., :2])
-        flags = _outside(support, means)
+        flags = _outside(support, means, start_time_s + times)
         if flags is not None:
             np.add.at(outside, source[sl], flags)
         if progress is not None:
@@ -176,8 +184,8 @@ def connect(sde: Any, sites: tuple[Site, ...], times_s: Any, *, per_site: int = 
 
 
 @partial(jax.jit, static_argnames=("static",))
-def _paths_jit(dynamic, static, x0, times_s, step_s, key):
-    return particle_paths(join_from_jit(dynamic, static), x0, times_s, step_s, key)
+def _paths_jit(dynamic, static, x0, times_s, step_s, key, start_s):
+    return particle_paths(join_from_jit(dynamic, static), x0, times_s, step_s, key, start_s)
 
 
 def _uniform_in(site: Site, n: int, rng: np.random.Generator) -> np.ndarray:
@@ -196,10 +204,11 @@ def _uniform_in(site: Site, n: int, rng: np.random.Generator) -> np.ndarray:
 def connect_ensemble(sde: Any, sites: tuple[Site, ...], times_s: Any, *, particles: int = 10_000,
                      step_s: float = 60.0, seed: int = 0, threshold: float = DEFAULT_THRESHOLD,
                      support: Callable | None = None, progress: Callable[[int], None] | None = None,
-                     batch: int = ENSEMBLE_BATCH) -> Connectivity:
+                     batch: int = ENSEMBLE_BATCH, start_time_s: float = 0.0) -> Connectivity:
     """Connectivity by Euler–Maruyama particles starting uniformly in each source site (module doc).
 
-    ``particles`` per source site, ``step_s`` the Euler–Maruyama step (s); same seed, same answer."""
+    ``particles`` per source site, ``step_s`` the Euler–Maruyama step (s), released at ``start_time_s`` (s on the
+    model's axis); ``support`` as in :func:`connect`; same seed, same answer."""
     times = check_times(times_s)
     dynamic, static = split_for_jit(sde)
     rng = np.random.default_rng(int(seed))
@@ -212,12 +221,13 @@ def connect_ensemble(sde: Any, sites: tuple[Site, ...], times_s: Any, *, particl
         start = _uniform_in(site, particles, rng)
         for lo in range(0, particles, batch):
             key, sub = jax.random.split(key)
-            xs = np.asarray(_paths_jit(dynamic, static, start[lo:lo + batch], times, float(step_s), sub))  # (T, n, 2)
+            xs = np.asarray(_paths_jit(dynamic, static, start[lo:lo + batch], times, float(step_s), sub,
+                                       float(start_time_s)))                                          # (T, n, 2)
             flat = xs.reshape(-1, 2)
             for j, dest in enumerate(sites):
                 inside[i, j] += inside_polygon(flat, dest.polygon_m).reshape(xs.shape[:2]).sum(1)
             centroid[i] += xs.sum(1)
-            flags = _outside(support, np.swapaxes(xs, 0, 1))
+            flags = _outside(support, np.swapaxes(xs, 0, 1), start_time_s + times)
             if flags is not None:
                 outside[i] += flags.sum(0)
             if progress is not None:
@@ -245,8 +255,9 @@ def connect_from_field(field: Any, sites: tuple[Site, ...], times_s: Any, *, met
     sde = field_transport(field, diffusivity_m2_s=diffusivity_m2_s, decorrelation_time_s=decorrelation_time_s)
     corners = np.concatenate([s.polygon_m for s in sites])
     table_sde = field_or_table_sde(field, sde, corners, len(sites) * per_site, check_times(times_s), integrator,
-                                   posterior)
-    common = dict(seed=seed, threshold=threshold, support=field.local_variance_ratio, progress=progress)
+                                   posterior, [start_time_s])
+    common = dict(seed=seed, threshold=threshold, support=field.local_variance_ratio, progress=progress,
+                  start_time_s=float(start_time_s))
     if integrator is None:
         result = connect_ensemble(sde, sites, times_s, particles=obj.particles, step_s=obj.step_s, **common)
     else:
