@@ -19,7 +19,9 @@ source site (rejection from a seeded uniform draw), follow the same SDE by Euler
 binomial standard error √(P (1 − P) / n).
 
 The posterior that gives the SDE is a parameter (:func:`field_transport`): the exact
-``sde.PointPosterior`` by default, or any object with ``mean_at``/``cov_at`` (e.g. a tabulated field).
+``sde.PointPosterior`` by default, or any object with ``mean_at``/``cov_at`` (e.g. a tabulated field); a
+time-varying field gives its time SDE (or a tabulate.TimedTable of it), and every site releases at
+``start_time_s`` (s on the model's axis), which the moments, the particles and the data-support share all see.
 Releases go in batches, so memory is bounded by one batch (:func:`connect_memory_bytes` estimates it).
 """
 
