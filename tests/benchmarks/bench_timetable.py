@@ -4,6 +4,8 @@ Run by hand (not collected by pytest):
 
     PYTHONPATH=src .venv/bin/python tests/benchmarks/bench_timetable.py [--releases 2000] [--hours 6]
 
+(the defaults took more than 25 min at load average 22 on 2 cores; --releases 200 --hours 2 is a quick run)
+
 Field: the tidal Helmholtz field of tests/dynamics/test_timetable.py (M = 16 inducing points, steady + M2 + K1,
 q optimal for 300 velocities over 3 days).  A release-step is one RK4 step (600 s) of one release with
 SphericalCubature; releases start at random times over one day.  Printed, all in this run: the table's build
@@ -51,7 +53,7 @@ def main() -> None:
     table = tabulate.tabulate_timed_field(field, LO, HI, T0, T0 + 2 * 86400.0)
     build_s = time.perf_counter() - t
     print(f"table: {table.grid.shape} nodes, build {build_s:.1f} s (incl. compile), measured max mean error "
-          f"{float(table.grid.mean_error):.3g} s.d., cov error {float(table.grid.cov_error):.3g} (tolerance 0.05)")
+          f"{float(table.grid.mean_error):.3g} s.d., cov error {float(table.grid.cov_error):.3g} (tolerance 0.05)", flush=True)
     rng = np.random.default_rng(0)
     means0 = rng.uniform(3000.0, 7000.0, (args.releases, 2))
     covs0 = np.broadcast_to(np.eye(2) * 100.0**2, (args.releases, 2, 2)).copy()
