@@ -110,6 +110,7 @@ class DemoSettings:
     backtrack_spacing_m: float = 1250.0
     seed: int = 0
     position_error_m: float = DemoScenario().position_error_m   # the campaign's stated GPS accuracy, as a user gives it
+    tides: tuple[str, ...] = ("M2",)    # constituents the demo's fit models (explicit until `--temporal auto`)
 
     @classmethod
     def fast(cls) -> "DemoSettings":
@@ -180,8 +181,9 @@ def figure_tracks(job: Job) -> None:
 # ----------------------------------------------------------------- 2. fit
 def step_fit(job: Job) -> str:
     s = job.settings
+    # The bay has an M2 tide: model it explicitly until `fit --temporal auto` lands (then let auto choose).
     field = fit(job.state["fit_tracks"], kernel="helmholtz", inducing=s.inducing, seed=s.seed, progress=job.progress,
-                position_error_m=s.position_error_m, schedule=Schedule(steps=s.fit_steps))
+                position_error_m=s.position_error_m, schedule=Schedule(steps=s.fit_steps), tides=s.tides)
     path = job.out / "model.npz"
     save_model(field, path)
     job.add_file(path, "the fitted Helmholtz model (npz without pickles + JSON metadata; driftwise.load)")

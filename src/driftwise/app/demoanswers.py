@@ -28,8 +28,9 @@ from ..files import CAUTION
 from ..products.backtrackfiles import backtrack_to_dict, write_backtrack
 from ..products.connectfiles import write_connect
 from ..products.plotconnect import plot_backtrack, plot_connect_map, plot_connect_matrix
+from ..units import format_duration
 from .bay import DemoScenario
-from .job import Job, duration, fitted_field as _field
+from .job import Job, fitted_field as _field
 from .scenarios import HOUR_S, OUTFALL_M, SHELLFISH_BED, SHELLFISH_BED_M, sites_in_frame
 
 # Sites in metres of the generator's frame (app.bay.DemoScenario).  The reef lies on the gyre's northern rim,
@@ -71,7 +72,7 @@ def step_connect(job: Job) -> str:
     job.summary["connect"] = [connect_table(result, s)]
     peak = result.probability.max(-1)
     i, j = np.unravel_index(int(np.argmax(np.where(np.eye(len(sites), dtype=bool), -1.0, peak))), peak.shape)
-    return (f"{len(sites)} sites × {result.per_site} releases, {duration(times[-1])}; strongest link "
+    return (f"{len(sites)} sites × {result.per_site} releases, {format_duration(times[-1])}; strongest link "
             f"{result.names[i]} → {result.names[j]} peak {peak[i, j]:.3f}")
 
 
@@ -100,12 +101,12 @@ def connect_table(result: Any, s: Any) -> dict:
 
 def simulated_find(frame: Any, start_time_s: float) -> tuple[Finds, np.ndarray, float]:
     """(the find, the true release point (2,) m in the model's frame, the true release time s): one particle
-    from LOST_AT_M through the invented bay's true flow with its K (Euler–Maruyama, 5-min steps), plus a
+    from LOST_AT_M through the invented bay's true flow (tide included, on the data's clock) with its K (Euler–Maruyama, 5-min steps), plus a
     position error of FIND_SD_M, FIND_AGE_S after ``start_time_s``."""
     scenario = DemoScenario()
     table = simulate_drifters(scenario.bay, [LOST_AT_M], duration_s=FIND_AGE_S, fix_interval_s=FIND_AGE_S,
                               diffusivity_m2_s=scenario.diffusivity_m2_s, position_error_m=FIND_SD_M,
-                              seed=FIND_SEED, substeps=int(FIND_AGE_S / 300.0))
+                              seed=FIND_SEED, substeps=int(FIND_AGE_S / 300.0), start_times_s=start_time_s)
     found_bay = table[["x_m", "y_m"]].to_numpy()[-1]
     found, truth = sites_in_frame(frame, [found_bay, LOST_AT_M])
     return Finds(found[None, :], np.array([start_time_s + FIND_AGE_S]), np.array([FIND_SD_M])), truth, start_time_s
