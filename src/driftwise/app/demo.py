@@ -60,6 +60,7 @@ from ..units import format_duration
 from ..version import __version__
 from .bay import DemoScenario, write_demo_data
 from .demoanswers import step_backtrack, step_connect
+from .demotide import step_tide
 from .job import Job, Unavailable, environment, one_line_warnings, progress_bar
 from .job import fitted_field as _field
 from .scenarios import (
@@ -111,6 +112,8 @@ class DemoSettings:
     seed: int = 0
     position_error_m: float = DemoScenario().position_error_m   # the campaign's stated GPS accuracy, as a user gives it
     tides: tuple[str, ...] = ("M2",)    # constituents the demo's fit models (explicit until `--temporal auto`)
+    ellipses_across: int = 8
+    phase_cells_across: int = 22
 
     @classmethod
     def fast(cls) -> "DemoSettings":
@@ -260,9 +263,17 @@ def step_calibrate(job: Job) -> str:
 
 
 # ----------------------------------------------------------------- 3. map
+STEADY_PART_NOTE = ("The map (field.png, field.nc, field.csv, physics.png) and the physics check use the steady part "
+                    "v̄ of the tidal model, the flow averaged over the tidal cycle: the gridded products and the "
+                    "divergence/vorticity posteriors here take a steady field. The tide itself is in the Tide "
+                    "section; the spread, score, connect and backtrack forecasts use the full time-varying field.")
+
+
 def step_map(job: Job) -> str:
     field = _field(job)
-    grid = field_grid(field, cells_across=job.settings.grid_cells_across)
+    if field.is_time_varying:
+        job.summary.setdefault("fit", {}).setdefault("notes", []).append(STEADY_PART_NOTE)
+    grid = field_grid(field.steady_part(), cells_across=job.settings.grid_cells_across)
     job.state["grid"] = grid
     written = _write_map(job, grid)
 
@@ -270,7 +281,8 @@ def step_map(job: Job) -> str:
     obs = job.state["fit_tracks"].position_m
     job.add_figure(plot_mean_field(grid.x_m, grid.y_m, grid.mean_m_s, sd, frame=field.frame, support=grid.supported,
                                    data_position_m=obs),
-                   "field.png", "Posterior mean velocity and its standard deviation; hatched where the data "
+                   "field.png", "Posterior mean velocity and its standard deviation"
+                   + (" of the steady part (the tidal average)" if field.is_time_varying else "") + "; hatched where the data "
                    "hardly constrain the field (posterior variance above half the prior).", "fit")
     return f"{grid.x_m.size} × {grid.y_m.size} grid at {grid.x_m[1] - grid.x_m[0]:g} m" + (
         f"; wrote {written}" if written else "")
@@ -289,10 +301,12 @@ def _write_map(job: Job, grid: Any) -> str:
 # ----------------------------------------------------------------- 4. check
 def step_check(job: Job) -> str:
     field, s = _field(job), job.settings
-    result = check(job.state["fit_tracks"], model=field, inducing=s.family_inducing, steps=s.family_steps,
+    result = check(job.state["fit_tracks"], model=field.steady_part(), inducing=s.family_inducing, steps=s.family_steps,
                    seed=s.seed, progress=job.progress, position_error_m=s.position_error_m)
     job.state["check"] = result
     job.summary["check"] = _check_summary(result)
+    if field.is_time_varying:
+        job.summary["check"]["reading"] += " " + STEADY_PART_NOTE
 
     path = job.out / "check.json"
     atomic_write_text(path, json.dumps(plain(result), indent=1, allow_nan=False) + "\n")
@@ -434,6 +448,7 @@ STEPS: tuple[tuple[str, str, Callable[[Job], str]], ...] = (
     ("fit", "fit", step_fit),
     ("calibrate", "fit", step_calibrate),
     ("map", "fit", step_map),
+    ("tide", "tide", step_tide),
     ("check", "check", step_check),
     ("physics figure", "check", figure_physics),
     ("spread", "spread", step_spread),

@@ -39,7 +39,7 @@ def plot_field_phases(x_m: Any, y_m: Any, means_m_s: Any, labels: Sequence[str],
     fig = Figure(figsize=(WIDTH_IN, float(np.clip(rows * (WIDTH_IN / 2 - 0.6) * height + 1.2, 3.0, 11.0))),
                  layout="constrained")
     axes = np.atleast_1d(fig.subplots(rows, 2, squeeze=False).ravel())
-    step = max(1, int(round(max(means.shape[1:3]) / 14)))
+    step = max(1, round(max(means.shape[1:3]) / 14))
     ref = nice_round(float(np.nanpercentile(speed[:, ::step, ::step], 90)))
     scale = ref / (0.06 * max(float(np.ptp(X)), 1e-12))     # the key arrow spans about 6 % of a panel's width
     data = None if data_position_m is None else np.asarray(data_position_m, float).reshape(-1, 2)
