@@ -128,10 +128,11 @@ def test_reduced_demo_end_to_end(tmp_path, capsys):
     for f in summary["files"]:
         assert (out / f["path"]).is_file(), f["path"]
     names = {Path(f["path"]).name for f in summary["figures"]}
-    assert names == {"tracks.png", "elbo.png", "field.png", "physics.png", "spread_spill.png",
-                     "spread_outfall.png", "area_probability.png", "skill.png", "connect_matrix.png",
-                     "connect_map.png", "backtrack_map.png"}
+    assert names == {"tracks.png", "elbo.png", "field.png", "tide_ellipses.png", "tide_phases.png",
+                     "tide_spectrum.png", "physics.png", "spread_spill.png", "spread_outfall.png",
+                     "area_probability.png", "skill.png", "connect_matrix.png", "connect_map.png", "backtrack_map.png"}
     _check_connect_and_backtrack(out, summary)
+    _check_tide(out, summary)
     # the invented bay has a divergent river mouth: it must not be called divergence-free
     assert summary["check"]["verdict"]["divergence_free"] is False
     # forecasts beat persistence on the held-out tracks at the last horizon, and the numbers agree
@@ -145,6 +146,27 @@ def test_reduced_demo_end_to_end(tmp_path, capsys):
     assert f"→ {k:.3g} m²/s" in printed and format_diffusivity(k) in report  # the calibrated K (3 figures, unit)
     assert str(out / "") in printed or f"files in {out}/" in printed
     assert "Caution" in printed and "Caution" in report
+
+
+def _check_tide(out: Path, summary: dict) -> None:
+    """The demo's fit finds the bay's M2 tide: its ellipses against the generator's own amplitude fields
+    (app.bay.DemoBay.tide_amplitudes, the truth of the simulation), and the residual spectrum at M2."""
+    ellipses, spectrum = summary["tide"]
+    c = ellipses["comparison"]
+    # the true semi-major axis has rms ≈ 0.12 m/s over the points; the noise of one hourly velocity is
+    # √(2K/Δt) ≈ 0.05 m/s (K = 5 m²/s), averaged over ~2800 of them.  The reduced fit (M = 32) gave a median
+    # error of 0.004 m/s; 0.02 m/s (under a sixth of the truth's rms) is the stated tolerance.
+    assert 0.08 < c["rms_true_semi_major_m_s"] < 0.16
+    assert c["median_abs_error_semi_major_m_s"] < 0.02 and c["median_abs_error_semi_minor_m_s"] < 0.02
+    assert c["median_abs_error_inclination_deg"] < 10.0 and c["median_abs_error_phase_deg"] < 10.0
+    # residual spectrum at M2: the steady fit leaves the tide (about half the squared amplitude, ≈ 0.007 m²/s²,
+    # above the 1 % threshold); the tidal fit removes at least 90 % of it
+    (name0, _, before, threshold, _), (name1, _, after, _, _) = spectrum["rows"]
+    assert (name0, name1) == ("steady fit", "tidal fit")
+    assert before > threshold and before > 0.003 and after < 0.1 * before
+    report = (out / "report.html").read_text()
+    assert '<h2 id="tide">Tide</h2>' in report and "M2 tidal current ellipses" in report
+    assert "Residual spectrum at M2" in report and "steady part" in report
 
 
 def _check_connect_and_backtrack(out: Path, summary: dict) -> None:
