@@ -402,7 +402,8 @@ def _spread_figures(job: Job) -> None:
                                        frame=frame, field=background, area_m=bed, area_label=SHELLFISH_BED,
                                        places=places, title="Fuel spill", **extra["spill"]),
                    "spread_spill.png", "Fuel spill: mean path with 50 % (shaded) and 95 % (dashed) ellipses; "
-                   "grey arrows are the fitted mean flow.", "spread")
+                   "grey arrows are the fitted mean flow" + (" averaged over the tide (the forecast itself "
+                   "uses the time-varying flow)." if job.state["field"].is_time_varying else "."), "spread")
     snaps = [plume_snapshot(plume, clock, job.state["starts"]) for clock in snapshot_clocks(plume.times_s)]
     job.add_figure(plot_plume(snaps, frame=frame, field=background, area_m=bed, area_label=SHELLFISH_BED,
                               places=places, title="Outfall plume (hourly parcels as one mixture)", **extra["outfall"]),
