@@ -18,8 +18,9 @@ Prints one table, everything measured in this run (medians):
    paired ratios (issue target: time-varying ≤ 1.5× steady);
 5. (with ``--before``) the steady spread of part 4's size in a fresh process per tree, alternating, as part 1.
 
-``--parts step,fits,hlo,spread,spreadtree`` picks parts (default all); ``--repeats R`` processes per tree for parts
-1 and 5 and paired repeats in part 4 (default 3).
+``--fit-tracks`` and ``--fit-steps`` shrink part 2 on a busy machine.  ``--parts step,fits,hlo,spread,spreadtree``
+picks parts (default all); ``--repeats R`` processes per tree for parts 1 and 5 and paired repeats in part 4
+(default 3); ``--releases`` and ``--hours`` size parts 4 and 5.
 """
 
 from __future__ import annotations
@@ -125,13 +126,16 @@ def gyre_tracks(n_tracks: int, hours: int):
     return tracks_from_frame(frame)
 
 
-def part_fits() -> list[str]:
-    tracks = gyre_tracks(100, 50)
+def part_fits(n_tracks: int = 100, max_steps: int = 1000) -> list[str]:
+    from driftwise.gp.schedule import Schedule
+
+    tracks = gyre_tracks(n_tracks, 50)
     rows = []
     for label, options in (("steady", {}), ("steady + M2", {"tides": ("M2",)}),
                            ("steady + M2 + slow", {"tides": ("M2",), "slow_time_scale_s": "auto"})):
         tic = time.perf_counter()
-        field = driftwise.fit(tracks, position_error_m=3.0, progress=False, **options)
+        field = driftwise.fit(tracks, position_error_m=3.0, progress=False, schedule=Schedule(steps=max_steps),
+                              **options)
         seconds = time.perf_counter() - tic
         info = field.fit_info
         rows.append(f"| fit {label}, {info.get('hyperparameter_rows')} obs | {seconds:.1f} s | ELBO {info['elbo']:.6g} "
@@ -245,6 +249,8 @@ def part_spread_tree(before: Path, releases: int, hours: float, repeats: int) ->
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--parts", default="step,fits,hlo,spread,spreadtree")
+    parser.add_argument("--fit-tracks", type=int, default=100, help="drifters × 50 h at 30-min fixes (100: 10⁴)")
+    parser.add_argument("--fit-steps", type=int, default=1000, help="optimiser step cap of each fit")
     parser.add_argument("--releases", type=int, default=200)
     parser.add_argument("--hours", type=float, default=12.0)
     parser.add_argument("--before", type=Path, default=None, help="source tree to compare the steady step with")
@@ -254,7 +260,7 @@ def main() -> None:
     if "step" in args.parts:
         rows += part_step(args.before, args.repeats)
     if "fits" in args.parts:
-        rows += part_fits()
+        rows += part_fits(args.fit_tracks, args.fit_steps)
     if "hlo" in args.parts and args.before:
         rows += part_hlo(args.before)
     if "spread" in args.parts.split(","):
