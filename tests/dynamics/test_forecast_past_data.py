@@ -12,7 +12,7 @@ Outside references, each named beside its check:
 * (b) the Matérn-3/2 time correlation k(τ) = (1 + a) e^{−a}, a = √3|τ|/T (Rasmussen & Williams 2006, Gaussian
   Processes for Machine Learning, eq. 4.17).  It is the covariance of a Gauss–Markov process whose state is
   (s, ṡ) (Rasmussen & Williams 2006, §B.2; Hartikainen & Särkkä 2010, "Kalman filtering and smoothing solutions
-  to temporal Gaussian process regression models"), so whatever is known about the slow part up to the end of the
+  to temporal Gaussian process regression models"; both from memory), so whatever is known about the slow part up to the end of the
   data t_e, its variance at t_e + Δ is at least that given the exact state (s, ṡ) at t_e:
       Var ≥ K_s(x, x) [1 − k(Δ)² − k′(Δ)² T²/3] = K_s(x, x) [1 − ((1 + a)² + a²) e^{−2a}],  a = √3 Δ/T
   (Gaussian conditioning on (s(t_e), ṡ(t_e)) with Var ṡ = 3σ²/T² and Cov[s(t_e + Δ), ṡ(t_e)] = −σ² k′(Δ), worked
