@@ -255,3 +255,34 @@ def test_check_tests_a_time_varying_model_averaged_over_its_span(tmp_path, capsy
     assert summary["time_window"]["span_s"] == [float(time.min()), float(time.max())]
     assert summary["verdict"]["answers"]["divergence_free"] in ("yes", "no", "undetermined")
     assert summary["divergence"]["n_cells"] > 0 and math.isfinite(summary["divergence"]["max_abs_z"])
+
+
+def test_time_mean_with_a_slow_part_against_simpson():
+    """With the slow part (Matérn-3/2 in time, T = 9 h over a 30 h span) the span average's Gauss–Legendre nodes
+    approximate the Simpson rule (scipy.integrate.simpson, 121 instants) on the whole field."""
+    base = tidal_field(Frame())
+    rng = np.random.default_rng(5)
+    slow_z = rng.uniform(-HALF_M, HALF_M, (6, 2))
+    slow_t = np.linspace(0.0, SPAN_S, 6)
+    start = TemporalStart(("M2",), (OMEGA_M2,), T0, slow=True, learn_slow_time_scale=False,
+                          harmonic_velocity_scale_m_s=0.2, slow_velocity_scale_m_s=0.1, slow_time_scale_s=9 * 3600.0,
+                          slow_inducing_m=slow_z, slow_inducing_time_s=slow_t)
+    z = np.asarray(base.params.inducing_m)
+    params = F.init_params("helmholtz", 2, z, velocity_scale_m_s=0.15, length_scale_m=1500.0, temporal=start,
+                           noise_floor_m_s=0.02, diffusivity_m2_s=0.01)
+    x = rng.uniform(-HALF_M, HALF_M, (200, 2))
+    t = T0 + np.sort(rng.uniform(0.0, SPAN_S, 200))
+    v = 0.1 * np.stack([np.sin(x[:, 1] / 1000.0 + t / 20000.0), np.cos(x[:, 0] / 1000.0)], 1)
+    obs = types.SimpleNamespace(position_m=x, velocity_m_s=v, dt_s=np.full(200, 3600.0), time_s=t,
+                                position_error_m=3.0)
+    field = F.FlowField.from_params(F.optimal_q(params, F.batch_from_observations(obs)), frame=Frame(),
+                                    data_summary={"time_span_s": [float(t[0]), float(t[-1])]})
+    times = np.linspace(t[0], t[-1], 121)
+    weights = np.array([simpson(e, x=times) for e in np.eye(times.size)]) / (t[-1] - t[0])
+    points = np.array([[400.0, -900.0], [-1300.0, 200.0]])
+    mean, cov = window_velocity(field, points, span_average(field, slow_nodes=12))
+    ref_mean, ref_cov = window_velocity(field, points, TimeWindow((jnp.asarray(times),), (jnp.asarray(weights),),
+                                                                  (None,)))
+    scale = np.sqrt(np.max(np.diagonal(ref_cov, axis1=1, axis2=2)))
+    np.testing.assert_allclose(mean, ref_mean, rtol=0, atol=1e-3 * scale)        # measured: see the report
+    np.testing.assert_allclose(cov, ref_cov, rtol=0, atol=1e-3 * scale**2)

@@ -29,7 +29,9 @@ def configure_check(p: argparse.ArgumentParser) -> None:
         "tracks are held out). Then test divergence and vorticity on a grid inside the data hull: posterior "
         "z-scores of the Helmholtz model (its hyperparameters from the training tracks, conditioned on all "
         "tracks), Benjamini-Hochberg correction at 5 %. Reports the divergent share of the velocity variance "
-        "and a verdict with its reasons.")
+        "and a verdict with its reasons. A time-varying --model (tides, slow part) is tested on its divergence "
+        "and vorticity averaged over its data's time span (the Helmholtz split then comes from the steady "
+        "helmholtz refit).")
     p.epilog = CAUTION
     p.add_argument("tracks", help="CSV, CSV.GZ, Parquet or CF-trajectory NetCDF file of fixes")
     p.add_argument("--model", default=None, metavar="MODEL",
