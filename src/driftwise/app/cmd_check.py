@@ -185,7 +185,8 @@ def _run_time_map(args: argparse.Namespace, field, spacing: float | None) -> int
         slices = (f"no --times: the time mean over the data's span {when(series.time_mean_s[0])} to "
                   f"{when(series.time_mean_s[1])} (one slice with time bounds, cell_methods 'time: mean')")
     else:
-        slices = f"{len(series.times_s)} time slices: " + ", ".join(when(t) for t in series.times_s)
+        count = len(series.times_s)
+        slices = f"{count} time slice{'s' if count != 1 else ''}: " + ", ".join(when(t) for t in series.times_s)
     ellipses = ", ".join(series.ellipses) or "none (no tidal constituents)"
     print(f"{_grid_text(report)}\n  {slices}\n  tidal current ellipses: {ellipses}\nwrote {written}"
           + "".join(f"\nwrote {p}" for p in report.get("figures", [])) + f"\n{CAUTION}")

@@ -22,7 +22,7 @@ from ..errors import InputError
 from ..units import format_length
 from .physics import SUPPORT_RATIO, divergence_posterior, vorticity_posterior
 from .tidalellipse import TidalEllipses, tidal_ellipses
-from .timewindow import TimeWindow, data_span_s, padded_rows, window_velocity
+from .timewindow import TimeWindow, data_span_s, padded_rows, span_average, window_velocity
 
 __all__ = ["FieldGrid", "east_north_jacobian", "ellipse_grid", "field_extent_m", "field_grid", "support_time_s"]
 
@@ -100,10 +100,10 @@ def field_grid(field, *, spacing_m: float | None = None, cells_across: int = MAP
     and how far the farthest is from the data (``distance_to_data_m``, also kept per node).  Mean and covariance from
     ``field.predict`` (rotated to east/north, mean J m and covariance J Σ Jᵀ, for a lon/lat
     frame); divergence and vorticity from :func:`divergence_posterior` /
-    :func:`vorticity_posterior` (exact GP derivatives in the frame's metres).  A time-varying field needs a
-    ``window`` (:mod:`driftwise.diagnostics.timewindow`: the field at one time, or its time average), used for the
-    velocity and the derivatives alike; its support mask is taken at the window's time (for an average, the middle of
-    its data's time span).
+    :func:`vorticity_posterior` (exact GP derivatives in the frame's metres).  A time-varying field is taken over a
+    ``window`` (:mod:`driftwise.diagnostics.timewindow`: the field at one time, or by default its time mean over the
+    data's time span), for the velocity and the derivatives alike; its support mask is taken at the window's time (for
+    an average, the middle of the data's time span).
     """
     if field.dim != 2:
         raise InputError(f"gridded export supports 2-D fields; this model is {field.dim}-D")
@@ -123,8 +123,7 @@ def field_grid(field, *, spacing_m: float | None = None, cells_across: int = MAP
     points = np.column_stack([gx.ravel(), gy.ravel()])
     window = window if field.is_time_varying else None
     if field.is_time_varying:
-        if window is None:
-            raise InputError("this model changes in time: give the map's times (or map its time average)")
+        window = span_average(field) if window is None else window
         mean, cov = window_velocity(field, points, window)
         ratio = field.local_variance_ratio(points, support_time_s(field, window))
     else:
