@@ -28,7 +28,7 @@ from driftwise.app import cli
 from driftwise.data.frame import Frame
 from driftwise.data.synthetic import GaussianGyre, PulsingGyre, simulate_drifters
 from driftwise.diagnostics import physics as P
-from driftwise.diagnostics.grid import east_north_jacobian
+from driftwise.diagnostics.grid import east_north_jacobian, field_grid
 from driftwise.diagnostics.tidalellipse import tidal_ellipses
 from driftwise.diagnostics.timewindow import TimeWindow, at_time, span_average, window_velocity
 from driftwise.gp import field as F
@@ -183,6 +183,8 @@ def test_time_mean_map_is_one_bounded_slice(maps):
         div = P.divergence_posterior(field, points, window=span_average(field, start, end))
         np.testing.assert_allclose(ds["divergence_per_s"].values[0].ravel(), div.mean, rtol=0, atol=1e-14)
         np.testing.assert_allclose(ds["divergence_std_per_s"].values[0].ravel(), div.std, rtol=0, atol=1e-14)
+        grid = field_grid(field, spacing_m=1500.0)          # a time-varying field's default window: the span mean
+        np.testing.assert_allclose(ds["eastward_velocity_m_s"].values[0], grid.mean_m_s[..., 0], rtol=0, atol=1e-14)
 
 
 def test_ellipse_maps_equal_tidalellipse_at_the_nodes(maps):
