@@ -120,7 +120,7 @@ def test_tidal_data_choose_m2_and_the_json_says_why(tmp_path, capsys):
     field = driftwise.load(out)
     assert field.is_time_varying and list(field.constituents) == ["M2"]
     assert field.fit_info["temporal_choice"]["components"] == ["steady", "M2"]
-    assert not (tmp_path / "model.temporal.npz").exists() and not (tmp_path / "model.ckpt.npz").exists()
+    assert not (tmp_path / "model.ckpt.temporal.npz").exists() and not (tmp_path / "model.ckpt.npz").exists()
 
 
 def test_forced_steady_on_tidal_data_warns_naming_m2(tmp_path, capsys):
