@@ -8,10 +8,14 @@ Prints one table, everything measured in this run (medians):
 2. fit time (to the plateau) and final ELBO for steady, steady + M2, steady + M2 + slow on about 10⁴ velocity
    observations of drifters in a gyre whose strength follows a + b cos ω_M2 t (driftwise.data.synthetic.PulsingGyre).
 
-3. (with ``--before``) a SHA-256 of the steady optimiser step's compiled-program text (HLO, source metadata
+3. ``--temporal auto`` (driftwise.dynamics.temporalchoice.fit_temporal) on steady and on tidal gyre tracks (the
+   same flow at constant strength; R = 20 km so the tidal excursion is small beside the gyre): what it chose, its
+   total time and the share of the residual test, the only cost auto adds to a fit of steady data;
+4. (with ``--before``) a SHA-256 of the steady optimiser step's compiled-program text (HLO, source metadata
    stripped) in each tree: equal digests mean the steady step runs the very same program, whatever the load.
 
-``--parts step,fits,hlo`` picks parts (default all); ``--repeats R`` processes per tree for part 1 (default 3).
+``--parts step,fits,auto,hlo`` picks parts (default all); ``--repeats R`` processes per tree for part 1 (default 3);
+``--tracks N`` drifters for parts 2 and 3 (default 100, about 10⁴ observations).
 """
 
 from __future__ import annotations
@@ -30,6 +34,7 @@ import numpy as np
 import driftwise
 from driftwise.data.synthetic import GaussianGyre, PulsingGyre, simulate_drifters
 from driftwise.data.tracks import tracks_from_frame
+from driftwise.dynamics.temporalchoice import fit_temporal
 
 HERE = Path(__file__).resolve().parents[2]
 
@@ -106,17 +111,18 @@ def part_step(before: Path | None, repeats: int) -> list[str]:
     return rows
 
 
-def gyre_tracks(n_tracks: int, hours: int):
+def gyre_tracks(n_tracks: int, hours: int, *, radius_m: float = 1500.0, tidal: bool = True):
     omega = 2.0 * math.pi / (12.4206012 * 3600.0)
-    flow = PulsingGyre(GaussianGyre(0.3, 1500.0), 0.5, -1.0, omega)
-    starts = np.random.default_rng(1).uniform(-2500.0, 2500.0, (n_tracks, 2))
+    gyre = GaussianGyre(0.3, radius_m)
+    flow = PulsingGyre(gyre, 0.5, -1.0, omega) if tidal else gyre
+    starts = np.random.default_rng(1).uniform(-5.0 * radius_m / 3.0, 5.0 * radius_m / 3.0, (n_tracks, 2))
     frame = simulate_drifters(flow, starts, duration_s=hours * 3600.0, fix_interval_s=1800.0, diffusivity_m2_s=0.5,
                               position_error_m=3.0, seed=2, start_times_s=1.7e9)
     return tracks_from_frame(frame)
 
 
-def part_fits() -> list[str]:
-    tracks = gyre_tracks(100, 50)
+def part_fits(n_tracks: int) -> list[str]:
+    tracks = gyre_tracks(n_tracks, 50)
     rows = []
     for label, options in (("steady", {}), ("steady + M2", {"tides": ("M2",)}),
                            ("steady + M2 + slow", {"tides": ("M2",), "slow_time_scale_s": "auto"})):
@@ -129,9 +135,24 @@ def part_fits() -> list[str]:
     return rows
 
 
+def part_auto(n_tracks: int) -> list[str]:
+    rows = []
+    for label, tidal in (("steady", False), ("tidal (M2)", True)):
+        tracks, timing = gyre_tracks(n_tracks, 50, radius_m=20000.0, tidal=tidal), {}
+        tic = time.perf_counter()
+        field, _, decision = fit_temporal(tracks, "helmholtz", position_error_m=3.0, quiet=True,
+                                          likelihood="velocities", timing_s=timing)
+        seconds = time.perf_counter() - tic
+        rows.append(f"| --temporal auto on {label} data, {field.data_summary.get('n_observations')} obs | "
+                    f"{seconds:.1f} s | chose {' + '.join(decision.components)}; residual test "
+                    f"{timing['residual_test']:.2f} s = {timing['residual_test'] / seconds:.1%} of the total |")
+    return rows
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--parts", default="step,fits,hlo")
+    parser.add_argument("--parts", default="step,fits,auto,hlo")
+    parser.add_argument("--tracks", type=int, default=100)
     parser.add_argument("--before", type=Path, default=None, help="source tree to compare the steady step with")
     parser.add_argument("--repeats", type=int, default=3)
     args = parser.parse_args()
@@ -139,7 +160,9 @@ def main() -> None:
     if "step" in args.parts:
         rows += part_step(args.before, args.repeats)
     if "fits" in args.parts:
-        rows += part_fits()
+        rows += part_fits(args.tracks)
+    if "auto" in args.parts:
+        rows += part_auto(args.tracks)
     if "hlo" in args.parts and args.before:
         rows += part_hlo(args.before)
     print("\n".join(rows))

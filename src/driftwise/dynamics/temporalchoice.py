@@ -119,13 +119,12 @@ def residual_evidence(field: fld.FlowField, tracks, *, alpha: float = ALPHA) -> 
 
 
 def _significance_text(evidence: TemporalEvidence) -> str:
-    """'M2 (F = 41.2, adjusted p = 3e-09)' for each significant component, or the weakest miss."""
+    """'M2 (F = 41.2, adjusted p = 3e-09 < 0.01, ...)' for each significant component, or the nearest miss."""
     found = [c for c in evidence.components if c.significant]
     if found:
         return "; ".join(f"{c.name} (F = {c.f_statistic:.3g}, adjusted p = {c.p_adjusted:.2g} < {evidence.alpha:g}, "
                          f"{100 * c.variance_fraction:.3g} % of the residual variance)" for c in found)
-    tested = [c for c in evidence.components if c.status == "tested" and c.name != SLOW] or \
-        [c for c in evidence.components if c.status == "tested"]
+    tested = [c for c in evidence.components if c.status == "tested"]
     if not tested:
         return "no component could be tested (tracks too short)"
     best = min(tested, key=lambda c: c.p_adjusted)
