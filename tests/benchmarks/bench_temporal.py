@@ -8,19 +8,23 @@ Prints one table, everything measured in this run (medians):
 2. fit time (to the plateau) and final ELBO for steady, steady + M2, steady + M2 + slow on about 10⁴ velocity
    observations of drifters in a gyre whose strength follows a + b cos ω_M2 t (driftwise.data.synthetic.PulsingGyre).
 
-3. (with ``--before``) a SHA-256 of the steady optimiser step's compiled-program text (HLO, source metadata
+3. ``--temporal auto`` (driftwise.dynamics.temporalchoice.fit_temporal) on steady and on tidal gyre tracks (the
+   same flow at constant strength; R = 20 km so the tidal excursion is small beside the gyre): what it chose, its
+   total time and the share of the residual test, the only cost auto adds to a fit of steady data;
+4. (with ``--before``) a SHA-256 of the steady optimiser step's compiled-program text (HLO, source metadata
    stripped) in each tree: equal digests mean the steady step runs the very same program, whatever the load;
-4. spread cost per release-step (cubature, moments.propagate_batch, RK4 600 s; ``--releases`` × ``--hours``) on
+5. spread cost per release-step (cubature, moments.propagate_batch, RK4 600 s; ``--releases`` × ``--hours``) on
    fields of the gyre data at the fit's default sizes (q optimal for the initial hyperparameters: the cost does not
    depend on their values): steady (M = 256, F = 512 features) against steady + M2 (M = 48, F = 288) and
    steady + M2 + slow (M = M_s = 48, F = 384), and steady + M2 against steady at the same M = 48 (F = 96), run
    alternately (bench_spread.paired_times), ratio = median of the
    paired ratios (issue target: time-varying ≤ 1.5× steady);
-5. (with ``--before``) the steady spread of part 4's size in a fresh process per tree, alternating, as part 1.
+6. (with ``--before``) the steady spread of part 5's size in a fresh process per tree, alternating, as part 1.
 
-``--fit-tracks`` and ``--fit-steps`` shrink part 2 on a busy machine.  ``--parts step,fits,hlo,spread,spreadtree``
-picks parts (default all); ``--repeats R`` processes per tree for parts 1 and 5 and paired repeats in part 4
-(default 3); ``--releases`` and ``--hours`` size parts 4 and 5.
+``--fit-tracks`` (drifters for parts 2 and 3; 100: about 10⁴ observations) and ``--fit-steps`` shrink parts 2 and 3
+on a busy machine.  ``--parts step,fits,auto,hlo,spread,spreadtree`` picks parts (default all); ``--repeats R``
+processes per tree for parts 1 and 6 and paired repeats in part 5 (default 3); ``--releases`` and ``--hours`` size
+parts 5 and 6.
 """
 
 from __future__ import annotations
@@ -41,6 +45,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))   # bench_spread's pair
 import driftwise
 from driftwise.data.synthetic import GaussianGyre, PulsingGyre, simulate_drifters
 from driftwise.data.tracks import tracks_from_frame
+from driftwise.dynamics.temporalchoice import fit_temporal
 
 HERE = Path(__file__).resolve().parents[2]
 
@@ -117,10 +122,11 @@ def part_step(before: Path | None, repeats: int) -> list[str]:
     return rows
 
 
-def gyre_tracks(n_tracks: int, hours: int):
+def gyre_tracks(n_tracks: int, hours: int, *, radius_m: float = 1500.0, tidal: bool = True):
     omega = 2.0 * math.pi / (12.4206012 * 3600.0)
-    flow = PulsingGyre(GaussianGyre(0.3, 1500.0), 0.5, -1.0, omega)
-    starts = np.random.default_rng(1).uniform(-2500.0, 2500.0, (n_tracks, 2))
+    gyre = GaussianGyre(0.3, radius_m)
+    flow = PulsingGyre(gyre, 0.5, -1.0, omega) if tidal else gyre
+    starts = np.random.default_rng(1).uniform(-5.0 * radius_m / 3.0, 5.0 * radius_m / 3.0, (n_tracks, 2))
     frame = simulate_drifters(flow, starts, duration_s=hours * 3600.0, fix_interval_s=1800.0, diffusivity_m2_s=0.5,
                               position_error_m=3.0, seed=2, start_times_s=1.7e9)
     return tracks_from_frame(frame)
@@ -246,9 +252,23 @@ def part_spread_tree(before: Path, releases: int, hours: float, repeats: int) ->
     return rows + [f"| steady spread, this tree / before | {ratio:.3f} | (≤ 1.05 wanted) |"]
 
 
+def part_auto(n_tracks: int) -> list[str]:
+    rows = []
+    for label, tidal in (("steady", False), ("tidal (M2)", True)):
+        tracks, timing = gyre_tracks(n_tracks, 50, radius_m=20000.0, tidal=tidal), {}
+        tic = time.perf_counter()
+        field, _, decision = fit_temporal(tracks, "helmholtz", position_error_m=3.0, quiet=True,
+                                          likelihood="velocities", timing_s=timing)
+        seconds = time.perf_counter() - tic
+        rows.append(f"| --temporal auto on {label} data, {field.data_summary.get('n_observations')} obs | "
+                    f"{seconds:.1f} s | chose {' + '.join(decision.components)}; residual test "
+                    f"{timing['residual_test']:.2f} s = {timing['residual_test'] / seconds:.1%} of the total |")
+    return rows
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--parts", default="step,fits,hlo,spread,spreadtree")
+    parser.add_argument("--parts", default="step,fits,auto,hlo,spread,spreadtree")
     parser.add_argument("--fit-tracks", type=int, default=100, help="drifters × 50 h at 30-min fixes (100: 10⁴)")
     parser.add_argument("--fit-steps", type=int, default=1000, help="optimiser step cap of each fit")
     parser.add_argument("--releases", type=int, default=200)
@@ -261,6 +281,8 @@ def main() -> None:
         rows += part_step(args.before, args.repeats)
     if "fits" in args.parts:
         rows += part_fits(args.fit_tracks, args.fit_steps)
+    if "auto" in args.parts:
+        rows += part_auto(args.fit_tracks)
     if "hlo" in args.parts and args.before:
         rows += part_hlo(args.before)
     if "spread" in args.parts.split(","):
