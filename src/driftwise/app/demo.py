@@ -39,11 +39,11 @@ from ..diagnostics.grid import field_grid
 from ..diagnostics.skill import score
 from ..diagnostics.verdict import check
 from ..dynamics.calibrate import calibrate
+from ..dynamics.temporalchoice import fit_temporal
 from ..errors import InputError
 from ..files import CAUTION, atomic_write_text, plain
 from ..gp.modelfile import save_model
 from ..gp.schedule import Schedule
-from ..gp.training import fit
 from ..products.plots import (
     plot_area_probability,
     plot_divergence_vorticity,
@@ -111,7 +111,6 @@ class DemoSettings:
     backtrack_spacing_m: float = 1250.0
     seed: int = 0
     position_error_m: float = DemoScenario().position_error_m   # the campaign's stated GPS accuracy, as a user gives it
-    tides: tuple[str, ...] = ("M2",)    # constituents the demo's fit models (explicit until `--temporal auto`)
     ellipses_across: int = 8
     phase_cells_across: int = 22
 
@@ -184,9 +183,11 @@ def figure_tracks(job: Job) -> None:
 # ----------------------------------------------------------------- 2. fit
 def step_fit(job: Job) -> str:
     s = job.settings
-    # The bay has an M2 tide: model it explicitly until `fit --temporal auto` lands (then let auto choose).
-    field = fit(job.state["fit_tracks"], kernel="helmholtz", inducing=s.inducing, seed=s.seed, progress=job.progress,
-                position_error_m=s.position_error_m, schedule=Schedule(steps=s.fit_steps), tides=s.tides)
+    # As `driftwise fit` by default (--temporal auto): a steady fit, its residuals tested for tides and slow change,
+    # and a refit with what they hold (the bay's M2 tide).
+    field, _, decision = fit_temporal(job.state["fit_tracks"], "helmholtz", temporal="auto", likelihood="velocities",
+                                      inducing=s.inducing, seed=s.seed, quiet=not job.progress,
+                                      position_error_m=s.position_error_m, schedule=Schedule(steps=s.fit_steps))
     path = job.out / "model.npz"
     save_model(field, path)
     job.add_file(path, "the fitted Helmholtz model (npz without pickles + JSON metadata; driftwise.load)")
@@ -201,6 +202,7 @@ def step_fit(job: Job) -> str:
         "optimiser_steps": info.get("steps"), "converged": info.get("converged"),
         "diffusivity_m2_s": field.diffusivity_m2_s, "decorrelation_time_s": field.decorrelation_time_s,
         "hyperparameters": _group_hyperparameters(field.hyperparameters),
+        "temporal": decision.to_dict(),
         "notes": [f"The decorrelation time τ comes from {info.get('decorrelation_time_source', 'the fit')} "
                   "(Taylor 1921: diffusivity = velocity variance × Lagrangian time scale)."],
     }
@@ -212,7 +214,8 @@ def step_fit(job: Job) -> str:
                                  final_elbo=info.get("elbo"), converged=info.get("converged")),
                        "elbo.png", f"The evidence lower bound while fitting ({info.get('elbo_history_kind', '')}).",
                        "fit")
-    return (f"helmholtz, M = {job.summary['fit']['n_inducing']}, K = {field.diffusivity_m2_s:.3g} m²/s, "
+    return (f"helmholtz + {' + '.join(decision.components)} (--temporal auto), "
+            f"M = {job.summary['fit']['n_inducing']}, K = {field.diffusivity_m2_s:.3g} m²/s, "
             f"τ = {format_duration(field.decorrelation_time_s)}, {info.get('steps')} steps")
 
 
