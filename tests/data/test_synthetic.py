@@ -10,8 +10,8 @@ import numpy as np
 import pytest
 
 from driftwise.app.bay import DemoBay, DemoScenario, main, write_demo_data
-from driftwise.data.frame import Frame
 from driftwise.data import synthetic
+from driftwise.data.frame import Frame
 from driftwise.data.synthetic import (
     GaussianGyre,
     LambOseenVortex,
