@@ -80,6 +80,14 @@ def test_tank_fit_recovers_the_velocity_and_the_diffusivity(tank_fit):
     assert _relative_rmse(model, tracks) <= 0.10
 
 
+@pytest.mark.xfail(strict=True, reason="issue 13 open gap: on 2,400 fixes σ is not identified (upper bound 0.766 mm, "
+                                       "53 % above 0.5 mm); ≈ 1e5 fixes are needed and `fit` with its default "
+                                       "256 inducing points takes minutes per step on them in 3-D")
+def test_tank_fit_estimates_the_position_error_within_20_percent(tank_fit):
+    report, _, _, _ = tank_fit
+    assert report["position_error_m"] == pytest.approx(SIGMA_M, rel=0.20)
+
+
 def test_position_error_from_1e5_fixes_is_within_20_percent(tmp_path):
     """The estimator `fit` runs when no position error is given (driftwise.data.positionerror), on 200
     particles for 4 min (≈ 96,000 fixes): σ within 20 % of the simulated 0.5 mm and within 2.5 of its own
