@@ -16,7 +16,10 @@ data — the fit's 26 % was the information limit of the design.  The same 20 tr
 about 1e5 for 20 %, and `fit` with its default 256 inducing points on 16,384 rows per step takes minutes per
 step in 3-D on a 2-core machine, so σ is checked on such a file with the estimator `fit` calls (seconds).
 
-Measured when written: see the tests' docstrings.
+Measured when written (`driftwise fit tracks.csv --out m.npz --json --profile` on the fixture's file, load ≈ 28 on
+2 cores: 523 s wall, 92 s CPU; optimise 321 s, calibrate 122 s): 2,334 velocity observations from 57 tracks,
+72 inducing points, converged after 50 steps; velocity RMSE near the data 6.4 % of the RMS speed, K 1.04e-5 m²/s
+(ratio 1.04), σ not identified (2,106 windows; upper bound 0.766 mm).
 """
 
 from __future__ import annotations
@@ -73,7 +76,7 @@ def _relative_rmse(model_path, csv_path) -> float:
 
 def test_tank_fit_recovers_the_velocity_and_the_diffusivity(tank_fit):
     """Issue 13: velocity within 10 % RMS near the data, K within 30 % (truth: the ABC flow of Dombre et al.
-    1986 and the K of the simulation).  Measured when written: see MEASURED below."""
+    1986 and the K of the simulation).  Measured when written: 6.4 % and K ratio 1.04."""
     report, model, tracks, _ = tank_fit
     assert report["position_error_source"] == "estimated"
     assert report["diffusivity_m2_s"] == pytest.approx(K_M2_S, rel=0.30)
