@@ -28,8 +28,10 @@ from ..files import CAUTION
 from ..products.backtrackfiles import backtrack_to_dict, write_backtrack
 from ..products.connectfiles import write_connect
 from ..products.plotconnect import plot_backtrack, plot_connect_map, plot_connect_matrix
+from ..units import format_duration
 from .bay import DemoScenario
-from .job import Job, duration, fitted_field as _field
+from .job import Job
+from .job import fitted_field as _field
 from .scenarios import HOUR_S, OUTFALL_M, SHELLFISH_BED, SHELLFISH_BED_M, sites_in_frame
 
 # Sites in metres of the generator's frame (app.bay.DemoScenario).  The reef lies on the gyre's northern rim,
@@ -71,7 +73,7 @@ def step_connect(job: Job) -> str:
     job.summary["connect"] = [connect_table(result, s)]
     peak = result.probability.max(-1)
     i, j = np.unravel_index(int(np.argmax(np.where(np.eye(len(sites), dtype=bool), -1.0, peak))), peak.shape)
-    return (f"{len(sites)} sites × {result.per_site} releases, {duration(times[-1])}; strongest link "
+    return (f"{len(sites)} sites × {result.per_site} releases, {format_duration(times[-1])}; strongest link "
             f"{result.names[i]} → {result.names[j]} peak {peak[i, j]:.3f}")
 
 
