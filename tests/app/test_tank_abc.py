@@ -19,7 +19,8 @@ step in 3-D on a 2-core machine, so σ is checked on such a file with the estima
 Measured when written (`driftwise fit tracks.csv --out m.npz --json --profile` on the fixture's file, load ≈ 28 on
 2 cores: 523 s wall, 92 s CPU; optimise 321 s, calibrate 122 s): 2,334 velocity observations from 57 tracks,
 72 inducing points, converged after 50 steps; velocity RMSE near the data 6.4 % of the RMS speed, K 1.04e-5 m²/s
-(ratio 1.04), σ not identified (2,106 windows; upper bound 0.766 mm).
+(ratio 1.04), σ not identified (2,106 windows; upper bound 0.766 mm).  The whole file: 489 s with the 2-core
+machine's load falling from 15 to 5 (fit 172 s, check 284 s, spread and score 26 s); 1,298 s at load 21–32.
 """
 
 from __future__ import annotations
