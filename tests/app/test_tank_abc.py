@@ -1,14 +1,26 @@
-"""The tank-scale 3-D case end to end: `driftwise fit` with no options on drifters in an ABC flow.
+"""The tank-scale 3-D case end to end: `driftwise fit` with no options on particle tracks in an ABC flow.
 
 Truth: the Arnold–Beltrami–Childress flow (Dombre et al. 1986, J. Fluid Mech. 167, 353; A = √3, B = √2, C = 1)
-with period 1 m (a 1 m box) and U = 2 mm/s (RMS speed √6 U ≈ 4.9 mm/s); 20 drifters released uniformly in the
-box, fixes at 2 Hz for 1 min, eddy diffusivity K = 1e-5 m²/s (Einstein 1905: displacement variance 2KΔt per
-component), position noise σ = 0.5 mm per axis — the data of tests/benchmarks/bench_tank_abc.py.
+with period 1 m, seen in a 1 m periodic box (a particle leaving through one face re-enters through the opposite
+one and the tracker starts a new track: synthetic.in_periodic_box), U = 10 mm/s (RMS speed √6 U ≈ 24 mm/s; the
+flow turns by at most ≈ 2π U (A + B) / 1 m × 0.5 s ≈ 0.1 rad between fixes), fixes at 2 Hz, eddy diffusivity
+K = 1e-5 m²/s (Einstein 1905: displacement variance 2KΔt per component), position noise σ = 0.5 mm per axis
+— the data of tests/benchmarks/bench_tank_abc.py.
 
-Measured on this branch (bench_tank_abc.py, one fit, loaded 2-core machine, 138 s): K 9.88e-6 m²/s (ratio 0.99),
-σ estimated 0.769 ± 0.170 mm (flagged not identified; 54 % above the truth), velocity RMSE near the data 26.1 % of
-the RMS speed.  Issue 13 asks for 10 % and σ within 20 %: those two are open and recorded as strict expected
-failures below (the velocity error did not move with 256 inducing points: 25.5 %).
+Why this design and not the first one (20 drifters for 1 min at U = 2 mm/s, velocity RMSE 26 %): at 2 Hz the
+random walk alone gives each finite-difference velocity a noise of √(2K/h + 2σ²/h²) = 6.5 mm/s per component
+against a flow of 2.6 mm/s per component at U = 2 mm/s; an oracle smoother (exact GP regression per component
+with the true noise and the best of five length scales, chosen against the truth) reaches only 26.8 % on those
+data — the fit's 26 % was the information limit of the design.  The same 20 tracks at U = 10 mm/s give the oracle
+8.7 %.  The position error needs far more fixes (its SE ∝ (2Kh + 2σ²)/σ²/√N, driftwise.data.positionerror):
+about 1e5 for 20 %, and `fit` with its default 256 inducing points on 16,384 rows per step takes minutes per
+step in 3-D on a 2-core machine, so σ is checked on such a file with the estimator `fit` calls (seconds).
+
+Measured when written (`driftwise fit tracks.csv --out m.npz --json --profile` on the fixture's file, load ≈ 28 on
+2 cores: 523 s wall, 92 s CPU; optimise 321 s, calibrate 122 s): 2,334 velocity observations from 57 tracks,
+72 inducing points, converged after 50 steps; velocity RMSE near the data 6.4 % of the RMS speed, K 1.04e-5 m²/s
+(ratio 1.04), σ not identified (2,106 windows; upper bound 0.766 mm).  The whole file: 489 s with the 2-core
+machine's load falling from 15 to 5 (fit 172 s, check 284 s, spread and score 26 s); 1,298 s at load 21–32.
 """
 
 from __future__ import annotations
@@ -16,33 +28,43 @@ from __future__ import annotations
 import contextlib
 import io
 import json
+import re
 
 import numpy as np
 import pytest
 
 from driftwise.app.cli import main
 from driftwise.data import synthetic
+from driftwise.data.positionerror import estimate_position_error
 from driftwise.data.tracks import read_tracks, velocity_observations
 from driftwise.gp.modelfile import load_model
 
-SIGMA_M, K_M2_S, SPEED_M_S = 5e-4, 1e-5, 2e-3
-FLOW = synthetic.ABCFlow(speed_m_s=SPEED_M_S, box_m=1.0)
+SIGMA_M, K_M2_S, SPEED_M_S, BOX_M = 5e-4, 1e-5, 1e-2, 1.0
+FLOW = synthetic.ABCFlow(speed_m_s=SPEED_M_S, box_m=BOX_M)
 
 pytestmark = pytest.mark.slow
 
 
+def tank_tracks(n_particles: int, duration_s: float, seed: int):
+    """Particles released uniformly in the box, fixes at 2 Hz, folded into the periodic box."""
+    starts = np.random.default_rng(seed).uniform(0.0, BOX_M, (n_particles, 3))
+    table = synthetic.simulate_drifters(FLOW, starts, duration_s=duration_s, fix_interval_s=0.5,
+                                        diffusivity_m2_s=K_M2_S, position_error_m=SIGMA_M, seed=seed + 1)
+    return synthetic.in_periodic_box(table, BOX_M)
+
+
 @pytest.fixture(scope="module")
 def tank_fit(tmp_path_factory):
-    """(fit --json report, model path, tracks path) of `driftwise fit tracks.csv --out model.npz` with no options."""
+    """(fit --json report, model path, tracks path, held-out tracks path) of `driftwise fit tracks.csv --out
+    model.npz` with no options, on 20 particles for 1 min."""
     folder = tmp_path_factory.mktemp("tank")
-    starts = np.random.default_rng(0).uniform(0.0, 1.0, (20, 3))
-    synthetic.simulate_drifters(FLOW, starts, duration_s=60.0, fix_interval_s=0.5, diffusivity_m2_s=K_M2_S,
-                                position_error_m=SIGMA_M, seed=1).to_csv(folder / "tracks.csv", index=False)
+    tank_tracks(20, 60.0, seed=0).to_csv(folder / "tracks.csv", index=False)
+    tank_tracks(6, 60.0, seed=20).to_csv(folder / "holdout.csv", index=False)
     buffer = io.StringIO()
     with contextlib.redirect_stdout(buffer):
         code = main(["fit", str(folder / "tracks.csv"), "--out", str(folder / "model.npz"), "--json", "--quiet"])
     assert code == 0
-    return json.loads(buffer.getvalue()), folder / "model.npz", folder / "tracks.csv"
+    return json.loads(buffer.getvalue()), folder / "model.npz", folder / "tracks.csv", folder / "holdout.csv"
 
 
 def _relative_rmse(model_path, csv_path) -> float:
@@ -53,28 +75,58 @@ def _relative_rmse(model_path, csv_path) -> float:
     return float(np.sqrt(np.mean(np.sum((mean - truth) ** 2, 1)) / np.mean(np.sum(truth**2, 1))))
 
 
-def test_tank_fit_recovers_the_diffusivity(tank_fit):
-    report, _, _ = tank_fit
+def test_tank_fit_recovers_the_velocity_and_the_diffusivity(tank_fit):
+    """Issue 13: velocity within 10 % RMS near the data, K within 30 % (truth: the ABC flow of Dombre et al.
+    1986 and the K of the simulation).  Measured when written: 6.4 % and K ratio 1.04."""
+    report, model, tracks, _ = tank_fit
     assert report["position_error_source"] == "estimated"
     assert report["diffusivity_m2_s"] == pytest.approx(K_M2_S, rel=0.30)
-
-
-@pytest.mark.xfail(strict=True, reason="issue 13 open gap: velocity RMSE 26 % (target 10 %) and σ 54 % off "
-                                       "(target 20 %) on 20 tracks of 1 min at 2 Hz")
-def test_tank_fit_recovers_velocity_and_position_error(tank_fit):
-    report, model, tracks = tank_fit
     assert _relative_rmse(model, tracks) <= 0.10
+
+
+@pytest.mark.xfail(strict=True, reason="issue 13 open gap: on 2,400 fixes σ is not identified (upper bound 0.766 mm, "
+                                       "53 % above 0.5 mm); ≈ 1e5 fixes are needed and `fit` with its default "
+                                       "256 inducing points takes minutes per step on them in 3-D")
+def test_tank_fit_estimates_the_position_error_within_20_percent(tank_fit):
+    report, _, _, _ = tank_fit
     assert report["position_error_m"] == pytest.approx(SIGMA_M, rel=0.20)
+
+
+def test_position_error_from_1e5_fixes_is_within_20_percent(tmp_path):
+    """The estimator `fit` runs when no position error is given (driftwise.data.positionerror), on 200
+    particles for 4 min (≈ 96,000 fixes): σ within 20 % of the simulated 0.5 mm and within 2.5 of its own
+    standard errors.  Measured when written: 0.448 ± 0.048 mm (U = 5 mm/s), 0.457 ± 0.045 mm (U = 10 mm/s)."""
+    tank_tracks(200, 240.0, seed=0).to_csv(tmp_path / "many.csv", index=False)
+    estimate = estimate_position_error(read_tracks(tmp_path / "many.csv"))
+    assert estimate.identified
+    assert estimate.value_m == pytest.approx(SIGMA_M, rel=0.20)
+    assert abs(estimate.value_m - SIGMA_M) <= 2.5 * estimate.standard_error_m
 
 
 def test_tank_check_says_divergence_free_and_not_curl_free(tank_fit, run_cli):
     """`driftwise check tracks.csv` with no options: the ABC flow is divergence-free (∇·u = 0) and Beltrami
-    (∇ × u = k u ≠ 0).  Measured when written (same tracks, `driftwise check --json`): divergence-free yes (674
-    cells, max |z| 1.59), curl-free no (6.2 % of the hull, max |z| 4.84), divergent share 0.013 ± 0.018, held-out
-    tracks favour divergence-free over curl-free by 97 nats."""
-    _, _, tracks = tank_fit
+    (∇ × u = k u ≠ 0)."""
+    _, _, tracks, _ = tank_fit
     code, out, err = run_cli("check", tracks, "--json", "--quiet")
     assert code == 0, err
     result = json.loads(out)
     assert result["verdict"]["answers"] == {"divergence_free": "yes", "curl_free": "no"}
     assert result["divergent_variance_fraction"] < 0.1 and result["families_distinguishable"] is True
+
+
+def test_tank_spread_and_score_print_nonzero_mm_and_s(tank_fit, run_cli):
+    """`spread` from the box centre for 20 s and `score` on held-out tracks print lengths in mm and durations in
+    s, none of them zero."""
+    _, model, _, holdout = tank_fit
+    code, out, err = run_cli("spread", model, "--release", "0.5,0.5,0.5", "--horizon", "20s", "--every", "5s")
+    assert code == 0, err
+    line = next(row for row in out.splitlines() if "95 % ellipse" in row)
+    sizes = re.search(r"95 % ellipse ([\d.]+) mm x ([\d.]+) mm", line)
+    assert sizes and min(float(sizes[1]), float(sizes[2])) > 0, line
+    assert "output times to 20 s" in out, out
+    code, out, err = run_cli("score", model, holdout)
+    assert code == 0, err
+    rows = [row for row in out.splitlines() if "driftwise" in row and re.match(r"\s*[\d.]+ s ", row)]
+    assert rows, out
+    for row in rows:
+        assert float(row.split()[0]) > 0 and re.search(r"[1-9][\d.]* mm\b", row), row

@@ -10,6 +10,7 @@ import numpy as np
 import pytest
 
 from driftwise.app.bay import DemoBay, DemoScenario, main, write_demo_data
+from driftwise.data import synthetic
 from driftwise.data.frame import Frame
 from driftwise.data.synthetic import (
     GaussianGyre,
@@ -217,3 +218,22 @@ def test_demo_data_is_small_clean_and_split_by_track():
 def test_write_demo_data_returns_the_paths(tmp_path):
     paths = write_demo_data(tmp_path / "nested")
     assert sorted(p.name for p in paths) == ["README.md", "bay_fit.csv", "bay_holdout.csv"]
+
+
+def test_in_periodic_box_folds_positions_and_cuts_tracks_at_faces():
+    """Folding into one period of a periodic flow: every fix lands in [0, L)³ at its position modulo L (numpy
+    ``mod``), a track is cut wherever it changes period cell, and within a piece the steps are those of the
+    unfolded track (so finite-difference velocities are unchanged)."""
+    flow = synthetic.ABCFlow(speed_m_s=1e-2, box_m=1.0)
+    starts = np.random.default_rng(0).uniform(0.0, 1.0, (10, 3))
+    table = synthetic.simulate_drifters(flow, starts, duration_s=120.0, fix_interval_s=0.5, diffusivity_m2_s=1e-5,
+                                        position_error_m=5e-4, seed=1)
+    folded = synthetic.in_periodic_box(table, 1.0, min_fixes=1)
+    xyz = folded[["x_m", "y_m", "z_m"]].to_numpy()
+    assert len(folded) == len(table) and xyz.min() >= 0.0 and xyz.max() < 1.0
+    np.testing.assert_allclose(xyz, np.mod(table[["x_m", "y_m", "z_m"]].to_numpy(), 1.0), atol=1e-12)
+    assert folded["track_id"].nunique() > table["track_id"].nunique()
+    for _, piece in folded.groupby("track_id"):
+        assert np.all(np.abs(np.diff(piece[["x_m", "y_m", "z_m"]].to_numpy(), axis=0)) < 0.1)
+    dropped = synthetic.in_periodic_box(table, 1.0, min_fixes=6)
+    assert dropped.groupby("track_id").size().min() >= 6 and len(dropped) < len(table)

@@ -20,9 +20,17 @@ from scipy.special import ndtr
 
 import driftwise  # noqa: F401  (float64)
 from driftwise.data.frame import Frame
-from driftwise.dynamics.connectivity import connect, connect_ensemble, connect_memory_bytes, first_passage_s
+from driftwise.dynamics.connectivity import (
+    CULL_SD,
+    _score_batch,
+    connect,
+    connect_ensemble,
+    connect_memory_bytes,
+    first_passage_s,
+)
 from driftwise.dynamics.moments import RK4
 from driftwise.dynamics.sites import Site, cell_covariance_m2, inside_polygon, read_sites, seed_site
+from driftwise.dynamics.spread import ROUNDING_FLOOR, probability_inside
 from driftwise.errors import InputError
 
 
@@ -186,3 +194,20 @@ def test_sites_files(write_file):
         read_sites(geo)
     (site,) = read_sites(geo, frame=Frame("lonlat", -9.0, 44.0))
     assert site.name == "reef" and site.area_m2 == pytest.approx(0.5 * 804.0 * 1112.0, rel=0.01)
+
+
+def test_culled_scores_equal_every_site_scored():
+    """Scoring only sites within CULL_SD s.d. changes nothing: the skipped mass is ≤ 2 Φ(−CULL_SD) per axis
+    (normal tail by scipy.special.ndtr) < ROUNDING_FLOOR, below which probability_inside returns 0."""
+    assert 2 * ndtr(-CULL_SD) < ROUNDING_FLOOR
+    square = np.array([[-500.0, -500.0], [500.0, -500.0], [500.0, 500.0], [-500.0, 500.0]])
+    sites = tuple(Site(f"s{i}", square + [3000.0 * (i % 4), 3000.0 * (i // 4)]) for i in range(8))
+    rng = np.random.default_rng(3)
+    means = rng.uniform(-2000.0, 11000.0, (200, 5, 2))
+    a = rng.normal(size=(200, 5, 2, 2)) * rng.uniform(10.0, 3000.0, (200, 5, 1, 1))
+    covs = a @ np.swapaxes(a, -1, -2)
+    covs[:, 0] = 0.0                                   # point releases at t = 0, some exactly on a vertex
+    means[:4, 0] = sites[0].polygon_m[0]
+    every = np.stack([probability_inside(means, covs, s.polygon_m) for s in sites], axis=1)
+    assert 0.05 < np.mean(every > 0) < 0.9            # both culled and scored pairs occur
+    np.testing.assert_allclose(_score_batch(means, covs, sites), every, rtol=0, atol=1e-15)

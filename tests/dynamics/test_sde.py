@@ -9,7 +9,7 @@ Outside references:
 - Einstein (1905): a constant isotropic D gives P(t) = P0 + D t.
 - The sparse-GP predictive covariance K(x,x) − AAᵀ + ASSᵀAᵀ (Hensman et al.
   2013, eq. 6 in whitened form) as implemented by FlowField.cov_between and
-  FlowField.predict, against which the precomputed projection is compared.
+  FlowField.predict, against which the precomputed projection is compared (steady and time-varying).
 """
 
 from __future__ import annotations
@@ -24,7 +24,15 @@ import pytest
 
 import driftwise  # noqa: F401  (enables float64)
 from driftwise.dynamics import moments
-from driftwise.dynamics.sde import SDE, PointPosterior, join_from_jit, sde_from_field, split_for_jit
+from driftwise.dynamics.sde import (
+    SDE,
+    PointPosterior,
+    TimedPointPosterior,
+    join_from_jit,
+    sde_from_field,
+    split_for_jit,
+    timed_field_sde,
+)
 from driftwise.errors import InputError
 from driftwise.gp import field as fieldmod
 
@@ -150,3 +158,55 @@ def test_split_and_join_keep_plain_functions_static():
     rebuilt = join_from_jit(dynamic, static)
     assert rebuilt.drift is drift
     np.testing.assert_allclose(rebuilt.diffusion(jnp.zeros(2)), np.eye(2), rtol=0, atol=0)
+
+
+def timed_field():
+    """A small helmholtz field with M2 and the slow part, q optimal for random data over two days."""
+    from driftwise.gp.temporal import TemporalStart
+
+    rng = np.random.default_rng(7)
+    n, t0 = 300, 1.7e9
+    x, t = rng.uniform(-3000.0, 3000.0, (n, 2)), t0 + np.sort(rng.uniform(0.0, 2 * 86400.0, n))
+    obs = type("Obs", (), {"position_m": x, "velocity_m_s": rng.normal(0.0, 0.2, (n, 2)), "dt_s": np.full(n, 1800.0),
+                           "time_s": t, "position_error_m": 3.0})()
+    start = TemporalStart(("M2",), (2.0 * math.pi / (12.4206012 * 3600.0),), t0, True, harmonic_velocity_scale_m_s=0.1,
+                          slow_velocity_scale_m_s=0.05, slow_time_scale_s=43200.0, slow_inducing_m=x[:12],
+                          slow_inducing_time_s=t[:12] - t0)
+    params = fieldmod.init_params("helmholtz", 2, x[::15], velocity_scale_m_s=0.2, length_scale_m=1500.0,
+                                  diffusivity_m2_s=0.5, temporal=start)
+    return fieldmod.FlowField.from_params(fieldmod.optimal_q(params, fieldmod.batch_from_observations(obs)),
+                                          decorrelation_time_s=1800.0)
+
+
+def test_timed_point_posterior_equals_field_functions():
+    """The precomputed time-varying posterior gives FlowField.mean_at / cov_between (the sparse-GP predictive) to
+    1e-12 relative, at and past the data's times, for one point and for two (x, t) pairs."""
+    field = timed_field()
+    posterior = TimedPointPosterior.from_field(field)
+    rng = np.random.default_rng(8)
+    x = jnp.asarray(rng.uniform(-4000.0, 4000.0, (30, 2)))
+    t = jnp.asarray(1.7e9 + rng.uniform(-3600.0, 4 * 86400.0, 30))
+    mean = jax.vmap(lambda p, s: posterior.mean_at(p, t_s=s))(x, t)
+    mean_ref = jax.vmap(lambda p, s: field.mean_at(p, t_s=s))(x, t)
+    np.testing.assert_allclose(mean, mean_ref, rtol=1e-12, atol=1e-12 * float(jnp.abs(mean_ref).max()))
+    cov = jax.vmap(lambda p, s: posterior.cov_between(p, p, t_x_s=s, t_y_s=s))(x, t)
+    cov_ref = jax.vmap(lambda p, s: field.cov_between(p, p, t_x_s=s, t_y_s=s))(x, t)
+    np.testing.assert_allclose(cov, cov_ref, rtol=1e-12, atol=1e-12 * float(jnp.abs(cov_ref).max()))
+    cross = posterior.cov_between(x[0], x[1], t_x_s=t[0], t_y_s=t[1])
+    cross_ref = field.cov_between(x[0], x[1], t_x_s=t[0], t_y_s=t[1])
+    np.testing.assert_allclose(cross, cross_ref, rtol=1e-12, atol=1e-12 * float(jnp.abs(cov_ref).max()))
+    with pytest.raises(InputError, match="whole field"):
+        posterior.mean_at(x[0], "M2", t_s=t[0])
+
+
+def test_timed_forecast_through_the_precomputed_posterior_is_unchanged():
+    """A forecast of the time SDE built on the precomputed posterior equals the one built on the field's own
+    functions (timed_field_sde(field, ...), the path before the precomputation), 1e-12 relative."""
+    field = timed_field()
+    new = sde_from_field(field)
+    old = timed_field_sde(field, jnp.asarray(field.diffusivity_m2_s), jnp.asarray(1800.0), True)
+    means0, covs0 = np.array([[500.0, -300.0], [-1000.0, 800.0]]), np.broadcast_to(100.0 * np.eye(2), (2, 2, 2))
+    times, starts = np.arange(0.0, 6 * 3600.0 + 1.0, 3600.0), np.array([1.7e9 + 86400.0, 1.7e9 + 2.5 * 86400.0])
+    out = [moments.propagate_batch(sde, means0, covs0, times, start_times_s=starts) for sde in (new, old)]
+    np.testing.assert_allclose(out[0][0], out[1][0], rtol=1e-12, atol=1e-12 * float(np.abs(out[1][0]).max()))
+    np.testing.assert_allclose(out[0][1], out[1][1], rtol=1e-12, atol=1e-12 * float(np.abs(out[1][1]).max()))

@@ -17,18 +17,25 @@ import pandas as pd
 from ..data.frame import Frame
 from ..data.synthetic import GaussianGyre, PotentialSources, simulate_drifters
 from ..files import atomic_write, atomic_write_text
+from ..gp.constituents import TIDAL_PERIODS_H, angular_frequency_rad_s
 
 _HALF_E = math.exp(0.5)
 
 
 @dataclass(frozen=True)
 class DemoBay:
-    """Mirren Bay (invented): a clockwise wind-driven gyre plus the Aldous river's outflow.
+    """Mirren Bay (invented): a clockwise wind-driven gyre, the Aldous river's outflow and an M2 tide.
 
     Metres in a local frame centred on the bay (x east, y north); the bay is
     about 20 km across, the harbour of Port Aldous sits at the river mouth in
     the south-east.  The gyre is divergence-free; the river is a curl-free
-    source, so the surface flow diverges near the mouth.
+    source, so the surface flow diverges near the mouth.  The semidiurnal (M2) tide
+    adds v_M2(x, t) = a(x) cos ωt + b(x) sin ωt, ω = 2π / 12.4206012 h and t in s since
+    1970-01-01T00:00Z (the time axis of the track files): a(x) is the flood/ebb stream entering
+    from the open sea to the south-west (curl-free, from a Gaussian potential centred off the bay),
+    b(x) a weaker rotary part in quadrature (divergence-free, a Gaussian eddy), so the tidal
+    current ellipses change size, shape, inclination and sense across the bay.
+    :meth:`velocity` is the steady part, :meth:`velocity_at` the full flow.
     """
 
     gyre_peak_speed_m_s: float = -0.22
@@ -37,6 +44,13 @@ class DemoBay:
     river_peak_speed_m_s: float = 0.15
     river_width_m: float = 2500.0
     river_mouth_m: tuple[float, float] = (6000.0, -5500.0)
+    tide_constituent: str = "M2"
+    tide_peak_speed_m_s: float = 0.15          # the cos-phase stream's peak, at tide_width_m from its centre
+    tide_width_m: float = 15000.0
+    tide_center_m: tuple[float, float] = (-14000.0, -12000.0)   # off the bay, in the open sea to the south-west
+    tide_rotary_peak_speed_m_s: float = 0.05   # the sin-phase eddy's peak (counter-clockwise), at its radius
+    tide_rotary_radius_m: float = 6000.0
+    tide_rotary_center_m: tuple[float, float] = (2000.0, -1000.0)
 
     @property
     def gyre(self) -> GaussianGyre:
@@ -47,8 +61,26 @@ class DemoBay:
         strength = self.river_peak_speed_m_s * self.river_width_m * _HALF_E
         return PotentialSources((self.river_mouth_m,), (strength,), self.river_width_m)
 
+    @property
+    def tide_omega_rad_s(self) -> float:
+        return angular_frequency_rad_s(self.tide_constituent)
+
+    def tide_amplitudes(self, xy) -> tuple[np.ndarray, np.ndarray]:
+        """(a(x), b(x)), each (n, 2) m/s: the tide's cos ωt and sin ωt amplitude fields."""
+        strength = self.tide_peak_speed_m_s * self.tide_width_m * _HALF_E
+        stream = PotentialSources((self.tide_center_m,), (strength,), self.tide_width_m)
+        rotary = GaussianGyre(self.tide_rotary_peak_speed_m_s, self.tide_rotary_radius_m, self.tide_rotary_center_m)
+        return stream.velocity(xy), rotary.velocity(xy)
+
     def velocity(self, xy) -> np.ndarray:
+        """The steady part (gyre + river), (n, 2) m/s."""
         return self.gyre.velocity(xy) + self.river.velocity(xy)
+
+    def velocity_at(self, xy, t_s) -> np.ndarray:
+        """The full flow at positions (n, 2) m and times (n,) or scalar s since 1970-01-01T00:00Z, m/s."""
+        a, b = self.tide_amplitudes(xy)
+        phase = self.tide_omega_rad_s * np.asarray(t_s, dtype=np.float64)
+        return self.velocity(xy) + np.cos(phase)[..., None] * a + np.sin(phase)[..., None] * b
 
     def divergence(self, xy) -> np.ndarray:
         return self.river.divergence(xy)
@@ -138,11 +170,16 @@ azimuthal-equidistant frame centred there (x east, y north), `driftwise.Frame("l
 `read_tracks` centres its own frame on the data, so compare positions through lon/lat.
 
 ## True parameters
-- Flow (steady): `driftwise.app.bay.DemoBay()` =
+- Flow: `driftwise.app.bay.DemoBay()` = a steady part plus an M2 tide:
   - a wind-driven gyre, divergence-free, Gaussian streamfunction: peak speed {abs(bay.gyre_peak_speed_m_s):g} m/s
     ({"clockwise" if bay.gyre_peak_speed_m_s < 0 else "counter-clockwise"}) at {bay.gyre_radius_m:g} m from its centre ({bay.gyre_center_m[0]:g} m, {bay.gyre_center_m[1]:g} m);
   - the Aldous river outflow at Port Aldous, curl-free Gaussian source: peak speed {bay.river_peak_speed_m_s:g} m/s
-    at {bay.river_width_m:g} m from the mouth ({bay.river_mouth_m[0]:g} m, {bay.river_mouth_m[1]:g} m) — divergent near the mouth.
+    at {bay.river_width_m:g} m from the mouth ({bay.river_mouth_m[0]:g} m, {bay.river_mouth_m[1]:g} m) — divergent near the mouth;
+  - the {bay.tide_constituent} tide (period {TIDAL_PERIODS_H[bay.tide_constituent]:.7f} h), a(x) cos ωt + b(x) sin ωt with t in s
+    since 1970-01-01T00:00Z: a(x) a curl-free stream from a Gaussian potential centred off the bay at
+    ({bay.tide_center_m[0]:g} m, {bay.tide_center_m[1]:g} m), peak {bay.tide_peak_speed_m_s:g} m/s at {bay.tide_width_m:g} m from it; b(x) a divergence-free
+    Gaussian eddy, peak {bay.tide_rotary_peak_speed_m_s:g} m/s (counter-clockwise) at {bay.tide_rotary_radius_m:g} m from ({bay.tide_rotary_center_m[0]:g} m, {bay.tide_rotary_center_m[1]:g} m)
+    (`DemoBay().tide_amplitudes(xy)` gives a and b).
 - Eddy diffusivity K = {s.diffusivity_m2_s:g} m²/s; GPS position error {s.position_error_m:g} m (standard deviation per component).
 - {s.n_releases} releases on a sunflower spiral within {s.release_radius_m:g} m of the bay centre, at random minutes in
   the first {s.release_window_s / 3600:g} h after {s.campaign_start}; fixes every {s.fix_interval_s:g} s

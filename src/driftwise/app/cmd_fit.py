@@ -9,14 +9,14 @@ from typing import Any
 from ..data.positionerror import position_error_text
 from ..data.tracks import TrackError, fit_shortfall, read_tracks_from_cli
 from ..dynamics.calibrate import calibrate
-from ..dynamics.transitionfit import LIKELIHOOD_HELP, LIKELIHOODS, fit_by_likelihood, fit_report
+from ..dynamics.temporalchoice import TEMPORAL_MODES, fit_temporal, temporal_fit_report
+from ..dynamics.transitionfit import LIKELIHOOD_HELP, LIKELIHOODS, fit_report
 from ..errors import InputError
 from ..files import CAUTION
 from ..gp.constituents import CONSTITUENTS, parse_constituents
 from ..gp.kernels import BACKGROUND_HELP, BACKGROUNDS, DEFAULT_FAMILY, KERNEL_FAMILIES
 from ..gp.modelfile import save_model
 from ..gp.schedule import Checkpoint
-from ..gp.training import fit as fit_velocities
 from ..gp.training import fit_report as velocity_fit_report
 from ..progress import Stopwatch
 from ..units import format_diffusivity, format_duration, format_length, format_named, format_speed, parse_duration_s, parse_length_m
@@ -48,6 +48,12 @@ def configure_fit(p: argparse.ArgumentParser) -> None:
     p.add_argument("--slow-time-scale", default="none", metavar="auto|none|DURATION",
                    help="a slowly changing part of the flow with a Matern-3/2 time scale: auto (learned), a duration "
                    "with its unit (fixed, e.g. 2d) or none (default)")
+    p.add_argument("--temporal", default=None, choices=list(TEMPORAL_MODES),
+                   help="time-varying components when --tides/--slow-time-scale are not given: "
+                   + "; ".join(f"{name}: {text}" for name, text in TEMPORAL_MODES.items())
+                   + ". Candidates: the tides M2, K1, S2, O1, N2 that the tracks' span can separate, inertial for "
+                   "lon/lat tracks, and slow change (F-tests at family-wise level 0.01). Giving --tides or "
+                   "--slow-time-scale fits exactly those components")
     p.add_argument("--resume", action="store_true", help="continue from the checkpoint MODEL.ckpt.npz if present")
     p.add_argument("--likelihood", default="auto", choices=list(LIKELIHOODS), help=LIKELIHOOD_HELP)
     p.add_argument("--calibrate", action=argparse.BooleanOptionalAction, default=True,
@@ -78,7 +84,7 @@ def _run_fit(args: argparse.Namespace) -> int:
     checkpoint = Checkpoint.beside(args.out, resume=args.resume)
     existed = checkpoint.path.exists()
     try:
-        field, choice = _fit_for_cli(args, tracks, tides, slow, position_error, checkpoint, clock.laps)
+        field, choice, decision = _fit_for_cli(args, tracks, tides, slow, position_error, checkpoint, clock.laps)
     except KeyboardInterrupt:
         print(f"driftwise: fit interrupted; continue with --resume (checkpoint {checkpoint.path})", file=sys.stderr)
         raise
@@ -94,7 +100,7 @@ def _run_fit(args: argparse.Namespace) -> int:
     with clock("save"):
         written = save_model(field, args.out)
     report = {**(fit_report(field, choice) if choice is not None else _time_varying_report(field)),
-              "model": str(written)}
+              "model": str(written), "temporal": temporal_fit_report(field, decision)}
     if args.calibrate:
         report["calibration"] = field.fit_info.get("calibration") if calibrated else {
             "skipped": "K and tau calibration needs a steady model; the fit's own K and tau are kept"}
@@ -114,17 +120,12 @@ def _slow_time_scale(text: str):
 
 
 def _fit_for_cli(args, tracks, tides, slow, position_error, checkpoint, timing_s):
-    """(field, likelihood choice): the steady fit through the likelihood choice, a time-varying one from the
-    velocities alone (choice None: the transition likelihood propagates a steady SDE)."""
-    quiet = args.quiet or args.json
-    if not tides and slow is None:
-        return fit_by_likelihood(tracks, args.kernel, args.likelihood, inducing=args.inducing, seed=args.seed,
-                                 position_error_m=position_error, checkpoint=checkpoint, quiet=quiet,
-                                 background=args.background, timing_s=timing_s)
-    field = fit_velocities(tracks, args.kernel, inducing=args.inducing, seed=args.seed, position_error_m=position_error,
-                           checkpoint=checkpoint, progress=not quiet, background=args.background, tides=tides,
-                           slow_time_scale_s=slow, timing_s=timing_s)
-    return field, None
+    """(field, likelihood choice or None, temporal decision) of :func:`driftwise.dynamics.temporalchoice.fit_temporal`:
+    --temporal (default auto) unless --tides/--slow-time-scale give the components."""
+    return fit_temporal(tracks, args.kernel, temporal=args.temporal or "auto", tides=tides, slow_time_scale_s=slow,
+                        likelihood=args.likelihood, inducing=args.inducing, seed=args.seed,
+                        position_error_m=position_error, checkpoint=checkpoint, quiet=args.quiet or args.json,
+                        background=args.background, timing_s=timing_s)
 
 
 def _time_varying_report(field) -> dict[str, Any]:
@@ -133,10 +134,13 @@ def _time_varying_report(field) -> dict[str, Any]:
 
 
 def _format_temporal(temporal: dict[str, Any]) -> list[str]:
-    """Text lines for the time-varying components: per constituent its period and scales; the slow part's."""
+    """Text lines for the time-varying components: how they were chosen, per constituent its period and scales;
+    the slow part's."""
+    lines = [f"  temporal ({temporal['mode']}): {' + '.join(temporal['components'])}; {temporal['reason']}"] \
+        if "mode" in temporal else []
     if temporal.get("components", ["steady"]) == ["steady"]:
-        return []
-    lines = [f"  time-varying components: {', '.join(temporal['components'])} (phase of cos/sin(omega t) on the "
+        return lines
+    lines += [f"  time-varying components: {', '.join(temporal['components'])} (phase of cos/sin(omega t) on the "
              "track file's time axis)"]
     for name, c in temporal["constituents"].items():
         lines.append(f"  {name}: period {format_duration(c['period_s'])}; " + _scales_text(c["hyperparameters"]))

@@ -39,11 +39,11 @@ from ..diagnostics.grid import field_grid
 from ..diagnostics.skill import score
 from ..diagnostics.verdict import check
 from ..dynamics.calibrate import calibrate
+from ..dynamics.temporalchoice import fit_temporal
 from ..errors import InputError
 from ..files import CAUTION, atomic_write_text, plain
 from ..gp.modelfile import save_model
 from ..gp.schedule import Schedule
-from ..gp.training import fit
 from ..products.plots import (
     plot_area_probability,
     plot_divergence_vorticity,
@@ -56,10 +56,11 @@ from ..products.plots import (
 )
 from ..products.report import digest, write_report
 from ..products.writers import write_field_grid, write_score_csv, write_spread
-from ..units import format_duration
+from ..units import format_diffusivity, format_duration
 from ..version import __version__
 from .bay import DemoScenario, write_demo_data
 from .demoanswers import step_backtrack, step_connect
+from .demotide import step_tide
 from .job import Job, Unavailable, environment, one_line_warnings, progress_bar
 from .job import fitted_field as _field
 from .scenarios import (
@@ -110,6 +111,8 @@ class DemoSettings:
     backtrack_spacing_m: float = 1250.0
     seed: int = 0
     position_error_m: float = DemoScenario().position_error_m   # the campaign's stated GPS accuracy, as a user gives it
+    ellipses_across: int = 8
+    phase_cells_across: int = 22
 
     @classmethod
     def fast(cls) -> "DemoSettings":
@@ -180,8 +183,11 @@ def figure_tracks(job: Job) -> None:
 # ----------------------------------------------------------------- 2. fit
 def step_fit(job: Job) -> str:
     s = job.settings
-    field = fit(job.state["fit_tracks"], kernel="helmholtz", inducing=s.inducing, seed=s.seed, progress=job.progress,
-                position_error_m=s.position_error_m, schedule=Schedule(steps=s.fit_steps))
+    # As `driftwise fit` by default (--temporal auto): a steady fit, its residuals tested for tides and slow change,
+    # and a refit with what they hold (the bay's M2 tide).
+    field, _, decision = fit_temporal(job.state["fit_tracks"], "helmholtz", temporal="auto", likelihood="velocities",
+                                      inducing=s.inducing, seed=s.seed, quiet=not job.progress,
+                                      position_error_m=s.position_error_m, schedule=Schedule(steps=s.fit_steps))
     path = job.out / "model.npz"
     save_model(field, path)
     job.add_file(path, "the fitted Helmholtz model (npz without pickles + JSON metadata; driftwise.load)")
@@ -196,6 +202,7 @@ def step_fit(job: Job) -> str:
         "optimiser_steps": info.get("steps"), "converged": info.get("converged"),
         "diffusivity_m2_s": field.diffusivity_m2_s, "decorrelation_time_s": field.decorrelation_time_s,
         "hyperparameters": _group_hyperparameters(field.hyperparameters),
+        "temporal": decision.to_dict(),
         "notes": [f"The decorrelation time τ comes from {info.get('decorrelation_time_source', 'the fit')} "
                   "(Taylor 1921: diffusivity = velocity variance × Lagrangian time scale)."],
     }
@@ -207,7 +214,8 @@ def step_fit(job: Job) -> str:
                                  final_elbo=info.get("elbo"), converged=info.get("converged")),
                        "elbo.png", f"The evidence lower bound while fitting ({info.get('elbo_history_kind', '')}).",
                        "fit")
-    return (f"helmholtz, M = {job.summary['fit']['n_inducing']}, K = {field.diffusivity_m2_s:.3g} m²/s, "
+    return (f"helmholtz + {' + '.join(decision.components)} (--temporal auto), "
+            f"M = {job.summary['fit']['n_inducing']}, K = {field.diffusivity_m2_s:.3g} m²/s, "
             f"τ = {format_duration(field.decorrelation_time_s)}, {info.get('steps')} steps")
 
 
@@ -230,6 +238,8 @@ def _true_diffusivity_m2_s() -> float:
 def step_calibrate(job: Job) -> str:
     """K and τ from the fit tracks' transitions (as ``driftwise fit`` does by default); the model is saved again."""
     field = _field(job)
+    if field.is_time_varying:
+        return _keep_fitted_transport(job, field)
     before = (field.diffusivity_m2_s, field.decorrelation_time_s)
     field = calibrate(field, job.state["fit_tracks"], max_starts=job.settings.calibration_starts)
     job.state["field"] = field
@@ -257,10 +267,36 @@ def step_calibrate(job: Job) -> str:
             + (" (upper bound: velocity error frozen over the lags)" if tau_at_bound else ""))
 
 
+def _keep_fitted_transport(job: Job, field: Any) -> str:
+    """A time-varying fit keeps the fit's own K and τ: the report says why and what they are."""
+    fit = job.summary["fit"]
+    fit["notes"] = [(
+        "K and τ were not recalibrated from the fit tracks' transitions: for a time-varying model the transition "
+        "likelihood integrates the moment equations from every start's own time, which took far longer than the "
+        "whole demo's budget (a reduced run had not finished 50 starts after 13 min on a loaded 2-core machine). "
+        f"K = {format_diffusivity(field.diffusivity_m2_s)} is the fit's own estimate (the random-walk term 2K/Δt "
+        f"of the velocity noise in the ELBO) and τ = {format_duration(field.decorrelation_time_s)} the length "
+        "scale over the RMS speed (Taylor 1921).")]
+    truth = _true_diffusivity_m2_s()
+    if truth > 0:
+        fit["notes"].append(f"The invented data were simulated with K = {truth:g} m²/s (demo_data/README.md), "
+                            "so the estimate can be checked against the truth.")
+    return (f"K = {format_diffusivity(field.diffusivity_m2_s)} and τ = {format_duration(field.decorrelation_time_s)} "
+            "kept from the fit (time-varying model: not recalibrated from transitions)")
+
+
 # ----------------------------------------------------------------- 3. map
+STEADY_PART_NOTE = ("The map (field.png, field.nc, field.csv, physics.png) and the physics check use the steady part "
+                    "v̄ of the tidal model, the flow averaged over the tidal cycle: the gridded products and the "
+                    "divergence/vorticity posteriors here take a steady field. The tide itself is in the Tide "
+                    "section; the spread, score, connect and backtrack forecasts use the full time-varying field.")
+
+
 def step_map(job: Job) -> str:
     field = _field(job)
-    grid = field_grid(field, cells_across=job.settings.grid_cells_across)
+    if field.is_time_varying:
+        job.summary.setdefault("fit", {}).setdefault("notes", []).append(STEADY_PART_NOTE)
+    grid = field_grid(field.steady_part(), cells_across=job.settings.grid_cells_across)
     job.state["grid"] = grid
     written = _write_map(job, grid)
 
@@ -268,7 +304,8 @@ def step_map(job: Job) -> str:
     obs = job.state["fit_tracks"].position_m
     job.add_figure(plot_mean_field(grid.x_m, grid.y_m, grid.mean_m_s, sd, frame=field.frame, support=grid.supported,
                                    data_position_m=obs),
-                   "field.png", "Posterior mean velocity and its standard deviation; hatched where the data "
+                   "field.png", "Posterior mean velocity and its standard deviation"
+                   + (" of the steady part (the tidal average)" if field.is_time_varying else "") + "; hatched where the data "
                    "hardly constrain the field (posterior variance above half the prior).", "fit")
     return f"{grid.x_m.size} × {grid.y_m.size} grid at {grid.x_m[1] - grid.x_m[0]:g} m" + (
         f"; wrote {written}" if written else "")
@@ -287,10 +324,12 @@ def _write_map(job: Job, grid: Any) -> str:
 # ----------------------------------------------------------------- 4. check
 def step_check(job: Job) -> str:
     field, s = _field(job), job.settings
-    result = check(job.state["fit_tracks"], model=field, inducing=s.family_inducing, steps=s.family_steps,
+    result = check(job.state["fit_tracks"], model=field.steady_part(), inducing=s.family_inducing, steps=s.family_steps,
                    seed=s.seed, progress=job.progress, position_error_m=s.position_error_m)
     job.state["check"] = result
     job.summary["check"] = _check_summary(result)
+    if field.is_time_varying:
+        job.summary["check"]["reading"] += " " + STEADY_PART_NOTE
 
     path = job.out / "check.json"
     atomic_write_text(path, json.dumps(plain(result), indent=1, allow_nan=False) + "\n")
@@ -386,7 +425,8 @@ def _spread_figures(job: Job) -> None:
                                        frame=frame, field=background, area_m=bed, area_label=SHELLFISH_BED,
                                        places=places, title="Fuel spill", **extra["spill"]),
                    "spread_spill.png", "Fuel spill: mean path with 50 % (shaded) and 95 % (dashed) ellipses; "
-                   "grey arrows are the fitted mean flow.", "spread")
+                   "grey arrows are the fitted mean flow" + (" averaged over the tide (the forecast itself "
+                   "uses the time-varying flow)." if job.state["field"].is_time_varying else "."), "spread")
     snaps = [plume_snapshot(plume, clock, job.state["starts"]) for clock in snapshot_clocks(plume.times_s)]
     job.add_figure(plot_plume(snaps, frame=frame, field=background, area_m=bed, area_label=SHELLFISH_BED,
                               places=places, title="Outfall plume (hourly parcels as one mixture)", **extra["outfall"]),
@@ -432,6 +472,7 @@ STEPS: tuple[tuple[str, str, Callable[[Job], str]], ...] = (
     ("fit", "fit", step_fit),
     ("calibrate", "fit", step_calibrate),
     ("map", "fit", step_map),
+    ("tide", "tide", step_tide),
     ("check", "check", step_check),
     ("physics figure", "check", figure_physics),
     ("spread", "spread", step_spread),

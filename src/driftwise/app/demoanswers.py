@@ -55,8 +55,21 @@ def demo_sites(frame: Any) -> tuple[Site, ...]:
     return tuple(Site(name, sites_in_frame(frame, polygon)) for name, polygon in DEMO_SITES_M)
 
 
+STEADY_TRANSPORT_NOTE = ("The fitted model varies with the tide, but connectivity and back-tracking here propagate "
+                         "from one start time only through a steady field, so they use the model's steady part "
+                         "(the flow averaged over the tidal cycle): the tidal excursions to and fro are left out, "
+                         "and so is any net drift they cause. The release forecasts and the skill scores use the "
+                         "full time-varying field.")
+
+
+def transport_field(field: Any) -> Any:
+    """The field the connect and backtrack steps propagate: a time-varying field's steady part (see
+    :data:`STEADY_TRANSPORT_NOTE`), a steady field itself."""
+    return field.steady_part()
+
+
 def step_connect(job: Job) -> str:
-    field, s = _field(job), job.settings
+    field, s = transport_field(_field(job)), job.settings
     sites = demo_sites(field.frame)
     times = output_times_s(s.connect_horizon_s, s.connect_every_s)
     result = connect_from_field(field, sites, times, per_site=s.connect_per_site, step_s=HOUR_S, seed=s.seed,
@@ -71,6 +84,8 @@ def step_connect(job: Job) -> str:
                    "source's material.", "connect")
     job.state["connect"] = result
     job.summary["connect"] = [connect_table(result, s)]
+    if _field(job).is_time_varying:
+        job.summary["connect"][0]["notes"].insert(0, STEADY_TRANSPORT_NOTE)
     peak = result.probability.max(-1)
     i, j = np.unravel_index(int(np.argmax(np.where(np.eye(len(sites), dtype=bool), -1.0, peak))), peak.shape)
     return (f"{len(sites)} sites × {result.per_site} releases, {format_duration(times[-1])}; strongest link "
@@ -102,19 +117,19 @@ def connect_table(result: Any, s: Any) -> dict:
 
 def simulated_find(frame: Any, start_time_s: float) -> tuple[Finds, np.ndarray, float]:
     """(the find, the true release point (2,) m in the model's frame, the true release time s): one particle
-    from LOST_AT_M through the invented bay's true flow with its K (Euler–Maruyama, 5-min steps), plus a
+    from LOST_AT_M through the invented bay's true flow (tide included, on the data's clock) with its K (Euler–Maruyama, 5-min steps), plus a
     position error of FIND_SD_M, FIND_AGE_S after ``start_time_s``."""
     scenario = DemoScenario()
     table = simulate_drifters(scenario.bay, [LOST_AT_M], duration_s=FIND_AGE_S, fix_interval_s=FIND_AGE_S,
                               diffusivity_m2_s=scenario.diffusivity_m2_s, position_error_m=FIND_SD_M,
-                              seed=FIND_SEED, substeps=int(FIND_AGE_S / 300.0))
+                              seed=FIND_SEED, substeps=int(FIND_AGE_S / 300.0), start_times_s=start_time_s)
     found_bay = table[["x_m", "y_m"]].to_numpy()[-1]
     found, truth = sites_in_frame(frame, [found_bay, LOST_AT_M])
     return Finds(found[None, :], np.array([start_time_s + FIND_AGE_S]), np.array([FIND_SD_M])), truth, start_time_s
 
 
 def step_backtrack(job: Job) -> str:
-    field, s = _field(job), job.settings
+    field, s = transport_field(_field(job)), job.settings
     finds, truth, true_time = simulated_find(field.frame, default_start_time_s(field.data_summary))
     corners = sites_in_frame(field.frame, BACKTRACK_BOX_M)
     region = (*corners.min(0), *corners.max(0))
@@ -132,6 +147,8 @@ def step_backtrack(job: Job) -> str:
     comparison = truth_comparison(result, truth, true_time)
     job.state["backtrack"] = result
     job.summary["backtrack"] = [backtrack_table(result, comparison, s)]
+    if _field(job).is_time_varying:
+        job.summary["backtrack"][0]["notes"].insert(0, STEADY_TRANSPORT_NOTE)
     return (f"{len(result.x_m) * len(result.y_m)} candidates × {len(lags)} times; most probable release "
             f"{comparison['distance_m'] / 1000:.2f} km from the truth, truth "
             f"{'inside' if comparison['truth_inside_90'] else 'outside'} the 90 % region")

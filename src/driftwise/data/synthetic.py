@@ -23,7 +23,8 @@ Analytic steady 2-D velocity fields, each a small frozen dataclass with
 :func:`simulate_drifters` integrates dx = u(x) dt + √(2K) dW by Euler–Maruyama
 (Kloeden & Platen 1992, Numerical Solution of Stochastic Differential
 Equations, §9.1) in 2-D or 3-D and adds GPS noise to the fixes; :func:`random_walk` gives
-exact Brownian tracks in 2-D or 3-D.  The invented demo bay built from these
+exact Brownian tracks in 2-D or 3-D; :func:`in_periodic_box` folds tracks in a periodic flow
+back into one period box, cutting each where it crosses a face.  The invented demo bay built from these
 pieces is :mod:`driftwise.app.bay`.
 """
 
@@ -323,6 +324,25 @@ def simulate_drifters(field, starts_m, *, duration_s: float, fix_interval_s: flo
     if frame is not None:
         table["lon"], table["lat"] = frame.to_lonlat(fixes[..., :2].reshape(-1, 2))
     return table
+
+
+def in_periodic_box(table: pd.DataFrame, box_m: float, *, min_fixes: int = 6) -> pd.DataFrame:
+    """The fixes of ``table`` folded into one period box [0, ``box_m``)^d of a periodic flow: every position
+    modulo ``box_m``, and a track cut into pieces wherever a fix lies in another period cell than the one
+    before (a particle that leaves through one face of a periodic tank enters through the opposite one; a
+    tracker sees a new particle).  Pieces get ids ``<track_id>.<k>`` (k counts pieces over the table); pieces with fewer than ``min_fixes``
+    fixes are dropped.  Row order and the other columns are kept."""
+    axes = [c for c in ("x_m", "y_m", "z_m") if c in table.columns]
+    cell = np.floor(table[axes].to_numpy() / box_m).astype(np.int64)
+    ids = table["track_id"].to_numpy()
+    new_piece = np.ones(len(table), bool)
+    new_piece[1:] = (ids[1:] != ids[:-1]) | np.any(cell[1:] != cell[:-1], axis=1)
+    piece = np.cumsum(new_piece) - 1
+    folded = table.copy()
+    folded[axes] = table[axes].to_numpy() - cell * box_m
+    folded["track_id"] = [f"{t}.{k}" for t, k in zip(ids, piece)]
+    size = np.bincount(piece)
+    return folded[size[piece] >= min_fixes].reset_index(drop=True)
 
 
 def random_walk(n_tracks: int, n_fixes: int, *, fix_interval_s: float, diffusivity_m2_s: float, seed: int,

@@ -11,6 +11,8 @@ import dataclasses
 import math
 import warnings
 
+import jax
+import jax.numpy as jnp
 import numpy as np
 from pyproj import Geod
 
@@ -19,8 +21,10 @@ from ..dynamics.supportcheck import SUPPORT_VARIANCE_FRACTION, SupportWarning
 from ..errors import InputError
 from ..units import format_length
 from .physics import SUPPORT_RATIO, divergence_posterior, vorticity_posterior
+from .tidalellipse import TidalEllipses, tidal_ellipses
+from .timewindow import TimeWindow, data_span_s, padded_rows, span_average, window_velocity
 
-__all__ = ["FieldGrid", "east_north_jacobian", "field_extent_m", "field_grid"]
+__all__ = ["FieldGrid", "east_north_jacobian", "ellipse_grid", "field_extent_m", "field_grid", "support_time_s"]
 
 
 @dataclasses.dataclass(frozen=True)
@@ -86,7 +90,7 @@ def east_north_jacobian(frame, points_m: np.ndarray, *, step_m: float = 1.0) -> 
 
 
 def field_grid(field, *, spacing_m: float | None = None, cells_across: int = MAP_CELLS,
-               max_nodes: int = 250_000) -> FieldGrid:
+               max_nodes: int = 250_000, window: TimeWindow | None = None) -> FieldGrid:
     """Sample a 2-D field on a grid over its extent (:func:`field_extent_m`).
 
     ``spacing_m`` defaults to the data's own map step (:func:`driftwise.data.datascales.map_spacing_m`:
@@ -96,7 +100,10 @@ def field_grid(field, *, spacing_m: float | None = None, cells_across: int = MAP
     and how far the farthest is from the data (``distance_to_data_m``, also kept per node).  Mean and covariance from
     ``field.predict`` (rotated to east/north, mean J m and covariance J Σ Jᵀ, for a lon/lat
     frame); divergence and vorticity from :func:`divergence_posterior` /
-    :func:`vorticity_posterior` (exact GP derivatives in the frame's metres).
+    :func:`vorticity_posterior` (exact GP derivatives in the frame's metres).  A time-varying field is taken over a
+    ``window`` (:mod:`driftwise.diagnostics.timewindow`: the field at one time, or by default its time mean over the
+    data's time span), for the velocity and the derivatives alike; its support mask is taken at the window's time (for
+    an average, the middle of the data's time span).
     """
     if field.dim != 2:
         raise InputError(f"gridded export supports 2-D fields; this model is {field.dim}-D")
@@ -114,8 +121,15 @@ def field_grid(field, *, spacing_m: float | None = None, cells_across: int = MAP
     shape = (axes[1].size, axes[0].size)
     gx, gy = np.meshgrid(*axes)
     points = np.column_stack([gx.ravel(), gy.ravel()])
-    mean, cov = field.predict(points)
-    ratio, distance = field.local_variance_ratio(points), field.distance_to_data_m(points)
+    window = window if field.is_time_varying else None
+    if field.is_time_varying:
+        window = span_average(field) if window is None else window
+        mean, cov = window_velocity(field, points, window)
+        ratio = field.local_variance_ratio(points, support_time_s(field, window))
+    else:
+        mean, cov = field.predict(points)
+        ratio = field.local_variance_ratio(points)
+    distance = field.distance_to_data_m(points)
     _warn_outside(ratio, distance)
     frame, lon, lat, components = field.frame, None, None, ("x", "y")
     if getattr(frame, "kind", "metric") == "lonlat":
@@ -123,7 +137,7 @@ def field_grid(field, *, spacing_m: float | None = None, cells_across: int = MAP
         mean, cov = np.einsum("nab,nb->na", jac, mean), np.einsum("nab,nbc,ndc->nad", jac, cov, jac)
         lon, lat = (v.reshape(shape) for v in frame.to_lonlat(points))
         components = ("eastward", "northward")
-    div, vort = divergence_posterior(field, points), vorticity_posterior(field, points)
+    div, vort = (posterior(field, points, window=window) for posterior in (divergence_posterior, vorticity_posterior))
     std = np.sqrt(np.clip(np.diagonal(cov, axis1=1, axis2=2), 0.0, None))
     return FieldGrid(axes[0], axes[1], components, mean.reshape(*shape, 2), std.reshape(*shape, 2),
                      div.mean.reshape(shape), div.std.reshape(shape), vort.mean.reshape(shape),
@@ -140,3 +154,43 @@ def _warn_outside(ratio: np.ndarray, distance_m: np.ndarray) -> None:
                       f"prior velocity variance there), up to {format_length(float(distance_m[outside].max()))} from "
                       "the nearest data: their values are the prior's; the variables variance_ratio, supported and "
                       "distance_to_data_m mark them", SupportWarning, stacklevel=3)
+
+
+def support_time_s(field, window: TimeWindow) -> float:
+    """The time (s on the track file's axis) at which a window's support mask is taken: the time of a window at
+    one time (its weighted mean time), the middle of the data's time span for any other window."""
+    if window.parts == (None,):
+        weights = np.asarray(window.weights[0])
+        return float(np.asarray(window.times_s[0]) @ weights / weights.sum())
+    start, end = data_span_s(field)
+    return 0.5 * (start + end)
+
+
+def ellipse_grid(field, grid: FieldGrid) -> dict[str, TidalEllipses]:
+    """Tidal current ellipses of every constituent of a time-varying ``field`` at the nodes of ``grid``:
+    {constituent: TidalEllipses of (n_y · n_x,) values, row-major as the grid}.
+
+    The amplitudes (a_u, a_v, b_u, b_v) and their 4 × 4 posterior covariance come from
+    ``field.harmonic_posterior``; in a lon/lat frame both amplitude vectors are rotated to true east/north with
+    the same Jacobian J as the velocity (mean (J a, J b), covariance (J ⊕ J) Σ (J ⊕ J)ᵀ), so the inclination is
+    counter-clockwise from true east.  Then :func:`~driftwise.diagnostics.tidalellipse.tidal_ellipses`."""
+    gx, gy = np.meshgrid(grid.x_m, grid.y_m)
+    points = np.column_stack([gx.ravel(), gy.ravel()])
+    out = {}
+    for name in field.constituents:
+        mean, cov = _harmonic_batch(field, points, name)
+        if grid.lon_deg is not None:
+            jac = east_north_jacobian(grid.frame, points)
+            both = np.zeros((points.shape[0], 4, 4))
+            both[:, :2, :2], both[:, 2:, 2:] = jac, jac
+            mean, cov = np.einsum("nab,nb->na", both, mean), np.einsum("nab,nbc,ndc->nad", both, cov, both)
+        out[name] = tidal_ellipses(mean, cov)
+    return out
+
+
+def _harmonic_batch(field, points: np.ndarray, constituent: str) -> tuple[np.ndarray, np.ndarray]:
+    """``field.harmonic_posterior`` at every row of ``points`` (n, 2): means (n, 4) and covariances (n, 4, 4)."""
+    x = jnp.asarray(padded_rows(points))
+    mean, cov = jax.lax.map(lambda p: field.harmonic_posterior(p, constituent), x, batch_size=256)
+    n = points.shape[0]
+    return np.asarray(mean)[:n], np.asarray(cov)[:n]

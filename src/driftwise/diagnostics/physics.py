@@ -39,6 +39,7 @@ import numpy as np
 from scipy import stats
 
 from ..errors import InputError
+from .timewindow import TimeWindow, padded_rows, window_cov, window_mean
 
 __all__ = [
     "DerivativePosterior",
@@ -81,10 +82,16 @@ def _vorticity_weights(d: int) -> np.ndarray:
     return w
 
 
-def _functional_moments(field, x: jax.Array, weights: jax.Array, part: str | None):
-    """Posterior mean (k,) and covariance (k, k) of L v at one point x (d,), in s⁻¹ and s⁻²."""
-    jac = jax.jacfwd(lambda p: field.mean_at(p, part))(x)                         # (d, d): [i, a]
-    cov_fn = lambda p, q: field.cov_between(p, q, part, part)                     # noqa: E731
+def _functional_moments(field, x: jax.Array, weights: jax.Array, part: str | None, window: TimeWindow | None):
+    """Posterior mean (k,) and covariance (k, k) of L v at one point x (d,), in s⁻¹ and s⁻² (of the time
+    ``window``'s combination of a time-varying field, :mod:`driftwise.diagnostics.timewindow`)."""
+    if window is None:
+        mean_fn = lambda p: field.mean_at(p, part)                                # noqa: E731
+        cov_fn = lambda p, q: field.cov_between(p, q, part, part)                 # noqa: E731
+    else:
+        mean_fn = lambda p: window_mean(field, p, window)                         # noqa: E731
+        cov_fn = lambda p, q: window_cov(field, p, q, window)                     # noqa: E731
+    jac = jax.jacfwd(mean_fn)(x)                                                  # (d, d): [i, a]
     mixed = jax.jacfwd(jax.jacfwd(cov_fn, argnums=0), argnums=1)(x, x)            # (d, d, d, d): [i, j, a, b]
     mean = jnp.einsum("kia,ia->k", weights, jac)
     cov = jnp.einsum("kia,ljb,ijab->kl", weights, weights, mixed)
@@ -92,8 +99,8 @@ def _functional_moments(field, x: jax.Array, weights: jax.Array, part: str | Non
 
 
 @functools.partial(jax.jit, static_argnames=("part",))
-def _functional_batch(field, points: jax.Array, weights: jax.Array, part: str | None):
-    one = lambda x: _functional_moments(field, x, weights, part)                   # noqa: E731
+def _functional_batch(field, points: jax.Array, weights: jax.Array, part: str | None, window: TimeWindow | None):
+    one = lambda x: _functional_moments(field, x, weights, part, window)           # noqa: E731
     return jax.lax.map(one, points, batch_size=CHUNK)
 
 
@@ -142,43 +149,56 @@ def zero_by_construction(field, quantity: str, part: str | None = None) -> str |
     return None
 
 
-def _derivative_posterior(field, points, quantity: str, weights: np.ndarray, part: str | None) -> DerivativePosterior:
+def _derivative_posterior(field, points, quantity: str, weights: np.ndarray, part: str | None,
+                          window: TimeWindow | None) -> DerivativePosterior:
     x = _check_points(points, field.dim)
+    window = _check_window(field, part, window)
     squeeze = weights.shape[0] == 1
     shape = (x.shape[0],) if squeeze else (x.shape[0], weights.shape[0])
     reason = zero_by_construction(field, quantity, part)
     if reason is not None or x.shape[0] == 0:
         return DerivativePosterior(quantity, np.zeros(shape), np.zeros(shape), reason)
-    mean, cov = _functional_batch(field, jnp.asarray(_padded(x)), jnp.asarray(weights), part)
+    mean, cov = _functional_batch(field, jnp.asarray(padded_rows(x)), jnp.asarray(weights), part, window)
     n = x.shape[0]
     mean, var = np.asarray(mean)[:n], np.asarray(jnp.diagonal(cov, axis1=1, axis2=2))[:n]
     return DerivativePosterior(quantity, mean.reshape(shape), np.clip(var, 0.0, None).reshape(shape), None)
 
 
-def _padded(x: np.ndarray) -> np.ndarray:
-    """Rows padded (with the first row) to a power of two ≤ ``CHUNK`` or a multiple of it: few recompilations."""
-    n = x.shape[0]
-    size = max(8, 1 << (n - 1).bit_length()) if n <= CHUNK else CHUNK * math.ceil(n / CHUNK)
-    return np.concatenate([x, np.repeat(x[:1], size - n, axis=0)])
+def _check_window(field, part: str | None, window: TimeWindow | None) -> TimeWindow | None:
+    """The window a derivative posterior uses: None for a steady field (which has no time), required for a
+    time-varying one, and not combined with a Helmholtz ``part``."""
+    if not field.is_time_varying:
+        return None
+    if window is None:
+        raise InputError("this model changes in time: its divergence and vorticity need a time or a time average "
+                         "(diagnostics.timewindow.at_time or span_average)")
+    if part is not None:
+        raise InputError(f"part {part!r}: the Helmholtz parts of a time-varying model are not available averaged "
+                         "over time; test the whole field")
+    return window
 
 
-def divergence_posterior(field, points, part: str | None = None) -> DerivativePosterior:
+def divergence_posterior(field, points, part: str | None = None, *,
+                         window: TimeWindow | None = None) -> DerivativePosterior:
     """Posterior of ∇·v at ``points`` (n, d) in m: mean (n,) s⁻¹, var (n,) s⁻², z-scores.
 
     ``part`` ∈ {None, "divergence_free", "curl_free"} selects a part of a Helmholtz model.
     For a divergence-free model (or part) the result says so (``reason``) instead of
-    reporting round-off.
+    reporting round-off.  A time-varying field needs a ``window`` (:mod:`driftwise.diagnostics.timewindow`:
+    at one time, or averaged over its data's time span); a steady one ignores it.
     """
-    return _derivative_posterior(field, points, "divergence", _divergence_weights(field.dim), part)
+    return _derivative_posterior(field, points, "divergence", _divergence_weights(field.dim), part, window)
 
 
-def vorticity_posterior(field, points, part: str | None = None) -> DerivativePosterior:
+def vorticity_posterior(field, points, part: str | None = None, *,
+                        window: TimeWindow | None = None) -> DerivativePosterior:
     """Posterior of the vorticity at ``points`` (n, d) in m, s⁻¹.
 
     2-D: the scalar ω = ∂v/∂x − ∂u/∂y, mean and var (n,); 3-D: the vector ∇×v, (n, 3)
     (marginal variance of each component).  Zero by construction for a curl-free model or part.
+    ``window`` as for :func:`divergence_posterior`.
     """
-    return _derivative_posterior(field, points, "vorticity", _vorticity_weights(field.dim), part)
+    return _derivative_posterior(field, points, "vorticity", _vorticity_weights(field.dim), part, window)
 
 
 def _check_points(points, dim: int) -> np.ndarray:

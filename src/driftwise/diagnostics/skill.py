@@ -300,7 +300,7 @@ def score(field, holdout_tracks, *, horizons_s=DEFAULT_HORIZONS_S, method: str =
     holdout_tracks = in_model_frame(holdout_tracks, frame)
     fit_tracks = None if fit_tracks is None else in_model_frame(fit_tracks, frame)
     win = forecast_windows(holdout_tracks, horizons, step_s=step_s, max_starts=max_starts)
-    _warn_unsupported_starts(field, win.start_m)
+    _warn_unsupported_starts(field, win)
     means, covs = forecast_moments(field, win, method=method, position_error_m=sigma, step_s=integration_step_s)
     outside = _outside_support_fraction(field, win, means, horizons)
     variance = None if fit_tracks is None else baseline_error_variance_m2(fit_tracks, horizons, max_starts=max_starts)
@@ -315,9 +315,13 @@ def score(field, holdout_tracks, *, horizons_s=DEFAULT_HORIZONS_S, method: str =
         outside_support_fraction=outside)
 
 
-def _warn_unsupported_starts(field, start_m: np.ndarray) -> None:
-    """Before any forecast runs: a SupportWarning when forecast starts lie outside the model's data support."""
-    ratio, distance = field.local_variance_ratio(start_m), field.distance_to_data_m(start_m)
+def _warn_unsupported_starts(field, win: Windows) -> None:
+    """Before any forecast runs: a SupportWarning when forecast starts lie outside the model's data support
+    (a time-varying field's support at the starts' own times)."""
+    start_m = win.start_m
+    ratio = (field.local_variance_ratio(start_m, win.start_time_s) if getattr(field, "is_time_varying", False)
+             else field.local_variance_ratio(start_m))
+    distance = field.distance_to_data_m(start_m)
     outside = ratio > SUPPORT_VARIANCE_FRACTION
     if outside.any():
         warnings.warn(f"score: {int(outside.sum())} of {outside.size} forecast starts lie outside the model's data "
@@ -331,7 +335,9 @@ def _outside_support_fraction(field, win: Windows, means: np.ndarray, horizons: 
     """Per horizon, the share of scored pairs whose forecast mean left the data support by then
     (:func:`driftwise.dynamics.supportcheck.path_support`, start included)."""
     path = np.concatenate([win.start_m[:, None], means], axis=1)
-    outside = path_support(field, path).outside_support[:, 1:]
+    times = (win.start_time_s[:, None] + np.concatenate([[0.0], win.times_s])[None, :]
+             if getattr(field, "is_time_varying", False) else None)      # absolute times along each path
+    outside = path_support(field, path, times).outside_support[:, 1:]
     shares = []
     for k in np.searchsorted(win.times_s, horizons):
         valid = win.valid[:, k]

@@ -52,7 +52,9 @@ from ..gp.schedule import Schedule
 from ..gp.training import fit, fit_summary
 from ..gp.variational import exact_q
 from ..progress import Stopwatch
+from ..units import format_duration
 from . import physics
+from .timewindow import TimeWindow, data_span_s, span_average
 
 __all__ = ["FAMILIES", "CheckMaps", "check", "constraint_tests", "evidence_reading", "families_distinguishable",
            "finer_maps",
@@ -257,11 +259,18 @@ def _condition_on(field, observations):
 
 
 def _physics_model(model, helmholtz_field, observations):
-    """The model whose derivative posteriors are tested, and a note on where it came from."""
+    """The model whose derivative posteriors are tested, a note on where it came from, and the time window they
+    are taken over (None for a steady model; for a time-varying one the mean over its data's time span)."""
     if model is None:
         return _condition_on(helmholtz_field, observations), ("helmholtz kernel: hyperparameters fitted to the "
-                                                             "training tracks, q conditioned on all tracks")
-    return model, f"the given model ({model.kernel_family} kernel)"
+                                                             "training tracks, q conditioned on all tracks"), None
+    if not model.is_time_varying:
+        return model, f"the given model ({model.kernel_family} kernel)", None
+    start, end = data_span_s(model)
+    return model, (f"the given time-varying model ({model.kernel_family} kernel, parts "
+                   f"{', '.join(['steady', *model.constituents] + (['slow'] if model.params.kernel.has_slow else []))}"
+                   f"); divergence and vorticity averaged over its data's time span ({format_duration(end - start)}), "
+                   "the Helmholtz split from the steady helmholtz refit"), span_average(model, start, end)
 
 
 def verdict_spacing_m(field, position_m, *, min_cells: int = 50, max_cells: int = 2000) -> float:
@@ -284,9 +293,11 @@ def verdict_spacing_m(field, position_m, *, min_cells: int = 50, max_cells: int 
 
 
 def constraint_tests(field, position_m, *, alpha: float = physics.ALPHA, grid: physics.HullGrid | None = None,
-                     fallback=None) -> dict:
+                     fallback=None, window: TimeWindow | None = None) -> dict:
     """The verdict's area tests for one field: a grid in the hull of ``position_m`` (n, d) m (step
     :func:`verdict_spacing_m` unless ``grid`` is given), divergence and vorticity posteriors on it, BH.
+    A time-varying ``field`` is tested over the time ``window`` (:mod:`driftwise.diagnostics.timewindow`; the
+    verdict uses the mean over the data's time span); the steady ``fallback`` ignores it.
 
     A quantity ``field`` holds zero by construction is taken from ``fallback`` (a model that can
     represent it) when given.  Returns {"grid", "posteriors": {q: DerivativePosterior},
@@ -298,9 +309,9 @@ def constraint_tests(field, position_m, *, alpha: float = physics.ALPHA, grid: p
     for quantity, posterior in (("divergence", physics.divergence_posterior),
                                 ("vorticity", physics.vorticity_posterior)):
         fields[quantity] = field
-        posts[quantity] = posterior(field, grid.points_m)
+        posts[quantity] = posterior(field, grid.points_m, window=window)
         if posts[quantity].zero_by_construction and fallback is not None:
-            fields[quantity], posts[quantity] = fallback, posterior(fallback, grid.points_m)
+            fields[quantity], posts[quantity] = fallback, posterior(fallback, grid.points_m, window=window)
     return {"grid": grid, "posteriors": posts, "fields": fields,
             "significance": {q: physics.significance(p, alpha=alpha) for q, p in posts.items()}}
 
@@ -316,14 +327,15 @@ class CheckMaps:
     fields: dict
     frame: object
     position_m: np.ndarray     # observation midpoints (n, d) m: the data hull
+    window: TimeWindow | None = None   # the time window of a time-varying tested model
 
 
 def finer_maps(maps: CheckMaps, *, factor: int = 3) -> CheckMaps:
     """The same fields and test results on a grid ``factor`` times finer (for display only: the
     significance, and so the outlined |z| cut-off, stays that of the test grid)."""
     grid = physics.hull_grid(maps.position_m, spacing_m=maps.grid.spacing_m / factor)
-    posts = {"divergence": physics.divergence_posterior(maps.fields["divergence"], grid.points_m),
-             "vorticity": physics.vorticity_posterior(maps.fields["vorticity"], grid.points_m)}
+    posts = {"divergence": physics.divergence_posterior(maps.fields["divergence"], grid.points_m, window=maps.window),
+             "vorticity": physics.vorticity_posterior(maps.fields["vorticity"], grid.points_m, window=maps.window)}
     return dataclasses.replace(maps, grid=grid, posteriors=posts)
 
 
@@ -367,9 +379,10 @@ def run_check(tracks, *, model=None, holdout_fraction: float = 0.2, seed: int = 
     with clock("fit_families"):
         fields, table = _fit_families(train, families=FAMILIES, fit_options=options, holdout_obs=held_obs)
     with clock("constraint_tests"):
-        tested, source = _physics_model(model, fields["helmholtz"], every)
-        helmholtz = tested if tested.kernel_family == "helmholtz" else _condition_on(fields["helmholtz"], every)
-        tests = constraint_tests(tested, every.position_m, alpha=alpha, fallback=helmholtz)
+        tested, source, window = _physics_model(model, fields["helmholtz"], every)
+        steady_helmholtz = tested.kernel_family == "helmholtz" and not tested.is_time_varying
+        helmholtz = tested if steady_helmholtz else _condition_on(fields["helmholtz"], every)
+        tests = constraint_tests(tested, every.position_m, alpha=alpha, fallback=helmholtz, window=window)
         grid, sig = tests["grid"], tests["significance"]
         points = grid.points_m
         split = physics.helmholtz_split(helmholtz, points)
@@ -387,10 +400,14 @@ def run_check(tracks, *, model=None, holdout_fraction: float = 0.2, seed: int = 
         "background": background,
         "verdict": decide(sig["divergence"], sig["vorticity"], split, table, background),
         "tested_model": source,
+        "time_window": None if window is None else {
+            "kind": "mean over the data's time span", "span_s": list(data_span_s(tested)),
+            "definition": "(1/T) integral of the posterior over the span: steady part as is, each constituent's "
+                          "cos/sin amplitudes weighted by their exact time means, slow part by Gauss-Legendre"},
         "grid": {"n_cells": int(points.shape[0]), "spacing_m": grid.spacing_m},
         "n_tracks": int(tracks.n_tracks), "holdout_track_ids": [str(t) for t in held.unique_ids],
         "seed": seed, "fit_options": {"inducing": inducing, "seed": seed, "position_error_m": position_error_m,
                                        "steps": steps},
         "position_error_m": float(position_error_m), "position_error_source": error_source,
     }
-    return summary, CheckMaps(grid, tests["posteriors"], sig, tests["fields"], tracks.frame, every.position_m)
+    return summary, CheckMaps(grid, tests["posteriors"], sig, tests["fields"], tracks.frame, every.position_m, window)

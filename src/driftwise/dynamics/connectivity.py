@@ -50,6 +50,7 @@ __all__ = ["Connectivity", "connect", "connect_ensemble", "connect_from_field", 
 
 DEFAULT_THRESHOLD = 0.01
 BATCH = 512                       # releases propagated and scored at once (bounds memory)
+CULL_SD = 9.0                     # a site farther than this many s.d. (per axis) from a release's mean scores 0
 ENSEMBLE_BATCH = 4096             # particles simulated at once
 SUPPORT_CHUNK = 2048              # points per data-support evaluation (each holds an (M·d)-wide row)
 _FLOATS_PER_RELEASE_TIME = 6 + 8  # mean, covariance, plus the polygon-mass temporaries per vertex (× k)
@@ -130,8 +131,20 @@ def _seed_all(sites: tuple[Site, ...], per_site: int, seed: int) -> tuple[np.nda
 
 
 def _score_batch(means: np.ndarray, covs: np.ndarray, sites: tuple[Site, ...]) -> np.ndarray:
-    """Probabilities (B, S, T) of releases (B, T) being inside each site."""
-    return np.stack([probability_inside(means, covs, s.polygon_m) for s in sites], axis=1)
+    """Probabilities (B, S, T) of releases (B, T) being inside each site.
+
+    Only (release, time) pairs whose mean lies within CULL_SD standard deviations of the site's bounding box on
+    both axes are scored exactly; for the others P(inside) ≤ P(|x_a − m_a| > CULL_SD σ_a) = 2 Φ(−CULL_SD) ≈ 2·10⁻¹⁹
+    on an axis a where the box is that far, below spread.ROUNDING_FLOOR, i.e. the value probability_inside
+    returns (0).  Far sites are most pairs of a many-site run, and the exact polygon mass is its dominant cost."""
+    m, sd = means[..., :2], np.sqrt(np.maximum(np.diagonal(covs[..., :2, :2], axis1=-2, axis2=-1), 0.0))
+    out = np.zeros((means.shape[0], len(sites)) + means.shape[1:-1])
+    for j, site in enumerate(sites):
+        gap = np.maximum(site.polygon_m.min(0) - m, m - site.polygon_m.max(0))        # > 0: outside on that axis
+        near = np.all(gap <= CULL_SD * sd, axis=-1)
+        if near.any():
+            out[:, j][near] = probability_inside(m[near], covs[near][..., :2, :2], site.polygon_m)
+    return out
 
 
 def _outside(support: Callable | None, means: np.ndarray, times_s: np.ndarray) -> np.ndarray | None:

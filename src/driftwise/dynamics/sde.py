@@ -43,7 +43,7 @@ import numpy as np
 
 from ..errors import InputError
 
-__all__ = ["SDE", "PointPosterior", "sde_from_field", "split_for_jit", "join_from_jit", "field_drift",
+__all__ = ["SDE", "PointPosterior", "TimedPointPosterior", "sde_from_field", "split_for_jit", "join_from_jit", "field_drift",
            "field_sde", "velocity_memory_weight", "transport_sde", "timed_field_sde"]
 
 
@@ -137,6 +137,73 @@ class PointPosterior:
         # Σ_k λ_k g_ak g_bk as a multiply-and-sum: under vmap it fuses instead of a batch of tiny products
         cov = self.kernel.block(x, x) - jnp.sum((g * self.weights)[:, None, :] * g[None, :, :], axis=-1)
         return 0.5 * (cov + cov.T)
+
+
+@jax.tree_util.register_dataclass
+@dataclass(frozen=True)
+class TimedPointPosterior:
+    """:class:`PointPosterior` for a time-varying field (:mod:`driftwise.gp.temporal`), with the time-varying
+    field contract the time SDE uses (``mean_at(x, t_s=t)``, ``cov_between(x, y, t_x_s=, t_y_s=)``, whole field).
+
+    With C(x, t) = Cov[v(x, t), u] (d, F), not whitened (all blocks' kernels in one pass,
+    ``TemporalKernel.cross_covariance``), L the block-diagonal Cholesky factor of K_uu and the same
+    eigendecomposition I − S Sᵀ = U diag(λ) Uᵀ:
+
+        mean(x, t)              = C(x, t) α,                        α = L^{−T} m
+        cov((x, t_x), (y, t_y)) = K((x, t_x), (y, t_y)) − G_x diag(λ) G_yᵀ,   G = C B,  B = L^{−T} U
+
+    so a point costs the kernel rows and one (d × F)·(F × F) product instead of a triangular solve per block
+    and per call; values equal ``FlowField.mean_at`` / ``cov_between`` to ~1e-12 relative
+    (tests/dynamics/test_sde.py).  Times are absolute (s on the model's time axis).
+    """
+
+    kernel: Any
+    inducing_m: jax.Array
+    slow_inducing_m: jax.Array | None
+    slow_inducing_time_s: jax.Array | None
+    alpha: jax.Array
+    projection: jax.Array
+    weights: jax.Array
+    is_time_varying = True
+
+    @classmethod
+    def from_field(cls, field: Any) -> TimedPointPosterior:
+        """Precompute α, B and λ from a time-varying `FlowField` (one triangular inverse per block, one eigh)."""
+        params = field.params
+        blocks = [field.inducing_chol[k] for k, _ in params.kernel.layout]
+        inv_t = jax.scipy.linalg.block_diag(*[
+            jax.scipy.linalg.solve_triangular(chol, jnp.eye(chol.shape[0], dtype=chol.dtype), lower=True).T
+            for chol in blocks])
+        s = params.q_sqrt
+        weights, vectors = jnp.linalg.eigh(jnp.eye(s.shape[0], dtype=s.dtype) - s @ s.T)
+        return cls(params.kernel, params.inducing_m, params.slow_inducing_m, params.slow_inducing_time_s,
+                   inv_t @ params.q_mean, inv_t @ vectors, weights)
+
+    def _cross(self, x: jax.Array, t_s: Any) -> jax.Array:
+        t_rel = jnp.asarray(t_s, dtype=jnp.float64) - self.kernel.time_origin_s
+        return self.kernel.cross_covariance(self.inducing_m, self.slow_inducing_m, self.slow_inducing_time_s,
+                                            x[None, :], t_rel[None])[0]
+
+    def mean_at(self, x: jax.Array, part: None = None, *, t_s: Any) -> jax.Array:
+        """Posterior mean velocity at x (d,) m and time t (s) → (d,) m/s (whole field only)."""
+        _whole_field_only(part)
+        return self._cross(x, t_s) @ self.alpha
+
+    def cov_between(self, x: jax.Array, y: jax.Array, part_x: None = None, part_y: None = None, *, t_x_s: Any,
+                    t_y_s: Any) -> jax.Array:
+        """Posterior Cov[v(x, t_x), v(y, t_y)] (d, d) m²/s² (whole field only)."""
+        _whole_field_only(part_x), _whole_field_only(part_y)
+        g_x = self._cross(x, t_x_s) @ self.projection
+        g_y = g_x if (y is x and t_y_s is t_x_s) else self._cross(y, t_y_s) @ self.projection
+        origin = self.kernel.time_origin_s
+        prior = self.kernel.prior_cross(None, x, jnp.asarray(t_x_s, jnp.float64) - origin, None, y,
+                                        jnp.asarray(t_y_s, jnp.float64) - origin)
+        return prior - jnp.sum((g_x * self.weights)[:, None, :] * g_y[None, :, :], axis=-1)
+
+
+def _whole_field_only(part: Any) -> None:
+    if part is not None:
+        raise InputError(f"a forecast's posterior gives the whole field only, not part {part!r}")
 
 
 def field_drift(posterior: PointPosterior, x: jax.Array) -> jax.Array:
@@ -242,7 +309,8 @@ def sde_from_field(
     shapes share one compiled propagator.
     A field with ``is_time_varying`` True gives the time SDE of the module docstring
     (:func:`timed_field_sde`, ``with_time``): μ(x, t) = field.mean_at(x, t_s=t) and
-    Σ(x, t) = field.cov_between(x, x, t_x_s=t, t_y_s=t), evaluated by the field itself.
+    Σ(x, t) = field.cov_between(x, x, t_x_s=t, t_y_s=t), evaluated for a FlowField through
+    `TimedPointPosterior` (precomputed, same values) and by any other time-varying field itself.
     Raises InputError if K or τ is negative or not finite.
     """
     k = field.diffusivity_m2_s if diffusivity_m2_s is None else diffusivity_m2_s
@@ -250,7 +318,8 @@ def sde_from_field(
     k = _check_nonnegative(k, "diffusivity_m2_s")
     tau = _check_nonnegative(0.0 if tau is None else tau, "decorrelation_time_s")
     if getattr(field, "is_time_varying", False):
-        return timed_field_sde(field, k, tau, bool(velocity_memory))
+        timed = TimedPointPosterior.from_field(field) if hasattr(field, "inducing_chol") else field
+        return timed_field_sde(timed, k, tau, bool(velocity_memory))
     return field_sde(PointPosterior.from_field(field), k, tau, bool(velocity_memory))
 
 

@@ -125,7 +125,10 @@ class FixedStepRK4:
 
     An interval of length Δt uses n = min(``substeps``, ⌈Δt/``step_s``⌉) equal steps of Δt/n and
     ``substeps`` − n steps of length zero, all inside one fixed-length scan.  Global error O(h⁴).
-    ``step_s`` is traced data, ``substeps`` static (it sets the scan length).
+    ``step_s`` is traced data, ``substeps`` static (it sets the scan length).  Each step is rematerialised
+    in reverse mode (``jax.checkpoint``): the backward pass keeps only the state between steps and recomputes
+    the four stages, instead of stacking every stage's kernel intermediates over the scan (same values; the
+    saving is in DEVELOPERS.md's benchmark record).
     """
 
     step_s: float = 900.0
@@ -134,11 +137,12 @@ class FixedStepRK4:
     def integrate(self, f: Callable, y0: jax.Array, times_s: jax.Array) -> jax.Array:
         """States (T, n) at times_s (T,) for y' = f(y), y(times_s[0]) = y0."""
         slots = jnp.arange(self.substeps)
+        step = jax.checkpoint(partial(rk4_step, f))
 
         def interval(y, span):
             count = jnp.clip(jnp.ceil(span / self.step_s * (1.0 - 1e-12)), 1, self.substeps)
             hs = jnp.where(slots < count, span / count, 0.0)
-            y = jax.lax.scan(lambda state, h: (rk4_step(f, state, h), None), y, hs)[0]
+            y = jax.lax.scan(lambda state, h: (step(state, h), None), y, hs)[0]
             return y, y
 
         _, ys = jax.lax.scan(interval, y0, jnp.diff(times_s))
@@ -158,7 +162,8 @@ class ParamPosterior:
 
     With L_Z the inducing Cholesky factor and q(w) = N(m, S Sᵀ) (Titsias 2009; Hensman et al. 2013):
         mean(x) = K(x, Z) α,   α = L_Z^{−T} m
-        cov(x)  = K(x, x) − (K(x, Z) W)(K(x, Z) W)ᵀ + (K(x, Z) W S)(K(x, Z) W S)ᵀ,   W = L_Z^{−T}
+        cov(x)  = K(x, x) − K(x, Z) G K(x, Z)ᵀ,   G = W Wᵀ − (W S)(W S)ᵀ,   W = L_Z^{−T}
+    G (M·d × M·d) is formed once per parameter value, so a point costs one (d × M·d)(M·d × M·d) product.
     Same values as FlowField.mean_at / cov_between(x, x); unlike PointPosterior (eigh of I − SSᵀ,
     whose gradient is undefined at repeated eigenvalues, e.g. at the prior) it has finite gradients
     everywhere.  ``tag`` is static and tells this pytree apart from PointPosterior under jit.
@@ -167,17 +172,18 @@ class ParamPosterior:
     kernel: Any
     inducing_m: jax.Array
     alpha: jax.Array
-    whiten: jax.Array
-    whiten_sqrt: jax.Array
+    cov_weight: jax.Array
     tag: str = dataclasses.field(default="param-posterior", metadata=dict(static=True))
 
     @classmethod
     def from_params(cls, params: FieldParams, *, jitter_multiple: float) -> "ParamPosterior":
-        """Build from FieldParams (one Cholesky, one triangular inverse)."""
+        """Build from FieldParams (one Cholesky, one triangular inverse, two (M·d)³ products)."""
         chol = inducing_cholesky(params, jitter_multiple=jitter_multiple)
         eye = jnp.eye(chol.shape[0], dtype=chol.dtype)
         whiten = solve_triangular(chol, eye, lower=True).T
-        return cls(params.kernel, params.inducing_m, whiten @ params.q_mean, whiten, whiten @ params.q_sqrt)
+        spread = whiten @ params.q_sqrt
+        weight = whiten @ whiten.T - spread @ spread.T
+        return cls(params.kernel, params.inducing_m, whiten @ params.q_mean, 0.5 * (weight + weight.T))
 
     def mean_at(self, x: jax.Array) -> jax.Array:
         """Posterior mean velocity at x (d,) m → (d,) m/s."""
@@ -186,8 +192,7 @@ class ParamPosterior:
     def cov_at(self, x: jax.Array) -> jax.Array:
         """Posterior velocity covariance at x (d,) m → (d, d) m²/s², symmetrised."""
         kxz = self.kernel.gram_matrix(x[None, :], self.inducing_m)
-        a, b = kxz @ self.whiten, kxz @ self.whiten_sqrt
-        cov = self.kernel.block(x, x) - a @ a.T + b @ b.T
+        cov = self.kernel.block(x, x) - kxz @ self.cov_weight @ kxz.T
         return 0.5 * (cov + cov.T)
 
 

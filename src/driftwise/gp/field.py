@@ -224,6 +224,24 @@ class FlowField:
             metadata_json=metadata,
         )
 
+    def steady_part(self) -> FlowField:
+        """The steady part v̄(x) of a time-varying field as a steady field (a steady field returns itself).
+
+        The whitened inducing values of v̄ come first in q (block by block), and S is lower triangular, so their
+        marginal is N(m₁, S₁₁S₁₁ᵀ) with m₁, S₁₁ the first M·d entries: the steady kernel (with its background), Z
+        and that marginal give the same posterior as ``part="steady"`` (the time average of the harmonics is 0).
+        """
+        if not self.is_time_varying:
+            return self
+        p, size = self.params, self.params.n_inducing * self.dim
+        params = FieldParams(p.kernel.steady, p.inducing_m, p.q_mean[:size], p.q_sqrt_raw[:size, :size],
+                             p.log_diffusivity_m2_s, p.log_noise_floor_m_s)
+        meta = json.loads(self.metadata_json)
+        return FlowField.from_params(params, frame=meta["frame"], data_summary=meta["data_summary"],
+                                     decorrelation_time_s=self.decorrelation_time_s,
+                                     position_error_m=self.position_error_m, fit_info=meta.get("fit"),
+                                     jitter_multiple=self.jitter_multiple)
+
     # ----- metadata -------------------------------------------------------------------
     @property
     def dim(self) -> int:

@@ -197,11 +197,26 @@ class TemporalKernel:
                 columns.append(jnp.zeros((n, d, size), dtype=x.dtype))
                 continue
             if k not in whitened:
-                kernel = _piece_kernel(self.spatial_kernels[k], piece)
-                cross = (self._slow_gram(kernel, x, t_rel, slow_z, slow_t) if kind == SLOW
-                         else kernel.gram_matrix(x, z))
+                cross = self._block_cross(_piece_kernel(self.spatial_kernels[k], piece), kind, z, slow_z, slow_t,
+                                          x, t_rel)
                 whitened[k] = solve_triangular(chols[k], cross.T, lower=True).T.reshape(n, d, size)
             columns.append(weight[:, None, None] * whitened[k])
+        return jnp.concatenate(columns, axis=-1)
+
+    def _block_cross(self, kernel, kind: str, z, slow_z, slow_t, x, t_rel) -> jax.Array:
+        """Cov[process of one Cholesky block at (x_n, t_n), its inducing values], unweighted: (n·d, M_k·d)."""
+        return self._slow_gram(kernel, x, t_rel, slow_z, slow_t) if kind == SLOW else kernel.gram_matrix(x, z)
+
+    def cross_covariance(self, z, slow_z, slow_t, x: jax.Array, t_rel: jax.Array) -> jax.Array:
+        """Cov[v(x_n, t_n), u] of the whole field, not whitened: x (n, d) m, t − t₀ (n,) s → (n, d, F), every
+        block's kernel evaluated once (a constituent's cos and sin columns share K_c(x, Z))."""
+        n, d = x.shape
+        grams, columns = {}, []
+        for (k, kind), weight in zip(self.layout, self.weights(None, t_rel)):
+            if k not in grams:
+                cross = self._block_cross(self.spatial_kernels[k], kind, z, slow_z, slow_t, x, t_rel)
+                grams[k] = cross.reshape(n, d, -1)
+            columns.append(weight[:, None, None] * grams[k])
         return jnp.concatenate(columns, axis=-1)
 
     def prior_cross(self, part_x, x, t_x, part_y, y, t_y) -> jax.Array:

@@ -24,9 +24,10 @@ Keys read (all optional unless stated)::
                "verdict": {"divergence_free": bool, "curl_free": bool, "reasons": [str]}, "reading": str}
     spread:   [{"name", "description", "method", "columns": [str], "rows": [[value]], "notes": [str],
                "formats": [None | "probability" | "degrees" | "metres" | "hours"] (per column)}]
+    tide, connect, backtrack:  tables as for spread
     skill:    {"horizons_s", "n_pairs", "separation_m", "skill", "coverage_50", "coverage_95", "log_score",
                "baselines": {name: {same keys}}}
-    figures:  [{"path", "caption", "section" (data|fit|check|spread|skill)}]
+    figures:  [{"path", "caption", "section" (data|fit|tide|check|spread|connect|backtrack|skill)}]
     files:    [{"path", "description"}]
     warnings: [str];  missing: [{"section", "reason"}];  caution: str (default cli.CAUTION)
 
@@ -48,8 +49,9 @@ from ..files import CAUTION, atomic_write_text
 from ..units import FORMAT_BY_UNIT
 from ..version import __version__
 
-SECTIONS = ("data", "fit", "check", "spread", "connect", "backtrack", "skill")
-_TITLES = {"data": "Data and quality control", "fit": "Fitted flow field", "check": "Physical constraints",
+SECTIONS = ("data", "fit", "tide", "check", "spread", "connect", "backtrack", "skill")
+_TITLES = {"data": "Data and quality control", "fit": "Fitted flow field", "tide": "Tide",
+           "check": "Physical constraints",
            "spread": "Release forecasts", "connect": "Connectivity between sites",
            "backtrack": "Back-tracking a find", "skill": "Forecast skill on held-out tracks"}
 _SUFFIX_UNITS = (("_m2_s", "m²/s"), ("_m_s", "m/s"), ("_m2", "m²"), ("_per_s", "s⁻¹"), ("_s", "s"), ("_m", "m"),
@@ -405,7 +407,7 @@ def elbo_comparison(summary: Mapping[str, Any]) -> str:
             "data; across data sets compare the held-out log likelihood per observation.</p>")
 
 
-_RENDER = {"data": _data, "fit": _fit, "check": _check, "spread": _spread, "connect": _spread, "backtrack": _spread,
+_RENDER = {"data": _data, "fit": _fit, "tide": _spread, "check": _check, "spread": _spread, "connect": _spread, "backtrack": _spread,
            "skill": _skill}
 
 
@@ -465,7 +467,7 @@ def digest(summary: Mapping[str, Any], out: str | os.PathLike) -> str:
 
     steps = {s["name"]: s for s in summary["job"]["steps"]}
     lines = [f"driftwise demo: Mirren Bay (invented data), {summary['job']['wall_time_s']:.0f} s"]
-    for name in ("data", "fit", "calibrate", "map", "check", "spread", "score", "connect", "backtrack"):
+    for name in ("data", "fit", "calibrate", "map", "tide", "check", "spread", "score", "connect", "backtrack"):
         step = steps.get(name, {"status": "not run", "detail": ""})
         text = step["detail"] if step["status"] == "done" else f"{step['status'].upper()}: {step['detail']}"
         lines.append(f"  {name:<9} {text}")

@@ -192,7 +192,7 @@ _GEO_NAMES = {  # CF standard names, checked against the table bundled with comp
     "vorticity": "ocean_relative_vorticity"}
 
 
-def _grid_variables(grid) -> list[tuple[str, object, dict]]:
+def grid_variables(grid) -> list[tuple[str, object, dict]]:
     """(name, (n_y, n_x) array, CF attributes) of every gridded quantity, in output order."""
     geo = grid.lon_deg is not None
     out = []
@@ -243,7 +243,7 @@ def field_grid_dataset(grid):
                   "standard_name": f"projection_{axis[0]}_coordinate", "units": "m", "axis": axis[0].upper(),
                   "long_name": f"{axis[0]} ({'east' if axis[0] == 'x' else 'north'}) in the model's local metric frame",
                   "coverage_content_type": "coordinate"}) for axis in ("x_m", "y_m")}
-    data = {name: (dims, np.asarray(values), attrs) for name, values, attrs in _grid_variables(grid)}
+    data = {name: (dims, np.asarray(values), attrs) for name, values, attrs in grid_variables(grid)}
     frame = grid.frame.to_dict() if hasattr(grid.frame, "to_dict") else dict(grid.frame or {})
     geo = grid.lon_deg is not None
     if geo:
@@ -251,7 +251,7 @@ def field_grid_dataset(grid):
             coords[name] = (dims, values, {"standard_name": axis, "units": f"degrees_{'east' if name[1] == 'o' else 'north'}",
                                            "long_name": f"{axis} (WGS 84)", "coverage_content_type": "coordinate"})
         data["crs"] = ((), np.int32(0), crs_attributes(frame))
-        for name, _, attrs in _grid_variables(grid):
+        for name, _, attrs in grid_variables(grid):
             data[name][2]["grid_mapping"] = "crs"
     attrs = discovery_attributes(
         "driftwise gridded flow field",
@@ -268,7 +268,7 @@ def field_grid_dataset(grid):
         if name in dataset.variables:
             dataset[name].encoding["_FillValue"] = None        # no _FillValue on coordinates (CF-1.11 §2.5.1)
     if geo:   # name only the auxiliary coordinates (CF-1.11 §5)
-        for name, _, _ in _grid_variables(grid):
+        for name, _, _ in grid_variables(grid):
             dataset[name].encoding["coordinates"] = "lon_deg lat_deg"
     return dataset
 
@@ -285,7 +285,7 @@ def write_field_grid_csv(grid, path) -> Path:
     columns = [("x_m", gx), ("y_m", gy)]
     if grid.lon_deg is not None:
         columns += [("lon_deg", grid.lon_deg), ("lat_deg", grid.lat_deg)]
-    columns += [(name, values) for name, values, _ in _grid_variables(grid)]
+    columns += [(name, values) for name, values, _ in grid_variables(grid)]
     buffer = _io.StringIO()
     writer = csv.writer(buffer, lineterminator="\n")
     writer.writerow([name for name, _ in columns])
