@@ -155,6 +155,10 @@ def _check_tide(out: Path, summary: dict) -> None:
     """The demo's fit finds the bay's M2 tide: its ellipses against the generator's own amplitude fields
     (app.bay.DemoBay.tide_amplitudes, the truth of the simulation), and the residual spectrum at M2."""
     ellipses, spectrum = summary["tide"]
+    # --temporal auto chose the tide by itself and nothing else: the inertial frequency, which moving drifters see
+    # as leakage of the M2 signal (significant but under the 5 % share floor of dynamics.temporalchoice), is not
+    # modelled
+    assert summary["fit"]["temporal"]["components"] == ["steady", "M2"]
     c = ellipses["comparison"]
     # the true semi-major axis has rms ≈ 0.12 m/s over the points; the noise of one hourly velocity is
     # √(2K/Δt) ≈ 0.05 m/s (K = 5 m²/s), averaged over ~2800 of them.  The reduced fit (M = 32) gave a median

@@ -214,7 +214,7 @@ def step_fit(job: Job) -> str:
                                  final_elbo=info.get("elbo"), converged=info.get("converged")),
                        "elbo.png", f"The evidence lower bound while fitting ({info.get('elbo_history_kind', '')}).",
                        "fit")
-    return (f"helmholtz + {' + '.join(decision.components)} (--temporal auto), "
+    return (f"helmholtz, {' + '.join(decision.components)} (--temporal auto), "
             f"M = {job.summary['fit']['n_inducing']}, K = {field.diffusivity_m2_s:.3g} m²/s, "
             f"τ = {format_duration(field.decorrelation_time_s)}, {info.get('steps')} steps")
 

@@ -10,8 +10,15 @@
    every candidate constituent (the tides M2, S2, N2, K1, O1; ``inertial`` too for lon/lat tracks away from the
    equator) and for slow change, F-tests under correlated residual noise, Bonferroni over the tests at
    family-wise level α = 0.01;
-4. when components are significant, refit with them: ``tides`` = the significant constituents, a learned slow part
+4. when components are significant *and* explain at least ``MIN_SHARE`` (5 %) of the residual variance beside the
+   other selected components, refit with them: ``tides`` = the significant constituents, a learned slow part
    (``slow_time_scale_s="auto"``) when the slow test is significant.  Otherwise the steady field stands.
+
+The share floor is a relevance rule of our own: with thousands of residuals an F-test also flags the small
+leakage of a strong tide into nearby frequencies that moving drifters see (the demo bay's M2 tide sampled along
+tracks gave the inertial frequency F = 1.6, adjusted p = 1e-5, 2.9 % of the residual variance).  A component
+under 5 % of the residual variance has an amplitude under about a third of the residual s.d.; it is reported
+("significant but below the share floor"), not modelled.
 
 The per-track regression is a few small least-squares problems per track (and a grid of noise models), so on
 steady data the extra cost over today's fit is one batch prediction and that test.  ``--temporal steady`` fits
@@ -43,10 +50,11 @@ from ..progress import Stopwatch
 from ..units import format_duration
 from .transitionfit import LikelihoodChoice, fit_by_likelihood
 
-__all__ = ["ALPHA", "PRINCIPAL_ORDER", "TEMPORAL_MODES", "TemporalDecision", "TemporalWarning", "candidate_periods_s",
+__all__ = ["ALPHA", "MIN_SHARE", "PRINCIPAL_ORDER", "TEMPORAL_MODES", "TemporalDecision", "TemporalWarning", "candidate_periods_s",
            "fit_temporal", "residual_evidence", "temporal_checkpoint_path", "temporal_fit_report"]
 
 PRINCIPAL_ORDER = ("M2", "K1", "S2", "O1", "N2")   # equilibrium-tide amplitudes, largest first
+MIN_SHARE = 0.05   # least share of the residual variance a significant component must explain to be modelled
 ALPHA = 0.01   # family-wise level of the residual tests (Bonferroni over the components examined)
 TEMPORAL_MODES = {
     "auto": "fit steady, test the residual velocities along the tracks for tidal/inertial periodicity and slow "
@@ -123,7 +131,9 @@ def _significance_text(evidence: TemporalEvidence) -> str:
     found = [c for c in evidence.components if c.significant]
     if found:
         return "; ".join(f"{c.name} (F = {c.f_statistic:.3g}, adjusted p = {c.p_adjusted:.2g} < {evidence.alpha:g}, "
-                         f"{100 * c.variance_fraction:.3g} % of the residual variance)" for c in found)
+                         f"{100 * c.variance_fraction:.3g} % of the residual variance"
+                         + ("" if _relevant(c) else f": below the {100 * MIN_SHARE:g} % share floor, not modelled")
+                         + ")" for c in found)
     tested = [c for c in evidence.components if c.status == "tested"]
     if not tested:
         return "no component could be tested (tracks too short)"
@@ -131,10 +141,16 @@ def _significance_text(evidence: TemporalEvidence) -> str:
     return f"none significant: the strongest, {best.name}, has adjusted p = {best.p_adjusted:.2g} ≥ {evidence.alpha:g}"
 
 
+def _relevant(component) -> bool:
+    """A significant component is modelled only when it explains at least MIN_SHARE of the residual variance."""
+    return component.variance_fraction >= MIN_SHARE
+
+
 def _decide(mode: str, evidence: TemporalEvidence, likelihood: str, frame) -> TemporalDecision:
     """The decision after the steady fit and its residual test."""
-    tides = tuple(name for name in evidence.chosen if name != SLOW)
-    slow = "auto" if SLOW in evidence.chosen else "off"
+    chosen = [c.name for c in evidence.components if c.significant and _relevant(c)]
+    tides = tuple(name for name in chosen if name != SLOW)
+    slow = "auto" if SLOW in chosen else "off"
     what = _significance_text(evidence)
     left_out = [name for name in candidate_periods_s(frame) if name not in {c.name for c in evidence.components}]
     if left_out:
@@ -143,8 +159,8 @@ def _decide(mode: str, evidence: TemporalEvidence, likelihood: str, frame) -> Te
     if mode == "steady":
         return TemporalDecision(mode, (), "off", f"steady asked for; residual test: {what}", evidence,
                                 steady_warning(evidence))
-    if not evidence.chosen:
-        return TemporalDecision(mode, (), "off", f"the steady fit's residuals show no time structure: {what}",
+    if not chosen:
+        return TemporalDecision(mode, (), "off", f"the steady fit's residuals show no time structure to model: {what}",
                                 evidence)
     if likelihood == "transitions":
         return TemporalDecision(mode, (), "off", f"kept steady because the transition likelihood needs a steady "
