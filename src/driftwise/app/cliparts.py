@@ -38,6 +38,21 @@ def add_exact_flag(parser: argparse.ArgumentParser) -> None:
                         "the posterior s.d.; releases leaving the grid are recomputed exactly)")
 
 
+def add_track_options(parser: argparse.ArgumentParser, *, position_error: bool = False, gap: bool = True) -> None:
+    """The options of reading a tracks file (data.tracks.read_tracks_from_cli): ``--max-speed``, ``--max-gap``
+    (``gap``) and ``--position-error`` (``position_error``)."""
+    if position_error:
+        parser.add_argument("--position-error", default=None, help="standard deviation of one fix per axis, with its "
+                            "unit (m, km, cm, mm; default: estimated from the tracks; refused above the typical step "
+                            "between fixes)")
+    parser.add_argument("--max-speed", default="5m/s",
+                        help="drop fixes implying a faster speed (bare: m/s; default 5m/s)")
+    if gap:
+        parser.add_argument("--max-gap", default=None,
+                            help="split a track at gaps longer than this duration, with its unit "
+                            "(e.g. 6h; default: never)")
+
+
 def add_quiet_flag(parser: argparse.ArgumentParser) -> None:
     """``--quiet``: no progress output."""
     parser.add_argument("--quiet", action="store_true", help="no progress bars or progress lines")

@@ -19,7 +19,15 @@ from ..products.plots import plot_physics_maps, save_figure
 from ..products.writers import FIELD_GRID_SUFFIXES, write_field_grid
 from ..progress import Stopwatch
 from ..units import format_duration, format_length, parse_length_m
-from .cliparts import EXIT_OK, add_json_flag, add_profile_flag, add_quiet_flag, print_json, profile_text
+from .cliparts import (
+    EXIT_OK,
+    add_json_flag,
+    add_profile_flag,
+    add_quiet_flag,
+    add_track_options,
+    print_json,
+    profile_text,
+)
 
 
 def configure_check(p: argparse.ArgumentParser) -> None:
@@ -41,11 +49,7 @@ def configure_check(p: argparse.ArgumentParser) -> None:
     p.add_argument("--seed", type=int, default=0, metavar="S", help="random seed of the split and fits (default 0)")
     p.add_argument("--inducing", type=int, default=64, metavar="M", help="inducing points per family fit (default 64)")
     p.add_argument("--steps", type=int, default=300, metavar="N", help="optimiser steps per family fit (default 300)")
-    p.add_argument("--position-error", default=None, help="standard deviation of one fix per axis, with its unit "
-                   "(m, km, cm, mm; default: estimated from the tracks; refused above the typical step between fixes)")
-    p.add_argument("--max-speed", default="5m/s", help="drop fixes implying a faster speed (bare: m/s; default 5m/s)")
-    p.add_argument("--max-gap", default=None,
-                   help="split a track at gaps longer than this duration, with its unit (e.g. 6h; default: never)")
+    add_track_options(p, position_error=True)
     p.add_argument("--figures", default=None, metavar="DIR", help="write divergence and vorticity maps (PNG) here")
     add_quiet_flag(p)
     add_profile_flag(p)

@@ -19,8 +19,24 @@ from ..gp.modelfile import save_model
 from ..gp.schedule import Checkpoint
 from ..gp.training import fit_report as velocity_fit_report
 from ..progress import Stopwatch
-from ..units import format_diffusivity, format_duration, format_length, format_named, format_speed, parse_duration_s, parse_length_m
-from .cliparts import EXIT_OK, add_json_flag, add_profile_flag, add_quiet_flag, print_json, profile_text
+from ..units import (
+    format_diffusivity,
+    format_duration,
+    format_length,
+    format_named,
+    format_speed,
+    parse_duration_s,
+    parse_length_m,
+)
+from .cliparts import (
+    EXIT_OK,
+    add_json_flag,
+    add_profile_flag,
+    add_quiet_flag,
+    add_track_options,
+    print_json,
+    profile_text,
+)
 
 
 def configure_fit(p: argparse.ArgumentParser) -> None:
@@ -37,11 +53,7 @@ def configure_fit(p: argparse.ArgumentParser) -> None:
                    help="number of inducing points (default: min(256, observations/32), at least 16)")
     p.add_argument("--background", default="linear", choices=list(BACKGROUNDS), help=BACKGROUND_HELP)
     p.add_argument("--seed", type=int, default=0, metavar="S", help="random seed (default 0)")
-    p.add_argument("--position-error", default=None, help="standard deviation of one fix per axis, with its unit "
-                   "(m, km, cm, mm; default: estimated from the tracks; refused above the typical step between fixes)")
-    p.add_argument("--max-speed", default="5m/s", help="drop fixes implying a faster speed (bare: m/s; default 5m/s)")
-    p.add_argument("--max-gap", default=None,
-                   help="split a track at gaps longer than this duration, with its unit (e.g. 6h; default: never)")
+    add_track_options(p, position_error=True)
     p.add_argument("--tides", default="none", metavar="LIST",
                    help=f"periodic constituents to model, comma-separated from {','.join(CONSTITUENTS)} (inertial: at "
                    "the latitude of lon/lat tracks), each with its own amplitude fields; or none (default)")

@@ -38,7 +38,7 @@ from ..units import (
     parse_durations_s,
     parse_length_m,
 )
-from .cliparts import EXIT_OK, add_exact_flag, add_json_flag, add_quiet_flag, print_json
+from .cliparts import EXIT_OK, add_exact_flag, add_json_flag, add_quiet_flag, add_track_options, print_json
 
 # ---------------------------------------------------------------- spread
 _MAX_OUTPUT_TIMES = 100_000
@@ -220,7 +220,7 @@ def configure_score(p: argparse.ArgumentParser) -> None:
                    help="the tracks the model was fitted on: gives the baselines an error variance, so their coverage "
                    "and log score are defined (otherwise shown as —)")
     p.add_argument("--max-starts", type=int, default=2000, help="at most this many forecast starts (default 2000)")
-    p.add_argument("--max-speed", default="5m/s", help="drop fixes implying a faster speed (bare: m/s; default 5m/s)")
+    add_track_options(p, gap=False)
     p.add_argument("--out", default=None, metavar="TABLE.csv", help="write the table as CSV")
     p.add_argument("--figures", default=None, metavar="DIR", help="write skill.png (skill and coverage vs horizon)")
     add_json_flag(p)

@@ -6,15 +6,13 @@ import argparse
 import warnings
 
 from ..data.tracks import TrackWarning, format_summary, inspect_summary, read_tracks_from_cli
-from .cliparts import EXIT_OK, add_json_flag, print_json
+from .cliparts import EXIT_OK, add_json_flag, add_track_options, print_json
 
 
 def configure_inspect(p: argparse.ArgumentParser) -> None:
     p.description = "Summarise a tracks file: tracks, fixes, time span, sampling, speeds, frame and QC actions."
     p.add_argument("tracks", help="CSV, CSV.GZ, Parquet or CF-trajectory NetCDF file of fixes")
-    p.add_argument("--max-speed", default="5m/s", help="drop fixes implying a faster speed (bare: m/s; default 5m/s)")
-    p.add_argument("--max-gap", default=None,
-                   help="split a track at gaps longer than this duration, with its unit (e.g. 6h; default: never)")
+    add_track_options(p)
     add_json_flag(p)
     p.set_defaults(run=_run_inspect)
 
