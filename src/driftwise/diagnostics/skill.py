@@ -319,8 +319,7 @@ def _warn_unsupported_starts(field, win: Windows) -> None:
     """Before any forecast runs: a SupportWarning when forecast starts lie outside the model's data support
     (a time-varying field's support at the starts' own times)."""
     start_m = win.start_m
-    ratio = (field.local_variance_ratio(start_m, win.start_time_s) if getattr(field, "is_time_varying", False)
-             else field.local_variance_ratio(start_m))
+    ratio = field.local_variance_ratio(start_m, win.start_time_s)     # a steady field ignores the times
     distance = field.distance_to_data_m(start_m)
     outside = ratio > SUPPORT_VARIANCE_FRACTION
     if outside.any():

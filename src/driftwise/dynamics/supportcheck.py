@@ -42,8 +42,7 @@ def unsupported_releases(field: Any, releases) -> list[tuple[Any, float, float]]
     """(release, variance ratio, distance to the data in m) for every release whose start lies outside
     the data support (module docstring)."""
     starts = np.stack([r.start_m for r in releases])
-    times = np.array([r.start_time_s for r in releases]) if getattr(field, "is_time_varying", False) else None
-    ratio = field.local_variance_ratio(starts) if times is None else field.local_variance_ratio(starts, times)
+    ratio = field.local_variance_ratio(starts, np.array([r.start_time_s for r in releases]))   # steady: times unused
     distance = field.distance_to_data_m(starts)
     return [(r, float(f), float(d)) for r, f, d in zip(releases, ratio, distance) if f > SUPPORT_VARIANCE_FRACTION]
 
@@ -72,9 +71,8 @@ def path_support(field: Any, means_m, times_s=None) -> PathSupport:
     times (s), needed by a time-varying field."""
     means = np.asarray(means_m, dtype=np.float64)
     points = means.reshape(-1, means.shape[-1])
-    ratio = (field.local_variance_ratio(points) if times_s is None
-             else field.local_variance_ratio(points, np.asarray(times_s, dtype=np.float64).ravel()))
-    ratio = np.asarray(ratio).reshape(means.shape[:-1])
+    times = None if times_s is None else np.asarray(times_s, dtype=np.float64).ravel()
+    ratio = np.asarray(field.local_variance_ratio(points, times)).reshape(means.shape[:-1])
     distance = np.asarray(field.distance_to_data_m(points)).reshape(means.shape[:-1])
     outside = np.logical_or.accumulate(ratio > SUPPORT_VARIANCE_FRACTION, axis=1)
     return PathSupport(ratio, distance, outside)
