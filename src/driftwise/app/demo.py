@@ -192,6 +192,7 @@ def step_fit(job: Job) -> str:
     save_model(field, path)
     job.add_file(path, "the fitted Helmholtz model (npz without pickles + JSON metadata; driftwise.load)")
     job.state["field"] = field
+    job.state["steady_field"] = decision.steady_field     # the steady fit auto tested: the tide step's "before"
     info = field.fit_info
     data = field.data_summary
     job.summary["fit"] = {

@@ -6,8 +6,8 @@
   the generator's own amplitude fields (``app.bay.DemoBay.tide_amplitudes``);
 * **phases** — the posterior mean flow at four phases of the constituent (ω t = 0°, 90°, 180°, 270° on the data's
   clock, in the cycle nearest the middle of the data), one panel each on shared scales;
-* **residual spectrum** — a steady fit of the same tracks (the check's inducing points and step budget) and the
-  tidal fit, each as the variance one harmonic explains in its residual velocities against period
+* **residual spectrum** — the steady fit that ``--temporal auto`` tested before choosing the tide (the fit step's
+  ``TemporalDecision.steady_field``) and the tidal fit, each as the variance one harmonic explains in its residual velocities against period
   (:func:`driftwise.data.residualspectrum.residual_periodogram`): the steady fit leaves the tide's peak, the
   tidal fit should not.
 """
@@ -26,8 +26,6 @@ from ..data.residualspectrum import residual_periodogram
 from ..data.utctime import iso_utc
 from ..diagnostics.grid import field_extent_m
 from ..diagnostics.tidalellipse import tidal_ellipses
-from ..gp.schedule import Schedule
-from ..gp.training import fit
 from ..products.plotphases import plot_field_phases
 from ..products.plottide import plot_residual_spectrum, plot_tidal_ellipses
 from ..units import format_duration
@@ -198,15 +196,14 @@ def step_tide(job: Job) -> str:
                                      title=f"The fitted flow at four phases of {constituent}"), "tide_phases.png",
                    f"Posterior mean flow at four phases of {constituent}, a quarter period "
                    f"({format_duration(period / 4)}) apart, within {NEAR_DATA_M / 1000:g} km of the data.", "tide")
-    steady = fit(tracks, kernel="helmholtz", inducing=s.family_inducing, seed=s.seed, progress=job.progress,
-                 position_error_m=s.position_error_m, schedule=Schedule(steps=s.family_steps))
+    steady = job.state["steady_field"]
     periods = np.union1d(np.geomspace(3 * HOUR_S, 36 * HOUR_S, 40), [period])
     before, after = residual_spectra(steady, field, tracks, periods, s.position_error_m)
     job.add_figure(plot_residual_spectrum(before, after, constituents={constituent: period},
                                           labels=("steady fit", f"fit with {constituent}")), "tide_spectrum.png",
                    "Variance one harmonic explains in the residual velocities of the fit tracks, against period: "
-                   f"a steady fit (M = {s.family_inducing}, at most {s.family_steps} steps) and the fit with "
-                   f"{constituent}.", "tide")
+                   f"the steady fit --temporal auto tested (M = {np.asarray(steady.params.inducing_m).shape[0]}, "
+                   f"{steady.fit_info.get('steps')} steps) and the fit with {constituent}.", "tide")
     tables = [ellipse_table(constituent, centres, fitted, truth, comparison),
               spectrum_table(constituent, period, before, after)]
     job.summary["tide"] = tables

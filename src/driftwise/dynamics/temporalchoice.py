@@ -73,7 +73,8 @@ class TemporalDecision:
 
     ``mode``: "auto", "steady" or "given"; ``tides`` the constituents fitted; ``slow`` "off", "auto" (learned)
     or "fixed"; ``reason`` one sentence; ``evidence`` the residual test (None when components were given);
-    ``warning`` the steady-fit warning (or None).
+    ``warning`` the steady-fit warning (or None); ``steady_field`` the steady fit whose residuals were tested
+    (None when components were given; not part of :meth:`to_dict`), for a before/after comparison.
     """
 
     mode: str
@@ -82,6 +83,7 @@ class TemporalDecision:
     reason: str
     evidence: TemporalEvidence | None = None
     warning: str | None = None
+    steady_field: Any = dataclasses.field(default=None, compare=False, repr=False)
 
     @property
     def components(self) -> list[str]:
@@ -211,7 +213,8 @@ def fit_temporal(tracks, kernel: str, *, temporal: str = "auto", tides=(), slow_
     field, choice = fit_by_likelihood(tracks, kernel, likelihood, checkpoint=checkpoint, quiet=quiet, schedule=schedule,
                                       timing_s=clock.laps, **common)
     with clock("residual_test"):
-        decision = _decide(temporal, residual_evidence(field, tracks, alpha=alpha), likelihood, tracks.frame)
+        decision = dataclasses.replace(_decide(temporal, residual_evidence(field, tracks, alpha=alpha), likelihood,
+                                               tracks.frame), steady_field=field)
     if decision.warning:
         warnings.warn(decision.warning, TemporalWarning, stacklevel=2)
     if decision.tides or decision.slow != "off":
