@@ -349,7 +349,7 @@ def test_steady_forecasts_are_bit_identical_to_main():
 
 # ------------------------------------------------------------------ (5) --start
 def test_release_time_parsing():
-    absolute = {"time_origin_utc": UNIX_EPOCH_UTC, "time_span_s": [0.0, 1717416000.0]}
+    absolute = {"time_origin_utc": UNIX_EPOCH_UTC, "time_span_s": [1717329600.0, 1717416000.0]}
     assert release_time_s({}, "36h") == 129600.0 and release_time_s({}, "5400") == 5400.0
     assert release_time_s({}, None) == 0.0 and release_time_s(absolute, None) == 1717416000.0
     assert release_time_s(absolute, "2024-06-03T14:00:00+02:00") == 1717416000.0
@@ -357,6 +357,12 @@ def test_release_time_parsing():
         release_time_s({}, "2024-06-03T12:00Z")
     with pytest.raises(InputError, match="absolute .* ISO-8601"):
         release_time_s(absolute, "36h")
+    # a bare number on an absolute axis is seconds since 1970: accepted near the data, refused far from it
+    assert release_time_s(absolute, "1717419600") == 1717419600.0
+    with pytest.raises(InputError, match=r"--start '6'.*1970-01-01T00:00:06Z.*more than a year.*2024-06-03T12:00:00Z"):
+        release_time_s(absolute, "6")
+    with pytest.raises(InputError, match="not a finite time"):
+        release_time_s(absolute, "nan")
 
 
 @pytest.fixture(scope="module")

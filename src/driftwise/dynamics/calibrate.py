@@ -46,6 +46,7 @@ import jax.numpy as jnp
 import numpy as np
 from scipy.optimize import minimize
 
+from .. import smallmatrix
 from ..data.datascales import DataScales, data_scales
 from ..data.observations import velocity_observations
 from ..data.tracks import Tracks, in_model_frame
@@ -184,9 +185,9 @@ def transitions_from_tracks(tracks_or_observations, *, lags_s, position_error_m:
 def _mean_log_likelihood(means, covs, observed, obs_var, weight):
     """Weighted mean of log N(x_obs | m, P + obs_var I); means (R, L, d), covs (R, L, d, d)."""
     d = means.shape[-1]
-    chol = jnp.linalg.cholesky(covs + obs_var[..., None, None] * jnp.eye(d))
-    z = jax.scipy.linalg.solve_triangular(chol, (observed - means)[..., None], lower=True)[..., 0]
-    logdet = 2.0 * jnp.sum(jnp.log(jnp.diagonal(chol, axis1=-2, axis2=-1)), axis=-1)
+    chol = jnp.vectorize(smallmatrix.cholesky, signature="(d,d)->(d,d)")(covs + obs_var[..., None, None] * jnp.eye(d))
+    z = jnp.vectorize(smallmatrix.solve_lower, signature="(d,d),(d)->(d)")(chol, observed - means)
+    logdet = jnp.vectorize(smallmatrix.log_det_from_cholesky, signature="(d,d)->()")(chol)
     logp = -0.5 * (jnp.sum(z * z, axis=-1) + logdet + d * jnp.log(2.0 * jnp.pi))
     return jnp.sum(jnp.where(weight > 0, logp, 0.0) * weight) / jnp.sum(weight)
 

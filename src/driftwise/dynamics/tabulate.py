@@ -52,6 +52,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from .. import smallmatrix
 from ..errors import InputError
 from .moments import propagate_batch, psd_cholesky
 from .sde import SDE, PointPosterior
@@ -142,12 +143,12 @@ class TabulatedPosterior:
 def _channels(posterior: PointPosterior, x: jax.Array) -> jax.Array:
     """f(x) = (μ(x), tril C(x)) with Σ = C Cᵀ (moments.psd_cholesky), shape (k + k(k+1)/2,) for a mean of k
     channels (k = d for a velocity; k·d for the stacked parts of a time-varying field, whose joint posterior
-    covariance is positive definite: jnp.linalg.cholesky, as psd_cholesky is unrolled for small k and compiles
-    slowly beyond)."""
+    covariance is positive definite: smallmatrix.cholesky, a loop over columns, as psd_cholesky is unrolled for
+    small k and compiles slowly beyond, and a batched LAPACK Cholesky can hang jaxlib's CPU thread pool)."""
     mean = posterior.mean_at(x)
     k = mean.shape[-1]
     rows, cols = np.tril_indices(k)
-    chol = psd_cholesky(posterior.cov_at(x)) if k <= SMALL_CHANNELS else jnp.linalg.cholesky(posterior.cov_at(x))
+    chol = psd_cholesky(posterior.cov_at(x)) if k <= SMALL_CHANNELS else smallmatrix.cholesky(posterior.cov_at(x))
     return jnp.concatenate([mean, chol[rows, cols]])
 
 

@@ -44,6 +44,7 @@ from typing import Any
 import jax
 import jax.numpy as jnp
 
+from .. import smallmatrix
 from .sde import SDE, field_drift, velocity_memory_weight
 from .transitions import gaussian_log_density
 
@@ -69,7 +70,7 @@ def expected_jacobian(cross: jax.Array, cov: jax.Array) -> jax.Array:
     scale = jnp.trace(cov) / d
     ok = scale > 0
     regular = jnp.where(ok, cov + 1e-12 * scale * jnp.eye(d, dtype=cov.dtype), jnp.eye(d, dtype=cov.dtype))
-    return jnp.where(ok, jnp.linalg.solve(regular, cross.T).T, 0.0)
+    return jnp.where(ok, smallmatrix.cho_solve(smallmatrix.cholesky(regular), cross.T).T, 0.0)
 
 
 def bound_rates(method: Any, posterior: Any, diffusivity_m2_s: jax.Array, decorrelation_time_s: jax.Array,
@@ -104,7 +105,7 @@ def _one(method, integrator, posterior, k, tau, r, row):
     y0 = _flatten((x0, r, jnp.zeros_like(r), jnp.zeros((), x0.dtype)))
     mean, cov, var, _ = _unflatten(integrator.integrate(f, y0, jnp.stack([jnp.zeros_like(dt), dt]))[-1], d)
     total = cov + r
-    penalty = jnp.trace(jnp.linalg.solve(0.5 * (total + total.T), 0.5 * (var + var.T)))
+    penalty = jnp.trace(smallmatrix.cho_solve(smallmatrix.cholesky(0.5 * (total + total.T)), 0.5 * (var + var.T)))
     return gaussian_log_density(x1, mean, total) - 0.5 * penalty
 
 

@@ -40,6 +40,7 @@ import jax.numpy as jnp
 import numpy as np
 from jax.scipy.linalg import solve_triangular
 
+from .. import smallmatrix
 from ..data.observations import velocity_observations
 from ..errors import InputError
 from ..gp.field import FieldParams, inducing_cholesky
@@ -198,10 +199,10 @@ class ParamPosterior:
 
 # ---------------------------------------------------------------- the likelihood
 def gaussian_log_density(x: jax.Array, mean: jax.Array, cov: jax.Array) -> jax.Array:
-    """log N(x | mean, cov) for one d-vector (nats), by Cholesky."""
-    chol = jnp.linalg.cholesky(0.5 * (cov + cov.T))
-    z = solve_triangular(chol, x - mean, lower=True)
-    return -0.5 * (z @ z + x.shape[-1] * jnp.log(2.0 * jnp.pi)) - jnp.sum(jnp.log(jnp.diagonal(chol)))
+    """log N(x | mean, cov) for one d-vector (nats), by Cholesky (smallmatrix: no batched LAPACK under vmap)."""
+    chol = smallmatrix.cholesky(0.5 * (cov + cov.T))
+    z = smallmatrix.solve_lower(chol, x - mean)
+    return -0.5 * (z @ z + x.shape[-1] * jnp.log(2.0 * jnp.pi)) - 0.5 * smallmatrix.log_det_from_cholesky(chol)
 
 
 def log_likelihoods(sde: SDE, method: Any, integrator: Any, start_m: jax.Array, end_m: jax.Array,
