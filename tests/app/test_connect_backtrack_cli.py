@@ -142,12 +142,13 @@ def test_backtrack_several_finds_on_a_metric_model(models, run_cli):
     (["connect", "{metric}", "--sites", "{bad_sites}"], "site, x_m, y_m"),
     (["connect", "{metric}", "--sites", "{sites}", "--per-site", "0"], "--per-site"),
     (["connect", "{metric}", "--sites", "{sites}", "--out", "x.txt"], "unknown format"),
-    (["backtrack", "{metric}", "--found", "1km,2km", "--at", "0", "--at", "1", "--at", "2"], "--at"),
-    (["backtrack", "{metric}", "--found", "1km,2km", "--at", "0", "--out", "r.geojson"], "lon/lat"),
-    (["backtrack", "{metric}", "--found", "1km,2km", "--at", "0", "--spacing", "1mm"], "memory"),
+    (["backtrack", "{metric}", "--found", "1km,2km", "--at", "{t0}", "--at", "{t0}", "--at", "{t0}"], "--at"),
+    (["backtrack", "{metric}", "--found", "1km,2km", "--at", "{t0}", "--out", "r.geojson"], "lon/lat"),
+    (["backtrack", "{metric}", "--found", "1km,2km", "--at", "{t0}", "--spacing", "1mm"], "memory"),
+    (["backtrack", "{metric}", "--found", "1km,2km", "--at", "6"], "1970-01-01T00:00:06Z"),
 ])
 def test_bad_input_and_memory_refusal_exit_2(models, run_cli, write_file, argv, message):
     paths = {"metric": models["metric"], "sites": write_file("s.csv", SITES),
-             "bad_sites": write_file("b.csv", "name,x,y\na,0,0\n")}
+             "bad_sites": write_file("b.csv", "name,x,y\na,0,0\n"), "t0": T0_S}
     code, out, err = run_cli(*[a.format(**{k: str(v) for k, v in paths.items()}) for a in argv])
     assert code == 2 and message in err and "Traceback" not in err and out == ""

@@ -79,7 +79,8 @@ def release_time_s(data_summary: dict | None, text: str | None, *, what: str = "
     """A release time given as ``text`` → seconds on the model's time axis; None → :func:`default_start_time_s`.
 
     On an absolute axis (the model knows its time origin): an ISO-8601 time (a zone offset is converted; no
-    zone = UTC) or a bare number of seconds on the axis.  On a relative axis: a duration with its unit on the
+    zone = UTC) or a bare number of seconds on the axis, refused when it lies more than a year from the data
+    (``--start 6`` would otherwise mean 1970-01-01T00:00:06Z).  On a relative axis: a duration with its unit on the
     tracks' own axis (``36h``, ``90min``; a bare number is seconds).  Bad text: InputError naming ``what``."""
     summary = data_summary or {}
     if text is None:
@@ -92,11 +93,39 @@ def release_time_s(data_summary: dict | None, text: str | None, *, what: str = "
             raise InputError(f"{what} {text!r}: this model was fitted on relative times (no calendar date), so give "
                              "the release time on its time axis as a duration with a unit, e.g. 36h or 5400s") from None
     try:
-        return float(text)
+        bare = float(text)
     except ValueError:
-        pass
+        bare = None
+    if bare is not None:
+        return _bare_seconds(summary, bare, text, what)
     seconds = seconds_since_origin(origin, text)
     if seconds is None:
         raise InputError(f"{what} {text!r}: this model's time axis is absolute (UTC), so give an ISO-8601 time, "
                          "e.g. 2024-06-03T12:00Z (or seconds since 1970-01-01T00:00Z)")
     return seconds
+
+
+BARE_SECONDS_REACH_S = 366 * 86400.0   # a bare number on an absolute axis must lie this close to the data
+
+
+def _bare_seconds(summary: dict, seconds: float, text: str, what: str) -> float:
+    """A bare number of seconds on an absolute axis, or InputError when it is far from the data's time span (a
+    bare "6" or "36" meant as hours would silently become a 1970 date)."""
+    import math
+
+    import pandas as pd
+
+    span = summary.get("time_span_s")
+    if not span or not math.isfinite(seconds):
+        if not math.isfinite(seconds):
+            raise InputError(f"{what} {text!r} is not a finite time")
+        return seconds
+    lo, hi = float(span[0]), float(span[1])
+    if lo - BARE_SECONDS_REACH_S <= seconds <= hi + BARE_SECONDS_REACH_S:
+        return seconds
+    def iso(s: float) -> str:
+        return pd.Timestamp(s, unit="s", tz="UTC").strftime("%Y-%m-%dT%H:%M:%SZ")
+    meant = iso(seconds) if abs(seconds) < 1e11 else "a date out of range"
+    raise InputError(f"{what} {text!r}: a bare number on this model's absolute time axis is seconds since "
+                     f"1970-01-01T00:00Z ({meant}), more than a year from the data ({iso(lo)} to {iso(hi)}); "
+                     f"give an ISO-8601 time such as {iso(hi)}")
