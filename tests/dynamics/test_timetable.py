@@ -200,7 +200,60 @@ def test_connect_on_a_time_varying_model_uses_the_table_and_its_start_time(field
     assert tab.outside_support is not None and np.all(np.isfinite(tab.outside_support))
 
 
-def test_backtrack_refuses_a_time_varying_model_with_a_clear_message(field):
-    finds = Finds(np.array([[5000.0, 5000.0]]), np.array([T0 + 86400.0]), np.array([100.0]))
-    with pytest.raises(InputError, match="varies in time"):
-        backtrack_from_field(field, finds, (0.0, 0.0, 10_000.0, 10_000.0), 1000.0, [T0])
+TIDE_U0_M_S, TIDE_A_M_S, TIDE_K_M2_S = np.array([0.01, 0.005]), np.array([0.4, 0.1]), 1.0
+
+
+def _tidal_stream(x, t):
+    return jnp.asarray(TIDE_U0_M_S) + jnp.asarray(TIDE_A_M_S) * jnp.cos(OMEGA_M2 * (t - T0))
+
+
+def _tidal_stream_diffusion(x, t):
+    return 2.0 * TIDE_K_M2_S * jnp.eye(2)
+
+
+def _tidal_displacement(t_r, t_k):
+    """∫_{t_r}^{t_k} u(t) dt for u = U₀ + A cos ω(t − T0), in closed form."""
+    return TIDE_U0_M_S * (t_k - t_r) + TIDE_A_M_S * (np.sin(OMEGA_M2 * (t_k - T0)) - np.sin(OMEGA_M2 * (t_r - T0))) / OMEGA_M2
+
+
+def test_backtrack_in_a_tidal_stream_matches_the_closed_form():
+    """A spatially uniform tidal stream u(t) = U₀ + A cos ωt with diffusivity K: a point release at x₀ at t_r is
+    N(x₀ + ∫u dt, 2 K (t_k − t_r) I) at t_k, so under a flat prior x₀ | find y is N(y − ∫u dt, 2 K (t_k − t_r) I
+    + R) (Gaussian conjugacy, from memory).  Candidate times half a tidal period apart give posterior means
+    2|A|/ω ≈ 5.9 km apart (the steady approximation would put both at y − U₀ (t_k − t_r)); with one find and a grid covering
+    both, each candidate time holds half the mass (the likelihood integrates to 1 over x₀)."""
+    from driftwise.dynamics.backtrack import backtrack, candidate_grid
+    from driftwise.dynamics.sde import SDE
+
+    sde = SDE(drift=_tidal_stream, diffusion=_tidal_stream_diffusion, with_time=True)
+    t_find, sd = T0 + 30 * 3600.0, 150.0
+    found = np.array([20_000.0, 8_000.0])
+    quarter = 0.25 * 12.4206012 * 3600.0                 # releases at the two flood/ebb maxima
+    release_times = np.array([T0 + quarter, T0 + 3 * quarter])
+    means = [found - _tidal_displacement(t_r, t_find) for t_r in release_times]
+    sds = [math.sqrt(2 * TIDE_K_M2_S * (t_find - t_r) + sd**2) for t_r in release_times]
+    lo = np.min(means, 0) - 6 * max(sds)
+    hi = np.max(means, 0) + 6 * max(sds)
+    x, y = candidate_grid((lo[0], lo[1], hi[0], hi[1]), min(sds) / 6)
+    result = backtrack(sde, Finds(found[None], [t_find], [sd]), x, y, release_times, step_s=1800.0)
+    print(f"tidal backtrack: closed-form means {np.round(means, 1).tolist()}, "
+          f"apart {np.hypot(*(means[0] - means[1])):.0f} m; by time {result.by_time.round(4).tolist()}")
+    assert np.hypot(*(means[0] - means[1])) > 10 * max(sds)
+    np.testing.assert_allclose(result.by_time, [0.5, 0.5], atol=0.01)
+    for j in range(2):
+        mean, cov = result.mean_cov(j)
+        assert np.all(np.abs(mean - means[j]) < 0.02 * sds[j])                        # within 2 % of the s.d.
+        np.testing.assert_allclose(np.diag(cov), [sds[j] ** 2] * 2, rtol=0.03)
+
+
+def test_backtrack_from_a_time_varying_field_runs_with_the_table_and_exactly(field):
+    """A fitted tidal field: the tabulated and the exact posterior give the same map (TOL-level differences)."""
+    finds = Finds(np.array([[5000.0, 5000.0]]), np.array([T0 + 86400.0]), np.array([300.0]))
+    args = (field, finds, (0.0, 0.0, 10_000.0, 10_000.0), 1000.0, [T0 + 6 * 3600.0, T0 + 12 * 3600.0])
+    exact = backtrack_from_field(*args, step_s=1800.0, posterior="exact")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        tab = backtrack_from_field(*args, step_s=1800.0, posterior="table")
+    print(f"tidal field backtrack: max |P_table − P_exact| {np.abs(tab.probability - exact.probability).max():.3g}")
+    np.testing.assert_allclose(exact.probability.sum(), 1.0, atol=1e-9)
+    assert np.abs(tab.probability - exact.probability).max() < 0.01

@@ -148,7 +148,8 @@ def run_backtrack(args: argparse.Namespace) -> int:
     say(f"backtrack: {n_cells} candidate points every {format_length(spacing)} × {len(lags)} candidate times; "
         f"memory about {need / 2**20:.3g} MiB", quiet)
     x, y = candidate_grid(region, spacing)
-    progress = bar(len(x) * len(y), quiet, "driftwise backtrack", "candidate")
+    runs = len(lags) if model.is_time_varying else 1     # a time-varying field: one propagation per candidate time
+    progress = bar(len(x) * len(y) * runs, quiet, "driftwise backtrack", "candidate")
     try:
         result = backtrack_from_field(model, finds, region, spacing, lags, method=args.method, step_s=step,
                                       posterior=posterior_choice(args.exact),

@@ -55,21 +55,13 @@ def demo_sites(frame: Any) -> tuple[Site, ...]:
     return tuple(Site(name, sites_in_frame(frame, polygon)) for name, polygon in DEMO_SITES_M)
 
 
-STEADY_TRANSPORT_NOTE = ("The fitted model varies with the tide, but connectivity and back-tracking here propagate "
-                         "from one start time only through a steady field, so they use the model's steady part "
-                         "(the flow averaged over the tidal cycle): the tidal excursions to and fro are left out, "
-                         "and so is any net drift they cause. The release forecasts and the skill scores use the "
-                         "full time-varying field.")
-
-
-def transport_field(field: Any) -> Any:
-    """The field the connect and backtrack steps propagate: a time-varying field's steady part (see
-    :data:`STEADY_TRANSPORT_NOTE`), a steady field itself."""
-    return field.steady_part()
+TIDAL_TRANSPORT_NOTE = ("The fitted model varies with the tide, and the material is propagated through the full "
+                        "time-varying field from its own release time: the tidal excursions to and fro, and any net "
+                        "drift they cause, are in the answer.")
 
 
 def step_connect(job: Job) -> str:
-    field, s = transport_field(_field(job)), job.settings
+    field, s = _field(job), job.settings
     sites = demo_sites(field.frame)
     times = output_times_s(s.connect_horizon_s, s.connect_every_s)
     result = connect_from_field(field, sites, times, per_site=s.connect_per_site, step_s=HOUR_S, seed=s.seed,
@@ -85,7 +77,7 @@ def step_connect(job: Job) -> str:
     job.state["connect"] = result
     job.summary["connect"] = [connect_table(result, s)]
     if _field(job).is_time_varying:
-        job.summary["connect"][0]["notes"].insert(0, STEADY_TRANSPORT_NOTE)
+        job.summary["connect"][0]["notes"].insert(0, TIDAL_TRANSPORT_NOTE)
     peak = result.probability.max(-1)
     i, j = np.unravel_index(int(np.argmax(np.where(np.eye(len(sites), dtype=bool), -1.0, peak))), peak.shape)
     return (f"{len(sites)} sites × {result.per_site} releases, {format_duration(times[-1])}; strongest link "
@@ -129,7 +121,7 @@ def simulated_find(frame: Any, start_time_s: float) -> tuple[Finds, np.ndarray, 
 
 
 def step_backtrack(job: Job) -> str:
-    field, s = transport_field(_field(job)), job.settings
+    field, s = _field(job), job.settings
     finds, truth, true_time = simulated_find(field.frame, default_start_time_s(field.data_summary))
     corners = sites_in_frame(field.frame, BACKTRACK_BOX_M)
     region = (*corners.min(0), *corners.max(0))
@@ -148,7 +140,7 @@ def step_backtrack(job: Job) -> str:
     job.state["backtrack"] = result
     job.summary["backtrack"] = [backtrack_table(result, comparison, s)]
     if _field(job).is_time_varying:
-        job.summary["backtrack"][0]["notes"].insert(0, STEADY_TRANSPORT_NOTE)
+        job.summary["backtrack"][0]["notes"].insert(0, TIDAL_TRANSPORT_NOTE)
     return (f"{len(result.x_m) * len(result.y_m)} candidates × {len(lags)} times; most probable release "
             f"{comparison['distance_m'] / 1000:.2f} km from the truth, truth "
             f"{'inside' if comparison['truth_inside_90'] else 'outside'} the 90 % region")

@@ -3,8 +3,9 @@
 Candidates are release points x₀ on a regular grid over a region (cell centres, spacing h) and release times
 t_r = t_ref − l for lags l on a grid over the window (t_ref: the earliest find).  Each candidate point is
 released as a point (P₀ = 0) and propagated forward once by the Gaussian moment equations
-(``moments.propagate_batch``; Jazwinski 1970) to every age a = t_k − t_r at which a find k was made (the
-field is steady, so one propagation per point serves every candidate time).  A find k at y_k with position
+(``moments.propagate_batch``; Jazwinski 1970) to every age a = t_k − t_r at which a find k was made.  In a
+steady field one propagation per point serves every candidate time; a field that varies in time (tides) is
+propagated once per point and candidate time, from t_r (``sde.with_time``).  A find k at y_k with position
 error covariance R_k = sd_k² I has likelihood
 
     L_k(x₀, t_r) = N(y_k | m(x₀, t_k − t_r), P(x₀, t_k − t_r) + R_k),
@@ -158,10 +159,12 @@ def _log_likelihood(means: np.ndarray, covs: np.ndarray, finds: Finds, index: np
 
 def forward_moments(sde: Any, points_m: np.ndarray, ages_s: np.ndarray, *, method: str = "cubature",
                     step_s: float | None = None, progress: Callable[[int], None] | None = None,
-                    batch: int = BATCH, fallback_sde: Any = None) -> tuple[np.ndarray, np.ndarray]:
+                    batch: int = BATCH, fallback_sde: Any = None,
+                    start_time_s: float | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Means (C, A, 2) m and covariances (C, A, 2, 2) m² of point releases at ``points_m (C, 2)`` after
     ``ages_s (A,)`` (from 0, increasing), in batches; ``method`` a moment method of ``methods.METHODS``;
-    ``fallback_sde``: candidates that leave a tabulated field's grid are recomputed through it."""
+    ``fallback_sde``: candidates that leave a tabulated field's grid are recomputed through it;
+    ``start_time_s``: the release time on the model's axis (s; used by a time-dependent SDE)."""
     obj, integrator = make_method(method, step_s=step_s)
     if integrator is None:
         raise InputError("backtrack: use a moment method (the ensemble cannot give a likelihood per candidate)")
@@ -170,7 +173,7 @@ def forward_moments(sde: Any, points_m: np.ndarray, ages_s: np.ndarray, *, metho
     for lo in range(0, len(points_m), batch):
         starts = points_m[lo:lo + batch]
         m, c = propagate_with_fallback(sde, fallback_sde, starts, np.zeros((len(starts), 2, 2)), ages_s, method=obj,
-                                       integrator=integrator, chunk=min(batch, 256))
+                                       integrator=integrator, chunk=min(batch, 256), start_times_s=start_time_s)
         means[lo:lo + batch], covs[lo:lo + batch] = np.asarray(m)[..., :2], np.asarray(c)[..., :2, :2]
         if progress is not None:
             progress(len(starts))
@@ -185,10 +188,21 @@ def posterior_map(x_m: np.ndarray, y_m: np.ndarray, release_times_s: Any, finds:
     ages = finds.time_s[:, None] - times[None, :]
     if np.any(ages < 0):
         raise InputError("backtrack: every candidate release time must be at or before every find")
+    loglik = _log_likelihood(means, covs, finds, _age_index(ages_s, ages))
+    return _normalised(x_m, y_m, times, finds, loglik, method)
+
+
+def _age_index(ages_s: np.ndarray, ages: np.ndarray) -> np.ndarray:
+    """Positions of ``ages`` (any shape) in the propagated ``ages_s``; InputError when one is missing."""
     index = np.searchsorted(np.round(ages_s, 6), np.round(ages, 6))
     if np.any(index >= len(ages_s)) or not np.allclose(np.asarray(ages_s)[np.minimum(index, len(ages_s) - 1)], ages):
         raise InputError("backtrack: the propagated ages do not include every find time minus release time")
-    loglik = _log_likelihood(means, covs, finds, index)
+    return index
+
+
+def _normalised(x_m: np.ndarray, y_m: np.ndarray, times: np.ndarray, finds: Finds, loglik: np.ndarray,
+                method: str) -> BacktrackMap:
+    """The BacktrackMap of log-likelihoods ``loglik (C, L)`` (cells row-major over y then x, L times)."""
     loglik = np.where(np.isfinite(loglik), loglik, -np.inf)
     norm = logsumexp(loglik)
     if not np.isfinite(norm):
@@ -209,9 +223,18 @@ def backtrack(sde: Any, finds: Finds, x_m: np.ndarray, y_m: np.ndarray, release_
     ages = needed_ages(finds, release_times_s)
     gx, gy = np.meshgrid(x_m, y_m)
     points = np.stack([gx, gy], -1).reshape(-1, 2)
-    means, covs = forward_moments(sde, points, ages, method=method, step_s=step_s, progress=progress, batch=batch,
-                                  fallback_sde=fallback_sde)
-    return posterior_map(x_m, y_m, release_times_s, finds, ages, means, covs, method_name(make_method(method)[0]))
+    name = method_name(make_method(method)[0])
+    common = {"method": method, "step_s": step_s, "progress": progress, "batch": batch, "fallback_sde": fallback_sde}
+    if not getattr(sde, "with_time", False):
+        means, covs = forward_moments(sde, points, ages, **common)
+        return posterior_map(x_m, y_m, release_times_s, finds, ages, means, covs, name)
+    times = np.atleast_1d(np.asarray(release_times_s, np.float64))
+    loglik = np.empty((len(points), len(times)))
+    for j, t_r in enumerate(times):                 # a time-varying field: one propagation per candidate time
+        ages_j = needed_ages(finds, [t_r])
+        means, covs = forward_moments(sde, points, ages_j, start_time_s=float(t_r), **common)
+        loglik[:, j] = _log_likelihood(means, covs, finds, _age_index(ages_j, finds.time_s[:, None] - t_r))[:, 0]
+    return _normalised(x_m, y_m, times, finds, loglik, name)
 
 
 def backtrack_from_field(field: Any, finds: Finds, region_m: Any, spacing_m: float, release_times_s: Any, *,
@@ -221,18 +244,18 @@ def backtrack_from_field(field: Any, finds: Finds, region_m: Any, spacing_m: flo
     """:func:`backtrack` in a fitted FlowField: the SDE of ``connectivity.field_transport`` through the exact
     posterior or a table of it (``posterior`` "auto" | "exact" | "table", the rule of ``spread.spread_from_field``:
     "auto" tabulates when candidates × RK4 steps ≥ ``tabulate.TABLE_RELEASE_STEPS``, over the region and the data
-    extent), candidates on a ``spacing_m`` grid over ``region_m = (x0, y0, x1, y1)``."""
+    extent), candidates on a ``spacing_m`` grid over ``region_m = (x0, y0, x1, y1)``.  A time-varying field is
+    propagated from every candidate time (its table spans the window and the finds)."""
     if int(getattr(field, "dim", 2)) != 2:
         raise InputError("backtrack: the model must be 2-D")
-    if getattr(field, "is_time_varying", False):
-        raise InputError("backtrack: this model varies in time and back-tracking takes a steady model (it propagates "
-                         "each candidate once for every release time); fit without tides or a slow part")
     sde = field_transport(field, diffusivity_m2_s=diffusivity_m2_s, decorrelation_time_s=decorrelation_time_s)
     x, y = candidate_grid(region_m, spacing_m)
     x0, y0, x1, y1 = (float(v) for v in region_m)
     rk4 = make_method(method, step_s=step_s)[1]
-    table_sde = field_or_table_sde(field, sde, [[x0, y0], [x1, y1]], len(x) * len(y),
-                                   needed_ages(finds, release_times_s), rk4, posterior)
+    times = np.atleast_1d(np.asarray(release_times_s, np.float64))
+    per_time = len(times) if getattr(field, "is_time_varying", False) else 1     # propagations per candidate point
+    table_sde = field_or_table_sde(field, sde, [[x0, y0], [x1, y1]], len(x) * len(y) * per_time,
+                                   needed_ages(finds, release_times_s), rk4, posterior, start_times_s=times)
     result = backtrack(sde if table_sde is None else table_sde, finds, x, y, release_times_s, method=method,
                        step_s=step_s, progress=progress, fallback_sde=None if table_sde is None else sde)
     origin = (getattr(field, "data_summary", None) or {}).get("time_origin_utc")
