@@ -343,8 +343,13 @@ def test_steady_forecasts_are_bit_identical_to_main():
     reference = np.load(REFERENCE)
     out = compute()
     assert sorted(out) == sorted(reference.files)
-    different = [key for key in reference.files if not np.array_equal(out[key], reference[key])]
+    # the transition density's Cholesky moved from LAPACK to driftwise.smallmatrix (no batched LAPACK under vmap):
+    # the same arithmetic in another order, so that one key is compared to rounding (1e-12 relative)
+    rounding = {"transition_loglik"}
+    different = [key for key in reference.files if key not in rounding and not np.array_equal(out[key], reference[key])]
     assert different == []
+    for key in rounding:
+        np.testing.assert_allclose(out[key], reference[key], rtol=1e-12, atol=0)
 
 
 # ------------------------------------------------------------------ (5) --start
