@@ -115,14 +115,13 @@ def _bare_seconds(summary: dict, seconds: float, text: str, what: str) -> float:
 
     import pandas as pd
 
+    if not math.isfinite(seconds):
+        raise InputError(f"{what} {text!r} is not a finite time")
     span = summary.get("time_span_s")
-    if not span or not math.isfinite(seconds):
-        if not math.isfinite(seconds):
-            raise InputError(f"{what} {text!r} is not a finite time")
+    if not span or float(span[0]) - BARE_SECONDS_REACH_S <= seconds <= float(span[1]) + BARE_SECONDS_REACH_S:
         return seconds
     lo, hi = float(span[0]), float(span[1])
-    if lo - BARE_SECONDS_REACH_S <= seconds <= hi + BARE_SECONDS_REACH_S:
-        return seconds
+
     def iso(s: float) -> str:
         return pd.Timestamp(s, unit="s", tz="UTC").strftime("%Y-%m-%dT%H:%M:%SZ")
     meant = iso(seconds) if abs(seconds) < 1e11 else "a date out of range"
