@@ -160,6 +160,18 @@ def test_fallback_reruns_releases_off_the_grid_exactly_from_their_start_times(fi
     np.testing.assert_array_equal(means[1:], np.asarray(ref_m))
     np.testing.assert_array_equal(covs[1:], np.asarray(ref_c))
     assert np.all(np.isfinite(means[0]))
+    # several batches (or candidate release times) counted in one tally: one warning for the whole run
+    tally = tabulate.FallbackTally()
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        for lo in (0, 1):
+            again, _ = tabulate.propagate_with_fallback(tabulate.on_table(sde, small), sde, means0[lo:lo + 2],
+                                                        covs0[lo:lo + 2], times, start_times_s=starts[lo:lo + 2],
+                                                        tally=tally, **kw)
+            np.testing.assert_array_equal(again, means[lo:lo + 2])
+        assert not caught
+        tally.warn("candidate releases")
+    assert [str(w.message).split(";")[0] for w in caught] == ["3 of 4 candidate releases left the tabulated region"]
 
 
 def test_a_slow_part_is_forecast_exactly():

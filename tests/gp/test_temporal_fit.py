@@ -5,7 +5,8 @@ strength follows a + b cos ω t with ω the M2 frequency (period 12.4206012 h, D
 from memory), a = 0.5, b = −1 (|b| > |a|: the gyre reverses for a third of each cycle).  The truth is evaluated
 here from that formula, not from driftwise.data.synthetic (which only simulates the drifters).  Check: on the grid
 nodes inside the data's alpha shape (tests/geometry.py), at four phases ωt ≡ 0, π/2, π, 3π/2 (mod 2π) in the
-middle of the record, the fitted mean's RMS error is below 10 % of the RMS speed over those phases and nodes.
+middle of the record, the fitted mean's RMS error is below 10 % of the RMS speed over those phases and nodes, and
+the fitted M2 tidal current ellipses on the ring r = R match the analytic ones (tolerances in _assert_ring_ellipses).
 """
 
 from __future__ import annotations
@@ -21,6 +22,7 @@ import driftwise
 from driftwise.app.cli import main
 from driftwise.data.synthetic import GaussianGyre, PulsingGyre, simulate_drifters
 from driftwise.data.tracks import tracks_from_frame
+from driftwise.diagnostics.tidalellipse import tidal_ellipses
 
 OMEGA_M2 = 2.0 * math.pi / (12.4206012 * 3600.0)
 PEAK_M_S, RADIUS_M = 0.3, 1500.0
@@ -71,7 +73,40 @@ def test_a_tidal_gyre_is_recovered_at_every_phase(capsys):
     mean, _ = field.harmonic_posterior(np.array([RADIUS_M, 0.0]), "M2")
     expected = np.array([0.0, HARMONIC * PEAK_M_S, 0.0, 0.0])
     assert np.all(np.abs(np.asarray(mean) - expected) < 0.1 * PEAK_M_S), np.asarray(mean)
+    fitted = _assert_ring_ellipses(field)
+    with capsys.disabled():
+        print("M2 ellipses on r = R at 0°, 90°, 180°, 270° (truth 0.3 m/s, 0, 90/0/90/0°, 180/0/0/180°): "
+              + "; ".join(f"{fitted.semi_major_m_s[k]:.3f} m/s, {fitted.semi_minor_m_s[k]:+.3f}, "
+                          f"{fitted.inclination_deg[k]:.1f}°, {fitted.phase_deg[k]:.1f}°" for k in range(4)))
     assert field.is_time_varying and list(field.constituents) == ["M2"]
+
+
+def _ring_ellipses_analytic(angle_deg):
+    """The truth's M2 ellipse at (R cos φ, R sin φ): the current is b V (−sin φ, cos φ) cos ωt with b = −1, a line
+    (semi-minor 0) of semi-major |b| V along the ring's tangent (inclination (φ − 90°) mod 180°), at its greatest
+    along that inclination at t = 0 when b V (−sin φ, cos φ) points along it (phase 0°), else half a period later
+    (phase 180°).  Definitions as in Prandle 1982 (from memory; driftwise.diagnostics.tidalellipse)."""
+    direction = (angle_deg - 90.0) % 360.0          # the direction of b V (−sin φ, cos φ) with b < 0
+    return abs(HARMONIC) * PEAK_M_S, 0.0, direction % 180.0, 0.0 if direction < 180.0 else 180.0
+
+
+def _assert_ring_ellipses(field):
+    """The fitted M2 ellipses at four points on the ring r = R against the analytic ones: semi-major within
+    10 % of V, semi-minor below 0.1 V, inclination and phase within 10° (an inclination just below 180° is the
+    same line as one just above 0°, with the phase half a period on: compared as such)."""
+    angles = (0.0, 90.0, 180.0, 270.0)
+    centres = [RADIUS_M * np.array([math.cos(math.radians(a)), math.sin(math.radians(a))]) for a in angles]
+    posteriors = [field.harmonic_posterior(c, "M2") for c in centres]
+    fitted = tidal_ellipses(np.stack([np.asarray(m) for m, _ in posteriors]),
+                            np.stack([np.asarray(c) for _, c in posteriors]))
+    for k, angle in enumerate(angles):
+        major, minor, inclination, phase = _ring_ellipses_analytic(angle)
+        assert fitted.semi_major_m_s[k] == pytest.approx(major, abs=0.1 * PEAK_M_S), (angle, fitted)
+        assert abs(fitted.semi_minor_m_s[k] - minor) < 0.1 * PEAK_M_S, (angle, fitted)
+        turns = round((fitted.inclination_deg[k] - inclination) / 180.0)   # θ near 0° ≡ 180° moves g by 180°
+        assert abs(fitted.inclination_deg[k] - inclination - 180.0 * turns) < 10.0, (angle, fitted)
+        assert abs((fitted.phase_deg[k] - 180.0 * turns - phase + 180.0) % 360.0 - 180.0) < 10.0, (angle, fitted)
+    return fitted
 
 
 @pytest.mark.slow

@@ -34,7 +34,7 @@ from scipy.special import logsumexp
 from ..errors import InputError
 from .connectivity import field_transport
 from .methods import make_method, method_name
-from .tabulate import field_or_table_sde, propagate_with_fallback
+from .tabulate import FallbackTally, field_or_table_sde, propagate_with_fallback
 
 __all__ = ["Finds", "BacktrackMap", "backtrack", "candidate_grid", "hpd_levels", "backtrack_memory_bytes",
            "backtrack_from_field", "forward_moments", "posterior_map", "needed_ages"]
@@ -159,13 +159,15 @@ def _log_likelihood(means: np.ndarray, covs: np.ndarray, finds: Finds, index: np
 
 def forward_moments(sde: Any, points_m: np.ndarray, ages_s: np.ndarray, *, method: str = "cubature",
                     step_s: float | None = None, progress: Callable[[int], None] | None = None,
-                    batch: int = BATCH, fallback_sde: Any = None,
-                    start_time_s: float | None = None) -> tuple[np.ndarray, np.ndarray]:
+                    batch: int = BATCH, fallback_sde: Any = None, start_time_s: float | None = None,
+                    tally: FallbackTally | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Means (C, A, 2) m and covariances (C, A, 2, 2) m² of point releases at ``points_m (C, 2)`` after
     ``ages_s (A,)`` (from 0, increasing), in batches; ``method`` a moment method of ``methods.METHODS``;
     ``fallback_sde``: candidates that leave a tabulated field's grid are recomputed through it;
-    ``start_time_s``: the release time on the model's axis (s; used by a time-dependent SDE)."""
+    ``start_time_s``: the release time on the model's axis (s; used by a time-dependent SDE); ``tally``: counts
+    the candidates rerun through ``fallback_sde`` (the caller warns once; None: one warning here)."""
     obj, integrator = make_method(method, step_s=step_s)
+    count = FallbackTally() if tally is None else tally
     if integrator is None:
         raise InputError("backtrack: use a moment method (the ensemble cannot give a likelihood per candidate)")
     means = np.empty((len(points_m), len(ages_s), 2))
@@ -173,10 +175,13 @@ def forward_moments(sde: Any, points_m: np.ndarray, ages_s: np.ndarray, *, metho
     for lo in range(0, len(points_m), batch):
         starts = points_m[lo:lo + batch]
         m, c = propagate_with_fallback(sde, fallback_sde, starts, np.zeros((len(starts), 2, 2)), ages_s, method=obj,
-                                       integrator=integrator, chunk=min(batch, 256), start_times_s=start_time_s)
+                                       integrator=integrator, chunk=min(batch, 256), start_times_s=start_time_s,
+                                       tally=count)
         means[lo:lo + batch], covs[lo:lo + batch] = np.asarray(m)[..., :2], np.asarray(c)[..., :2, :2]
         if progress is not None:
             progress(len(starts))
+    if tally is None:
+        count.warn("candidate releases")
     return means, covs
 
 
@@ -230,10 +235,12 @@ def backtrack(sde: Any, finds: Finds, x_m: np.ndarray, y_m: np.ndarray, release_
         return posterior_map(x_m, y_m, release_times_s, finds, ages, means, covs, name)
     times = np.atleast_1d(np.asarray(release_times_s, np.float64))
     loglik = np.empty((len(points), len(times)))
+    tally = FallbackTally()
     for j, t_r in enumerate(times):                 # a time-varying field: one propagation per candidate time
         ages_j = needed_ages(finds, [t_r])
-        means, covs = forward_moments(sde, points, ages_j, start_time_s=float(t_r), **common)
+        means, covs = forward_moments(sde, points, ages_j, start_time_s=float(t_r), tally=tally, **common)
         loglik[:, j] = _log_likelihood(means, covs, finds, _age_index(ages_j, finds.time_s[:, None] - t_r))[:, 0]
+    tally.warn(f"candidate releases ({len(points)} points × {len(times)} release times)")
     return _normalised(x_m, y_m, times, finds, loglik, name)
 
 

@@ -43,7 +43,7 @@ from .sde import PointPosterior, join_from_jit, sde_from_field, split_for_jit, t
 from .sites import Site, cell_covariance_m2, inside_polygon, seed_site
 from .spread import check_times, probability_inside
 from .supportcheck import SUPPORT_VARIANCE_FRACTION
-from .tabulate import field_or_table_sde, propagate_with_fallback
+from .tabulate import FallbackTally, field_or_table_sde, propagate_with_fallback
 
 __all__ = ["Connectivity", "connect", "connect_ensemble", "connect_from_field", "field_transport",
            "first_passage_s", "connect_memory_bytes"]
@@ -177,11 +177,12 @@ def connect(sde: Any, sites: tuple[Site, ...], times_s: Any, *, per_site: int = 
     total = np.zeros((n_sites, n_sites, n_times))
     outside = np.zeros((n_sites, n_times)) if support is not None else None
     centroid = np.zeros((n_sites, n_times, 2))
+    tally = FallbackTally()
     for lo in range(0, len(points), batch):
         sl = slice(lo, lo + batch)
         means, covs = propagate_with_fallback(sde, fallback_sde, points[sl], covs0[sl], times, method=method,
                                               integrator=integrator or default_rk4, chunk=min(batch, 256),
-                                              start_times_s=start_time_s)
+                                              start_times_s=start_time_s, tally=tally)
         if not (np.all(np.isfinite(means)) and np.all(np.isfinite(covs))):
             raise InputError("the connectivity forecast produced non-finite numbers (the integration diverged); "
                              "use a smaller --step")
@@ -192,6 +193,7 @@ def connect(sde: Any, sites: tuple[Site, ...], times_s: Any, *, per_site: int = 
             np.add.at(outside, source[sl], flags)
         if progress is not None:
             progress(len(means))
+    tally.warn()
     prob = np.clip(total / per_site, 0.0, 1.0)
     return Connectivity(tuple(sites), times, prob, first_passage_s(times, prob, threshold), float(threshold),
                         None if outside is None else outside / per_site, centroid / per_site,

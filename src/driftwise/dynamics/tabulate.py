@@ -57,8 +57,9 @@ from ..errors import InputError
 from .moments import propagate_batch, psd_cholesky
 from .sde import SDE, PointPosterior
 
-__all__ = ["PartsPosterior", "TabulatedPosterior", "TimedTable", "field_or_table_sde", "moment_errors", "on_table",
-           "posterior_choice", "propagate_with_fallback", "refine", "release_steps", "table_region", "tabulate_field",
+__all__ = ["FallbackTally", "PartsPosterior", "TabulatedPosterior", "TimedTable", "field_or_table_sde", "moment_errors",
+           "on_table", "posterior_choice", "propagate_with_fallback", "refine", "release_steps", "table_region",
+           "tabulate_field",
            "tabulate_timed_field", "tabulated_sde", "tabulation_errors", "timed_tabulation_errors"]
 
 NODE_BLOCK = 256      # nodes per compiled evaluation block while building a table
@@ -448,21 +449,41 @@ def field_or_table_sde(field: Any, sde: SDE, starts_m: Any, n_releases: int, tim
     return tabulated_sde(field, sde, starts_m, steps, posterior, start_times_s, float(np.max(times_s)))
 
 
+class FallbackTally:
+    """Releases rerun through the exact posterior, counted over several :func:`propagate_with_fallback` calls
+    (batches, candidate release times) so that a command warns once for the whole run (:meth:`warn`)."""
+
+    def __init__(self) -> None:
+        self.left, self.total = 0, 0
+
+    def __call__(self, left: int, total: int) -> None:
+        self.left, self.total = self.left + int(left), self.total + int(total)
+
+    def warn(self, what: str = "releases", stacklevel: int = 3) -> None:
+        """One warning naming how many of the counted ``what`` left the table (none: silent)."""
+        if self.left:
+            warnings.warn(f"{self.left} of {self.total} {what} left the tabulated region; they were forecast with "
+                          "the exact posterior", stacklevel=stacklevel)
+
+
 def propagate_with_fallback(sde: SDE, fallback: SDE | None, means0: Any, covs0: Any, times_s: Any, *, method: Any,
-                            integrator: Any, chunk: int = 256,
-                            start_times_s: Any = None) -> tuple[np.ndarray, np.ndarray]:
+                            integrator: Any, chunk: int = 256, start_times_s: Any = None,
+                            tally: FallbackTally | None = None) -> tuple[np.ndarray, np.ndarray]:
     """``moments.propagate_batch`` through ``sde`` from ``start_times_s`` (R,) (or one number; s on the model's
     axis, for a time-dependent SDE); releases whose moments come out non-finite (they left a table's grid) are
     recomputed through ``fallback`` (the exact field SDE) from their own start times, with a warning saying how
-    many."""
+    many, or counted in ``tally`` (the caller warns once) when one is given."""
     means0, covs0 = np.asarray(means0, np.float64), np.asarray(covs0, np.float64)
     starts = None if start_times_s is None else np.broadcast_to(np.asarray(start_times_s, np.float64), means0.shape[:1])
     means, covs = (np.array(a) for a in propagate_batch(sde, means0, covs0, times_s, method=method,
                                                          integrator=integrator, chunk=chunk, start_times_s=starts))
     left = ~(np.isfinite(means).reshape(len(means), -1).all(1) & np.isfinite(covs).reshape(len(covs), -1).all(1))
+    if fallback is not None:
+        count = FallbackTally() if tally is None else tally
+        count(int(left.sum()), len(means0))
+        if tally is None:
+            count.warn(stacklevel=4)
     if fallback is not None and left.any():
-        warnings.warn(f"{int(left.sum())} of {len(means0)} releases left the tabulated region; they were "
-                      "forecast with the exact posterior", stacklevel=3)
         m, c = propagate_batch(fallback, means0[left], covs0[left], times_s, method=method, integrator=integrator,
                                chunk=chunk, start_times_s=None if starts is None else starts[left])
         means[left], covs[left] = np.asarray(m), np.asarray(c)
