@@ -127,15 +127,17 @@ def _simulate_jit(dynamic, static, method, keep_samples, mean0, cov0, times_s, k
     first = _paths(sde, method, mean0, chol0, times_s, keys[0], start_s)
     shift = jnp.mean(first, axis=1)  # a nearby centre keeps the power sums well conditioned
 
-    def add_chunk(sums, i):
-        xs = jax.lax.cond(i == 0, lambda: first, lambda: _paths(sde, method, mean0, chol0, times_s, keys[i], start_s))
-        valid = i * method.chunk + jnp.arange(method.chunk) < method.particles
-        return sums + _power_sums(xs, shift, valid), xs[-1] if keep_samples else None
+    def valid(i):
+        return i * method.chunk + jnp.arange(method.chunk) < method.particles
 
-    k = mean0.shape[-1] + 1
-    zero = jnp.zeros((times_s.shape[0], k, k, k, k), dtype=mean0.dtype)
-    sums, finals = jax.lax.scan(add_chunk, zero, jnp.arange(n_chunks))
+    def add_chunk(sums, i):
+        xs = _paths(sde, method, mean0, chol0, times_s, keys[i], start_s)
+        return sums + _power_sums(xs, shift, valid(i)), xs[-1] if keep_samples else None
+
+    # the first chunk outside the loop (it sets the shift), the others in a scan: no branch inside the loop
+    sums, finals = jax.lax.scan(add_chunk, _power_sums(first, shift, valid(0)), jnp.arange(1, n_chunks))
     mean, cov, mean_se, cov_se = jax.vmap(_moments_from_sums)(sums, shift)
+    finals = jnp.concatenate([first[-1][None], finals]) if keep_samples else None
     samples = finals.reshape(-1, mean0.shape[-1])[: method.particles] if keep_samples else None
     return EnsembleResult(mean, cov, mean_se, cov_se, samples, method.particles)
 
