@@ -45,10 +45,11 @@ K_RTOL = 0.30          # K within 30 % of the truth (measured at 3-h fixes: 1.06
 
 
 def lamb_oseen_velocity(xy):
-    """Oseen (1912) / Lamb (1932), from the formula."""
+    """Oseen (1912) / Lamb (1932), from the formula: u_θ = Γ/(2πr) (1 − e^{−r²/r_c²}), zero at r = 0 (its limit)."""
     r = np.hypot(xy[:, 0], xy[:, 1])
-    u = GAMMA_M2_S / (2.0 * math.pi * r) * (1.0 - np.exp(-(r / CORE_M) ** 2))
-    return np.stack([-u * xy[:, 1] / r, u * xy[:, 0] / r], axis=1)
+    safe = np.where(r > 0.0, r, 1.0)
+    per_r = np.where(r > 0.0, GAMMA_M2_S / (2.0 * math.pi * safe**2) * (1.0 - np.exp(-(safe / CORE_M) ** 2)), 0.0)
+    return np.stack([-per_r * xy[:, 1], per_r * xy[:, 0]], axis=1)
 
 
 def vortex_tracks(fix_interval_s: float, n: int = 40, hours: float = 24.0):
