@@ -146,3 +146,14 @@ def test_format_speed_and_diffusivity_at_tank_and_ocean_scale():
     assert units.format_speed(0.0123) == "12.3 mm/s"     # below 0.1 m/s in mm/s (a tank's speeds)
     assert units.format_diffusivity(1e-5) == "10 mm²/s"
     assert units.format_diffusivity(2.3) == "2.3 m²/s"
+
+
+@pytest.mark.parametrize("name, value, text", [
+    ("background_strain_scale_per_s", 3.2e-9, "3.2e-09"), ("background_rotation_scale_per_s", 4e-6, "4e-06"),
+    ("background_rotation_scale_per_s", 0.00691, "0.00691"), ("background_rotation_scale_per_s", 1.5e-4, "0.00015"),
+    ("background_strain_scale_per_s", 0.0, "0"), ("count", 12345.0, "12300"),
+])
+def test_unitless_small_values_keep_their_figures(name, value, text):
+    """A rate of 3.2e-9 /s (a learned background strain scale of a tank fit) printed as '0' read as "no strain";
+    below 1e-4 the value is scientific with its 3 significant figures (Python format mini-language, 'g')."""
+    assert units.format_named(name, value) == text

@@ -105,9 +105,10 @@ def _fitted(value: float | None, steps: tuple[tuple[str, float, float], ...], di
 
 
 def _sig(value: float, digits: int) -> str:
-    """``value`` to ``digits`` significant figures, plain notation below 10⁶ (1234 → '1230', 0.5 → '0.5')."""
+    """``value`` to ``digits`` significant figures, plain notation from 10⁻⁴ to below 10⁶ (1234 → '1230', 0.5 →
+    '0.5', 0.00015 → '0.00015'); outside it scientific (3.2e-09 → '3.2e-09', not '0')."""
     text = f"{value:.{digits}g}"
-    if "e" in text and abs(value) < 1e6:
+    if "e" in text and 1e-4 <= abs(value) < 1e6:
         text = f"{float(text):f}".rstrip("0").rstrip(".")
     return text
 
