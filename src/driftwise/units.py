@@ -84,7 +84,9 @@ _DURATION_STEPS = (("d", 86400.0, 2 * 86400.0), ("h", 3600.0, 3600.0), ("min", 6
                    ("ms", 1e-3, 1e-3), ("µs", 1e-6, 0.0))
 _SPEED_STEPS = (("m/s", 1.0, 0.1), ("mm/s", 1e-3, 1e-5), ("µm/s", 1e-6, 0.0))
 _DIFFUSIVITY_STEPS = (("m²/s", 1.0, 0.01), ("mm²/s", 1e-6, 1e-8), ("µm²/s", 1e-12, 0.0))
-_ZERO_UNIT = {id(_LENGTH_STEPS): "m", id(_DURATION_STEPS): "s", id(_SPEED_STEPS): "m/s", id(_DIFFUSIVITY_STEPS): "m²/s"}
+_AREA_STEPS = (("km²", 1e6, 1e4), ("m²", 1.0, 0.1), ("cm²", 1e-4, 1e-5), ("mm²", 1e-6, 0.0))
+_ZERO_UNIT = {id(_LENGTH_STEPS): "m", id(_DURATION_STEPS): "s", id(_SPEED_STEPS): "m/s", id(_DIFFUSIVITY_STEPS): "m²/s",
+              id(_AREA_STEPS): "m²"}
 
 
 def _fitted(value: float | None, steps: tuple[tuple[str, float, float], ...], digits: int) -> str:
@@ -121,6 +123,11 @@ def format_length(value_m: float, digits: int = 3) -> str:
 def format_duration(value_s: float, digits: int = 3) -> str:
     """A duration in s printed in d, h, min, s or ms, whichever fits: 5400 → '1.5 h', 0.5 → '500 ms'."""
     return _fitted(value_s, _DURATION_STEPS, digits)
+
+
+def format_area(value_m2: float, digits: int = 3) -> str:
+    """An area in m² printed in km², m², cm² or mm², whichever fits: 2.5e6 → '2.5 km²', 0.0091 → '91 cm²'."""
+    return _fitted(value_m2, _AREA_STEPS, digits)
 
 
 def format_speed(value_m_s: float, digits: int = 3) -> str:

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import math
 import re
 from pathlib import Path
 from typing import Any
@@ -20,7 +21,7 @@ from ..gp.modelfile import load_model
 from ..products.backtrackfiles import BACKTRACK_SUFFIXES, backtrack_to_dict, write_backtrack
 from ..products.plotconnect import plot_backtrack
 from ..products.plots import save_figure
-from ..units import format_duration, format_length, parse_duration_s, parse_length_m
+from ..units import format_area, format_duration, format_length, parse_duration_s, parse_length_m
 from .cliparts import EXIT_OK, add_exact_flag, add_json_flag, add_quiet_flag, print_json
 from .resources import bar, check_memory, say
 
@@ -170,13 +171,14 @@ def run_backtrack(args: argparse.Namespace) -> int:
 def _format(result: Any, summary: dict, written: list[str]) -> str:
     best = summary["most_probable"]
     when = best.get("time_utc") or f"{best['time_s']:.6g} s"
+    decimals = max(0, 1 - math.floor(math.log10(min(summary["grid"]["spacing_m"]))))   # a tenth of a cell
     where = ("lon/lat ({:.5f}, {:.5f})".format(*best["position_lonlat"]) if "position_lonlat" in best
-             else "({:.0f}, {:.0f}) m".format(*best["position_m"]))
+             else "({:.{d}f}, {:.{d}f}) m".format(*best["position_m"], d=decimals))
     lines = [f"backtrack: {len(result.x_m) * len(result.y_m)} candidate points × {len(result.release_times_s)} "
              f"candidate times, {len(result.finds.time_s)} find(s), method {result.method}",
              f"  most probable release: {where} at {when}",
-             f"  50 % region {summary['region_50']['area_m2'] / 1e6:.3g} km², 90 % region "
-             f"{summary['region_90']['area_m2'] / 1e6:.3g} km²",
+             f"  50 % region {format_area(summary['region_50']['area_m2'])}, 90 % region "
+             f"{format_area(summary['region_90']['area_m2'])}",
              "  probability by release time: " + ", ".join(
                  f"{format_duration(result.finds.time_s.min() - item['release_time_s'])} before: "
                  f"{item['probability']:.2f}" for item in summary["probability_by_time"])]
