@@ -23,7 +23,7 @@ import numpy as np
 from ..units import format_duration, format_length
 
 __all__ = ["SUPPORT_VARIANCE_FRACTION", "PathSupport", "SupportWarning", "path_support", "point_support_text",
-           "unsupported_releases", "warn_left_support", "warn_unsupported_releases"]
+           "unsupported_releases", "warn_left_support", "warn_unsupported_finds", "warn_unsupported_releases"]
 
 SUPPORT_VARIANCE_FRACTION = 0.9
 
@@ -54,6 +54,20 @@ def warn_unsupported_releases(field: Any, releases) -> None:
         warnings.warn(f"release {rel.name} at ({where}) is outside the model's data support "
                       f"({point_support_text(distance, ratio)}), so its forecast extrapolates the prior, not observed "
                       "flow; its outputs are marked outside_support", SupportWarning, stacklevel=3)
+
+
+def warn_unsupported_finds(field: Any, position_m, time_s) -> None:
+    """One SupportWarning per find (``position_m`` (K, 2) local frame, ``time_s`` (K,)) outside the data support:
+    the flow that carried it there, and so where and when it was released, is the prior's, not observed."""
+    position_m = np.atleast_2d(np.asarray(position_m, np.float64))
+    ratio = field.local_variance_ratio(position_m, np.asarray(time_s, np.float64))
+    distance = field.distance_to_data_m(position_m)
+    for k, (f, d) in enumerate(zip(ratio, distance)):
+        if f > SUPPORT_VARIANCE_FRACTION:
+            where = ", ".join(format_length(v) for v in position_m[k])
+            warnings.warn(f"find {k + 1} at ({where}) is outside the model's data support ({point_support_text(d, f)}), "
+                          "so the flow that carried it there is the prior's, not observed: its release map and "
+                          "times extrapolate", SupportWarning, stacklevel=2)
 
 
 @dataclass(frozen=True)
