@@ -7,6 +7,7 @@ The model: a GP with fixed hyperparameters and closed-form optimal q on noisy ve
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import re
 import types
@@ -18,7 +19,9 @@ import pytest
 import driftwise  # noqa: F401  (float64)
 from driftwise.data import synthetic
 from driftwise.data.frame import Frame
+from driftwise.data.tracks import tracks_from_frame
 from driftwise.dynamics.supportcheck import SupportWarning
+from driftwise.dynamics.temporalchoice import TemporalWarning, _warn_unresolved_tides
 from driftwise.gp import field as F
 from driftwise.gp.modelfile import save_model
 
@@ -87,3 +90,20 @@ def test_backtrack_warns_when_the_find_is_outside_the_data(tank_model, run_cli):
         code, _, err = run_cli("backtrack", tank_model, "--found", "5,5", "--at", "100s", "--sd", "5cm",
                                "--window", "5s", "--every", "5s", "--step", "1s", "--quiet", "--json")
     assert code == 0, err
+
+
+def test_tides_on_tracks_shorter_than_their_period_warn():
+    """`fit --tides M2` on 2 min of tank tracks fitted M2 amplitude fields of 2.3 mm/s with no word that a 12.4 h
+    constituent cannot be told from the steady flow in 2 min (Rayleigh criterion against frequency 0; the M2
+    period 12.42 h, Doodson 1921, from memory).  Tracks of 5 d (geo scale) resolve it: no warning."""
+    flow = synthetic.TaylorGreen(velocity_scale_m_s=5e-3, length_scale_m=0.2)
+    short = tracks_from_frame(synthetic.simulate_drifters(flow, [[0.3, 0.3], [0.6, 0.5]], duration_s=120.0,
+                                                          fix_interval_s=0.5, diffusivity_m2_s=1e-5,
+                                                          position_error_m=5e-4, seed=1))
+    with pytest.warns(TemporalWarning, match=r"^tides M2: the tracks span 2 min, less than the M2 period 12.4 h, so "
+                                             r"M2 cannot be told from the steady flow"):
+        _warn_unresolved_tides(short, ("M2",))
+    long = dataclasses.replace(short, time_s=short.time_s * 3600.0)      # the same fixes 5 d apart in all
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        _warn_unresolved_tides(long, ("M2",))

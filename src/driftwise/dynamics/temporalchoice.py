@@ -206,6 +206,7 @@ def fit_temporal(tracks, kernel: str, *, temporal: str = "auto", tides=(), slow_
     common = {"inducing": inducing, "seed": seed, "position_error_m": position_error_m, "background": background}
     clock = Stopwatch(timing_s)
     if not given.is_steady:
+        _warn_unresolved_tides(tracks, given.tides)
         field = fit(tracks, kernel, checkpoint=checkpoint, progress=not quiet, tides=given.tides, schedule=schedule,
                     slow_time_scale_s=slow_time_scale_s, timing_s=clock.laps, **common)
         decision = TemporalDecision("given", given.tides, given.slow, "components given explicitly")
@@ -227,6 +228,20 @@ def fit_temporal(tracks, kernel: str, *, temporal: str = "auto", tides=(), slow_
             stage.path.unlink(missing_ok=True)
         choice = None
     return _with_record(field, decision), choice, decision
+
+
+def _warn_unresolved_tides(tracks, tides) -> None:
+    """A TemporalWarning per given constituent whose period P exceeds the span T of the tracks' times: over T < P
+    cos/sin(ωt) cannot be told from a constant (Rayleigh criterion against frequency 0, T ≥ 1/f), so its amplitude
+    fields trade off against the steady flow and are not identified."""
+    span_s = float(tracks.time_s.max() - tracks.time_s.min())
+    periods = candidate_periods_s(tracks.frame)
+    for name in tides:
+        if name in periods and span_s < periods[name]:
+            warnings.warn(f"tides {name}: the tracks span {format_duration(span_s)}, less than the {name} period "
+                          f"{format_duration(periods[name])}, so {name} cannot be told from the steady flow "
+                          f"(Rayleigh criterion): its amplitude fields are not identified; drop {name} or give tracks "
+                          f"spanning at least {format_duration(periods[name])}", TemporalWarning, stacklevel=3)
 
 
 def temporal_fit_report(field: fld.FlowField, decision: TemporalDecision) -> dict[str, Any]:
