@@ -38,7 +38,8 @@ def tank_model(tmp_path_factory):
     params = F.optimal_q(params, F.batch_from_observations(obs))
     summary = {"extent_m": {"min": x.min(axis=0).tolist(), "max": x.max(axis=0).tolist()}, "time_span_s": [0.0, 120.0]}
     path = tmp_path_factory.mktemp("tank") / "tank.npz"
-    return save_model(F.FlowField.from_params(params, frame=Frame(), data_summary=summary), path)
+    return save_model(F.FlowField.from_params(params, frame=Frame(), data_summary=summary, position_error_m=5e-4),
+                      path)
 
 
 def test_backtrack_text_at_tank_scale_keeps_mm_and_cm2(tank_model, run_cli):
@@ -107,3 +108,20 @@ def test_tides_on_tracks_shorter_than_their_period_warn():
     with warnings.catch_warnings():
         warnings.simplefilter("error")
         _warn_unresolved_tides(long, ("M2",))
+
+
+def test_score_log_score_names_its_area_unit(tank_model, run_cli, tmp_path):
+    """At tank scale the log score is a log density per m² of sharp (mm) forecasts: positive and large (here about
+    +6 nats), so the table must say per what area it is (before: 'mean Gaussian log density, nats').  Scale: a 2-D
+    Gaussian of s.d. σ per axis has peak density 1/(2πσ²) (standard normal density, from memory): ln ≈ 7.4 at
+    σ = 10 mm, ≈ −3.7 at σ = 1 m, so forecasts a few mm to cm wide score between 0 and 15 nats."""
+    flow = synthetic.TaylorGreen(velocity_scale_m_s=5e-3, length_scale_m=0.2)
+    holdout = synthetic.simulate_drifters(flow, [[0.3, 0.3], [0.6, 0.5]], duration_s=30.0, fix_interval_s=0.5,
+                                          diffusivity_m2_s=1e-5, position_error_m=5e-4, seed=4)
+    holdout.to_csv(tmp_path / "holdout.csv", index=False)
+    code, out, err = run_cli("score", tank_model, tmp_path / "holdout.csv", "--horizons", "5s", "--max-starts", "8",
+                             "--quiet")
+    assert code == 0, err
+    assert "log score: mean Gaussian log density of the observed position per m², nats" in out, out
+    row = next(line for line in out.splitlines() if line.strip().startswith("5 s"))
+    assert 0.0 < float(row.split()[-1]) < 15.0, row      # mm-sharp densities per m²: positive log densities

@@ -348,7 +348,7 @@ def format_score_table(result: dict[str, Any]) -> str:
     lines.append("sep: distance between forecast and observed position; skill: Liu & Weisberg (2011), 1 = perfect, "
                  "0 = no skill; cov: fraction of observed positions inside the forecast's 50 %/95 % ellipse "
                  "(ideal 0.50/0.95), ± its standard error with the starts clustered by track; "
-                 "log score: mean Gaussian log density, nats (higher is better).")
+                 "log score: mean Gaussian log density of the observed position per m², nats (higher is better).")
     lines.extend(result.get("notes", []))
     outside = result.get("outside_support_fraction") or []
     if any(share and share > 0 for share in outside):
