@@ -1,5 +1,6 @@
-"""Printed answers of `driftwise backtrack` at tank scale (a 1 m tank, finds known to mm): the numbers keep units
-that fit their size and are not rounded to 0.
+"""Commands on data they were not designed around: printed answers at tank scale (a 1 m tank, finds known to mm)
+keep units that fit their size and are not rounded to 0; finds outside the data, grids coarser than a find, tides
+longer than the tracks and forecasts far beyond a slow part's data are said, not silently answered.
 
 The model: a GP with fixed hyperparameters and closed-form optimal q on noisy velocities of Taylor–Green cells
 (synthetic.TaylorGreen: 0.2 m cells at 5 mm/s) in a 1 m square — a stand-in for a fitted tank model.
@@ -20,7 +21,7 @@ import driftwise  # noqa: F401  (float64)
 from driftwise.data import synthetic
 from driftwise.data.frame import Frame
 from driftwise.data.tracks import tracks_from_frame
-from driftwise.dynamics.supportcheck import SupportWarning
+from driftwise.dynamics.supportcheck import SupportWarning, warn_beyond_time_span
 from driftwise.dynamics.temporalchoice import TemporalWarning, _warn_unresolved_tides
 from driftwise.gp import field as F
 from driftwise.gp.modelfile import save_model
@@ -125,3 +126,24 @@ def test_score_log_score_names_its_area_unit(tank_model, run_cli, tmp_path):
     assert "log score: mean Gaussian log density of the observed position per m², nats" in out, out
     row = next(line for line in out.splitlines() if line.strip().startswith("5 s"))
     assert 0.0 < float(row.split()[-1]) < 15.0, row      # mm-sharp densities per m²: positive log densities
+
+
+def test_forecast_beyond_the_slow_parts_data_warns():
+    """A model with a slow part of time scale 24 h fitted to 5 d of tracks, forecast 23 d after the last fix (a
+    lon/lat spread from 2024-07-01): before, no word that the slow part there is the prior's.  Inside the span,
+    or less than one time scale beyond it (the default start at the last fix with a 12 h horizon), no warning."""
+    kernel = types.SimpleNamespace(has_slow=True, log_slow_time_scale_s=np.log(86400.0))
+    field = types.SimpleNamespace(params=types.SimpleNamespace(kernel=kernel),
+                                  data_summary={"time_span_s": [0.0, 5 * 86400.0]})
+    with pytest.warns(SupportWarning, match=r"^the forecast reaches 23 d after the data's last fix, more than the slow "
+                                            r"part's time scale 24 h"):
+        warn_beyond_time_span(field, 27 * 86400.0, 28 * 86400.0)
+    with pytest.warns(SupportWarning, match=r"^the forecast reaches 2 d before the data's first fix"):
+        warn_beyond_time_span(field, -2 * 86400.0, 86400.0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        warn_beyond_time_span(field, 5 * 86400.0, 5.5 * 86400.0)
+        warn_beyond_time_span(field, 86400.0, 3 * 86400.0)
+        steady = types.SimpleNamespace(params=types.SimpleNamespace(kernel=types.SimpleNamespace(has_slow=False)),
+                                       data_summary=field.data_summary)
+        warn_beyond_time_span(steady, 27 * 86400.0, 28 * 86400.0)

@@ -58,7 +58,13 @@ from .ensemble import EulerMaruyama, simulate
 from .methods import DEFAULT_PARTICLES, METHODS, default_ensemble_step_s, make_method, method_name
 from .moments import RK4, SphericalCubature
 from .sde import sde_from_field
-from .supportcheck import SupportWarning, path_support, warn_left_support, warn_unsupported_releases  # noqa: F401
+from .supportcheck import (  # noqa: F401
+    SupportWarning,
+    path_support,
+    warn_beyond_time_span,
+    warn_left_support,
+    warn_unsupported_releases,
+)
 from .tabulate import field_or_table_sde, propagate_with_fallback
 
 LEVELS = (0.5, 0.9, 0.95)
@@ -302,6 +308,8 @@ def spread_from_field(field: Any, releases: Any, times_s: Any, *, method: str = 
     if rels[0].start_m.size != dim:
         raise InputError(f"releases have {rels[0].start_m.size} coordinates but the model is {dim}-D")
     warn_unsupported_releases(field, rels)
+    starts = [r.start_time_s for r in rels]
+    warn_beyond_time_span(field, min(starts), max(starts) + float(np.max(times_s)))
     sde = sde_from_field(field, diffusivity_m2_s=diffusivity_m2_s, decorrelation_time_s=decorrelation_time_s)
     table_sde = field_or_table_sde(field, sde, np.stack([r.start_m for r in rels]), len(rels), check_times(times_s),
                                    None if isinstance(obj, EulerMaruyama) else integrator, posterior,

@@ -23,7 +23,7 @@ import numpy as np
 from ..units import format_duration, format_length
 
 __all__ = ["SUPPORT_VARIANCE_FRACTION", "PathSupport", "SupportWarning", "path_support", "point_support_text",
-           "unsupported_releases", "warn_left_support", "warn_unsupported_finds", "warn_unsupported_releases"]
+           "unsupported_releases", "warn_beyond_time_span", "warn_left_support", "warn_unsupported_finds", "warn_unsupported_releases"]
 
 SUPPORT_VARIANCE_FRACTION = 0.9
 
@@ -68,6 +68,25 @@ def warn_unsupported_finds(field: Any, position_m, time_s) -> None:
             warnings.warn(f"find {k + 1} at ({where}) is outside the model's data support ({point_support_text(d, f)}), "
                           "so the flow that carried it there is the prior's, not observed: its release map and "
                           "times extrapolate", SupportWarning, stacklevel=2)
+
+
+def warn_beyond_time_span(field: Any, start_s: float, end_s: float) -> None:
+    """A SupportWarning when a field with a slow part is used over [``start_s``, ``end_s``] (s on the track file's
+    axis) more than its slow time scale T_s before the first or after the last fix: there the slow part s(x, t)
+    has relaxed to its prior (Matérn-3/2 correlation (1 + √3 Δt/T_s) e^{−√3 Δt/T_s} ≤ 0.48 at Δt = T_s), so the
+    forecast rests on the steady and periodic parts only."""
+    kernel = getattr(getattr(field, "params", None), "kernel", None)
+    span = (getattr(field, "data_summary", None) or {}).get("time_span_s")
+    if not getattr(kernel, "has_slow", False) or not span:
+        return
+    scale_s = float(np.exp(kernel.log_slow_time_scale_s))
+    before, after = float(span[0]) - start_s, end_s - float(span[1])
+    if max(before, after) > scale_s:
+        side = (f"{format_duration(after)} after the data's last fix" if after >= before
+                else f"{format_duration(before)} before the data's first fix")
+        warnings.warn(f"the forecast reaches {side}, more than the slow part's time scale {format_duration(scale_s)}: "
+                      "there the slow part is the prior's (no slow change known), so the forecast rests on the "
+                      "steady and periodic parts only", SupportWarning, stacklevel=3)
 
 
 @dataclass(frozen=True)
