@@ -146,3 +146,12 @@ def test_format_speed_and_diffusivity_at_tank_and_ocean_scale():
     assert units.format_speed(0.0123) == "12.3 mm/s"     # below 0.1 m/s in mm/s (a tank's speeds)
     assert units.format_diffusivity(1e-5) == "10 mm²/s"
     assert units.format_diffusivity(2.3) == "2.3 m²/s"
+
+
+def test_estimates_keep_their_significant_figures():
+    # the demo's divergent share 0.00497 ± 0.0012 was printed as "0.00 ± 0.00"
+    format_estimate = units.format_estimate
+    assert format_estimate(0.004966, 0.001234) == "0.00497 ± 0.0012"
+    assert format_estimate(0.995034, 0.0000412) == "0.995 ± 0.000041"
+    assert format_estimate(0.509, 9875.948) == "0.509 ± 9900"
+    assert format_estimate(0.25, None) == "0.25" and format_estimate(0.25, float("nan")) == "0.25"

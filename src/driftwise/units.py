@@ -112,6 +112,14 @@ def _sig(value: float, digits: int) -> str:
     return text
 
 
+def format_estimate(value: float, sd: float | None) -> str:
+    """A dimensionless estimate and its s.d., to 3 and 2 significant figures: (0.00497, 0.0012) → '0.00497 ±
+    0.0012' (a share of 0.005 printed to two decimals read '0.00 ± 0.00'); no s.d.: the value alone."""
+    if sd is None or not math.isfinite(float(sd)):
+        return _sig(float(value), 3)
+    return f"{_sig(float(value), 3)} ± {_sig(float(sd), 2)}"
+
+
 def format_length(value_m: float, digits: int = 3) -> str:
     """A length in m printed in km, m, mm or µm, whichever fits: 12345 → '12.3 km', 0.0005 → '0.5 mm'."""
     return _fitted(value_m, _LENGTH_STEPS, digits)
