@@ -149,11 +149,22 @@ def test_format_speed_and_diffusivity_at_tank_and_ocean_scale():
 
 
 @pytest.mark.parametrize("name, value, text", [
-    ("background_strain_scale_per_s", 3.2e-9, "3.2e-09"), ("background_rotation_scale_per_s", 4e-6, "4e-06"),
+    ("background_strain_scale_per_s", 3.2e-9, "3.2e-09"), ("background_rotation_scale_per_s", 4e-6, "0.000004"),
+    ("background_rotation_scale_per_s", 1.234e-6, "0.00000123"),
     ("background_rotation_scale_per_s", 0.00691, "0.00691"), ("background_rotation_scale_per_s", 1.5e-4, "0.00015"),
     ("background_strain_scale_per_s", 0.0, "0"), ("count", 12345.0, "12300"),
 ])
 def test_unitless_small_values_keep_their_figures(name, value, text):
     """A rate of 3.2e-9 /s (a learned background strain scale of a tank fit) printed as '0' read as "no strain";
-    below 1e-4 the value is scientific with its 3 significant figures (Python format mini-language, 'g')."""
+    below 1e-6 the value is scientific, above it plain, with its 3 significant figures (Python format
+    mini-language, 'g'; 1.234e-6 was printed '0.000001')."""
     assert units.format_named(name, value) == text
+
+
+def test_estimates_keep_their_significant_figures():
+    # the demo's divergent share 0.00497 ± 0.0012 was printed as "0.00 ± 0.00"
+    format_estimate = units.format_estimate
+    assert format_estimate(0.004966, 0.001234) == "0.00497 ± 0.0012"
+    assert format_estimate(0.995034, 0.0000412) == "0.995 ± 0.000041"
+    assert format_estimate(0.509, 9875.948) == "0.509 ± 9900"
+    assert format_estimate(0.25, None) == "0.25" and format_estimate(0.25, float("nan")) == "0.25"

@@ -107,12 +107,23 @@ def _fitted(value: float | None, steps: tuple[tuple[str, float, float], ...], di
 
 
 def _sig(value: float, digits: int) -> str:
-    """``value`` to ``digits`` significant figures, plain notation from 10⁻⁴ to below 10⁶ (1234 → '1230', 0.5 →
-    '0.5', 0.00015 → '0.00015'); outside it scientific (3.2e-09 → '3.2e-09', not '0')."""
+    """``value`` to ``digits`` significant figures, plain notation from 10⁻⁶ to below 10⁶ with as many decimals as
+    the figures need (1234 → '1230', 0.5 → '0.5', 1.234e-6 → '0.00000123', not '0.000001'); outside it scientific
+    (3.2e-09 → '3.2e-09', not '0')."""
     text = f"{value:.{digits}g}"
-    if "e" in text and 1e-4 <= abs(value) < 1e6:
-        text = f"{float(text):f}".rstrip("0").rstrip(".")
+    if "e" in text and 1e-6 <= abs(value) < 1e6:
+        rounded = float(text)
+        text = f"{rounded:.{max(0, digits - 1 - math.floor(math.log10(abs(rounded))))}f}"
+        text = text.rstrip("0").rstrip(".") if "." in text else text
     return text
+
+
+def format_estimate(value: float, sd: float | None) -> str:
+    """A dimensionless estimate and its s.d., to 3 and 2 significant figures: (0.00497, 0.0012) → '0.00497 ±
+    0.0012' (a share of 0.005 printed to two decimals read '0.00 ± 0.00'); no s.d.: the value alone."""
+    if sd is None or not math.isfinite(float(sd)):
+        return _sig(float(value), 3)
+    return f"{_sig(float(value), 3)} ± {_sig(float(sd), 2)}"
 
 
 def format_length(value_m: float, digits: int = 3) -> str:

@@ -45,6 +45,28 @@ def test_help_and_inspect_load_no_numerical_stack(tmp_path):
         == dict.fromkeys(HEAVY, False)
 
 
+def _lapack_threads_after_a_command(tmp_path, env: dict[str, str]) -> dict:
+    """A fresh interpreter runs ``driftwise inspect``, then a LAPACK call through jax: the OpenBLAS threads of
+    the library jax's LAPACK uses (scipy's, loaded by that call; threadpoolctl reads them) and the variable."""
+    path = tmp_path / "small.csv"
+    synthetic.random_walk(3, 10, fix_interval_s=60.0, diffusivity_m2_s=1.0, seed=0).to_csv(path, index=False)
+    probe = (f"import contextlib, io, json, os\nfrom driftwise.app.cli import main\n"
+             f"with contextlib.redirect_stdout(io.StringIO()):\n    assert main(['inspect', {str(path)!r}]) == 0\n"
+             "import jax, jax.numpy as jnp, threadpoolctl\njnp.linalg.cholesky(2.0 * jnp.eye(64)).block_until_ready()\n"
+             "scipy_blas = [i['num_threads'] for i in threadpoolctl.threadpool_info() if 'scipy_openblas-' in i['filepath']]\n"
+             "print(json.dumps({'threads': scipy_blas, 'variable': os.environ.get('OPENBLAS_NUM_THREADS')}))")
+    clean = {k: v for k, v in os.environ.items() if k != "OPENBLAS_NUM_THREADS"}
+    done = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, check=True,
+                          env={**clean, "PYTHONPATH": SRC, **env})
+    return json.loads(done.stdout.strip().splitlines()[-1])
+
+
+def test_a_command_line_run_keeps_lapack_to_one_blas_thread_unless_told(tmp_path):
+    assert _lapack_threads_after_a_command(tmp_path, {}) == {"threads": [1], "variable": "1"}
+    assert _lapack_threads_after_a_command(tmp_path, {"OPENBLAS_NUM_THREADS": "2"}) == {"threads": [2],
+                                                                                          "variable": "2"}
+
+
 def test_the_package_loads_its_public_names_on_first_use():
     loaded = _loaded_after("import driftwise\nassert driftwise.__version__")
     assert loaded["jax"] is False

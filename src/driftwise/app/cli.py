@@ -85,8 +85,17 @@ def build_parser(argv: list[str] | None = None, *, every: bool = True) -> argpar
     return parser
 
 
+# XLA runs the heavy work on its own threads; the LAPACK calls jax makes (Cholesky, triangular solves, through
+# scipy's OpenBLAS, loaded at the first such call) otherwise start OpenBLAS threads that fight XLA's for the cores.
+# One BLAS thread made `fit` on 5,000 fixes 21 % faster on 2 cores (DEVELOPERS.md, "Benchmark record").
+BLAS_THREADS_VARIABLE = "OPENBLAS_NUM_THREADS"
+
+
 def main(argv: list[str] | None = None) -> int:
-    """Entry point of the console script; returns the exit code."""
+    """Entry point of the console script; returns the exit code.  Sets ``OPENBLAS_NUM_THREADS=1`` unless the
+    environment already sets it (it takes effect when scipy's BLAS is loaded after this, as in a command-line
+    run)."""
+    os.environ.setdefault(BLAS_THREADS_VARIABLE, "1")
     warnings.simplefilter("default")
     warnings.formatwarning = lambda message, category, *a, **k: f"driftwise: warning: {message}\n"
     try:

@@ -18,7 +18,7 @@ from ..products.fieldseries import ellipse_figures, field_series, write_field_se
 from ..products.plots import plot_physics_maps, save_figure
 from ..products.writers import FIELD_GRID_SUFFIXES, write_field_grid
 from ..progress import Stopwatch
-from ..units import format_duration, format_length, parse_length_m
+from ..units import format_duration, format_estimate, format_length, parse_length_m
 from .cliparts import (
     EXIT_OK,
     add_json_flag,
@@ -92,8 +92,9 @@ def format_check(s: dict[str, Any]) -> str:
         lines.append(f"  {name:<16} {fam['elbo']:>14.1f} {fam['heldout_log_likelihood']:>26.1f} "
                      f"{fam['heldout_log_likelihood_per_observation']:>9.3f}")
     lines += [f"  {ev['reading']}",
-              f"  divergent share of the velocity variance: {split['divergent_variance_fraction']:.3f} ± "
-              f"{split['std']:.3f} (delta method; 90 % {split['interval_90'][0]:.3f}–{split['interval_90'][1]:.3f})"]
+              f"  divergent share of the velocity variance: "
+              f"{format_estimate(split['divergent_variance_fraction'], split['std'])} (delta method; 90 % "
+              f"{format_estimate(split['interval_90'][0], None)}–{format_estimate(split['interval_90'][1], None)})"]
     grid_spacing = (s.get("grid") or {}).get("spacing_m")
     spacing = "" if grid_spacing is None else f" every {format_length(grid_spacing)}"
     for name in ("divergence", "vorticity"):

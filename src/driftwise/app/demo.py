@@ -56,7 +56,7 @@ from ..products.plots import (
 )
 from ..products.report import digest, write_report
 from ..products.writers import write_field_grid, write_score_csv, write_spread
-from ..units import format_diffusivity, format_duration
+from ..units import format_diffusivity, format_duration, format_estimate
 from ..version import __version__
 from .bay import DemoScenario, write_demo_data
 from .demoanswers import step_backtrack, step_connect
@@ -338,8 +338,8 @@ def step_check(job: Job) -> str:
     v = result["verdict"]
     split = result.get("helmholtz_split", {})
     return (f"divergence-free: {v['answers']['divergence_free']}, curl-free: "
-            f"{v['answers']['curl_free']}; divergent share {result['divergent_variance_fraction']:.2f}"
-            + (f" ± {split['std']:.2f}" if split.get("std") is not None else ""))
+            f"{v['answers']['curl_free']}; divergent share "
+            f"{format_estimate(result['divergent_variance_fraction'], split.get('std'))}")
 
 
 def _check_summary(result: dict) -> dict:

@@ -52,7 +52,7 @@ from ..gp.schedule import Schedule
 from ..gp.training import fit, fit_summary
 from ..gp.variational import exact_q
 from ..progress import Stopwatch
-from ..units import format_duration
+from ..units import format_duration, format_estimate
 from . import physics
 from .timewindow import TimeWindow, data_span_s, span_average
 
@@ -159,8 +159,8 @@ def decide(divergence: physics.Significance, vorticity: physics.Significance, sp
     if split is not None and split.reason is None:
         for key, part, share in (("divergence_free", "curl-free (divergent)", split.fraction),
                                  ("curl_free", "divergence-free (rotational)", 1.0 - split.fraction)):
-            reasons[key].append(f"the {part} part carries {share:.2f} ± {split.std:.2f} of the velocity variance "
-                                "over the data hull (Helmholtz split)")
+            reasons[key].append(f"the {part} part carries {format_estimate(share, split.std)} of the velocity "
+                                "variance over the data hull (Helmholtz split)")
     for key, rate in (("divergence_free", "divergence_per_s"), ("curl_free", "vorticity_per_s")):
         entry = (background or {}).get("coefficients", {}).get(rate)
         if entry is not None:

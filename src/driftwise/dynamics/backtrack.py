@@ -167,9 +167,9 @@ def forward_moments(sde: Any, points_m: np.ndarray, ages_s: np.ndarray, *, metho
     ``start_time_s``: the release time on the model's axis (s; used by a time-dependent SDE); ``tally``: counts
     the candidates rerun through ``fallback_sde`` (the caller warns once; None: one warning here)."""
     obj, integrator = make_method(method, step_s=step_s)
-    count = FallbackTally() if tally is None else tally
     if integrator is None:
         raise InputError("backtrack: use a moment method (the ensemble cannot give a likelihood per candidate)")
+    count = FallbackTally() if tally is None else tally
     means = np.empty((len(points_m), len(ages_s), 2))
     covs = np.empty((len(points_m), len(ages_s), 2, 2))
     for lo in range(0, len(points_m), batch):

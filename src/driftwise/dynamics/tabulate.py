@@ -59,8 +59,7 @@ from .sde import SDE, PointPosterior
 
 __all__ = ["FallbackTally", "PartsPosterior", "TabulatedPosterior", "TimedTable", "field_or_table_sde", "moment_errors",
            "on_table", "posterior_choice", "propagate_with_fallback", "refine", "release_steps", "table_region",
-           "tabulate_field",
-           "tabulate_timed_field", "tabulated_sde", "tabulation_errors", "timed_tabulation_errors"]
+           "tabulate_field", "tabulate_timed_field", "tabulated_sde", "tabulation_errors", "timed_tabulation_errors"]
 
 NODE_BLOCK = 256      # nodes per compiled evaluation block while building a table
 CHECK_POINTS = 2000   # random off-grid points on which the error is measured
@@ -477,13 +476,14 @@ def propagate_with_fallback(sde: SDE, fallback: SDE | None, means0: Any, covs0: 
     starts = None if start_times_s is None else np.broadcast_to(np.asarray(start_times_s, np.float64), means0.shape[:1])
     means, covs = (np.array(a) for a in propagate_batch(sde, means0, covs0, times_s, method=method,
                                                          integrator=integrator, chunk=chunk, start_times_s=starts))
+    if fallback is None:
+        return means, covs
     left = ~(np.isfinite(means).reshape(len(means), -1).all(1) & np.isfinite(covs).reshape(len(covs), -1).all(1))
-    if fallback is not None:
-        count = FallbackTally() if tally is None else tally
-        count(int(left.sum()), len(means0))
-        if tally is None:
-            count.warn(stacklevel=4)
-    if fallback is not None and left.any():
+    count = FallbackTally() if tally is None else tally
+    count(int(left.sum()), len(means0))
+    if tally is None:
+        count.warn(stacklevel=4)
+    if left.any():
         m, c = propagate_batch(fallback, means0[left], covs0[left], times_s, method=method, integrator=integrator,
                                chunk=chunk, start_times_s=None if starts is None else starts[left])
         means[left], covs[left] = np.asarray(m), np.asarray(c)
