@@ -106,7 +106,7 @@ def rmse_table(method: str, steps: int, hours_list: tuple[float, ...]) -> None:
         tracks = vortex_tracks(hours * 3600.0, n=30, hours=24.0)
         vel = F.fit(tracks, inducing=36, position_error_m=SIGMA_M, schedule=Schedule(steps=200), progress=False)
         start = time.perf_counter()
-        schedule = dataclasses.replace(TF.TRANSITION_SCHEDULE, steps=steps, batch_size=64, learning_rate=0.03)
+        schedule = dataclasses.replace(TF.TRANSITION_SCHEDULE, steps=steps)     # the fit's own schedule
         tr = TF.fit_transitions(tracks, vel, position_error_m=SIGMA_M, schedule=schedule, method=method,
                                 progress=False)
         print(f"{hours:>5.1f} h | {rmse_near_data(vel, tracks):.4f}, {vel.diffusivity_m2_s:.3g} | "
