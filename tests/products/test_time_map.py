@@ -16,6 +16,7 @@ from __future__ import annotations
 import json
 import math
 import types
+import warnings
 
 import jax.numpy as jnp
 import numpy as np
@@ -28,6 +29,7 @@ from driftwise.app import cli
 from driftwise.data.frame import Frame
 from driftwise.data.synthetic import GaussianGyre, PulsingGyre, simulate_drifters
 from driftwise.diagnostics import physics as P
+from driftwise.dynamics.supportcheck import SupportWarning
 from driftwise.diagnostics.grid import east_north_jacobian, field_grid
 from driftwise.diagnostics.tidalellipse import tidal_ellipses
 from driftwise.diagnostics.timewindow import TimeWindow, at_time, span_average, window_velocity
@@ -259,9 +261,8 @@ def test_check_tests_a_time_varying_model_averaged_over_its_span(tmp_path, capsy
     assert summary["divergence"]["n_cells"] > 0 and math.isfinite(summary["divergence"]["max_abs_z"])
 
 
-def test_time_mean_with_a_slow_part_against_simpson():
-    """With the slow part (Matérn-3/2 in time, T = 9 h over a 30 h span) the span average's Gauss–Legendre nodes
-    approximate the Simpson rule (scipy.integrate.simpson, 121 instants) on the whole field."""
+def _slow_field():
+    """A steady + M2 + slow field (slow time scale 9 h, fixed) on 200 made-up velocities over the 30 h span."""
     base = tidal_field(Frame())
     rng = np.random.default_rng(5)
     slow_z = rng.uniform(-HALF_M, HALF_M, (6, 2))
@@ -279,6 +280,13 @@ def test_time_mean_with_a_slow_part_against_simpson():
                                 position_error_m=3.0)
     field = F.FlowField.from_params(F.optimal_q(params, F.batch_from_observations(obs)), frame=Frame(),
                                     data_summary={"time_span_s": [float(t[0]), float(t[-1])]})
+    return field, t
+
+
+def test_time_mean_with_a_slow_part_against_simpson():
+    """With the slow part (Matérn-3/2 in time, T = 9 h over a 30 h span) the span average's Gauss–Legendre nodes
+    approximate the Simpson rule (scipy.integrate.simpson, 121 instants) on the whole field."""
+    field, t = _slow_field()
     times = np.linspace(t[0], t[-1], 121)
     weights = np.array([simpson(e, x=times) for e in np.eye(times.size)]) / (t[-1] - t[0])
     points = np.array([[400.0, -900.0], [-1300.0, 200.0]])
@@ -288,3 +296,18 @@ def test_time_mean_with_a_slow_part_against_simpson():
     scale = np.sqrt(np.max(np.diagonal(ref_cov, axis1=1, axis2=2)))
     np.testing.assert_allclose(mean, ref_mean, rtol=0, atol=1e-3 * scale)        # measured 5.7e-5 · scale
     np.testing.assert_allclose(cov, ref_cov, rtol=0, atol=1e-3 * scale**2)       # measured 1.3e-4 · scale²
+
+
+def test_a_map_beyond_the_slow_parts_data_says_so():
+    """A map 2 d after the last fix of a field whose slow part has a 9 h time scale: there the slow part is its
+    prior (Matérn-3/2 correlation 0.48 at one time scale), so the map warns before computing; inside the span and
+    for the span average, no such warning."""
+    field, t = _slow_field()
+    with pytest.warns(SupportWarning, match=r"^the map reaches 2 d after the data's last fix, more than the slow "
+                                            r"part's time scale 9 h"):
+        field_grid(field, spacing_m=1000.0, window=at_time(float(t[-1]) + 2 * 86400.0))
+    for window in (at_time(float(t[len(t) // 2])), None):
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            field_grid(field, spacing_m=1000.0, window=window)
+        assert not [w for w in caught if "slow part" in str(w.message)], [str(w.message) for w in caught]

@@ -17,7 +17,7 @@ import numpy as np
 from pyproj import Geod
 
 from ..data.datascales import MAP_CELLS, map_spacing_m
-from ..dynamics.supportcheck import SUPPORT_VARIANCE_FRACTION, SupportWarning
+from ..dynamics.supportcheck import SUPPORT_VARIANCE_FRACTION, SupportWarning, warn_beyond_time_span
 from ..errors import InputError
 from ..units import format_length
 from .physics import SUPPORT_RATIO, divergence_posterior, vorticity_posterior
@@ -124,6 +124,10 @@ def field_grid(field, *, spacing_m: float | None = None, cells_across: int = MAP
     window = window if field.is_time_varying else None
     if field.is_time_varying:
         window = span_average(field) if window is None else window
+        times = np.concatenate([np.ravel(np.asarray(t, np.float64)) for t, part in zip(window.times_s, window.parts)
+                                if part in (None, "slow")] + [np.zeros(0)])      # the steady/harmonic terms: t = 0
+        if times.size:
+            warn_beyond_time_span(field, float(times.min()), float(times.max()), "the map", stacklevel=4)
         mean, cov = window_velocity(field, points, window)
         ratio = field.local_variance_ratio(points, support_time_s(field, window))
     else:

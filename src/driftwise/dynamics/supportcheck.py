@@ -70,11 +70,12 @@ def warn_unsupported_finds(field: Any, position_m, time_s) -> None:
                           "times extrapolate", SupportWarning, stacklevel=2)
 
 
-def warn_beyond_time_span(field: Any, start_s: float, end_s: float) -> None:
+def warn_beyond_time_span(field: Any, start_s: float, end_s: float, what: str = "the forecast",
+                          stacklevel: int = 3) -> None:
     """A SupportWarning when a field with a slow part is used over [``start_s``, ``end_s``] (s on the track file's
     axis) more than its slow time scale T_s before the first or after the last fix: there the slow part s(x, t)
-    has relaxed to its prior (Matérn-3/2 correlation (1 + √3 Δt/T_s) e^{−√3 Δt/T_s} ≤ 0.48 at Δt = T_s), so the
-    forecast rests on the steady and periodic parts only."""
+    has relaxed to its prior (Matérn-3/2 correlation (1 + √3 Δt/T_s) e^{−√3 Δt/T_s} ≤ 0.48 at Δt = T_s), so
+    ``what`` (the forecast, a map) rests on the steady and periodic parts only."""
     kernel = getattr(getattr(field, "params", None), "kernel", None)
     span = (getattr(field, "data_summary", None) or {}).get("time_span_s")
     if not getattr(kernel, "has_slow", False) or not span:
@@ -84,9 +85,9 @@ def warn_beyond_time_span(field: Any, start_s: float, end_s: float) -> None:
     if max(before, after) > scale_s:
         side = (f"{format_duration(after)} after the data's last fix" if after >= before
                 else f"{format_duration(before)} before the data's first fix")
-        warnings.warn(f"the forecast reaches {side}, more than the slow part's time scale {format_duration(scale_s)}: "
-                      "there the slow part is the prior's (no slow change known), so the forecast rests on the "
-                      "steady and periodic parts only", SupportWarning, stacklevel=3)
+        warnings.warn(f"{what} reaches {side}, more than the slow part's time scale {format_duration(scale_s)}: "
+                      f"there the slow part is the prior's (no slow change known), so {what} rests on the "
+                      "steady and periodic parts only", SupportWarning, stacklevel=stacklevel)
 
 
 @dataclass(frozen=True)
