@@ -23,7 +23,8 @@ import numpy as np
 from ..units import format_duration, format_length
 
 __all__ = ["SUPPORT_VARIANCE_FRACTION", "PathSupport", "SupportWarning", "path_support", "point_support_text",
-           "unsupported_releases", "warn_beyond_time_span", "warn_left_support", "warn_unsupported_finds", "warn_unsupported_releases"]
+           "unsupported_releases", "warn_beyond_time_span", "warn_left_support", "warn_unsupported_finds",
+           "warn_unsupported_releases"]
 
 SUPPORT_VARIANCE_FRACTION = 0.9
 
