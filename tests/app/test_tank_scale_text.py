@@ -18,6 +18,7 @@ import numpy as np
 import pytest
 
 import driftwise  # noqa: F401  (float64)
+from driftwise.app.cmd_fit import format_fit
 from driftwise.data import synthetic
 from driftwise.data.frame import Frame
 from driftwise.data.tracks import tracks_from_frame
@@ -147,3 +148,20 @@ def test_forecast_beyond_the_slow_parts_data_warns():
         steady = types.SimpleNamespace(params=types.SimpleNamespace(kernel=types.SimpleNamespace(has_slow=False)),
                                        data_summary=field.data_summary)
         warn_beyond_time_span(steady, 27 * 86400.0, 28 * 86400.0)
+
+
+def test_fit_text_says_when_a_calibrated_value_sits_on_its_bound():
+    """τ calibrated to 30 d on 2 min of tank tracks was printed like an estimate: the search had stopped at the
+    upper edge of its data-derived range (calibrate.at_bound).  The fit text now says it is a bound."""
+    report = {"kernel": "helmholtz", "n_observations": 240, "n_tracks": 2, "n_inducing": 16, "elbo": 1.0,
+              "elbo_per_observation": 0.004, "steps": 40, "converged": True, "hyperparameters": {},
+              "position_error_m": 5e-4, "position_error_source": "given", "decorrelation_time_s": 30 * 86400.0,
+              "decorrelation_time_source": "calibrated", "likelihood_reason": "velocities", "model": "m.npz",
+              "calibration": {"at_bound": {"diffusivity_m2_s": False, "decorrelation_time_s": True}}}
+    text = format_fit(report)
+    assert "decorrelation time τ = 30 d (calibrated)" in text
+    assert "  calibration: τ ended on the edge of the range the data's scales allow" in text
+    report["calibration"]["at_bound"] = {"diffusivity_m2_s": True, "decorrelation_time_s": True}
+    assert "  calibration: K and τ ended on the edge" in format_fit(report)
+    report["calibration"] = {"skipped": "time-varying model"}
+    assert "ended on the edge" not in format_fit(report)

@@ -169,6 +169,19 @@ def _scales_text(hyper: dict[str, float]) -> str:
                      for name, v in hyper.items())
 
 
+_CALIBRATED = {"diffusivity_m2_s": "K", "decorrelation_time_s": "τ"}
+
+
+def _bound_lines(calibration: dict[str, Any]) -> list[str]:
+    """A line naming the calibrated parameters that ended on the edge of the range the data's scales allow
+    (:mod:`driftwise.data.datascales`): there the likelihood still rose, so the value is a bound, not an estimate."""
+    hit = [symbol for name, symbol in _CALIBRATED.items() if (calibration.get("at_bound") or {}).get(name)]
+    if not hit:
+        return []
+    return [f"  calibration: {' and '.join(hit)} ended on the edge of the range the data's scales allow; these tracks "
+            "do not pin it down, so read it as a bound, not an estimate"]
+
+
 def format_fit(report: dict[str, Any]) -> str:
     """The text ``driftwise fit`` prints: every length, duration, speed and diffusivity in the unit that fits."""
     lines = [f"fit: {report['kernel']} kernel, {report['n_observations']} velocity observations from "
@@ -181,6 +194,7 @@ def format_fit(report: dict[str, Any]) -> str:
     lines += [f"  decorrelation time τ = {format_duration(report['decorrelation_time_s'])} "
               f"({report.get('decorrelation_time_source') or 'length scale / RMS speed'})",
               f"  likelihood: {report['likelihood_reason']}"]
+    lines += _bound_lines(report.get("calibration") or {})
     if "calibration_check" in report:
         check = report["calibration_check"]
         lines.append(f"  calibration check: K = {format_diffusivity(check['diffusivity_m2_s'])}, τ = "
