@@ -39,20 +39,31 @@ def point_support_text(distance_m: float, ratio: float) -> str:
             "of the prior velocity variance there")
 
 
+def _unsupported_points(field: Any, points_m, times_s) -> list[tuple[int, float, float]]:
+    """(index, variance ratio, distance to the data in m) of every point (n, d) at its time (n,) s outside the data
+    support (module docstring; a steady field ignores the times)."""
+    points_m = np.atleast_2d(np.asarray(points_m, np.float64))
+    ratio = field.local_variance_ratio(points_m, np.asarray(times_s, np.float64))
+    distance = field.distance_to_data_m(points_m)
+    return [(k, float(f), float(d)) for k, (f, d) in enumerate(zip(ratio, distance)) if f > SUPPORT_VARIANCE_FRACTION]
+
+
+def _where(point_m) -> str:
+    return ", ".join(format_length(v) for v in point_m)
+
+
 def unsupported_releases(field: Any, releases) -> list[tuple[Any, float, float]]:
     """(release, variance ratio, distance to the data in m) for every release whose start lies outside
     the data support (module docstring)."""
     starts = np.stack([r.start_m for r in releases])
-    ratio = field.local_variance_ratio(starts, np.array([r.start_time_s for r in releases]))   # steady: times unused
-    distance = field.distance_to_data_m(starts)
-    return [(r, float(f), float(d)) for r, f, d in zip(releases, ratio, distance) if f > SUPPORT_VARIANCE_FRACTION]
+    outside = _unsupported_points(field, starts, np.array([r.start_time_s for r in releases]))
+    return [(releases[k], f, d) for k, f, d in outside]
 
 
 def warn_unsupported_releases(field: Any, releases) -> None:
     """One SupportWarning per release that starts outside the data support — before anything runs."""
     for rel, ratio, distance in unsupported_releases(field, releases):
-        where = ", ".join(format_length(v) for v in rel.start_m)
-        warnings.warn(f"release {rel.name} at ({where}) is outside the model's data support "
+        warnings.warn(f"release {rel.name} at ({_where(rel.start_m)}) is outside the model's data support "
                       f"({point_support_text(distance, ratio)}), so its forecast extrapolates the prior, not observed "
                       "flow; its outputs are marked outside_support", SupportWarning, stacklevel=3)
 
@@ -61,14 +72,10 @@ def warn_unsupported_finds(field: Any, position_m, time_s) -> None:
     """One SupportWarning per find (``position_m`` (K, 2) local frame, ``time_s`` (K,)) outside the data support:
     the flow that carried it there, and so where and when it was released, is the prior's, not observed."""
     position_m = np.atleast_2d(np.asarray(position_m, np.float64))
-    ratio = field.local_variance_ratio(position_m, np.asarray(time_s, np.float64))
-    distance = field.distance_to_data_m(position_m)
-    for k, (f, d) in enumerate(zip(ratio, distance)):
-        if f > SUPPORT_VARIANCE_FRACTION:
-            where = ", ".join(format_length(v) for v in position_m[k])
-            warnings.warn(f"find {k + 1} at ({where}) is outside the model's data support ({point_support_text(d, f)}), "
-                          "so the flow that carried it there is the prior's, not observed: its release map and "
-                          "times extrapolate", SupportWarning, stacklevel=2)
+    for k, ratio, distance in _unsupported_points(field, position_m, time_s):
+        warnings.warn(f"find {k + 1} at ({_where(position_m[k])}) is outside the model's data support "
+                      f"({point_support_text(distance, ratio)}), so the flow that carried it there is the prior's, "
+                      "not observed: its release map and times extrapolate", SupportWarning, stacklevel=2)
 
 
 def warn_beyond_time_span(field: Any, start_s: float, end_s: float, what: str = "the forecast",
