@@ -60,6 +60,7 @@ __all__ = [
     "kl_divergence",
     "noise_variance_m2_s2",
     "optimal_q",
+    "prior_trace",
     "q_sqrt_raw_from",
 ]
 
@@ -112,7 +113,7 @@ def batch_projection(params: FieldParams, chol, batch: ObservationBatch) -> jax.
     return jax.vmap(lambda x: _projection(params.kernel, params.inducing_m, chol, x))(batch.position_m)
 
 
-def _prior_trace(params: FieldParams, batch: ObservationBatch) -> jax.Array:
+def prior_trace(params: FieldParams, batch: ObservationBatch) -> jax.Array:
     """tr K at each observation's own input, (b,) m²/s²."""
     if params.is_time_varying:
         return params.kernel.prior_trace(batch.position_m, relative_time_s(params.kernel, batch.time_s))
@@ -127,8 +128,7 @@ def expected_log_likelihood(params: FieldParams, batch: ObservationBatch, chol: 
     a = batch_projection(params, chol, batch)
     mean = a @ params.q_mean                                       # (b, d)
     a_s = a @ params.q_sqrt                                        # (b, d, M·d)
-    prior_trace = _prior_trace(params, batch)
-    var_trace = prior_trace - jnp.sum(a * a, axis=(1, 2)) + jnp.sum(a_s * a_s, axis=(1, 2))
+    var_trace = prior_trace(params, batch) - jnp.sum(a * a, axis=(1, 2)) + jnp.sum(a_s * a_s, axis=(1, 2))
     r = noise_variance_m2_s2(params, batch)
     resid = jnp.sum((batch.velocity_m_s - mean) ** 2, axis=1)
     d = batch.position_m.shape[1]

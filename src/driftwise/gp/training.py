@@ -65,7 +65,7 @@ from .schedule import Checkpoint, Schedule, TrainConfig, TrainState, load_checkp
 from .initial import extent_m as _extent_m
 from .initial import initial_hyperparameters, initial_inducing
 from .temporalfit import MAX_TEMPORAL_INDUCING, temporal_choice, temporal_report, temporal_start
-from .variational import CHUNK, chunks, exact_q, full_elbo, mean_speed_squared, natural_step, natural_step_jit, take
+from .variational import CHUNK, chunks, exact_q, full_elbo, mean_speed_squared, natural_elbo, natural_step_jit, take
 
 __all__ = ["Schedule", "Checkpoint", "fit", "fit_report", "fit_summary"]
 
@@ -73,6 +73,7 @@ FULL_BATCH_FACTOR = 16    # all observations in every step when N ≤ 16 × batc
 MAX_DEFAULT_INDUCING = 256
 REL_TOL = 1e-4            # plateau: ELBO gain between checks below this fraction of max(|ELBO|, N nats)
 INIT_SUBSAMPLE = 16384    # observations used for the initial q
+GROUP_STEPS = 10          # full-batch steps per compiled loop (progress every group: a few seconds)
 RETRIES = 6               # non-finite step: attempts with more jitter / a smaller step
 MAX_JITTER_MULTIPLE = 1e12  # δ ≤ 1e12 · eps · σ² ≈ 2e-4 σ²
 _HYPER_NAMES = ("kernel", "log_diffusivity_m2_s", "log_noise_floor_m_s")
@@ -199,19 +200,50 @@ def _all_finite(tree) -> jax.Array:
 
 @jax.jit(static_argnames=("names", "q_update", "jitter_multiple"))
 def optimiser_step(params, opt_state, batch, n_total, gamma, z_scale, *, names, q_update, jitter_multiple):
-    """One optimiser step → (params, opt_state, ELBO estimate at the step's start, all finite?)."""
-    if q_update == "natural":
-        params = natural_step(params, batch, n_total, gamma, jitter_multiple=jitter_multiple)
+    """One optimiser step → (params, opt_state, ELBO estimate at the step's start, all finite?).
 
-    def objective(trainable):
-        return fld.elbo(_merge(params, trainable, z_scale), batch, n_total, jitter_multiple=jitter_multiple)
-
+    "natural": q takes its natural-gradient step (γ = 1 on all rows: the exact optimum) and Adam moves the
+    hyperparameters along the ELBO's gradient at the new q, both from one projection (:func:`natural_elbo`);
+    "adam": Adam moves q with them."""
     trainable = _split(params, names, z_scale)
-    value, grads = jax.value_and_grad(objective)(trainable)
+    if q_update == "natural":
+        def objective(values):
+            return natural_elbo(_merge(params, values, z_scale), batch, n_total, gamma, jitter_multiple=jitter_multiple)
+
+        (value, stepped), grads = jax.value_and_grad(objective, has_aux=True)(trainable)
+        params = dataclasses.replace(params, q_mean=stepped.q_mean, q_sqrt_raw=stepped.q_sqrt_raw)
+    else:
+        def objective(values):
+            return fld.elbo(_merge(params, values, z_scale), batch, n_total, jitter_multiple=jitter_multiple)
+
+        value, grads = jax.value_and_grad(objective)(trainable)
     updates, new_state = _optimizer().update(jax.tree_util.tree_map(jnp.negative, grads), opt_state, trainable)
     new_params = _merge(params, optax.apply_updates(trainable, updates), z_scale)
     ok = jnp.isfinite(value) & _all_finite(grads) & _all_finite((new_params.q_mean, new_params.q_sqrt_raw))
     return new_params, new_state, value, ok
+
+
+@jax.jit(static_argnames=("names", "q_update", "jitter_multiple"))
+def optimiser_steps(params, opt_state, batch, n_total, gamma, z_scale, count, *, names, q_update, jitter_multiple):
+    """Up to GROUP_STEPS :func:`optimiser_step` calls on the same rows in one compiled loop (``count`` ≤ GROUP_STEPS,
+    traced) → (params, opt_state, ELBO values (GROUP_STEPS,), accepted).  ``accepted`` counts the leading steps whose
+    ELBO and gradient were finite; the state returned is the one after them (a non-finite step changes nothing and
+    ends the group).  One loop keeps XLA's working buffers for all its steps instead of mapping them afresh each step.
+    """
+    def body(i, carry):
+        p, o, values, accepted = carry
+        new_p, new_o, value, ok = optimiser_step(p, o, batch, n_total, gamma, z_scale, names=names, q_update=q_update,
+                                                 jitter_multiple=jitter_multiple)
+        keep = ok & (accepted == i)
+
+        def pick(a, b):
+            return jnp.where(keep, a, b)
+
+        return (jax.tree_util.tree_map(pick, new_p, p), jax.tree_util.tree_map(pick, new_o, o),
+                values.at[i].set(value), accepted + keep.astype(accepted.dtype))
+
+    values = jnp.full(GROUP_STEPS, jnp.nan, dtype=jnp.float64)
+    return jax.lax.fori_loop(0, count, body, (params, opt_state, values, jnp.asarray(0, dtype=jnp.int32)))
 
 
 def _with_learning_rate(opt_state, learning_rate: float):
@@ -285,6 +317,31 @@ def advance(state: TrainState, data: _Data, config: TrainConfig, z_scale: float)
                        "velocities (check units and --max-speed) or too many inducing points for the data")
 
 
+def advance_group(state: TrainState, data: _Data, config: TrainConfig, z_scale: float, count: int) -> TrainState:
+    """``count`` accepted steps on all rows (a full-batch fit) in one compiled loop (:func:`optimiser_steps`); a
+    non-finite step is redone by :func:`advance` with its retries."""
+    if count <= 1:
+        return state if count < 1 else advance(state, data, config, z_scale)
+    names = trainable_names(config.q_update, config.learn_inducing)
+    params, opt_state, values, accepted = optimiser_steps(
+        state.params, state.opt_state, data.batch, float(data.n), 1.0, z_scale, count, names=names,
+        q_update=config.q_update, jitter_multiple=state.jitter_multiple)
+    accepted = int(accepted)
+    state = dataclasses.replace(state, params=params, opt_state=opt_state, step=state.step + accepted,
+                                history=state.history + tuple(float(v) for v in np.asarray(values)[:accepted]))
+    return state if accepted == count else advance_group(advance(state, data, config, z_scale), data, config,
+                                                         z_scale, count - accepted - 1)
+
+
+def _group_size(step: int, steps: int, patience: int, checkpoint: Checkpoint | None, full_batch: bool) -> int:
+    """Steps until the next plateau check, checkpoint or the end, at most GROUP_STEPS (≥ 1); 1 on minibatches,
+    whose rows change every step."""
+    limits = [GROUP_STEPS if full_batch else 1, steps - step, patience - step % patience]
+    if checkpoint is not None:
+        limits.append(checkpoint.every_steps - step % checkpoint.every_steps)
+    return max(1, min(limits))
+
+
 # ------------------------------------------------------------------------------ the loop
 def _train(state: TrainState, data: _Data, config: TrainConfig, schedule: Schedule, *, z_scale: float,
            checkpoint: Checkpoint | None, progress: bool) -> TrainState:
@@ -292,14 +349,15 @@ def _train(state: TrainState, data: _Data, config: TrainConfig, schedule: Schedu
     bar = Progress(steps, initial=min(state.step, steps), enabled=progress, desc="driftwise fit")
     try:
         while state.step < steps and not state.converged:
-            state = advance(state, data, config, z_scale)
+            before = state.step
+            count = _group_size(state.step, steps, patience, checkpoint, config.batch_size >= data.n)
+            state = advance_group(state, data, config, z_scale, count)
             if state.step % patience == 0:
                 state = _check(state, data, config)
             if checkpoint is not None and state.step % checkpoint.every_steps == 0:
                 save_checkpoint(checkpoint.path, state, config)
-            bar.update(1)
-            if state.step % 5 == 0:
-                bar.set_postfix(elbo=f"{state.history[-1]:.6g}")
+            bar.update(state.step - before)
+            bar.set_postfix(elbo=f"{state.history[-1]:.6g}")
     except KeyboardInterrupt:
         if checkpoint is not None:
             save_checkpoint(checkpoint.path, state, config)

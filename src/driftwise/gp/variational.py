@@ -30,7 +30,8 @@ from jax.sharding import PartitionSpec
 from .. import devices
 from . import field as fld
 
-__all__ = ["CHUNK", "chunk_statistics", "data_precision", "exact_q", "full_elbo", "natural_from_q", "natural_step", "q_from_natural"]
+__all__ = ["CHUNK", "chunk_statistics", "data_precision", "exact_q", "full_elbo", "natural_elbo", "natural_from_q",
+           "natural_step", "q_from_natural"]
 
 CHUNK = 8192  # observations per chunk in the exact passes
 
@@ -67,15 +68,18 @@ def data_precision(params: fld.FieldParams, batch: fld.ObservationBatch, *,
     whitened form): the optimal q on these observations alone has Λ = I + the first term
     and Λm = the second.
     """
-    chol = fld.inducing_cholesky(params, jitter_multiple=jitter_multiple)
-    if params.is_time_varying:
-        phi_t = fld.batch_projection(params, chol, batch).reshape(-1, params.q_mean.shape[0]).T
-    else:
-        kzx = params.kernel.gram_matrix(params.inducing_m, batch.position_m)     # (M·d, b·d)
-        phi_t = solve_triangular(chol, kzx, lower=True)                          # Φᵀ
+    phi_t = _projection_t(params, fld.inducing_cholesky(params, jitter_multiple=jitter_multiple), batch)
     weight = 1.0 / fld.noise_variance_m2_s2(params, batch)
     weight = jnp.repeat(weight if mask is None else weight * mask, batch.position_m.shape[1])
     return (phi_t * weight) @ phi_t.T, phi_t @ (weight * batch.velocity_m_s.reshape(-1))
+
+
+def _projection_t(params: fld.FieldParams, chol, batch: fld.ObservationBatch) -> jax.Array:
+    """Φᵀ = L_Z^{−1} K(Z, X), shape (M·d, b·d) (rows of Φ point-major, component-minor)."""
+    if params.is_time_varying:
+        return fld.batch_projection(params, chol, batch).reshape(-1, params.q_mean.shape[0]).T
+    kzx = params.kernel.gram_matrix(params.inducing_m, batch.position_m)     # (M·d, b·d)
+    return solve_triangular(chol, kzx, lower=True)
 
 
 def natural_step(params: fld.FieldParams, batch: fld.ObservationBatch, n_total, gamma, *,
@@ -92,6 +96,45 @@ def natural_step(params: fld.FieldParams, batch: fld.ObservationBatch, n_total, 
 
 
 natural_step_jit = jax.jit(natural_step, static_argnames=("jitter_multiple",))
+
+
+def natural_elbo(params: fld.FieldParams, batch: fld.ObservationBatch, n_total, gamma, *,
+                 jitter_multiple) -> tuple[jax.Array, fld.FieldParams]:
+    """:func:`natural_step` and then :func:`driftwise.gp.field.elbo` at the new q, from one Φ → (ELBO nats,
+    ``params`` with the new q).
+
+    With G = Φᵀ R⁻¹ Φ (the statistic of the step itself) the two q-dependent sums of the ELBO are traces,
+    Σ_n ‖Φ_n‖²/r_n = tr G and Σ_n ‖Φ_n S‖²/r_n = tr(S Sᵀ G), so
+
+        ELBO = (N/b) {Σ_n −½ [d log 2π r_n + (‖y_n − Φ_n m‖² + tr K(x_n, x_n)) / r_n] + ½ [tr G − tr(S Sᵀ G)]} − KL,
+
+    the same number as :func:`driftwise.gp.field.elbo` with one b·d × (M·d)² product (and its gradient) in
+    place of three.  Differentiable in the hyperparameters; the new q enters as a constant (stop_gradient),
+    so with γ = 1 on all rows the gradient is that of Titsias' (2009) collapsed bound, as in the loop that
+    first sets q and then differentiates the ELBO at it.
+    """
+    chol = fld.inducing_cholesky(params, jitter_multiple=jitter_multiple)
+    if params.is_time_varying:
+        phi_t = _projection_t(params, chol, batch)                              # (F, b·d)
+    else:   # L_Z⁻¹ once (F³/3), then a product: XLA's triangular solve on F × b·d is several times slower
+        inverse = solve_triangular(chol, jnp.eye(chol.shape[0], dtype=chol.dtype), lower=True)
+        phi_t = inverse @ params.kernel.gram_matrix(params.inducing_m, batch.position_m)
+    r = fld.noise_variance_m2_s2(params, batch)
+    b, d = batch.position_m.shape
+    weight = jnp.repeat(1.0 / r, d)
+    y = batch.velocity_m_s.reshape(-1)
+    gram = (phi_t * weight) @ phi_t.T                                            # G, (F, F)
+    scale = n_total / b
+    lam_old, eta_old = natural_from_q(params.q_mean, params.q_sqrt)
+    eye = jnp.eye(gram.shape[0], dtype=gram.dtype)
+    lam = (1 - gamma) * lam_old + gamma * (eye + scale * jax.lax.stop_gradient(gram))
+    eta = (1 - gamma) * eta_old + gamma * scale * jax.lax.stop_gradient(phi_t @ (weight * y))
+    mean, sqrt = jax.lax.stop_gradient(q_from_natural(lam, eta))
+    stepped = with_q(params, mean, sqrt)
+    resid = jnp.sum(((y - phi_t.T @ mean) ** 2).reshape(b, d), axis=1)
+    data_term = jnp.sum(d * jnp.log(2.0 * jnp.pi * r) + (resid + fld.prior_trace(params, batch)) / r)
+    trace_term = jnp.trace(gram) - jnp.sum(gram * (sqrt @ sqrt.T))
+    return scale * (-0.5 * data_term + 0.5 * trace_term) - fld.kl_divergence(stepped), stepped
 
 
 def _chunk_natural(params: fld.FieldParams, batch: fld.ObservationBatch, mask: jax.Array, jitter_multiple: float):
