@@ -3,8 +3,10 @@
     PYTHONPATH=src .venv/bin/python tests/benchmarks/bench_everyday.py [--repeats 5] [--heavy-repeats 3]
                                                                        [--parts help,inspect,fit,check,ensemble]
 
-Prints one table of wall times, each the median of fresh processes (``python -c 'driftwise.app.cli.main'``,
-so the import of the package is part of every time), next to the target of issue 13:
+Prints one table of wall times of fresh processes (``python -c 'driftwise.app.cli.main'``, so the import of the
+package is part of every time): the first run (cold: jax compiles everything into an empty compile cache) and the
+median of the later runs (warm: the compiled programs come from that cache, as on a user's second run), next to
+the target of issue 13:
 
 - ``driftwise --help``                                         target < 1 s
 - ``driftwise inspect small.csv`` (5 tracks × 20 fixes)        target < 1 s
@@ -82,8 +84,10 @@ def main() -> None:
     parser.add_argument("--source", default=str(Path(__file__).resolve().parents[2] / "src"),
                         help="the src folder of the driftwise to time (default this checkout's)")
     opts = parser.parse_args()
-    env = {**os.environ, "PYTHONPATH": opts.source}
     with tempfile.TemporaryDirectory() as tmp:
+        # a compile cache of this run's own: the first run of each command is cold (compiles everything), the
+        # later ones find the compiled programs on disk, as a user's second run does
+        env = {**os.environ, "PYTHONPATH": opts.source, "JAX_COMPILATION_CACHE_DIR": str(Path(tmp) / "xla")}
         small, big = Path(tmp) / "small.csv", Path(tmp) / "big.csv"
         write_tracks(small, 5, 20, seed=1)
         write_tracks(big, 50, 100, seed=2)
@@ -95,17 +99,19 @@ def main() -> None:
                                                                   for a in ("--release", xy)]}
         load_before = os.getloadavg()[0]
         print(f"driftwise from {opts.source}; {os.cpu_count()} cores; load (1 min) {load_before:.2f} at start")
-        print(f"{'command':<10} {'wall median s':>14} {'min s':>7} {'max s':>7} {'CPU median s':>13} {'runs':>5} "
-              f"{'target s':>9}  ok")
+        print(f"{'command':<10} {'cold s':>7} {'warm median s':>14} {'min s':>7} {'max s':>7} {'CPU median s':>13} "
+              f"{'runs':>5} {'target s':>9}  cold ok  warm ok")
         parts = opts.parts.split(",")
         if "ensemble" in parts and "fit" not in parts:
             timed(commands["fit"], env, 1)
         for name in parts:
             repeats = opts.repeats if name in ("help", "inspect") else opts.heavy_repeats
-            walls, cpus = timed(commands[name], env, repeats)
-            median = statistics.median(walls)
-            print(f"{name:<10} {median:>14.2f} {min(walls):>7.2f} {max(walls):>7.2f} {statistics.median(cpus):>13.2f} "
-                  f"{repeats:>5} {TARGETS_S[name]:>9.0f}  {'yes' if median < TARGETS_S[name] else 'NO'}", flush=True)
+            walls, cpus = timed(commands[name], env, repeats + 1)
+            cold, median = walls[0], statistics.median(walls[1:])
+            target = TARGETS_S[name]
+            print(f"{name:<10} {cold:>7.2f} {median:>14.2f} {min(walls[1:]):>7.2f} {max(walls[1:]):>7.2f} "
+                  f"{statistics.median(cpus[1:]):>13.2f} {repeats:>5} {target:>9.0f}  "
+                  f"{'yes' if cold < target else 'NO':>7}  {'yes' if median < target else 'NO':>7}", flush=True)
         print(f"load (1 min) {os.getloadavg()[0]:.2f} at end")
 
 

@@ -24,7 +24,7 @@ import driftwise  # noqa: F401  (float64)
 from driftwise.data.observations import Observations
 from driftwise.gp import field as fld
 from driftwise.gp.temporal import TemporalStart
-from driftwise.gp.variational import natural_elbo, natural_step
+from driftwise.gp.variational import natural_elbo, natural_step, traced_elbo
 
 ELL, N, M = 900.0, 48, 14
 HYPER = ("kernel", "log_diffusivity_m2_s", "log_noise_floor_m_s")
@@ -102,3 +102,14 @@ def test_fused_step_on_all_rows_is_the_collapsed_bound():
     bound = (scipy.stats.multivariate_normal(np.zeros(2 * N), q_ff + np.diag(noise)).logpdf(
         np.asarray(batch.velocity_m_s).ravel()) - 0.5 * np.sum((k_diag - np.diag(q_ff)) / noise))
     np.testing.assert_allclose(float(value), bound, rtol=1e-9)
+
+
+@pytest.mark.parametrize("temporal", [False, True])
+def test_traced_elbo_is_the_elbo_at_any_q(temporal):
+    # the trace identities Σ_n ‖Φ_n‖²/r_n = tr G, Σ_n ‖Φ_n S‖²/r_n = tr(S Sᵀ G) at a q away from the optimum,
+    # against field.elbo (itself checked against a dense Hensman et al. 2013, eq. 7 reference in test_field.py)
+    params, batch = _case(2, seed=21, temporal=temporal)
+    part = jax.tree_util.tree_map(lambda a: a[:30], batch)
+    expected = float(fld.elbo(params, part, float(N)))
+    np.testing.assert_allclose(float(traced_elbo(params, part, float(N), jitter_multiple=fld.JITTER_MULTIPLE)),
+                               expected, rtol=1e-10)

@@ -65,7 +65,8 @@ from .schedule import Checkpoint, Schedule, TrainConfig, TrainState, load_checkp
 from .initial import extent_m as _extent_m
 from .initial import initial_hyperparameters, initial_inducing
 from .temporalfit import MAX_TEMPORAL_INDUCING, temporal_choice, temporal_report, temporal_start
-from .variational import CHUNK, chunks, exact_q, full_elbo, mean_speed_squared, natural_elbo, natural_step_jit, take
+from .variational import (CHUNK, chunks, exact_q, full_elbo, mean_speed_squared, natural_elbo, natural_step_jit, take,
+                          traced_elbo)
 
 __all__ = ["Schedule", "Checkpoint", "fit", "fit_report", "fit_summary"]
 
@@ -290,7 +291,7 @@ def _check(state: TrainState, data: _Data, config: TrainConfig) -> TrainState:
     """Append the ELBO (N/b-scaled, current q) on the evaluation rows and flag a plateau."""
     idx = _evaluation_rows(data.n, config.seed)
     batch = data.batch if idx is None else take(data.batch, idx)
-    value = float(fld.elbo(state.params, batch, float(data.n), jitter_multiple=state.jitter_multiple))
+    value = float(traced_elbo(state.params, batch, float(data.n), jitter_multiple=state.jitter_multiple))
     checks = state.checks + (value,)
     return dataclasses.replace(state, checks=checks, converged=plateau_reached(checks, data.n))
 

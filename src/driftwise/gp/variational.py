@@ -31,7 +31,7 @@ from .. import devices
 from . import field as fld
 
 __all__ = ["CHUNK", "chunk_statistics", "data_precision", "exact_q", "full_elbo", "natural_elbo", "natural_from_q",
-           "natural_step", "q_from_natural"]
+           "natural_step", "q_from_natural", "traced_elbo"]
 
 CHUNK = 8192  # observations per chunk in the exact passes
 
@@ -113,28 +113,47 @@ def natural_elbo(params: fld.FieldParams, batch: fld.ObservationBatch, n_total, 
     so with γ = 1 on all rows the gradient is that of Titsias' (2009) collapsed bound, as in the loop that
     first sets q and then differentiates the ELBO at it.
     """
-    chol = fld.inducing_cholesky(params, jitter_multiple=jitter_multiple)
-    if params.is_time_varying:
-        phi_t = _projection_t(params, chol, batch)                              # (F, b·d)
-    else:   # L_Z⁻¹ once (F³/3), then a product: XLA's triangular solve on F × b·d is several times slower
-        inverse = solve_triangular(chol, jnp.eye(chol.shape[0], dtype=chol.dtype), lower=True)
-        phi_t = inverse @ params.kernel.gram_matrix(params.inducing_m, batch.position_m)
-    r = fld.noise_variance_m2_s2(params, batch)
-    b, d = batch.position_m.shape
-    weight = jnp.repeat(1.0 / r, d)
+    phi_t, r, weight, gram = _statistics(params, batch, jitter_multiple)
+    b = batch.position_m.shape[0]
     y = batch.velocity_m_s.reshape(-1)
-    gram = (phi_t * weight) @ phi_t.T                                            # G, (F, F)
     scale = n_total / b
     lam_old, eta_old = natural_from_q(params.q_mean, params.q_sqrt)
     eye = jnp.eye(gram.shape[0], dtype=gram.dtype)
     lam = (1 - gamma) * lam_old + gamma * (eye + scale * jax.lax.stop_gradient(gram))
     eta = (1 - gamma) * eta_old + gamma * scale * jax.lax.stop_gradient(phi_t @ (weight * y))
-    mean, sqrt = jax.lax.stop_gradient(q_from_natural(lam, eta))
-    stepped = with_q(params, mean, sqrt)
-    resid = jnp.sum(((y - phi_t.T @ mean) ** 2).reshape(b, d), axis=1)
+    stepped = with_q(params, *jax.lax.stop_gradient(q_from_natural(lam, eta)))
+    return _elbo_from_statistics(stepped, batch, n_total, phi_t, r, gram), stepped
+
+
+@jax.jit(static_argnames=("jitter_multiple",))
+def traced_elbo(params: fld.FieldParams, batch: fld.ObservationBatch, n_total, *, jitter_multiple) -> jax.Array:
+    """:func:`driftwise.gp.field.elbo` at ``params``' own q, by the traces of G as in :func:`natural_elbo`
+    (one b·d × (M·d)² product instead of per-observation projections; nats)."""
+    phi_t, r, _, gram = _statistics(params, batch, jitter_multiple)
+    return _elbo_from_statistics(params, batch, n_total, phi_t, r, gram)
+
+
+def _statistics(params: fld.FieldParams, batch: fld.ObservationBatch, jitter_multiple):
+    """(Φᵀ (F, b·d), r (b,), R⁻¹ per row (b·d,), G = Φᵀ R⁻¹ Φ (F, F))."""
+    chol = fld.inducing_cholesky(params, jitter_multiple=jitter_multiple)
+    if params.is_time_varying:
+        phi_t = _projection_t(params, chol, batch)
+    else:   # L_Z⁻¹ once (F³/3), then a product: XLA's triangular solve on F × b·d is several times slower
+        inverse = solve_triangular(chol, jnp.eye(chol.shape[0], dtype=chol.dtype), lower=True)
+        phi_t = inverse @ params.kernel.gram_matrix(params.inducing_m, batch.position_m)
+    r = fld.noise_variance_m2_s2(params, batch)
+    weight = jnp.repeat(1.0 / r, batch.position_m.shape[1])
+    return phi_t, r, weight, (phi_t * weight) @ phi_t.T
+
+
+def _elbo_from_statistics(params: fld.FieldParams, batch: fld.ObservationBatch, n_total, phi_t, r, gram):
+    """(N/b) {Σ_n −½ [d log 2π r_n + (‖y_n − Φ_n m‖² + tr K_nn)/r_n] + ½ [tr G − tr(S Sᵀ G)]} − KL at params' q."""
+    b, d = batch.position_m.shape
+    sqrt = params.q_sqrt
+    resid = jnp.sum(((batch.velocity_m_s.reshape(-1) - phi_t.T @ params.q_mean) ** 2).reshape(b, d), axis=1)
     data_term = jnp.sum(d * jnp.log(2.0 * jnp.pi * r) + (resid + fld.prior_trace(params, batch)) / r)
     trace_term = jnp.trace(gram) - jnp.sum(gram * (sqrt @ sqrt.T))
-    return scale * (-0.5 * data_term + 0.5 * trace_term) - fld.kl_divergence(stepped), stepped
+    return n_total / b * (-0.5 * data_term + 0.5 * trace_term) - fld.kl_divergence(params)
 
 
 def _chunk_natural(params: fld.FieldParams, batch: fld.ObservationBatch, mask: jax.Array, jitter_multiple: float):
