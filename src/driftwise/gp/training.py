@@ -39,6 +39,7 @@ attempts.  The fit record (ELBO history, steps, τ and its source) travels as
 from __future__ import annotations
 
 import dataclasses
+import functools
 import hashlib
 import json
 import math
@@ -236,10 +237,7 @@ def optimiser_steps(params, opt_state, batch, n_total, gamma, z_scale, count, *,
         new_p, new_o, value, ok = optimiser_step(p, o, batch, n_total, gamma, z_scale, names=names, q_update=q_update,
                                                  jitter_multiple=jitter_multiple)
         keep = ok & (accepted == i)
-
-        def pick(a, b):
-            return jnp.where(keep, a, b)
-
+        pick = functools.partial(jnp.where, keep)
         return (jax.tree_util.tree_map(pick, new_p, p), jax.tree_util.tree_map(pick, new_o, o),
                 values.at[i].set(value), accepted + keep.astype(accepted.dtype))
 
@@ -330,17 +328,16 @@ def advance_group(state: TrainState, data: _Data, config: TrainConfig, z_scale: 
     accepted = int(accepted)
     state = dataclasses.replace(state, params=params, opt_state=opt_state, step=state.step + accepted,
                                 history=state.history + tuple(float(v) for v in np.asarray(values)[:accepted]))
-    return state if accepted == count else advance_group(advance(state, data, config, z_scale), data, config,
-                                                         z_scale, count - accepted - 1)
+    if accepted < count:   # the failed step again, with retries, then the rest of the group
+        state = advance_group(advance(state, data, config, z_scale), data, config, z_scale, count - accepted - 1)
+    return state
 
 
 def _group_size(step: int, steps: int, patience: int, checkpoint: Checkpoint | None, full_batch: bool) -> int:
     """Steps until the next plateau check, checkpoint or the end, at most GROUP_STEPS (≥ 1); 1 on minibatches,
     whose rows change every step."""
-    limits = [GROUP_STEPS if full_batch else 1, steps - step, patience - step % patience]
-    if checkpoint is not None:
-        limits.append(checkpoint.every_steps - step % checkpoint.every_steps)
-    return max(1, min(limits))
+    every = checkpoint.every_steps if checkpoint is not None else patience
+    return max(1, min(GROUP_STEPS if full_batch else 1, steps - step, patience - step % patience, every - step % every))
 
 
 # ------------------------------------------------------------------------------ the loop
