@@ -158,3 +158,50 @@ def test_fit_json_has_a_timing_table(run_cli, tmp_path):
     assert {"read", "estimate_position_error", "prepare", "optimise", "finish", "save", "total"} <= set(timing)
     assert timing["total"] == pytest.approx(sum(v for k, v in timing.items() if k != "total"), rel=1e-9)
     assert all(v >= 0 for v in timing.values())
+
+
+def test_the_program_restarts_once_with_huge_pages_for_heavy_commands(monkeypatch):
+    """`driftwise fit …` run as the program re-executes itself with glibc's huge-page tunable (same interpreter, same
+    original command line); light commands, an environment that already sets the tunable or turns it off, and other
+    systems do not."""
+    from driftwise.app import cli
+
+    calls = []
+    monkeypatch.setattr(cli.os, "execve", lambda path, args, env: calls.append((path, list(args), env)))
+    monkeypatch.setattr(cli.sys, "platform", "linux")
+    monkeypatch.setattr(cli.sys, "orig_argv", ["/usr/bin/python3", "/venv/bin/driftwise", "fit", "a.csv"])
+    monkeypatch.delenv("GLIBC_TUNABLES", raising=False)
+    monkeypatch.delenv(cli.HUGE_PAGES_OFF, raising=False)
+    cli._restart_with_huge_pages(["fit", "a.csv"])
+    assert len(calls) == 1
+    path, args, env = calls[0]
+    assert path == sys.executable and args == ["/usr/bin/python3", "/venv/bin/driftwise", "fit", "a.csv"]
+    assert env["GLIBC_TUNABLES"] == "glibc.malloc.hugetlb=1"
+    monkeypatch.setenv("GLIBC_TUNABLES", "glibc.malloc.arena_max=2")
+    cli._restart_with_huge_pages(["check", "a.csv"])
+    assert calls[-1][2]["GLIBC_TUNABLES"] == "glibc.malloc.arena_max=2:glibc.malloc.hugetlb=1"
+    calls.clear()
+    for argv in (["inspect", "a.csv"], ["--help"], []):
+        cli._restart_with_huge_pages(argv)
+    monkeypatch.setenv("GLIBC_TUNABLES", "glibc.malloc.hugetlb=0")
+    cli._restart_with_huge_pages(["fit", "a.csv"])
+    monkeypatch.delenv("GLIBC_TUNABLES")
+    monkeypatch.setenv(cli.HUGE_PAGES_OFF, "off")
+    cli._restart_with_huge_pages(["fit", "a.csv"])
+    monkeypatch.delenv(cli.HUGE_PAGES_OFF)
+    monkeypatch.setattr(cli.sys, "platform", "darwin")
+    cli._restart_with_huge_pages(["fit", "a.csv"])
+    assert calls == []
+
+
+def test_the_restarted_program_runs_with_the_tunable_set(tmp_path):
+    """End to end: a fresh interpreter asked to restart for `fit x.csv` comes back (re-executed, same command line)
+    with GLIBC_TUNABLES holding the huge-page setting on Linux; elsewhere it goes on without restarting."""
+    probe = ("import os, sys\nfrom driftwise.app import cli\n"
+             "if os.environ.get('GLIBC_TUNABLES'): print(os.environ['GLIBC_TUNABLES']); sys.exit(0)\n"
+             "cli._restart_with_huge_pages(sys.argv[1:])\nprint('not restarted')")
+    env = {k: v for k, v in os.environ.items() if k not in ("GLIBC_TUNABLES", "DRIFTWISE_HUGE_PAGES")}
+    done = subprocess.run([sys.executable, "-c", probe, "fit", "x.csv"], capture_output=True, text=True,
+                          env={**env, "PYTHONPATH": SRC}, check=True)
+    expected = "glibc.malloc.hugetlb=1" if sys.platform.startswith("linux") else "not restarted"
+    assert done.stdout.strip() == expected

@@ -39,7 +39,7 @@ import numpy as np
 
 from driftwise.data import synthetic
 
-RUN = "import sys; from driftwise.app.cli import main; sys.exit(main(sys.argv[1:]))"
+RUN = "import sys; from driftwise.app.cli import main; sys.exit(main())"   # as the console script runs it
 TARGETS_S = {"help": 1.0, "inspect": 1.0, "fit": 30.0, "check": 60.0, "ensemble": 60.0}
 
 

@@ -123,6 +123,33 @@ def prune_compile_cache(folder: str, limit_bytes: int = COMPILE_CACHE_LIMIT_BYTE
             pass
 
 
+# glibc (2.35+) may back malloc's large blocks by transparent huge pages (a tunable read at process start).  XLA's
+# CPU runtime allocates its working buffers afresh on every call of a compiled program, and touching them page by
+# page cost the 5,000-fix fit 7 s of system time; with 2 MiB pages 3.9 s (optimise 13.3 → 11.7 s; DEVELOPERS.md,
+# "Benchmark record").  So the command line restarts itself once with the tunable set, before anything heavy is
+# imported, unless the environment already names it, DRIFTWISE_HUGE_PAGES=off, or the system is not Linux.
+HUGE_PAGES_TUNABLE = "glibc.malloc.hugetlb=1"
+HUGE_PAGES_OFF = "DRIFTWISE_HUGE_PAGES"
+LIGHT_COMMANDS = ("inspect", "-h", "--help", "--version")
+
+
+def _restart_with_huge_pages(argv: list[str]) -> None:
+    """Re-execute this process with ``GLIBC_TUNABLES`` holding :data:`HUGE_PAGES_TUNABLE` (returns when it does not
+    apply: another system, the option already set or refused, a light command, no original command line)."""
+    tunables = os.environ.get("GLIBC_TUNABLES", "")
+    if (not sys.platform.startswith("linux") or "glibc.malloc.hugetlb" in tunables
+            or os.environ.get(HUGE_PAGES_OFF, "").lower() in ("off", "0", "no", "false")
+            or not argv or argv[0] in LIGHT_COMMANDS or not getattr(sys, "orig_argv", None)):
+        return
+    env = dict(os.environ, GLIBC_TUNABLES=":".join(filter(None, (tunables, HUGE_PAGES_TUNABLE))))
+    try:
+        sys.stdout.flush()
+        sys.stderr.flush()
+        os.execve(sys.executable, sys.orig_argv, env)
+    except OSError:   # cannot restart (e.g. a frozen interpreter): go on as we are
+        return
+
+
 def _set_up_environment() -> None:
     """One BLAS thread and the on-disk compile cache, each unless the environment already decides."""
     os.environ.setdefault(BLAS_THREADS_VARIABLE, "1")
@@ -137,7 +164,10 @@ def _set_up_environment() -> None:
 def main(argv: list[str] | None = None) -> int:
     """Entry point of the console script; returns the exit code.  Sets ``OPENBLAS_NUM_THREADS=1`` and the
     on-disk compile cache unless the environment already decides them (they take effect when scipy's BLAS and
-    jax are loaded after this, as in a command-line run)."""
+    jax are loaded after this, as in a command-line run).  Run as the program (``argv`` None) it first restarts
+    itself once with huge pages for malloc (:func:`_restart_with_huge_pages`)."""
+    if argv is None:
+        _restart_with_huge_pages(sys.argv[1:])
     _set_up_environment()
     warnings.simplefilter("default")
     warnings.formatwarning = lambda message, category, *a, **k: f"driftwise: warning: {message}\n"

@@ -119,13 +119,7 @@ class PointPosterior:
     def from_field(cls, field: Any) -> "PointPosterior":
         """Precompute α, B and λ from a `FlowField` (one triangular inverse, one eigh)."""
         params = field.params
-        chol = field.inducing_chol
-        eye = jnp.eye(chol.shape[0], dtype=chol.dtype)
-        inv_t = jax.scipy.linalg.solve_triangular(chol, eye, lower=True).T
-        alpha = jax.scipy.linalg.solve_triangular(chol.T, params.q_mean, lower=False)
-        s = params.q_sqrt
-        weights, vectors = jnp.linalg.eigh(eye - s @ s.T)
-        return cls(params.kernel, params.inducing_m, alpha, inv_t @ vectors, weights)
+        return cls(params.kernel, params.inducing_m, *_point_arrays(params, field.inducing_chol))
 
     def mean_at(self, x: jax.Array) -> jax.Array:
         """Posterior mean velocity at x (d,) m → (d,) m/s."""
@@ -358,3 +352,15 @@ def transport_sde(posterior: Any, diffusivity_m2_s: Any, decorrelation_time_s: A
     """The field SDE with K and τ as (possibly traced) jax scalars, no input checks (for jit/grad)."""
     return field_sde(posterior, jnp.asarray(diffusivity_m2_s, jnp.float64),
                       jnp.asarray(decorrelation_time_s, jnp.float64), velocity_memory)
+
+
+@jax.jit
+def _point_arrays(params: Any, chol: jax.Array) -> tuple[jax.Array, jax.Array, jax.Array]:
+    """(α, B, λ) of :meth:`PointPosterior.from_field`: α = L_Z^{−T} m, and B = L_Z^{−T} V, λ with
+    V diag(λ) Vᵀ = I − S Sᵀ (eigh), in one compiled program."""
+    eye = jnp.eye(chol.shape[0], dtype=chol.dtype)
+    inv_t = jax.scipy.linalg.solve_triangular(chol, eye, lower=True).T
+    alpha = jax.scipy.linalg.solve_triangular(chol.T, params.q_mean, lower=False)
+    s = params.q_sqrt
+    weights, vectors = jnp.linalg.eigh(eye - s @ s.T)
+    return alpha, inv_t @ vectors, weights

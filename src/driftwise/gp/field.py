@@ -428,23 +428,13 @@ class FlowField:
         Cov[c, u] = diag(s²) F(Z)ᵀ with u = v(Z), so with A_c = diag(s²) F(Z)ᵀ L_Z^{−T}:
         mean A_c m and covariance diag(s²) − A_c A_cᵀ + A_c S Sᵀ A_cᵀ (as for the velocity).
         """
-        names, columns, variances = [], [], []
-        z = self.params.inducing_m
-        for background in self.params.kernel.backgrounds():
-            f, var = features(background, z)                                  # (M, d, p), (p,)
-            names += coefficient_names(background.terms, self.dim)
-            columns.append(f.reshape(-1, f.shape[-1]))
-            variances.append(var)
+        names = [name for background in self.params.kernel.backgrounds()
+                 for name in coefficient_names(background.terms, self.dim)]
         if not names:
             return [], np.zeros(0), np.zeros((0, 0))
-        var = jnp.concatenate(variances)
-        cross = jnp.concatenate(columns, axis=1) * var                         # Cov[u, c], (M·d, p)
         chol = self.inducing_chol[0] if self.is_time_varying else self.inducing_chol   # the steady block comes first
-        a = solve_triangular(chol, cross, lower=True).T                         # (p, M·d)
-        a = jnp.pad(a, ((0, 0), (0, self.params.q_mean.shape[0] - a.shape[1])))
-        a_s = a @ self.params.q_sqrt
-        cov = jnp.diag(var) - a @ a.T + a_s @ a_s.T
-        return names, np.asarray(a @ self.params.q_mean), np.asarray(0.5 * (cov + cov.T))
+        mean, cov = _background_moments(self.params, chol)
+        return names, np.asarray(mean), np.asarray(cov)
 
     def _local_ratio_one(self, x: jax.Array) -> jax.Array:
         """tr Σ_loc(x) / tr K_loc(x, x) for the stationary (non-background) part of the prior."""
@@ -586,3 +576,21 @@ def _check_points(points, dim: int) -> np.ndarray:
         row = int(np.argmax(~np.all(np.isfinite(x), axis=1)))
         raise InputError(f"points row {row} has NaN or infinite coordinates")
     return x
+
+
+@jax.jit
+def _background_moments(params: FieldParams, chol: jax.Array) -> tuple[jax.Array, jax.Array]:
+    """Mean A_c m and covariance diag(s²) − A_c A_cᵀ + A_c S Sᵀ A_cᵀ of the background coefficients
+    (:meth:`FlowField.background_posterior`), in one compiled program."""
+    columns, variances = [], []
+    for background in params.kernel.backgrounds():
+        f, var = features(background, params.inducing_m)                     # (M, d, p), (p,)
+        columns.append(f.reshape(-1, f.shape[-1]))
+        variances.append(var)
+    var = jnp.concatenate(variances)
+    cross = jnp.concatenate(columns, axis=1) * var                             # Cov[u, c], (M·d, p)
+    a = solve_triangular(chol, cross, lower=True).T                             # (p, M·d)
+    a = jnp.pad(a, ((0, 0), (0, params.q_mean.shape[0] - a.shape[1])))
+    a_s = a @ params.q_sqrt
+    cov = jnp.diag(var) - a @ a.T + a_s @ a_s.T
+    return a @ params.q_mean, 0.5 * (cov + cov.T)

@@ -32,9 +32,10 @@ Q_UPDATES = ("auto", "natural", "adam")
 class Schedule:
     """How :func:`driftwise.fit` optimises (validated on construction; InputError names the bad field).
 
-    steps           at most this many optimiser steps (≥ 0)
+    steps           at most this many optimiser steps (≥ 0): L-BFGS-B iterations when every step sees all
+                    rows with q exact (the default up to 16 × batch_size rows), Adam steps otherwise
     batch_size      rows per step; N ≤ 16 × batch_size uses all N observations in every step
-    learning_rate   Adam step size on the log hyperparameters (Kingma & Ba 2015)
+    learning_rate   Adam step size on the log hyperparameters (Kingma & Ba 2015); unused by L-BFGS-B
     patience        steps between plateau checks of the ELBO
     q_update        "auto" (exact optimal q every step), "natural" (natural-gradient steps of length
                     ``natural_step`` towards each minibatch's optimum) or "adam" (Adam on q too)

@@ -3,34 +3,38 @@
 The objective is the sparse variational ELBO of :mod:`driftwise.gp.field` (Titsias 2009;
 Hensman, Fusi & Lawrence 2013, "Gaussian processes for big data"), maximised over the
 kernel hyperparameters, the eddy diffusivity K and the noise floor σ₀ (optionally also
-the inducing inputs Z), with Adam (Kingma & Ba 2015, via optax) on log parameters.
+the inducing inputs Z) on log parameters.
 
 Schedule (``q_update="auto"``):
 
 * N ≤ 16 × batch_size (16 384 observations at the default batch): every step uses all
-  observations; q(w) is first set to its exact optimum for the current hyperparameters
-  (:mod:`driftwise.gp.variational`), then Adam moves the hyperparameters along the ELBO
-  gradient at that q — which is the gradient of Titsias' collapsed bound.  Deterministic.
-  On all rows this reaches the collapsed bound, where minibatches with Adam on q stop below
-  it (DEVELOPERS.md, "Benchmark record", keeps the measured figures); hence the generous threshold.
-* larger N: the same exact-q steps on a seeded random subsample of 16 × batch_size
-  observations, whose own (unscaled) collapsed bound sets the hyperparameters; q is
-  then made optimal on all N (below); the subsample's bound sets hyperparameters as good as
-  all-data steps (DEVELOPERS.md, "Benchmark record").
+  observations with q(w) at its exact optimum for the current hyperparameters
+  (:mod:`driftwise.gp.variational`), so the objective is Titsias' collapsed bound, a smooth
+  deterministic function of the hyperparameters, maximised by L-BFGS-B
+  (:mod:`driftwise.gp.quasinewton`; one iteration is one step).  On all rows this reaches
+  the collapsed bound, where minibatches with Adam on q stop below it (DEVELOPERS.md,
+  "Benchmark record", keeps the measured figures).
+* larger N: the same on a seeded random subsample of 16 × batch_size observations, whose
+  own (unscaled) collapsed bound sets the hyperparameters; q is then made optimal on all N
+  (below); the subsample's bound sets hyperparameters as good as all-data steps
+  (DEVELOPERS.md, "Benchmark record").
 * ``q_update="adam"`` or ``"natural"`` with N > 16 × batch_size: minibatches instead
-  (Hensman et al.); Adam on q(w) and the hyperparameters together, or natural-gradient
-  steps of length ``natural_step`` towards each minibatch's optimum.  Both stop below
-  the collapsed bound (see above), so neither is the default.
+  (Hensman et al.) with Adam (:mod:`driftwise.gp.adamstep`, Kingma & Ba 2015) on q(w) and
+  the hyperparameters together, or natural-gradient steps of length ``natural_step``
+  towards each minibatch's optimum.  Both stop below the collapsed bound (see above), so
+  neither is the default.  Learned inducing points (``learn_inducing``) also take Adam steps.
 
 q starts at the exact optimum (from ≤ 16 384 random observations) and ends there (from
 all data, chunk by chunk); the reported ELBO is then evaluated on all observations.
-Every ``patience`` steps the ELBO on fixed evaluation rows is checked; the fit stops when
-it gained less than 1e-4 × max(|ELBO|, N nats) since the previous check.
+Every ``patience`` steps the ELBO (the bound itself, or on fixed evaluation rows for
+Adam) is checked; the fit stops when it gained less than 1e-4 × max(|ELBO|, N nats)
+since the previous check.
 
 Minibatches are epochs of a permutation from ``numpy.random.default_rng([seed, epoch])``,
 so the random state is (seed, step); with the parameters, the optimiser state (learning
 rate included), the jitter, the ELBO history and the checks it is what a checkpoint
-holds, and a resumed fit retraces the uninterrupted one.  A non-finite ELBO or gradient
+holds, and a resumed Adam fit retraces the uninterrupted one (a resumed L-BFGS-B fit
+starts a new curvature memory at the checkpoint and reaches the same plateau).  A non-finite ELBO or gradient
 is retried with 100× the jitter, then also half the learning rate, and raises after six
 attempts.  The fit record (ELBO history, steps, τ and its source) travels as
 ``FlowField.fit_info``; τ defaults to length scale / RMS posterior-mean speed.
@@ -39,7 +43,6 @@ attempts.  The fit record (ELBO history, steps, τ and its source) travels as
 from __future__ import annotations
 
 import dataclasses
-import functools
 import hashlib
 import json
 import math
@@ -49,7 +52,6 @@ from typing import Any
 import jax
 import jax.numpy as jnp
 import numpy as np
-import optax
 
 from ..data.datascales import check_position_error, data_scales
 from ..data.frame import Frame
@@ -60,13 +62,15 @@ from ..data.utctime import UNIX_EPOCH_UTC
 from ..errors import InputError
 from ..progress import Progress, Stopwatch
 from . import field as fld
+from .adamstep import GROUP_STEPS, optimiser_step, optimiser_steps, optimizer, trainable_names, with_learning_rate
 from .background import BACKGROUNDS
 from .kernels import BASES, DEFAULT_FAMILY, KERNEL_FAMILIES
-from .schedule import Checkpoint, Schedule, TrainConfig, TrainState, load_checkpoint, save_checkpoint
 from .initial import extent_m as _extent_m
 from .initial import initial_hyperparameters, initial_inducing
+from .quasinewton import maximise_bound, split_trainable
+from .schedule import Checkpoint, Schedule, TrainConfig, TrainState, load_checkpoint, save_checkpoint
 from .temporalfit import MAX_TEMPORAL_INDUCING, temporal_choice, temporal_report, temporal_start
-from .variational import (CHUNK, chunks, exact_q, full_elbo, mean_speed_squared, natural_elbo, natural_step_jit, take,
+from .variational import (CHUNK, chunks, exact_q, full_elbo, mean_speed_squared, natural_step_jit, take,
                           traced_elbo)
 
 __all__ = ["Schedule", "Checkpoint", "fit", "fit_report", "fit_summary"]
@@ -75,10 +79,8 @@ FULL_BATCH_FACTOR = 16    # all observations in every step when N ≤ 16 × batc
 MAX_DEFAULT_INDUCING = 256
 REL_TOL = 1e-4            # plateau: ELBO gain between checks below this fraction of max(|ELBO|, N nats)
 INIT_SUBSAMPLE = 16384    # observations used for the initial q
-GROUP_STEPS = 10          # full-batch steps per compiled loop (progress every group: a few seconds)
 RETRIES = 6               # non-finite step: attempts with more jitter / a smaller step
 MAX_JITTER_MULTIPLE = 1e12  # δ ≤ 1e12 · eps · σ² ≈ 2e-4 σ²
-_HYPER_NAMES = ("kernel", "log_diffusivity_m2_s", "log_noise_floor_m_s")
 
 
 # ----------------------------------------------------------------------------------- data
@@ -173,83 +175,6 @@ def _strong(tree):
     return jax.tree_util.tree_map(lambda leaf: jnp.asarray(np.asarray(leaf, dtype=np.float64)), tree)
 
 
-# ------------------------------------------------------------------------------ one step
-def _optimizer() -> optax.GradientTransformation:
-    """Adam whose learning rate lives in the state (so it is checkpointed and can be halved)."""
-    return optax.inject_hyperparams(optax.adam, hyperparam_dtype=jnp.float64)(learning_rate=Schedule().learning_rate)
-
-
-def trainable_names(q_update: str, learn_inducing: bool) -> tuple[str, ...]:
-    """The FieldParams leaves Adam moves: the hyperparameters, q too for "adam", Z when learned."""
-    names = _HYPER_NAMES + (("q_mean", "q_sqrt_raw") if q_update == "adam" else ())
-    return names + (("inducing_m",) if learn_inducing else ())
-
-
-def _split(params: fld.FieldParams, names: tuple[str, ...], z_scale) -> dict[str, Any]:
-    """The trainable leaves; Z enters divided by the inducing spacing so one Adam step size suits all."""
-    return {name: getattr(params, name) / z_scale if name == "inducing_m" else getattr(params, name)
-            for name in names}
-
-
-def _merge(params: fld.FieldParams, trainable: dict[str, Any], z_scale) -> fld.FieldParams:
-    values = {name: value * z_scale if name == "inducing_m" else value for name, value in trainable.items()}
-    return dataclasses.replace(params, **values)
-
-
-def _all_finite(tree) -> jax.Array:
-    return jnp.all(jnp.array([jnp.all(jnp.isfinite(leaf)) for leaf in jax.tree_util.tree_leaves(tree)]))
-
-
-@jax.jit(static_argnames=("names", "q_update", "jitter_multiple"))
-def optimiser_step(params, opt_state, batch, n_total, gamma, z_scale, *, names, q_update, jitter_multiple):
-    """One optimiser step → (params, opt_state, ELBO estimate at the step's start, all finite?).
-
-    "natural": q takes its natural-gradient step (γ = 1 on all rows: the exact optimum) and Adam moves the
-    hyperparameters along the ELBO's gradient at the new q, both from one projection (:func:`natural_elbo`);
-    "adam": Adam moves q with them."""
-    trainable = _split(params, names, z_scale)
-    if q_update == "natural":
-        def objective(values):
-            return natural_elbo(_merge(params, values, z_scale), batch, n_total, gamma, jitter_multiple=jitter_multiple)
-
-        (value, stepped), grads = jax.value_and_grad(objective, has_aux=True)(trainable)
-        params = dataclasses.replace(params, q_mean=stepped.q_mean, q_sqrt_raw=stepped.q_sqrt_raw)
-    else:
-        def objective(values):
-            return fld.elbo(_merge(params, values, z_scale), batch, n_total, jitter_multiple=jitter_multiple)
-
-        value, grads = jax.value_and_grad(objective)(trainable)
-    updates, new_state = _optimizer().update(jax.tree_util.tree_map(jnp.negative, grads), opt_state, trainable)
-    new_params = _merge(params, optax.apply_updates(trainable, updates), z_scale)
-    ok = jnp.isfinite(value) & _all_finite(grads) & _all_finite((new_params.q_mean, new_params.q_sqrt_raw))
-    return new_params, new_state, value, ok
-
-
-@jax.jit(static_argnames=("names", "q_update", "jitter_multiple"))
-def optimiser_steps(params, opt_state, batch, n_total, gamma, z_scale, count, *, names, q_update, jitter_multiple):
-    """Up to GROUP_STEPS :func:`optimiser_step` calls on the same rows in one compiled loop (``count`` ≤ GROUP_STEPS,
-    traced) → (params, opt_state, ELBO values (GROUP_STEPS,), accepted).  ``accepted`` counts the leading steps whose
-    ELBO and gradient were finite; the state returned is the one after them (a non-finite step changes nothing and
-    ends the group).  One loop keeps XLA's working buffers for all its steps instead of mapping them afresh each step.
-    """
-    def body(i, carry):
-        p, o, values, accepted = carry
-        new_p, new_o, value, ok = optimiser_step(p, o, batch, n_total, gamma, z_scale, names=names, q_update=q_update,
-                                                 jitter_multiple=jitter_multiple)
-        keep = ok & (accepted == i)
-        pick = functools.partial(jnp.where, keep)
-        return (jax.tree_util.tree_map(pick, new_p, p), jax.tree_util.tree_map(pick, new_o, o),
-                values.at[i].set(value), accepted + keep.astype(accepted.dtype))
-
-    values = jnp.full(GROUP_STEPS, jnp.nan, dtype=jnp.float64)
-    return jax.lax.fori_loop(0, count, body, (params, opt_state, values, jnp.asarray(0, dtype=jnp.int32)))
-
-
-def _with_learning_rate(opt_state, learning_rate: float):
-    hyper = dict(opt_state.hyperparams, learning_rate=jnp.asarray(learning_rate, dtype=jnp.float64))
-    return opt_state._replace(hyperparams=hyper)
-
-
 def _batch_indices(n: int, batch_size: int, seed: int, step: int) -> np.ndarray | None:
     """Rows of step ``step``: slice ``step mod E`` of the permutation of epoch ``step // E`` (None = all rows)."""
     if batch_size >= n:
@@ -309,7 +234,7 @@ def advance(state: TrainState, data: _Data, config: TrainConfig, z_scale: float)
                                        history=state.history + (float(value),), jitter_multiple=jitter)
         jitter = min(jitter * 100.0, MAX_JITTER_MULTIPLE)
         if attempt % 2 == 1:
-            opt_state = _with_learning_rate(opt_state, float(opt_state.hyperparams["learning_rate"]) / 2.0)
+            opt_state = with_learning_rate(opt_state, float(opt_state.hyperparams["learning_rate"]) / 2.0)
     lr = float(opt_state.hyperparams["learning_rate"])
     raise RuntimeError(f"fit: the ELBO or its gradient stayed non-finite at step {state.step} after {RETRIES} retries "
                        f"(jitter multiple {jitter:.0e}, learning rate {lr:.2e}); the data may hold extreme "
@@ -343,28 +268,53 @@ def _group_size(step: int, steps: int, patience: int, checkpoint: Checkpoint | N
 # ------------------------------------------------------------------------------ the loop
 def _train(state: TrainState, data: _Data, config: TrainConfig, schedule: Schedule, *, z_scale: float,
            checkpoint: Checkpoint | None, progress: bool) -> TrainState:
+    """Adam steps (:func:`advance_group`), or L-BFGS-B iterations (:mod:`driftwise.gp.quasinewton`) when every step
+    sees all rows with q at its optimum; either way a plateau check every ``patience`` steps and a checkpoint
+    every ``every_steps``."""
     steps, patience = schedule.steps, schedule.patience
     bar = Progress(steps, initial=min(state.step, steps), enabled=progress, desc="driftwise fit")
+    latest = [state]
+
+    def after_step(now: TrainState, before: int, check) -> TrainState:
+        if now.step % patience == 0:
+            now = check(now)
+        if checkpoint is not None and now.step % checkpoint.every_steps == 0:
+            save_checkpoint(checkpoint.path, now, config)
+        bar.update(now.step - before)
+        bar.set_postfix(elbo=f"{now.history[-1]:.6g}")
+        latest[0] = now
+        return now
+
     try:
-        while state.step < steps and not state.converged:
-            before = state.step
+        if uses_quasi_newton(config, data.n):
+            names = trainable_names(config.q_update, config.learn_inducing)
+            maximise_bound(state, data.batch, float(data.n), names=names, z_scale=z_scale, steps=steps,
+                           after_step=lambda now: after_step(now, now.step - 1, lambda s: _check_bound(s, data.n)))
+        while latest[0].step < steps and not latest[0].converged:
+            state = latest[0]
             count = _group_size(state.step, steps, patience, checkpoint, config.batch_size >= data.n)
-            state = advance_group(state, data, config, z_scale, count)
-            if state.step % patience == 0:
-                state = _check(state, data, config)
-            if checkpoint is not None and state.step % checkpoint.every_steps == 0:
-                save_checkpoint(checkpoint.path, state, config)
-            bar.update(state.step - before)
-            bar.set_postfix(elbo=f"{state.history[-1]:.6g}")
+            after_step(advance_group(state, data, config, z_scale, count), state.step,
+                       lambda now: _check(now, data, config))
     except KeyboardInterrupt:
         if checkpoint is not None:
-            save_checkpoint(checkpoint.path, state, config)
+            save_checkpoint(checkpoint.path, latest[0], config)
         raise
     finally:
         bar.close()
     if checkpoint is not None:
-        save_checkpoint(checkpoint.path, state, config)
-    return state
+        save_checkpoint(checkpoint.path, latest[0], config)
+    return latest[0]
+
+
+def uses_quasi_newton(config: TrainConfig, n: int) -> bool:
+    """True when every step sees all n rows with q exact (natural steps of length 1): a deterministic objective."""
+    return config.q_update == "natural" and config.batch_size >= n and not config.learn_inducing
+
+
+def _check_bound(state: TrainState, n: int) -> TrainState:
+    """The plateau check of a quasi-Newton fit: on the bound of the last iterate (all rows, exact q)."""
+    checks = state.checks + (state.history[-1],)
+    return dataclasses.replace(state, checks=checks, converged=plateau_reached(checks, n))
 
 
 def start_state(data: _Data, config: TrainConfig, *, learning_rate: float,
@@ -373,7 +323,7 @@ def start_state(data: _Data, config: TrainConfig, *, learning_rate: float,
     params = _initial_params(data, config)
     names = trainable_names(config.q_update, config.learn_inducing)
     z_scale = _z_scale(params)
-    opt_state = _with_learning_rate(_optimizer().init(_split(params, names, z_scale)), learning_rate)
+    opt_state = with_learning_rate(optimizer().init(split_trainable(params, names, z_scale)), learning_rate)
     state = TrainState(params, opt_state, 0, (), fld.JITTER_MULTIPLE)
     if checkpoint is not None and checkpoint.resume and checkpoint.path.exists():
         return load_checkpoint(checkpoint.path, state, config), z_scale
@@ -412,6 +362,8 @@ def _finish(state: TrainState, data: _Data, config: TrainConfig, schedule: Sched
             "steps": state.step, "max_steps": steps, "converged": state.converged, "patience_steps": patience,
             "plateau_checks": list(state.checks),
             "q_update": config.q_update, "seed": config.seed, "batch_size": min(config.batch_size, data.n),
+            "optimiser": ("L-BFGS-B on the collapsed bound" if uses_quasi_newton(config, config.subsample or data.n)
+                          else "Adam"),
             "learning_rate_final": float(state.opt_state.hyperparams["learning_rate"]),
             "decorrelation_time_source": "length_scale/rms_speed", "rms_speed_m_s": rms_speed,
             "length_scale_m": length,
@@ -457,8 +409,9 @@ def length_scale_m(kernel) -> float:
 
 def _decorrelation_time_s(params: fld.FieldParams, data: _Data, jitter: float) -> tuple[float, float, float]:
     """τ = ℓ / U_rms (s), U_rms the RMS posterior-mean speed at the observation midpoints (Taylor 1921)."""
-    total = sum(float(mean_speed_squared(params, take(data.batch, idx), jitter_multiple=jitter))
-                for idx in chunks(data.n))
+    parts = chunks(data.n)
+    total = sum(float(mean_speed_squared(params, data.batch if len(parts) == 1 else take(data.batch, idx),
+                                         jitter_multiple=jitter)) for idx in parts)
     rms = math.sqrt(total / data.n)
     length = length_scale_m(params.kernel)
     return length / max(rms, 1e-9), rms, length

@@ -225,14 +225,23 @@ def exact_q(params: fld.FieldParams, batch: fld.ObservationBatch, *, jitter_mult
     lam, eta = np.eye(params.q_mean.shape[0]), np.zeros(params.q_mean.shape[0])
     for d_lam, d_eta in zip(lam_chunks, eta_chunks):
         lam, eta = lam + d_lam, eta + d_eta
-    return with_q(params, *q_from_natural(jnp.asarray(lam), jnp.asarray(eta)))
+    return _with_natural_q(params, jnp.asarray(lam), jnp.asarray(eta))
+
+
+@jax.jit
+def _with_natural_q(params: fld.FieldParams, lam: jax.Array, eta: jax.Array) -> fld.FieldParams:
+    """``params`` with the q of natural parameters (Λ, η), in one compiled program."""
+    return with_q(params, *q_from_natural(lam, eta))
 
 
 def full_elbo(params: fld.FieldParams, batch: fld.ObservationBatch, *, jitter_multiple: float, mesh=None) -> float:
     """ELBO over all observations: Σ_n E_q log N(y_n | v(x_n), R_n) − KL(q ‖ p) (nats), chunked over all devices."""
     per_chunk = chunk_statistics(_chunk_log_likelihood, params, for_model(params, batch),
                                  jitter_multiple=jitter_multiple, mesh=mesh)
-    return float(sum(float(v) for v in per_chunk)) - float(fld.kl_divergence(params))
+    return float(sum(float(v) for v in per_chunk)) - float(_kl_divergence(params))
+
+
+_kl_divergence = jax.jit(fld.kl_divergence)
 
 
 @jax.jit(static_argnames=("jitter_multiple",))
