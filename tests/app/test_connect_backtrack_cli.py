@@ -146,6 +146,12 @@ def test_backtrack_several_finds_on_a_metric_model(models, run_cli):
     (["backtrack", "{metric}", "--found", "1km,2km", "--at", "{t0}", "--out", "r.geojson"], "lon/lat"),
     (["backtrack", "{metric}", "--found", "1km,2km", "--at", "{t0}", "--spacing", "1mm"], "memory"),
     (["backtrack", "{metric}", "--found", "1km,2km", "--at", "6"], "1970-01-01T00:00:06Z"),
+    # an output interval longer than the span gave outputs at 0 and the end only, without a word
+    (["connect", "{metric}", "--sites", "{sites}", "--horizon", "20s", "--every", "30s"],
+     "--every 30s is longer than --horizon 20s"),
+    (["spread", "{metric}", "--release", "0,0", "--horizon", "2h", "--every", "3h"], "--every 3h is longer"),
+    (["backtrack", "{metric}", "--found", "1km,2km", "--at", "{t0}", "--window", "1d", "--every", "2d"],
+     "--every 2d is longer than --window 1d"),
 ])
 def test_bad_input_and_memory_refusal_exit_2(models, run_cli, write_file, argv, message):
     paths = {"metric": models["metric"], "sites": write_file("s.csv", SITES),

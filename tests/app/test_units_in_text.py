@@ -135,3 +135,8 @@ def test_check_text_prints_the_grid_and_position_error_that_fit_in_the_tank(run_
     grid = next(line for line in out.splitlines() if line.strip().startswith("divergence:"))
     assert re.search(r"cells every [\d.]+ (mm|m)\b" if name == "tank" else r"cells every [\d.]+ (m|km)\b", grid), grid
     assert re.search(r"fit_families +[\d.]+ (s|min)", out)
+    rows = [line for line in out.splitlines() if line.strip().split(" ")[0] in
+            ("helmholtz", "divergence-free", "curl-free", "independent")]
+    assert len(rows) == 4 and all(row.endswith("converged") for row in rows), rows
+    stopped = [row for row in rows if row.endswith("not converged")]
+    assert bool(stopped) == ("reached the step limit before its ELBO levelled off" in out), out

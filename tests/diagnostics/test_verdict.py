@@ -141,6 +141,7 @@ def test_taylor_green_check_cli_says_divergence_free(taylor_green_csv, tmp_path,
     assert set(result["families"]) == set(V.FAMILIES)
     for entry in result["families"].values():
         assert math.isfinite(entry["elbo"]) and math.isfinite(entry["heldout_log_likelihood"])
+        assert isinstance(entry["converged"], bool) and 1 <= entry["steps"] <= 60   # each family fit says if it levelled off
     for key in ("divergence", "vorticity"):
         assert {"significant_area_fraction", "max_abs_z"} <= set(result[key])
     assert result["verdict"]["divergence_free"] is True          # Taylor–Green: ∇·u = 0

@@ -12,7 +12,7 @@ from typing import Any
 import numpy as np
 
 from ..data.utctime import iso_utc, release_time_s
-from ..data.windows import output_times_s
+from ..data.windows import output_times_from_text
 from ..dynamics.backtrack import Finds, backtrack_from_field, backtrack_memory_bytes, candidate_grid, needed_ages
 from ..dynamics.methods import DEFAULT_METHOD, METHODS
 from ..dynamics.supportcheck import warn_unsupported_finds
@@ -128,13 +128,9 @@ def _warn_coarse_grid(sd_m: float, spacing_m: float) -> None:
 
 
 def _release_times(args: argparse.Namespace, finds: Finds) -> np.ndarray:
-    window = parse_duration_s(args.window, what="--window")
-    every = parse_duration_s(args.every, what="--every") if args.every else window / 12.0
-    if not (window > 0 and every > 0):
-        raise InputError(f"--window and --every must be positive, got {args.window!r} and {args.every!r}")
-    if window / every > 10_000:
-        raise InputError(f"--window {args.window} every {args.every} gives more than 10000 candidate times")
-    return np.sort(finds.time_s.min() - output_times_s(window, every))
+    every = args.every or f"{parse_duration_s(args.window, what='--window') / 12.0!r}s"
+    offsets = output_times_from_text(args.window, every, names=("--window", "--every"), limit=10_000)
+    return np.sort(finds.time_s.min() - offsets)
 
 
 def run_backtrack(args: argparse.Namespace) -> int:

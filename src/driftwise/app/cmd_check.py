@@ -87,10 +87,15 @@ def format_check(s: dict[str, Any]) -> str:
     lines = [f"check: {s['n_tracks']} tracks; {ev['heldout_tracks']} held out ({ev['heldout_observations']} velocity "
              f"observations); tested model: {s['tested_model']}",
              "  " + position_error_text(s),
-             f"  {'family':<16} {'ELBO (nats)':>14} {'held-out log lik. (nats)':>26} {'per obs.':>9}"]
+             f"  {'family':<16} {'ELBO (nats)':>14} {'held-out log lik. (nats)':>26} {'per obs.':>9}  fit"]
     for name, fam in s["families"].items():
+        state = "converged" if fam.get("converged") else f"stopped at {fam.get('steps', '?')} steps, not converged"
         lines.append(f"  {name:<16} {fam['elbo']:>14.1f} {fam['heldout_log_likelihood']:>26.1f} "
-                     f"{fam['heldout_log_likelihood_per_observation']:>9.3f}")
+                     f"{fam['heldout_log_likelihood_per_observation']:>9.3f}  {state}")
+    unconverged = [name for name, fam in s["families"].items() if not fam.get("converged", True)]
+    if unconverged:
+        lines.append(f"  note: the fit of {', '.join(unconverged)} reached the step limit before its ELBO levelled off; "
+                     "its ELBO is a lower bound of what the family can reach (raise --steps)")
     lines += [f"  {ev['reading']}",
               f"  divergent share of the velocity variance: "
               f"{format_estimate(split['divergent_variance_fraction'], split['std'])} (delta method; 90 % "

@@ -9,7 +9,7 @@ from typing import Any
 import numpy as np
 
 from ..data.utctime import iso_utc, release_time_s
-from ..data.windows import output_times_s
+from ..data.windows import output_times_from_text
 from ..dynamics.connectivity import DEFAULT_THRESHOLD, connect_from_field, connect_memory_bytes
 from ..dynamics.methods import DEFAULT_METHOD, METHODS
 from ..dynamics.sites import read_sites
@@ -24,7 +24,6 @@ from ..units import format_duration, parse_duration_s
 from .cliparts import EXIT_OK, add_exact_flag, add_json_flag, add_quiet_flag, print_json
 from .resources import bar, check_memory, say
 
-MAX_OUTPUT_TIMES = 100_000
 DEFAULT_MOMENT_STEP = "1h"
 DEFAULT_ENSEMBLE_STEP = "10min"
 
@@ -65,13 +64,7 @@ def configure_connect(p: argparse.ArgumentParser) -> None:
 
 
 def _times(args: argparse.Namespace) -> np.ndarray:
-    horizon = parse_duration_s(args.horizon, what="--horizon")
-    every = parse_duration_s(args.every, what="--every")
-    if not (horizon > 0 and every > 0):
-        raise InputError(f"--horizon and --every must be positive, got {args.horizon!r} and {args.every!r}")
-    if horizon / every > MAX_OUTPUT_TIMES:
-        raise InputError(f"--horizon {args.horizon} every {args.every} asks for more than {MAX_OUTPUT_TIMES} outputs")
-    return output_times_s(horizon, every)
+    return output_times_from_text(args.horizon, args.every)
 
 
 def _check(args: argparse.Namespace) -> float:

@@ -13,6 +13,7 @@ import numpy as np
 from ..data.datascales import check_horizons_s, resolve_horizons
 from ..data.tracks import read_tracks_from_cli
 from ..data.utctime import release_time_s
+from ..data.windows import output_times_from_text
 from ..diagnostics.skill import score
 from ..dynamics.methods import DEFAULT_METHOD, DEFAULT_PARTICLES, METHODS
 from ..dynamics.spread import Release, as_releases, read_polygon, read_releases, spread_from_field
@@ -41,7 +42,6 @@ from ..units import (
 from .cliparts import EXIT_OK, add_exact_flag, add_json_flag, add_quiet_flag, add_track_options, print_json
 
 # ---------------------------------------------------------------- spread
-_MAX_OUTPUT_TIMES = 100_000
 
 
 def configure_spread(p: argparse.ArgumentParser) -> None:
@@ -63,7 +63,7 @@ def configure_spread(p: argparse.ArgumentParser) -> None:
     p.add_argument("--releases", metavar="FILE", help="CSV of releases: columns x,y[,z] (metres) or lon,lat "
                    "(degrees), optional start_time (seconds or ISO-8601), name, sd_m (release uncertainty, metres)")
     p.add_argument("--start", metavar="TIME", help="release time of the --release points: ISO-8601 for a model "
-                   "fitted on absolute times, else a duration on the tracks' own time axis with its unit, e.g. 36h "
+                   "fitted on absolute times, else a duration on the tracks' own time axis, e.g. 36h (a bare number is seconds) "
                    "(default: the last observation when the tracks had absolute times, else 0); a time-varying "
                    "model is integrated from there")
     p.add_argument("--horizon", default="2d", help="forecast length with its unit (s, min, h, d; default 2d)")
@@ -94,15 +94,7 @@ def configure_spread(p: argparse.ArgumentParser) -> None:
 
 
 def _output_times_s(args: argparse.Namespace):
-
-    horizon = parse_duration_s(args.horizon, what="--horizon")
-    every = parse_duration_s(args.every, what="--every")
-    if not (horizon > 0 and every > 0):
-        raise InputError(f"--horizon and --every must be positive, got {args.horizon!r} and {args.every!r}")
-    if horizon / every > _MAX_OUTPUT_TIMES:
-        raise InputError(f"--horizon {args.horizon} every {args.every} asks for more than {_MAX_OUTPUT_TIMES} outputs")
-    times = every * np.arange(int(np.floor(horizon / every * (1 + 1e-12))) + 1)
-    return times if np.isclose(times[-1], horizon, rtol=1e-12) else np.append(times, horizon)
+    return output_times_from_text(args.horizon, args.every)
 
 
 def _parse_release(text: str, frame, dim: int):

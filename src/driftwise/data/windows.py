@@ -12,7 +12,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..errors import InputError
-from ..units import format_duration
+from ..units import format_duration, parse_duration_s
 
 __all__ = ["Windows", "output_times_s", "forecast_windows", "evenly_spaced", "track_slices"]
 
@@ -52,6 +52,28 @@ def output_times_s(horizon_s: float, every_s: float, *, include=()) -> np.ndarra
     grid = float(every_s) * np.arange(count + 1)
     extra = np.asarray(list(include), dtype=float).ravel()
     return np.unique(np.round(np.concatenate([grid, [float(horizon_s)], extra]), 6))
+
+
+MAX_OUTPUT_TIMES = 100_000   # output times a forecast, connectivity or back-tracking run may ask for
+
+
+def output_times_from_text(span_text: str, every_text: str, *, names: tuple[str, str] = ("--horizon", "--every"),
+                           limit: int = MAX_OUTPUT_TIMES) -> np.ndarray:
+    """:func:`output_times_s` for a span and an interval given as text with their units (a command's options,
+    named by ``names`` in the messages).  InputError when either is not a positive duration, when the interval
+    is longer than the span (the only outputs would be the start and the end, which is rarely what was meant),
+    or when more than ``limit`` outputs would result."""
+    span_name, every_name = names
+    span = parse_duration_s(span_text, what=span_name)
+    every = parse_duration_s(every_text, what=every_name)
+    if not (span > 0 and every > 0):
+        raise InputError(f"{span_name} and {every_name} must be positive, got {span_text!r} and {every_text!r}")
+    if every > span * (1.0 + 1e-9):
+        raise InputError(f"{every_name} {every_text} is longer than {span_name} {span_text} (outputs would fall at "
+                         f"0 and {format_duration(span)} only); give {every_name} at most {span_text}")
+    if span / every > limit:
+        raise InputError(f"{span_name} {span_text} every {every_text} asks for more than {limit} outputs")
+    return output_times_s(span, every)
 
 
 def track_slices(track_id: np.ndarray) -> list[slice]:

@@ -245,6 +245,7 @@ def _fit_families(train, *, families, fit_options: dict, holdout_obs) -> tuple[d
                          "elbo_per_observation": float(summary.get("elbo_per_observation", math.nan)),
                          "heldout_log_likelihood": held,
                          "heldout_log_likelihood_per_observation": held / max(holdout_obs.n, 1),
+                         "converged": bool(summary.get("converged", False)), "steps": int(summary.get("steps", 0)),
                          "hyperparameters": field.hyperparameters}
         fields[family] = field
     return fields, table
