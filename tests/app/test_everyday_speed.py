@@ -205,3 +205,22 @@ def test_the_restarted_program_runs_with_the_tunable_set(tmp_path):
                           env={**env, "PYTHONPATH": SRC}, check=True)
     expected = "glibc.malloc.hugetlb=1" if sys.platform.startswith("linux") else "not restarted"
     assert done.stdout.strip() == expected
+
+
+def test_importing_the_package_switches_off_xla_ynnpack_fusions_unless_told():
+    """jaxlib 0.10.2's YNNPACK dot fusions failed on a 3-D forecast with 256 inducing points (tests/app/test_tank_abc.py
+    is the case that crashed); the package turns them off before jax builds its CPU backend, keeping a user's own
+    flags and a user's own choice of the option."""
+    probe = "import os, driftwise; print(os.environ['XLA_FLAGS'])"
+    env = {k: v for k, v in os.environ.items() if k != "XLA_FLAGS"}
+    out = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, check=True,
+                         env={**env, "PYTHONPATH": SRC}).stdout.strip()
+    assert out == "--xla_cpu_experimental_ynn_fusion_type="
+    mine = "--xla_force_host_platform_device_count=2"
+    out = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, check=True,
+                         env={**env, "PYTHONPATH": SRC, "XLA_FLAGS": mine}).stdout.strip()
+    assert out == f"{mine} --xla_cpu_experimental_ynn_fusion_type="
+    chosen = "--xla_cpu_experimental_ynn_fusion_type=LIBRARY_FUSION_TYPE_DOT"
+    out = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, check=True,
+                         env={**env, "PYTHONPATH": SRC, "XLA_FLAGS": chosen}).stdout.strip()
+    assert out == chosen

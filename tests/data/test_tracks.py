@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import importlib
 import json
 import math
 import warnings
@@ -170,6 +171,7 @@ def test_noise_terms_are_separate_components():
 
 
 def test_observations_are_a_jax_pytree():
+    importlib.import_module("driftwise.gp.field")   # registers Observations (so reading tracks need not import jax)
     table = random_walk(3, 5, fix_interval_s=60.0, diffusivity_m2_s=1.0, seed=0)
     obs = velocity_observations(tracks_from_frame(table), position_error_m=2.0)
     assert len(jax.tree_util.tree_leaves(obs)) == 5

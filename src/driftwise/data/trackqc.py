@@ -1,4 +1,4 @@
-"""Quality control of fixes: order, duplicates, impossible speeds, gaps, lone fixes.
+"""Quality control of fixes: order, duplicates, impossible speeds, isolated spikes, gaps, lone fixes.
 
 Each step that changes the data is recorded as a :class:`QCAction` with a count
 and a one-line message; :mod:`driftwise.data.tracks` emits it as a warning and keeps
@@ -13,6 +13,7 @@ from typing import Callable
 
 import numpy as np
 
+from ..units import format_length
 from .trackfile import TrackError
 
 
@@ -30,6 +31,26 @@ class QCAction:
     level: str = "notice"
 
 
+SPIKE_LIMIT = 10.0   # robust deviations off the line through its neighbours beyond which a lone fix is a spike
+SPIKE_NEIGHBOUR_RATIO = 0.75   # a spike's neighbours lie at most this fraction of its own distance off their lines
+
+
+@dataclass(frozen=True)
+class QCLimits:
+    """The limits quality control applies (None: that check is off).
+
+    max_speed_m_s   drop fixes that imply a faster speed (m/s)
+    max_gap_s       split a track at longer gaps (s)
+    spike_limit     drop an isolated spike: a fix whose distance from the line through its two neighbours (at its
+                    own time) exceeds ``spike_limit`` robust standard deviations of that distance in the file and is
+                    the largest of its neighbourhood (:func:`_despike`)
+    """
+
+    max_speed_m_s: float | None = 5.0
+    max_gap_s: float | None = None
+    spike_limit: float | None = SPIKE_LIMIT
+
+
 @dataclass(frozen=True)
 class Cleaned:
     """The result of :func:`clean`: ``index`` into the parsed arrays, in (track, time) order."""
@@ -41,9 +62,10 @@ class Cleaned:
 
 
 def clean(codes: np.ndarray, labels: list[str], time_s: np.ndarray, position_m: np.ndarray, rows: np.ndarray, *,
-          file: str, time_column: str, show_time: Callable[[float], str], max_speed_m_s: float | None,
-          max_gap_s: float | None, show_row: Callable[[int], str] | None = None) -> Cleaned:
-    """Sort by (track id, time), refuse duplicated times, drop impossible fixes, split at gaps, drop lone fixes.
+          file: str, time_column: str, show_time: Callable[[float], str], limits: QCLimits,
+          show_row: Callable[[int], str] | None = None) -> Cleaned:
+    """Sort by (track id, time), refuse duplicated times, drop impossible fixes and isolated spikes, split at gaps,
+    drop lone fixes (``limits``: :class:`QCLimits`).
 
     ``show_row`` names a table row in messages where rows mean nothing to the user (NetCDF observations).
     """
@@ -56,12 +78,17 @@ def clean(codes: np.ndarray, labels: list[str], time_s: np.ndarray, position_m: 
     track, time_s = track[index], time_s[index]
     _refuse_duplicates(track, time_s, rows, index, labels, file=file, column=time_column, show_time=show_time,
                        show_row=show_row)
-    if max_speed_m_s is not None and math.isfinite(max_speed_m_s):
-        keep, action = _speed_filter(track, time_s, position_m, index, max_speed_m_s, file)
+    if limits.max_speed_m_s is not None and math.isfinite(limits.max_speed_m_s):
+        keep, action = _speed_filter(track, time_s, position_m, index, limits.max_speed_m_s, file)
         index, track, time_s = index[keep], track[keep], time_s[keep]
         actions += [action] if action else []
-    if max_gap_s is not None:
-        track, labels, action = _split_gaps(track, time_s, labels, max_gap_s, file)
+    if limits.spike_limit is not None and limits.spike_limit > 0:
+        keep, action = _despike(track, time_s, position_m[index], rows[index], limits.spike_limit, file=file,
+                                labels=labels, show_time=show_time, show_row=show_row)
+        index, track, time_s = index[keep], track[keep], time_s[keep]
+        actions += [action] if action else []
+    if limits.max_gap_s is not None:
+        track, labels, action = _split_gaps(track, time_s, labels, limits.max_gap_s, file)
         actions += [action] if action else []
     keep, track, labels, action = _drop_lone_fixes(track, labels, file)
     actions += [action] if action else []
@@ -139,6 +166,58 @@ def _keep_reachable(time_s: np.ndarray, position_m: np.ndarray, max_speed_m_s: f
         if math.dist(points[i], points[anchor]) <= max_speed_m_s * (times[i] - times[anchor]):
             keep[i], anchor = True, i
     return keep
+
+
+def spike_deviations_m(track: np.ndarray, time_s: np.ndarray, position_m: np.ndarray) -> np.ndarray:
+    """(n,) distance (m) of each fix from the straight line through its two neighbours of the same track, taken at
+    the fix's own time (linear interpolation in time); NaN at the ends of a track."""
+    out = np.full(track.size, np.nan)
+    if track.size < 3:
+        return out
+    inner = (track[1:-1] == track[:-2]) & (track[1:-1] == track[2:])
+    span = time_s[2:] - time_s[:-2]
+    w = np.divide(time_s[1:-1] - time_s[:-2], span, out=np.full(span.shape, 0.5), where=span > 0)
+    squared = np.zeros(track.size - 2)
+    for k in range(position_m.shape[1]):   # one component at a time: no (n, d) temporaries
+        line = position_m[:-2, k] + w * (position_m[2:, k] - position_m[:-2, k])
+        squared += (position_m[1:-1, k] - line) ** 2
+    out[1:-1] = np.where(inner, np.sqrt(squared), np.nan)
+    return out
+
+
+def _despike(track, time_s, position_m, rows, limit, *, file, labels, show_time, show_row) -> tuple[np.ndarray,
+                                                                                                     QCAction | None]:
+    """Drop isolated spikes (a Hampel-type rule on the deviation from the neighbours; Hampel 1974, "The influence
+    curve and its role in robust estimation", JASA 69, 383, for the median-absolute-deviation scale).
+
+    δ_i = :func:`spike_deviations_m`; the scale is s = 1.4826 · median δ over the file (the s.d. of a normal
+    variable from its median absolute value); fix i is a spike when δ_i > ``limit`` · s and it stands alone: each
+    neighbour's δ is at most SPIKE_NEIGHBOUR_RATIO · δ_i (a spike of size D moves each neighbour's line by about
+    D/2, so only its centre is dropped, while a path that really curves, such as a drifter circling an eddy core
+    at coarse fixes, bends at every fix by about the same amount and is kept).  For white position noise of s.d. σ
+    per axis δ is about 1.2σ√d-sized, so at the default limit of 10 a clean file loses nothing (the chance of one
+    such δ under Gaussian noise is below 1e-60).  ``position_m`` and ``rows`` are in (track, time) order."""
+    delta = spike_deviations_m(track, time_s, position_m)
+    keep = np.ones(track.size, dtype=bool)
+    finite = delta[np.isfinite(delta)]
+    scale = 1.4826 * float(np.median(finite)) if finite.size >= 10 else 0.0
+    if not scale > 0:
+        return keep, None
+    padded = np.concatenate([[-np.inf], np.nan_to_num(delta, nan=-np.inf), [-np.inf]])
+    isolated = np.maximum(padded[:-2], padded[2:]) <= SPIKE_NEIGHBOUR_RATIO * padded[1:-1]
+    spike = np.isfinite(delta) & (delta > limit * scale) & isolated
+    if not spike.any():
+        return keep, None
+    keep[spike] = False
+    first = int(np.argmax(spike))
+    row = int(rows[first])
+    where = f"row {row}" if show_row is None else show_row(row)
+    count = int(np.count_nonzero(spike))
+    return keep, QCAction("isolated_spike", count, f"{file}: dropped {plural(count, 'isolated spike')} (a fix more "
+                          f"than {limit:g} × {format_length(scale)} off the line through its neighbours, the file's "
+                          f"robust spread of that distance), the first in track {labels[track[first]]!r} at "
+                          f"{show_time(time_s[first])} ({where}, {format_length(float(delta[first]))} off); "
+                          "--spike-limit sets the factor, 0 keeps every fix", "warning")
 
 
 def tiny_metre_span(position_m: np.ndarray, time_s: np.ndarray, file: str) -> QCAction | None:

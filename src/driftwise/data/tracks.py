@@ -30,6 +30,7 @@ are warnings with a count, format choices are notices; both are kept in
 from __future__ import annotations
 
 import functools
+import math
 import warnings
 from dataclasses import dataclass, field, replace
 from typing import Any, Iterable, Iterator
@@ -44,7 +45,7 @@ from .observations import MIN_FIT_OBSERVATIONS, Observations, velocity_observati
 from .trackcf import read_netcdf_frame
 from .trackfile import TrackError, check_path, file_format, read_csv_chunks, read_parquet_frame
 from .trackparse import TableParser, detect_layout
-from .trackqc import QCAction, clean, plural, tiny_metre_span
+from .trackqc import SPIKE_LIMIT, QCAction, QCLimits, clean, plural, tiny_metre_span
 
 __all__ = ["Tracks", "Frame", "QCAction", "TrackError", "TrackWarning", "TrackNotice", "Observations",
            "read_tracks", "tracks_from_frame", "velocity_observations", "inspect_summary", "format_summary",
@@ -134,23 +135,26 @@ class Tracks:
 
 
 # ---------------------------------------------------------------- reading
-def read_tracks(path, *, max_speed_m_s: float | None = 5.0, max_gap_s: float | None = None) -> Tracks:
+def read_tracks(path, *, max_speed_m_s: float | None = 5.0, max_gap_s: float | None = None,
+                spike_limit: float | None = SPIKE_LIMIT) -> Tracks:
     """Read, check and clean a tracks file (CSV, CSV.GZ, Parquet, CF-trajectory NetCDF).
 
     ``max_speed_m_s``: fixes implying a faster speed are dropped (None: keep all).
     ``max_gap_s``: a track is split where consecutive fixes are further apart (None: never).
+    ``spike_limit``: isolated spikes beyond this many robust deviations are dropped (None or 0: keep all;
+    :class:`driftwise.data.trackqc.QCLimits`).
     Raises TrackError for anything the user must fix; see the module docstring.
     """
     p = check_path(path)
     file = str(path)
     kind = file_format(p)
+    limits = QCLimits(max_speed_m_s, max_gap_s, spike_limit)
     if kind == "parquet":
-        return _from_whole(read_parquet_frame(p, file), file, max_speed_m_s, max_gap_s)
+        return _from_whole(read_parquet_frame(p, file), file, limits)
     if kind == "netcdf":
         cf = read_netcdf_frame(p, file)
         with cf.naming_observations():
-            return _from_whole(cf.frame, file, max_speed_m_s, max_gap_s, naive_is_utc=True, notices=cf.notices,
-                               show_row=cf.place)
+            return _from_whole(cf.frame, file, limits, naive_is_utc=True, notices=cf.notices, show_row=cf.place)
     delimiter, chunks = read_csv_chunks(p, file)
     parser, first_row, notices = None, 2, []
     for chunk in chunks:
@@ -163,28 +167,27 @@ def read_tracks(path, *, max_speed_m_s: float | None = 5.0, max_gap_s: float | N
     if delimiter == ";":
         notices.append(QCAction("semicolon_delimiter", first_row - 2, f"{file}: semicolon-delimited; a decimal "
                                 "comma in a number is read as a decimal point"))
-    return _build(parser, file, max_speed_m_s, max_gap_s, tuple(notices))
+    return _build(parser, file, limits, tuple(notices))
 
 
 def tracks_from_frame(df: pd.DataFrame, *, source: str = "<dataframe>", max_speed_m_s: float | None = 5.0,
-                      max_gap_s: float | None = None) -> Tracks:
+                      max_gap_s: float | None = None, spike_limit: float | None = SPIKE_LIMIT) -> Tracks:
     """Tracks from a DataFrame with the same columns a file would have (see the module docstring)."""
     if not isinstance(df, pd.DataFrame):
         raise InputError(f"{source}: expected a pandas DataFrame, got {type(df).__name__}")
-    return _from_whole(df, source, max_speed_m_s, max_gap_s)
+    return _from_whole(df, source, QCLimits(max_speed_m_s, max_gap_s, spike_limit))
 
 
-def _from_whole(df, file, max_speed_m_s, max_gap_s, *, naive_is_utc: bool = False,
+def _from_whole(df, file, limits: QCLimits, *, naive_is_utc: bool = False,
                 notices: tuple[QCAction, ...] = (), show_row=None) -> Tracks:
     if df.shape[1] == 0 and df.shape[0] == 0:
         raise TrackError(file, "the table is empty")
     parser = TableParser(file, detect_layout(df.columns, file), naive_is_utc=naive_is_utc)
     parser.add(df.reset_index(drop=True), 2)
-    return _build(parser, file, max_speed_m_s, max_gap_s, notices, show_row=show_row)
+    return _build(parser, file, limits, notices, show_row=show_row)
 
 
-def _build(parser: TableParser, file, max_speed_m_s, max_gap_s, notices: tuple[QCAction, ...], *,
-           show_row=None) -> Tracks:
+def _build(parser: TableParser, file, limits: QCLimits, notices: tuple[QCAction, ...], *, show_row=None) -> Tracks:
     table = parser.finish()
     if table.lonlat:
         frame, xy = frame_for(table.coords[:, 0], table.coords[:, 1], source=file)
@@ -194,8 +197,7 @@ def _build(parser: TableParser, file, max_speed_m_s, max_gap_s, notices: tuple[Q
     table.coords = table.z = xy = None  # release the raw coordinates before sorting (large files)
     show = (lambda t: _iso(t)) if table.time_is_absolute else (lambda t: f"{t:g} s")
     cleaned = clean(table.codes, table.labels, table.time_s, position, table.rows, file=file,
-                    time_column=parser.layout.time, show_time=show, max_speed_m_s=max_speed_m_s, max_gap_s=max_gap_s,
-                    show_row=show_row)
+                    time_column=parser.layout.time, show_time=show, limits=limits, show_row=show_row)
     tiny = None if table.lonlat else tiny_metre_span(position[cleaned.index], table.time_s[cleaned.index], file)
     actions = notices + table.notices + cleaned.actions + ((tiny,) if tiny else ())
     for action in actions:
@@ -207,7 +209,8 @@ def _build(parser: TableParser, file, max_speed_m_s, max_gap_s, notices: tuple[Q
 
 
 def read_tracks_from_cli(args) -> Tracks:
-    """``read_tracks`` with the command line's ``tracks``, ``--max-speed`` and ``--max-gap`` (unit strings)."""
+    """``read_tracks`` with the command line's ``tracks``, ``--max-speed``, ``--max-gap`` (unit strings) and
+    ``--spike-limit`` (a factor)."""
 
     max_speed = parse_speed_m_s(args.max_speed, what="--max-speed") if args.max_speed is not None else None
     if max_speed is not None and not max_speed > 0:
@@ -215,7 +218,10 @@ def read_tracks_from_cli(args) -> Tracks:
     max_gap = parse_duration_s(args.max_gap, what="--max-gap") if getattr(args, "max_gap", None) else None
     if max_gap is not None and not max_gap > 0:
         raise InputError(f"--max-gap must be positive, not {args.max_gap!r}")
-    return read_tracks(args.tracks, max_speed_m_s=max_speed, max_gap_s=max_gap)
+    spike = SPIKE_LIMIT if getattr(args, "spike_limit", None) is None else args.spike_limit
+    if spike is not None and not (math.isfinite(spike) and spike >= 0):
+        raise InputError(f"--spike-limit must be a number ≥ 0 (0 keeps every fix), not {spike!r}")
+    return read_tracks(args.tracks, max_speed_m_s=max_speed, max_gap_s=max_gap, spike_limit=spike)
 
 
 def fit_shortfall(tracks: Tracks, *, calibrate: bool = False) -> str | None:
