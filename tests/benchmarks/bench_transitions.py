@@ -63,7 +63,7 @@ def _load() -> str:
 
 def step_cost(method: str) -> None:
     tracks = vortex_tracks(3 * 3600.0, n=40, hours=24.0)
-    warm = F.fit(tracks, inducing=M, position_error_m=SIGMA_M, schedule=Schedule(steps=20), progress=False)
+    warm = F.fit(tracks, inducing=M, position_error_m=SIGMA_M, schedule=Schedule(steps=20, optimiser="adam"), progress=False)
     trans = transition_set(tracks, position_error_m=SIGMA_M)
     b = min(BATCH, trans.n)
     rows = TF._rows(trans, jnp.arange(b))
@@ -104,7 +104,7 @@ def rmse_table(method: str, steps: int, hours_list: tuple[float, ...]) -> None:
     print("fix interval | velocity fit RMSE m/s, K | transition fit RMSE m/s, K | steps, time s")
     for hours in hours_list:
         tracks = vortex_tracks(hours * 3600.0, n=30, hours=24.0)
-        vel = F.fit(tracks, inducing=36, position_error_m=SIGMA_M, schedule=Schedule(steps=200), progress=False)
+        vel = F.fit(tracks, inducing=36, position_error_m=SIGMA_M, schedule=Schedule(steps=200, optimiser="adam"), progress=False)
         start = time.perf_counter()
         schedule = dataclasses.replace(TF.TRANSITION_SCHEDULE, steps=steps)     # the fit's own schedule
         tr = TF.fit_transitions(tracks, vel, position_error_m=SIGMA_M, schedule=schedule, method=method,

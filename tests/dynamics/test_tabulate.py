@@ -244,3 +244,28 @@ def test_connect_and_backtrack_cli_exact_flag(field, run_cli, tmp_path, monkeypa
                              "--json")
     assert code == 0, err
     assert abs(sum(item["probability"] for item in json.loads(out)["probability_by_time"]) - 1.0) < 1e-9
+
+
+@pytest.mark.parametrize("memory", [True, False])
+def test_one_evaluation_gives_the_drift_and_the_diffusion(field, table, memory):
+    """SDE.drift_and_rate (one kernel row / one interpolation per point) equals drift_at and rate called apart,
+    on the exact posterior and on the table, with and without the velocity memory; and the tabulated SDE's
+    compiled forecast reads the table once per point: one gather per RK4 stage (4), where the drift and the
+    diffusion read it apart twice as often (8) and ran at 0.55× the release-steps per second."""
+    from driftwise.dynamics import moments
+    from driftwise.dynamics.sde import sde_from_field, split_for_jit
+
+    exact = sde_from_field(field, velocity_memory=memory)
+    points = jnp.asarray(LO + (HI - LO) * np.random.default_rng(9).uniform(size=(64, 2)))
+    for sde in (exact, tabulate.on_table(exact, table)):
+        assert sde.drift_and_diffusion is not None
+        both = jax.vmap(lambda x: sde.drift_and_rate(x, 5400.0))(points)
+        apart = jax.vmap(lambda x: (sde.drift_at(x), sde.rate(x, 5400.0)))(points)
+        np.testing.assert_allclose(both[0], apart[0], rtol=1e-13, atol=1e-18)
+        np.testing.assert_allclose(both[1], apart[1], rtol=1e-13, atol=1e-18)
+    dynamic, static = split_for_jit(tabulate.on_table(exact, table))
+    means, covs = points, jnp.broadcast_to(jnp.eye(2) * 100.0, (64, 2, 2))
+    text = moments.propagate_batch_jit.lower(dynamic, static, moments.SphericalCubature(), moments.RK4(600.0), 64,
+                                             means, covs, jnp.array([0.0, 3600.0])).compile().as_text()
+    slice_shape = ",".join(str(n) for n in table.values.shape[2:])
+    assert text.count(f"slice_sizes={{2,2,{slice_shape}}}") == 4

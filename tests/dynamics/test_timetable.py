@@ -269,3 +269,19 @@ def test_backtrack_from_a_time_varying_field_runs_with_the_table_and_exactly(fie
     print(f"tidal field backtrack: max |P_table − P_exact| {np.abs(tab.probability - exact.probability).max():.3g}")
     np.testing.assert_allclose(exact.probability.sum(), 1.0, atol=1e-9)
     assert np.abs(tab.probability - exact.probability).max() < 0.01
+
+
+def test_one_evaluation_gives_the_timed_drift_and_diffusion(field, table):
+    """SDE.drift_and_rate equals drift_at and rate apart for a time-varying field, exact and tabulated."""
+    from driftwise.dynamics.sde import sde_from_field
+
+    exact = sde_from_field(field)
+    rng = np.random.default_rng(5)
+    points = jnp.asarray(LO + (HI - LO) * rng.uniform(size=(48, 2)))
+    times = jnp.asarray(T0 + SPAN_S * rng.uniform(size=48))
+    for sde in (exact, tabulate.on_table(exact, table)):
+        assert sde.drift_and_diffusion is not None
+        both = jax.vmap(lambda x, t: sde.drift_and_rate(x, 3600.0, t))(points, times)
+        apart = jax.vmap(lambda x, t: (sde.drift_at(x, t), sde.rate(x, 3600.0, t)))(points, times)
+        np.testing.assert_allclose(both[0], apart[0], rtol=1e-12, atol=1e-18)
+        np.testing.assert_allclose(both[1], apart[1], rtol=1e-12, atol=1e-18)

@@ -348,10 +348,19 @@ def test_steady_forecasts_are_bit_identical_to_main():
     # the transition density's Cholesky moved from LAPACK to driftwise.smallmatrix (no batched LAPACK under vmap):
     # the same arithmetic in another order, so that one key is compared to rounding (1e-12 relative)
     rounding = {"transition_loglik"}
-    different = [key for key in reference.files if key not in rounding and not np.array_equal(out[key], reference[key])]
+    # the exact field's forecasts (2026-12-04): its drift and diffusion now come from one kernel row per point
+    # (SDE.drift_and_rate) and XLA's YNNPACK dot fusions are off (driftwise.YNN_OFF), the same arithmetic in
+    # another order: measured 2.6e-15 (mean) and 1.7e-11 (covariance, whose small entries carry the cancellation)
+    # relative, so these four keys are compared to 1e-10 relative, the covariances' to 1e-10 of their largest entry
+    field_keys = {"field_cubature_mean", "field_cubature_cov", "field_ensemble_mean", "field_ensemble_cov"}
+    different = [key for key in reference.files
+                 if key not in rounding | field_keys and not np.array_equal(out[key], reference[key])]
     assert different == []
     for key in rounding:
         np.testing.assert_allclose(out[key], reference[key], rtol=1e-12, atol=0)
+    for key in field_keys:
+        scale = float(np.max(np.abs(reference[key])))
+        np.testing.assert_allclose(out[key], reference[key], rtol=1e-10, atol=1e-10 * scale)
 
 
 # ------------------------------------------------------------------ (5) --start

@@ -75,7 +75,7 @@ def test_auto_picks_velocities_for_fine_fixes_on_a_slow_flow():
     table = simulate_drifters(TaylorGreen(0.05, 2000.0), rng.uniform(0.0, 4000.0, (20, 2)), duration_s=6 * 3600.0,
                               fix_interval_s=1800.0, diffusivity_m2_s=0.5, position_error_m=SIGMA_M, seed=2)
     tracks = tracks_from_frame(table)
-    field = fit(tracks, inducing=25, position_error_m=SIGMA_M, schedule=Schedule(steps=60), progress=False)
+    field = fit(tracks, inducing=25, position_error_m=SIGMA_M, schedule=Schedule(steps=60, optimiser="adam"), progress=False)
     choice = choose_likelihood("auto", field, transition_set(tracks, position_error_m=SIGMA_M))
     # true |∇u| ≤ Uπ/L = 7.9e-5 1/s, times 1800 s = 0.14 (Taylor & Green 1937 cells)
     assert choice.likelihood == "velocities" and choice.coarseness < 0.3, choice
@@ -85,7 +85,7 @@ def test_auto_picks_velocities_for_fine_fixes_on_a_slow_flow():
 @pytest.mark.parametrize("hours", [3.0, 6.0])
 def test_auto_picks_transitions_for_coarse_fixes_in_the_vortex(hours):
     tracks = vortex_tracks(hours * 3600.0, n=20)
-    field = fit(tracks, inducing=36, position_error_m=SIGMA_M, schedule=Schedule(steps=60), progress=False)
+    field = fit(tracks, inducing=36, position_error_m=SIGMA_M, schedule=Schedule(steps=60, optimiser="adam"), progress=False)
     choice = choose_likelihood("auto", field, transition_set(tracks, position_error_m=SIGMA_M))
     # at the peak radius the angular speed is 0.4/2240 = 1.8e-4 1/s: 3 h span ≈ 1.9 rad of rotation
     assert choice.likelihood == "transitions" and choice.coarseness > 1.0, choice
@@ -96,7 +96,7 @@ def test_auto_picks_transitions_for_coarse_fixes_in_the_vortex(hours):
 
 def test_transition_fit_resumes_to_the_same_answer(tmp_path):
     tracks = vortex_tracks(3 * 3600.0, n=6, hours=9.0)
-    warm = fit(tracks, inducing=9, position_error_m=SIGMA_M, schedule=Schedule(steps=10), progress=False)
+    warm = fit(tracks, inducing=9, position_error_m=SIGMA_M, schedule=Schedule(steps=10, optimiser="adam"), progress=False)
     schedule = dataclasses.replace(TRANSITION_SCHEDULE, steps=6, patience=3, batch_size=8)
     whole = fit_transitions(tracks, warm, position_error_m=SIGMA_M, schedule=schedule, progress=False,
                             method="linearize")
@@ -153,7 +153,7 @@ def test_cli_transition_fit_keeps_its_k_and_reports_the_calibration_as_a_check(t
 
 def _both_fits(fix_interval_s: float, batch_size: int):
     tracks = vortex_tracks(fix_interval_s, n=30)
-    vel = fit(tracks, "divergence-free", inducing=36, position_error_m=SIGMA_M, schedule=Schedule(steps=200),
+    vel = fit(tracks, "divergence-free", inducing=36, position_error_m=SIGMA_M, schedule=Schedule(steps=200, optimiser="adam"),
               progress=False)
     schedule = dataclasses.replace(TRANSITION_SCHEDULE, steps=300, batch_size=batch_size, learning_rate=0.03,
                                    patience=25)
@@ -202,7 +202,7 @@ FAMILY_CASES = [case for case in KERNEL_CASES if case in {
 @pytest.mark.parametrize("family,base,dim", FAMILY_CASES)
 def test_transition_fit_for_every_kernel_family_in_2d_and_3d(family, base, dim):
     tracks = _small_tracks(dim)
-    warm = fit(tracks, family, inducing=8, position_error_m=SIGMA_M, base=base, schedule=Schedule(steps=5),
+    warm = fit(tracks, family, inducing=8, position_error_m=SIGMA_M, base=base, schedule=Schedule(steps=5, optimiser="adam"),
                progress=False)
     trans = transition_set(tracks, position_error_m=SIGMA_M)
     prop = TF._propagation("cubature", trans, TF.step_for_field(warm, trans), 32)

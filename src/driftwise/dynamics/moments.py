@@ -100,8 +100,7 @@ def _cubature_expectations(sde: SDE, mean, cov, age_s, t_s, points, weights):
     t_s: absolute time (s; used only by a time-dependent SDE)."""
     dx = jnp.asarray(points) @ psd_cholesky(cov).T  # (n, d)
     w = jnp.asarray(weights)
-    drift = jax.vmap(lambda x: sde.drift_at(x, t_s))(mean + dx)  # (n, d)
-    diffusion = jax.vmap(lambda x: sde.rate(x, age_s, t_s))(mean + dx)  # (n, d, d)
+    drift, diffusion = jax.vmap(lambda x: sde.drift_and_rate(x, age_s, t_s))(mean + dx)  # (n, d), (n, d, d)
     return w @ drift, (drift * w[:, None]).T @ dx, jnp.tensordot(w, diffusion, axes=1)
 
 

@@ -63,7 +63,12 @@ class SDE:
                axis): drift(x, t_s) and diffusion(x, t_s) (diffusion(x, t_s, age_s)
                with with_age); the propagators pass t = release start + age.
 
-    Both are pytree fields: pass `jax.tree_util.Partial(fn, params...)` to keep
+    drift_and_diffusion: optional; called with the diffusion's arguments, it returns (drift, diffusion) from one
+               evaluation of what they share (a field SDE: the posterior's mean and covariance from one
+               kernel row or one table interpolation; :meth:`drift_and_rate`).  It must agree with the two
+               (tests/dynamics/test_sde.py); code that replaces drift and diffusion replaces it too.
+
+    All three are pytree fields: pass `jax.tree_util.Partial(fn, params...)` to keep
     parameters as traced data (changing them does not recompile the
     propagators); plain functions are treated as static (hashed by identity).
     """
@@ -72,6 +77,7 @@ class SDE:
     diffusion: Callable[..., jax.Array]
     with_age: bool = _dataclass_field(default=False, metadata=dict(static=True))
     with_time: bool = _dataclass_field(default=False, metadata=dict(static=True))
+    drift_and_diffusion: Callable[..., tuple[jax.Array, jax.Array]] | None = None
 
     def drift_at(self, x: jax.Array, t_s: Any = 0.0) -> jax.Array:
         """μ at x (d,) and absolute time ``t_s`` (s): ``drift(x, t_s)`` when ``with_time``, else ``drift(x)``."""
@@ -82,6 +88,15 @@ class SDE:
         diffusion called with (x[, t_s][, age_s]) as ``with_time`` and ``with_age`` say."""
         args = ((t_s,) if self.with_time else ()) + ((age_s,) if self.with_age else ())
         return self.diffusion(x, *args)
+
+    def drift_and_rate(self, x: jax.Array, age_s: Any, t_s: Any = 0.0) -> tuple[jax.Array, jax.Array]:
+        """(μ, D) at x as :meth:`drift_at` and :meth:`rate` give them, from one evaluation when the SDE has a
+        ``drift_and_diffusion`` (a table is then interpolated once per point, not twice: 1.8× the
+        release-steps per second of a tabulated forecast, DEVELOPERS.md "Benchmark record")."""
+        if self.drift_and_diffusion is None:
+            return self.drift_at(x, t_s), self.rate(x, age_s, t_s)
+        args = ((t_s,) if self.with_time else ()) + ((age_s,) if self.with_age else ())
+        return self.drift_and_diffusion(x, *args)
 
 
 @jax.tree_util.register_dataclass
@@ -127,10 +142,18 @@ class PointPosterior:
 
     def cov_at(self, x: jax.Array) -> jax.Array:
         """Posterior velocity covariance at x (d,) m → (d, d) m²/s², symmetrised."""
-        g = self.kernel.gram_matrix(x[None, :], self.inducing_m) @ self.projection  # (d, M·d)
+        return self._cov_from_row(x, self.kernel.gram_matrix(x[None, :], self.inducing_m))
+
+    def _cov_from_row(self, x: jax.Array, row: jax.Array) -> jax.Array:
+        g = row @ self.projection  # (d, M·d)
         # Σ_k λ_k g_ak g_bk as a multiply-and-sum: under vmap it fuses instead of a batch of tiny products
         cov = self.kernel.block(x, x) - jnp.sum((g * self.weights)[:, None, :] * g[None, :, :], axis=-1)
         return 0.5 * (cov + cov.T)
+
+    def moments_at(self, x: jax.Array) -> tuple[jax.Array, jax.Array]:
+        """(:meth:`mean_at`, :meth:`cov_at`) at x from one kernel row K(x, Z)."""
+        row = self.kernel.gram_matrix(x[None, :], self.inducing_m)
+        return row @ self.alpha, self._cov_from_row(x, row)
 
 
 @jax.tree_util.register_dataclass
@@ -194,6 +217,14 @@ class TimedPointPosterior:
                                         jnp.asarray(t_y_s, jnp.float64) - origin)
         return prior - jnp.sum((g_x * self.weights)[:, None, :] * g_y[None, :, :], axis=-1)
 
+    def moments_at(self, x: jax.Array, *, t_s: Any) -> tuple[jax.Array, jax.Array]:
+        """(:meth:`mean_at`, :meth:`cov_between` at (x, t) twice) from one cross-covariance row."""
+        cross = self._cross(x, t_s)
+        g = cross @ self.projection
+        rel = jnp.asarray(t_s, jnp.float64) - self.kernel.time_origin_s
+        prior = self.kernel.prior_cross(None, x, rel, None, x, rel)
+        return cross @ self.alpha, prior - jnp.sum((g * self.weights)[:, None, :] * g[None, :, :], axis=-1)
+
 
 def _whole_field_only(part: Any) -> None:
     if part is not None:
@@ -233,12 +264,27 @@ def _field_diffusion_with_age(
     return _field_diffusion(posterior, diffusivity_m2_s, velocity_memory_weight(decorrelation_time_s, age_s), x)
 
 
+def _field_moments(posterior: Any, diffusivity_m2_s: jax.Array, weight_s: jax.Array,
+                   x: jax.Array) -> tuple[jax.Array, jax.Array]:
+    """(μ(x), 2 (K I + w Σ(x))) from one ``posterior.moments_at(x)``; as field_drift and _field_diffusion."""
+    mean, cov = posterior.moments_at(x)
+    return mean, _rate_from_cov(cov, diffusivity_m2_s, weight_s)
+
+
+def _field_moments_with_age(posterior: Any, diffusivity_m2_s: jax.Array, decorrelation_time_s: jax.Array,
+                            x: jax.Array, age_s: jax.Array) -> tuple[jax.Array, jax.Array]:
+    return _field_moments(posterior, diffusivity_m2_s, velocity_memory_weight(decorrelation_time_s, age_s), x)
+
+
 def field_sde(posterior: Any, diffusivity_m2_s: jax.Array, decorrelation_time_s: jax.Array,
                velocity_memory: bool) -> SDE:
     diffusion = _field_diffusion_with_age if velocity_memory else _field_diffusion
+    both = _field_moments_with_age if velocity_memory else _field_moments
+    joint = (jax.tree_util.Partial(both, posterior, diffusivity_m2_s, decorrelation_time_s)
+             if hasattr(posterior, "moments_at") else None)
     return SDE(drift=jax.tree_util.Partial(field_drift, posterior),
                diffusion=jax.tree_util.Partial(diffusion, posterior, diffusivity_m2_s, decorrelation_time_s),
-               with_age=bool(velocity_memory))
+               with_age=bool(velocity_memory), drift_and_diffusion=joint)
 
 
 def _timed_drift(field: Any, x: jax.Array, t_s: jax.Array) -> jax.Array:
@@ -259,14 +305,30 @@ def _timed_diffusion_with_age(field: Any, diffusivity_m2_s: jax.Array, decorrela
     return _timed_diffusion(field, diffusivity_m2_s, velocity_memory_weight(decorrelation_time_s, age_s), x, t_s)
 
 
+def _timed_moments(field: Any, diffusivity_m2_s: jax.Array, weight_s: jax.Array, x: jax.Array,
+                   t_s: jax.Array) -> tuple[jax.Array, jax.Array]:
+    """(μ(x, t), 2 (K I + w Σ(x, t))) from one ``field.moments_at(x, t_s=t)``; as _timed_drift, _timed_diffusion."""
+    mean, sigma = field.moments_at(x, t_s=t_s)
+    return mean, _rate_from_cov(0.5 * (sigma + sigma.T), diffusivity_m2_s, weight_s)
+
+
+def _timed_moments_with_age(field: Any, diffusivity_m2_s: jax.Array, decorrelation_time_s: jax.Array,
+                            x: jax.Array, t_s: jax.Array, age_s: jax.Array) -> tuple[jax.Array, jax.Array]:
+    return _timed_moments(field, diffusivity_m2_s, velocity_memory_weight(decorrelation_time_s, age_s), x, t_s)
+
+
 def timed_field_sde(field: Any, diffusivity_m2_s: jax.Array, decorrelation_time_s: jax.Array,
                     velocity_memory: bool) -> SDE:
     """The SDE of a time-varying field (``with_time``): drift field.mean_at(x, t_s=t), diffusion as
-    :func:`_timed_diffusion_with_age` (or its Markov limit).  The field is held as pytree data."""
+    :func:`_timed_diffusion_with_age` (or its Markov limit), both from one ``field.moments_at`` when the field
+    has one.  The field is held as pytree data."""
     diffusion = _timed_diffusion_with_age if velocity_memory else _timed_diffusion
+    both = _timed_moments_with_age if velocity_memory else _timed_moments
+    joint = (jax.tree_util.Partial(both, field, diffusivity_m2_s, decorrelation_time_s)
+             if hasattr(field, "moments_at") else None)
     return SDE(drift=jax.tree_util.Partial(_timed_drift, field),
                diffusion=jax.tree_util.Partial(diffusion, field, diffusivity_m2_s, decorrelation_time_s),
-               with_age=bool(velocity_memory), with_time=True)
+               with_age=bool(velocity_memory), with_time=True, drift_and_diffusion=joint)
 
 
 def _check_nonnegative(value: Any, name: str) -> jax.Array:

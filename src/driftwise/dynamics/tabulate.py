@@ -134,10 +134,18 @@ class TabulatedPosterior:
 
     def cov_at(self, x: jax.Array) -> jax.Array:
         """Posterior velocity covariance at x (d,) m → (d, d) m²/s², C Cᵀ (PSD; NaN off the grid)."""
+        return self._cov_from_channels(self.channels_at(x))
+
+    def _cov_from_channels(self, channels: jax.Array) -> jax.Array:
         d = self.dim
         rows, cols = np.tril_indices(d)
-        chol = jnp.zeros((d, d), self.values.dtype).at[rows, cols].set(self.channels_at(x)[d:])
+        chol = jnp.zeros((d, d), self.values.dtype).at[rows, cols].set(channels[d:])
         return chol @ chol.T
+
+    def moments_at(self, x: jax.Array) -> tuple[jax.Array, jax.Array]:
+        """(:meth:`mean_at`, :meth:`cov_at`) from one interpolation (XLA does not merge the two gathers)."""
+        channels = self.channels_at(x)
+        return channels[: self.dim], self._cov_from_channels(channels)
 
 
 def _channels(posterior: PointPosterior, x: jax.Array) -> jax.Array:
@@ -324,6 +332,11 @@ class TimedTable:
         """μ(x, t) (d,) m/s at x (d,) m and absolute time t_s (s on the model's axis); NaN off the grid."""
         return self._factors(x, t_s)[0]
 
+    def moments_at(self, x: jax.Array, *, t_s: Any) -> tuple[jax.Array, jax.Array]:
+        """(μ(x, t), Σ(x, t) = (W L_P)(W L_P)ᵀ) from one interpolation."""
+        mean, factor = self._factors(x, t_s)
+        return mean, factor @ factor.T
+
     def cov_between(self, x: jax.Array, y: jax.Array, *, t_x_s: Any, t_y_s: Any) -> jax.Array:
         """Cov[v(x, t_x), v(x, t_y)] = W(t_x) Σ_P(x) W(t_y)ᵀ (d, d) m²/s²: one point only (NaN where y ≠ x or
         off the grid; the table holds each point's own joint covariance, not cross-covariances in space)."""
@@ -429,9 +442,10 @@ def on_table(sde: SDE, table: TabulatedPosterior | TimedTable) -> SDE:
     ``Partial(f, posterior or field, *rest)``) with its posterior replaced by ``table``; K, τ and the velocity
     memory stay."""
     def swap(fn: Any) -> Any:
-        return jax.tree_util.Partial(fn.func, table, *fn.args[1:])
+        return None if fn is None else jax.tree_util.Partial(fn.func, table, *fn.args[1:])
 
-    return dataclasses.replace(sde, drift=swap(sde.drift), diffusion=swap(sde.diffusion))
+    return dataclasses.replace(sde, drift=swap(sde.drift), diffusion=swap(sde.diffusion),
+                               drift_and_diffusion=swap(sde.drift_and_diffusion))
 
 
 def posterior_choice(exact: bool) -> str:

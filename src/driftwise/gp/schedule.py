@@ -41,6 +41,8 @@ class Schedule:
                     ``natural_step`` towards each minibatch's optimum) or "adam" (Adam on q too)
     natural_step    in (0, 1]
     learn_inducing  also move the inducing points Z
+    optimiser       "auto" (L-BFGS-B when every step sees all rows with q exact, else Adam) or "adam" (Adam
+                    always: the warm start the transition fit was validated from, dynamics.transitionfit)
     """
 
     steps: int = 1000
@@ -50,6 +52,7 @@ class Schedule:
     q_update: str = "auto"
     natural_step: float = 0.5
     learn_inducing: bool = False
+    optimiser: str = "auto"
 
     def __post_init__(self) -> None:
         for name, low in (("steps", 0), ("batch_size", 1), ("patience", 1)):
@@ -60,6 +63,8 @@ class Schedule:
             raise InputError(f"learning_rate must be a positive number, got {self.learning_rate!r}")
         if self.q_update not in Q_UPDATES:
             raise InputError(f"q_update must be 'auto', 'natural' or 'adam', got {self.q_update!r}")
+        if self.optimiser not in ("auto", "adam"):
+            raise InputError(f"optimiser must be 'auto' or 'adam', got {self.optimiser!r}")
         if not (0.0 < self.natural_step <= 1.0):
             raise InputError(f"natural_step must lie in (0, 1], got {self.natural_step!r}")
 

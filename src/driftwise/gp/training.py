@@ -286,7 +286,7 @@ def _train(state: TrainState, data: _Data, config: TrainConfig, schedule: Schedu
         return now
 
     try:
-        if uses_quasi_newton(config, data.n):
+        if uses_quasi_newton(config, data.n, schedule.optimiser):
             names = trainable_names(config.q_update, config.learn_inducing)
             maximise_bound(state, data.batch, float(data.n), names=names, z_scale=z_scale, steps=steps,
                            after_step=lambda now: after_step(now, now.step - 1, lambda s: _check_bound(s, data.n)))
@@ -306,9 +306,10 @@ def _train(state: TrainState, data: _Data, config: TrainConfig, schedule: Schedu
     return latest[0]
 
 
-def uses_quasi_newton(config: TrainConfig, n: int) -> bool:
-    """True when every step sees all n rows with q exact (natural steps of length 1): a deterministic objective."""
-    return config.q_update == "natural" and config.batch_size >= n and not config.learn_inducing
+def uses_quasi_newton(config: TrainConfig, n: int, optimiser: str = "auto") -> bool:
+    """True when every step sees all n rows with q exact (natural steps of length 1: a deterministic objective) and
+    the schedule leaves the choice to the fit (``optimiser`` "auto")."""
+    return optimiser == "auto" and config.q_update == "natural" and config.batch_size >= n and not config.learn_inducing
 
 
 def _check_bound(state: TrainState, n: int) -> TrainState:
@@ -362,8 +363,8 @@ def _finish(state: TrainState, data: _Data, config: TrainConfig, schedule: Sched
             "steps": state.step, "max_steps": steps, "converged": state.converged, "patience_steps": patience,
             "plateau_checks": list(state.checks),
             "q_update": config.q_update, "seed": config.seed, "batch_size": min(config.batch_size, data.n),
-            "optimiser": ("L-BFGS-B on the collapsed bound" if uses_quasi_newton(config, config.subsample or data.n)
-                          else "Adam"),
+            "optimiser": ("L-BFGS-B on the collapsed bound"
+                          if uses_quasi_newton(config, config.subsample or data.n, schedule.optimiser) else "Adam"),
             "learning_rate_final": float(state.opt_state.hyperparams["learning_rate"]),
             "decorrelation_time_source": "length_scale/rms_speed", "rms_speed_m_s": rms_speed,
             "length_scale_m": length,
