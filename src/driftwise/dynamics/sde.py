@@ -212,6 +212,10 @@ class TimedPointPosterior:
         _whole_field_only(part_x), _whole_field_only(part_y)
         g_x = self._cross(x, t_x_s) @ self.projection
         g_y = g_x if (y is x and t_y_s is t_x_s) else self._cross(y, t_y_s) @ self.projection
+        return self._cov_from_rows(x, t_x_s, g_x, y, t_y_s, g_y)
+
+    def _cov_from_rows(self, x, t_x_s, g_x, y, t_y_s, g_y) -> jax.Array:
+        """k((x, t_x), (y, t_y)) − G_x diag(λ) G_yᵀ for the projected rows G = K((·, t), Z) B."""
         origin = self.kernel.time_origin_s
         prior = self.kernel.prior_cross(None, x, jnp.asarray(t_x_s, jnp.float64) - origin, None, y,
                                         jnp.asarray(t_y_s, jnp.float64) - origin)
@@ -221,9 +225,7 @@ class TimedPointPosterior:
         """(:meth:`mean_at`, :meth:`cov_between` at (x, t) twice) from one cross-covariance row."""
         cross = self._cross(x, t_s)
         g = cross @ self.projection
-        rel = jnp.asarray(t_s, jnp.float64) - self.kernel.time_origin_s
-        prior = self.kernel.prior_cross(None, x, rel, None, x, rel)
-        return cross @ self.alpha, prior - jnp.sum((g * self.weights)[:, None, :] * g[None, :, :], axis=-1)
+        return cross @ self.alpha, self._cov_from_rows(x, t_s, g, x, t_s, g)
 
 
 def _whole_field_only(part: Any) -> None:

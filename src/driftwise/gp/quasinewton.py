@@ -73,17 +73,22 @@ def maximise_bound(state, batch, n_total: float, *, names: tuple[str, ...], z_sc
         return state
     x0, unravel = ravel_pytree(split_trainable(state.params, names, z_scale))
     jitter = state.jitter_multiple
-    first = float(negative_bound(x0, state.params, batch, n_total, z_scale, names=names, jitter_multiple=jitter)[0])
-    if not math.isfinite(first):
+
+    def evaluate(x):
+        value, grad = negative_bound(np.asarray(x), state.params, batch, n_total, z_scale, names=names,
+                                     jitter_multiple=jitter)
+        return float(value), np.asarray(grad, dtype=np.float64)
+
+    start = np.asarray(x0, dtype=np.float64)
+    first = [evaluate(start)]          # scipy's first call asks for the start again: answered from here
+    if not math.isfinite(first[0][0]):
         raise RuntimeError(f"fit: the ELBO is not finite at the starting hyperparameters (step {state.step}); "
                            "the data may hold extreme velocities (check units and --max-speed)")
-    penalty = abs(first) * _PENALTY + _PENALTY
+    penalty = abs(first[0][0]) * _PENALTY + _PENALTY
     last = [state]
 
     def fun(x):
-        value, grad = negative_bound(np.asarray(x), state.params, batch, n_total, z_scale, names=names,
-                                     jitter_multiple=jitter)
-        value, grad = float(value), np.asarray(grad, dtype=np.float64)
+        value, grad = first.pop() if first and np.array_equal(x, start) else evaluate(x)
         if not (math.isfinite(value) and np.all(np.isfinite(grad))):
             return penalty, np.zeros_like(grad)
         return value, grad
@@ -96,7 +101,7 @@ def maximise_bound(state, batch, n_total: float, *, names: tuple[str, ...], z_sc
         if last[0].converged or last[0].step >= steps:
             raise StopIteration
 
-    result = minimize(fun, np.asarray(x0), jac=True, method="L-BFGS-B", callback=callback,
+    result = minimize(fun, start, jac=True, method="L-BFGS-B", callback=callback,
                       options={"maxiter": steps - state.step, "ftol": 0.0, "gtol": 0.0, "maxls": 40})
     if last[0].step < steps and not last[0].converged and result.status != 1:
         # scipy stopped by itself (no further decrease along the search direction): a maximum to working precision
