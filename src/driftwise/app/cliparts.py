@@ -50,7 +50,7 @@ def add_track_options(parser: argparse.ArgumentParser, *, position_error: bool =
     parser.add_argument("--spike-limit", type=float, default=None, metavar="FACTOR",
                         help="drop an isolated spike: a fix further off the line through its two neighbours than "
                         "FACTOR times the file's robust spread of that distance (default 10, "
-                        "data.trackqc.SPIKE_LIMIT; 0 keeps every fix)")
+                        "data.trackqc.SPIKE_LIMIT; at least 3, or 0 to keep every fix)")
     if gap:
         parser.add_argument("--max-gap", default=None,
                             help="split a track at gaps longer than this duration, with its unit "

@@ -32,6 +32,7 @@ class QCAction:
 
 
 SPIKE_LIMIT = 10.0   # robust deviations off the line through its neighbours beyond which a lone fix is a spike
+MIN_SPIKE_LIMIT = 3.0   # a smaller factor on the command line is refused: it would cut into ordinary noise
 SPIKE_NEIGHBOUR_RATIO = 0.75   # a spike's neighbours lie at most this fraction of its own distance off their lines
 
 

@@ -45,7 +45,7 @@ from .observations import MIN_FIT_OBSERVATIONS, Observations, velocity_observati
 from .trackcf import read_netcdf_frame
 from .trackfile import TrackError, check_path, file_format, read_csv_chunks, read_parquet_frame
 from .trackparse import TableParser, detect_layout
-from .trackqc import SPIKE_LIMIT, QCAction, QCLimits, clean, plural, tiny_metre_span
+from .trackqc import MIN_SPIKE_LIMIT, SPIKE_LIMIT, QCAction, QCLimits, clean, plural, tiny_metre_span
 
 __all__ = ["Tracks", "Frame", "QCAction", "TrackError", "TrackWarning", "TrackNotice", "Observations",
            "read_tracks", "tracks_from_frame", "velocity_observations", "inspect_summary", "format_summary",
@@ -219,8 +219,10 @@ def read_tracks_from_cli(args) -> Tracks:
     if max_gap is not None and not max_gap > 0:
         raise InputError(f"--max-gap must be positive, not {args.max_gap!r}")
     spike = SPIKE_LIMIT if getattr(args, "spike_limit", None) is None else args.spike_limit
-    if spike is not None and not (math.isfinite(spike) and spike >= 0):
-        raise InputError(f"--spike-limit must be a number ≥ 0 (0 keeps every fix), not {spike!r}")
+    if spike is not None and not (math.isfinite(spike) and (spike == 0 or spike >= MIN_SPIKE_LIMIT)):
+        raise InputError(f"--spike-limit must be 0 (keep every fix) or at least {MIN_SPIKE_LIMIT:g} robust deviations "
+                         "(below that it drops ordinary noisy fixes, not spikes), "
+                         f"not {spike!r}")
     return read_tracks(args.tracks, max_speed_m_s=max_speed, max_gap_s=max_gap, spike_limit=spike)
 
 
