@@ -47,7 +47,7 @@ from test_transitionfit import SIGMA_M, rmse_near_data, vortex_tracks
 BATCH, M = 256, 64
 
 
-def _timed(fn, repeats: int = 5) -> float:
+def _timed(fn, repeats: int = 15) -> float:
     jax.block_until_ready(fn())                       # compile
     times = []
     for _ in range(repeats):
@@ -77,7 +77,7 @@ def step_cost(method: str) -> None:
     obs = driftwise.velocity_observations(tracks, position_error_m=SIGMA_M)
     batch = fld.batch_from_observations(obs, idx=list(range(b)))
     names = F.trainable_names("adam", False)
-    vopt = F._optimizer().init(F._split(params, names, 1.0))
+    vopt = F.optimizer().init(F.split_trainable(params, names, 1.0))
     t_vel = _timed(lambda: F.optimiser_step(params, vopt, batch, float(obs.n), 1.0, 1.0, names=names, q_update="adam",
                                    jitter_multiple=warm.jitter_multiple)[2])
     print(f"step cost, M = {params.n_inducing}, batch {b}, {method}, {_load()}")

@@ -76,3 +76,41 @@ def test_linear_field_matches_van_loan_and_quadrature(method, sigma):
                                    jnp.asarray(end), jnp.asarray(dt), R_VAR, 3)
     exact = [_reference(start[k], end[k], dt[k], sigma) for k in range(n)]
     np.testing.assert_allclose(np.asarray(got), exact, rtol=0, atol=1e-8)   # Van Loan 1978 + scipy quad_vec
+
+
+@jax.tree_util.register_dataclass
+@dataclasses.dataclass(frozen=True)
+class StreamPosterior:
+    """μ(x) = U, Σ(x) = Σ₀ + (g · x) B: a uniform stream whose velocity error grows across the domain."""
+
+    velocity: jax.Array
+    slope: jax.Array
+
+    def mean_at(self, x):
+        return self.velocity
+
+    def cov_at(self, x):
+        return SIGMA + (self.slope @ x) * jnp.array([[0.02, 0.005], [0.005, 0.01]])
+
+
+@pytest.mark.parametrize("method", MOMENT_METHODS, ids=lambda m: type(m).__name__)
+def test_field_error_varying_along_a_straight_path(method):
+    # The bound takes Σ along the mean path linear in time between the fixes (transitionbound's docstring).
+    # In a uniform stream ending exactly at the next fix that path is straight and uniform in time, so a Σ linear
+    # in x is linear in time and the rule is exact: V = ∫₀^Δt 2 w(s) Σ(x₀ + U s) ds (scipy quad_vec).
+    u, slope = np.array([0.8, -0.3]), np.array([0.04, 0.02])
+    post = StreamPosterior(jnp.asarray(u), jnp.asarray(slope))
+    start = np.array([[0.5, 1.0], [-1.0, 2.0]])
+    dt = np.array([1.7, 4.0])
+    end = start + u * dt[:, None]
+    got = expected_log_likelihoods(post, K, TAU, method, FixedStepRK4(0.01, 500), jnp.asarray(start),
+                                   jnp.asarray(end), jnp.asarray(dt), R_VAR, 2)
+    for k in range(2):
+        cov = (2 * R_VAR + 2 * K * dt[k]) * np.eye(2)
+
+        def integrand(s):
+            return 2.0 * TAU * (1.0 - np.exp(-s / TAU)) * np.asarray(post.cov_at(jnp.asarray(start[k] + u * s)))
+
+        v = scipy.integrate.quad_vec(integrand, 0.0, dt[k], epsabs=1e-13, epsrel=1e-11)[0]
+        exact = multivariate_normal(end[k], cov).logpdf(end[k]) - 0.5 * np.trace(np.linalg.solve(cov, v))
+        np.testing.assert_allclose(float(got[k]), exact, rtol=0, atol=1e-8)

@@ -279,3 +279,20 @@ def test_bad_input_is_an_input_error():
         make_kernel("independent", 2, velocity_scale_m_s=1.0, length_scale_m=-5.0)
     with pytest.raises(InputError, match="base"):
         make_kernel("independent", 2, velocity_scale_m_s=1.0, length_scale_m=1.0, base="cubic")
+
+
+@pytest.mark.parametrize("family,base,dim", REGISTRY)
+@pytest.mark.parametrize("background", ["none", "linear"])
+def test_weighted_sum_equals_the_gram_row_product(family, base, dim, background):
+    # Σ_j K(x, z_j) w_j without the row against K(x, Z) w from the Gram matrix (same algebra, other route);
+    # at x on an inducing point too (r = 0).
+    rng = np.random.default_rng(11)
+    z = rng.normal(scale=ELL, size=(9, dim))
+    w = rng.normal(size=(9, dim))
+    kern = make_kernel(family, dim, base=base, velocity_scale_m_s=SIGMA, length_scale_m=ELL,
+                       curl_free_velocity_scale_m_s=0.7 * SIGMA, curl_free_length_scale_m=1.3 * ELL,
+                       background=background, centre_m=np.zeros(dim))
+    for x in (rng.normal(scale=ELL, size=dim), z[3]):
+        want = np.asarray(kern.gram_matrix(jnp.asarray(x)[None], jnp.asarray(z)) @ jnp.asarray(w.ravel()))
+        got = np.asarray(kern.weighted_sum(jnp.asarray(x), jnp.asarray(z), jnp.asarray(w)))
+        np.testing.assert_allclose(got, want, rtol=1e-12, atol=1e-14 * np.abs(want).max())

@@ -229,13 +229,17 @@ def substep_counts(span_s: jax.Array, step_s: float) -> jax.Array:
     return jnp.maximum(1, jnp.ceil(span_s / step_s * (1.0 - 1e-12))).astype(jnp.int32)
 
 
-def rk4_step(f: Callable, y: jax.Array, h: jax.Array) -> jax.Array:
-    """One classical Runge–Kutta step of the autonomous ODE y' = f(y) (Kutta 1901); h = 0 returns y exactly."""
+def rk4_step(f: Callable, y: Any, h: jax.Array) -> Any:
+    """One classical Runge–Kutta step of the autonomous ODE y' = f(y) (Kutta 1901); h = 0 returns y exactly.
+    y is an array or a pytree of arrays (f returns the same structure)."""
+    def ahead(fraction, slope):
+        return jax.tree.map(lambda a, b: a + (fraction * h) * b, y, slope)
+
     k1 = f(y)
-    k2 = f(y + 0.5 * h * k1)
-    k3 = f(y + 0.5 * h * k2)
-    k4 = f(y + h * k3)
-    return y + (h / 6.0) * (k1 + 2.0 * k2 + 2.0 * k3 + k4)
+    k2 = f(ahead(0.5, k1))
+    k3 = f(ahead(0.5, k2))
+    k4 = f(ahead(1.0, k3))
+    return jax.tree.map(lambda a, b1, b2, b3, b4: a + (h / 6.0) * (b1 + 2.0 * b2 + 2.0 * b3 + b4), y, k1, k2, k3, k4)
 
 
 @partial(jax.tree_util.register_dataclass, data_fields=["step_s"], meta_fields=[])

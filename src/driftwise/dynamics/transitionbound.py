@@ -15,7 +15,7 @@ error of covariance Σ(x); to first order the end mean moves by δm with dδm/dt
 J̄ = E[∂μ/∂x] over N(m, P), and an error with autocorrelation e^{−|s|/τ} along the path (Taylor 1921) gives
 V = Cov_q[δm]:
 
-    dV/dt = J̄ V + V J̄ᵀ + 2 τ (1 − e^{−a/τ}) Σ(m),        a the time since t_k,
+    dV/dt = J̄ V + V J̄ᵀ + 2 τ (1 − e^{−a/τ}) Σ(m(a)),        a the time since t_k,
 
 (the rate the forecast SDE adds to its diffusion, :mod:`driftwise.dynamics.sde`).  The expected log
 density of the next fix under x_{k+1} ~ N(m + δm, P + R) is then, exactly for Gaussian δm,
@@ -28,13 +28,20 @@ bias K low (Jankowiak, Pleiss & Gardner 2020 describe that effect of predictive 
 sparse GPs; measured here: 3-h fixes in the Lamb–Oseen vortex gave K 0.49 m²/s against 1).
 
 Approximations, stated: the Gaussian closure of the moment equations; δm linear in δv; Σ taken at
-the mean m (it varies on the kernel's length scale, the particle cloud is far smaller) and V
+the mean m (it varies on the kernel's length scale, the particle cloud is far smaller), and along the
+mean path linear in time between its values at the two fixes,
+
+    Σ(m(a)) ≈ (1 − a/Δt) Σ(x_k) + (a/Δt) Σ(x_{k+1})
+
+(the mean path starts at x_k and ends at x_{k+1} up to the fix's error and the misfit; exact for a
+Σ linear in x along a straight path, tests/dynamics/test_transitionbound.py); and V
 propagated with the expected Jacobian J̄ = C P⁻¹ that the moment method already gives (Stein's lemma,
 :func:`expected_jacobian`; equal to ∂μ/∂x at m for a linear μ and for linearization, and otherwise within
 O(P ∂³μ) of it: the gradient's variation over the cloud, ~ (150 m / 2 km)² for 3-h fixes in a 2-km eddy).
 Cost: no derivative of the kernel is evaluated (the Jacobian at m was, and its reverse-mode derivative
-dominated a step); the posterior covariance (one (d × Md)(Md × Md) product) is evaluated once per RK4
-stage, at the mean, while the cheap posterior mean is what the cubature points see.
+dominated a step); the posterior covariance (one (d × Md)(Md × Md) product) is evaluated twice per
+transition, at its fixes, outside the RK4 loop (it was once per RK4 stage: 28 times for 7 substeps), while
+the cheap posterior mean (one d × Md row) is what the cubature points see.
 """
 
 from __future__ import annotations
@@ -74,36 +81,31 @@ def expected_jacobian(cross: jax.Array, cov: jax.Array) -> jax.Array:
 
 
 def bound_rates(method: Any, posterior: Any, diffusivity_m2_s: jax.Array, decorrelation_time_s: jax.Array,
-                state: tuple[jax.Array, ...]) -> tuple[jax.Array, ...]:
-    """d/dt of (m (d,) m, P (d, d) m², V (d, d) m², a s) of the module docstring; exactly symmetric."""
+                field_cov: tuple[jax.Array, jax.Array, jax.Array], state: tuple[jax.Array, ...]) -> tuple[jax.Array, ...]:
+    """d/dt of (m (d,) m, P (d, d) m², V (d, d) m², a s) of the module docstring; exactly symmetric.
+
+    ``field_cov`` (Σ(x_k), Σ(x_{k+1}) (d, d) m²/s², Δt s): Σ along the path, linear in the age a."""
     mean, cov, var, age = state
+    sigma_start, sigma_end, span = field_cov
+    along = jnp.clip(age / span, 0.0, 1.0)
     e_drift, cross, e_diff = method.expectations(_random_walk_sde(posterior, diffusivity_m2_s), mean, cov, 0.0)
     dp = (cross + cross.T) + 0.5 * (e_diff + e_diff.T)                           # as moments.moment_rates
     flux = expected_jacobian(cross, cov) @ var
     weight = velocity_memory_weight(decorrelation_time_s, age)
-    dv = (flux + flux.T) + 2.0 * weight * posterior.cov_at(mean)
+    dv = (flux + flux.T) + 2.0 * weight * (sigma_start + along * (sigma_end - sigma_start))
     return e_drift, dp, dv, jnp.ones_like(age)
-
-
-def _flatten(state):
-    return jnp.concatenate([state[0], state[1].ravel(), state[2].ravel(), state[3][None]])
-
-
-def _unflatten(y, d):
-    n = d * d
-    return y[:d], y[d:d + n].reshape(d, d), y[d + n:d + 2 * n].reshape(d, d), y[d + 2 * n]
 
 
 def _one(method, integrator, posterior, k, tau, r, row):
     """E_q log p(x1 | x0) for one transition row (x0 (d,), x1 (d,), Δt)."""
     x0, x1, dt = row
-    d = x0.shape[-1]
+    field_cov = (posterior.cov_at(x0), posterior.cov_at(x1), dt)
 
-    def f(y):
-        return _flatten(bound_rates(method, posterior, k, tau, _unflatten(y, d)))
+    def f(state):
+        return bound_rates(method, posterior, k, tau, field_cov, state)
 
-    y0 = _flatten((x0, r, jnp.zeros_like(r), jnp.zeros((), x0.dtype)))
-    mean, cov, var, _ = _unflatten(integrator.integrate(f, y0, jnp.stack([jnp.zeros_like(dt), dt]))[-1], d)
+    y0 = (x0, r, jnp.zeros_like(r), jnp.zeros((), x0.dtype))
+    mean, cov, var, _ = (stack[-1] for stack in integrator.integrate(f, y0, jnp.stack([jnp.zeros_like(dt), dt])))
     total = cov + r
     penalty = jnp.trace(smallmatrix.cho_solve(smallmatrix.cholesky(0.5 * (total + total.T)), 0.5 * (var + var.T)))
     return gaussian_log_density(x1, mean, total) - 0.5 * penalty

@@ -135,8 +135,10 @@ class FixedStepRK4:
     step_s: float = 900.0
     substeps: int = 16
 
-    def integrate(self, f: Callable, y0: jax.Array, times_s: jax.Array) -> jax.Array:
-        """States (T, n) at times_s (T,) for y' = f(y), y(times_s[0]) = y0."""
+    def integrate(self, f: Callable, y0: Any, times_s: jax.Array) -> Any:
+        """States at times_s (T,) for y' = f(y), y(times_s[0]) = y0: (T, n) for an array y0 (n,), a pytree of
+        such stacks for a pytree y0 (no flattening of a structured state, whose slices cost a pad each in reverse
+        mode)."""
         slots = jnp.arange(self.substeps)
         step = jax.checkpoint(partial(rk4_step, f))
 
@@ -147,7 +149,7 @@ class FixedStepRK4:
             return y, y
 
         _, ys = jax.lax.scan(interval, y0, jnp.diff(times_s))
-        return jnp.concatenate([y0[None], ys])
+        return jax.tree.map(lambda first, rest: jnp.concatenate([first[None], rest]), y0, ys)
 
 
 def substeps_for(dt_s: np.ndarray, step_s: float, max_substeps: int = 32) -> int:
@@ -187,8 +189,8 @@ class ParamPosterior:
         return cls(params.kernel, params.inducing_m, whiten @ params.q_mean, 0.5 * (weight + weight.T))
 
     def mean_at(self, x: jax.Array) -> jax.Array:
-        """Posterior mean velocity at x (d,) m → (d,) m/s."""
-        return self.kernel.gram_matrix(x[None, :], self.inducing_m) @ self.alpha
+        """Posterior mean velocity at x (d,) m → (d,) m/s: Σ_j K(x, z_j) α_j (MatrixKernel.weighted_sum)."""
+        return self.kernel.weighted_sum(x, self.inducing_m, self.alpha.reshape(-1, x.shape[-1]))
 
     def cov_at(self, x: jax.Array) -> jax.Array:
         """Posterior velocity covariance at x (d,) m → (d, d) m²/s², symmetrised."""

@@ -2,9 +2,10 @@
 
 A vector field v: R^d → R^d (d = 2 or 3) gets a Gaussian-process prior through a
 matrix-valued kernel K(x, y) = Cov[v(x), v(y)] of shape (d, d).  Every kernel here
-is stationary, K(x, y) = K(r) with r = x − y, and writes only :meth:`blocks`, which
-maps separations r of shape (..., d) to blocks (..., d, d) with plain broadcasting;
-:class:`MatrixKernel` builds one pair's block and Gram matrices from it.  (Broadcasting,
+is stationary and isotropic in the sense K(x, y) = A(|r|²) I + B(|r|²) r rᵀ with r = x − y, and writes
+only :meth:`terms`, which maps squared separations |r|² (...) and the dimension d to the two profiles (A, B) with plain
+broadcasting; :class:`MatrixKernel` builds the blocks (..., d, d), one pair's block, the Gram matrices and
+the weighted sum Σ_j K(x, z_j) w_j (:meth:`MatrixKernel.weighted_sum`) from them.  (Broadcasting,
 not a nested ``vmap`` of a one-pair function: XLA then fuses the whole Gram matrix into
 one elementwise loop; DEVELOPERS.md keeps the measured speed-up.)
 
@@ -175,6 +176,10 @@ class _ScalarBase:
         scale = self.variance_m2_s2 / self.length_scale_m**2
         return scale * a, scale * b / self.length_scale_m**2
 
+    def value_from_sq(self, sq: jax.Array) -> jax.Array:
+        """k as a function of |r|² (m²) → (...) m²/s²."""
+        return self.variance_m2_s2 * self._value_profile(sq / self.length_scale_m**2)
+
     def hessian(self, r: jax.Array) -> jax.Array:
         """H_k(r) = (σ²/ℓ²) [a(s) I + b(s) r rᵀ/ℓ²] for r (..., d) m → (..., d, d), units m²/s² per m²."""
         alpha, beta = self.hessian_terms(r)
@@ -183,7 +188,12 @@ class _ScalarBase:
 
 def _squared_norm(r: jax.Array) -> jax.Array:
     """|r|² over the last (short) axis, unrolled so that XLA fuses it with what follows."""
-    return sum(r[..., i] * r[..., i] for i in range(r.shape[-1]))
+    return _squared_norm_pair(r, r)
+
+
+def _squared_norm_pair(r: jax.Array, w: jax.Array) -> jax.Array:
+    """r · w over the last (short) axis, unrolled."""
+    return sum(r[..., i] * w[..., i] for i in range(r.shape[-1]))
 
 
 def _identity_plus_outer(alpha: jax.Array, beta: jax.Array, r: jax.Array) -> jax.Array:
@@ -207,7 +217,11 @@ class SquaredExponential(_ScalarBase):
 
     def value(self, r: jax.Array) -> jax.Array:
         """k(r) for separations r (..., d) in m → (...) in m²/s²."""
-        return self.variance_m2_s2 * jnp.exp(-0.5 * self._scaled_sq_distance(r))
+        return self.variance_m2_s2 * self._value_profile(self._scaled_sq_distance(r))
+
+    @staticmethod
+    def _value_profile(s):
+        return jnp.exp(-0.5 * s)
 
     @staticmethod
     def _hessian_profiles(s):
@@ -230,8 +244,11 @@ class Matern52(_ScalarBase):
 
     def value(self, r: jax.Array) -> jax.Array:
         """k(r) for separations r (..., d) in m → (...) in m²/s²."""
-        s = self._scaled_sq_distance(r)
-        return self.variance_m2_s2 * (_one_plus_root5_exp(s) + (5.0 / 3.0) * s * _exp_root5(s))
+        return self.variance_m2_s2 * self._value_profile(self._scaled_sq_distance(r))
+
+    @staticmethod
+    def _value_profile(s):
+        return _one_plus_root5_exp(s) + (5.0 / 3.0) * s * _exp_root5(s)
 
     @staticmethod
     def _hessian_profiles(s):
@@ -246,14 +263,15 @@ BASES: dict[str, type] = {"squared-exponential": SquaredExponential, "matern52":
 # Matrix-valued kernels
 # --------------------------------------------------------------------------------------
 class MatrixKernel:
-    """One pair's block and Gram matrices, built from a kernel's ``blocks(r) -> (..., d, d)``.
+    """Blocks, one pair's block, Gram matrices and weighted sums, built from a kernel's
+    ``terms(sq, dim) -> (A, B)``: K(r) = A(|r|²) I + B(|r|²) r rᵀ.
 
     Ordering of the flattened Gram matrix: point-major, component-minor, i.e. row
     ``i·d + a`` is component a of point i (``gram(X, Y).transpose(0, 2, 1, 3)``
     reshaped to (n·d, m·d)).
     """
 
-    blocks: Callable[[jax.Array], jax.Array]
+    terms: Callable[[jax.Array, int], tuple[jax.Array, jax.Array]]
     family: str
 
     def __post_init__(self):
@@ -269,6 +287,27 @@ class MatrixKernel:
         for background in self.backgrounds():
             k = k + background.blocks(x, y)
         return k
+
+    def blocks(self, r: jax.Array) -> jax.Array:
+        """K(r) = A I + B r rᵀ for separations r (..., d) in m → (..., d, d) in m²/s² (no background)."""
+        return _identity_plus_outer(*self.terms(_squared_norm(r), r.shape[-1]), r)
+
+    def weighted_sum(self, x: jax.Array, z: jax.Array, w: jax.Array) -> jax.Array:
+        """Σ_j K(x, z_j) w_j for one point x (d,) m, points z (M, d) m, weights w (M, d) → (d,).
+
+        = Σ_j [A_j w_j + B_j (r_j · w_j) r_j] with r_j = x − z_j, plus the backgrounds' F(x) diag(s²) F(Z)ᵀ w:
+        the same value as K(x, Z) w from :meth:`gram_matrix`, without forming the (d, M·d) row (the posterior
+        mean at the cubature points of the transition fit: its step 130 → 70 ms, DEVELOPERS.md "Benchmark
+        record")."""
+        r = x - z
+        a, b = self.terms(_squared_norm(r), x.shape[-1])
+        c = b * _squared_norm_pair(r, w)
+        out = a @ w + x * (c @ jnp.ones_like(c)) - c @ z          # Σ_j c_j r_j = x Σ_j c_j − Σ_j c_j z_j
+        for background in self.backgrounds():
+            fx, variances = features(background, x)
+            fz, _ = features(background, z)
+            out = out + fx @ (variances * jnp.einsum("mdp,md->p", fz, w))
+        return out
 
     def block(self, x: jax.Array, y: jax.Array) -> jax.Array:
         """Cov[v(x), v(y)] for x, y (d,) in m → (d, d) in m²/s²."""
@@ -305,11 +344,6 @@ def jitter_m2_s2(kernel: MatrixKernel, point: jax.Array, jitter_multiple: float)
     return jitter_multiple * jnp.finfo(point.dtype).eps * variance
 
 
-def _potential_scale(base: Base) -> jax.Array:
-    """c = ℓ²/λ: multiplies −H_k so that the velocity variance per component is σ²."""
-    return base.length_scale_m**2 / base.curvature
-
-
 def _base_hyperparameters(base: Base, prefix: str = "", background: Background | None = None) -> dict[str, float]:
     return {
         f"{prefix}velocity_scale_m_s": float(base.velocity_scale_m_s),
@@ -327,9 +361,12 @@ class CurlFree(MatrixKernel):
     family: str = _tag("curl-free")
     background: Background | None = None
 
-    def blocks(self, r: jax.Array) -> jax.Array:
-        """K_cf(r) for separations r (..., d) in m → (..., d, d) in m²/s²."""
-        return -_potential_scale(self.base) * self.base.hessian(r)
+    def terms(self, sq: jax.Array, dim: int) -> tuple[jax.Array, jax.Array]:
+        """(A, B) of K_cf = −c H_k from |r|² (m²): A = −(σ²/λ) a(s), B = −(σ²/(λℓ²)) b(s)."""
+        base = self.base
+        a, b = base._hessian_profiles(sq / base.length_scale_m**2)
+        scale = base.variance_m2_s2 / base.curvature
+        return -scale * a, -(scale / base.length_scale_m**2) * b
 
     def hyperparameters(self) -> dict[str, float]:
         """Physical hyperparameters, units in the key names."""
@@ -345,13 +382,14 @@ class DivergenceFree(MatrixKernel):
     family: str = _tag("divergence-free")
     background: Background | None = None
 
-    def blocks(self, r: jax.Array) -> jax.Array:
-        """K_df(r) for separations r (..., d) in m → (..., d, d) in m²/s²."""
-        d = r.shape[-1]
-        alpha, beta = self.base.hessian_terms(r)
-        trace = d * alpha + beta * _squared_norm(r)  # tr H_k, in closed form (no reduction)
-        scale = _potential_scale(self.base) / (d - 1)
-        return _identity_plus_outer(scale * (alpha - trace), scale * beta, r)
+    def terms(self, sq: jax.Array, dim: int) -> tuple[jax.Array, jax.Array]:
+        """(A, B) of K_df = c′ (H_k − tr H_k I) from |r|² (m²), tr H_k = d α + β |r|² in closed form:
+        A = −(σ²/λ) (a(s) + s b(s)/(d − 1)), B = σ² b(s)/(λ ℓ² (d − 1))."""
+        base = self.base
+        s = sq / base.length_scale_m**2
+        a, b = base._hessian_profiles(s)
+        scale = base.variance_m2_s2 / base.curvature
+        return -scale * (a + s * b / (dim - 1)), (scale / (base.length_scale_m**2 * (dim - 1))) * b
 
     def hyperparameters(self) -> dict[str, float]:
         """Physical hyperparameters, units in the key names."""
@@ -367,10 +405,10 @@ class Independent(MatrixKernel):
     family: str = _tag("independent")
     background: Background | None = None
 
-    def blocks(self, r: jax.Array) -> jax.Array:
-        """k(r) I for separations r (..., d) in m → (..., d, d) in m²/s²."""
-        d = r.shape[-1]
-        return self.base.value(r)[..., None, None] * jnp.eye(d, dtype=r.dtype)
+    def terms(self, sq: jax.Array, dim: int) -> tuple[jax.Array, jax.Array]:
+        """(A, B) = (k, 0) of K = k I from |r|² (m²)."""
+        value = self.base.value_from_sq(sq)
+        return value, jnp.zeros_like(value)
 
     def hyperparameters(self) -> dict[str, float]:
         """Physical hyperparameters, units in the key names."""
@@ -389,9 +427,10 @@ class Helmholtz(MatrixKernel):
     curl_free: CurlFree
     family: str = _tag("helmholtz")
 
-    def blocks(self, r: jax.Array) -> jax.Array:
-        """K_df(r) + K_cf(r) for separations r (..., d) in m → (..., d, d) in m²/s²."""
-        return self.divergence_free.blocks(r) + self.curl_free.blocks(r)
+    def terms(self, sq: jax.Array, dim: int) -> tuple[jax.Array, jax.Array]:
+        """(A, B) of K_df + K_cf from |r|² (m²): the sums of the parts' profiles."""
+        (a1, b1), (a2, b2) = self.divergence_free.terms(sq, dim), self.curl_free.terms(sq, dim)
+        return a1 + a2, b1 + b2
 
     def backgrounds(self) -> tuple[Background, ...]:
         """Both parts' background terms."""
