@@ -4,7 +4,7 @@
 Prints, everything measured in this run (medians of timed repeats after one compiling call):
 
 1. ``step``: the cost of one optimiser step of the transition objective against one step of the velocity
-   ELBO at the same batch b and the same M (Helmholtz kernel, 2-D, M = 64, b = 256, 3-h fixes, RK4 step from
+   ELBO at the same batch b and the same M, timed in alternating rounds (:func:`_paired`) (Helmholtz kernel, 2-D, M = 64, b = 256, 3-h fixes, RK4 step from
    the field, :func:`driftwise.dynamics.transitionfit.step_for_field`, and the old fixed 900 s = 12 substeps):
    seconds per step and the ratio (target of the issue: ≤ 8×);
 3. ``plateau``: wall time of ``fit_transitions`` to its plateau on 10⁴ transitions (target < 5 min on 2 cores).
@@ -47,14 +47,22 @@ from test_transitionfit import SIGMA_M, rmse_near_data, vortex_tracks
 BATCH, M = 256, 64
 
 
-def _timed(fn, repeats: int = 15) -> float:
-    jax.block_until_ready(fn())                       # compile
-    times = []
-    for _ in range(repeats):
-        start = time.perf_counter()
+def _once(fn) -> float:
+    start = time.perf_counter()
+    jax.block_until_ready(fn())
+    return time.perf_counter() - start
+
+
+def _paired(fns: dict, repeats: int = 15) -> dict:
+    """Median seconds of each function, timed in turn (one call of each per round, after one compiling call
+    each), so that the machine's slow spells fall on all of them alike; the ratios are medians of the
+    per-round ratios to the first function."""
+    for fn in fns.values():
         jax.block_until_ready(fn())
-        times.append(time.perf_counter() - start)
-    return statistics.median(times)
+    rounds = [{name: _once(fn) for name, fn in fns.items()} for _ in range(repeats)]
+    first = next(iter(fns))
+    return {name: (statistics.median(r[name] for r in rounds),
+                   statistics.median(r[name] / r[first] for r in rounds)) for name in fns}
 
 
 def _load() -> str:
@@ -69,21 +77,21 @@ def step_cost(method: str) -> None:
     rows = TF._rows(trans, jnp.arange(b))
     params = warm.params
     opt = TF._optimizer().init({name: getattr(params, name) for name in TF._TRAINABLE})
-    costs = {}
-    for label, step_s in (("field step", TF.step_for_field(warm, trans)), ("900 s step", 900.0)):
-        prop = TF._propagation(method, trans, step_s, 32)
-        costs[label, prop.integrator.substeps] = _timed(lambda prop=prop: TF._step(
-            params, opt, rows, float(trans.n), 3000.0, SIGMA_M**2, prop=prop, jitter_multiple=warm.jitter_multiple)[2])
     obs = driftwise.velocity_observations(tracks, position_error_m=SIGMA_M)
     batch = fld.batch_from_observations(obs, idx=list(range(b)))
     names = F.trainable_names("adam", False)
     vopt = F.optimizer().init(F.split_trainable(params, names, 1.0))
-    t_vel = _timed(lambda: F.optimiser_step(params, vopt, batch, float(obs.n), 1.0, 1.0, names=names, q_update="adam",
-                                   jitter_multiple=warm.jitter_multiple)[2])
-    print(f"step cost, M = {params.n_inducing}, batch {b}, {method}, {_load()}")
-    print(f"  velocities {t_vel * 1e3:.1f} ms")
-    for (label, substeps), cost in costs.items():
-        print(f"  transitions, {label}, {substeps} RK4 substeps: {cost * 1e3:.1f} ms, ratio {cost / t_vel:.1f}x")
+    fns = {"velocities": lambda: F.optimiser_step(params, vopt, batch, float(obs.n), 1.0, 1.0, names=names,
+                                                  q_update="adam", jitter_multiple=warm.jitter_multiple)[2]}
+    for label, step_s in (("field step", TF.step_for_field(warm, trans)), ("900 s step", 900.0)):
+        prop = TF._propagation(method, trans, step_s, 32)
+        fns[f"transitions, {label}, {prop.integrator.substeps} RK4 substeps"] = lambda prop=prop: TF._step(
+            params, opt, rows, float(trans.n), 3000.0, SIGMA_M**2, prop=prop, jitter_multiple=warm.jitter_multiple)[2]
+    print(f"step cost, M = {params.n_inducing}, batch {b}, {method}, {_load()}; medians of 15 rounds, each "
+          "function once per round; ratio = median of the per-round ratios to the velocity step")
+    for name, (seconds, ratio) in _paired(fns).items():
+        print(f"  {name}: {seconds * 1e3:.1f} ms, ratio {ratio:.1f}x")
+    print(f"  (after the rounds: {_load()})")
 
 
 def plateau_time(method: str) -> None:
