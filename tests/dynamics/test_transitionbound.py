@@ -33,19 +33,24 @@ TAU = 0.8                                       # s
 R_VAR = 0.3**2                                  # m²
 
 
+GROWTH = np.array([[0.02, 0.005], [0.005, 0.01]])   # m²/s² per unit of g · x
+
+
 @jax.tree_util.register_dataclass
 @dataclasses.dataclass(frozen=True)
-class LinearPosterior:
-    """μ(x) = A x, Σ(x) = Σ (a stand-in for ParamPosterior)."""
+class AffinePosterior:
+    """μ(x) = A x + u, Σ(x) = Σ₀ + (g · x) GROWTH (a stand-in for ParamPosterior)."""
 
     matrix: jax.Array
+    velocity: jax.Array
     sigma: jax.Array
+    slope: jax.Array
 
     def mean_at(self, x):
-        return self.matrix @ x
+        return self.matrix @ x + self.velocity
 
     def cov_at(self, x):
-        return self.sigma
+        return self.sigma + (self.slope @ x) * jnp.asarray(GROWTH)
 
 
 def _reference(x0, x1, dt, sigma):
@@ -71,26 +76,11 @@ def test_linear_field_matches_van_loan_and_quadrature(method, sigma):
     dt = rng.choice([0.3, 1.7, 4.0], n) * rng.uniform(0.8, 1.2, n)
     start = rng.normal(0.0, 1.5, (n, 2))
     end = start + rng.normal(0.0, 1.0, (n, 2))
-    post = LinearPosterior(jnp.asarray(A), jnp.asarray(sigma))
+    post = AffinePosterior(jnp.asarray(A), jnp.zeros(2), jnp.asarray(sigma), jnp.zeros(2))
     got = expected_log_likelihoods(post, K, TAU, method, FixedStepRK4(0.01, 500), jnp.asarray(start),
                                    jnp.asarray(end), jnp.asarray(dt), R_VAR, 3)
     exact = [_reference(start[k], end[k], dt[k], sigma) for k in range(n)]
     np.testing.assert_allclose(np.asarray(got), exact, rtol=0, atol=1e-8)   # Van Loan 1978 + scipy quad_vec
-
-
-@jax.tree_util.register_dataclass
-@dataclasses.dataclass(frozen=True)
-class StreamPosterior:
-    """μ(x) = U, Σ(x) = Σ₀ + (g · x) B: a uniform stream whose velocity error grows across the domain."""
-
-    velocity: jax.Array
-    slope: jax.Array
-
-    def mean_at(self, x):
-        return self.velocity
-
-    def cov_at(self, x):
-        return SIGMA + (self.slope @ x) * jnp.array([[0.02, 0.005], [0.005, 0.01]])
 
 
 @pytest.mark.parametrize("method", MOMENT_METHODS, ids=lambda m: type(m).__name__)
@@ -99,7 +89,7 @@ def test_field_error_varying_along_a_straight_path(method):
     # In a uniform stream ending exactly at the next fix that path is straight and uniform in time, so a Σ linear
     # in x is linear in time and the rule is exact: V = ∫₀^Δt 2 w(s) Σ(x₀ + U s) ds (scipy quad_vec).
     u, slope = np.array([0.8, -0.3]), np.array([0.04, 0.02])
-    post = StreamPosterior(jnp.asarray(u), jnp.asarray(slope))
+    post = AffinePosterior(jnp.zeros((2, 2)), jnp.asarray(u), jnp.asarray(SIGMA), jnp.asarray(slope))
     start = np.array([[0.5, 1.0], [-1.0, 2.0]])
     dt = np.array([1.7, 4.0])
     end = start + u * dt[:, None]
