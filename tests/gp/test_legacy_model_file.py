@@ -21,8 +21,10 @@ def test_a_model_file_from_the_flat_package_loads_and_predicts_identically(tmp_p
     field = driftwise.load(FILES / "model_v0_1_helmholtz.npz")
     expected = json.loads((FILES / "model_v0_1_helmholtz.expected.json").read_text(encoding="utf-8"))
     mean, cov = field.predict(np.asarray(expected["points_m"]))
-    np.testing.assert_allclose(mean, expected["mean_m_s"], rtol=1e-12, atol=1e-15)   # same arithmetic, same order
-    np.testing.assert_allclose(cov, expected["cov_m2_s2"], rtol=1e-12, atol=1e-18)
+    # Same model, arithmetic reordered since (2026-12-04: kernels as profiles A, B of |r|²): rounding only,
+    # measured 6.5e-12 relative on the mean and 1.3e-15 m²/s² (3.5e-11 of the largest entry) on the covariance.
+    np.testing.assert_allclose(mean, expected["mean_m_s"], rtol=1e-10, atol=1e-15)
+    np.testing.assert_allclose(cov, expected["cov_m2_s2"], rtol=1e-10, atol=1e-14)
     assert field.kernel_family == "helmholtz" and field.params.n_inducing == 16
     assert field.frame.kind == "lonlat"
     again = driftwise.load(driftwise.save(field, tmp_path / "resaved.npz"))     # and round-trips in today's layout
