@@ -176,6 +176,10 @@ class _ScalarBase:
         scale = self.variance_m2_s2 / self.length_scale_m**2
         return scale * a, scale * b / self.length_scale_m**2
 
+    def value(self, r: jax.Array) -> jax.Array:
+        """k(r) for separations r (..., d) in m → (...) in m²/s²."""
+        return self.value_from_sq(_squared_norm(r))
+
     def value_from_sq(self, sq: jax.Array) -> jax.Array:
         """k as a function of |r|² (m²) → (...) m²/s²."""
         return self.variance_m2_s2 * self._value_profile(sq / self.length_scale_m**2)
@@ -188,10 +192,10 @@ class _ScalarBase:
 
 def _squared_norm(r: jax.Array) -> jax.Array:
     """|r|² over the last (short) axis, unrolled so that XLA fuses it with what follows."""
-    return _squared_norm_pair(r, r)
+    return _dot(r, r)
 
 
-def _squared_norm_pair(r: jax.Array, w: jax.Array) -> jax.Array:
+def _dot(r: jax.Array, w: jax.Array) -> jax.Array:
     """r · w over the last (short) axis, unrolled."""
     return sum(r[..., i] * w[..., i] for i in range(r.shape[-1]))
 
@@ -215,10 +219,6 @@ class SquaredExponential(_ScalarBase):
     name: str = _tag("squared-exponential")
     curvature: ClassVar[float] = 1.0
 
-    def value(self, r: jax.Array) -> jax.Array:
-        """k(r) for separations r (..., d) in m → (...) in m²/s²."""
-        return self.variance_m2_s2 * self._value_profile(self._scaled_sq_distance(r))
-
     @staticmethod
     def _value_profile(s):
         return jnp.exp(-0.5 * s)
@@ -241,10 +241,6 @@ class Matern52(_ScalarBase):
     log_length_scale_m: jax.Array
     name: str = _tag("matern52")
     curvature: ClassVar[float] = 5.0 / 3.0
-
-    def value(self, r: jax.Array) -> jax.Array:
-        """k(r) for separations r (..., d) in m → (...) in m²/s²."""
-        return self.variance_m2_s2 * self._value_profile(self._scaled_sq_distance(r))
 
     @staticmethod
     def _value_profile(s):
@@ -301,7 +297,7 @@ class MatrixKernel:
         record")."""
         r = x - z
         a, b = self.terms(_squared_norm(r), x.shape[-1])
-        c = b * _squared_norm_pair(r, w)
+        c = b * _dot(r, w)
         out = a @ w + x * (c @ jnp.ones_like(c)) - c @ z          # Σ_j c_j r_j = x Σ_j c_j − Σ_j c_j z_j
         for background in self.backgrounds():
             fx, variances = features(background, x)
