@@ -104,12 +104,14 @@ def plateau_time(method: str) -> None:
     print(f"fit on {tr.fit_info['n_transitions']} transitions, M = {M}, {method}, {_load()}: velocity fit {t_vel:.0f} s, "
           f"transition fit {t_tr:.0f} s ({tr.fit_info['transition_steps']} steps, converged "
           f"{tr.fit_info['transition_converged']}), K {tr.diffusivity_m2_s:.3g} m²/s (truth 1), RMSE "
-          f"{rmse_near_data(vel, tracks):.4f} → {rmse_near_data(tr, tracks):.4f} m/s")
+          f"{rmse_near_data(vel, tracks):.4f} → {rmse_near_data(tr, tracks):.4f} m/s; RK4 steps "
+          + ", ".join(f"{s['substeps']} × {s['step_s']:.0f} s from step {s['from_step']}"
+                      for s in tr.fit_info["transition_rk4_steps"]))
 
 
 def rmse_table(method: str, steps: int, hours_list: tuple[float, ...]) -> None:
     print(f"RMSE near the data against the Lamb–Oseen formula, K truth 1 m²/s, {method}, {_load()}")
-    print("fix interval | velocity fit RMSE m/s, K | transition fit RMSE m/s, K | steps, time s")
+    print("fix interval | velocity fit RMSE m/s, K | transition fit RMSE m/s, K | steps, time s | RK4 substeps")
     for hours in hours_list:
         tracks = vortex_tracks(hours * 3600.0, n=30, hours=24.0)
         vel = F.fit(tracks, inducing=36, position_error_m=SIGMA_M, schedule=Schedule(steps=200, optimiser="adam"), progress=False)
@@ -119,7 +121,8 @@ def rmse_table(method: str, steps: int, hours_list: tuple[float, ...]) -> None:
                                 progress=False)
         print(f"{hours:>5.1f} h | {rmse_near_data(vel, tracks):.4f}, {vel.diffusivity_m2_s:.3g} | "
               f"{rmse_near_data(tr, tracks):.4f}, {tr.diffusivity_m2_s:.3g} | "
-              f"{tr.fit_info['transition_steps']}, {time.perf_counter() - start:.0f}", flush=True)
+              f"{tr.fit_info['transition_steps']}, {time.perf_counter() - start:.0f} | substeps "
+              + " → ".join(str(s["substeps"]) for s in tr.fit_info["transition_rk4_steps"]), flush=True)
 
 
 def main() -> None:

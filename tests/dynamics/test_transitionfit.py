@@ -222,3 +222,74 @@ def test_transition_fit_for_every_kernel_family_in_2d_and_3d(family, base, dim):
     checks = refit.fit_info["transition_checks"]          # the warm start's objective first, then every 3 steps
     assert checks[0] == pytest.approx(float(start), rel=1e-9, abs=1e-6)
     assert checks[-1] > checks[0] and np.isfinite(refit.diffusivity_m2_s), checks
+
+
+def test_the_rk4_step_keeps_every_fix_inside_the_stability_region():
+    # RK4 is stable for |hλ| ≤ 2.785 on the real axis and 2√2 on the imaginary one (Hairer & Wanner 1996, §IV.2;
+    # from memory); P's rate has the eigenvalues λ_i + λ_j of ∇μ's, so |λ|h ≤ 1.39 at every fix.
+    tracks = vortex_tracks(3 * 3600.0, n=20)
+    warm = fit(tracks, inducing=36, position_error_m=SIGMA_M, schedule=Schedule(steps=60, optimiser="adam"),
+               progress=False)
+    trans = transition_set(tracks, position_error_m=SIGMA_M)
+    step = TF.step_for_field(warm, trans)
+    points = np.concatenate([trans.start_m, trans.end_m])
+    h = 1.0                                         # m: central differences of the fitted mean (error ~ h²∂³μ)
+    columns = [(warm.predict(points + h * e)[0] - warm.predict(points - h * e)[0]) / (2 * h) for e in np.eye(2)]
+    jac = np.stack(columns, axis=-1)                # (n, 2, 2): ∂μ_i/∂x_j
+    largest = np.max(np.abs(np.linalg.eigvals(jac)))
+    typical = np.percentile(np.linalg.norm(jac[:trans.n], 2, axis=(1, 2)), 95)
+    assert step * largest <= TF.STABLE_TURN * (1 + 1e-6)
+    assert step * typical <= TF.TURN_PER_STEP * (1 + 1e-6)
+    assert step <= warm.decorrelation_time_s
+    assert step == pytest.approx(min(TF.STABLE_TURN / largest, TF.TURN_PER_STEP / typical,
+                                     warm.decorrelation_time_s), rel=1e-6)
+
+
+def test_a_gap_longer_than_the_substeps_cover_is_left_out_and_counted():
+    tracks = vortex_tracks(3 * 3600.0, n=6, hours=9.0)
+    trans = transition_set(tracks, position_error_m=SIGMA_M)
+    gapped = dataclasses.replace(trans, dt_s=np.where(np.arange(trans.n) == 2, 48 * 3600.0, trans.dt_s))
+    kept, left_out = TF._integrable(gapped, 3000.0, 32)           # 32 × 3000 s = 26.7 h < 48 h
+    assert left_out == 1 and kept.n == trans.n - 1 and np.all(kept.dt_s <= 32 * 3000.0)
+    assert TF._integrable(trans, 3000.0, 32) == (trans, 0)
+    with pytest.raises(InputError, match="more than 1e\\+04 s apart"):
+        TF._integrable(trans, 1000.0, 10)
+
+
+def test_a_step_that_lands_on_a_non_finite_objective_is_redone_smaller(monkeypatch):
+    tracks = vortex_tracks(3 * 3600.0, n=6, hours=9.0)
+    warm = fit(tracks, inducing=9, position_error_m=SIGMA_M, schedule=Schedule(steps=10, optimiser="adam"),
+               progress=False)
+    schedule = dataclasses.replace(TRANSITION_SCHEDULE, steps=4, patience=2, batch_size=8)
+    real, calls = TF._step, []
+
+    def flaky(params, opt_state, *args, **kwargs):
+        out = real(params, opt_state, *args, **kwargs)
+        calls.append(float(opt_state.hyperparams["learning_rate"]))
+        return (*out[:3], out[3] & (len(calls) != 3))        # the 3rd call finds the objective non-finite
+
+    monkeypatch.setattr(TF, "_step", flaky)
+    refit = fit_transitions(tracks, warm, position_error_m=SIGMA_M, schedule=schedule, progress=False,
+                            method="linearize")
+    assert refit.fit_info["transition_steps"] == 4 and np.all(np.isfinite(refit.fit_info["transition_history"]))
+    # step 2 (call 3) failed at the parameters of step 1 (call 2), so step 1 was redone at half its rate (call 4)
+    assert calls[3] == pytest.approx(calls[1] / 2.0, rel=1e-12) and len(calls) == 6
+
+    monkeypatch.setattr(TF, "_step", lambda *a, **k: (*real(*a, **k)[:3], False))
+    with pytest.raises(RuntimeError, match="not finite at step 0.*--likelihood velocities"):
+        fit_transitions(tracks, warm, position_error_m=SIGMA_M, schedule=schedule, progress=False, method="linearize")
+
+
+def test_the_step_follows_the_field_as_it_is_fitted_and_only_shrinks():
+    tracks = vortex_tracks(3 * 3600.0, n=6, hours=9.0)
+    warm = fit(tracks, inducing=9, position_error_m=SIGMA_M, schedule=Schedule(steps=10, optimiser="adam"),
+               progress=False)
+    trans = transition_set(tracks, position_error_m=SIGMA_M)
+    tau = float(warm.decorrelation_time_s)
+    state = TF.TrainState(warm.params, None, 5, (), warm.jitter_multiple)
+    coarse = TF._Problem(trans, TF._propagation("cubature", trans, 3 * 3600.0, 32), tau, None, 32)
+    fine = TF._refreshed(coarse, state)
+    expected = TF.step_for_field(warm, trans)                     # the same rule on the same field
+    assert fine.prop.integrator.step_s == pytest.approx(TF.STEP_MARGIN * expected, rel=1e-9)
+    assert fine.prop.integrator.substeps == math.ceil(3 * 3600.0 / (TF.STEP_MARGIN * expected))
+    assert TF._refreshed(fine, state) is fine                     # already short enough: unchanged

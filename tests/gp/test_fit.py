@@ -301,6 +301,7 @@ def test_cli_fit_human_summary(tracks_csv, tmp_path, run_cli):
 @pytest.mark.parametrize("argv, message", [
     (["--inducing", "0"], "--inducing must be a positive integer"),
     (["--position-error", "ten"], "--position-error"),
+    (["--position-error=-1mm"], "--position-error must be ≥ 0"),
     (["--kernel", "swirly"], "invalid choice"),
     (["--seed", "-1"], "--seed must be a non-negative integer"),
 ])

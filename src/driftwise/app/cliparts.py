@@ -9,7 +9,7 @@ from typing import Any
 
 from ..errors import InputError
 from ..files import plain
-from ..units import format_duration
+from ..units import format_duration, parse_length_m
 
 EXIT_OK, EXIT_INTERNAL, EXIT_BAD_INPUT = 0, 1, 2
 
@@ -75,3 +75,13 @@ def profile_text(timing_s: dict[str, float]) -> str:
     lines = ["time (wall):"] + [f"  {name:<24} {format_duration(seconds):>9}  {100 * seconds / total:5.1f} %"
                                 for name, seconds in timing_s.items() if name != "total"]
     return "\n".join(lines + [f"  {'total':<24} {format_duration(total):>9}"])
+
+
+def position_error_m(args: argparse.Namespace) -> float | None:
+    """``--position-error`` in metres (None when not given); InputError naming the option when it is negative."""
+    if not args.position_error:
+        return None
+    value = parse_length_m(args.position_error, what="--position-error")
+    if not value >= 0:
+        raise InputError(f"--position-error must be ≥ 0 (the standard deviation of one fix), got {args.position_error}")
+    return value

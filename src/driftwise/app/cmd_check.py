@@ -25,6 +25,7 @@ from .cliparts import (
     add_profile_flag,
     add_quiet_flag,
     add_track_options,
+    position_error_m,
     print_json,
     profile_text,
 )
@@ -58,7 +59,7 @@ def configure_check(p: argparse.ArgumentParser) -> None:
 
 
 def _run_check(args: argparse.Namespace) -> int:
-    position_error = args.position_error and parse_length_m(args.position_error, what="--position-error")
+    position_error = position_error_m(args)
     for name, value, low in (("--seed", args.seed, 0), ("--inducing", args.inducing, 1), ("--steps", args.steps, 1)):
         if value < low:
             raise InputError(f"{name} must be an integer ≥ {low}, got {value}")

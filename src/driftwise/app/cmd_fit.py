@@ -26,7 +26,6 @@ from ..units import (
     format_named,
     format_speed,
     parse_duration_s,
-    parse_length_m,
 )
 from .cliparts import (
     EXIT_OK,
@@ -34,6 +33,7 @@ from .cliparts import (
     add_profile_flag,
     add_quiet_flag,
     add_track_options,
+    position_error_m,
     print_json,
     profile_text,
 )
@@ -78,7 +78,7 @@ def configure_fit(p: argparse.ArgumentParser) -> None:
 
 
 def _run_fit(args: argparse.Namespace) -> int:
-    position_error = args.position_error and parse_length_m(args.position_error, what="--position-error")
+    position_error = position_error_m(args)
     if args.inducing is not None and args.inducing < 1:
         raise InputError(f"--inducing must be a positive integer, got {args.inducing}")
     if args.seed < 0:
@@ -182,6 +182,13 @@ def _bound_lines(calibration: dict[str, Any]) -> list[str]:
             "do not pin it down, so read it as a bound, not an estimate"]
 
 
+def _left_out_text(count: int, report: dict[str, Any]) -> str:
+    if not count:
+        return ""
+    return (f"; {count} pairs of fixes more than {format_duration(report['transition_longest_dt_s'])} apart left out "
+            "(too long to integrate stably)")
+
+
 def format_fit(report: dict[str, Any]) -> str:
     """The text ``driftwise fit`` prints: every length, duration, speed and diffusivity in the unit that fits."""
     lines = [f"fit: {report['kernel']} kernel, {report['n_observations']} velocity observations from "
@@ -194,6 +201,10 @@ def format_fit(report: dict[str, Any]) -> str:
     lines += [f"  decorrelation time τ = {format_duration(report['decorrelation_time_s'])} "
               f"({report.get('decorrelation_time_source') or 'length scale / RMS speed'})",
               f"  likelihood: {report['likelihood_reason']}"]
+    if "n_transitions" in report:
+        lines.append(f"  transition fit: {report['n_transitions']} transitions, {report['transition_method']}, RK4 step "
+                     f"{format_duration(report['transition_step_s'])} (at most {report['transition_substeps']} per "
+                     "transition)" + _left_out_text(report.get("transitions_left_out_too_long", 0), report))
     lines += _bound_lines(report.get("calibration") or {})
     if "calibration_check" in report:
         check = report["calibration_check"]

@@ -52,6 +52,7 @@ import jax
 import jax.numpy as jnp
 
 from .. import smallmatrix
+from .moments import psd_cholesky
 from .sde import SDE, field_drift, velocity_memory_weight
 from .transitions import gaussian_log_density
 
@@ -72,12 +73,18 @@ def _random_walk_sde(posterior: Any, diffusivity_m2_s: jax.Array) -> SDE:
 def expected_jacobian(cross: jax.Array, cov: jax.Array) -> jax.Array:
     """J̄ = C P⁻¹ (1/s), the expected velocity gradient E[∂μ/∂x] over x ~ N(m, P) by Stein's lemma
     (E[μ(x)(x − m)ᵀ] = E[∂μ/∂x] P for Gaussian x), from the moment method's C (d, d) m²/s and P (d, d) m².
-    P is regularised by 1e-12 of its mean variance; J̄ = 0 when P = 0 (there V = 0 too, so J̄ V is unaffected)."""
-    d = cov.shape[-1]
-    scale = jnp.trace(cov) / d
-    ok = scale > 0
-    regular = jnp.where(ok, cov + 1e-12 * scale * jnp.eye(d, dtype=cov.dtype), jnp.eye(d, dtype=cov.dtype))
-    return jnp.where(ok, smallmatrix.cho_solve(smallmatrix.cholesky(regular), cross.T).T, 0.0)
+
+    P⁻¹ is taken on P's positive part: the factor of :func:`~driftwise.dynamics.moments.psd_cholesky` drops the
+    columns whose pivot is at most 1e-13 of the largest variance, and J̄ has no component along them.  That covers
+    P = 0 (J̄ = 0; there V = 0 too) and an RK4 stage whose P is indefinite: a stage is an extrapolation
+    P + h (C + Cᵀ + …), not a covariance, and for a cloud drawn out by shear over a step that turns the flow by
+    ~1 rad it loses definiteness (seen: eigenvalue −2·10⁴ m² against +7·10⁵ m², 3-h fixes 1 km from a 2-km
+    eddy's centre), where a plain Cholesky returns NaN."""
+    chol = psd_cholesky(cov)
+    kept = jnp.diagonal(chol) > 0
+    safe = chol + jnp.diag(jnp.where(kept, 0.0, 1.0).astype(cov.dtype))     # unit pivot in a dropped column
+    inner = jnp.where(kept[:, None], smallmatrix.solve_lower(safe, cross.T), 0.0)
+    return jnp.where(kept[:, None], smallmatrix.solve_upper(safe.T, inner), 0.0).T
 
 
 def bound_rates(method: Any, posterior: Any, diffusivity_m2_s: jax.Array, decorrelation_time_s: jax.Array,

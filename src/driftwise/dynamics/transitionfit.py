@@ -39,6 +39,7 @@ from __future__ import annotations
 import dataclasses
 import hashlib
 import math
+import warnings
 from dataclasses import dataclass
 from functools import partial
 from pathlib import Path
@@ -55,13 +56,14 @@ from ..gp.schedule import Checkpoint, Schedule, TrainConfig, TrainState, load_ch
 from ..gp.training import fit
 from ..gp.training import fit_report as velocity_fit_report
 from ..progress import Progress, Stopwatch
+from ..units import format_length
 from .methods import METHODS, make_method, method_name
 from .sde import PointPosterior
 from .transitionbound import expected_log_likelihoods
 from .transitions import FixedStepRK4, ParamPosterior, TransitionSet, substeps_for, transition_set
 
 __all__ = ["fit_report", "TRANSITION_SCHEDULE", "COARSENESS_THRESHOLD", "LIKELIHOODS", "LikelihoodChoice", "coarseness",
-           "choose_likelihood", "fit_transitions", "fit_by_likelihood", "transition_checkpoint_path"]
+           "choose_likelihood", "fit_transitions", "fit_by_likelihood", "transition_checkpoint_path", "TransitionWarning"]
 
 TRANSITION_SCHEDULE = Schedule(steps=400, batch_size=256, learning_rate=0.02, patience=20, q_update="adam")
 COARSENESS_THRESHOLD = 0.5   # median Δt‖∇μ‖: finite-difference velocity bias ≈ c²/12 = 2 % (module docstring)
@@ -69,8 +71,9 @@ LIKELIHOODS = ("velocities", "transitions", "auto")
 LIKELIHOOD_HELP = ("velocities: finite-difference velocities between fixes; transitions: then refit through the "
                    "transition density of consecutive fixes (moments of the flow's SDE); auto (default): transitions "
                    f"when the fixes are coarse for the flow (median dt*|grad u| above {COARSENESS_THRESHOLD:g})")
-TURN_PER_STEP = 0.5        # rad of flow rotation per RK4 step (step_for_field)
-MIN_STEP_S, MAX_STEP_S = 60.0, 3600.0
+TURN_PER_STEP = 1.0        # rad: the flow's typical turn per RK4 step (step_for_field)
+STEP_MARGIN = 0.7          # a step shortened during the fit goes to 0.7 of the needed one (_refreshed)
+STABLE_TURN = 1.39         # rad: the largest |eigenvalue of ∇μ| × step, RK4's stability bound for P (step_for_field)
 REL_TOL = 1e-4
 DECAY_STEPS = 400          # the learning rate falls tenfold every 400 steps
 EVAL_ROWS = 2048
@@ -80,6 +83,18 @@ _TRAINABLE = ("kernel", "q_mean", "q_sqrt_raw", "log_diffusivity_m2_s")
 # fit's optimum and would be knocked off it by full-size steps.  S keeps the full step: it has to tighten to what the
 # transitions say (its trace penalty, transitionbound) within the few hundred steps of a fit.
 LEAF_STEP = {"kernel": 1.0, "log_diffusivity_m2_s": 1.0, "q_mean": 0.3, "q_sqrt_raw": 1.0}
+
+
+ESTIMATED_POSITION_ERROR = (
+    "the fixes' position error was estimated from the tracks as {sigma} ({how}), but that estimate needs a flow that "
+    "turns by less than about 0.1 rad between fixes (data.positionerror) and here the median turn is {turn:.2g} rad; "
+    "the transition fit takes {sigma} as the error of every fix, which can bias K and the field's uncertainty "
+    "(stranger checks: a 1-mm tank error estimated as 80 mm gave a 40 % velocity error against 2.5 % with the true "
+    "error; daily fixes on a 20-km eddy gave K 44 m²/s against 100); give the instrument's error with --position-error")
+
+
+class TransitionWarning(UserWarning):
+    """The transition fit ran on an assumption the data could not check (see the message)."""
 
 
 @dataclass(frozen=True)
@@ -92,16 +107,35 @@ class Propagation:
 
 
 def step_for_field(field: fld.FlowField, trans: TransitionSet, *, max_rows: int = 4096) -> float:
-    """The RK4 step (s) that turns the flow by at most :data:`TURN_PER_STEP` rad: 0.5 / (95th percentile of
-    ‖∇μ(x_k)‖₂ over the start fixes), within [:data:`MIN_STEP_S`, :data:`MAX_STEP_S`].
+    """The RK4 step h (s) from the warm field's velocity gradients J = ∇μ at the fixes: the smallest of
 
-    RK4 on a rotation of rate ω has a phase error of (ωh)⁵/120 per step (the series of e^{iωh} against
-    the scheme's polynomial; Kutta 1901): 2.6e-4 rad at ωh = 0.5, a few metres over a turn of a 2-km eddy.
+    - :data:`TURN_PER_STEP` / (95th percentile of ‖J‖₂ at the start fixes, at most ``max_rows`` seeded ones): a typical step turns or shears the flow by at most 1 rad.
+      RK4's phase error on a rotation of rate ω is (ωh)⁵/120 per step (the series of e^{iωh} against the scheme's
+      polynomial; Kutta 1901), 8·10⁻³ rad at ωh = 1; measured on 10⁴ transitions of 3-h fixes in the Lamb–Oseen
+      vortex against 24 steps per transition: median error of the log density 9·10⁻⁴ nats at ωh = 1;
+    - :data:`STABLE_TURN` / (largest eigenvalue modulus of J at every start and end fix): every transition stays inside RK4's stability
+      region.  P's rate P ↦ J P + P Jᵀ has the eigenvalues λ_i + λ_j of J's (Lyapunov operator), up to twice
+      the largest |λ|, and RK4 is stable on the real axis down to hλ = −2.785 and on the imaginary axis to
+      |hλ| = 2√2 (Hairer & Wanner 1996, "Solving Ordinary Differential Equations II", §IV.2; from memory), so
+      |λ|h ≤ 1.39.  Past it (3 steps of 3600 s on the fixes above, |λ|h up to 1.8) the end covariance of 16
+      transitions came out indefinite;
+    - the field's decorrelation time τ, the scale of the memory weight 1 − e^{−a/τ} of the bound's field error.
+
+    The step is not floored: :func:`substeps_for` caps the number of steps per transition at its ``max_substeps``,
+    so a flow far faster than its fixes (a step below Δt/``max_substeps``) is integrated with that cap.
     """
-    norms = np.asarray(_gradient_norms(PointPosterior.from_field(field), jnp.asarray(trans.start_m[
-        _sample_rows(trans.n, max_rows)])))
-    rate = float(np.percentile(norms, 95))
-    return float(np.clip(TURN_PER_STEP / rate if rate > 0 else MAX_STEP_S, MIN_STEP_S, MAX_STEP_S))
+    return _step_for(PointPosterior.from_field(field), trans, float(field.decorrelation_time_s or 0.0), max_rows)
+
+
+def _step_for(posterior: Any, trans: TransitionSet, tau_s: float, max_rows: int = 4096) -> float:
+    """:func:`step_for_field`'s rule for any posterior with ``mean_at`` (the fit's current ParamPosterior)."""
+    typical = np.asarray(_gradients(posterior, jnp.asarray(trans.start_m[_sample_rows(trans.n, max_rows)])))
+    every = np.asarray(_gradients(posterior, jnp.asarray(np.concatenate([trans.start_m, trans.end_m]))))
+    with np.errstate(divide="ignore"):
+        limits = [TURN_PER_STEP / np.percentile(np.linalg.norm(typical, 2, axis=(1, 2)), 95),
+                  STABLE_TURN / np.max(np.abs(np.linalg.eigvals(every))), tau_s]
+    usable = [h for h in limits if math.isfinite(h) and h > 0]
+    return float(min(usable)) if usable else float(np.max(trans.dt_s))
 
 
 def _sample_rows(n: int, max_rows: int) -> np.ndarray:
@@ -174,6 +208,25 @@ class _Problem:
     prop: Propagation
     tau_s: float
     config: TrainConfig
+    max_substeps: int = 32
+
+
+def _refreshed(problem: _Problem, state: TrainState) -> _Problem:
+    """``problem`` with the RK4 step that :func:`step_for_field`'s rule gives for the field as fitted so far, when
+    that is shorter than the step in use.  The transition fit sharpens a field that the velocity fit smoothed (at
+    coarse fixes its speeds come out low), so a step picked from the warm start can fall outside RK4's stability
+    region as the fit goes on (6-h fixes in the Lamb–Oseen vortex: non-finite at step 192 with the warm start's
+    step).  The step only shrinks, and then to :data:`STEP_MARGIN` of what is needed: a new substep count is a new
+    program to compile (two, with the check's), and a field still sharpening asked for a shorter step at 5 checks in
+    a row (6-h fixes: 3 → 7 substeps over steps 120–200; the fit took 191 s against 47 s for a fixed 7).  A new
+    step with the same substep count is traced data, not a recompilation."""
+    post = ParamPosterior.from_params(state.params, jitter_multiple=state.jitter_multiple)
+    needed = _step_for(post, problem.trans, problem.tau_s)
+    if not needed < problem.prop.integrator.step_s:
+        return problem
+    step_s = STEP_MARGIN * needed
+    integrator = FixedStepRK4(step_s, substeps_for(problem.trans.dt_s, step_s, problem.max_substeps))
+    return dataclasses.replace(problem, prop=dataclasses.replace(problem.prop, integrator=integrator))
 
 
 def _rows(trans: TransitionSet, idx: np.ndarray | None) -> tuple:
@@ -209,24 +262,61 @@ def _with_learning_rate(opt_state, learning_rate: float):
                                                learning_rate=jnp.asarray(learning_rate, dtype=jnp.float64)))
 
 
-def _advance(state: TrainState, problem: _Problem, schedule: Schedule) -> TrainState:
-    """One accepted step at the learning rate lr₀ · 10^(−step/400) (minibatch noise in Adam's steps shrinks
-    with the rate; independent of ``steps``, so a resumed fit with more steps retraces a longer one); a
-    non-finite objective or gradient is retried with half of it."""
+def _advance(state: TrainState, problem: _Problem, schedule: Schedule, factor: float = 1.0) -> TrainState | None:
+    """One step at the learning rate lr₀ · 10^(−step/400) × ``factor`` (minibatch noise in Adam's steps shrinks
+    with the rate; independent of ``steps``, so a resumed fit with more steps retraces a longer one); None when the
+    objective or its gradient at ``state``'s parameters is not finite."""
     cfg, trans = problem.config, problem.trans
     rows = _rows(trans, _batch_indices(trans.n, cfg.batch_size, cfg.seed, state.step))
-    decayed = schedule.learning_rate * 10.0 ** (-state.step / DECAY_STEPS)
-    opt_state = _with_learning_rate(state.opt_state, decayed)
-    for _ in range(RETRIES + 1):
-        params, new_opt, value, ok = _step(state.params, opt_state, rows, float(trans.n), problem.tau_s,
-                                           trans.position_error_m**2, prop=problem.prop,
-                                           jitter_multiple=state.jitter_multiple)
-        if bool(ok):
-            return dataclasses.replace(state, params=params, opt_state=new_opt, step=state.step + 1,
-                                       history=state.history + (float(value),))
-        opt_state = _with_learning_rate(opt_state, float(opt_state.hyperparams["learning_rate"]) / 2.0)
-    raise RuntimeError(f"transition fit: the objective or its gradient stayed non-finite at step {state.step} "
-                       f"after {RETRIES} retries with smaller steps; check units and the position error")
+    decayed = schedule.learning_rate * 10.0 ** (-state.step / DECAY_STEPS) * factor
+    params, new_opt, value, ok = _step(state.params, _with_learning_rate(state.opt_state, decayed), rows,
+                                       float(trans.n), problem.tau_s, trans.position_error_m**2, prop=problem.prop,
+                                       jitter_multiple=state.jitter_multiple)
+    if not bool(ok):
+        return None
+    return dataclasses.replace(state, params=params, opt_state=new_opt, step=state.step + 1,
+                               history=state.history + (float(value),))
+
+
+def _advance_safely(state: TrainState, previous: TrainState | None, problem: _Problem,
+                    schedule: Schedule) -> tuple[TrainState, TrainState, _Problem]:
+    """(the state the step started from, the state after it, the problem).  Where the objective or its gradient is
+    not finite at ``state``: first with the step of the field as it is now (:func:`_refreshed`), then by redoing the
+    step before from ``previous`` at 1/2, 1/4, … of its learning rate (at most :data:`RETRIES` times);
+    RuntimeError naming the transitions when that does not help."""
+    after = _advance(state, problem, schedule)
+    if after is not None:
+        return state, after, problem
+    refreshed = _refreshed(problem, state)
+    if refreshed is not problem:
+        problem, after = refreshed, _advance(state, refreshed, schedule)
+        if after is not None:
+            return state, after, problem
+    for k in range(1, RETRIES + 1 if previous is not None else 1):
+        redone = _advance(previous, problem, schedule, 0.5**k)
+        after = None if redone is None else _advance(redone, problem, schedule)
+        if after is not None:
+            return redone, after, problem
+    raise RuntimeError(_non_finite_message(state, problem))
+
+
+def _non_finite_message(state: TrainState, problem: _Problem) -> str:
+    """Which transitions of the step's batch have a non-finite log density, and what to check."""
+    trans, cfg = problem.trans, problem.config
+    idx = _batch_indices(trans.n, cfg.batch_size, cfg.seed, state.step)
+    idx = np.arange(trans.n) if idx is None else idx
+    post = ParamPosterior.from_params(state.params, jitter_multiple=state.jitter_multiple)
+    ll = np.asarray(expected_log_likelihoods(post, state.params.diffusivity_m2_s, problem.tau_s, problem.prop.method,
+                                             problem.prop.integrator, *_rows(trans, idx), trans.position_error_m**2,
+                                             problem.prop.chunk))
+    bad = idx[~np.isfinite(ll)]
+    where = "its gradient" if bad.size == 0 else (
+        f"the log density of {bad.size} of {idx.size} transitions (first: transition {int(bad[0])}, track index "
+        f"{int(trans.track_index[bad[0]])}, Δt {trans.dt_s[bad[0]]:.6g} s from ({', '.join(f'{v:.6g}' for v in trans.start_m[bad[0]])}) m)")
+    return (f"transition fit: {where} is not finite at step {state.step}, also after {RETRIES} retries of the step "
+            f"before at smaller learning rates; the RK4 step of {problem.prop.integrator.step_s:.4g} s may be too "
+            "coarse for the flow there, or the positions' units or their error may be off; "
+            "--likelihood velocities fits without the transitions")
 
 
 def _check(state: TrainState, problem: _Problem) -> TrainState:
@@ -237,17 +327,26 @@ def _check(state: TrainState, problem: _Problem) -> TrainState:
 
 
 def _train(state: TrainState, problem: _Problem, schedule: Schedule, checkpoint: Checkpoint | None,
-           progress: bool) -> TrainState:
+           progress: bool) -> tuple[TrainState, _Problem, list[dict[str, Any]]]:
+    """Adam steps to the plateau or ``schedule.steps``; at every check the RK4 step follows the field
+    (:func:`_refreshed`).  Returns the state, the problem with the step in use at the end, and the RK4 steps used
+    (``from_step``, ``step_s``, ``substeps``; one entry per change)."""
     bar = Progress(schedule.steps, initial=min(state.step, schedule.steps), enabled=progress,
                    desc="driftwise fit (transitions)")
     if state.step == 0 and not state.checks:
         state = dataclasses.replace(state, checks=(_value(state.params, problem, _evaluation_rows(
             problem.trans.n, problem.config.seed), state.jitter_multiple),))    # the warm start's value
     try:
+        previous = None
+        problem = _refreshed(problem, state) if state.step > 0 else problem     # resumed: the step of its field
+        steps = [(state.step, problem.prop.integrator)]
         while state.step < schedule.steps and not state.converged:
-            state = _advance(state, problem, schedule)
+            previous, state, problem = _advance_safely(state, previous, problem, schedule)
             if state.step % schedule.patience == 0:
+                problem = _refreshed(problem, state)
                 state = _check(state, problem)
+            if problem.prop.integrator != steps[-1][1]:
+                steps.append((state.step, problem.prop.integrator))
             if checkpoint is not None and state.step % checkpoint.every_steps == 0:
                 save_checkpoint(checkpoint.path, state, problem.config)
             bar.update(1)
@@ -260,7 +359,7 @@ def _train(state: TrainState, problem: _Problem, schedule: Schedule, checkpoint:
         bar.close()
     if checkpoint is not None:
         save_checkpoint(checkpoint.path, state, problem.config)
-    return state
+    return state, problem, [{"from_step": k, "step_s": float(rk4.step_s), "substeps": rk4.substeps} for k, rk4 in steps]
 
 
 def _config(warm: fld.FlowField, trans: TransitionSet, prop: Propagation, schedule: Schedule, seed: int) -> TrainConfig:
@@ -283,40 +382,67 @@ def _start(warm: fld.FlowField, problem: _Problem, schedule: Schedule, checkpoin
 
 
 # ---------------------------------------------------------------------------- the door
-def fit_transitions(tracks_or_observations, warm: fld.FlowField, *, position_error_m: float = 10.0,
+def fit_transitions(tracks_or_observations, warm: fld.FlowField, *, position_error_m: float | None = None,
                     schedule: Schedule = TRANSITION_SCHEDULE, method: str = "cubature", step_s: float | None = None,
                     max_substeps: int = 32, seed: int = 0, checkpoint: Checkpoint | None = None,
                     progress: bool = True) -> fld.FlowField:
     """Refit ``warm`` (a velocity fit of the same tracks) by maximising the transition objective L.
 
+    ``position_error_m`` σ_pos of one fix (m; None: the warm field's).
     ``method`` a moment method of :data:`driftwise.dynamics.methods.METHODS` (cubature default,
     "linearize" the cheap option); each transition takes min(``max_substeps``, ⌈Δt/``step_s``⌉) RK4 steps,
-    ``step_s`` None: from the warm field's velocity gradients (:func:`step_for_field`).  ``schedule``: at most ``steps`` Adam steps on ``batch_size`` transitions at ``learning_rate``;
+    ``step_s`` None: from the warm field's velocity gradients (:func:`step_for_field`); at every check of the
+    plateau the step shrinks to what the field as fitted so far needs, when that is shorter (:func:`_refreshed`).
+    A transition longer than ``max_substeps`` starting steps is left out (counted in ``fit_info``).
+    ``schedule``: at most ``steps`` Adam steps on ``batch_size`` transitions at ``learning_rate``;
     ``checkpoint`` as in :func:`driftwise.fit`.  Returns a FlowField whose ``fit_info`` records
     ``likelihood = "transitions"`` and the objective's history.
     """
+    if position_error_m is None:
+        position_error_m = warm.position_error_m
     trans = transition_set(tracks_or_observations, position_error_m=position_error_m)
     if trans.dim != warm.dim:
         raise InputError(f"transitions are {trans.dim}-D but the warm-start field is {warm.dim}-D")
     step_s = step_for_field(warm, trans) if step_s is None else step_s
+    trans, too_long = _integrable(trans, step_s, max_substeps)
     prop = _propagation(method, trans, step_s, max_substeps)
     tau = float(warm.decorrelation_time_s or 0.0)
-    problem = _Problem(trans, prop, tau, _config(warm, trans, prop, schedule, seed))
-    state = _train(_start(warm, problem, schedule, checkpoint), problem, schedule, checkpoint, progress)
+    problem = _Problem(trans, prop, tau, _config(warm, trans, prop, schedule, seed), max_substeps)
+    state, problem, rk4_steps = _train(_start(warm, problem, schedule, checkpoint), problem, schedule, checkpoint,
+                                       progress)
+    prop = problem.prop
     final = _value(state.params, problem, None, state.jitter_multiple)
     if not math.isfinite(final):
         raise RuntimeError("transition fit: the final objective is not finite; check the data and position error")
     info = {**warm.fit_info, "likelihood": "transitions", "transition_objective": final,
             "transition_objective_per_transition": final / trans.n, "transition_history": list(state.history),
             "transition_steps": state.step, "transition_converged": state.converged,
+            "transitions_left_out_too_long": too_long, "transition_longest_dt_s": max_substeps * float(step_s),
             "transition_checks": list(state.checks), "n_transitions": trans.n,
-            "transition_method": method, "transition_step_s": float(step_s),
+            "transition_method": method, "transition_step_s": float(prop.integrator.step_s),
+            "transition_step_s_start": float(step_s), "transition_rk4_steps": rk4_steps,
             "transition_substeps": prop.integrator.substeps, "velocity_fit_elbo": warm.fit_info.get("elbo"),
             "velocity_fit_diffusivity_m2_s": warm.diffusivity_m2_s,
             "decorrelation_time_source": "velocity fit: length_scale/rms_speed, held fixed in the transition fit"}
     return fld.FlowField.from_params(state.params, frame=warm.frame_dict, data_summary=warm.data_summary,
                                      decorrelation_time_s=tau, position_error_m=trans.position_error_m,
                                      fit_info=info, jitter_multiple=state.jitter_multiple)
+
+
+def _integrable(trans: TransitionSet, step_s: float, max_substeps: int) -> tuple[TransitionSet, int]:
+    """The transitions RK4 can integrate stably: Δt ≤ ``max_substeps`` × ``step_s`` (a longer one would take
+    steps past :data:`STABLE_TURN`; across such a gap the flow has turned by more than ``max_substeps`` rad and the
+    pair of fixes says little about it).  Returns (the kept rows, how many were left out); InputError when none is
+    left."""
+    if not (math.isfinite(step_s) and step_s > 0):
+        raise InputError(f"step_s must be > 0 seconds, got {step_s!r}")
+    longest = max_substeps * step_s
+    keep = trans.dt_s <= longest * (1.0 + 1e-9)
+    if not keep.any():
+        raise InputError(f"transitions: every pair of fixes is more than {longest:.4g} s apart, {max_substeps} RK4 "
+                         f"steps of {step_s:.4g} s (the step that resolves the fitted flow); fit the velocities "
+                         "(--likelihood velocities) or use denser fixes")
+    return (trans, 0) if keep.all() else (trans.take(np.flatnonzero(keep)), int(np.count_nonzero(~keep)))
 
 
 # ---------------------------------------------------------------------------- which likelihood
@@ -344,9 +470,14 @@ class LikelihoodChoice:
 
 
 @jax.jit
+@partial(jax.jit, static_argnames=("chunk",))
+def _gradients(posterior: Any, points: jax.Array, chunk: int = 4096) -> jax.Array:
+    """∇μ at each point (n, d, d) 1/s, ``chunk`` points at a time."""
+    return jax.lax.map(jax.jacfwd(posterior.mean_at), points, batch_size=min(chunk, points.shape[0]))
+
+
 def _gradient_norms(posterior: PointPosterior, points: jax.Array) -> jax.Array:
-    jac = jax.vmap(jax.jacfwd(posterior.mean_at))(points)          # (n, d, d) 1/s
-    return jnp.linalg.norm(jac, ord=2, axis=(1, 2))
+    return jnp.linalg.norm(_gradients(posterior, points), ord=2, axis=(1, 2))
 
 
 def coarseness(field: fld.FlowField, trans: TransitionSet, *, max_rows: int = 4096) -> float:
@@ -389,10 +520,16 @@ def fit_by_likelihood(tracks, kernel: str, likelihood: str = "auto", *, inducing
     field = fit(tracks, kernel, inducing=inducing, seed=seed, position_error_m=position_error_m,
                 schedule=warm_schedule if likelihood == "transitions" else schedule, checkpoint=checkpoint,
                 progress=progress, background=background, timing_s=clock.laps)
-    if position_error_m is None:      # estimated by the velocity fit
-        position_error_m = field.position_error_m
-    trans = transition_set(tracks, position_error_m=position_error_m)
+    # the transition stage needs a number; the warm-start refit gets the caller's (None: estimated again, the same
+    # value, and recorded as an estimate: not refused or reported as a --position-error the user never gave)
+    sigma_m = field.position_error_m if position_error_m is None else position_error_m
+    trans = transition_set(tracks, position_error_m=sigma_m)
     choice = choose_likelihood(likelihood, field, trans)
+    if choice.likelihood == "transitions" and position_error_m is None:
+        identified = (field.fit_info.get("position_error_estimate") or {}).get("identified", True)
+        warnings.warn(ESTIMATED_POSITION_ERROR.format(
+            sigma=format_length(sigma_m), how="an estimate" if identified else "an upper bound: not identified",
+            turn=choice.coarseness), TransitionWarning, stacklevel=2)
     if choice.likelihood == "transitions" and likelihood != "transitions":
         # the transition fit was validated from Adam's warm start; from the L-BFGS-B optimum of the velocity bound
         # it did worse (30-min fixes in the vortex: RMSE 0.0087 against 0.0077 m/s; DEVELOPERS.md, "Benchmark record")
@@ -404,7 +541,7 @@ def fit_by_likelihood(tracks, kernel: str, likelihood: str = "auto", *, inducing
                                                            resume=checkpoint.resume,
                                                            every_steps=checkpoint.every_steps)
         with clock("transition_fit"):
-            field = fit_transitions(tracks, field, position_error_m=position_error_m, schedule=transition_schedule,
+            field = fit_transitions(tracks, field, position_error_m=sigma_m, schedule=transition_schedule,
                                     method=method, seed=seed, checkpoint=stage, progress=progress)
         if stage is not None:
             stage.path.unlink(missing_ok=True)
@@ -417,5 +554,7 @@ def fit_report(field: fld.FlowField, choice: LikelihoodChoice) -> dict[str, Any]
     (when calibrated) ``calibration_check``: K and τ of the separate calibration beside the fit's own K."""
     info = field.fit_info
     extra = {key: info[key] for key in ("transition_objective", "transition_steps", "transition_converged",
-                                        "n_transitions", "transition_method", "calibration_check") if key in info}
+                                        "n_transitions", "transitions_left_out_too_long", "transition_longest_dt_s", "transition_method",
+                                        "transition_step_s", "transition_substeps", "calibration_check")
+             if key in info}
     return {**velocity_fit_report(field), **choice.to_dict(), **extra}
