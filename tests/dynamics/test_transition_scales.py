@@ -15,6 +15,7 @@ import math
 
 import jax.numpy as jnp
 import numpy as np
+import pytest
 
 import driftwise  # noqa: F401  (float64)
 from driftwise.data.synthetic import LambOseenVortex, simulate_drifters
@@ -38,7 +39,7 @@ def tank_tracks(fix_interval_s: float = 5.0):
     return tracks_from_frame(table)
 
 
-def test_tank_vortex_gets_a_step_of_at_most_a_radian_and_fits():
+def test_tank_vortex_gets_a_step_of_at_most_a_radian_and_fits(monkeypatch):
     tracks = tank_tracks()
     warm = fit(tracks, inducing=16, position_error_m=SIGMA_M, schedule=Schedule(steps=40, optimiser="adam"),
                progress=False)
@@ -55,3 +56,9 @@ def test_tank_vortex_gets_a_step_of_at_most_a_radian_and_fits():
     refit = TF.fit_transitions(tracks, warm, position_error_m=SIGMA_M, schedule=schedule, progress=False)
     assert refit.fit_info["transition_steps"] == 6 and np.all(np.isfinite(refit.fit_info["transition_history"]))
     assert refit.fit_info["transition_step_s"] <= step
+    # the fitted field's median turn between fixes, against the half turn of a rotation's sampling limit
+    turn = refit.fit_info["coarseness_fitted"]
+    assert turn == pytest.approx(TF.coarseness(refit, trans), rel=1e-6) and 0.5 < turn < TF.ALIASING_TURN
+    monkeypatch.setattr(TF, "ALIASING_TURN", 0.5 * turn)
+    with pytest.warns(TF.TransitionWarning, match="more than half a turn"):
+        TF.fit_transitions(tracks, warm, position_error_m=SIGMA_M, schedule=schedule, progress=False)

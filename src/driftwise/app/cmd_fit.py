@@ -204,7 +204,8 @@ def format_fit(report: dict[str, Any]) -> str:
     if "n_transitions" in report:
         lines.append(f"  transition fit: {report['n_transitions']} transitions, {report['transition_method']}, RK4 step "
                      f"{format_duration(report['transition_step_s'])} (at most {report['transition_substeps']} per "
-                     "transition)" + _left_out_text(report.get("transitions_left_out_too_long", 0), report))
+                     f"transition); the fitted field turns by a median {report['coarseness_fitted']:.3g} rad between "
+                     "fixes" + _left_out_text(report.get("transitions_left_out_too_long", 0), report))
     lines += _bound_lines(report.get("calibration") or {})
     if "calibration_check" in report:
         check = report["calibration_check"]
