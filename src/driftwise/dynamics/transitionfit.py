@@ -154,10 +154,19 @@ def _propagation(method: str, trans: TransitionSet, step_s: float, max_substeps:
     if method not in METHODS or METHODS[method].ensemble:
         moment = ", ".join(name for name, spec in METHODS.items() if not spec.ensemble)
         raise InputError(f"transition method: use a moment method ({moment}), got {method!r}")
+    strategy, _ = make_method(method)
+    return Propagation(strategy, _integrator(trans, step_s, max_substeps))
+
+
+def _integrator(trans: TransitionSet, step_s: float, max_substeps: int) -> FixedStepRK4:
+    """RK4 at ``step_s`` with the static substep count that covers the longest transition (at most ``max_substeps``)."""
+    _check_step(step_s)
+    return FixedStepRK4(float(step_s), substeps_for(trans.dt_s, step_s, max_substeps))
+
+
+def _check_step(step_s: float) -> None:
     if not (math.isfinite(step_s) and step_s > 0):
         raise InputError(f"step_s must be > 0 seconds, got {step_s!r}")
-    strategy, _ = make_method(method)
-    return Propagation(strategy, FixedStepRK4(float(step_s), substeps_for(trans.dt_s, step_s, max_substeps)))
 
 
 # ---------------------------------------------------------------------------- the objective
@@ -233,7 +242,7 @@ def _refreshed(problem: _Problem, state: TrainState) -> _Problem:
     if not needed < problem.prop.integrator.step_s:
         return problem
     step_s = STEP_MARGIN * needed
-    integrator = FixedStepRK4(step_s, substeps_for(problem.trans.dt_s, step_s, problem.max_substeps))
+    integrator = _integrator(problem.trans, step_s, problem.max_substeps)
     return dataclasses.replace(problem, prop=dataclasses.replace(problem.prop, integrator=integrator))
 
 
@@ -446,8 +455,7 @@ def _integrable(trans: TransitionSet, step_s: float, max_substeps: int) -> tuple
     steps past :data:`STABLE_TURN`; across such a gap the flow has turned by more than ``max_substeps`` rad and the
     pair of fixes says little about it).  Returns (the kept rows, how many were left out); InputError when none is
     left."""
-    if not (math.isfinite(step_s) and step_s > 0):
-        raise InputError(f"step_s must be > 0 seconds, got {step_s!r}")
+    _check_step(step_s)
     longest = max_substeps * step_s
     keep = trans.dt_s <= longest * (1.0 + 1e-9)
     if not keep.any():
