@@ -294,11 +294,14 @@ class MatrixKernel:
         = Σ_j [A_j w_j + B_j (r_j · w_j) r_j] with r_j = x − z_j, plus the backgrounds' F(x) diag(s²) F(Z)ᵀ w:
         the same value as K(x, Z) w from :meth:`gram_matrix`, without forming the (d, M·d) row (the posterior
         mean at the cubature points of the transition fit: its step 130 → 70 ms, DEVELOPERS.md "Benchmark
-        record")."""
+        record").  The sum over j is elementwise products and one reduction, not ``a @ w`` and ``c @ z``: under
+        ``vmap`` those are matrix products with d columns, and their reverse mode is products with an inner
+        dimension of d, which XLA's CPU backend runs as separate thin GEMMs instead of fusing them with the
+        elementwise work around them (the transition step 32.7 → 30.3 ms, DEVELOPERS.md "Benchmark record")."""
         r = x - z
         a, b = self.terms(_squared_norm(r), x.shape[-1])
         c = b * _dot(r, w)
-        out = a @ w + x * (c @ jnp.ones_like(c)) - c @ z          # Σ_j c_j r_j = x Σ_j c_j − Σ_j c_j z_j
+        out = jnp.sum(a[:, None] * w + c[:, None] * r, axis=0)
         for background in self.backgrounds():
             fx, variances = features(background, x)
             fz, _ = features(background, z)
