@@ -56,9 +56,10 @@ def test_tank_vortex_gets_a_step_of_at_most_a_radian_and_fits(monkeypatch):
     refit = TF.fit_transitions(tracks, warm, position_error_m=SIGMA_M, schedule=schedule, progress=False)
     assert refit.fit_info["transition_steps"] == 6 and np.all(np.isfinite(refit.fit_info["transition_history"]))
     assert refit.fit_info["transition_step_s"] <= step
-    # the fitted field's median turn between fixes, against the half turn of a rotation's sampling limit
-    turn = refit.fit_info["coarseness_fitted"]
-    assert turn == pytest.approx(TF.coarseness(refit, trans), rel=1e-6) and 0.5 < turn < TF.ALIASING_TURN
-    monkeypatch.setattr(TF, "ALIASING_TURN", 0.5 * turn)
-    with pytest.warns(TF.TransitionWarning, match="more than half a turn"):
+    # the fitted field's turn between fixes: the median, and the 10th percentile against a third of a turn
+    turn, closest = refit.fit_info["coarseness_fitted"], refit.fit_info["turn_p10_fitted"]
+    assert turn == pytest.approx(TF.coarseness(refit, trans), rel=1e-6) and 0.5 < turn
+    assert 0.0 < closest < min(turn, TF.ALIASING_TURN)
+    monkeypatch.setattr(TF, "ALIASING_TURN", 0.5 * closest)
+    with pytest.warns(TF.TransitionWarning, match="over a third of a turn"):
         TF.fit_transitions(tracks, warm, position_error_m=SIGMA_M, schedule=schedule, progress=False)

@@ -142,6 +142,7 @@ def test_cli_transition_fit_keeps_its_k_and_reports_the_calibration_as_a_check(t
     assert code == 0, err
     report = json.loads(stdout)
     assert report["likelihood"] == "transitions"
+    assert 0.0 < report["turn_p10_fitted"] <= report["coarseness_fitted"]     # 10th percentile ≤ median (rad)
     check = report["calibration_check"]
     assert check["diffusivity_m2_s"] > 0 and check["decorrelation_time_s"] > 0
     model = load_model(tmp_path / "m.npz")

@@ -205,7 +205,7 @@ def format_fit(report: dict[str, Any]) -> str:
         lines.append(f"  transition fit: {report['n_transitions']} transitions, {report['transition_method']}, RK4 step "
                      f"{format_duration(report['transition_step_s'])} (at most {report['transition_substeps']} per "
                      f"transition); the fitted field turns by a median {report['coarseness_fitted']:.3g} rad between "
-                     "fixes" + _left_out_text(report.get("transitions_left_out_too_long", 0), report))
+                     f"fixes (10th percentile {report['turn_p10_fitted']:.3g} rad)" + _left_out_text(report.get("transitions_left_out_too_long", 0), report))
     lines += _bound_lines(report.get("calibration") or {})
     if "calibration_check" in report:
         check = report["calibration_check"]
