@@ -4,7 +4,9 @@
 
 1. fit the steady field v̄(x) as always (:func:`driftwise.dynamics.transitionfit.fit_by_likelihood`);
 2. take its residual velocities along the tracks, r_n = u_n − E[v̄(x_n)] (m/s), at the finite-difference velocity
-   observations u_n (segment midpoints x_n, times t_n on the track file's axis), weighted by 1 / R_n with
+   observations u_n (segment midpoints x_n, times t_n on the track file's axis) — after a fit through the
+   transitions, r_n = u_n − the chord velocity the field predicts between the two fixes
+   (:func:`~driftwise.dynamics.transitionfit.chord_velocities`), the quantity that fit matched —, weighted by 1 / R_n with
    R_n = 2K/Δt_n + 2σ_pos²/Δt_n² + σ₀² the fit's own noise variance (m²/s²);
 3. test them with :func:`driftwise.data.residualspectrum.detect_time_structure`: per-track harmonic regression at
    every candidate constituent (the tides M2, S2, N2, K1, O1; ``inertial`` too for lon/lat tracks away from the
@@ -48,7 +50,8 @@ from ..gp.temporalfit import temporal_choice, temporal_report
 from ..gp.training import fit
 from ..progress import Stopwatch
 from ..units import format_duration
-from .transitionfit import LikelihoodChoice, fit_by_likelihood
+from .transitionfit import LikelihoodChoice, chord_velocities, fit_by_likelihood
+from .transitions import transition_set
 
 __all__ = ["ALPHA", "MIN_SHARE", "PRINCIPAL_ORDER", "TEMPORAL_MODES", "TemporalDecision", "TemporalWarning", "candidate_periods_s",
            "fit_temporal", "residual_evidence", "temporal_checkpoint_path", "temporal_fit_report"]
@@ -121,7 +124,10 @@ def residual_evidence(field: fld.FlowField, tracks, *, alpha: float = ALPHA) -> 
     """The residual test (module docstring, steps 2–3) of a steady ``field`` on the ``tracks`` it was fitted to, at
     the constituents of :func:`candidate_periods_s` for the tracks' typical span."""
     obs = velocity_observations(tracks, position_error_m=field.position_error_m or 0.0)
-    mean, _ = field.predict(obs.position_m)
+    if field.fit_info.get("likelihood") == "transitions":      # compared with the chords it was fitted to
+        mean = chord_velocities(field, transition_set(obs))
+    else:
+        mean, _ = field.predict(obs.position_m)
     noise = obs.noise_variance_m2_s2(field.diffusivity_m2_s, field.noise_floor_m_s ** 2)
     periods = candidate_periods_s(tracks.frame, typical_span_s(obs.time_s, obs.track_index))
     return detect_time_structure(obs.velocity_m_s - mean, obs.time_s, obs.track_index, periods, alpha=alpha,

@@ -63,7 +63,8 @@ from .transitionbound import expected_log_likelihoods
 from .transitions import FixedStepRK4, ParamPosterior, TransitionSet, substeps_for, transition_set
 
 __all__ = ["fit_report", "TRANSITION_SCHEDULE", "COARSENESS_THRESHOLD", "LIKELIHOODS", "LikelihoodChoice", "coarseness",
-           "choose_likelihood", "fit_transitions", "fit_by_likelihood", "transition_checkpoint_path", "TransitionWarning"]
+           "choose_likelihood", "fit_transitions", "fit_by_likelihood", "transition_checkpoint_path", "TransitionWarning",
+           "chord_velocities"]
 
 TRANSITION_SCHEDULE = Schedule(steps=400, batch_size=256, learning_rate=0.02, patience=20, q_update="adam")
 COARSENESS_THRESHOLD = 0.5   # median Δt‖∇μ‖: finite-difference velocity bias ≈ c²/12 = 2 % (module docstring)
@@ -505,6 +506,34 @@ def _gradient_norms(posterior: PointPosterior, points: jax.Array) -> jax.Array:
 def coarseness(field: fld.FlowField, trans: TransitionSet, *, max_rows: int = 4096) -> float:
     """c = median_k Δt_k ‖∇μ(x_k)‖₂ (dimensionless) over at most ``max_rows`` seeded transitions."""
     return float(np.median(_turns(PointPosterior.from_field(field), trans, max_rows)))
+
+
+def chord_velocities(field: fld.FlowField, trans: TransitionSet, *, max_substeps: int = 64,
+                     chunk: int = 4096) -> np.ndarray:
+    """(y(Δt_k) − x_k)/Δt_k (n, d) m/s: the chord velocity the field predicts for each pair of fixes, along the path
+    dy/dt = μ(y), y(0) = x_k (RK4 at :func:`step_for_field`'s step, at most ``max_substeps`` per transition).
+
+    What a fit through the transitions is to be compared with: a finite-difference velocity (x_{k+1} − x_k)/Δt_k is
+    a chord of the curved path, not μ at its midpoint, and in an eddy the difference is periodic along a circling
+    track (stranger check: irregular 1–12-h fixes in a steady 2-km vortex, the transition fit's midpoint residuals
+    showed an M2 period at adjusted p = 0.0037 with RMS 0.158 m/s; against the chords none is significant, RMS
+    0.026 m/s).  The mean path leaves out the particle cloud's own moments (a residual test, not a likelihood).
+    A row whose path is not finite (a transition past RK4's stability at the capped step) gets μ at its midpoint."""
+    post = PointPosterior.from_field(field)
+    step_s = step_for_field(field, trans)
+    rk4 = FixedStepRK4(step_s, substeps_for(trans.dt_s, step_s, max_substeps))
+
+    def end(row):
+        x0, dt = row
+        return rk4.integrate(post.mean_at, x0, jnp.stack([jnp.zeros_like(dt), dt]))[-1]
+
+    rows = (jnp.asarray(trans.start_m), jnp.asarray(trans.dt_s))
+    chords = (np.asarray(jax.lax.map(end, rows, batch_size=min(chunk, trans.n))) - trans.start_m) / trans.dt_s[:, None]
+    bad = ~np.all(np.isfinite(chords), axis=1)
+    if bad.any():
+        middle = 0.5 * (trans.start_m[bad] + trans.end_m[bad])
+        chords[bad] = np.asarray(jax.lax.map(post.mean_at, jnp.asarray(middle), batch_size=min(chunk, middle.shape[0])))
+    return chords
 
 
 def _turns(posterior: Any, trans: TransitionSet, max_rows: int = 4096) -> np.ndarray:
