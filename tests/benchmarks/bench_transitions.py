@@ -86,7 +86,7 @@ def step_cost(method: str) -> None:
     for label, step_s in (("field step", TF.step_for_field(warm, trans)), ("900 s step", 900.0)):
         prop = TF._propagation(method, trans, step_s, 32)
         fns[f"transitions, {label}, {prop.integrator.substeps} RK4 substeps"] = lambda prop=prop: TF._step(
-            params, opt, rows, float(trans.n), 3000.0, SIGMA_M**2, prop=prop, jitter_multiple=warm.jitter_multiple)[2]
+            params, {}, opt, rows, float(trans.n), 3000.0, SIGMA_M**2, prop=prop, jitter_multiple=warm.jitter_multiple)[3]
     print(f"step cost, M = {params.n_inducing}, batch {b}, {method}, {_load()}; medians of 15 rounds, each "
           "function once per round; ratio = median of the per-round ratios to the velocity step")
     for name, (seconds, ratio) in _paired(fns).items():

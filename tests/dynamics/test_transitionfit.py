@@ -264,10 +264,10 @@ def test_a_step_that_lands_on_a_non_finite_objective_is_redone_smaller(monkeypat
     schedule = dataclasses.replace(TRANSITION_SCHEDULE, steps=4, patience=2, batch_size=8)
     real, calls = TF._step, []
 
-    def flaky(params, opt_state, *args, **kwargs):
-        out = real(params, opt_state, *args, **kwargs)
+    def flaky(params, extra, opt_state, *args, **kwargs):
+        out = real(params, extra, opt_state, *args, **kwargs)
         calls.append(float(opt_state.hyperparams["learning_rate"]))
-        return (*out[:3], out[3] & (len(calls) != 3))        # the 3rd call finds the objective non-finite
+        return (*out[:4], out[4] & (len(calls) != 3))        # the 3rd call finds the objective non-finite
 
     monkeypatch.setattr(TF, "_step", flaky)
     refit = fit_transitions(tracks, warm, position_error_m=SIGMA_M, schedule=schedule, progress=False,
@@ -276,7 +276,7 @@ def test_a_step_that_lands_on_a_non_finite_objective_is_redone_smaller(monkeypat
     # step 2 (call 3) failed at the parameters of step 1 (call 2), so step 1 was redone at half its rate (call 4)
     assert calls[3] == pytest.approx(calls[1] / 2.0, rel=1e-12) and len(calls) == 6
 
-    monkeypatch.setattr(TF, "_step", lambda *a, **k: (*real(*a, **k)[:3], False))
+    monkeypatch.setattr(TF, "_step", lambda *a, **k: (*real(*a, **k)[:4], False))
     with pytest.raises(RuntimeError, match="not finite at step 0.*--likelihood velocities"):
         fit_transitions(tracks, warm, position_error_m=SIGMA_M, schedule=schedule, progress=False, method="linearize")
 
@@ -294,3 +294,26 @@ def test_the_step_follows_the_field_as_it_is_fitted_and_only_shrinks():
     assert fine.prop.integrator.step_s == pytest.approx(TF.STEP_MARGIN * expected, rel=1e-9)
     assert fine.prop.integrator.substeps == math.ceil(3 * 3600.0 / (TF.STEP_MARGIN * expected))
     assert TF._refreshed(fine, state) is fine                     # already short enough: unchanged
+
+
+def test_a_fitted_position_error_resumes_from_its_checkpoint(monkeypatch, tmp_path):
+    """σ_pos trained (no position error given) lives in the checkpoint beside the field: 4 steps, then a resume to
+    6, equal the uninterrupted 6 steps to the last bit of the objective history."""
+    monkeypatch.setattr(TF, "SIGMA_HOLD_STEPS", 2)
+    tracks = vortex_tracks(3 * 3600.0, n=6, hours=9.0)
+    warm = fit(tracks, inducing=9, position_error_m=SIGMA_M, schedule=Schedule(steps=10, optimiser="adam"),
+               progress=False)
+
+    def run(steps, checkpoint=None):
+        schedule = dataclasses.replace(TRANSITION_SCHEDULE, steps=steps, patience=2, batch_size=8)
+        return fit_transitions(tracks, warm, schedule=schedule, progress=False, method="linearize",
+                               checkpoint=checkpoint)
+
+    whole = run(6)
+    stop = Checkpoint(tmp_path / "fit.npz", resume=True, every_steps=1)
+    run(4, stop)
+    resumed = run(6, stop)
+    assert whole.fit_info["position_error_source"] == "fitted"
+    assert whole.position_error_m != pytest.approx(whole.fit_info["position_error_start_m"], rel=1e-6)   # it moved
+    assert resumed.position_error_m == pytest.approx(whole.position_error_m, rel=1e-12)
+    np.testing.assert_allclose(resumed.fit_info["transition_history"], whole.fit_info["transition_history"], rtol=1e-12)

@@ -43,8 +43,8 @@ def add_track_options(parser: argparse.ArgumentParser, *, position_error: bool =
     (``gap``) and ``--position-error`` (``position_error``)."""
     if position_error:
         parser.add_argument("--position-error", default=None, help="standard deviation of one fix per axis, with its "
-                            "unit (m, km, cm, mm; default: estimated from the tracks; refused above the typical step "
-                            "between fixes)")
+                            "unit (m, km, cm, mm; default: estimated from the tracks, and fitted with the field when "
+                            "it is fitted through the transitions; refused above the typical step between fixes)")
     parser.add_argument("--max-speed", default="5m/s",
                         help="drop fixes implying a faster speed (bare: m/s; default 5m/s)")
     parser.add_argument("--spike-limit", type=float, default=None, metavar="FACTOR",

@@ -316,9 +316,12 @@ def _outcome(var_m2: float, se_m2: float, method: str, n_windows: int, n_tracks:
 def position_error_text(record: dict[str, Any]) -> str:
     """One line for a report from its ``position_error_m``, ``position_error_source`` and (when estimated)
     ``position_error_estimate`` (:meth:`PositionErrorEstimate.to_dict`):
-    ``position error σ = 0.52 mm (estimated ± 0.03 mm from …)`` or ``… (given)``."""
+    ``position error σ = 0.52 mm (estimated ± 0.03 mm from …)``, ``… (given)`` or, fitted through the transitions
+    from ``position_error_start_m``, ``… (fitted through the transitions, started at …)``."""
     source, estimate = record["position_error_source"], record.get("position_error_estimate") or {}
     text = f"position error σ = {format_length(record['position_error_m'])} ({source}"
+    if source == "fitted" and record.get("position_error_start_m") is not None:
+        return text + f" through the transitions, started at {format_length(record['position_error_start_m'])})"
     if source == "estimated" and estimate:
         se = estimate.get("standard_error_m")
         text += "" if se is None else f" ± {format_length(se)}"

@@ -56,7 +56,6 @@ from ..gp.schedule import Checkpoint, Schedule, TrainConfig, TrainState, load_ch
 from ..gp.training import fit
 from ..gp.training import fit_report as velocity_fit_report
 from ..progress import Progress, Stopwatch
-from ..units import format_length
 from .methods import METHODS, make_method, method_name
 from .sde import PointPosterior
 from .transitionbound import expected_log_likelihoods
@@ -83,15 +82,10 @@ _TRAINABLE = ("kernel", "q_mean", "q_sqrt_raw", "log_diffusivity_m2_s")
 # Adam moves every coordinate by about the learning rate at first; the M·d whitened means start at the velocity
 # fit's optimum and would be knocked off it by full-size steps.  S keeps the full step: it has to tighten to what the
 # transitions say (its trace penalty, transitionbound) within the few hundred steps of a fit.
-LEAF_STEP = {"kernel": 1.0, "log_diffusivity_m2_s": 1.0, "q_mean": 0.3, "q_sqrt_raw": 1.0}
+LEAF_STEP = {"kernel": 1.0, "log_diffusivity_m2_s": 1.0, "q_mean": 0.3, "q_sqrt_raw": 1.0, "log_position_error_m": 1.0}
+SIGMA_LEAF = "log_position_error_m"   # log σ_pos (m), trained beside the field when no position error is given
+SIGMA_HOLD_STEPS = 100      # a fitted σ_pos is held at its start for the first 100 steps (fit_transitions)
 
-
-ESTIMATED_POSITION_ERROR = (
-    "the fixes' position error was estimated from the tracks as {sigma} ({how}), but that estimate needs a flow that "
-    "turns by less than about 0.1 rad between fixes (data.positionerror) and here the median turn is {turn:.2g} rad; "
-    "the transition fit takes {sigma} as the error of every fix, which can bias K and the field's uncertainty "
-    "(stranger checks: a 1-mm tank error estimated as 80 mm gave a 40 % velocity error against 2.5 % with the true "
-    "error; daily fixes on a 20-km eddy gave K 44 m²/s against 100); give the instrument's error with --position-error")
 
 
 ALIASING_TURN = 2.0 * math.pi / 3.0   # rad: a third of a turn, the fitted turn's 10th percentile limit (fit_transitions)
@@ -199,18 +193,26 @@ def _all_finite(tree) -> jax.Array:
     return jnp.all(jnp.array([jnp.all(jnp.isfinite(leaf)) for leaf in jax.tree_util.tree_leaves(tree)]))
 
 
-@jax.jit(static_argnames=("prop", "jitter_multiple"))
-def _step(params, opt_state, rows, n_total, tau_s, var, *, prop, jitter_multiple):
-    """One Adam step on the trainable leaves → (params, opt_state, objective at the start, all finite?)."""
-    def negative(trainable):
-        p = dataclasses.replace(params, **trainable)
-        return -objective(p, rows, n_total, tau_s, var, prop=prop, jitter_multiple=jitter_multiple)
+def _variance(extra: dict, var):
+    """σ_pos² (m²): the trained σ's when ``extra`` holds it, else ``var``."""
+    return jnp.exp(2.0 * extra[SIGMA_LEAF]) if SIGMA_LEAF in extra else var
 
-    trainable = {name: getattr(params, name) for name in _TRAINABLE}
+
+@jax.jit(static_argnames=("prop", "jitter_multiple"))
+def _step(params, extra, opt_state, rows, n_total, tau_s, var, *, prop, jitter_multiple):
+    """One Adam step on the trainable leaves (the field's and ``extra``'s, e.g. log σ_pos) → (params, extra,
+    opt_state, objective at the start, all finite?)."""
+    def negative(trainable):
+        p = dataclasses.replace(params, **{name: trainable[name] for name in _TRAINABLE})
+        return -objective(p, rows, n_total, tau_s, _variance(trainable, var), prop=prop,
+                          jitter_multiple=jitter_multiple)
+
+    trainable = {**{name: getattr(params, name) for name in _TRAINABLE}, **extra}
     value, grads = jax.value_and_grad(negative)(trainable)
     updates, new_state = _optimizer().update(grads, opt_state, trainable)
-    new_params = dataclasses.replace(params, **optax.apply_updates(trainable, updates))
-    return new_params, new_state, -value, jnp.isfinite(value) & _all_finite(grads)
+    new = optax.apply_updates(trainable, updates)
+    new_params = dataclasses.replace(params, **{name: new[name] for name in _TRAINABLE})
+    return new_params, {name: new[name] for name in extra}, new_state, -value, jnp.isfinite(value) & _all_finite(grads)
 
 
 @jax.jit(static_argnames=("prop", "jitter_multiple"))
@@ -266,10 +268,16 @@ def _evaluation_rows(n: int, seed: int) -> np.ndarray | None:
     return None if n <= EVAL_ROWS else np.sort(np.random.default_rng([seed, 2**31 - 5]).choice(n, EVAL_ROWS, False))
 
 
-def _value(params, problem: _Problem, idx: np.ndarray | None, jitter: float) -> float:
-    """The objective on rows ``idx`` (all when None), the sum scaled by N/b, in chunks of 1024."""
+def _state_variance(state: TrainState, problem: _Problem) -> float:
+    """σ_pos² (m²) at ``state``: the trained σ's, or the fixes' given one."""
+    return float(_variance(state.extra, problem.trans.position_error_m**2))
+
+
+def _value(params, problem: _Problem, idx: np.ndarray | None, jitter: float, var: float | None = None) -> float:
+    """The objective on rows ``idx`` (all when None), the sum scaled by N/b, in chunks of 1024, at σ_pos² ``var``
+    (m²; None: the fixes' given one)."""
     rows = np.arange(problem.trans.n) if idx is None else idx
-    var = problem.trans.position_error_m**2
+    var = problem.trans.position_error_m**2 if var is None else var
     total = sum(float(_sum_log_likelihood(params, _rows(problem.trans, rows[i:i + 1024]), problem.tau_s, var,
                                           prop=problem.prop, jitter_multiple=jitter))
                 for i in range(0, rows.size, 1024))
@@ -288,12 +296,13 @@ def _advance(state: TrainState, problem: _Problem, schedule: Schedule, factor: f
     cfg, trans = problem.config, problem.trans
     rows = _rows(trans, _batch_indices(trans.n, cfg.batch_size, cfg.seed, state.step))
     decayed = schedule.learning_rate * 10.0 ** (-state.step / DECAY_STEPS) * factor
-    params, new_opt, value, ok = _step(state.params, _with_learning_rate(state.opt_state, decayed), rows,
-                                       float(trans.n), problem.tau_s, trans.position_error_m**2, prop=problem.prop,
-                                       jitter_multiple=state.jitter_multiple)
+    params, extra, new_opt, value, ok = _step(state.params, state.extra, _with_learning_rate(state.opt_state, decayed),
+                                              rows, float(trans.n), problem.tau_s, trans.position_error_m**2,
+                                              prop=problem.prop, jitter_multiple=state.jitter_multiple)
     if not bool(ok):
         return None
-    return dataclasses.replace(state, params=params, opt_state=new_opt, step=state.step + 1,
+    extra = extra if state.step >= SIGMA_HOLD_STEPS else state.extra       # σ_pos held while the field sharpens
+    return dataclasses.replace(state, params=params, extra=extra, opt_state=new_opt, step=state.step + 1,
                                history=state.history + (float(value),))
 
 
@@ -326,8 +335,8 @@ def _non_finite_message(state: TrainState, problem: _Problem) -> str:
     idx = np.arange(trans.n) if idx is None else idx
     post = ParamPosterior.from_params(state.params, jitter_multiple=state.jitter_multiple)
     ll = np.asarray(expected_log_likelihoods(post, state.params.diffusivity_m2_s, problem.tau_s, problem.prop.method,
-                                             problem.prop.integrator, *_rows(trans, idx), trans.position_error_m**2,
-                                             problem.prop.chunk))
+                                             problem.prop.integrator, *_rows(trans, idx),
+                                             _state_variance(state, problem), problem.prop.chunk))
     bad = idx[~np.isfinite(ll)]
     where = "its gradient" if bad.size == 0 else (
         f"the log density of {bad.size} of {idx.size} transitions (first: transition {int(bad[0])}, track index "
@@ -340,8 +349,10 @@ def _non_finite_message(state: TrainState, problem: _Problem) -> str:
 
 def _check(state: TrainState, problem: _Problem) -> TrainState:
     idx = _evaluation_rows(problem.trans.n, problem.config.seed)
-    checks = state.checks + (_value(state.params, problem, idx, state.jitter_multiple),)
+    checks = state.checks + (_value(state.params, problem, idx, state.jitter_multiple,
+                                    _state_variance(state, problem)),)
     plateau = len(checks) >= 2 and checks[-1] - checks[-2] < REL_TOL * max(abs(checks[-2]), float(problem.trans.n))
+    plateau = plateau and (not state.extra or state.step > 1.5 * SIGMA_HOLD_STEPS)   # σ_pos moved for 50+ steps
     return dataclasses.replace(state, checks=checks, converged=bool(plateau))
 
 
@@ -354,7 +365,7 @@ def _train(state: TrainState, problem: _Problem, schedule: Schedule, checkpoint:
                    desc="driftwise fit (transitions)")
     if state.step == 0 and not state.checks:
         state = dataclasses.replace(state, checks=(_value(state.params, problem, _evaluation_rows(
-            problem.trans.n, problem.config.seed), state.jitter_multiple),))    # the warm start's value
+            problem.trans.n, problem.config.seed), state.jitter_multiple, _state_variance(state, problem)),))
     try:
         previous = None
         problem = _refreshed(problem, state) if state.step > 0 else problem     # resumed: the step of its field
@@ -381,20 +392,25 @@ def _train(state: TrainState, problem: _Problem, schedule: Schedule, checkpoint:
     return state, problem, [{"from_step": k, "step_s": float(rk4.step_s), "substeps": rk4.substeps} for k, rk4 in steps]
 
 
-def _config(warm: fld.FlowField, trans: TransitionSet, prop: Propagation, schedule: Schedule, seed: int) -> TrainConfig:
+def _config(warm: fld.FlowField, trans: TransitionSet, prop: Propagation, schedule: Schedule, seed: int,
+            fit_sigma: bool) -> TrainConfig:
     digest = hashlib.sha256()
     for array in (trans.start_m, trans.end_m, trans.dt_s, np.asarray(warm.params.q_mean)):
         digest.update(np.ascontiguousarray(array, dtype=np.float64).tobytes())
-    tag = f"transitions:{method_name(prop.method)}:{prop.integrator.step_s}:{prop.integrator.substeps}:"
+    tag = (f"transitions:{method_name(prop.method)}:{prop.integrator.step_s}:{prop.integrator.substeps}:"
+           + ("sigma-fitted:" if fit_sigma else ""))
     return TrainConfig(warm.kernel_family, warm.kernel_base, int(warm.params.n_inducing), int(seed),
                        int(min(schedule.batch_size, trans.n)), False, "adam", float(schedule.natural_step),
                        float(trans.position_error_m), tag + digest.hexdigest())
 
 
-def _start(warm: fld.FlowField, problem: _Problem, schedule: Schedule, checkpoint: Checkpoint | None) -> TrainState:
+def _start(warm: fld.FlowField, problem: _Problem, schedule: Schedule, checkpoint: Checkpoint | None,
+           fit_sigma: bool) -> TrainState:
     params = warm.params
-    opt_state = _optimizer().init({name: getattr(params, name) for name in _TRAINABLE})
-    state = TrainState(params, _with_learning_rate(opt_state, schedule.learning_rate), 0, (), warm.jitter_multiple)
+    extra = {SIGMA_LEAF: jnp.log(jnp.asarray(problem.trans.position_error_m, jnp.float64))} if fit_sigma else {}
+    opt_state = _optimizer().init({**{name: getattr(params, name) for name in _TRAINABLE}, **extra})
+    state = TrainState(params, _with_learning_rate(opt_state, schedule.learning_rate), 0, (), warm.jitter_multiple,
+                       extra=extra)
     if checkpoint is not None and checkpoint.resume and checkpoint.path.exists():
         return load_checkpoint(checkpoint.path, state, problem.config)
     return state
@@ -407,7 +423,16 @@ def fit_transitions(tracks_or_observations, warm: fld.FlowField, *, position_err
                     progress: bool = True) -> fld.FlowField:
     """Refit ``warm`` (a velocity fit of the same tracks) by maximising the transition objective L.
 
-    ``position_error_m`` σ_pos of one fix (m; None: the warm field's).
+    ``position_error_m`` σ_pos of one fix (m), held fixed; None: σ_pos is fitted with the field and K, a trained leaf
+    log σ_pos started from the warm field's value (the tracks' estimate; :func:`_sigma_start`).  That estimate needs a
+    flow that turns by less than about 0.1 rad between fixes (data.positionerror), which coarse fixes are not, and held
+    fixed it biased the fit (stranger checks: a 1-mm tank error estimated as 80 mm gave a 40 % velocity error against
+    2.5 % with the true error; daily fixes on a 20-km eddy gave K 44 m²/s against 100).  The transition density sees
+    σ_pos at both ends of every pair, R in N(x_k, R) → N(m_k, P_k + R), so the fit can weigh it against K: exactly
+    only where the flow deforms the start cloud or Δt varies (with even Δt in a uniform stream only 2σ² + 2KΔt is
+    identified).  σ_pos is held at its start for the first :data:`SIGMA_HOLD_STEPS` steps while the field sharpens
+    (trained from step 0, a fit from a smooth warm start let σ take up the misfit: 38 m → 875 m against a true 10 m,
+    irregular fixes; held, 51 m), and the plateau is not declared before 50 steps after its release.
     ``method`` a moment method of :data:`driftwise.dynamics.methods.METHODS` (cubature default,
     "linearize" the cheap option); each transition takes min(``max_substeps``, ⌈Δt/``step_s``⌉) RK4 steps,
     ``step_s`` None: from the warm field's velocity gradients (:func:`step_for_field`); at every check of the
@@ -417,20 +442,22 @@ def fit_transitions(tracks_or_observations, warm: fld.FlowField, *, position_err
     ``checkpoint`` as in :func:`driftwise.fit`.  Returns a FlowField whose ``fit_info`` records
     ``likelihood = "transitions"`` and the objective's history.
     """
-    if position_error_m is None:
-        position_error_m = warm.position_error_m
-    trans = transition_set(tracks_or_observations, position_error_m=position_error_m)
+    fit_sigma = position_error_m is None
+    trans = transition_set(tracks_or_observations, position_error_m=0.0 if fit_sigma else position_error_m)
+    if fit_sigma:
+        trans = dataclasses.replace(trans, position_error_m=_sigma_start(warm, trans))
     if trans.dim != warm.dim:
         raise InputError(f"transitions are {trans.dim}-D but the warm-start field is {warm.dim}-D")
     step_s = step_for_field(warm, trans) if step_s is None else step_s
     trans, too_long = _integrable(trans, step_s, max_substeps)
     prop = _propagation(method, trans, step_s, max_substeps)
     tau = float(warm.decorrelation_time_s or 0.0)
-    problem = _Problem(trans, prop, tau, _config(warm, trans, prop, schedule, seed), max_substeps)
-    state, problem, rk4_steps = _train(_start(warm, problem, schedule, checkpoint), problem, schedule, checkpoint,
-                                       progress)
+    problem = _Problem(trans, prop, tau, _config(warm, trans, prop, schedule, seed, fit_sigma), max_substeps)
+    state, problem, rk4_steps = _train(_start(warm, problem, schedule, checkpoint, fit_sigma), problem, schedule,
+                                       checkpoint, progress)
     prop = problem.prop
-    final = _value(state.params, problem, None, state.jitter_multiple)
+    sigma_m = math.sqrt(_state_variance(state, problem))
+    final = _value(state.params, problem, None, state.jitter_multiple, sigma_m**2)
     if not math.isfinite(final):
         raise RuntimeError("transition fit: the final objective is not finite; check the data and position error")
     turns = _turns(ParamPosterior.from_params(state.params, jitter_multiple=state.jitter_multiple), trans)
@@ -447,10 +474,24 @@ def fit_transitions(tracks_or_observations, warm: fld.FlowField, *, position_err
             "coarseness_fitted": turn, "turn_p10_fitted": closest,
             "transition_substeps": prop.integrator.substeps, "velocity_fit_elbo": warm.fit_info.get("elbo"),
             "velocity_fit_diffusivity_m2_s": warm.diffusivity_m2_s,
-            "decorrelation_time_source": "velocity fit: length_scale/rms_speed, held fixed in the transition fit"}
+            "decorrelation_time_source": "velocity fit: length_scale/rms_speed, held fixed in the transition fit",
+            **({"position_error_source": "fitted", "position_error_start_m": trans.position_error_m} if fit_sigma
+               else {})}
     return fld.FlowField.from_params(state.params, frame=warm.frame_dict, data_summary=warm.data_summary,
-                                     decorrelation_time_s=tau, position_error_m=trans.position_error_m,
+                                     decorrelation_time_s=tau, position_error_m=sigma_m,
                                      fit_info=info, jitter_multiple=state.jitter_multiple)
+
+
+def _sigma_start(warm: fld.FlowField, trans: TransitionSet) -> float:
+    """Where a fitted σ_pos starts (m): the warm field's (the tracks' estimate), at most 1 % of the median distance
+    between consecutive fixes.  At coarse fixes the estimate is biased high (the path's curvature between fixes counts
+    as error; data.positionerror) and a fit started there stayed near it (stranger checks: irregular fixes, 1.03 km
+    → 567 m in 400 steps against a true 10 m, 50 % velocity error), while from below σ grows to what the
+    transitions need."""
+    step = float(np.median(np.linalg.norm(trans.end_m - trans.start_m, axis=1)))
+    cap = 0.01 * step if math.isfinite(step) and step > 0 else 1.0
+    sigma = float(warm.position_error_m or 0.0)
+    return min(sigma, cap) if math.isfinite(sigma) and sigma > 0 else cap
 
 
 def _integrable(trans: TransitionSet, step_s: float, max_substeps: int) -> tuple[TransitionSet, int]:
@@ -573,7 +614,8 @@ def fit_by_likelihood(tracks, kernel: str, likelihood: str = "auto", *, inducing
     """The velocity fit, then (when ``likelihood`` is "transitions", or "auto" finds the fixes coarse) the
     transition fit warm-started from it.  Returns (field, :class:`LikelihoodChoice`).  ``checkpoint`` is the
     velocity fit's; the transition stage keeps its own beside it (:func:`transition_checkpoint_path`) and
-    removes it once it has finished.  ``position_error_m`` None: the velocity fit's estimate; ``background`` as
+    removes it once it has finished.  ``position_error_m`` None: the velocity fit's estimate, which the transition fit
+    then fits further (:func:`fit_transitions`); ``background`` as
     in :func:`driftwise.fit`; ``timing_s`` receives the stages' wall seconds (:class:`driftwise.progress.Stopwatch`)."""
     progress, clock = not quiet, Stopwatch(timing_s)
     if likelihood not in LIKELIHOODS:
@@ -582,28 +624,28 @@ def fit_by_likelihood(tracks, kernel: str, likelihood: str = "auto", *, inducing
     field = fit(tracks, kernel, inducing=inducing, seed=seed, position_error_m=position_error_m,
                 schedule=warm_schedule if likelihood == "transitions" else schedule, checkpoint=checkpoint,
                 progress=progress, background=background, timing_s=clock.laps)
-    # the transition stage needs a number; the warm-start refit gets the caller's (None: estimated again, the same
-    # value, and recorded as an estimate: not refused or reported as a --position-error the user never gave)
+    # the coarseness check needs a number; the warm-start refit and the transition fit get the caller's (None:
+    # estimated again and recorded as an estimate, then fitted: not refused or reported as a --position-error the
+    # user never gave)
     sigma_m = field.position_error_m if position_error_m is None else position_error_m
     trans = transition_set(tracks, position_error_m=sigma_m)
     choice = choose_likelihood(likelihood, field, trans)
-    if choice.likelihood == "transitions" and position_error_m is None:
-        identified = (field.fit_info.get("position_error_estimate") or {}).get("identified", True)
-        warnings.warn(ESTIMATED_POSITION_ERROR.format(
-            sigma=format_length(sigma_m), how="an estimate" if identified else "an upper bound: not identified",
-            turn=choice.coarseness), TransitionWarning, stacklevel=2)
-    if choice.likelihood == "transitions" and likelihood != "transitions":
+    if choice.likelihood == "transitions" and (likelihood != "transitions" or position_error_m is None):
         # the transition fit was validated from Adam's warm start; from the L-BFGS-B optimum of the velocity bound
-        # it did worse (30-min fixes in the vortex: RMSE 0.0087 against 0.0077 m/s; DEVELOPERS.md, "Benchmark record")
+        # it did worse (30-min fixes in the vortex: RMSE 0.0087 against 0.0077 m/s; DEVELOPERS.md, "Benchmark
+        # record").  Without a given σ the warm start takes the fitted σ's start (_sigma_start), not the estimate:
+        # at coarse fixes the estimate is biased high and a velocity fit with it is too smooth to refit from
+        # (stranger check, irregular 1–12-h fixes: 43 % velocity error from a warm start at 1.03 km, 9.9 % at 10 m)
+        warm_sigma = position_error_m if position_error_m is not None else _sigma_start(field, trans)
         with clock("warm_start"):
-            field = fit(tracks, kernel, inducing=inducing, seed=seed, position_error_m=position_error_m,
+            field = fit(tracks, kernel, inducing=inducing, seed=seed, position_error_m=warm_sigma,
                         schedule=warm_schedule, progress=progress, background=background)
     if choice.likelihood == "transitions":
         stage = None if checkpoint is None else Checkpoint(transition_checkpoint_path(checkpoint.path),
                                                            resume=checkpoint.resume,
                                                            every_steps=checkpoint.every_steps)
         with clock("transition_fit"):
-            field = fit_transitions(tracks, field, position_error_m=sigma_m, schedule=transition_schedule,
+            field = fit_transitions(tracks, field, position_error_m=position_error_m, schedule=transition_schedule,
                                     method=method, seed=seed, checkpoint=stage, progress=progress)
         if stage is not None:
             stage.path.unlink(missing_ok=True)
@@ -616,7 +658,7 @@ def fit_report(field: fld.FlowField, choice: LikelihoodChoice) -> dict[str, Any]
     (when calibrated) ``calibration_check``: K and τ of the separate calibration beside the fit's own K."""
     info = field.fit_info
     extra = {key: info[key] for key in ("transition_objective", "transition_steps", "transition_converged",
-                                        "coarseness_fitted", "turn_p10_fitted",
+                                        "coarseness_fitted", "turn_p10_fitted", "position_error_start_m",
                                         "n_transitions", "transitions_left_out_too_long", "transition_longest_dt_s", "transition_method",
                                         "transition_step_s", "transition_substeps", "calibration_check")
              if key in info}

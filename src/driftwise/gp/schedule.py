@@ -103,6 +103,7 @@ class TrainState:
     jitter_multiple: float
     converged: bool = False
     checks: tuple[float, ...] = ()   # ELBO on the evaluation rows every `patience` steps
+    extra: Any = dataclasses.field(default_factory=dict)   # trained leaves outside FieldParams, by name
 
 
 @dataclasses.dataclass(frozen=True)
@@ -158,7 +159,7 @@ def save_checkpoint(path, state: TrainState, config: TrainConfig) -> Path:
     meta = {"schema": CHECKPOINT_SCHEMA, "config": json.loads(config.to_json()), "step": state.step,
             "rng": {"seed": config.seed, "step": state.step, "scheme": "numpy default_rng([seed, epoch]) permutations"},
             "jitter_multiple": state.jitter_multiple, "converged": state.converged, "checks": list(state.checks)}
-    arrays = {**_flat("params/", state.params), **_flat("opt/", state.opt_state),
+    arrays = {**_flat("params/", state.params), **_flat("opt/", state.opt_state), **_flat("extra/", state.extra),
               "history": np.asarray(state.history, dtype=np.float64), "meta": np.array(json.dumps(meta))}
 
     def write(tmp: Path) -> None:
@@ -179,6 +180,7 @@ def load_checkpoint(path, template: TrainState, config: TrainConfig) -> TrainSta
                                  "seed or settings); remove it or drop --resume")
             params = _unflat("params/", template.params, arrays, path)
             opt_state = _unflat("opt/", template.opt_state, arrays, path)
+            extra = _unflat("extra/", template.extra, arrays, path)
             history = tuple(float(v) for v in arrays["history"])
     except InputError:
         raise
@@ -188,6 +190,6 @@ def load_checkpoint(path, template: TrainState, config: TrainConfig) -> TrainSta
     if len(history) != int(meta["step"]):
         raise InputError(f"{path}: checkpoint is inconsistent (step {meta['step']}, {len(history)} ELBO values)")
     return TrainState(params, opt_state, int(meta["step"]), history, float(meta["jitter_multiple"]),
-                  bool(meta["converged"]), tuple(float(v) for v in meta["checks"]))
+                  bool(meta["converged"]), tuple(float(v) for v in meta["checks"]), extra)
 
 
