@@ -19,7 +19,7 @@ from scipy.integrate import solve_ivp
 import driftwise
 from driftwise.data.observations import velocity_observations
 from driftwise.dynamics.temporalchoice import residual_evidence
-from driftwise.dynamics.transitionfit import chord_velocities
+from driftwise.dynamics.transitionstep import chord_velocities
 from driftwise.dynamics.transitions import transition_set
 from driftwise.gp.field import FlowField
 

@@ -50,8 +50,9 @@ from ..gp.temporalfit import temporal_choice, temporal_report
 from ..gp.training import fit
 from ..progress import Stopwatch
 from ..units import format_duration
-from .transitionfit import LikelihoodChoice, chord_velocities, fit_by_likelihood
+from .transitionfit import LikelihoodChoice, fit_by_likelihood
 from .transitions import transition_set
+from .transitionstep import chord_velocities
 
 __all__ = ["ALPHA", "MIN_SHARE", "PRINCIPAL_ORDER", "TEMPORAL_MODES", "TemporalDecision", "TemporalWarning", "candidate_periods_s",
            "fit_temporal", "residual_evidence", "temporal_checkpoint_path", "temporal_fit_report"]
