@@ -6,7 +6,7 @@
 2. take its residual velocities along the tracks, r_n = u_n − E[v̄(x_n)] (m/s), at the finite-difference velocity
    observations u_n (segment midpoints x_n, times t_n on the track file's axis) — after a fit through the
    transitions, r_n = u_n − the chord velocity the field predicts between the two fixes
-   (:func:`~driftwise.dynamics.transitionfit.chord_velocities`), the quantity that fit matched —, weighted by 1 / R_n with
+   (:func:`~driftwise.dynamics.transitionstep.chord_velocities`), the quantity that fit matched —, weighted by 1 / R_n with
    R_n = 2K/Δt_n + 2σ_pos²/Δt_n² + σ₀² the fit's own noise variance (m²/s²);
 3. test them with :func:`driftwise.data.residualspectrum.detect_time_structure`: per-track harmonic regression at
    every candidate constituent (the tides M2, S2, N2, K1, O1; ``inertial`` too for lon/lat tracks away from the
