@@ -91,7 +91,6 @@ def _integrable(trans: TransitionSet, step_s: float, max_substeps: int) -> tuple
     return (trans, 0) if keep.all() else (trans.take(np.flatnonzero(keep)), int(np.count_nonzero(~keep)))
 
 
-@jax.jit
 @partial(jax.jit, static_argnames=("chunk",))
 def _gradients(posterior: Any, points: jax.Array, chunk: int = 4096) -> jax.Array:
     """∇μ at each point (n, d, d) 1/s, ``chunk`` points at a time."""
@@ -114,8 +113,7 @@ def chord_velocities(field: fld.FlowField, trans: TransitionSet, *, max_substeps
     0.026 m/s).  The mean path leaves out the particle cloud's own moments (a residual test, not a likelihood).
     A row whose path is not finite (a transition past RK4's stability at the capped step) gets μ at its midpoint."""
     post = PointPosterior.from_field(field)
-    step_s = step_for_field(field, trans)
-    rk4 = FixedStepRK4(step_s, substeps_for(trans.dt_s, step_s, max_substeps))
+    rk4 = _integrator(trans, step_for_field(field, trans), max_substeps)
 
     def end(row):
         x0, dt = row
