@@ -6,20 +6,23 @@ Run by hand (not collected by pytest), one table at the end:
     .venv/bin/python tests/benchmarks/bench_many.py --quick         # a smoke run
 
 Field: the 2-D Helmholtz field of bench_spread.py (M = 256 over the ±10 km invented bay), its posterior tabulated
-over [−12.5, 12.5] km² (tolerance 0.05).  A release-step is one RK4 step (600 s) of one release with
-SphericalCubature (4 stages × 4 points).  Measured in this run, side by side:
+over [−12.5, 12.5] km² (tolerance 0.05).  A release-step is one RK4 step of one release with SphericalCubature
+(4 stages × 4 points), whatever its length.  Measured in this run, side by side:
 
-1. release-steps/s, exact posterior (``--exact`` releases × 1 h) and tabulated (10⁴ × 12 h, 10⁵ × 2 h); the
-   machine's float64 matmul rate (2048² GEMM) and the share of it the tabulated run reaches, with the flop per
-   release-step counted by XLA's cost analysis (bench_tabulate._flop_per_step);
-2. connectivity between 20 square sites (1 km side, a 5 × 4 lattice over ±6 km), ``--per-site`` releases each
-   for ``--hours`` hourly outputs, in fresh processes with 1, 2 and 4 forced host devices
-   (XLA_FLAGS=--xla_force_host_platform_device_count=N): wall time of ``connectivity.connect`` (table built
-   before the clock starts) and the process's peak resident memory (resource.getrusage ru_maxrss); the time of
-   10⁶ releases × 720 h is extrapolated linearly in releases × steps from the one-device run;
-3. back-tracking: a ``--candidates`` grid × 72 hourly candidate release times for one find 72 h after the first
-   (``backtrack.backtrack`` on the table), extrapolated linearly to 10⁵ candidates;
-4. the Euler–Maruyama ensemble (ensemble.simulate) against diffrax (Euler on an Itô SDE with a
+1. release-steps/s (RK4 600 s) in this process (one device), exact posterior (``--exact`` releases × 1 h) and
+   tabulated (10⁴ × 12 h, 10⁵ × 2 h); the machine's float64 matmul rate (2048² GEMM) and the share of it the
+   tabulated run reaches, with the flop per release-step counted by XLA's cost analysis
+   (bench_tabulate._flop_per_step);
+2. in fresh processes with 1, 2 and 4 forced host devices (XLA_FLAGS=--xla_force_host_platform_device_count=N;
+   the machine has 2 cores): the table's release-steps/s (10⁵ × 2 h); connectivity between 20 square sites
+   (1 km side, a 5 × 4 lattice over ±6 km), ``--per-site`` releases each over ``--days`` days with the command's
+   defaults (RK4 1 h, daily outputs) and the data-support share (supporttable): wall time of
+   ``connectivity.connect`` (tables built before the clock starts), the process's peak resident memory
+   (resource.getrusage ru_maxrss), and the time of 10⁶ releases × 720 hourly steps extrapolated linearly in
+   releases × steps; back-tracking of a ``--candidates`` grid × 72 hourly candidate release times for one find
+   72 h after the first (RK4 1 h, the command's default), extrapolated linearly to 10⁵ candidates, with the
+   most probable release point's distance and the map's L1 difference against RK4 600 s (the step's own error);
+3. the Euler–Maruyama ensemble (ensemble.simulate) against diffrax (Euler on an Itô SDE with a
    ControlTerm, the same drift, the same L = psd_cholesky(D), UnsafeBrownianPath, vmapped over particles)
    on the same tabulated SDE, the same step (60 s), particle count and horizon; also the moment release
    (cubature, RK4 600 s) for the same release, so both ratios are quoted against diffrax.
@@ -39,6 +42,7 @@ from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
 REGION_M = 12_500.0
+CLI_STEP_S = 3600.0      # the RK4 step of `driftwise connect` and `driftwise backtrack` by default
 
 
 def setup(devices: int = 0):
@@ -109,34 +113,59 @@ def twenty_sites():
 
 
 def connect_child(args) -> dict:
-    """One fresh process: connectivity of 20 sites on ``args.devices`` forced devices; wall and peak memory."""
-    jax, np, _, exact, table_sde, _, build_s = setup(args.devices)
-    from driftwise.dynamics import connectivity
+    """One fresh process on ``args.devices`` forced devices: the table's release-steps/s (10⁵ × 2 h), connectivity
+    of 20 sites (the command's defaults: RK4 1 h, daily outputs, data-support share from supporttable) and
+    back-tracking; wall times and peak memory."""
+    jax, np, field, exact, table_sde, _, build_s = setup(args.devices)
+    from driftwise.dynamics import connectivity, moments
+    from driftwise.dynamics.supporttable import support_table
 
+    rate = table_rate(np, table_sde, 100_000, 2)
     sites = twenty_sites()
-    times = np.arange(0.0, args.hours * 3600.0 + 1.0, 3600.0)
-    connectivity.connect(table_sde, sites, times, per_site=26, fallback_sde=exact)      # compile the 512-release batch
+    times = np.arange(0.0, args.days * 86400.0 + 1.0, 86400.0)
+    support = support_table(field, [-REGION_M] * 2, [REGION_M] * 2)
+    run = partial(connectivity.connect, table_sde, sites, times, integrator=moments.RK4(CLI_STEP_S), support=support,
+                  fallback_sde=exact)
+    run(per_site=26)                                                   # compile (every batch is padded to one shape)
     start = time.perf_counter()
-    result = connectivity.connect(table_sde, sites, times, per_site=args.per_site, fallback_sde=exact)
+    result = run(per_site=args.per_site)
     wall = time.perf_counter() - start
-    return {"devices": jax.device_count(), "wall_s": wall, "build_s": build_s,
+    return {"devices": jax.device_count(), "wall_s": wall, "build_s": build_s, "table_rate": rate,
+            "backtrack": backtrack_run(args, np, exact, table_sde),
             "maxrss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0,
             "retained_max": float(np.max(np.diagonal(result.probability[..., -1])))}
 
 
+def table_rate(np, table_sde, releases: int, hours: int) -> dict:
+    """Release-steps/s of ``releases`` through the table for ``hours`` h (RK4 600 s, cubature)."""
+    from driftwise.dynamics import moments
+
+    rng = np.random.default_rng(6)
+    means0 = rng.uniform(-6000.0, 6000.0, size=(releases, 2))
+    covs0 = np.broadcast_to(np.eye(2) * 50.0**2, (releases, 2, 2)).copy()
+    times = np.arange(0.0, hours * 3600.0 + 1.0, 3600.0)
+    wall = timed(partial(moments.propagate_batch, table_sde, means0, covs0, times), 2)
+    return {"releases": releases, "hours": hours, "wall_s": wall, "rate": releases * hours * 6 / wall}
+
+
 def backtrack_run(args, np, exact, table_sde) -> dict:
+    """A ``--candidates`` grid × 72 hourly release times for one find 72 h after the first (the command's RK4 1 h)."""
     from driftwise.dynamics import backtrack
 
     side = round(float(np.sqrt(args.candidates)))
     x = y = np.linspace(-6000.0, 6000.0, side)
     release_times = np.arange(0.0, 72 * 3600.0, 3600.0)
     finds = backtrack.Finds(np.array([[1000.0, 500.0]]), np.array([72 * 3600.0]), np.array([200.0]))
-    backtrack.backtrack(table_sde, finds, x[:40], y[:40], release_times, fallback_sde=exact)   # compile the batch
+    run = partial(backtrack.backtrack, table_sde, finds, step_s=CLI_STEP_S, fallback_sde=exact)
+    run(x[:40], y[:40], release_times)                                  # compile the batch
     start = time.perf_counter()
-    result = backtrack.backtrack(table_sde, finds, x, y, release_times, fallback_sde=exact)
+    result = run(x, y, release_times)
     wall = time.perf_counter() - start
+    fine = run(x, y, release_times, step_s=600.0)                       # the step's own error, against 10 min
     return {"candidates": side * side, "times": len(release_times), "wall_s": wall,
-            "most_probable": [float(v) for v in result.most_probable]}
+            "most_probable": [float(v) for v in result.most_probable],
+            "step_error_m": float(np.hypot(*(np.array(result.most_probable[:2]) - fine.most_probable[:2]))),
+            "step_error_l1": float(np.abs(result.probability - fine.probability).sum())}
 
 
 def ensemble_vs_diffrax(args, jax, np, table_sde) -> dict:
@@ -189,7 +218,7 @@ def children(args) -> list[dict]:
     out = []
     for count in (int(c) for c in args.counts.split(",")):
         cmd = [sys.executable, __file__, "--connect-child", "--devices", str(count), "--per-site", str(args.per_site),
-               "--hours", str(args.hours)]
+               "--days", str(args.days), "--candidates", str(args.candidates)]
         run = subprocess.run(cmd, capture_output=True, text=True, check=True)
         out.append(json.loads(run.stdout.strip().splitlines()[-1]))
     return out
@@ -202,14 +231,14 @@ def main() -> None:
     parser.add_argument("--devices", type=int, default=1)
     parser.add_argument("--counts", default="1,2,4", help="forced device counts of the connectivity runs")
     parser.add_argument("--per-site", type=int, default=500, help="connectivity releases per site (20 sites)")
-    parser.add_argument("--hours", type=int, default=72, help="connectivity horizon (hourly outputs, RK4 600 s)")
+    parser.add_argument("--days", type=int, default=30, help="connectivity horizon (daily outputs, RK4 1 h)")
     parser.add_argument("--exact", type=int, default=2000, help="releases of the exact-posterior rate (1 h)")
     parser.add_argument("--candidates", type=int, default=10_000, help="back-tracking candidates (a square grid)")
     parser.add_argument("--particles", type=int, default=10_000, help="ensemble particles (ours and diffrax)")
     parser.add_argument("--ens-hours", type=int, default=6, help="ensemble horizon (h), Euler–Maruyama step 60 s")
     args = parser.parse_args()
     if args.quick:
-        args.per_site, args.hours, args.exact, args.candidates, args.particles = 30, 6, 200, 400, 1000
+        args.per_site, args.days, args.exact, args.candidates, args.particles = 30, 2, 200, 400, 1000
     args.table_sizes = [(1000, 2), (10_000, 2)] if args.quick else [(10_000, 12), (100_000, 2)]
     if args.connect_child:
         print(json.dumps(connect_child(args)))
@@ -219,7 +248,6 @@ def main() -> None:
     res = {"uptime_before": uptime, "build_s": build_s, "nodes": list(table.shape),
            "errors": [float(table.mean_error), float(table.cov_error)]}
     res["rates"] = rates(args, jax, np, exact, table_sde)
-    res["backtrack"] = backtrack_run(args, np, exact, table_sde)
     res["ensemble"] = ensemble_vs_diffrax(args, jax, np, table_sde)
     res["connect"] = children(args)
     res["uptime_after"] = subprocess.run(["uptime"], check=False, capture_output=True, text=True).stdout.strip()
@@ -244,18 +272,20 @@ def report(res: dict, args) -> None:
         share = f"{100 * gf / r['matmul_gflops']:.1f} %" if table else ""
         print(f"{x['posterior']:>9} {x['releases']:>9} {x['hours']:>5} {x['wall_s']:>8.2f} {x['rate']:>15.3g} "
               f"{ratio:>9} {flops:>8} {share:>9}")
-    steps = 20 * args.per_site * args.hours * 6
-    print(f"connectivity 20 sites × {args.per_site} releases × {args.hours} h ({steps:.3g} release-steps; table):")
+    steps = 20 * args.per_site * args.days * 24
+    print(f"connectivity 20 sites × {args.per_site} releases × {args.days} d (RK4 1 h, daily outputs; {steps:.3g} "
+          "release-steps; table), back-tracking, and the table's rate, per forced device count:")
     base = res["connect"][0]
     for c in res["connect"]:
-        print(f"  {c['devices']} device(s): wall {c['wall_s']:.1f} s ({steps / c['wall_s']:.3g} release-steps/s, "
+        full = c["wall_s"] * (1e6 * 720) / steps
+        b = c["backtrack"]
+        print(f"  {c['devices']} device(s): connect {c['wall_s']:.1f} s ({steps / c['wall_s']:.3g} release-steps/s, "
               f"speed-up {base['wall_s'] / c['wall_s']:.2f}×, efficiency {base['wall_s'] / c['wall_s'] / c['devices']:.2f}), "
-              f"peak memory {c['maxrss_mb']:.0f} MB")
-    full = base["wall_s"] * (1e6 * 720 * 6) / steps
-    print(f"  extrapolated 10⁶ releases × 720 h on 1 device: {full:.3g} s = {full / 60:.1f} min (target ≤ 15 min)")
-    b = res["backtrack"]
-    print(f"backtrack {b['candidates']} candidates × {b['times']} times: wall {b['wall_s']:.1f} s; extrapolated 10⁵ "
-          f"candidates: {b['wall_s'] * 1e5 / b['candidates']:.0f} s (target ≤ 120 s); most probable {b['most_probable']}")
+              f"10⁶ releases × 720 h extrapolated {full / 60:.1f} min (target ≤ 15); peak memory {c['maxrss_mb']:.0f} MB; "
+              f"table {c['table_rate']['rate']:.3g} release-steps/s (10⁵ × 2 h; target ≥ 10⁶)")
+        print(f"      backtrack {b['candidates']} candidates × {b['times']} times: {b['wall_s']:.1f} s, 10⁵ "
+              f"extrapolated {b['wall_s'] * 1e5 / b['candidates']:.0f} s (target ≤ 120); most probable "
+              f"{b['most_probable']}; against RK4 600 s: {b['step_error_m']:.1f} m, map L1 {b['step_error_l1']:.2g}")
     e = res["ensemble"]
     print(f"ensemble {e['particles']} particles × {e['hours']} h, Euler–Maruyama 60 s: ours {e['ours_s']:.2f} s, "
           f"diffrax {e['diffrax_s']:.2f} s → diffrax/ours {e['diffrax_s'] / e['ours_s']:.2f}×; moment release (cubature, "

@@ -269,3 +269,49 @@ def test_one_evaluation_gives_the_drift_and_the_diffusion(field, table, memory):
                                              means, covs, jnp.array([0.0, 3600.0])).compile().as_text()
     slice_shape = ",".join(str(n) for n in table.values.shape[2:])
     assert text.count(f"slice_sizes={{2,2,{slice_shape}}}") == 4
+
+
+# ------------------------------------------------------------------ the support ratio on a grid, padded batches
+def test_support_table_meets_its_tolerance_on_fresh_points_and_is_exact_off_the_grid(field):
+    """The interpolated variance ratio against FlowField.local_variance_ratio (the sparse GP's posterior over its
+    prior variance, Titsias 2009) on 3,000 points the table never saw; multilinear interpolation's error is
+    O(h²) (de Boor 1978, ch. 2; from memory), so it is measured, with a 25 % margin for points the build's own
+    check did not sample."""
+    from driftwise.dynamics.supporttable import SUPPORT_TOLERANCE, support_table
+
+    lo, hi = np.array([-5000.0, -5000.0]), np.array([22_000.0, 22_000.0])      # the data cover 0 … 10 km
+    table = support_table(field, lo, hi)
+    assert table is not None and table.error <= SUPPORT_TOLERANCE
+    fresh = np.random.default_rng(11).uniform(lo, hi, (3000, 2))
+    exact = field.local_variance_ratio(fresh)
+    assert np.max(np.abs(table(fresh) - exact)) <= 1.25 * SUPPORT_TOLERANCE
+    assert exact.min() < 0.5 and exact.max() > 0.9        # the box spans supported and unsupported ground
+    far = np.array([[30_000.0, 5000.0], [-9000.0, -9000.0]])
+    np.testing.assert_allclose(table(far), field.local_variance_ratio(far), rtol=1e-12, atol=0)
+
+
+def test_batches_of_any_size_share_a_few_compiled_programs(field):
+    """bucket_rows pads a batch to a power of two up to the chunk, then to a multiple of it; the padded rows are
+    dropped, so every release's moments equal an unpadded run to the last bit."""
+    from driftwise.dynamics import moments
+
+    assert [tabulate.bucket_rows(n, 256) for n in (1, 2, 3, 5, 200, 256, 257, 464, 513)] == \
+        [1, 2, 4, 8, 256, 256, 512, 512, 768]
+    sde = fieldmod_sde(field)
+    rng = np.random.default_rng(3)
+    starts = rng.uniform(1000.0, 9000.0, (7, 2))
+    covs = np.broadcast_to(np.eye(2) * 50.0**2, (7, 2, 2)).copy()
+    times = np.array([0.0, 3600.0])
+    kw = dict(method=moments.SphericalCubature(), integrator=moments.RK4(1800.0), chunk=4)
+    before = moments.propagate_batch_jit._cache_size()
+    outs = [tabulate.propagate_with_fallback(sde, None, starts[:n], covs[:n], times, **kw) for n in (5, 6, 7)]
+    assert moments.propagate_batch_jit._cache_size() - before == 1          # 5, 6 and 7 rows all run as 8
+    direct = moments.propagate_batch(sde, starts, covs, times, **kw)
+    np.testing.assert_array_equal(outs[-1][0], np.asarray(direct[0]))
+    np.testing.assert_array_equal(outs[0][1], np.asarray(direct[1])[:5])
+
+
+def fieldmod_sde(field):
+    from driftwise.dynamics.sde import sde_from_field
+
+    return sde_from_field(field)

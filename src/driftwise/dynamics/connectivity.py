@@ -28,7 +28,9 @@ Releases go in batches, so memory is bounded by one batch (:func:`connect_memory
 from __future__ import annotations
 
 import dataclasses
+import os
 from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from functools import partial
 from typing import Any
@@ -41,19 +43,20 @@ from .ensemble import particle_paths
 from .methods import make_method, method_name
 from .sde import PointPosterior, join_from_jit, sde_from_field, split_for_jit, transport_sde
 from .sites import Site, cell_covariance_m2, inside_polygon, seed_site
-from .spread import check_times, probability_inside
+from .spread import check_times, polygon_mass, signed_area
 from .supportcheck import SUPPORT_VARIANCE_FRACTION
-from .tabulate import FallbackTally, field_or_table_sde, propagate_with_fallback
+from .supporttable import support_table
+from .tabulate import FallbackTally, field_or_table_sde, propagate_with_fallback, table_region
 
 __all__ = ["Connectivity", "connect", "connect_ensemble", "connect_from_field", "field_transport",
            "first_passage_s", "connect_memory_bytes"]
 
 DEFAULT_THRESHOLD = 0.01
 BATCH = 512                       # releases propagated and scored at once (bounds memory)
+SCORE_CHUNK = 8192                # release-times scored at once
 CULL_SD = 9.0                     # a site farther than this many s.d. (per axis) from a release's mean scores 0
 ENSEMBLE_BATCH = 4096             # particles simulated at once
 SUPPORT_CHUNK = 2048              # points per data-support evaluation (each holds an (M·d)-wide row)
-_FLOATS_PER_RELEASE_TIME = 6 + 8  # mean, covariance, plus the polygon-mass temporaries per vertex (× k)
 
 
 @dataclass(frozen=True, eq=False)
@@ -114,13 +117,17 @@ def field_transport(field: Any, *, posterior: Any = None, diffusivity_m2_s: floa
 
 def connect_memory_bytes(n_sites: int, n_times: int, per_site: int, max_vertices: int, *,
                          ensemble: bool = False) -> int:
-    """Estimated peak bytes beyond the loaded model: the (S, S, T) results (a few copies) and one batch's
-    working set.  Moments: BATCH releases × T × (6 + 8 k) float64 (means, covariances, Owen-T temporaries over
-    k vertices); ensemble: ENSEMBLE_BATCH particles × T × (2 + S) (positions, inside flags); × 3 for copies."""
+    """Estimated peak bytes beyond the loaded model: the (S, S, T) results (a few copies) and the working set.
+    Moments: two batches alive at once (one propagated while the other is scored), each BATCH releases × T ×
+    (6 + 2 S) float64 (means, covariances, the per-site scores and their transpose), plus one scoring chunk of
+    SCORE_CHUNK release-times × S sites × (4 + 10 k) (bounds, whitened vertices and the Owen-T temporaries over
+    k vertices); ensemble: ENSEMBLE_BATCH particles × T × (2 + S) (positions, inside flags) × 3 for copies."""
     results = 4 * n_sites * n_sites * n_times * 8 + n_sites * n_times * 24
-    per = (2 + n_sites) if ensemble else (6 + 8 * max_vertices)
-    batch = min(ENSEMBLE_BATCH, per_site) if ensemble else min(BATCH, n_sites * per_site)
-    return int(results + batch * n_times * per * 8 * 3)
+    if ensemble:
+        return int(results + min(ENSEMBLE_BATCH, per_site) * n_times * (2 + n_sites) * 8 * 3)
+    batch = min(BATCH, n_sites * per_site)
+    scoring = min(SCORE_CHUNK, batch * n_times) * n_sites * (4 + 10 * max_vertices) * 8
+    return int(results + 2 * batch * n_times * (6 + 2 * n_sites) * 8 + scoring)
 
 
 def _seed_all(sites: tuple[Site, ...], per_site: int, seed: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -130,21 +137,36 @@ def _seed_all(sites: tuple[Site, ...], per_site: int, seed: int) -> tuple[np.nda
     return np.concatenate(points), np.concatenate(covs), np.repeat(np.arange(len(sites)), per_site)
 
 
+def _padded(sites: tuple[Site, ...]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Vertices (S, k, 2) of every site padded to the most vertices by repeating the last (zero-length edges carry
+    no mass), the orientation (S,) (sign of the signed area) and the bounding-box size (S,) m."""
+    k = max(len(s.polygon_m) for s in sites)
+    verts = np.stack([np.concatenate([s.polygon_m, np.repeat(s.polygon_m[-1:], k - len(s.polygon_m), 0)])
+                      for s in sites])
+    return (verts, np.array([np.sign(signed_area(s.polygon_m)) for s in sites]),
+            np.array([np.ptp(s.polygon_m, axis=0).max() for s in sites]))
+
+
 def _score_batch(means: np.ndarray, covs: np.ndarray, sites: tuple[Site, ...]) -> np.ndarray:
     """Probabilities (B, S, T) of releases (B, T) being inside each site.
 
-    Only (release, time) pairs whose mean lies within CULL_SD standard deviations of the site's bounding box on
-    both axes are scored exactly; for the others P(inside) ≤ P(|x_a − m_a| > CULL_SD σ_a) = 2 Φ(−CULL_SD) ≈ 2·10⁻¹⁹
-    on an axis a where the box is that far, below spread.ROUNDING_FLOOR, i.e. the value probability_inside
-    returns (0).  Far sites are most pairs of a many-site run, and the exact polygon mass is its dominant cost."""
-    m, sd = means[..., :2], np.sqrt(np.maximum(np.diagonal(covs[..., :2, :2], axis1=-2, axis2=-1), 0.0))
-    out = np.zeros((means.shape[0], len(sites)) + means.shape[1:-1])
-    for j, site in enumerate(sites):
-        gap = np.maximum(site.polygon_m.min(0) - m, m - site.polygon_m.max(0))        # > 0: outside on that axis
-        near = np.all(gap <= CULL_SD * sd, axis=-1)
-        if near.any():
-            out[:, j][near] = probability_inside(m[near], covs[near][..., :2, :2], site.polygon_m)
-    return out
+    Only (release, time, site) triples whose mean lies within CULL_SD standard deviations of the site's bounding
+    box on both axes are scored exactly (spread.polygon_mass, all sites in one pass); for the others
+    P(inside) ≤ P(|x_a − m_a| > CULL_SD σ_a) = 2 Φ(−CULL_SD) ≈ 2·10⁻¹⁹ on an axis a where the box is that far,
+    below spread.ROUNDING_FLOOR, i.e. the value probability_inside returns (0)."""
+    verts, orientation, size = _padded(sites)
+    lo, hi = verts.min(1), verts.max(1)
+    m, p = means[..., :2].reshape(-1, 2), covs[..., :2, :2].reshape(-1, 2, 2)
+    sd = np.sqrt(np.maximum(np.diagonal(p, axis1=-2, axis2=-1), 0.0))
+    out = np.zeros((len(m), len(sites)))
+    for c in range(0, len(m), SCORE_CHUNK):                 # bounds the (rows, S, k) temporaries
+        rows = slice(c, c + SCORE_CHUNK)
+        gap = np.maximum(lo - m[rows, None, :], m[rows, None, :] - hi)          # (n, S, 2); > 0: outside on that axis
+        near = np.all(gap <= CULL_SD * sd[rows, None, :], axis=-1)                # (n, S)
+        for j in np.flatnonzero(near.any(0)):
+            r = c + np.flatnonzero(near[:, j])
+            out[r, j] = polygon_mass(m[r], p[r], verts[j], orientation[j], size[j])
+    return np.moveaxis(out.reshape(means.shape[:-1] + (len(sites),)), -1, 1)
 
 
 def _outside(support: Callable | None, means: np.ndarray, times_s: np.ndarray) -> np.ndarray | None:
@@ -157,6 +179,17 @@ def _outside(support: Callable | None, means: np.ndarray, times_s: np.ndarray) -
     ratio = np.concatenate([np.asarray(support(flat[i:i + SUPPORT_CHUNK], when[i:i + SUPPORT_CHUNK]))
                             for i in range(0, len(flat), SUPPORT_CHUNK)])
     return (ratio.reshape(means.shape[:-1]) > SUPPORT_VARIANCE_FRACTION).astype(np.float64)
+
+
+def _cores() -> int:
+    """CPU cores this process may use (scoring threads)."""
+    return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
+
+
+def _scored(means: np.ndarray, covs: np.ndarray, sites: tuple[Site, ...], support: Callable | None,
+            times_s: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
+    """(probabilities inside each site (B, S, T), means (B, T, d), outside-support flags (B, T) or None) of a batch."""
+    return _score_batch(means, covs, sites), means, _outside(support, means, times_s)
 
 
 def connect(sde: Any, sites: tuple[Site, ...], times_s: Any, *, per_site: int = 64, method: Any = None,
@@ -178,21 +211,38 @@ def connect(sde: Any, sites: tuple[Site, ...], times_s: Any, *, per_site: int = 
     outside = np.zeros((n_sites, n_times)) if support is not None else None
     centroid = np.zeros((n_sites, n_times, 2))
     tally = FallbackTally()
-    for lo in range(0, len(points), batch):
-        sl = slice(lo, lo + batch)
-        means, covs = propagate_with_fallback(sde, fallback_sde, points[sl], covs0[sl], times, method=method,
-                                              integrator=integrator or default_rk4, chunk=min(batch, 256),
-                                              start_times_s=start_time_s, tally=tally)
-        if not (np.all(np.isfinite(means)) and np.all(np.isfinite(covs))):
-            raise InputError("the connectivity forecast produced non-finite numbers (the integration diverged); "
-                             "use a smaller --step")
-        np.add.at(total, source[sl], _score_batch(means, covs, sites))
+
+    def add(sl: slice, parts: list[Any]) -> None:
+        inside, means, flags = (None if p[0] is None else np.concatenate(p) for p in zip(*(f.result() for f in parts)))
+        np.add.at(total, source[sl], inside)
         np.add.at(centroid, source[sl], means[..., :2])
-        flags = _outside(support, means, start_time_s + times)
         if flags is not None:
             np.add.at(outside, source[sl], flags)
         if progress is not None:
             progress(len(means))
+
+    workers = _cores()
+    overlap = jax.local_device_count() < workers     # a core left over: score batch k while k + 1 propagates
+    with ThreadPoolExecutor(max_workers=workers) as scorer:
+        pending: tuple[slice, list[Any]] | None = None
+        for lo in range(0, len(points), batch):
+            sl = slice(lo, lo + batch)
+            means, covs = propagate_with_fallback(sde, fallback_sde, points[sl], covs0[sl], times, method=method,
+                                                  integrator=integrator or default_rk4, chunk=min(batch, 256),
+                                                  start_times_s=start_time_s, tally=tally)
+            if not (np.all(np.isfinite(means)) and np.all(np.isfinite(covs))):
+                raise InputError("the connectivity forecast produced non-finite numbers (the integration diverged); "
+                                 "use a smaller --step")
+            if pending is not None:
+                add(*pending)
+            rows = np.array_split(np.arange(len(means)), workers)
+            pending = (sl, [scorer.submit(_scored, means[r], covs[r], sites, support, start_time_s + times)
+                            for r in rows if len(r)])
+            if not overlap:
+                add(*pending)
+                pending = None
+        if pending is not None:
+            add(*pending)
     tally.warn()
     prob = np.clip(total / per_site, 0.0, 1.0)
     return Connectivity(tuple(sites), times, prob, first_passage_s(times, prob, threshold), float(threshold),
@@ -273,7 +323,7 @@ def connect_from_field(field: Any, sites: tuple[Site, ...], times_s: Any, *, met
     corners = np.concatenate([s.polygon_m for s in sites])
     table_sde = field_or_table_sde(field, sde, corners, len(sites) * per_site, check_times(times_s), integrator,
                                    posterior, [start_time_s])
-    common = dict(seed=seed, threshold=threshold, support=field.local_variance_ratio, progress=progress,
+    common = dict(seed=seed, threshold=threshold, support=_support(field, table_sde, corners), progress=progress,
                   start_time_s=float(start_time_s))
     if integrator is None:
         result = connect_ensemble(sde, sites, times_s, particles=obj.particles, step_s=obj.step_s, **common)
@@ -282,6 +332,14 @@ def connect_from_field(field: Any, sites: tuple[Site, ...], times_s: Any, *, met
                          integrator=integrator, fallback_sde=None if table_sde is None else sde, **common)
     origin = (getattr(field, "data_summary", None) or {}).get("time_origin_utc")
     return _with_context(result, field.frame, origin, start_time_s)
+
+
+def _support(field: Any, table_sde: Any, corners: np.ndarray) -> Callable:
+    """The field's variance ratio, tabulated over the posterior table's region when there is one (supporttable:
+    the exact ratio costs about as much as a release-step on the exact posterior)."""
+    table = None if table_sde is None else support_table(
+        field, *table_region(corners, (getattr(field, "data_summary", None) or {}).get("extent_m")))
+    return field.local_variance_ratio if table is None else table
 
 
 def _with_context(result: Connectivity, frame: Any, origin: str | None, start_time_s: float) -> Connectivity:

@@ -443,18 +443,26 @@ def probability_inside(mean: Any, cov: Any, polygon: Any) -> np.ndarray:
     """
     poly = check_polygon(polygon)
     m, p = _horizontal(mean, cov)
-    eps = (1e-9 * np.ptp(poly, axis=0).max()) ** 2
-    a, b, d = p[..., 0, 0] + eps, 0.5 * (p[..., 0, 1] + p[..., 1, 0]), p[..., 1, 1] + eps
+    return polygon_mass(m, p, poly, np.sign(signed_area(poly)), np.ptp(poly, axis=0).max())
+
+
+def polygon_mass(mean: np.ndarray, cov: np.ndarray, vertices: np.ndarray, orientation: Any, size_m: Any) -> np.ndarray:
+    """:func:`probability_inside` of checked polygons: horizontal ``mean (..., 2)``, ``cov (..., 2, 2)`` against
+    ``vertices (..., k, 2)`` (broadcast; a polygon padded by repeating a vertex adds zero-length edges, which
+    carry no mass), ``orientation (...)`` the sign of each polygon's signed area and ``size_m (...)`` its largest
+    side of the bounding box (sets the regularisation of a singular covariance).  Shape: the broadcast (...)."""
+    eps = (1e-9 * np.asarray(size_m, np.float64)) ** 2
+    a, b, d = cov[..., 0, 0] + eps, 0.5 * (cov[..., 0, 1] + cov[..., 1, 0]), cov[..., 1, 1] + eps
     if np.any(a * d - b * b < -1e-9 * np.maximum(a * d, eps * eps)) or np.any(a <= 0) or np.any(d <= 0):
         raise InputError("probability_inside: cov is not positive semi-definite")
     l11 = np.sqrt(a)
     l21 = b / l11
     l22 = np.sqrt(np.maximum(d - l21**2, eps))
-    rel = poly - m[..., None, :]                                  # (..., k, 2)
+    rel = vertices - mean[..., None, :]                               # (..., k, 2)
     w0 = rel[..., 0] / l11[..., None]
     w1 = (rel[..., 1] - l21[..., None] * w0) / l22[..., None]
     w = np.stack([w0, w1], -1)
-    total = np.sum(_edge_mass(w, np.roll(w, -1, axis=-2)), -1) * np.sign(signed_area(poly))
+    total = np.sum(_edge_mass(w, np.roll(w, -1, axis=-2)), -1) * orientation
     return np.where(total < ROUNDING_FLOOR, 0.0, np.minimum(total, 1.0))
 
 

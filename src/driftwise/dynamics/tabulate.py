@@ -479,6 +479,24 @@ class FallbackTally:
                           "the exact posterior", stacklevel=stacklevel)
 
 
+def bucket_rows(n: int, chunk: int) -> int:
+    """Rows a batch of ``n`` releases is padded to, so that batches of many sizes share a few compiled programs: the
+    next power of two up to ``chunk``, beyond it the next multiple of ``chunk`` (at most chunk − 1 padded rows)."""
+    return 1 << max(0, int(n) - 1).bit_length() if n <= chunk else -(-int(n) // chunk) * chunk
+
+
+def _propagate_bucketed(sde: SDE, means0: np.ndarray, covs0: np.ndarray, starts: np.ndarray | None, *, times_s: Any,
+                        method: Any, integrator: Any, chunk: int) -> tuple[np.ndarray, np.ndarray]:
+    """propagate_batch of the releases padded (repeating the last) to :func:`bucket_rows` rows, the padding dropped:
+    a partial last batch or the few releases that left a table do not each compile a program of their own."""
+    n = len(means0)
+    extra = bucket_rows(n, chunk) - n
+    pad = (lambda a: a if a is None or not extra else np.concatenate([a, np.repeat(a[-1:], extra, 0)]))  # noqa: E731
+    out = propagate_batch(sde, pad(means0), pad(covs0), times_s, method=method, integrator=integrator, chunk=chunk,
+                          start_times_s=pad(starts))
+    return tuple(np.array(a[:n]) for a in out)
+
+
 def propagate_with_fallback(sde: SDE, fallback: SDE | None, means0: Any, covs0: Any, times_s: Any, *, method: Any,
                             integrator: Any, chunk: int = 256, start_times_s: Any = None,
                             tally: FallbackTally | None = None) -> tuple[np.ndarray, np.ndarray]:
@@ -488,8 +506,8 @@ def propagate_with_fallback(sde: SDE, fallback: SDE | None, means0: Any, covs0: 
     many, or counted in ``tally`` (the caller warns once) when one is given."""
     means0, covs0 = np.asarray(means0, np.float64), np.asarray(covs0, np.float64)
     starts = None if start_times_s is None else np.broadcast_to(np.asarray(start_times_s, np.float64), means0.shape[:1])
-    means, covs = (np.array(a) for a in propagate_batch(sde, means0, covs0, times_s, method=method,
-                                                         integrator=integrator, chunk=chunk, start_times_s=starts))
+    run = partial(_propagate_bucketed, times_s=times_s, method=method, integrator=integrator, chunk=chunk)
+    means, covs = run(sde, means0, covs0, starts)
     if fallback is None:
         return means, covs
     left = ~(np.isfinite(means).reshape(len(means), -1).all(1) & np.isfinite(covs).reshape(len(covs), -1).all(1))
@@ -498,7 +516,5 @@ def propagate_with_fallback(sde: SDE, fallback: SDE | None, means0: Any, covs0: 
     if tally is None:
         count.warn(stacklevel=4)
     if left.any():
-        m, c = propagate_batch(fallback, means0[left], covs0[left], times_s, method=method, integrator=integrator,
-                               chunk=chunk, start_times_s=None if starts is None else starts[left])
-        means[left], covs[left] = np.asarray(m), np.asarray(c)
+        means[left], covs[left] = run(fallback, means0[left], covs0[left], None if starts is None else starts[left])
     return means, covs
