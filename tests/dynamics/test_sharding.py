@@ -97,3 +97,20 @@ def test_rows_are_padded_and_gathered_back():
     sharded, n = devices.shard_rows(rows, over)
     assert n == 7 and sharded.shape[0] % over.size == 0
     np.testing.assert_array_equal(devices.gather_rows(sharded, n), rows)   # exact: a copy, no arithmetic
+
+
+@pytest.mark.slow
+def test_a_time_varying_field_on_two_cpu_devices_matches_one_device(tmp_path):
+    """Regression for moments.SHARDED_CPU_CHUNK: without the cap, 2 forced host devices gave 24 of these 512
+    releases wrong moments (relative error up to 0.66, run to run different); with it, one device's numbers."""
+    worker = TESTS / "tidal_shard_worker.py"
+    runs = {}
+    for count in (1, 2):
+        env = worker_env(XLA_FLAGS=f"--xla_force_host_platform_device_count={count}")
+        subprocess.run([sys.executable, str(worker), str(tmp_path / f"tidal{count}.npz")], env=env, check=True,
+                       capture_output=True, timeout=900)
+        runs[count] = np.load(tmp_path / f"tidal{count}.npz")
+    assert [int(runs[c]["devices"]) for c in (1, 2)] == [1, 2]
+    for name in ("means", "covs"):
+        one, two = np.asarray(runs[1][name]), np.asarray(runs[2][name])
+        assert np.all(np.isfinite(one)) and np.max(np.abs(two - one)) <= RTOL * np.max(np.abs(one))

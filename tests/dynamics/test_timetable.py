@@ -40,10 +40,10 @@ LO, HI = np.array([-2000.0, -2000.0]), np.array([12_000.0, 12_000.0])
 SPAN_S = 2 * 86400.0
 
 
-def tidal_field(slow: bool = False) -> fieldmod.FlowField:
-    """A Helmholtz field with M2 and K1 parts (and optionally a slow part) on 4 × 4 inducing points over 10 km,
-    q optimal for 300 noisy velocities over 3 days with a tidal signal (seed 0)."""
-    grid = np.linspace(0.0, 10_000.0, 4)
+def tidal_field(slow: bool = False, n_side: int = 4) -> fieldmod.FlowField:
+    """A Helmholtz field with M2 and K1 parts (and optionally a slow part) on n_side × n_side inducing points over
+    10 km, q optimal for 300 noisy velocities over 3 days with a tidal signal (seed 0)."""
+    grid = np.linspace(0.0, 10_000.0, n_side)
     z = np.stack(np.meshgrid(grid, grid), -1).reshape(-1, 2)
     extra = {"slow": True, "slow_inducing_m": z[:4], "slow_inducing_time_s": np.array([0.0, 3e4, 6e4, 9e4]),
              "slow_time_scale_s": 86400.0, "slow_velocity_scale_m_s": 0.05} if slow else {}

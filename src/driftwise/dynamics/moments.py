@@ -396,6 +396,13 @@ def _propagate_rows(dynamic, static, method, integrator, chunk, means0, covs0, t
     return jax.lax.map(one, (means0, covs0, start_times_s), batch_size=min(chunk, means0.shape[0]))
 
 
+# Rows vmapped at once on each of several CPU devices.  With 2 forced host devices (jaxlib 0.10.2), cubature through
+# the exact posterior of a time-varying field (M = 64 or more) gave wrong moments, different from run to run, in some
+# rows of every vmapped batch of 192 rows or more (24 of 512 releases, negative variances among them; one device, or
+# the same rows in batches of 128, 64 or 32, agree with one device to 4e-15: tests/dynamics/test_sharding.py).
+SHARDED_CPU_CHUNK = 128
+
+
 @partial(jax.jit, static_argnames=("static", "method", "chunk", "mesh"))
 def propagate_batch_jit(dynamic, static, method, integrator, chunk, means0, covs0, times_s, mesh=None,
                         start_times_s=None):
@@ -520,6 +527,8 @@ def propagate_batch(
     (means, n), (covs, _) = devices.shard_rows(means, over), devices.shard_rows(covs, over)
     starts = None if starts is None else devices.shard_rows(starts, over)[0]
     dynamic, integrator, times = devices.replicate((dynamic, integrator, times), over)
+    if over.devices.size > 1 and over.devices.flat[0].platform == "cpu":
+        chunk = min(chunk, SHARDED_CPU_CHUNK)
     out = propagate_batch_jit(dynamic, static, method, integrator, min(chunk, n), means, covs, times, mesh=over,
                               start_times_s=starts)
     return tuple(jnp.asarray(devices.gather_rows(a, n)) for a in out)
