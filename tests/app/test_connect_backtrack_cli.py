@@ -158,3 +158,23 @@ def test_bad_input_and_memory_refusal_exit_2(models, run_cli, write_file, argv, 
              "bad_sites": write_file("b.csv", "name,x,y\na,0,0\n"), "t0": T0_S}
     code, out, err = run_cli(*[a.format(**{k: str(v) for k, v in paths.items()}) for a in argv])
     assert code == 2 and message in err and "Traceback" not in err and out == ""
+
+
+def test_connect_and_backtrack_run_on_one_cpu_device_per_core():
+    """Run as the program, connect and backtrack add one forced host device per usable core to XLA_FLAGS (the
+    count os.sched_getaffinity gives), keeping the other flags and never overriding a count the user set."""
+    import os
+
+    from driftwise.app import cli
+
+    assert cli.SHARDED_COMMANDS == ("connect", "backtrack")
+    cores = len(os.sched_getaffinity(0))
+    env = {"XLA_FLAGS": "--xla_cpu_experimental_ynn_fusion_type="}
+    cli.one_device_per_core(env)
+    assert env["XLA_FLAGS"] == f"--xla_cpu_experimental_ynn_fusion_type= --xla_force_host_platform_device_count={cores}"
+    mine = {"XLA_FLAGS": "--xla_force_host_platform_device_count=3"}
+    cli.one_device_per_core(mine)
+    assert mine["XLA_FLAGS"] == "--xla_force_host_platform_device_count=3"
+    empty: dict = {}
+    cli.one_device_per_core(empty)
+    assert empty["XLA_FLAGS"] == f"--xla_force_host_platform_device_count={cores}"

@@ -34,7 +34,7 @@ from scipy.special import logsumexp
 from ..errors import InputError
 from .connectivity import field_transport
 from .methods import make_method, method_name
-from .tabulate import FallbackTally, field_or_table_sde, propagate_with_fallback
+from .tabulate import FallbackTally, field_or_table_sde, propagate_with_fallback, table_fallbacks
 
 __all__ = ["Finds", "BacktrackMap", "backtrack", "candidate_grid", "hpd_levels", "backtrack_memory_bytes",
            "backtrack_from_field", "forward_moments", "posterior_map", "needed_ages"]
@@ -261,9 +261,11 @@ def backtrack_from_field(field: Any, finds: Finds, region_m: Any, spacing_m: flo
     rk4 = make_method(method, step_s=step_s)[1]
     times = np.atleast_1d(np.asarray(release_times_s, np.float64))
     per_time = len(times) if getattr(field, "is_time_varying", False) else 1     # propagations per candidate point
-    table_sde = field_or_table_sde(field, sde, [[x0, y0], [x1, y1]], len(x) * len(y) * per_time,
-                                   needed_ages(finds, release_times_s), rk4, posterior, start_times_s=times)
+    corners, ages = [[x0, y0], [x1, y1]], needed_ages(finds, release_times_s)
+    table_sde = field_or_table_sde(field, sde, corners, len(x) * len(y) * per_time, ages, rk4, posterior,
+                                   start_times_s=times)
     result = backtrack(sde if table_sde is None else table_sde, finds, x, y, release_times_s, method=method,
-                       step_s=step_s, progress=progress, fallback_sde=None if table_sde is None else sde)
+                       step_s=step_s, progress=progress,
+                       fallback_sde=table_fallbacks(field, sde, table_sde, corners, ages, times))
     origin = (getattr(field, "data_summary", None) or {}).get("time_origin_utc")
     return dataclasses.replace(result, frame=field.frame, time_origin_utc=origin)

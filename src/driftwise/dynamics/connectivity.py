@@ -46,7 +46,7 @@ from .sites import Site, cell_covariance_m2, inside_polygon, seed_site
 from .spread import check_times, polygon_mass, signed_area
 from .supportcheck import SUPPORT_VARIANCE_FRACTION
 from .supporttable import support_table
-from .tabulate import FallbackTally, field_or_table_sde, propagate_with_fallback, table_region
+from .tabulate import FallbackTally, field_or_table_sde, propagate_with_fallback, table_fallbacks, table_region
 
 __all__ = ["Connectivity", "connect", "connect_ensemble", "connect_from_field", "field_transport",
            "first_passage_s", "connect_memory_bytes"]
@@ -329,7 +329,9 @@ def connect_from_field(field: Any, sites: tuple[Site, ...], times_s: Any, *, met
         result = connect_ensemble(sde, sites, times_s, particles=obj.particles, step_s=obj.step_s, **common)
     else:
         result = connect(sde if table_sde is None else table_sde, sites, times_s, per_site=per_site, method=obj,
-                         integrator=integrator, fallback_sde=None if table_sde is None else sde, **common)
+                         integrator=integrator, fallback_sde=table_fallbacks(field, sde, table_sde, corners,
+                                                                             check_times(times_s), [start_time_s]),
+                         **common)
     origin = (getattr(field, "data_summary", None) or {}).get("time_origin_utc")
     return _with_context(result, field.frame, origin, start_time_s)
 

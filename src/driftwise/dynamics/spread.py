@@ -65,7 +65,7 @@ from .supportcheck import (  # noqa: F401
     warn_left_support,
     warn_unsupported_releases,
 )
-from .tabulate import field_or_table_sde, propagate_with_fallback
+from .tabulate import field_or_table_sde, propagate_with_fallback, table_fallbacks
 
 LEVELS = (0.5, 0.9, 0.95)
 ROUNDING_FLOOR = 1e-14   # polygon probabilities below this are rounding residue (see module doc)
@@ -311,14 +311,15 @@ def spread_from_field(field: Any, releases: Any, times_s: Any, *, method: str = 
     starts = [r.start_time_s for r in rels]
     warn_beyond_time_span(field, min(starts), max(starts) + float(np.max(times_s)))
     sde = sde_from_field(field, diffusivity_m2_s=diffusivity_m2_s, decorrelation_time_s=decorrelation_time_s)
-    table_sde = field_or_table_sde(field, sde, np.stack([r.start_m for r in rels]), len(rels), check_times(times_s),
-                                   None if isinstance(obj, EulerMaruyama) else integrator, posterior,
-                                   [r.start_time_s for r in rels])
+    starts_m, start_times = np.stack([r.start_m for r in rels]), [r.start_time_s for r in rels]
+    table_sde = field_or_table_sde(field, sde, starts_m, len(rels), check_times(times_s),
+                                   None if isinstance(obj, EulerMaruyama) else integrator, posterior, start_times)
     summary = getattr(field, "data_summary", None) or {}
     out = spread_releases(sde if table_sde is None else table_sde, rels, times_s, method=obj, integrator=integrator,
                           key=jax.random.key(int(seed)), frame=getattr(field, "frame", None), polygon_m=polygon_m,
                           threshold=threshold, time_origin_utc=summary.get("time_origin_utc"),
-                          fallback_sde=None if table_sde is None else sde)
+                          fallback_sde=table_fallbacks(field, sde, table_sde, starts_m, check_times(times_s),
+                                                       start_times))
     support = path_support(field, out.means, np.array([r.start_time_s for r in rels])[:, None] + out.times_s[None, :]
                            if sde.with_time else None)
     warn_left_support([r.name for r in rels], out.times_s, support)
@@ -415,24 +416,24 @@ def signed_area(polygon: np.ndarray) -> float:
     return 0.5 * float(np.sum(x * np.roll(y, -1) - np.roll(x, -1) * y))
 
 
-def _edge_mass(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """Signed standard-normal mass of triangles (0, a, b); a, b (..., 2) whitened vertices.
+def _edge_mass(ax: np.ndarray, ay: np.ndarray, bx: np.ndarray, by: np.ndarray) -> np.ndarray:
+    """Signed standard-normal mass of triangles (0, a, b); a = (ax, ay), b = (bx, by) whitened vertices (...).
 
-    sign(a × b)·(G(s_b) − G(s_a)), G(s) = atan(s/h)/2π − T(h, s/h) (Owen 1956; see module doc).
+    sign(a × b)·(G(s_b) − G(s_a)), G(s) = atan(s/h)/2π − T(h, s/h) (Owen 1956; see module doc).  The two
+    arctangents are taken as one, atan(s_b/h) − atan(s_a/h) = atan2(h (s_b − s_a), h² + s_a s_b) (the tangent
+    subtraction formula; both angles lie in (−π/2, π/2), so their difference in (−π, π) and the cosine of it has
+    the sign of h² + s_a s_b).
     """
-    d = b - a
-    length = np.hypot(d[..., 0], d[..., 1])
-    cross = a[..., 0] * d[..., 1] - a[..., 1] * d[..., 0]
+    dx, dy = bx - ax, by - ay
+    length = np.hypot(dx, dy)
+    cross = ax * dy - ay * dx
     ok = (length > 0) & (cross != 0)
     length = np.where(ok, length, 1.0)
     h = np.where(ok, np.abs(cross) / length, 1.0)
-    s_a = np.sum(a * d, -1) / length
-    s_b = np.sum(b * d, -1) / length
-
-    def g(s: np.ndarray) -> np.ndarray:
-        return np.arctan2(s, h) / (2.0 * np.pi) - owens_t(h, s / h)
-
-    return np.where(ok, np.sign(cross) * (g(s_b) - g(s_a)), 0.0)
+    s_a = (ax * dx + ay * dy) / length
+    s_b = (bx * dx + by * dy) / length
+    angle = np.arctan2(h * (s_b - s_a), h * h + s_a * s_b) / (2.0 * np.pi)
+    return np.where(ok, np.sign(cross) * (angle - owens_t(h, s_b / h) + owens_t(h, s_a / h)), 0.0)
 
 
 def probability_inside(mean: Any, cov: Any, polygon: Any) -> np.ndarray:
@@ -458,11 +459,9 @@ def polygon_mass(mean: np.ndarray, cov: np.ndarray, vertices: np.ndarray, orient
     l11 = np.sqrt(a)
     l21 = b / l11
     l22 = np.sqrt(np.maximum(d - l21**2, eps))
-    rel = vertices - mean[..., None, :]                               # (..., k, 2)
-    w0 = rel[..., 0] / l11[..., None]
-    w1 = (rel[..., 1] - l21[..., None] * w0) / l22[..., None]
-    w = np.stack([w0, w1], -1)
-    total = np.sum(_edge_mass(w, np.roll(w, -1, axis=-2)), -1) * orientation
+    w0 = (vertices[..., 0] - mean[..., 0, None]) / l11[..., None]                       # (..., k) whitened
+    w1 = (vertices[..., 1] - mean[..., 1, None] - l21[..., None] * w0) / l22[..., None]
+    total = np.sum(_edge_mass(w0, w1, np.roll(w0, -1, axis=-1), np.roll(w1, -1, axis=-1)), -1) * orientation
     return np.where(total < ROUNDING_FLOOR, 0.0, np.minimum(total, 1.0))
 
 

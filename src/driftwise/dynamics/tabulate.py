@@ -390,6 +390,8 @@ def tabulate_timed_field(field: Any, region_min_m: Any, region_max_m: Any, time_
 TABLE_TOLERANCE = 0.05          # mean error (posterior s.d.) and relative covariance error of an automatic table
 TABLE_RELEASE_STEPS = 20_000    # releases × RK4 steps from which a spread tabulates: ≈ 1.5 × the measured break-even
                                 # (table build time × exact release-steps/s ≈ 1.3·10⁴, bench_tabulate.py)
+WIDER_STAGES = ((2.0, 0), (6.0, 64))  # WiderTable (widen, after): boxes 3 and 9 times the first table's (margin
+                                      # included), the second built once 64 releases left the first two
 REGION_MARGIN = 0.25            # the grid extends the releases' and data's box by this fraction of its span
 
 
@@ -475,8 +477,8 @@ class FallbackTally:
     def warn(self, what: str = "releases", stacklevel: int = 3) -> None:
         """One warning naming how many of the counted ``what`` left the table (none: silent)."""
         if self.left:
-            warnings.warn(f"{self.left} of {self.total} {what} left the tabulated region; they were forecast with "
-                          "the exact posterior", stacklevel=stacklevel)
+            warnings.warn(f"{self.left} of {self.total} {what} left the tabulated region; they were forecast again on "
+                          "a wider table or, beyond it, with the exact posterior", stacklevel=stacklevel)
 
 
 def bucket_rows(n: int, chunk: int) -> int:
@@ -497,24 +499,81 @@ def _propagate_bucketed(sde: SDE, means0: np.ndarray, covs0: np.ndarray, starts:
     return tuple(np.array(a[:n]) for a in out)
 
 
-def propagate_with_fallback(sde: SDE, fallback: SDE | None, means0: Any, covs0: Any, times_s: Any, *, method: Any,
+@dataclass(eq=False)
+class WiderTable:
+    """A fallback stage for releases that left a table: a table over ``widen`` times the first one's box (same
+    centre, same tolerance; table_region's margin then makes it 1.5 × ``widen`` times), built on first use once
+    ``after`` releases have needed it (before that they go on to the next stage); None (→ the next stage) when
+    the grid would exceed MAX_NODES.  Material that leaves the data's box in a long forecast (a bay flushing out
+    over days) is mostly still within 3 or 9 times it, and a table costs about 1/200 of the exact posterior per
+    release-step, against rerunning every such release exactly from its start."""
+
+    field: Any
+    sde: SDE
+    lo: np.ndarray
+    hi: np.ndarray
+    start_times_s: Any = None
+    span_s: float = 0.0
+    widen: float = 2.0
+    after: int = 0
+    needed: int = 0
+    built: list = _dataclass_field(default_factory=list)
+
+    def __call__(self, count: int = 1) -> SDE | None:
+        self.needed += int(count)
+        if not self.built and self.needed > self.after:
+            centre, half = 0.5 * (self.lo + self.hi), 0.5 * self.widen * (self.hi - self.lo)
+            try:
+                table = tabulated_sde(self.field, self.sde, np.stack([centre - half, centre + half]), 1, "table",
+                                      self.start_times_s, self.span_s)
+            except InputError:
+                table = None
+            self.built.append(table)
+        return self.built[0] if self.built else None
+
+
+def table_fallbacks(field: Any, sde: SDE, table_sde: SDE | None, starts_m: Any, times_s: Any,
+                    start_times_s: Any = None) -> tuple | None:
+    """The ``fallback`` of :func:`propagate_with_fallback` for a command that tabulated ``field`` with
+    :func:`field_or_table_sde` (same ``starts_m``, ``times_s``, ``start_times_s``): :class:`WiderTable` stages of
+    WIDER_STAGES (widening, releases needed before it is built), then the exact ``sde``; None when there is no
+    table."""
+    if table_sde is None:
+        return None
+    lo, hi = table_region(starts_m, (getattr(field, "data_summary", None) or {}).get("extent_m"))
+    span = float(np.max(times_s))
+    return tuple(WiderTable(field, sde, lo, hi, start_times_s, span, widen, after)
+                 for widen, after in WIDER_STAGES) + (sde,)
+
+
+def propagate_with_fallback(sde: SDE, fallback: SDE | tuple | None, means0: Any, covs0: Any, times_s: Any, *, method: Any,
                             integrator: Any, chunk: int = 256, start_times_s: Any = None,
                             tally: FallbackTally | None = None) -> tuple[np.ndarray, np.ndarray]:
     """``moments.propagate_batch`` through ``sde`` from ``start_times_s`` (R,) (or one number; s on the model's
     axis, for a time-dependent SDE); releases whose moments come out non-finite (they left a table's grid) are
-    recomputed through ``fallback`` (the exact field SDE) from their own start times, with a warning saying how
-    many, or counted in ``tally`` (the caller warns once) when one is given."""
+    recomputed from their own start times through ``fallback``: an SDE, or a tuple of stages tried in turn for the
+    releases still non-finite (an SDE, or a zero-argument callable giving one or None, e.g. :class:`WiderTable`;
+    :func:`table_fallbacks`).  A warning says how many left the first table, or they are counted in ``tally`` (the
+    caller warns once) when one is given."""
     means0, covs0 = np.asarray(means0, np.float64), np.asarray(covs0, np.float64)
     starts = None if start_times_s is None else np.broadcast_to(np.asarray(start_times_s, np.float64), means0.shape[:1])
     run = partial(_propagate_bucketed, times_s=times_s, method=method, integrator=integrator, chunk=chunk)
     means, covs = run(sde, means0, covs0, starts)
     if fallback is None:
         return means, covs
-    left = ~(np.isfinite(means).reshape(len(means), -1).all(1) & np.isfinite(covs).reshape(len(covs), -1).all(1))
+    left = ~_finite_rows(means, covs)
     count = FallbackTally() if tally is None else tally
     count(int(left.sum()), len(means0))
     if tally is None:
         count.warn(stacklevel=4)
-    if left.any():
-        means[left], covs[left] = run(fallback, means0[left], covs0[left], None if starts is None else starts[left])
+    for stage in fallback if isinstance(fallback, tuple) else (fallback,):
+        stage_sde = stage if isinstance(stage, SDE) or not left.any() else stage(int(left.sum()))
+        if stage_sde is None or not left.any():
+            continue
+        means[left], covs[left] = run(stage_sde, means0[left], covs0[left], None if starts is None else starts[left])
+        left = ~_finite_rows(means, covs)
     return means, covs
+
+
+def _finite_rows(means: np.ndarray, covs: np.ndarray) -> np.ndarray:
+    return np.isfinite(means).reshape(len(means), -1).all(1) & np.isfinite(covs).reshape(len(covs), -1).all(1)
