@@ -17,12 +17,14 @@ over [−12.5, 12.5] km² (tolerance 0.05).  A release-step is one RK4 step of o
    the machine has 2 cores): the table's release-steps/s (10⁵ × 2 h); connectivity between 20 square sites
    (1 km side, a 5 × 4 lattice over ±6 km), ``--per-site`` releases each over ``--days`` days with the command's
    defaults (RK4 1 h, daily outputs) and the data-support share (supporttable): wall time of
-   ``connectivity.connect`` (tables built before the clock starts; releases that leave the table are rerun on the
-   wider tables the commands build, tabulate.WiderTable over ±30 and ±90 km, then exactly), the process's peak resident memory
-   (resource.getrusage ru_maxrss), and the time of 10⁶ releases × 720 hourly steps extrapolated linearly in
-   releases × steps from the second of two identical runs, plus the first run's extra (compilation, paid once); back-tracking of a ``--candidates`` grid × 72 hourly candidate release times for one find
-   72 h after the first (RK4 1 h, the command's default), extrapolated linearly to 10⁵ candidates, with the
-   most probable release point's distance and the map's L1 difference against RK4 600 s (the step's own error);
+   ``connectivity.connect`` (tables built before the clock starts; releases that leave the table are rerun on
+   the wider tables the commands build, tabulate.WiderTable over ±30 and ±90 km, then exactly), the process's
+   peak resident memory (resource.getrusage ru_maxrss), and the time of 10⁶ releases × 720 hourly steps
+   extrapolated linearly in releases × steps from the second of two identical runs, plus the first run's extra
+   (compilation, paid once); back-tracking of a ``--candidates`` grid × 72 hourly candidate release times for
+   one find 72 h after the first (RK4 1 h, the command's default), extrapolated linearly to 10⁵ candidates,
+   with the most probable release point's distance and the map's L1 difference against RK4 600 s (the step's
+   own error);
 3. the Euler–Maruyama ensemble (ensemble.simulate) against diffrax (Euler on an Itô SDE with a
    ControlTerm, the same drift, the same L = psd_cholesky(D), UnsafeBrownianPath, vmapped over particles)
    on the same tabulated SDE, the same step (60 s), particle count and horizon; also the moment release
@@ -136,11 +138,11 @@ def connect_child(args) -> dict:
                   fallback_sde=(*stages, exact))
     run(per_site=26)                                                   # compile the table's batch program
     walls = []
-    for _ in range(2):       # the first run also compiles the few padded sizes of the reruns off the table
+    for _ in range(1 if args.single else 2):   # the first run also compiles the padded sizes of the reruns
         start = time.perf_counter()
         result = run(per_site=args.per_site)
         walls.append(time.perf_counter() - start)
-    cold, wall = walls
+    cold, wall = walls[0], walls[-1]
     return {"devices": jax.device_count(), "wall_s": wall, "cold_s": cold, "build_s": build_s, "wider_s": wider_s,
             "table_rate": rate,
             "backtrack": backtrack_run(args, np, exact, table_sde, (*stages, exact)),
@@ -241,6 +243,8 @@ def main() -> None:
     parser.add_argument("--quick", action="store_true")
     parser.add_argument("--connect-child", action="store_true", help=argparse.SUPPRESS)
     parser.add_argument("--devices", type=int, default=1)
+    parser.add_argument("--single", action="store_true", help="with --connect-child: one timed connectivity run "
+                        "(e.g. the full 10⁶ releases: --per-site 50000), compilation included")
     parser.add_argument("--counts", default="1,2,4", help="forced device counts of the connectivity runs")
     parser.add_argument("--per-site", type=int, default=500, help="connectivity releases per site (20 sites)")
     parser.add_argument("--days", type=int, default=30, help="connectivity horizon (daily outputs, RK4 1 h)")

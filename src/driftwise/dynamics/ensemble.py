@@ -81,9 +81,9 @@ def particle_paths(sde: SDE, x0: jax.Array, times_s: jax.Array, step_s: Any, key
     def em_step(h, state):
         x, k, age = state  # age: time since the release (s), for a diffusion that depends on it
         k, sub = jax.random.split(k)
-        chol = jax.vmap(lambda z: psd_cholesky(sde.rate(z, age, start_s + age)))(x)
-        noise = jnp.einsum("nij,nj->ni", chol, jax.random.normal(sub, x.shape))
-        return x + h * jax.vmap(lambda z: sde.drift_at(z, start_s + age))(x) + jnp.sqrt(h) * noise, k, age + h
+        drift, rate = jax.vmap(lambda z: sde.drift_and_rate(z, age, start_s + age))(x)   # one table read per point
+        noise = jnp.einsum("nij,nj->ni", jax.vmap(psd_cholesky)(rate), jax.random.normal(sub, x.shape))
+        return x + h * drift + jnp.sqrt(h) * noise, k, age + h
 
     def interval(state, span):
         n = substep_counts(span, step_s)
