@@ -137,35 +137,26 @@ def _seed_all(sites: tuple[Site, ...], per_site: int, seed: int) -> tuple[np.nda
     return np.concatenate(points), np.concatenate(covs), np.repeat(np.arange(len(sites)), per_site)
 
 
-def _padded(sites: tuple[Site, ...]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Vertices (S, k, 2) of every site padded to the most vertices by repeating the last (zero-length edges carry
-    no mass), the orientation (S,) (sign of the signed area) and the bounding-box size (S,) m."""
-    k = max(len(s.polygon_m) for s in sites)
-    verts = np.stack([np.concatenate([s.polygon_m, np.repeat(s.polygon_m[-1:], k - len(s.polygon_m), 0)])
-                      for s in sites])
-    return (verts, np.array([np.sign(signed_area(s.polygon_m)) for s in sites]),
-            np.array([np.ptp(s.polygon_m, axis=0).max() for s in sites]))
-
-
 def _score_batch(means: np.ndarray, covs: np.ndarray, sites: tuple[Site, ...]) -> np.ndarray:
     """Probabilities (B, S, T) of releases (B, T) being inside each site.
 
     Only (release, time, site) triples whose mean lies within CULL_SD standard deviations of the site's bounding
-    box on both axes are scored exactly (spread.polygon_mass, all sites in one pass); for the others
-    P(inside) ≤ P(|x_a − m_a| > CULL_SD σ_a) = 2 Φ(−CULL_SD) ≈ 2·10⁻¹⁹ on an axis a where the box is that far,
-    below spread.ROUNDING_FLOOR, i.e. the value probability_inside returns (0)."""
-    verts, orientation, size = _padded(sites)
-    lo, hi = verts.min(1), verts.max(1)
+    box on both axes are scored exactly (spread.polygon_mass, site by site over chunks of SCORE_CHUNK
+    release-times); for the others P(inside) ≤ P(|x_a − m_a| > CULL_SD σ_a) = 2 Φ(−CULL_SD) ≈ 2·10⁻¹⁹ on an axis
+    a where the box is that far, below spread.ROUNDING_FLOOR, i.e. the value probability_inside returns (0)."""
+    lo = np.stack([s.polygon_m.min(0) for s in sites])
+    hi = np.stack([s.polygon_m.max(0) for s in sites])
+    shape = [(np.sign(signed_area(s.polygon_m)), np.ptp(s.polygon_m, axis=0).max()) for s in sites]
     m, p = means[..., :2].reshape(-1, 2), covs[..., :2, :2].reshape(-1, 2, 2)
     sd = np.sqrt(np.maximum(np.diagonal(p, axis1=-2, axis2=-1), 0.0))
     out = np.zeros((len(m), len(sites)))
-    for c in range(0, len(m), SCORE_CHUNK):                 # bounds the (rows, S, k) temporaries
+    for c in range(0, len(m), SCORE_CHUNK):                 # bounds the (rows, S) temporaries
         rows = slice(c, c + SCORE_CHUNK)
         gap = np.maximum(lo - m[rows, None, :], m[rows, None, :] - hi)          # (n, S, 2); > 0: outside on that axis
         near = np.all(gap <= CULL_SD * sd[rows, None, :], axis=-1)                # (n, S)
         for j in np.flatnonzero(near.any(0)):
             r = c + np.flatnonzero(near[:, j])
-            out[r, j] = polygon_mass(m[r], p[r], verts[j], orientation[j], size[j])
+            out[r, j] = polygon_mass(m[r], p[r], sites[j].polygon_m, *shape[j])
     return np.moveaxis(out.reshape(means.shape[:-1] + (len(sites),)), -1, 1)
 
 

@@ -567,11 +567,13 @@ def propagate_with_fallback(sde: SDE, fallback: SDE | tuple | None, means0: Any,
     if tally is None:
         count.warn(stacklevel=4)
     for stage in fallback if isinstance(fallback, tuple) else (fallback,):
-        stage_sde = stage if isinstance(stage, SDE) or not left.any() else stage(int(left.sum()))
-        if stage_sde is None or not left.any():
-            continue
-        means[left], covs[left] = run(stage_sde, means0[left], covs0[left], None if starts is None else starts[left])
-        left = ~_finite_rows(means, covs)
+        if not left.any():
+            break
+        stage_sde = stage if isinstance(stage, SDE) else stage(int(left.sum()))
+        if stage_sde is not None:
+            means[left], covs[left] = run(stage_sde, means0[left], covs0[left],
+                                          None if starts is None else starts[left])
+            left = ~_finite_rows(means, covs)
     return means, covs
 
 
