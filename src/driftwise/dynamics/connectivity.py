@@ -172,6 +172,13 @@ def _outside(support: Callable | None, means: np.ndarray, times_s: np.ndarray) -
     return (ratio.reshape(means.shape[:-1]) > SUPPORT_VARIANCE_FRACTION).astype(np.float64)
 
 
+def _positive(covs: np.ndarray) -> bool:
+    """True when every horizontal covariance (..., 2, 2) is positive semi-definite (to rounding): an RK4 step too
+    long for the flow leaves the moment equations' stable region with finite but impossible covariances."""
+    a, b, d = covs[..., 0, 0], 0.5 * (covs[..., 0, 1] + covs[..., 1, 0]), covs[..., 1, 1]
+    return bool(np.all(a >= 0) and np.all(d >= 0) and np.all(a * d - b * b >= -1e-9 * np.maximum(a * d, 0.0)))
+
+
 def _cores() -> int:
     """CPU cores this process may use (scoring threads)."""
     return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
@@ -221,9 +228,9 @@ def connect(sde: Any, sites: tuple[Site, ...], times_s: Any, *, per_site: int = 
             means, covs = propagate_with_fallback(sde, fallback_sde, points[sl], covs0[sl], times, method=method,
                                                   integrator=integrator or default_rk4, chunk=min(batch, 256),
                                                   start_times_s=start_time_s, tally=tally)
-            if not (np.all(np.isfinite(means)) and np.all(np.isfinite(covs))):
-                raise InputError("the connectivity forecast produced non-finite numbers (the integration diverged); "
-                                 "use a smaller --step")
+            if not (np.all(np.isfinite(means)) and np.all(np.isfinite(covs)) and _positive(covs)):
+                raise InputError("the connectivity forecast produced non-finite numbers or a covariance that is not "
+                                 "positive semi-definite (the integration diverged); use a smaller --step")
             if pending is not None:
                 add(*pending)
             rows = np.array_split(np.arange(len(means)), workers)
