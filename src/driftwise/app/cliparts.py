@@ -9,7 +9,7 @@ from typing import Any
 
 from ..errors import InputError
 from ..files import plain
-from ..units import format_duration, parse_length_m
+from ..units import format_duration, parse_duration_s, parse_length_m
 
 EXIT_OK, EXIT_INTERNAL, EXIT_BAD_INPUT = 0, 1, 2
 
@@ -55,6 +55,14 @@ def add_track_options(parser: argparse.ArgumentParser, *, position_error: bool =
         parser.add_argument("--max-gap", default=None,
                             help="split a track at gaps longer than this duration, with its unit "
                             "(e.g. 6h; default: never)")
+
+
+def check_step(text: str | None) -> float | None:
+    """``--step`` in seconds, None when not given (the command then takes the field's default); InputError unless > 0."""
+    step = parse_duration_s(text, what="--step") if text else None
+    if step is not None and not step > 0:
+        raise InputError(f"--step must be positive, got {text!r}")
+    return step
 
 
 def add_quiet_flag(parser: argparse.ArgumentParser) -> None:

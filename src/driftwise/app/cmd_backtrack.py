@@ -14,7 +14,7 @@ import numpy as np
 from ..data.utctime import iso_utc, release_time_s
 from ..data.windows import output_times_from_text
 from ..dynamics.backtrack import Finds, backtrack_from_field, backtrack_memory_bytes, candidate_grid, needed_ages
-from ..dynamics.methods import DEFAULT_METHOD, METHODS
+from ..dynamics.methods import DEFAULT_METHOD, METHODS, default_moment_step_s
 from ..dynamics.supportcheck import warn_unsupported_finds
 from ..dynamics.tabulate import posterior_choice
 from ..errors import InputError
@@ -24,10 +24,11 @@ from ..products.backtrackfiles import BACKTRACK_SUFFIXES, backtrack_to_dict, wri
 from ..products.plotconnect import plot_backtrack
 from ..products.plots import save_figure
 from ..units import format_area, format_duration, format_length, parse_duration_s, parse_length_m
-from .cliparts import EXIT_OK, add_exact_flag, add_json_flag, add_quiet_flag, print_json
+from .cliparts import EXIT_OK, add_exact_flag, add_json_flag, add_quiet_flag, check_step, print_json
 from .resources import bar, check_memory, say
 
 DEFAULT_CELLS = 4096
+DEFAULT_STEP = "1h"      # RK4 step, or a quarter of the flow's time scale when shorter (methods.default_moment_step_s)
 REGION_PAD = 0.1
 
 
@@ -58,7 +59,8 @@ def configure_backtrack(p: argparse.ArgumentParser) -> None:
                    f"{DEFAULT_CELLS} cells over the region)")
     p.add_argument("--method", choices=[n for n, s in METHODS.items() if not s.ensemble], default=DEFAULT_METHOD,
                    help=f"moment method (default {DEFAULT_METHOD})")
-    p.add_argument("--step", default="1h", help="RK4 step with its unit (default 1h)")
+    p.add_argument("--step", default=None, help=f"RK4 step with its unit (default {DEFAULT_STEP}, or a quarter of the "
+                   "flow's time scale, length scale / RMS speed, when shorter)")
     p.add_argument("--out", action="append", default=[], metavar="FILE",
                    help="write the result: .nc (CF maps), .geojson (regions; lon/lat models) or .json; repeatable")
     p.add_argument("--figures", metavar="DIR", help="write backtrack_map.png here")
@@ -137,8 +139,9 @@ def run_backtrack(args: argparse.Namespace) -> int:
     bad = [out for out in args.out if Path(out).suffix.lower() not in BACKTRACK_SUFFIXES]
     if bad:
         raise InputError(f"--out {bad[0]}: unknown format; use a name ending in {', '.join(BACKTRACK_SUFFIXES)}")
-    step = parse_duration_s(args.step, what="--step")
+    step = check_step(args.step)
     model = load_model(args.model)
+    step = default_moment_step_s(model, parse_duration_s(DEFAULT_STEP)) if step is None else step
     if any(Path(o).suffix.lower() == ".geojson" for o in args.out) and model.frame.kind != "lonlat":
         raise InputError("--out .geojson: GeoJSON holds lon/lat only, but this model was fitted in a local metric "
                          "frame; write .json or .nc instead")
@@ -157,8 +160,8 @@ def run_backtrack(args: argparse.Namespace) -> int:
     check_memory(need, f"backtrack ({n_cells} candidate points × {len(lags)} candidate times)",
                  "use a coarser --spacing, a smaller --region or fewer candidate times (--every)")
     quiet = args.quiet or args.json
-    say(f"backtrack: {n_cells} candidate points every {format_length(spacing)} × {len(lags)} candidate times; "
-        f"memory about {need / 2**20:.3g} MiB", quiet)
+    say(f"backtrack: {n_cells} candidate points every {format_length(spacing)} × {len(lags)} candidate times, "
+        f"RK4 step {format_duration(step)}; memory about {need / 2**20:.3g} MiB", quiet)
     x, y = candidate_grid(region, spacing)
     runs = len(lags) if model.is_time_varying else 1     # a time-varying field: one propagation per candidate time
     progress = bar(len(x) * len(y) * runs, quiet, "driftwise backtrack", "candidate")

@@ -11,7 +11,7 @@ import numpy as np
 from ..data.utctime import iso_utc, release_time_s
 from ..data.windows import output_times_from_text
 from ..dynamics.connectivity import DEFAULT_THRESHOLD, connect_from_field, connect_memory_bytes
-from ..dynamics.methods import DEFAULT_METHOD, METHODS
+from ..dynamics.methods import DEFAULT_METHOD, METHODS, default_step_s
 from ..dynamics.sites import read_sites
 from ..dynamics.tabulate import posterior_choice
 from ..errors import InputError
@@ -21,7 +21,7 @@ from ..products.connectfiles import CONNECT_SUFFIXES, connect_to_dict, write_con
 from ..products.plotconnect import plot_connect_map, plot_connect_matrix
 from ..products.plots import save_figure
 from ..units import format_duration, parse_duration_s
-from .cliparts import EXIT_OK, add_exact_flag, add_json_flag, add_quiet_flag, print_json
+from .cliparts import EXIT_OK, add_exact_flag, check_step, add_json_flag, add_quiet_flag, print_json
 from .resources import bar, check_memory, say
 
 DEFAULT_MOMENT_STEP = "1h"
@@ -50,7 +50,8 @@ def configure_connect(p: argparse.ArgumentParser) -> None:
                    help=f"moment method, or ensemble for the Monte Carlo cross-check (default {DEFAULT_METHOD})")
     p.add_argument("--particles", type=int, default=10_000, help="ensemble particles per site (default 10000)")
     p.add_argument("--step", default=None, help=f"integration step with its unit (default {DEFAULT_MOMENT_STEP} for "
-                   f"moments, {DEFAULT_ENSEMBLE_STEP} for the ensemble)")
+                   f"moments, {DEFAULT_ENSEMBLE_STEP} for the ensemble, or a quarter (ensemble: a 20th) of the "
+                   "flow's time scale, length scale / RMS speed, when shorter)")
     p.add_argument("--threshold", type=float, default=DEFAULT_THRESHOLD,
                    help=f"probability whose first reaching is reported (default {DEFAULT_THRESHOLD})")
     p.add_argument("--seed", type=int, default=0, help="seed of the release points and the ensemble (default 0)")
@@ -79,17 +80,16 @@ def _check(args: argparse.Namespace) -> float:
     bad = [out for out in args.out if Path(out).suffix.lower() not in CONNECT_SUFFIXES]
     if bad:
         raise InputError(f"--out {bad[0]}: unknown format; use a name ending in {', '.join(CONNECT_SUFFIXES)}")
-    ensemble = METHODS[args.method].ensemble
-    step = parse_duration_s(args.step or (DEFAULT_ENSEMBLE_STEP if ensemble else DEFAULT_MOMENT_STEP), what="--step")
-    if not step > 0:
-        raise InputError(f"--step must be positive, got {args.step!r}")
-    return step
+    return check_step(args.step)
 
 
 def run_connect(args: argparse.Namespace) -> int:
     step = _check(args)
     times = _times(args)
     model = load_model(args.model)
+    if step is None:
+        step = default_step_s(model, args.method, longest_moment_s=parse_duration_s(DEFAULT_MOMENT_STEP),
+                              longest_ensemble_s=parse_duration_s(DEFAULT_ENSEMBLE_STEP))
     sites = read_sites(args.sites, frame=model.frame)
     ensemble = METHODS[args.method].ensemble
     per_site = args.particles if ensemble else args.per_site

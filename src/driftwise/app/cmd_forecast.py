@@ -39,7 +39,7 @@ from ..units import (
     parse_durations_s,
     parse_length_m,
 )
-from .cliparts import EXIT_OK, add_exact_flag, add_json_flag, add_quiet_flag, add_track_options, print_json
+from .cliparts import EXIT_OK, add_exact_flag, add_json_flag, add_quiet_flag, add_track_options, check_step, print_json
 
 # ---------------------------------------------------------------- spread
 
@@ -74,8 +74,8 @@ def configure_spread(p: argparse.ArgumentParser) -> None:
     p.add_argument("--particles", type=int, default=DEFAULT_PARTICLES,
                    help=f"ensemble particles (default {DEFAULT_PARTICLES}; the Monte Carlo error is reported)")
     p.add_argument("--step", default=None,
-                   help="integration step with its unit (default 10min for moments; for the ensemble 5min, or a "
-                   "20th of the flow's time scale, length scale / RMS speed, when shorter)")
+                   help="integration step with its unit (default 10min for moments, 5min for the ensemble, or a "
+                   "quarter (ensemble: a 20th) of the flow's time scale, length scale / RMS speed, when shorter)")
     p.add_argument("--diffusivity", default=None,
                    help="eddy diffusivity K, e.g. 5m2/s (bare number: m²/s; default: the model's)")
     p.add_argument("--decorrelation-time", default=None,
@@ -134,9 +134,7 @@ def _spread_options(args: argparse.Namespace, frame) -> dict[str, Any]:
         raise InputError(f"--particles must be at least 2, got {args.particles}")
     if not 0.0 < args.threshold <= 1.0:
         raise InputError(f"--threshold must be a probability in (0, 1], got {args.threshold}")
-    step = parse_duration_s(args.step, what="--step") if args.step else None
-    if step is not None and not step > 0:
-        raise InputError(f"--step must be positive, got {args.step!r}")
+    step = check_step(args.step)
     polygon = read_polygon(args.polygon, frame=frame) if args.polygon else None
     return dict(method=args.method, particles=args.particles, step_s=step, seed=args.seed, polygon_m=polygon,
                 posterior=posterior_choice(args.exact),

@@ -33,7 +33,7 @@ from scipy.special import logsumexp
 
 from ..errors import InputError
 from .connectivity import field_transport
-from .methods import make_method, method_name
+from .methods import default_moment_step_s, make_method, method_name
 from .tabulate import FallbackTally, field_or_table_sde, propagate_with_fallback, table_fallbacks
 
 __all__ = ["Finds", "BacktrackMap", "backtrack", "candidate_grid", "hpd_levels", "backtrack_memory_bytes",
@@ -251,13 +251,15 @@ def backtrack_from_field(field: Any, finds: Finds, region_m: Any, spacing_m: flo
     """:func:`backtrack` in a fitted FlowField: the SDE of ``connectivity.field_transport`` through the exact
     posterior or a table of it (``posterior`` "auto" | "exact" | "table", the rule of ``spread.spread_from_field``:
     "auto" tabulates when candidates × RK4 steps ≥ ``tabulate.TABLE_RELEASE_STEPS``, over the region and the data
-    extent), candidates on a ``spacing_m`` grid over ``region_m = (x0, y0, x1, y1)``.  A time-varying field is
+    extent), candidates on a ``spacing_m`` grid over ``region_m = (x0, y0, x1, y1)``; ``step_s`` the RK4 step (s; default
+    ``methods.default_moment_step_s(field, 600)``).  A time-varying field is
     propagated from every candidate time (its table spans the window and the finds)."""
     if int(getattr(field, "dim", 2)) != 2:
         raise InputError("backtrack: the model must be 2-D")
     sde = field_transport(field, diffusivity_m2_s=diffusivity_m2_s, decorrelation_time_s=decorrelation_time_s)
     x, y = candidate_grid(region_m, spacing_m)
     x0, y0, x1, y1 = (float(v) for v in region_m)
+    step_s = default_moment_step_s(field, 600.0) if step_s is None else step_s
     rk4 = make_method(method, step_s=step_s)[1]
     times = np.atleast_1d(np.asarray(release_times_s, np.float64))
     per_time = len(times) if getattr(field, "is_time_varying", False) else 1     # propagations per candidate point

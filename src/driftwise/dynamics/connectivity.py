@@ -40,7 +40,7 @@ import numpy as np
 
 from ..errors import InputError
 from .ensemble import particle_paths
-from .methods import make_method, method_name
+from .methods import METHODS, default_moment_step_s, make_method, method_name
 from .sde import PointPosterior, join_from_jit, sde_from_field, split_for_jit, transport_sde
 from .sites import Site, cell_covariance_m2, inside_polygon, seed_site
 from .spread import check_times, polygon_mass, signed_area
@@ -312,10 +312,13 @@ def connect_from_field(field: Any, sites: tuple[Site, ...], times_s: Any, *, met
     exact posterior or a table of it (``posterior`` "auto" | "exact" | "table", the rule of
     ``spread.spread_from_field``: "auto" tabulates moment methods when releases × RK4 steps ≥
     ``tabulate.TABLE_RELEASE_STEPS``, over the sites' vertices and the data extent), ``method`` a name of
-    ``methods.METHODS`` (``"ensemble"``: particles per site), ``step_s`` the RK4 or Euler–Maruyama step (s); adds the data-support share, the frame and the
+    ``methods.METHODS`` (``"ensemble"``: particles per site), ``step_s`` the RK4 or Euler–Maruyama step (s; RK4 default
+    ``methods.default_moment_step_s(field, 600)``); adds the data-support share, the frame and the
     absolute time origin of the model."""
     if int(getattr(field, "dim", 2)) != 2:
         raise InputError("connect: sites are horizontal polygons; the model must be 2-D")
+    if step_s is None and not (method in METHODS and METHODS[method].ensemble):
+        step_s = default_moment_step_s(field, 600.0)
     obj, integrator = make_method(method, particles=particles, step_s=step_s)
     sde = field_transport(field, diffusivity_m2_s=diffusivity_m2_s, decorrelation_time_s=decorrelation_time_s)
     corners = np.concatenate([s.polygon_m for s in sites])

@@ -55,7 +55,7 @@ from scipy.stats import chi2
 from ..data.utctime import iso_utc
 from ..errors import InputError
 from .ensemble import EulerMaruyama, simulate
-from .methods import DEFAULT_PARTICLES, METHODS, default_ensemble_step_s, make_method, method_name
+from .methods import DEFAULT_PARTICLES, METHODS, default_step_s, make_method, method_name
 from .moments import RK4, SphericalCubature
 from .sde import sde_from_field
 from .supportcheck import (  # noqa: F401
@@ -289,7 +289,9 @@ def spread_from_field(field: Any, releases: Any, times_s: Any, *, method: str = 
     """Forecast releases in a fitted FlowField: SDE μ = posterior mean, D = 2(K I + τ(1 − e^{−a/τ}) Σ) at release age a (sde.sde_from_field).
     A time-varying field (``field.is_time_varying``) gives μ(x, t), Σ(x, t) at absolute time t = release start + age.
 
-    ``method`` is a name in :data:`driftwise.dynamics.methods.METHODS` ("cubature" default); ``step_s`` the RK4 step (default 600 s) or the
+    ``method`` is a name in :data:`driftwise.dynamics.methods.METHODS` ("cubature" default); ``step_s`` the RK4 step (default
+    :func:`driftwise.dynamics.methods.default_moment_step_s`: 600 s, or a quarter of the flow's time scale when
+    shorter) or the
     Euler–Maruyama step (default :func:`driftwise.dynamics.methods.default_ensemble_step_s`: 5 min, or a 20th of
     the flow's time scale when shorter) for ``"ensemble"`` with ``particles``; K and τ default to the
     model's own; ``seed`` seeds the ensemble; the model's ``time_origin_utc`` (data summary; absent in
@@ -300,8 +302,8 @@ def spread_from_field(field: Any, releases: Any, times_s: Any, *, method: str = 
     (default) tabulates for moment methods when releases × RK4 steps ≥ tabulate.TABLE_RELEASE_STEPS.
     """
 
-    if step_s is None and method in METHODS and METHODS[method].ensemble:
-        step_s = default_ensemble_step_s(field)
+    if step_s is None and method in METHODS:
+        step_s = default_step_s(field, method)
     obj, integrator = make_method(method, particles=particles, step_s=step_s, gauss_hermite_order=gauss_hermite_order)
     rels = as_releases(releases)
     dim = int(getattr(field, "dim", rels[0].start_m.size))

@@ -297,11 +297,17 @@ class MatrixKernel:
         record").  The sum over j is elementwise products and one reduction, not ``a @ w`` and ``c @ z``: under
         ``vmap`` those are matrix products with d columns, and their reverse mode is products with an inner
         dimension of d, which XLA's CPU backend runs as separate thin GEMMs instead of fusing them with the
-        elementwise work around them (the transition step 32.7 → 30.3 ms, DEVELOPERS.md "Benchmark record")."""
-        r = x - z
-        a, b = self.terms(_squared_norm(r), x.shape[-1])
-        c = b * _dot(r, w)
-        out = jnp.sum(a[:, None] * w + c[:, None] * r, axis=0)
+        elementwise work around them (the transition step 32.7 → 30.3 ms, DEVELOPERS.md "Benchmark record").  The
+        pairs are held as d component arrays of length M (r_i = x_i − z_{·i}), not as (M, d) arrays: under ``vmap``
+        an (…, M, d) array has a minor axis of d = 2 or 3, whose slices are strided and whose reverse mode pads each
+        component back into a full (…, M, d) array; per component every elementwise step and the sum over M run along
+        contiguous memory (the transition step 30.6 → 24.9 ms, DEVELOPERS.md "Benchmark record")."""
+        d = x.shape[-1]
+        r = [x[i] - z[:, i] for i in range(d)]
+        wc = [w[:, i] for i in range(d)]
+        a, b = self.terms(sum(ri * ri for ri in r), d)
+        c = b * sum(ri * wi for ri, wi in zip(r, wc))
+        out = jnp.stack([jnp.sum(a * wi + c * ri) for ri, wi in zip(r, wc)])
         for background in self.backgrounds():
             fx, variances = features(background, x)
             fz, _ = features(background, z)
