@@ -245,7 +245,8 @@ def test_connect_and_backtrack_cli_exact_flag(field, run_cli, tmp_path, monkeypa
     sites = tmp_path / "sites.csv"
     sites.write_text("site,x_m,y_m\n" + "".join(f"{s.name},{x},{y}\n" for s in _two_sites() for x, y in s.polygon_m))
     monkeypatch.setattr(tabulate, "TABLE_RELEASE_STEPS", 1)
-    argv = ["connect", path, "--sites", sites, "--horizon", "3h", "--every", "1h", "--per-site", "4", "--json"]
+    argv = ["connect", path, "--sites", sites, "--horizon", "3h", "--every", "1h", "--per-site", "4", "--json",
+            "--step", "1h"]
     code, out, err = run_cli(*argv, "--exact")
     assert code == 0, err
     exact = connect_from_field(field, _two_sites(), np.arange(4.0) * 3600.0, per_site=4, step_s=3600.0,
