@@ -144,6 +144,7 @@ def _rmse_figure(rows: list, path: str) -> Path:
     ax.set_xscale("log")
     ax.set_yscale("log")
     ax.set_xticks(hours, [f"{h:g}" for h in hours])
+    ax.tick_params(axis="x", which="minor", labelbottom=False)
     ax.set_xlabel("fix interval (h)")
     ax.set_ylabel("velocity RMSE near the data (m/s)")
     ax.set_title("Lamb–Oseen vortex, core 2 km, peak swirl 0.4 m/s", fontsize=9)
