@@ -7,8 +7,12 @@ scale of seconds) `connect` with its defaults stopped with "integration diverged
 from __future__ import annotations
 
 import json
+import re
+import warnings
 from types import SimpleNamespace
 
+import jax
+import jax.numpy as jnp
 import numpy as np
 import pytest
 import scipy.linalg
@@ -16,7 +20,7 @@ import scipy.linalg
 import driftwise  # noqa: F401  (float64)
 from driftwise.data import synthetic
 from driftwise.data.frame import Frame
-from driftwise.dynamics.methods import RK4_STEPS_PER_FLOW_TIME, default_moment_step_s, default_step_s
+from driftwise.dynamics.methods import RK4_STEPS_PER_FLOW_TIME, default_ensemble_step_s, default_moment_step_s
 from driftwise.dynamics.moments import RK4
 from driftwise.gp import field as F
 from driftwise.gp.modelfile import save_model
@@ -31,8 +35,7 @@ def test_the_default_rk4_step_is_a_quarter_of_the_flow_time_scale_capped_by_the_
     assert default_moment_step_s(bay, 600.0) == 600.0
     assert default_moment_step_s(SimpleNamespace(fit_info={}, decorrelation_time_s=400.0), 600.0) == 100.0
     assert default_moment_step_s(object(), 600.0) == 600.0       # nothing known about the flow: the command's own
-    assert default_step_s(tank, "ensemble", longest_ensemble_s=600.0) == pytest.approx(0.1 / 0.032 / 20, rel=1e-12)
-    assert default_step_s(tank, "cubature") == pytest.approx(0.78125, rel=1e-12)
+    assert default_ensemble_step_s(tank, 600.0) == pytest.approx(0.1 / 0.032 / 20, rel=1e-12)
 
 
 def test_rk4_at_a_quarter_radian_per_step_follows_a_rotation_as_the_matrix_exponential_does():
@@ -78,11 +81,73 @@ def test_connect_at_tank_scale_takes_a_step_from_the_flow_and_agrees_with_a_fine
     base = ["connect", tank_model, "--sites", str(sites), "--horizon", "2min", "--every", "20s", "--per-site", "16"]
     code, out, err = run_cli(*base)
     assert code == 0, err
-    step = float(err.split(" steps of ")[1].split(" s;")[0])
-    assert step == pytest.approx(0.2 / 0.0035 / 4, rel=0.15), err                     # ≈ 14 s, not 1 h
+    assert re.search(r"per site, step 1[0-9]\.?[0-9]* s,", out), out                # ≈ 14 s, not 1 h
     code, js_default, err = run_cli(*base, "--json")
     assert code == 0, err
+    assert json.loads(js_default)["step_s"] == pytest.approx(0.2 / 0.0035 / 4, rel=0.15)
     code, js_fine, err = run_cli(*base, "--json", "--step", "1s")
     assert code == 0, err
     default, fine = (np.asarray(json.loads(js)["probability"]) for js in (js_default, js_fine))
     assert np.max(np.abs(default - fine)) < 0.01, (default, fine)
+
+
+def test_diverged_flags_what_numpy_finds_indefinite_in_2d_and_3d():
+    """moments.diverged against numpy.linalg.eigvalsh on random symmetric matrices, half of them indefinite."""
+    from driftwise.dynamics.moments import diverged
+
+    rng = np.random.default_rng(5)
+    for d in (2, 3):
+        for _ in range(200):
+            a = rng.normal(size=(d, d))
+            cov = a @ a.T + rng.choice([0.0, -1.0]) * np.abs(rng.normal()) * np.eye(d)
+            want = np.linalg.eigvalsh(cov)[0] < -1e-9 * max(np.linalg.eigvalsh(cov)[-1], 0.0)
+            assert diverged(np.zeros(d), cov) == want
+        assert not diverged(np.zeros((4, d)), np.zeros((4, d, d)))            # a point release: P = 0
+        assert diverged(np.full(d, np.nan), np.eye(d))
+
+
+@pytest.mark.parametrize("command", ["backtrack", "spread", "connect"])
+def test_a_step_beyond_the_stability_bound_is_warned_and_the_default_stays_inside_it(tank_model, run_cli, command,
+                                                                                      tmp_path):
+    """5-min RK4 steps in cells whose velocity gradient has eigenvalues up to 0.029/s over the data (|λ|h = 8.6,
+    RK4's bound 1.39): before, `backtrack` answered with exit 0 and only a numpy warning, `spread` printed an
+    ellipse '… × 0 m'.  The bound is checked against the fitted mean's gradient by central differences and
+    numpy's eigenvalues on the same 12 × 12 grid over the data (the printed bound has 3 figures)."""
+    sites = tmp_path / "sites.csv"
+    sites.write_text("site,x_m,y_m\nA,0.3,0.3\nA,0.4,0.3\nA,0.4,0.4\nA,0.3,0.4\n")
+    args = {"backtrack": ["--found", "0.5,0.3", "--at", "10min", "--sd", "5cm", "--window", "5min", "--every",
+                          "5min", "--spacing", "5cm"],
+            "spread": ["--release", "0.45,0.35", "--horizon", "10min", "--every", "5min"],
+            "connect": ["--sites", str(sites), "--horizon", "10min", "--every", "5min", "--per-site", "4"]}[command]
+    with pytest.warns(UserWarning, match=r"the RK4 step 5 min is beyond RK4's stability bound for this field, "
+                                         r"([\d.]+) s \(1.39 / the largest velocity-gradient eigenvalue over the "
+                                         r"data, ([\d.]+)/s\).*use a step of \1 s or less") as caught:
+        run_cli(command, tank_model, *args, "--step", "5min", "--quiet")
+    bound = float(re.search(r"bound for this field, ([\d.]+) s", str(caught[0].message)).group(1))
+    assert bound == pytest.approx(1.39 / _largest_eigenvalue_by_differences(tank_model), rel=2e-3), bound
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", UserWarning)
+        code, _, err = run_cli(command, tank_model, *args, "--quiet")
+    assert code == 0, err
+
+
+def _largest_eigenvalue_by_differences(path) -> float:
+    field = driftwise.load(path)
+    lo, hi = (np.asarray(field.data_summary["extent_m"][k]) for k in ("min", "max"))
+    grid = np.stack(np.meshgrid(*[np.linspace(a, b, 12) for a, b in zip(lo, hi)]), -1).reshape(-1, 2)
+    h = 1e-5 * float(np.max(hi - lo))
+    mean = lambda x: np.asarray(jax.vmap(field.mean_at)(jnp.asarray(x)))          # noqa: E731
+    jac = np.stack([(mean(grid + h * e) - mean(grid - h * e)) / (2 * h) for e in np.eye(2)], axis=-1)
+    return float(np.max(np.abs(np.linalg.eigvals(jac))))
+
+
+def test_an_indefinite_covariance_stops_with_a_message(monkeypatch):
+    """A forecast whose covariance turns indefinite (an integration beyond RK4's stability) stops with InputError
+    naming the cause, not with numbers: simulated by a propagation that returns P = diag(1, −1)."""
+    from driftwise.dynamics import backtrack as bt
+    from driftwise.errors import InputError
+
+    monkeypatch.setattr(bt, "propagate_with_fallback", lambda *a, **k: (np.zeros((1, 2, 2)), np.broadcast_to(
+        np.diag([1.0, -1.0]), (1, 2, 2, 2)).copy()))
+    with pytest.raises(InputError, match=r"the integration diverged\); use a smaller --step"):
+        bt.forward_moments(None, np.zeros((1, 2)), np.array([0.0, 60.0]), step_s=10.0)

@@ -14,7 +14,7 @@ import numpy as np
 from ..data.utctime import iso_utc, release_time_s
 from ..data.windows import output_times_from_text
 from ..dynamics.backtrack import Finds, backtrack_from_field, backtrack_memory_bytes, candidate_grid, needed_ages
-from ..dynamics.methods import DEFAULT_METHOD, METHODS, default_moment_step_s
+from ..dynamics.methods import DEFAULT_METHOD, METHODS
 from ..dynamics.supportcheck import warn_unsupported_finds
 from ..dynamics.tabulate import posterior_choice
 from ..errors import InputError
@@ -28,7 +28,7 @@ from .cliparts import EXIT_OK, add_exact_flag, add_json_flag, add_quiet_flag, ch
 from .resources import bar, check_memory, say
 
 DEFAULT_CELLS = 4096
-DEFAULT_STEP = "1h"      # RK4 step, or a quarter of the flow's time scale when shorter (methods.default_moment_step_s)
+DEFAULT_STEP = "1h"      # RK4 step, or shorter as the field needs (stepcheck.moment_step_s)
 REGION_PAD = 0.1
 
 
@@ -60,7 +60,8 @@ def configure_backtrack(p: argparse.ArgumentParser) -> None:
     p.add_argument("--method", choices=[n for n, s in METHODS.items() if not s.ensemble], default=DEFAULT_METHOD,
                    help=f"moment method (default {DEFAULT_METHOD})")
     p.add_argument("--step", default=None, help=f"RK4 step with its unit (default {DEFAULT_STEP}, or a quarter of the "
-                   "flow's time scale, length scale / RMS speed, when shorter)")
+                   "flow's time scale, length scale / RMS speed, or RK4's stability bound for the field, when "
+                   "shorter; a longer step is warned)")
     p.add_argument("--out", action="append", default=[], metavar="FILE",
                    help="write the result: .nc (CF maps), .geojson (regions; lon/lat models) or .json; repeatable")
     p.add_argument("--figures", metavar="DIR", help="write backtrack_map.png here")
@@ -141,7 +142,6 @@ def run_backtrack(args: argparse.Namespace) -> int:
         raise InputError(f"--out {bad[0]}: unknown format; use a name ending in {', '.join(BACKTRACK_SUFFIXES)}")
     step = check_step(args.step)
     model = load_model(args.model)
-    step = default_moment_step_s(model, parse_duration_s(DEFAULT_STEP)) if step is None else step
     if any(Path(o).suffix.lower() == ".geojson" for o in args.out) and model.frame.kind != "lonlat":
         raise InputError("--out .geojson: GeoJSON holds lon/lat only, but this model was fitted in a local metric "
                          "frame; write .json or .nc instead")
@@ -160,14 +160,15 @@ def run_backtrack(args: argparse.Namespace) -> int:
     check_memory(need, f"backtrack ({n_cells} candidate points × {len(lags)} candidate times)",
                  "use a coarser --spacing, a smaller --region or fewer candidate times (--every)")
     quiet = args.quiet or args.json
-    say(f"backtrack: {n_cells} candidate points every {format_length(spacing)} × {len(lags)} candidate times, "
-        f"RK4 step {format_duration(step)}; memory about {need / 2**20:.3g} MiB", quiet)
+    say(f"backtrack: {n_cells} candidate points every {format_length(spacing)} × {len(lags)} candidate times; "
+        f"memory about {need / 2**20:.3g} MiB", quiet)
     x, y = candidate_grid(region, spacing)
     runs = len(lags) if model.is_time_varying else 1     # a time-varying field: one propagation per candidate time
     progress = bar(len(x) * len(y) * runs, quiet, "driftwise backtrack", "candidate")
     try:
         result = backtrack_from_field(model, finds, region, spacing, lags, method=args.method, step_s=step,
                                       posterior=posterior_choice(args.exact),
+                                      longest_step_s=parse_duration_s(DEFAULT_STEP),
                                       progress=progress.update)
     finally:
         progress.close()
@@ -189,7 +190,8 @@ def _format(result: Any, summary: dict, written: list[str]) -> str:
     where = ("lon/lat ({:.5f}, {:.5f})".format(*best["position_lonlat"]) if "position_lonlat" in best
              else "({:.{d}f}, {:.{d}f}) m".format(*best["position_m"], d=decimals))
     lines = [f"backtrack: {len(result.x_m) * len(result.y_m)} candidate points × {len(result.release_times_s)} "
-             f"candidate times, {len(result.finds.time_s)} find(s), method {result.method}",
+             f"candidate times, {len(result.finds.time_s)} find(s), method {result.method}, RK4 step "
+             f"{format_duration(result.step_s)}",
              f"  most probable release: {where} at {when}",
              f"  50 % region {format_area(summary['region_50']['area_m2'])}, 90 % region "
              f"{format_area(summary['region_90']['area_m2'])}",

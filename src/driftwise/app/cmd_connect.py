@@ -11,7 +11,7 @@ import numpy as np
 from ..data.utctime import iso_utc, release_time_s
 from ..data.windows import output_times_from_text
 from ..dynamics.connectivity import DEFAULT_THRESHOLD, connect_from_field, connect_memory_bytes
-from ..dynamics.methods import DEFAULT_METHOD, METHODS, default_step_s
+from ..dynamics.methods import DEFAULT_METHOD, METHODS, default_ensemble_step_s
 from ..dynamics.sites import read_sites
 from ..dynamics.tabulate import posterior_choice
 from ..errors import InputError
@@ -51,7 +51,8 @@ def configure_connect(p: argparse.ArgumentParser) -> None:
     p.add_argument("--particles", type=int, default=10_000, help="ensemble particles per site (default 10000)")
     p.add_argument("--step", default=None, help=f"integration step with its unit (default {DEFAULT_MOMENT_STEP} for "
                    f"moments, {DEFAULT_ENSEMBLE_STEP} for the ensemble, or a quarter (ensemble: a 20th) of the "
-                   "flow's time scale, length scale / RMS speed, when shorter)")
+                   "flow's time scale, length scale / RMS speed, or for moments RK4's stability bound for the "
+                   "field, when shorter; a longer RK4 step is warned)")
     p.add_argument("--threshold", type=float, default=DEFAULT_THRESHOLD,
                    help=f"probability whose first reaching is reported (default {DEFAULT_THRESHOLD})")
     p.add_argument("--seed", type=int, default=0, help="seed of the release points and the ensemble (default 0)")
@@ -87,27 +88,25 @@ def run_connect(args: argparse.Namespace) -> int:
     step = _check(args)
     times = _times(args)
     model = load_model(args.model)
-    if step is None:
-        step = default_step_s(model, args.method, longest_moment_s=parse_duration_s(DEFAULT_MOMENT_STEP),
-                              longest_ensemble_s=parse_duration_s(DEFAULT_ENSEMBLE_STEP))
-    sites = read_sites(args.sites, frame=model.frame)
     ensemble = METHODS[args.method].ensemble
+    if step is None and ensemble:
+        step = default_ensemble_step_s(model, parse_duration_s(DEFAULT_ENSEMBLE_STEP))
+    sites = read_sites(args.sites, frame=model.frame)
     per_site = args.particles if ensemble else args.per_site
     need = connect_memory_bytes(len(sites), len(times), per_site, max(len(s.polygon_m) for s in sites),
                                 ensemble=ensemble)
     check_memory(need, f"connect ({len(sites)} sites × {per_site} per site × {len(times)} output times)",
                  "use fewer sites, output times (--every) or releases per site")
     quiet = args.quiet or args.json
-    steps = int(np.ceil(times[-1] / step))
-    say(f"connect: {len(sites)} sites × {per_site} {'particles' if ensemble else 'releases'} × {steps} steps of "
-        f"{format_duration(step)}; memory about {need / 2**20:.3g} MiB", quiet)
+    say(f"connect: {len(sites)} sites × {per_site} {'particles' if ensemble else 'releases'} × {len(times)} output "
+        f"times; memory about {need / 2**20:.3g} MiB", quiet)
     progress = bar(len(sites) * per_site, quiet, "driftwise connect", "release")
     try:
         result = connect_from_field(model, sites, times, method=args.method, per_site=args.per_site,
                                     particles=args.particles, step_s=step, seed=args.seed, threshold=args.threshold,
                                     start_time_s=release_time_s(model.data_summary, args.start),
-                                    posterior=posterior_choice(args.exact),
-                                    progress=progress.update)
+                                    posterior=posterior_choice(args.exact), progress=progress.update,
+                                    longest_step_s=parse_duration_s(DEFAULT_MOMENT_STEP))
     finally:
         progress.close()
     written = [str(write_connect(result, out)) for out in args.out]
@@ -123,8 +122,9 @@ def run_connect(args: argparse.Namespace) -> int:
 
 def _format(result: Any, written: list[str]) -> str:
     start = (f" from {iso_utc(result.time_origin_utc, result.start_time_s)}" if result.time_origin_utc else "")
-    lines = [f"connect: {len(result.sites)} sites, method {result.method}, {result.per_site} per site, "
-             f"{len(result.times_s)} output times to {format_duration(result.times_s[-1])}{start}",
+    lines = [f"connect: {len(result.sites)} sites, method {result.method}, {result.per_site} per site, step "
+             f"{format_duration(result.step_s)}, {len(result.times_s)} output times to "
+             f"{format_duration(result.times_s[-1])}{start}",
              "  peak probability over the horizon [row: source, column: destination]; first time ≥ "
              f"{result.threshold:g} in brackets"]
     width = max(len(n) for n in result.names)

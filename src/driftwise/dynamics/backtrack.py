@@ -33,7 +33,9 @@ from scipy.special import logsumexp
 
 from ..errors import InputError
 from .connectivity import field_transport
-from .methods import default_moment_step_s, make_method, method_name
+from .methods import make_method, method_name
+from .moments import diverged
+from .stepcheck import moment_step_s
 from .tabulate import FallbackTally, field_or_table_sde, propagate_with_fallback, table_fallbacks
 
 __all__ = ["Finds", "BacktrackMap", "backtrack", "candidate_grid", "hpd_levels", "backtrack_memory_bytes",
@@ -71,7 +73,8 @@ class BacktrackMap:
     ``x_m (nx,)``, ``y_m (ny,)`` cell centres (local frame); ``release_times_s (L,)`` candidate release times
     on the model's time axis; ``probability (L, ny, nx)`` sums to 1; ``marginal (ny, nx)`` over time;
     ``by_time (L,)`` over space; ``most_probable`` = (x_m, y_m, release_time_s) of the most probable cell and
-    time; ``log_evidence`` log Σ Π_k L_k over the candidates (nats, minus log of their number).
+    time; ``log_evidence`` log Σ Π_k L_k over the candidates (nats, minus log of their number); ``step_s`` the RK4
+    step used (s; set by :func:`backtrack_from_field`).
     """
 
     x_m: np.ndarray
@@ -83,6 +86,7 @@ class BacktrackMap:
     log_evidence: float
     frame: Any = None
     time_origin_utc: str | None = None
+    step_s: float | None = None
 
     @property
     def marginal(self) -> np.ndarray:
@@ -178,6 +182,10 @@ def forward_moments(sde: Any, points_m: np.ndarray, ages_s: np.ndarray, *, metho
                                        integrator=integrator, chunk=min(batch, 256), start_times_s=start_time_s,
                                        tally=count)
         means[lo:lo + batch], covs[lo:lo + batch] = np.asarray(m)[..., :2], np.asarray(c)[..., :2, :2]
+        if diverged(means[lo:lo + batch], covs[lo:lo + batch]):
+            raise InputError("backtrack: the forecast of the candidate releases produced non-finite numbers or a "
+                             "covariance that is not positive semi-definite (the integration diverged); use a "
+                             "smaller --step")
         if progress is not None:
             progress(len(starts))
     if tally is None:
@@ -247,21 +255,24 @@ def backtrack(sde: Any, finds: Finds, x_m: np.ndarray, y_m: np.ndarray, release_
 def backtrack_from_field(field: Any, finds: Finds, region_m: Any, spacing_m: float, release_times_s: Any, *,
                          method: str = "cubature", step_s: float | None = None, posterior: str = "auto",
                          diffusivity_m2_s: float | None = None, decorrelation_time_s: float | None = None,
-                         progress: Callable[[int], None] | None = None) -> BacktrackMap:
+                         progress: Callable[[int], None] | None = None,
+                         longest_step_s: float = 600.0) -> BacktrackMap:
     """:func:`backtrack` in a fitted FlowField: the SDE of ``connectivity.field_transport`` through the exact
     posterior or a table of it (``posterior`` "auto" | "exact" | "table", the rule of ``spread.spread_from_field``:
     "auto" tabulates when candidates × RK4 steps ≥ ``tabulate.TABLE_RELEASE_STEPS``, over the region and the data
     extent), candidates on a ``spacing_m`` grid over ``region_m = (x0, y0, x1, y1)``; ``step_s`` the RK4 step (s; default
-    ``methods.default_moment_step_s(field, 600)``).  A time-varying field is
+    ``stepcheck.moment_step_s``: ``longest_step_s``, or a quarter of the flow's time scale, or RK4's stability bound
+    for the field when shorter; a longer step given is warned).  A time-varying field is
     propagated from every candidate time (its table spans the window and the finds)."""
     if int(getattr(field, "dim", 2)) != 2:
         raise InputError("backtrack: the model must be 2-D")
     sde = field_transport(field, diffusivity_m2_s=diffusivity_m2_s, decorrelation_time_s=decorrelation_time_s)
     x, y = candidate_grid(region_m, spacing_m)
     x0, y0, x1, y1 = (float(v) for v in region_m)
-    step_s = default_moment_step_s(field, 600.0) if step_s is None else step_s
-    rk4 = make_method(method, step_s=step_s)[1]
     times = np.atleast_1d(np.asarray(release_times_s, np.float64))
+    step_s = moment_step_s(field, sde, step_s, longest_s=longest_step_s, start_times_s=times,
+                           horizon_s=float(np.max(finds.time_s) - np.min(times)))
+    rk4 = make_method(method, step_s=step_s)[1]
     per_time = len(times) if getattr(field, "is_time_varying", False) else 1     # propagations per candidate point
     corners, ages = [[x0, y0], [x1, y1]], needed_ages(finds, release_times_s)
     table_sde = field_or_table_sde(field, sde, corners, len(x) * len(y) * per_time, ages, rk4, posterior,
@@ -270,4 +281,4 @@ def backtrack_from_field(field: Any, finds: Finds, region_m: Any, spacing_m: flo
                        step_s=step_s, progress=progress,
                        fallback_sde=table_fallbacks(field, sde, table_sde, corners, ages, times))
     origin = (getattr(field, "data_summary", None) or {}).get("time_origin_utc")
-    return dataclasses.replace(result, frame=field.frame, time_origin_utc=origin)
+    return dataclasses.replace(result, frame=field.frame, time_origin_utc=origin, step_s=float(step_s))

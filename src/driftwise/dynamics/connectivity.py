@@ -40,10 +40,12 @@ import numpy as np
 
 from ..errors import InputError
 from .ensemble import particle_paths
-from .methods import METHODS, default_moment_step_s, make_method, method_name
+from .methods import METHODS, make_method, method_name
+from .moments import diverged
 from .sde import PointPosterior, join_from_jit, sde_from_field, split_for_jit, transport_sde
 from .sites import Site, cell_covariance_m2, inside_polygon, seed_site
 from .spread import check_times, polygon_mass, signed_area
+from .stepcheck import moment_step_s
 from .supportcheck import SUPPORT_VARIANCE_FRACTION
 from .supporttable import support_table
 from .tabulate import FallbackTally, field_or_table_sde, propagate_with_fallback, table_fallbacks, table_region
@@ -67,7 +69,8 @@ class Connectivity:
     else None; ``first_passage_s (S, S)`` seconds since the release at which the probability first reaches
     ``threshold`` (NaN: never within the horizon); ``outside_support (S, T)`` share of the source's material
     outside the model's data support; ``centroid_m (S, T, 2)`` mean position of each source's material;
-    ``per_site`` releases (or particles) per source; ``start_time_s`` on the model's time axis.
+    ``per_site`` releases (or particles) per source; ``start_time_s`` on the model's time axis; ``step_s`` the
+    RK4 (or Euler–Maruyama) step used (s; set by :func:`connect_from_field`).
     """
 
     sites: tuple[Site, ...]
@@ -83,6 +86,7 @@ class Connectivity:
     standard_error: np.ndarray | None = None
     frame: Any = None
     time_origin_utc: str | None = None
+    step_s: float | None = None
 
     @property
     def names(self) -> list[str]:
@@ -172,13 +176,6 @@ def _outside(support: Callable | None, means: np.ndarray, times_s: np.ndarray) -
     return (ratio.reshape(means.shape[:-1]) > SUPPORT_VARIANCE_FRACTION).astype(np.float64)
 
 
-def _positive(covs: np.ndarray) -> bool:
-    """True when every horizontal covariance (..., 2, 2) is positive semi-definite (to rounding): an RK4 step too
-    long for the flow leaves the moment equations' stable region with finite but impossible covariances."""
-    a, b, d = covs[..., 0, 0], 0.5 * (covs[..., 0, 1] + covs[..., 1, 0]), covs[..., 1, 1]
-    return bool(np.all(a >= 0) and np.all(d >= 0) and np.all(a * d - b * b >= -1e-9 * np.maximum(a * d, 0.0)))
-
-
 def _cores() -> int:
     """CPU cores this process may use (scoring threads)."""
     return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
@@ -228,7 +225,7 @@ def connect(sde: Any, sites: tuple[Site, ...], times_s: Any, *, per_site: int = 
             means, covs = propagate_with_fallback(sde, fallback_sde, points[sl], covs0[sl], times, method=method,
                                                   integrator=integrator or default_rk4, chunk=min(batch, 256),
                                                   start_times_s=start_time_s, tally=tally)
-            if not (np.all(np.isfinite(means)) and np.all(np.isfinite(covs)) and _positive(covs)):
+            if diverged(means, covs):
                 raise InputError("the connectivity forecast produced non-finite numbers or a covariance that is not "
                                  "positive semi-definite (the integration diverged); use a smaller --step")
             if pending is not None:
@@ -307,20 +304,23 @@ def connect_from_field(field: Any, sites: tuple[Site, ...], times_s: Any, *, met
                        per_site: int = 64, particles: int = 10_000, step_s: float | None = None, seed: int = 0,
                        threshold: float = DEFAULT_THRESHOLD, start_time_s: float = 0.0, posterior: str = "auto",
                        diffusivity_m2_s: float | None = None, decorrelation_time_s: float | None = None,
-                       progress: Callable[[int], None] | None = None) -> Connectivity:
+                       progress: Callable[[int], None] | None = None,
+                       longest_step_s: float = 600.0) -> Connectivity:
     """Connectivity between ``sites`` in a fitted FlowField: the SDE of :func:`field_transport`, through the
     exact posterior or a table of it (``posterior`` "auto" | "exact" | "table", the rule of
     ``spread.spread_from_field``: "auto" tabulates moment methods when releases × RK4 steps ≥
     ``tabulate.TABLE_RELEASE_STEPS``, over the sites' vertices and the data extent), ``method`` a name of
     ``methods.METHODS`` (``"ensemble"``: particles per site), ``step_s`` the RK4 or Euler–Maruyama step (s; RK4 default
-    ``methods.default_moment_step_s(field, 600)``); adds the data-support share, the frame and the
+    ``stepcheck.moment_step_s``: ``longest_step_s``, or a quarter of the flow's time scale, or RK4's stability bound
+    for the field when shorter; a longer step given is warned); adds the data-support share, the frame and the
     absolute time origin of the model."""
     if int(getattr(field, "dim", 2)) != 2:
         raise InputError("connect: sites are horizontal polygons; the model must be 2-D")
-    if step_s is None and not (method in METHODS and METHODS[method].ensemble):
-        step_s = default_moment_step_s(field, 600.0)
-    obj, integrator = make_method(method, particles=particles, step_s=step_s)
     sde = field_transport(field, diffusivity_m2_s=diffusivity_m2_s, decorrelation_time_s=decorrelation_time_s)
+    if not (method in METHODS and METHODS[method].ensemble):
+        step_s = moment_step_s(field, sde, step_s, longest_s=longest_step_s, start_times_s=[start_time_s],
+                               horizon_s=float(np.max(times_s)))
+    obj, integrator = make_method(method, particles=particles, step_s=step_s)
     corners = np.concatenate([s.polygon_m for s in sites])
     table_sde = field_or_table_sde(field, sde, corners, len(sites) * per_site, check_times(times_s), integrator,
                                    posterior, [start_time_s])
@@ -334,7 +334,8 @@ def connect_from_field(field: Any, sites: tuple[Site, ...], times_s: Any, *, met
                                                                              check_times(times_s), [start_time_s]),
                          **common)
     origin = (getattr(field, "data_summary", None) or {}).get("time_origin_utc")
-    return _with_context(result, field.frame, origin, start_time_s)
+    used_s = obj.step_s if integrator is None else step_s
+    return dataclasses.replace(_with_context(result, field.frame, origin, start_time_s), step_s=float(used_s))
 
 
 def _support(field: Any, table_sde: Any, corners: np.ndarray) -> Callable:

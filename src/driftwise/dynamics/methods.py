@@ -17,7 +17,7 @@ from .ensemble import EulerMaruyama
 from .moments import RK4, GaussHermite, Linearize, SphericalCubature, Unscented
 
 __all__ = ["MethodSpec", "METHODS", "DEFAULT_METHOD", "DEFAULT_PARTICLES", "default_ensemble_step_s",
-           "default_moment_step_s", "default_step_s", "flow_time_scale_s", "method_name", "make_method"]
+           "default_moment_step_s", "flow_time_scale_s", "method_name", "make_method"]
 
 DEFAULT_METHOD = "cubature"
 # The ensemble's defaults: a 3-release, 1-day forecast in about 30 s on an idle 2-core machine (measured with
@@ -114,12 +114,3 @@ def default_moment_step_s(field: Any, longest_s: float) -> float:
     step; a 1-m tank (T ≈ 3 s) gets 0.8 s where 1 h was unstable (connect stopped with "integration diverged")."""
     scale = flow_time_scale_s(field)
     return float(longest_s) if scale is None else float(min(longest_s, scale / RK4_STEPS_PER_FLOW_TIME))
-
-
-def default_step_s(field: Any, method: str, *, longest_moment_s: float = 600.0,
-                   longest_ensemble_s: float = ENSEMBLE_MAX_STEP_S) -> float:
-    """The default step (s) of ``method`` in ``field``: :func:`default_ensemble_step_s` for the ensemble, else
-    :func:`default_moment_step_s`, each capped at its ``longest_*_s``."""
-    if method in METHODS and METHODS[method].ensemble:
-        return default_ensemble_step_s(field, longest_ensemble_s)
-    return default_moment_step_s(field, longest_moment_s)

@@ -59,6 +59,7 @@ __all__ = [
     "RK4",
     "Dopri5",
     "psd_cholesky",
+    "diverged",
     "moment_rates",
     "propagate",
     "propagate_batch",
@@ -68,6 +69,20 @@ __all__ = [
 ]
 
 _PIVOT_RTOL = 1e-13  # pivots below this fraction of max diag(P) count as zero
+
+
+def diverged(means: Any, covs: Any) -> bool:
+    """True when a propagated mean or covariance is not finite, or a covariance (..., d, d) is not positive
+    semi-definite to rounding (smallest eigenvalue below −1e-9 × the largest; d = 2 in closed form): an RK4 step
+    too long for the flow leaves the moment equations' stability region with finite but impossible covariances."""
+    means, covs = np.asarray(means), np.asarray(covs)
+    if not (np.all(np.isfinite(means)) and np.all(np.isfinite(covs))):
+        return True
+    if covs.shape[-1] == 2:
+        a, b, d = covs[..., 0, 0], 0.5 * (covs[..., 0, 1] + covs[..., 1, 0]), covs[..., 1, 1]
+        return not (np.all(a >= 0) and np.all(d >= 0) and np.all(a * d - b * b >= -1e-9 * np.maximum(a * d, 0.0)))
+    eig = np.linalg.eigvalsh(0.5 * (covs + np.swapaxes(covs, -1, -2)))
+    return bool(np.any(eig[..., 0] < -1e-9 * np.maximum(eig[..., -1], 0.0)))
 
 
 def psd_cholesky(cov: jax.Array) -> jax.Array:

@@ -55,9 +55,10 @@ from scipy.stats import chi2
 from ..data.utctime import iso_utc
 from ..errors import InputError
 from .ensemble import EulerMaruyama, simulate
-from .methods import DEFAULT_PARTICLES, METHODS, default_step_s, make_method, method_name
-from .moments import RK4, SphericalCubature
+from .methods import DEFAULT_PARTICLES, make_method, method_name
+from .moments import RK4, SphericalCubature, diverged
 from .sde import sde_from_field
+from .stepcheck import step_for
 from .supportcheck import (  # noqa: F401
     SupportWarning,
     path_support,
@@ -272,8 +273,9 @@ def spread_releases(sde: Any, releases: Any, times_s: Any, *, method: Any = None
     name = method_name(method)
     rels, times = as_releases(releases), check_times(times_s)
     means, covs, errors = _moments(sde, rels, times, method, integrator, key, fallback_sde)
-    if not (np.all(np.isfinite(means)) and np.all(np.isfinite(covs))):
-        raise InputError(f"the {name} forecast produced non-finite numbers (the integration diverged); use a smaller step")
+    if diverged(means, covs):
+        raise InputError(f"the {name} forecast produced non-finite numbers or a covariance that is not positive "
+                         "semi-definite (the integration diverged); use a smaller step")
     spread = make_spread(name, rels, times, means, covs, frame=frame, polygon_m=polygon_m, threshold=threshold,
                          time_origin_utc=time_origin_utc)
     return dataclasses.replace(spread, **errors)
@@ -290,8 +292,8 @@ def spread_from_field(field: Any, releases: Any, times_s: Any, *, method: str = 
     A time-varying field (``field.is_time_varying``) gives μ(x, t), Σ(x, t) at absolute time t = release start + age.
 
     ``method`` is a name in :data:`driftwise.dynamics.methods.METHODS` ("cubature" default); ``step_s`` the RK4 step (default
-    :func:`driftwise.dynamics.methods.default_moment_step_s`: 600 s, or a quarter of the flow's time scale when
-    shorter) or the
+    :func:`driftwise.dynamics.stepcheck.moment_step_s`: 600 s, or a quarter of the flow's time scale, or RK4's
+    stability bound for the field when shorter; a longer step given is warned) or the
     Euler–Maruyama step (default :func:`driftwise.dynamics.methods.default_ensemble_step_s`: 5 min, or a 20th of
     the flow's time scale when shorter) for ``"ensemble"`` with ``particles``; K and τ default to the
     model's own; ``seed`` seeds the ensemble; the model's ``time_origin_utc`` (data summary; absent in
@@ -302,17 +304,17 @@ def spread_from_field(field: Any, releases: Any, times_s: Any, *, method: str = 
     (default) tabulates for moment methods when releases × RK4 steps ≥ tabulate.TABLE_RELEASE_STEPS.
     """
 
-    if step_s is None and method in METHODS:
-        step_s = default_step_s(field, method)
-    obj, integrator = make_method(method, particles=particles, step_s=step_s, gauss_hermite_order=gauss_hermite_order)
     rels = as_releases(releases)
+    sde = sde_from_field(field, diffusivity_m2_s=diffusivity_m2_s, decorrelation_time_s=decorrelation_time_s)
+    step_s = step_for(field, sde, method, step_s, longest_s=600.0, start_times_s=[r.start_time_s for r in rels],
+                      horizon_s=float(np.max(times_s)))
+    obj, integrator = make_method(method, particles=particles, step_s=step_s, gauss_hermite_order=gauss_hermite_order)
     dim = int(getattr(field, "dim", rels[0].start_m.size))
     if rels[0].start_m.size != dim:
         raise InputError(f"releases have {rels[0].start_m.size} coordinates but the model is {dim}-D")
     warn_unsupported_releases(field, rels)
     starts = [r.start_time_s for r in rels]
     warn_beyond_time_span(field, min(starts), max(starts) + float(np.max(times_s)))
-    sde = sde_from_field(field, diffusivity_m2_s=diffusivity_m2_s, decorrelation_time_s=decorrelation_time_s)
     starts_m, start_times = np.stack([r.start_m for r in rels]), [r.start_time_s for r in rels]
     table_sde = field_or_table_sde(field, sde, starts_m, len(rels), check_times(times_s),
                                    None if isinstance(obj, EulerMaruyama) else integrator, posterior, start_times)

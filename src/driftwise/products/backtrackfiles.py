@@ -74,7 +74,7 @@ def backtrack_to_dict(result) -> dict[str, Any]:
     ``position_lonlat`` when known), ``region_50``/``region_90`` (``polygon_m``: exterior rings [x, y] m;
     ``holes_m``; ``area_m2``; ``polygon_lonlat`` for lon/lat models), ``probability_by_time`` (each
     ``release_time_s``, ``probability``, ``release_time_utc``), ``posterior_mean_m`` / ``posterior_cov_m2``
-    of the release point, ``finds`` and the grid."""
+    of the release point, ``finds``, the grid and ``step_s`` (the RK4 step used, s)."""
     x, y, t = result.most_probable
     best = {"position_m": [x, y], "time_s": t, "probability_cell": float(result.probability.max())}
     if _lonlat(result):
@@ -99,7 +99,7 @@ def backtrack_to_dict(result) -> dict[str, Any]:
         by_time.append(item)
     mean, cov = result.mean_cov()
     out.update(probability_by_time=by_time, posterior_mean_m=mean.tolist(), posterior_cov_m2=cov.tolist(),
-               method=result.method, log_evidence=result.log_evidence,
+               method=result.method, log_evidence=result.log_evidence, step_s=result.step_s,
                finds={"position_m": result.finds.position_m.tolist(), "time_s": result.finds.time_s.tolist(),
                       "sd_m": result.finds.sd_m.tolist()},
                grid={"x0_m": float(result.x_m[0]), "y0_m": float(result.y_m[0]), "nx": len(result.x_m),

@@ -42,8 +42,8 @@ def _times_utc(result) -> list[str] | None:
 def connect_to_dict(result) -> dict[str, Any]:
     """The JSON contract: ``sites`` (names), ``times_s`` (since the release), ``probability``
     [source][destination][time], ``first_passage_s`` [source][destination] (None: never), ``threshold``,
-    ``outside_support`` [source][time], ``method``, ``per_site``, ``start_time_s``, and ``times_utc`` /
-    ``start_time_utc`` (ISO-8601) when the model knows its time origin, ``standard_error`` for the ensemble."""
+    ``outside_support`` [source][time], ``method``, ``per_site``, ``start_time_s``, ``step_s`` (the step used, s),
+    and ``times_utc`` / ``start_time_utc`` (ISO-8601) when the model knows its time origin, ``standard_error`` for the ensemble."""
     def floats(a):
         a = np.asarray(a, np.float64)
         return np.where(np.isfinite(a), a, None).tolist()
@@ -52,9 +52,10 @@ def connect_to_dict(result) -> dict[str, Any]:
            "first_passage_s": floats(result.first_passage_s), "threshold": result.threshold,
            "outside_support": None if result.outside_support is None else floats(result.outside_support),
            "method": result.method, "per_site": result.per_site, "start_time_s": result.start_time_s,
+           "step_s": result.step_s,
            "site_area_m2": [s.area_m2 for s in result.sites],
            "units": {"times_s": "s since the release", "probability": "1 (share of the source's material)",
-                     "first_passage_s": "s since the release"}}
+                     "first_passage_s": "s since the release", "step_s": "s"}}
     if result.standard_error is not None:
         out["standard_error"] = floats(result.standard_error)
     if result.time_origin_utc is not None:
