@@ -39,8 +39,9 @@ from scipy.stats import chi2
 from ..data.tracks import in_model_frame
 from ..data.windows import Windows, forecast_windows
 from ..dynamics.methods import make_method
-from ..dynamics.moments import propagate_batch
+from ..dynamics.moments import diverged, propagate_batch
 from ..dynamics.sde import sde_from_field
+from ..dynamics.stepcheck import moment_step_s
 from ..dynamics.supportcheck import SUPPORT_VARIANCE_FRACTION, SupportWarning, path_support
 from ..units import format_length
 from ..errors import InputError
@@ -250,34 +251,39 @@ def baseline_scores(win: Windows, horizons_s, variance_m2: dict[str, np.ndarray]
 # ------------------------------------------------------------------ the door
 
 def forecast_moments(field, win: Windows, *, method: str = "cubature", position_error_m: float,
-                     step_s: float | None = 1800.0) -> tuple[np.ndarray, np.ndarray]:
+                     step_s: float | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Forecast means (R, T, d) and covariances (R, T, d, d) from every start in ONE batched call.
 
     Each start is the fix itself with the fix's error as release uncertainty, N(x_start, σ² I),
     released at the fix's own time (``win.start_time_s``: a time-varying field is integrated from there);
     the SDE is the field's (μ = posterior mean, D = 2(K I + τ(1 − e^{−a/τ}) Σ)), propagated by
-    ``moments.propagate_batch`` with the named moment ``method`` and RK4 steps of at most
-    ``step_s`` (s; 30 min is ample for flows whose Lagrangian time scale is hours).
+    ``moments.propagate_batch`` with the named moment ``method`` and RK4 steps of at most ``step_s`` (s; default
+    :func:`driftwise.dynamics.stepcheck.moment_step_s`: 30 min, ample for flows whose Lagrangian time scale is
+    hours, or a quarter of the flow's time scale or RK4's stability bound for the field when shorter).
     """
 
     if method == "ensemble":
         raise InputError("score: use a moment method (cubature, unscented, gauss-hermite, linearize); "
                          "the ensemble is the speed baseline, not a scoring method")
+    sde = sde_from_field(field)
+    starts = [0.0] if win.start_time_s is None else np.atleast_1d(win.start_time_s)
+    step_s = moment_step_s(field, sde, step_s, longest_s=1800.0, start_times_s=starts, horizon_s=win.times_s[-1])
     obj, integrator = make_method(method, step_s=step_s)
     dim = win.start_m.shape[1]
     covs0 = np.broadcast_to(position_error_m**2 * np.eye(dim), (win.start_m.shape[0], dim, dim))
     times = np.concatenate([[0.0], win.times_s])
-    means, covs = propagate_batch(sde_from_field(field), win.start_m, covs0, times, method=obj,
-                                  integrator=integrator, start_times_s=win.start_time_s)
+    means, covs = propagate_batch(sde, win.start_m, covs0, times, method=obj, integrator=integrator,
+                                  start_times_s=win.start_time_s)
     means, covs = np.asarray(means)[:, 1:], np.asarray(covs)[:, 1:]
-    if not (np.all(np.isfinite(means)) and np.all(np.isfinite(covs))):
-        raise InputError(f"score: the {method} forecast produced non-finite numbers; use a smaller step")
+    if diverged(means, covs):
+        raise InputError(f"score: the {method} forecast produced non-finite numbers or a covariance that is not "
+                         "positive semi-definite (the integration diverged); use a smaller step")
     return means, covs
 
 
 def score(field, holdout_tracks, *, horizons_s=DEFAULT_HORIZONS_S, method: str = "cubature",
           max_starts: int | None = 2000, fit_tracks=None, position_error_m: float | None = None,
-          step_s: float | None = None, integration_step_s: float = 1800.0) -> "ScoreResult":
+          step_s: float | None = None, integration_step_s: float | None = None) -> "ScoreResult":
     """Score a fitted field's forecasts against tracks it did not see, next to two baselines.
 
     Every fix of ``holdout_tracks`` after a track's first is a start (at most ``max_starts``,
@@ -285,7 +291,8 @@ def score(field, holdout_tracks, *, horizons_s=DEFAULT_HORIZONS_S, method: str =
     lead times (s).  ``fit_tracks`` (the tracks the model was fitted on) give the baselines'
     error variance for their coverage and log score; without them those are NaN.
     ``position_error_m`` defaults to the model's; ``step_s`` is the output spacing of the
-    Liu–Weisberg sums (default: the median fix interval), ``integration_step_s`` the RK4 step.
+    Liu–Weisberg sums (default: the median fix interval), ``integration_step_s`` the RK4 step (default as in
+    :func:`forecast_moments`).
     Returns a :class:`ScoreResult`; its ``to_dict()`` has ``horizons_s`` and, per horizon, ``n_pairs``, ``separation_m``
     (median), ``separation_p90_m``, ``skill`` (Liu–Weisberg), ``coverage_50``, ``coverage_95``,
     ``log_score`` (nats), ``coverage_50_se``/``coverage_95_se`` (standard errors with the starts
