@@ -21,7 +21,7 @@ from ..products.connectfiles import CONNECT_SUFFIXES, connect_to_dict, write_con
 from ..products.plotconnect import plot_connect_map, plot_connect_matrix
 from ..products.plots import save_figure
 from ..units import format_duration, parse_duration_s
-from .cliparts import EXIT_OK, add_exact_flag, check_step, add_json_flag, add_quiet_flag, print_json
+from .cliparts import EXIT_OK, add_exact_flag, add_json_flag, add_quiet_flag, check_step, print_json
 from .resources import bar, check_memory, say
 
 DEFAULT_MOMENT_STEP = "1h"
